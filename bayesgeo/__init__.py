@@ -1,0 +1,24 @@
+"""bayesgeo: Bayesian geostatistics with honest uncertainty in range, sill and nugget.
+
+The public API is a small set of functions on xarray objects, one module per stage:
+data -> explore -> covariance -> priors -> model -> sampling -> diagnostics -> predict -> report.
+"""
+
+from __future__ import annotations
+
+from bayesgeo.covariance import FAMILIES, Covariance, get_covariance
+from bayesgeo.data import read_points
+from bayesgeo.demo import demo_data, write_demo_data
+from bayesgeo.validate import InputError
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "FAMILIES",
+    "Covariance",
+    "InputError",
+    "demo_data",
+    "get_covariance",
+    "read_points",
+    "write_demo_data",
+]

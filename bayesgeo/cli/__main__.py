@@ -1,0 +1,3 @@
+from bayesgeo.cli import main
+import sys
+sys.exit(main())

@@ -1,0 +1,79 @@
+"""Pieces shared by the command modules: data options, JSON output, progress bars, tables."""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from collections.abc import Iterable
+
+import numpy as np
+
+__all__ = ["add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table"]
+
+
+def add_data_options(p) -> None:
+    """Options naming the columns of a point-data CSV (shared by every command that reads one)."""
+    p.add_argument("data", metavar="DATA", help="CSV of point measurements (or a bayesgeo .nc point file)")
+    p.add_argument("--x", metavar="COL", help="x / easting / longitude column (detected if omitted)")
+    p.add_argument("--y", metavar="COL", help="y / northing / latitude column (detected if omitted)")
+    p.add_argument("--value", metavar="COL", help="measured value column")
+    p.add_argument("--site", metavar="COL", help="site label column (several-site data)")
+    p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
+    p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto",
+                   help="planar coordinates (xy) or degrees (lonlat: great-circle km); auto refuses degree-like values")
+    p.add_argument("--duplicates", choices=("error", "mean"), default="error",
+                   help="points at the same location: error (default) or average them")
+    p.add_argument("--units", metavar="TEXT", help="units of the measured value, e.g. mg/kg")
+
+
+def read_data(args):
+    """Read the data named by :func:`add_data_options` arguments."""
+    from bayesgeo.data import read_points
+
+    return read_points(
+        args.data, x=args.x, y=args.y, value=args.value, site=args.site, covariates=args.covariate,
+        coords=args.coords, duplicates=args.duplicates, units=args.units,
+    )
+
+
+def to_jsonable(obj):
+    """Convert numpy scalars/arrays (and NaN -> None) so json.dumps gives strict JSON."""
+    if isinstance(obj, dict):
+        return {str(k): to_jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [to_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return to_jsonable(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
+
+
+def emit_json(obj) -> None:
+    """Print one JSON object on stdout."""
+    sys.stdout.write(json.dumps(to_jsonable(obj)) + "\n")
+    sys.stdout.flush()
+
+
+def progress(iterable: Iterable | None = None, *, total: int | None = None, desc: str = "", enabled: bool = True):
+    """A tqdm progress bar on stderr, shown only when ``enabled`` and stderr is a terminal."""
+    from tqdm.auto import tqdm
+
+    return tqdm(iterable, total=total, desc=desc, file=sys.stderr,
+                disable=not (enabled and sys.stderr.isatty()), leave=False)
+
+
+def print_table(rows: list[dict], columns: list[str], *, file=None, floatfmt: str = ".4g") -> None:
+    """Print ``rows`` as an aligned plain-text table."""
+    file = file or sys.stdout
+    cells = [[c for c in columns]]
+    for r in rows:
+        cells.append([format(r[c], floatfmt) if isinstance(r[c], (float, np.floating)) else str(r[c]) for c in columns])
+    widths = [max(len(row[i]) for row in cells) for i in range(len(columns))]
+    for k, row in enumerate(cells):
+        print("  ".join(s.rjust(w) for s, w in zip(row, widths)), file=file)
+        if k == 0:
+            print("  ".join("-" * w for w in widths), file=file)

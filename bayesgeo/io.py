@@ -1,0 +1,86 @@
+"""Writing results: atomically, never silently over an existing output.
+
+A file is written to a temporary name in the same folder and moved into place with
+``os.replace``; a folder is assembled under a temporary name and renamed at the end, so a crash
+leaves either the old output or the new one, never half of one.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+
+from bayesgeo.validate import InputError
+
+__all__ = ["refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
+
+
+def refuse_existing(path: str | Path, overwrite: bool, option: str = "--overwrite") -> Path:
+    """Raise :class:`InputError` if ``path`` exists and ``overwrite`` is false."""
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise InputError(f"{path}: already exists; choose another output or pass {option}")
+    return path
+
+
+@contextlib.contextmanager
+def atomic_file(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; move it into place if the block succeeds."""
+    path = refuse_existing(path, overwrite)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp)
+    try:
+        yield tmp
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+@contextlib.contextmanager
+def atomic_dir(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
+    """Yield a temporary folder; on success it replaces ``path`` in one rename.
+
+    An existing ``path`` is refused unless ``overwrite``; with ``overwrite`` the old folder is
+    removed only after the new one is complete.
+    """
+    path = refuse_existing(path, overwrite)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
+    try:
+        yield tmp
+        old = None
+        if path.exists():
+            old = path.with_name(f".{path.name}.old-{os.getpid()}")
+            os.replace(path, old)
+        os.replace(tmp, path)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+def write_text(path: str | Path, text: str, *, overwrite: bool = False) -> Path:
+    """Write ``text`` atomically."""
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(path)
+
+
+def write_json(path: str | Path, obj, *, overwrite: bool = False) -> Path:
+    """Write ``obj`` as indented JSON atomically."""
+    return write_text(path, json.dumps(obj, indent=2, allow_nan=True) + "\n", overwrite=overwrite)
+
+
+def write_netcdf(path: str | Path, obj, *, overwrite: bool = False) -> Path:
+    """Write an ``xarray.Dataset`` or ``DataTree`` to NetCDF (netCDF4 engine) atomically."""
+    with atomic_file(path, overwrite=overwrite) as tmp:
+        obj.to_netcdf(tmp, engine="netcdf4")
+    return Path(path)

@@ -1,0 +1,115 @@
+"""Point-data intake: every bad-input case gives a one-line error naming file, row and column."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from bayesgeo.data import read_points
+from bayesgeo.validate import InputError
+
+
+def test_reads_and_keeps_attributes(write_csv, grid_rows):
+    path = write_csv(grid_rows)
+    before = path.read_bytes()
+    ds = read_points(path, value="conc", units="mg/kg")
+    assert ds.sizes["obs"] == 25
+    assert ds.attrs["x_column"] == "x" and ds.attrs["value_column"] == "conc"
+    assert ds["value"].attrs["units"] == "mg/kg"
+    assert ds["row"].values[0] == 2  # header is row 1
+    assert path.read_bytes() == before  # input never modified
+
+
+def test_detects_easting_northing_and_value(write_csv, grid_rows):
+    rows = [["Easting", "Northing", "lead"]] + grid_rows[1:]
+    ds = read_points(write_csv(rows))
+    assert (ds.attrs["x_column"], ds.attrs["y_column"], ds.attrs["value_column"]) == ("Easting", "Northing", "lead")
+
+
+def test_missing_file(tmp_path):
+    with pytest.raises(InputError, match=r"nope\.csv: file not found"):
+        read_points(tmp_path / "nope.csv")
+
+
+def test_missing_column_lists_available(write_csv, grid_rows):
+    with pytest.raises(InputError, match=r"column 'zinc' \(--value\) not found; columns are: x, y, conc"):
+        read_points(write_csv(grid_rows), value="zinc")
+
+
+def test_non_numeric_cell(write_csv, grid_rows):
+    grid_rows[4][2] = "n.d."
+    with pytest.raises(InputError, match=r"points\.csv: row 5, column 'conc': 'n\.d\.' is not a number"):
+        read_points(write_csv(grid_rows), value="conc")
+
+
+@pytest.mark.parametrize("bad", ["", "nan", "inf", "-Infinity"])
+def test_empty_nan_inf_cells_list_rows(write_csv, grid_rows, bad):
+    grid_rows[3][2] = bad
+    grid_rows[7][0] = bad if bad else ""
+    with pytest.raises(InputError, match=r"column '(x|conc)' has empty, NaN or infinite cells at rows (4|8)"):
+        read_points(write_csv(grid_rows), value="conc")
+
+
+def test_too_few_points(write_csv, grid_rows):
+    with pytest.raises(InputError, match=r"only 9 points \(rows 2, 3, .*at least 10"):
+        read_points(write_csv(grid_rows[:10]), value="conc")
+
+
+def test_too_few_points_per_site(write_csv, grid_rows):
+    rows = [grid_rows[0] + ["site"]] + [r + (["A"] if i < 18 else ["B"]) for i, r in enumerate(grid_rows[1:])]
+    with pytest.raises(InputError, match=r"only 7 points at site 'B'"):
+        read_points(write_csv(rows), value="conc", site="site")
+
+
+def test_all_values_equal(write_csv, grid_rows):
+    for r in grid_rows[1:]:
+        r[2] = 5
+    with pytest.raises(InputError, match=r"every value in column 'conc' equals 5"):
+        read_points(write_csv(grid_rows), value="conc")
+
+
+def test_duplicate_locations_error_or_mean(write_csv, grid_rows):
+    grid_rows.append([0, 0, 20.0])  # same place as row 2
+    path = write_csv(grid_rows)
+    with pytest.raises(InputError, match=r"duplicate locations .* at rows 2, 27; pass --duplicates mean"):
+        read_points(path, value="conc")
+    ds = read_points(path, value="conc", duplicates="mean")
+    assert ds.sizes["obs"] == 25
+    first = grid_rows[1][2]
+    assert ds["value"].values[0] == pytest.approx((first + 20.0) / 2)
+
+
+def test_lonlat_lookalike_refused_unless_asked(write_csv):
+    rng = np.random.default_rng(0)
+    rows = [["x", "y", "v"]] + [[round(8.5 + 0.01 * rng.random(), 5), round(47.3 + 0.01 * rng.random(), 5),
+                                 round(rng.normal(), 3)] for _ in range(20)]
+    path = write_csv(rows)
+    with pytest.raises(InputError, match=r"look like longitude/latitude.*--coords lonlat"):
+        read_points(path)
+    ds = read_points(path, coords="lonlat")
+    assert ds.attrs["coords"] == "lonlat" and ds.attrs["distance_units"] == "km"
+    assert read_points(path, coords="xy").attrs["coords"] == "xy"
+
+
+def test_lonlat_out_of_range(write_csv, grid_rows):
+    with pytest.raises(InputError, match=r"column 'x' is outside \[-180, 180\] degrees at rows 12, 13, .*\(15 rows\)"):
+        read_points(write_csv(grid_rows), value="conc", coords="lonlat")
+
+
+def test_netcdf_roundtrip(tmp_path, write_csv, grid_rows):
+    ds = read_points(write_csv(grid_rows), value="conc")
+    ds.to_netcdf(tmp_path / "pts.nc")
+    back = read_points(tmp_path / "pts.nc")
+    np.testing.assert_array_equal(back["value"].values, ds["value"].values)
+
+
+def test_demo_data_recorded_truth(tmp_path):
+    from bayesgeo.demo import write_demo_data
+
+    truth = write_demo_data(tmp_path / "demo.csv")
+    ds = read_points(tmp_path / "demo.csv", site="parcel", value="arsenic_mg_kg")
+    assert set(truth["sites"]) == set(np.unique(ds["site"].values))
+    assert all(60 <= s["n"] <= 300 for s in truth["sites"].values())
+    assert (tmp_path / "demo.truth.json").exists()
+    with pytest.raises(InputError, match="already exists"):
+        write_demo_data(tmp_path / "demo.csv")
