@@ -2,18 +2,23 @@
 
 The kernels accumulate, per direction, lag bin and value column (column 0 the observed values,
 columns 1.. permutations of them), the sums from which the semivariogram and correlogram follow.
-Memory is O(n * columns + directions * bins * columns * threads).
+Memory is O(n * columns + directions * bins * columns * threads). The kernel releases the GIL
+and the rows are shared among ``numba.get_num_threads()`` Python threads (set NUMBA_NUM_THREADS to
+change it); a plain (non-parfor) kernel keeps the first-call compile short.
 """
 
 from __future__ import annotations
 
 import math
+from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
-from numba import njit, prange
+from numba import njit
+from scipy.spatial import ConvexHull, QhullError
+from scipy.spatial.distance import pdist
 
-from bayesgeo.geometry import EARTH_RADIUS_KM
+from bayesgeo.geometry import EARTH_RADIUS_KM, cross_distance
 
 __all__ = ["pair_sums", "max_pair_distance", "permuted_columns"]
 
@@ -23,101 +28,84 @@ WANT_ROOT = 2  # sum |z_i - z_j|^(1/2)
 WANT_CORR = 4  # sum z_i + z_j, sum z_i^2 + z_j^2, sum z_i z_j
 
 
-@njit(cache=True, parallel=True)
-def _max_distance(a, b, group, greatcircle, nchunks):
-    n = a.shape[0]
-    best = np.zeros(nchunks)
-    for c in prange(nchunks):
-        m = 0.0
-        for i in range(c, n, nchunks):
-            for j in range(i + 1, n):
-                if group[i] != group[j]:
-                    continue
-                if greatcircle:
-                    s1 = math.sin(0.5 * (b[j] - b[i]))
-                    s2 = math.sin(0.5 * (a[j] - a[i]))
-                    h = s1 * s1 + math.cos(b[i]) * math.cos(b[j]) * s2 * s2
-                    d = 2.0 * math.asin(math.sqrt(min(h, 1.0)))
-                else:
-                    d = math.hypot(a[j] - a[i], b[j] - b[i])
-                if d > m:
-                    m = d
-        best[c] = m
-    return best.max()
+@njit(cache=True, nogil=True)
+def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_az, dir_tol, want, first, step):
+    """Pair sums over rows first, first + step, ... (each with all later rows).
 
-
-@njit(cache=True, parallel=True)
-def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_az, dir_tol, want, nchunks):
-    """Accumulate pair sums. ``a, b``: x, y (or lon, lat in radians); ``z``: (n, ncol) values."""
+    ``a, b``: x, y (or lon, lat in radians); ``z``: (n, ncol) values. Runs without the GIL, so
+    several threads can share the rows.
+    """
     n, ncol = z.shape
     ndir = dir_az.shape[0]
     nsq = ncol if want & 1 else 0
     nroot = ncol if want & 2 else 0
     ncorr = ncol if want & 4 else 0
-    count = np.zeros((nchunks, ndir, nbins), dtype=np.int64)
-    dsum = np.zeros((nchunks, ndir, nbins))
-    sq = np.zeros((nchunks, ndir, nbins, nsq))
-    root = np.zeros((nchunks, ndir, nbins, nroot))
-    s1 = np.zeros((nchunks, ndir, nbins, ncorr))
-    s2 = np.zeros((nchunks, ndir, nbins, ncorr))
-    s12 = np.zeros((nchunks, ndir, nbins, ncorr))
+    count = np.zeros((ndir, nbins), dtype=np.int64)
+    dsum = np.zeros((ndir, nbins))
+    sq = np.zeros((ndir, nbins, nsq))
+    root = np.zeros((ndir, nbins, nroot))
+    s1 = np.zeros((ndir, nbins, ncorr))
+    s2 = np.zeros((ndir, nbins, ncorr))
+    s12 = np.zeros((ndir, nbins, ncorr))
     pi = math.pi
-    for c in prange(nchunks):
-        for i in range(c, n, nchunks):
-            for j in range(i + 1, n):
-                if group[i] != group[j]:
-                    continue
+    for i in range(first, n, step):
+        for j in range(i + 1, n):
+            if group[i] != group[j]:
+                continue
+            if greatcircle:
+                h1 = math.sin(0.5 * (b[j] - b[i]))
+                h2 = math.sin(0.5 * (a[j] - a[i]))
+                h = h1 * h1 + math.cos(b[i]) * math.cos(b[j]) * h2 * h2
+                d = 2.0 * EARTH_RADIUS_KM * math.asin(math.sqrt(min(h, 1.0)))
+            else:
+                d = math.hypot(a[j] - a[i], b[j] - b[i])
+            if d > max_lag:
+                continue
+            k = int(d / width)
+            if k >= nbins:
+                k = nbins - 1
+            theta = 0.0
+            if not omni:
                 if greatcircle:
-                    h1 = math.sin(0.5 * (b[j] - b[i]))
-                    h2 = math.sin(0.5 * (a[j] - a[i]))
-                    h = h1 * h1 + math.cos(b[i]) * math.cos(b[j]) * h2 * h2
-                    d = 2.0 * EARTH_RADIUS_KM * math.asin(math.sqrt(min(h, 1.0)))
+                    dlon = a[j] - a[i]
+                    if dlon > pi:
+                        dlon -= 2.0 * pi
+                    elif dlon < -pi:
+                        dlon += 2.0 * pi
+                    ex = dlon * math.cos(0.5 * (b[i] + b[j]))
+                    ny = b[j] - b[i]
                 else:
-                    d = math.hypot(a[j] - a[i], b[j] - b[i])
-                if d > max_lag:
-                    continue
-                k = int(d / width)
-                if k >= nbins:
-                    k = nbins - 1
-                theta = 0.0
+                    ex = a[j] - a[i]
+                    ny = b[j] - b[i]
+                theta = math.atan2(ex, ny)  # clockwise from north (+y)
+                if theta < 0.0:
+                    theta += pi
+                if theta >= pi:
+                    theta -= pi
+            for r in range(ndir):
                 if not omni:
-                    if greatcircle:
-                        dlon = a[j] - a[i]
-                        if dlon > pi:
-                            dlon -= 2.0 * pi
-                        elif dlon < -pi:
-                            dlon += 2.0 * pi
-                        ex = dlon * math.cos(0.5 * (b[i] + b[j]))
-                        ny = b[j] - b[i]
-                    else:
-                        ex = a[j] - a[i]
-                        ny = b[j] - b[i]
-                    theta = math.atan2(ex, ny)  # clockwise from north (+y)
-                    if theta < 0.0:
-                        theta += pi
-                    if theta >= pi:
-                        theta -= pi
-                for r in range(ndir):
-                    if not omni:
-                        diff = abs(theta - dir_az[r])
-                        diff = min(diff, pi - diff)
-                        if diff > dir_tol[r]:
-                            continue
-                    count[c, r, k] += 1
-                    dsum[c, r, k] += d
-                    for p in range(nsq):
-                        t = z[i, p] - z[j, p]
-                        sq[c, r, k, p] += t * t
-                    for p in range(nroot):
-                        root[c, r, k, p] += math.sqrt(abs(z[i, p] - z[j, p]))
-                    for p in range(ncorr):
-                        zi = z[i, p]
-                        zj = z[j, p]
-                        s1[c, r, k, p] += zi + zj
-                        s2[c, r, k, p] += zi * zi + zj * zj
-                        s12[c, r, k, p] += zi * zj
-    return (count.sum(axis=0), dsum.sum(axis=0), sq.sum(axis=0), root.sum(axis=0),
-            s1.sum(axis=0), s2.sum(axis=0), s12.sum(axis=0))
+                    diff = abs(theta - dir_az[r])
+                    diff = min(diff, pi - diff)
+                    if diff > dir_tol[r]:
+                        continue
+                count[r, k] += 1
+                dsum[r, k] += d
+                for p in range(nsq):
+                    t = z[i, p] - z[j, p]
+                    sq[r, k, p] += t * t
+                for p in range(nroot):
+                    root[r, k, p] += math.sqrt(abs(z[i, p] - z[j, p]))
+                for p in range(ncorr):
+                    zi = z[i, p]
+                    zj = z[j, p]
+                    s1[r, k, p] += zi + zj
+                    s2[r, k, p] += zi * zi + zj * zj
+                    s12[r, k, p] += zi * zj
+    return count, dsum, sq, root, s1, s2, s12
+
+
+def _threads() -> int:
+    return max(1, int(numba.get_num_threads()))
 
 
 def _coords(x: np.ndarray, y: np.ndarray, greatcircle: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -129,14 +117,38 @@ def _coords(x: np.ndarray, y: np.ndarray, greatcircle: bool) -> tuple[np.ndarray
     return np.ascontiguousarray(x - x.mean()), np.ascontiguousarray(y - y.mean())
 
 
+def _max_brute(xy: np.ndarray, metric: str, block: int = 512) -> float:
+    best = 0.0
+    for lo in range(0, len(xy), block):
+        best = max(best, float(cross_distance(xy[lo:lo + block], xy, metric).max()))
+    return best
+
+
+def _max_planar(xy: np.ndarray) -> float:
+    try:
+        hull = ConvexHull(xy)
+    except QhullError:  # collinear or too few points: no 2-D hull
+        return _max_brute(xy, "euclidean")
+    v = xy[hull.vertices]
+    return float(pdist(v).max()) if len(v) > 1 else 0.0
+
+
 def max_pair_distance(x: np.ndarray, y: np.ndarray, *, group: np.ndarray, greatcircle: bool = False) -> float:
-    """Largest distance between two points of the same group (planar units, or km on the sphere)."""
-    a, b = _coords(x, y, greatcircle)
-    if a.size < 2:
-        return 0.0
-    g = np.ascontiguousarray(group, dtype=np.int64)
-    d = float(_max_distance(a, b, g, greatcircle, numba.get_num_threads()))
-    return d * EARTH_RADIUS_KM if greatcircle else d
+    """Largest distance between two points of the same group (planar units, or km on the sphere).
+
+    Planar: the farthest pair lies on the convex hull, so only hull vertices are compared.
+    Great circle: all pairs, in blocks of rows (memory O(block * n)).
+    """
+    xy = np.column_stack([np.asarray(x, dtype=float), np.asarray(y, dtype=float)])
+    if not greatcircle:
+        xy = xy - xy.mean(axis=0)
+    best = 0.0
+    for g in np.unique(group):
+        part = xy[group == g]
+        if len(part) < 2:
+            continue
+        best = max(best, _max_brute(part, "greatcircle") if greatcircle else _max_planar(part))
+    return best
 
 
 def permuted_columns(z: np.ndarray, permutations: int, rng: np.random.Generator | None,
@@ -185,8 +197,14 @@ def pair_sums(x, y, z, *, group, edges, greatcircle, directions, tolerance, want
     az = np.zeros(1) if omni else np.radians(np.mod(np.asarray(directions, dtype=float), 180.0))
     tol = np.full(az.shape, math.radians(tolerance) + 1e-12)
     zc = np.ascontiguousarray(z, dtype=float)
-    out = _pair_kernel(a, b, zc, np.ascontiguousarray(group, dtype=np.int64), width, nbins,
-                       float(edges[-1]) * (1.0 + 1e-12), greatcircle, omni, az, tol, int(want),
-                       numba.get_num_threads())
+    g = np.ascontiguousarray(group, dtype=np.int64)
+    args = (a, b, zc, g, width, nbins, float(edges[-1]) * (1.0 + 1e-12), greatcircle, omni, az, tol, int(want))
+    step = min(_threads(), max(1, a.size // 64))
+    if step == 1:
+        parts = [_pair_kernel(*args, 0, 1)]
+    else:
+        # interleaved rows balance the work (row i has n - i - 1 partners)
+        with ThreadPoolExecutor(max_workers=step) as pool:
+            parts = list(pool.map(lambda first: _pair_kernel(*args, first, step), range(step)))
     names = ("count", "dsum", "sq", "root", "s1", "s2", "s12")
-    return dict(zip(names, out))
+    return {name: sum(p[k] for p in parts) for k, name in enumerate(names)}
