@@ -9,6 +9,8 @@ from __future__ import annotations
 from bayesgeo.covariance import FAMILIES, Covariance, get_covariance
 from bayesgeo.data import read_points
 from bayesgeo.demo import demo_data, write_demo_data
+from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, semivariogram
+from bayesgeo.trend import design_at, design_matrix, fit_trend
 from bayesgeo.validate import InputError
 
 __version__ = "0.1.0"
@@ -17,8 +19,15 @@ __all__ = [
     "FAMILIES",
     "Covariance",
     "InputError",
+    "correlogram",
     "demo_data",
+    "design_at",
+    "design_matrix",
+    "directional_semivariograms",
+    "fit_trend",
     "get_covariance",
+    "lag_bins",
     "read_points",
+    "semivariogram",
     "write_demo_data",
 ]

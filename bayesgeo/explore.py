@@ -46,7 +46,6 @@ from collections.abc import Sequence
 import numpy as np
 import xarray as xr
 
-from bayesgeo import _pairs
 from bayesgeo.geometry import metric_of
 from bayesgeo.validate import InputError, check_choice, check_positive, check_positive_int
 
@@ -66,6 +65,8 @@ ESTIMATORS = ("classical", "cressie-hawkins")
 MIN_PAIRS = 30
 #: Constants of the Cressie-Hawkins estimator: 0.457 = (E|Z|^(1/2))^4 for Z ~ N(0, 1).
 _CH_A, _CH_B = 0.457, 0.494
+# sums the pair kernel accumulates (bit flags of bayesgeo._pairs)
+_WANT_SQ, _WANT_ROOT, _WANT_CORR = 1, 2, 4
 
 CAUTION = (
     "Exploratory summary assuming stationarity; it supports, and does not replace, licensed professional "
@@ -136,6 +137,8 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, max_lag: float | None = None) ->
     -------
     ndarray, shape (bins + 1,)
     """
+    from bayesgeo import _pairs
+
     bins = check_positive_int(bins, "--bins")
     if max_lag is None:
         greatcircle = metric_of(ds) == "greatcircle"
@@ -152,6 +155,8 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, max_lag: float | None = None) ->
 
 
 def _compute(ds, *, bins, max_lag, permutations, seed, directions, tolerance, variable, want):
+    from bayesgeo import _pairs  # numba loads on first use, not on `import bayesgeo`
+
     bins, max_lag, permutations, seed = _check_common(bins, max_lag, permutations, seed)
     name, z = _values(ds, variable)
     edges = lag_bins(ds, bins=bins, max_lag=max_lag)
@@ -266,7 +271,7 @@ def _semivariances(sums, estimator):
 
 def _semivariogram(ds, *, bins, max_lag, estimator, permutations, seed, directions, tolerance, variable):
     check_choice(estimator, ESTIMATORS, "--estimator")
-    want = _pairs.WANT_SQ if estimator == "classical" else _pairs.WANT_ROOT
+    want = _WANT_SQ if estimator == "classical" else _WANT_ROOT
     name, _, edges, sums, permutations, seed = _compute(
         ds, bins=bins, max_lag=max_lag, permutations=permutations, seed=seed, directions=directions,
         tolerance=tolerance, variable=variable, want=want,
@@ -424,7 +429,7 @@ def correlogram(
         directions = [float(azimuth)]
     name, z, edges, sums, permutations, seed = _compute(
         ds, bins=bins, max_lag=max_lag, permutations=permutations, seed=seed, directions=directions,
-        tolerance=tolerance, variable=variable, want=_pairs.WANT_CORR,
+        tolerance=tolerance, variable=variable, want=_WANT_CORR,
     )
     count = sums["count"][..., None].astype(float)
     with np.errstate(invalid="ignore", divide="ignore"):
