@@ -10,6 +10,8 @@ from bayesgeo.covariance import FAMILIES, Covariance, get_covariance
 from bayesgeo.data import read_points
 from bayesgeo.demo import demo_data, write_demo_data
 from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, semivariogram
+from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
+from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
 from bayesgeo.trend import design_at, design_matrix, fit_trend
 from bayesgeo.validate import InputError
 
@@ -20,14 +22,20 @@ __all__ = [
     "Covariance",
     "InputError",
     "correlogram",
+    "correlogram_figure",
     "demo_data",
     "design_at",
     "design_matrix",
+    "directional_figure",
     "directional_semivariograms",
+    "fit_ml",
     "fit_trend",
+    "fit_wls",
     "get_covariance",
     "lag_bins",
+    "quick_fits",
     "read_points",
     "semivariogram",
+    "semivariogram_figure",
     "write_demo_data",
 ]

@@ -39,7 +39,6 @@ from scipy import linalg, optimize
 
 from bayesgeo.covariance import FAMILIES, Covariance, get_covariance
 from bayesgeo.geometry import distance_matrix, metric_of
-from bayesgeo.likelihood import JITTER, covariance_matrix
 from bayesgeo.validate import InputError
 
 __all__ = ["MAX_DENSE_POINTS", "QUICK_FAMILIES", "fit_wls", "fit_ml", "quick_fits"]
@@ -67,12 +66,12 @@ def _resolve(covariance: str | Covariance, nu: float | None) -> Covariance:
 
 
 def _at_bound(theta: np.ndarray, lo: np.ndarray, hi: np.ndarray, names: Sequence[str]) -> list[str]:
-    """Names of log parameters within 1e-6 of a bound (``"scale (upper)"`` ...)."""
+    """Names of log parameters within 1e-4 of a bound (``"scale (upper)"`` ...)."""
     out = []
     for t, a, b, name in zip(theta, lo, hi, names):
-        if t - a < 1e-6:
+        if t - a < 1e-4:
             out.append(f"{name} (lower)")
-        elif b - t < 1e-6:
+        elif b - t < 1e-4:
             out.append(f"{name} (upper)")
     return out
 
@@ -241,6 +240,11 @@ class _ProfileLik:
     def __init__(self, z, dist, basis, cov, nugget):
         self.z, self.dist, self.q, self.cov, self.nugget = z, dist, basis, cov, nugget
         self.n = len(z)
+        # bayesgeo.likelihood imports PyTensor (about 1 s); import it only when a fit runs, so
+        # `import bayesgeo` and the exploratory command stay quick.
+        from bayesgeo.likelihood import JITTER, covariance_matrix
+
+        self.jitter, self.covariance_matrix = JITTER, covariance_matrix
 
     def params(self, theta):
         tau = math.exp(theta[0]) if self.nugget else 0.0
@@ -248,7 +252,7 @@ class _ProfileLik:
 
     def __call__(self, theta, grad: bool = True):
         tau, sig, phi = self.params(theta)
-        k = covariance_matrix(self.dist, self.cov, phi, sig, tau)
+        k = self.covariance_matrix(self.dist, self.cov, phi, sig, tau)
         try:
             c = linalg.cho_factor(k, lower=True, check_finite=False)
         except linalg.LinAlgError:
@@ -266,7 +270,7 @@ class _ProfileLik:
         # so its own derivative drops out (envelope theorem).
         w = np.outer(alpha, alpha) - _inverse_from_cholesky(c[0])
         rho = self.cov.correlation(self.dist, phi)
-        rho[np.diag_indices_from(rho)] += JITTER
+        rho[np.diag_indices_from(rho)] += self.jitter
         g = [0.5 * sig * np.sum(w * rho), 0.5 * sig * np.sum(w * self.cov.correlation_dlogscale(self.dist, phi))]
         if self.nugget:
             g.insert(0, 0.5 * tau * np.trace(w))
@@ -399,6 +403,8 @@ def fit_ml(ds: xr.Dataset, covariance: str | Covariance, *, trend: int = 0, cova
 
 def _beta_data_units(xmat, y, dist, cov, scale, sig, tau) -> np.ndarray:
     """GLS coefficients for the design as given (equilibrated columns, whitened least squares)."""
+    from bayesgeo.likelihood import covariance_matrix
+
     k = covariance_matrix(dist, cov, scale, sig, tau)
     chol = linalg.cholesky(k, lower=True, check_finite=False)
     norms = np.linalg.norm(xmat, axis=0)
@@ -433,7 +439,8 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
         Its empirical semivariogram (of the trend residuals when ``trend`` > 0 or covariates are
         used), see :func:`fit_wls`.
     families : sequence of str
-        Family names; default every closed-form family (:data:`QUICK_FAMILIES`).
+        Names of closed-form families; default all of them (:data:`QUICK_FAMILIES`). The
+        general ``"matern"`` needs its nu: fit it with :func:`fit_wls` / :func:`fit_ml`.
     trend, covariates, nugget
         As in :func:`fit_ml` (``nugget`` also applies to the WLS fits).
 
@@ -448,6 +455,9 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
     families = list(families)
     if not families:
         raise InputError("no covariance family given")
+    for fam in families:
+        if fam not in QUICK_FAMILIES:
+            raise InputError(f"--covariance: {fam!r} is not one of {', '.join(QUICK_FAMILIES)}")
     rows = {m: [] for m in ("wls", "ml")}
     for fam in families:
         w = fit_wls(vg, fam, nugget=nugget)

@@ -20,6 +20,7 @@ EXIT_NOT_CONVERGED = 3
 #: command name -> module under bayesgeo.cli
 COMMANDS: dict[str, str] = {
     "demo-data": "demo_data",
+    "explore": "explore",
 }
 
 

@@ -1,0 +1,168 @@
+"""``bayesgeo explore`` through the command line: one JSON object, files, refusals, bad input."""
+
+from __future__ import annotations
+
+import csv
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from bayesgeo.cli import main
+from bayesgeo.data import read_points
+from bayesgeo.demo import simulate_field
+from bayesgeo.explore import correlogram, semivariogram
+from bayesgeo.quickfit import fit_wls
+
+FILES = ("semivariogram.png", "correlogram.png", "directional.png", "semivariogram.csv", "correlogram.csv",
+         "directional.csv", "fits.csv")
+FAST = ["--permutations", "19", "--covariance", "exponential", "spherical", "--bins", "10"]
+
+
+def _rows(n, seed, site=None):
+    rng = np.random.default_rng(seed)
+    xy = np.round(rng.random((n, 2)) * 400.0, 1)
+    z = simulate_field(xy, covariance="exponential", practical_range=150.0, partial_sill=1.0, nugget=0.2,
+                       mean=3.0, rng=rng)
+    head = ["easting", "northing", "conc"] + (["parcel"] if site else [])
+    return [head] + [[f"{x:.1f}", f"{y:.1f}", f"{v:.4f}"] + ([site] if site else []) for (x, y), v in zip(xy, z)]
+
+
+@pytest.fixture(scope="module")
+def one_site(tmp_path_factory):
+    """A simulated 80-point survey, explored once with --json (shared by several tests)."""
+    import contextlib
+    import io
+
+    d = tmp_path_factory.mktemp("explore")
+    data = d / "survey.csv"
+    data.write_text("\n".join(",".join(r) for r in _rows(80, 3)) + "\n")
+    out = d / "survey-explore"
+    buf, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(buf), contextlib.redirect_stderr(err):
+        code = main(["explore", str(data), "--value", "conc", "--units", "mg/kg", "--json", *FAST])
+    return {"data": data, "out": out, "code": code, "stdout": buf.getvalue(), "stderr": err.getvalue()}
+
+
+def test_cli_json_is_one_object_with_the_documented_keys(one_site):
+    """--json prints exactly one JSON object (strict JSON: NaN as null) and nothing else on stdout;
+    the keys are those the command documents; cautions defer to local regulation and licensed
+    professional judgement (common practice for contamination outputs)."""
+    assert one_site["code"] == 0
+    lines = one_site["stdout"].splitlines()
+    assert len(lines) == 1
+    obj = json.loads(lines[0], parse_constant=lambda c: pytest.fail(f"non-strict JSON constant {c}"))
+    assert obj["n"] == 80
+    sv = obj["semivariogram"]
+    for key in ("lag", "semivariance", "pairs", "envelope_low", "envelope_high"):
+        assert len(sv[key]) == 10
+    cg = obj["correlogram"]
+    for key in ("lag", "correlation", "envelope_low", "envelope_high"):
+        assert len(cg[key]) == 11  # lag-0 bin first
+    assert cg["lag"][0] == 0 and cg["correlation"][0] == 1
+    for method in ("wls", "ml"):
+        assert set(obj["fits"][method]) == {"exponential", "spherical"}
+        for f in obj["fits"][method].values():
+            assert f["nugget"] >= 0 and f["partial_sill"] > 0 and f["practical_range"] > 0
+    text = " ".join(obj["cautions"])
+    assert "local regulation" in text and "licensed professional" in text and "screening" in text
+    assert obj["site"] is None and "sites" not in obj
+
+
+def test_cli_writes_figures_tables_and_json(one_site):
+    """Default folder <data stem>-explore holds PNG figures (PNG signature, PNG specification
+    sec. 5.2), CSV tables with one row per bin / family, and explore.json equal to stdout."""
+    out = one_site["out"]
+    for name in FILES:
+        assert (out / name).is_file(), name
+    for name in FILES[:3]:
+        assert (out / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    with (out / "semivariogram.csv").open() as fh:
+        assert len(list(csv.DictReader(fh))) == 10
+    with (out / "fits.csv").open() as fh:
+        rows = list(csv.DictReader(fh))
+    assert {(r["method"], r["family"]) for r in rows} == {(m, f) for m in ("wls", "ml")
+                                                           for f in ("exponential", "spherical")}
+    assert json.loads((out / "explore.json").read_text()) == json.loads(one_site["stdout"])
+
+
+def test_cli_numbers_equal_the_python_api(one_site):
+    """The command is a thin shell: its semivariogram, correlogram and WLS fit equal the Python
+    API's on the same data, options and seed (determinism)."""
+    obj = json.loads(one_site["stdout"])
+    ds = read_points(one_site["data"], value="conc", units="mg/kg")
+    vg = semivariogram(ds, bins=10, permutations=19, seed=1)
+    cg = correlogram(ds, bins=10, permutations=19, seed=1)
+    np.testing.assert_allclose(obj["semivariogram"]["semivariance"], vg["semivariance"].values, rtol=1e-12)
+    np.testing.assert_allclose(obj["semivariogram"]["envelope_high"], vg["envelope_high"].values, rtol=1e-12)
+    np.testing.assert_allclose(obj["correlogram"]["correlation"], cg["correlation"].values, rtol=1e-12)
+    w = fit_wls(vg, "exponential")
+    assert obj["fits"]["wls"]["exponential"]["practical_range"] == pytest.approx(w["practical_range"], rel=1e-12)
+
+
+def test_cli_refuses_existing_out_then_overwrites_identically(one_site, capsys):
+    """An existing --out is refused without --overwrite (exit 2, one line, no traceback); with
+    --overwrite the same data, options and seed give the same numbers."""
+    args = ["explore", str(one_site["data"]), "--value", "conc", "--units", "mg/kg", *FAST]
+    code = main([*args, "--json"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1 and "already exists" in err and "--overwrite" in err and "Traceback" not in err
+    code = main([*args, "--json", "--overwrite"])
+    again = json.loads(capsys.readouterr().out)
+    assert code == 0
+    assert again == json.loads(one_site["stdout"])
+
+
+def test_cli_several_sites_get_sub_folders(tmp_path, capsys):
+    """With --site: one sub-folder per site, JSON "sites" keyed by label, top-level statistics of
+    the first site in file order, and a fits.csv of all sites at the top; the human summary
+    (no --json) prints a table per site, where the files went and the cautions."""
+    rows = _rows(40, 5, site="north yard") + _rows(35, 6, site="mill/pond")[1:]
+    data = tmp_path / "two.csv"
+    data.write_text("\n".join(",".join(r) for r in rows) + "\n")
+    out = tmp_path / "res"
+    code = main(["explore", str(data), "--value", "conc", "--site", "parcel", "--out", str(out), *FAST])
+    printed = capsys.readouterr().out
+    assert code == 0
+    assert "site north yard: 40 points" in printed and "site mill/pond: 35 points" in printed
+    assert f"to {out}/" in printed and "caution:" in printed and "licensed professional" in printed
+    obj = json.loads((out / "explore.json").read_text())
+    assert obj["site"] == "north yard" and obj["n"] == 40 and obj["n_total"] == 75
+    assert set(obj["sites"]) == {"north yard", "mill/pond"}
+    assert obj["sites"]["mill/pond"]["n"] == 35
+    assert obj["semivariogram"] == obj["sites"]["north yard"]["semivariogram"]
+    for sub in ("north_yard", "mill_pond"):
+        for name in FILES:
+            assert (out / sub / name).is_file()
+    with (out / "fits.csv").open() as fh:
+        assert {r["site"] for r in csv.DictReader(fh)} == {"north yard", "mill/pond"}
+
+
+def test_cli_bad_input_one_line_exit_2(tmp_path, capsys):
+    """Through the CLI: exit status 2, one line on stderr, no traceback."""
+    code = main(["explore", str(tmp_path / "missing.csv"), "--json"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.count("\n") == 1 and "missing.csv: file not found" in err and "Traceback" not in err
+
+
+def test_cli_subprocess_no_traceback(tmp_path, write_csv, grid_rows):
+    grid_rows[5][1] = "abc"
+    path = write_csv(grid_rows)
+    proc = subprocess.run([sys.executable, "-m", "bayesgeo.cli", "explore", str(path), "--value", "conc"],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert proc.stderr.strip().endswith("row 6, column 'y': 'abc' is not a number")
+    assert "Traceback" not in proc.stderr
+
+
+def test_cli_bad_trend_order_is_one_line(tmp_path, write_csv, grid_rows, capsys):
+    """A trend order outside 0-3 is refused before any work, naming the option."""
+    path = write_csv(grid_rows)
+    code = main(["explore", str(path), "--value", "conc", "--trend", "5", "--json"])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1 and "--trend" in err
+    assert not (tmp_path / "points-explore").exists()
