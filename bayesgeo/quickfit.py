@@ -428,7 +428,7 @@ _VARS = {
 
 
 def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_FAMILIES, *, trend: int = 0,
-               covariates: Sequence[str] = (), nugget: bool = True) -> xr.Dataset:
+               covariates: Sequence[str] = (), nugget: bool = True, ml: bool | None = None) -> xr.Dataset:
     """WLS and ML fits of several covariance families to one site's data.
 
     Parameters
@@ -443,6 +443,10 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
         general ``"matern"`` needs its nu: fit it with :func:`fit_wls` / :func:`fit_ml`.
     trend, covariates, nugget
         As in :func:`fit_ml` (``nugget`` also applies to the WLS fits).
+    ml : bool, optional
+        Run the maximum-likelihood fits. Default: only when the site has at most
+        :data:`MAX_DENSE_POINTS` points; skipped fits are NaN with ``converged`` false and
+        ``attrs["ml_skipped"]`` saying why.
 
     Returns
     -------
@@ -458,10 +462,13 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
     for fam in families:
         if fam not in QUICK_FAMILIES:
             raise InputError(f"--covariance: {fam!r} is not one of {', '.join(QUICK_FAMILIES)}")
+    n = int(ds.sizes["obs"])
+    run_ml = n <= MAX_DENSE_POINTS if ml is None else bool(ml)
+    skipped = {"converged": False, "at_bound": []}
     rows = {m: [] for m in ("wls", "ml")}
     for fam in families:
         w = fit_wls(vg, fam, nugget=nugget)
-        m = fit_ml(ds, fam, trend=trend, covariates=covariates, nugget=nugget, start=w)
+        m = fit_ml(ds, fam, trend=trend, covariates=covariates, nugget=nugget, start=w) if run_ml else skipped
         rows["wls"].append(w)
         rows["ml"].append(m)
     data = {}
@@ -485,4 +492,7 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
         "ml": "maximum likelihood, trend profiled out by GLS (not REML)",
         "note": "screening estimates assuming a stationary, isotropic field",
     })
+    if not run_ml:
+        out.attrs["ml_skipped"] = (f"maximum likelihood not run ({n} points; dense fits take at most "
+                                   f"{MAX_DENSE_POINTS})" if ml is None else "maximum likelihood not requested")
     return out

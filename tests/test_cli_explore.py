@@ -166,3 +166,25 @@ def test_cli_bad_trend_order_is_one_line(tmp_path, write_csv, grid_rows, capsys)
     err = capsys.readouterr().err
     assert code == 2 and err.count("\n") == 1 and "--trend" in err
     assert not (tmp_path / "points-explore").exists()
+
+
+def test_semivariogram_figure_draws_the_fitted_curves(one_site):
+    """The figure's fitted curve is the exponential semivariogram written out here,
+    gamma(h) = tau2 + sigma2 (1 - exp(-h / phi)) (Diggle and Ribeiro 2007, sec. 3.4), with the
+    fitted WLS numbers; one curve per family; axes name their units; the envelope is drawn."""
+    from bayesgeo.figures import correlogram_figure, semivariogram_figure
+    from bayesgeo.quickfit import quick_fits
+
+    ds = read_points(one_site["data"], value="conc", units="mg/kg")
+    vg = semivariogram(ds, bins=10, permutations=19, seed=1)
+    fits = quick_fits(ds, vg, ["exponential", "gaussian"])
+    ax = semivariogram_figure(vg, fits).axes[0]
+    assert len(ax.lines) == 2
+    h, g = ax.lines[0].get_data()
+    f = fits.sel({"method": "wls", "family": "exponential"})
+    ref = float(f["nugget"]) + float(f["partial_sill"]) * (1.0 - np.exp(-h / float(f["scale"])))
+    np.testing.assert_allclose(g, ref, rtol=1e-12)
+    assert "(mg/kg)" in ax.get_ylabel() and "coordinate units" in ax.get_xlabel()
+    assert len(ax.collections) >= 2  # permutation band and the points
+    cax = correlogram_figure(correlogram(ds, bins=10, permutations=19, seed=1)).axes[0]
+    assert "correlation" in cax.get_ylabel() and cax.get_ylim() == (-1.05, 1.05)

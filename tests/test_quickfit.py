@@ -254,3 +254,29 @@ def test_quick_fits_layout_and_determinism():
     assert out["nugget"].attrs["units"] == "(mg/kg)^2" and out["scale"].attrs["units"] == "m"
     again = quick_fits(ds, vg, fams)
     xr.testing.assert_identical(out, again)
+
+
+def test_no_nugget_fits_are_nested_in_the_nugget_fits():
+    """nugget=False fixes tau2 = 0 in both methods; the ML fit without nugget cannot beat the
+    one with a nugget (nested models: the larger model's maximum is at least the smaller's,
+    common practice for likelihood-ratio comparisons)."""
+    ds = _field(n=120, seed=21)
+    vg = semivariogram(ds, bins=12)
+    assert fit_wls(vg, "matern32", nugget=False)["nugget"] == 0.0
+    without = fit_ml(ds, "matern32", nugget=False)
+    with_nugget = fit_ml(ds, "matern32")
+    assert without["nugget"] == 0.0
+    assert with_nugget["loglik"] >= without["loglik"] - 1e-6
+
+
+def test_quick_fits_skips_ml_above_the_dense_limit(monkeypatch):
+    """Above MAX_DENSE_POINTS the ML rows are NaN, not converged, and the reason is recorded;
+    the WLS rows are still fitted."""
+    ds = _field(n=60, seed=8)
+    vg = semivariogram(ds, bins=6)
+    monkeypatch.setattr(quickfit, "MAX_DENSE_POINTS", 50)
+    out = quick_fits(ds, vg, ["exponential"])
+    assert np.isnan(float(out["nugget"].sel({"method": "ml", "family": "exponential"})))
+    assert not bool(out["converged"].sel({"method": "ml", "family": "exponential"}))
+    assert "60 points" in out.attrs["ml_skipped"]
+    assert np.isfinite(float(out["practical_range"].sel({"method": "wls", "family": "exponential"})))

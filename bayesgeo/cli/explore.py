@@ -129,6 +129,8 @@ def _analyse_site(part, args, families, bar) -> tuple[dict, dict]:
     notes += sorted({str(w.message) for w in caught if issubclass(w.category, explore.FewPairsWarning)})
     fits = quick_fits(part, vg, families, trend=args.trend, covariates=args.covariate)
     bar.update(len(families))
+    if "ml_skipped" in fits.attrs:
+        notes.append(fits.attrs["ml_skipped"] + "; the ML columns are null")
     import numpy as np
 
     lags = vg["lag"].values[(vg["pairs"].values > 0) & np.isfinite(vg["semivariance"].values)]
@@ -136,10 +138,10 @@ def _analyse_site(part, args, families, bar) -> tuple[dict, dict]:
     for method in fits["method"].values:
         for fam in fits["family"].values:
             row = fits.sel({"method": method, "family": fam})
-            if float(row["practical_range"]) < first_lag:
+            if float(row["practical_range"]) < first_lag:  # False for NaN
                 notes.append(f"{method.upper()} fit of {fam}: practical range {float(row['practical_range']):.3g} is "
                              f"below the first lag ({first_lag:.3g}); the data look like pure nugget at these lags")
-            if not bool(row["converged"]):
+            if not bool(row["converged"]) and not (method == "ml" and "ml_skipped" in fits.attrs):
                 notes.append(f"{method.upper()} fit of {fam} did not report convergence; treat it with care")
             elif str(row["at_bound"].values):
                 notes.append(f"{method.upper()} fit of {fam} stopped at a search bound: {row['at_bound'].values}")
