@@ -29,11 +29,12 @@ WANT_CORR = 4  # sum z_i + z_j, sum z_i^2 + z_j^2, sum z_i z_j
 
 
 @njit(cache=True, nogil=True)
-def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_az, dir_tol, want, first, step):
-    """Pair sums over rows first, first + step, ... (each with all later rows).
+def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_az, dir_tol, want, first, step, block):
+    """Pair sums over row blocks first, first + step, ... (each row with all later rows).
 
-    ``a, b``: x, y (or lon, lat in radians); ``z``: (n, ncol) values. Runs without the GIL, so
-    several threads can share the rows.
+    ``a, b``: x, y (or lon, lat in radians); ``z``: (n, ncol) values. Pairs are visited tile by
+    tile (``block`` rows of i against ``block`` rows of j) so both sets of value rows stay in
+    cache. Runs without the GIL, so several threads can share the blocks.
     """
     n, ncol = z.shape
     ndir = dir_az.shape[0]
@@ -48,59 +49,65 @@ def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_a
     s2 = np.zeros((ndir, nbins, ncorr))
     s12 = np.zeros((ndir, nbins, ncorr))
     pi = math.pi
-    for i in range(first, n, step):
-        for j in range(i + 1, n):
-            if group[i] != group[j]:
-                continue
-            if greatcircle:
-                h1 = math.sin(0.5 * (b[j] - b[i]))
-                h2 = math.sin(0.5 * (a[j] - a[i]))
-                h = h1 * h1 + math.cos(b[i]) * math.cos(b[j]) * h2 * h2
-                d = 2.0 * EARTH_RADIUS_KM * math.asin(math.sqrt(min(h, 1.0)))
-            else:
-                d = math.hypot(a[j] - a[i], b[j] - b[i])
-            if d > max_lag:
-                continue
-            k = int(d / width)
-            if k >= nbins:
-                k = nbins - 1
-            theta = 0.0
-            if not omni:
-                if greatcircle:
-                    dlon = a[j] - a[i]
-                    if dlon > pi:
-                        dlon -= 2.0 * pi
-                    elif dlon < -pi:
-                        dlon += 2.0 * pi
-                    ex = dlon * math.cos(0.5 * (b[i] + b[j]))
-                    ny = b[j] - b[i]
-                else:
-                    ex = a[j] - a[i]
-                    ny = b[j] - b[i]
-                theta = math.atan2(ex, ny)  # clockwise from north (+y)
-                if theta < 0.0:
-                    theta += pi
-                if theta >= pi:
-                    theta -= pi
-            for r in range(ndir):
-                if not omni:
-                    diff = abs(theta - dir_az[r])
-                    diff = min(diff, pi - diff)
-                    if diff > dir_tol[r]:
+    nblocks = (n + block - 1) // block
+    for ib in range(first, nblocks, step):
+        i0 = ib * block
+        i1 = min(n, i0 + block)
+        for j0 in range(i0, n, block):
+            j1 = min(n, j0 + block)
+            for i in range(i0, i1):
+                for j in range(max(j0, i + 1), j1):
+                    if group[i] != group[j]:
                         continue
-                count[r, k] += 1
-                dsum[r, k] += d
-                for p in range(nsq):
-                    t = z[i, p] - z[j, p]
-                    sq[r, k, p] += t * t
-                for p in range(nroot):
-                    root[r, k, p] += math.sqrt(abs(z[i, p] - z[j, p]))
-                for p in range(ncorr):
-                    zi = z[i, p]
-                    zj = z[j, p]
-                    s1[r, k, p] += zi + zj
-                    s2[r, k, p] += zi * zi + zj * zj
-                    s12[r, k, p] += zi * zj
+                    if greatcircle:
+                        h1 = math.sin(0.5 * (b[j] - b[i]))
+                        h2 = math.sin(0.5 * (a[j] - a[i]))
+                        h = h1 * h1 + math.cos(b[i]) * math.cos(b[j]) * h2 * h2
+                        d = 2.0 * EARTH_RADIUS_KM * math.asin(math.sqrt(min(h, 1.0)))
+                    else:
+                        d = math.hypot(a[j] - a[i], b[j] - b[i])
+                    if d > max_lag:
+                        continue
+                    k = int(d / width)
+                    if k >= nbins:
+                        k = nbins - 1
+                    theta = 0.0
+                    if not omni:
+                        if greatcircle:
+                            dlon = a[j] - a[i]
+                            if dlon > pi:
+                                dlon -= 2.0 * pi
+                            elif dlon < -pi:
+                                dlon += 2.0 * pi
+                            ex = dlon * math.cos(0.5 * (b[i] + b[j]))
+                            ny = b[j] - b[i]
+                        else:
+                            ex = a[j] - a[i]
+                            ny = b[j] - b[i]
+                        theta = math.atan2(ex, ny)  # clockwise from north (+y)
+                        if theta < 0.0:
+                            theta += pi
+                        if theta >= pi:
+                            theta -= pi
+                    for r in range(ndir):
+                        if not omni:
+                            diff = abs(theta - dir_az[r])
+                            diff = min(diff, pi - diff)
+                            if diff > dir_tol[r]:
+                                continue
+                        count[r, k] += 1
+                        dsum[r, k] += d
+                        for p in range(nsq):
+                            t = z[i, p] - z[j, p]
+                            sq[r, k, p] += t * t
+                        for p in range(nroot):
+                            root[r, k, p] += math.sqrt(abs(z[i, p] - z[j, p]))
+                        for p in range(ncorr):
+                            zi = z[i, p]
+                            zj = z[j, p]
+                            s1[r, k, p] += zi + zj
+                            s2[r, k, p] += zi * zi + zj * zj
+                            s12[r, k, p] += zi * zj
     return count, dsum, sq, root, s1, s2, s12
 
 
@@ -199,12 +206,16 @@ def pair_sums(x, y, z, *, group, edges, greatcircle, directions, tolerance, want
     zc = np.ascontiguousarray(z, dtype=float)
     g = np.ascontiguousarray(group, dtype=np.int64)
     args = (a, b, zc, g, width, nbins, float(edges[-1]) * (1.0 + 1e-12), greatcircle, omni, az, tol, int(want))
-    step = min(_threads(), max(1, a.size // 64))
+    n, ncol = zc.shape
+    threads = _threads()
+    # tiles of about 64 kB of value rows, and enough blocks to share among the threads
+    block = max(8, min(max(8, 8192 // ncol), -(-n // (8 * threads))))
+    step = min(threads, -(-n // block))
     if step == 1:
-        parts = [_pair_kernel(*args, 0, 1)]
+        parts = [_pair_kernel(*args, 0, 1, block)]
     else:
-        # interleaved rows balance the work (row i has n - i - 1 partners)
+        # interleaved blocks balance the work (row i has n - i - 1 partners)
         with ThreadPoolExecutor(max_workers=step) as pool:
-            parts = list(pool.map(lambda first: _pair_kernel(*args, first, step), range(step)))
+            parts = list(pool.map(lambda first: _pair_kernel(*args, first, step, block), range(step)))
     names = ("count", "dsum", "sq", "root", "s1", "s2", "s12")
     return {name: sum(p[k] for p in parts) for k, name in enumerate(names)}

@@ -392,3 +392,22 @@ def test_nan_values_refused():
     ds["value"][3] = np.nan
     with pytest.raises(InputError, match=r"value: NaN or infinite values at rows 5"):
         semivariogram(ds)
+
+
+def test_same_numbers_with_one_or_two_threads():
+    """The pair sums are split among threads by row blocks; one thread and two give the same numbers
+    up to floating-point summation order (brute-force check above covers correctness)."""
+    import numba
+
+    ds = _random(n=300, seed=17)
+    before = numba.get_num_threads()
+    try:
+        numba.set_num_threads(1)
+        one = semivariogram(ds, bins=6, permutations=9, seed=5)
+        numba.set_num_threads(min(2, numba.config.NUMBA_NUM_THREADS))
+        two = semivariogram(ds, bins=6, permutations=9, seed=5)
+    finally:
+        numba.set_num_threads(before)
+    np.testing.assert_array_equal(one["pairs"].values, two["pairs"].values)
+    np.testing.assert_allclose(one["semivariance"].values, two["semivariance"].values, rtol=1e-12)
+    np.testing.assert_allclose(one["envelope_high"].values, two["envelope_high"].values, rtol=1e-12)
