@@ -1,0 +1,325 @@
+"""Bayesian kriging maps, exceedance probabilities and area averages from a posterior.
+
+The steps, each a function on explicit inputs (nothing is remembered between calls):
+
+1. :func:`posterior_parameters`: posterior draws of the model (standardised scale, see
+   :mod:`bayesgeo.model`) to data units, thinned to ``draws`` evenly spaced draws;
+2. :func:`basis_from_fit`: the data covariance of every draw factorised once;
+3. :func:`predict`: per draw the Gaussian conditional mean and variance at every target (simple
+   kriging given the draw's trend coefficients), combined over draws into predictive mean, sd,
+   5/50/95% quantiles and P(Z > T) per threshold; targets are split into chunks of cells run as
+   dask tasks, each chunk reducing over all draws;
+4. :func:`area_average`: the predictive distribution of the average over a polygon.
+
+The formulas are in :mod:`bayesgeo._kriging` and ``docs/prediction.md``. Defaults:
+``include_nugget=True`` (maps of what a new sample at a point would measure: field plus nugget),
+scheduler ``"threads"`` (dask's local thread pool, one BLAS thread per task).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+import xarray as xr
+
+from bayesgeo._kriging import (
+    CAUTION,
+    KrigingBasis,
+    block_moments,
+    conditional_simulations,
+    draw_moments,
+    krige,
+    make_basis,
+    mixture_quantiles,
+    mixture_summary,
+    summarise_samples,
+)
+from bayesgeo.trend import design_at
+from bayesgeo.validate import InputError, check_positive_int
+
+__all__ = [
+    "CAUTION",
+    "PROBS",
+    "KrigingBasis",
+    "area_average",
+    "basis_from_fit",
+    "conditional_simulations",
+    "draw_moments",
+    "krige",
+    "make_basis",
+    "mixture_quantiles",
+    "mixture_summary",
+    "posterior_parameters",
+    "predict",
+    "target_design",
+]
+
+#: Quantile levels reported in maps (variables q05, q50, q95).
+PROBS = (0.05, 0.5, 0.95)
+SCHEDULERS = ("threads", "synchronous")
+
+
+def _pick(total: int, draws: int | None) -> np.ndarray:
+    if draws is None or draws >= total:
+        return np.arange(total)
+    draws = check_positive_int(draws, "--draws")
+    return np.unique(np.round(np.linspace(0, total - 1, draws)).astype(int))
+
+
+def posterior_parameters(posterior: xr.Dataset, spec, *, draws: int | None = None) -> xr.Dataset:
+    """Posterior draws in data units, thinned to ``draws`` evenly spaced draws.
+
+    Parameters
+    ----------
+    posterior : xarray.Dataset
+        The ``posterior`` group: ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (when the model
+        has a nugget) on ``(chain, draw)`` and ``beta_z`` on ``(chain, draw, term)``.
+    spec : bayesgeo.model.FitSpec
+        Standardisation constants of the fit.
+    draws : int, optional
+        Keep this many draws, evenly spaced over the chains concatenated (all by default).
+
+    Returns
+    -------
+    xarray.Dataset
+        Along ``sample`` (with ``chain`` and ``draw`` coordinates of the kept draws):
+        ``practical_range`` and ``scale`` (distance units), ``partial_sill`` and ``nugget``
+        (squared model units) and ``beta`` (sample, term) for the unstandardised design
+        (intercept shifted by ``value_mean``).
+    """
+    missing = [v for v in ("practical_range_z", "sd_z", "beta_z") if v not in posterior]
+    if missing:
+        raise InputError(f"posterior: variables {', '.join(missing)} missing; not a bayesgeo single-site fit")
+    st = posterior.stack(sample=("chain", "draw"))
+    keep = _pick(st.sizes["sample"], draws)
+    st = st.isel(sample=keep)
+    s = float(spec.value_sd)
+    prange = st["practical_range_z"].values * float(spec.distance_scale)
+    psill = (st["sd_z"].values * s) ** 2
+    nug = (st["nugget_sd_z"].values * s) ** 2 if "nugget_sd_z" in st else np.zeros_like(psill)
+    beta = st["beta_z"].transpose("sample", ...).values * s
+    terms = list(spec.terms)
+    if "1" not in terms:
+        raise InputError("posterior: the trend has no intercept term '1'")
+    beta[:, terms.index("1")] += float(spec.value_mean)
+    units = spec.model_units
+    coords = {"chain": ("sample", st["chain"].values), "draw": ("sample", st["draw"].values), "term": terms}
+    dims = ("sample",)
+    return xr.Dataset(
+        {"practical_range": (dims, prange, {"units": spec.distance_units}),
+         "scale": (dims, prange / float(spec.range_factor), {"units": spec.distance_units}),
+         "partial_sill": (dims, psill, {"units": f"({units})^2"}),
+         "nugget": (dims, nug, {"units": f"({units})^2"}),
+         "beta": (("sample", "term"), beta, {"units": units})},
+        coords=coords, attrs={"draws_total": int(posterior.sizes["chain"] * posterior.sizes["draw"])},
+    )
+
+
+def basis_from_fit(data: xr.Dataset, spec, params: xr.Dataset) -> KrigingBasis:
+    """Factorise the data covariance for every draw of ``params`` (:func:`posterior_parameters`)."""
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.model import transform_values
+
+    xy = np.column_stack([data["x"].values, data["y"].values]).astype(float)
+    covs = [np.asarray(data[c].values, float) for c in spec.covariates]
+    design = design_at(xy, spec.design_attrs, np.column_stack(covs) if covs else None)
+    cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
+    return make_basis(xy, transform_values(data, spec.transform), design, covariance=cov,
+                      scale=params["scale"].values, partial_sill=params["partial_sill"].values,
+                      nugget=params["nugget"].values, beta=params["beta"].values, metric=spec.metric,
+                      transform=spec.transform)
+
+
+def target_design(targets: xr.Dataset, design_attrs: dict | None, p: int) -> np.ndarray:
+    """Trend design at every target cell (flattened), from the design attributes of the fit.
+
+    Without ``design_attrs`` the trend must be a constant (p = 1, a column of ones) or absent.
+    """
+    xy = _flat_xy(targets)
+    if design_attrs is None:
+        if p > 1:
+            raise ValueError("design_attrs are needed for a trend with more than one term")
+        return np.ones((len(xy), p))
+    names = design_attrs.get("covariates") or []
+    names = [names] if isinstance(names, str) else list(names)
+    covs = None
+    if names:
+        if targets.attrs.get("kind") == "grid":
+            raise InputError(f"the trend uses covariates ({', '.join(names)}) that are not known on a grid; "
+                             "give target --points with those columns")
+        covs = np.column_stack([np.asarray(targets[c].values, float) for c in names])
+    return design_at(xy, design_attrs, covs)
+
+
+def _flat_xy(targets: xr.Dataset) -> np.ndarray:
+    if targets.attrs.get("kind") == "grid":
+        xx, yy = np.meshgrid(targets["x"].values, targets["y"].values)
+        return np.column_stack([xx.ravel(), yy.ravel()])
+    return np.column_stack([targets["x"].values, targets["y"].values]).astype(float)
+
+
+def _chunk(basis, xy, design, thresholds, include_nugget, probs):
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        mean, var = draw_moments(basis, xy, design, include_nugget=include_nugget)
+        return mixture_summary(mean, var, thresholds=thresholds, transform=basis.transform, probs=probs)
+
+
+def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, scheduler, progress):
+    import uuid
+
+    import dask
+
+    token = uuid.uuid4().hex[:8]
+    b = dask.delayed(basis, name=f"bayesgeo-basis-{token}")
+    starts = range(0, len(xy), chunk_cells)
+    tasks = [dask.delayed(_chunk, pure=False)(b, xy[i:i + chunk_cells], design[i:i + chunk_cells], thresholds,
+                                              include_nugget, PROBS, dask_key_name=f"bayesgeo-chunk-{token}-{i}")
+             for i in starts]
+    if scheduler in SCHEDULERS:
+        from dask.callbacks import Callback
+
+        class _Tick(Callback):
+            def _posttask(self, key, result, dsk, state, worker_id):
+                if progress is not None and str(key).startswith("bayesgeo-chunk"):
+                    progress.update(1)
+
+        with _Tick():
+            return list(dask.compute(*tasks, scheduler=scheduler))
+    from distributed import Client, as_completed
+
+    try:
+        client = Client(scheduler, timeout="20s")
+    except OSError as err:
+        raise InputError(f"--scheduler: cannot connect to {scheduler!r} ({err})") from None
+    with client:
+        futures = client.compute(tasks)
+        for _ in as_completed(futures):
+            if progress is not None:
+                progress.update(1)
+        return client.gather(futures)
+
+
+def predict(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Sequence[float] = (),
+            include_nugget: bool = True, design_attrs: dict | None = None, chunk_cells: int = 4096,
+            scheduler: str = "threads", units: str = "", progress=None) -> xr.Dataset:
+    """Predictive summaries at every target (grid cells or points).
+
+    Parameters
+    ----------
+    basis : KrigingBasis
+        From :func:`basis_from_fit` or :func:`bayesgeo._kriging.make_basis`.
+    targets : xarray.Dataset
+        From :func:`bayesgeo.targets.grid_targets` or :func:`bayesgeo.targets.read_target_points`.
+    thresholds : sequence of float
+        Levels T (data units) for ``p_exceed`` = P(Z(s) > T).
+    include_nugget : bool
+        Summaries of a new measurement at the point (field + nugget; default) or of the field.
+    design_attrs : dict, optional
+        Design attributes of the fit (``spec.design_attrs``); omit for a constant mean.
+    chunk_cells : int
+        Cells per dask task; memory per task is about 8 x (3 x draws + n) x chunk_cells bytes.
+    scheduler : str
+        ``"threads"`` (default), ``"synchronous"`` or the address of a dask.distributed scheduler.
+    units : str
+        Units of the predicted values (data units).
+    progress : object with ``update(int)``, optional
+        Told when each chunk finishes (a tqdm bar).
+
+    Returns
+    -------
+    xarray.Dataset
+        ``mean``, ``sd``, ``q05``, ``q50``, ``q95`` and ``p_exceed`` (threshold first) on the
+        dims of ``targets`` ((y, x) or (target,)); NaN outside the mask. Data units.
+    """
+    chunk_cells = check_positive_int(chunk_cells, "chunk_cells")
+    thr = np.asarray(thresholds, dtype=float).reshape(-1)
+    if not np.all(np.isfinite(thr)):
+        raise InputError(f"--threshold: expected finite numbers, got {thr.tolist()}")
+    kind = targets.attrs.get("kind")
+    if kind not in ("grid", "points"):
+        raise ValueError("targets must come from bayesgeo.targets (attrs['kind'] is 'grid' or 'points')")
+    xy = _flat_xy(targets)
+    design = target_design(targets, design_attrs, basis.design.shape[1])
+    inside = np.asarray(targets["inside"].values, bool).ravel()
+    idx = np.flatnonzero(inside)
+    results = _run_chunks(basis, xy[idx], design[idx], thresholds=thr, include_nugget=include_nugget,
+                          chunk_cells=chunk_cells, scheduler=scheduler, progress=progress) if idx.size else []
+    dims = ("y", "x") if kind == "grid" else ("target",)
+    shape = targets["inside"].shape
+
+    def full(values):
+        out = np.full(inside.shape, np.nan)
+        out[idx] = values
+        return out.reshape(shape)
+
+    def joined(key, row=None):
+        parts = [r[key] if row is None else r[key][row] for r in results]
+        return full(np.concatenate(parts) if parts else np.empty(0))
+
+    what = "new measurement at the point (field + nugget)" if include_nugget else "field (without nugget)"
+    base = {"units": units}
+    ds = xr.Dataset(coords={k: targets.coords[k] for k in targets.coords})
+    ds["mean"] = (dims, joined("mean"), {**base, "long_name": f"predictive mean of the {what}"})
+    ds["sd"] = (dims, joined("sd"), {**base, "long_name": f"predictive standard deviation of the {what}"})
+    for i, p in enumerate(PROBS):
+        ds[f"q{round(100 * p):02d}"] = (dims, joined("quantiles", i),
+                                         {**base, "long_name": f"{100 * p:g}% predictive quantile of the {what}"})
+    pex = np.stack([joined("p_exceed", j) for j in range(thr.size)]) if thr.size else np.empty((0, *shape))
+    ds["p_exceed"] = (("threshold", *dims), pex,
+                      {"units": "1", "long_name": f"posterior predictive probability that the {what} exceeds the threshold"})
+    ds = ds.assign_coords(threshold=("threshold", thr, {"units": units, "long_name": "threshold"}))
+    ds.attrs.update({
+        "title": "bayesgeo Bayesian kriging predictions",
+        "Conventions": "CF-1.8",
+        "draws": basis.n_draws,
+        "covariance": basis.covariance.name,
+        "transform": basis.transform or "none",
+        "nugget_in_prediction": int(bool(include_nugget)),
+        "target_kind": kind,
+        "cells_predicted": int(idx.size),
+        "method": ("simple kriging per posterior draw given its trend coefficients, combined over draws as a "
+                   "Gaussian mixture" + ("; log-normal per draw, back-transformed to data units"
+                                         if basis.transform == "log" else "")),
+        "caution": CAUTION,
+    })
+    return ds
+
+
+def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Sequence[float] = (),
+                 n_sim: int = 200, seed: int = 0) -> dict:
+    """Predictive distribution of the field averaged over an area (discretised into points).
+
+    Without a transform, per draw the block mean and variance (:func:`bayesgeo._kriging.block_moments`)
+    give a Gaussian; their mixture over draws gives mean, sd, q05, q95 and P(average > T).
+    Under ``transform="log"`` the average of a log-normal field is not log-normal, so each draw
+    contributes ``n_sim`` joint conditional simulations of the field at the points, averaged in
+    data units, and the pooled averages are summarised (Monte Carlo error about sd / sqrt(D n_sim)).
+    The nugget is excluded in both cases (it averages out over an area).
+
+    Returns
+    -------
+    dict
+        ``mean``, ``sd``, ``q05``, ``q95``, ``p_exceed`` (list per threshold), ``threshold``,
+        ``points`` (discretisation size), ``method``.
+    """
+    thr = [float(t) for t in thresholds]
+    if basis.transform == "log":
+        sims = conditional_simulations(basis, xy_area, design_area, n_sim=check_positive_int(n_sim, "n_sim"),
+                                       seed=seed, include_nugget=False)
+        s = summarise_samples(np.exp(sims).mean(axis=2), thr)
+        method = (f"joint conditional simulation: {n_sim} per draw x {basis.n_draws} draws, exp() per point, "
+                  "averaged over the area (the area average of a log-normal field is not log-normal)")
+        q = s["quantiles"]
+        mean, sd, pex = s["mean"], s["sd"], s["p_exceed"]
+    else:
+        m, v = block_moments(basis, xy_area, design_area)
+        summ = mixture_summary(m[:, None], v[:, None], thresholds=thr, probs=(0.05, 0.95))
+        q = summ["quantiles"][:, 0]
+        mean, sd, pex = float(summ["mean"][0]), float(summ["sd"][0]), summ["p_exceed"][:, 0]
+        method = "block kriging per draw (mean of point means, 1'C1/M^2 variance), Gaussian mixture over draws"
+    return {"mean": float(mean), "sd": float(sd), "q05": float(q[0]), "q95": float(q[1]),
+            "p_exceed": [float(p) for p in pex], "threshold": thr, "points": int(len(xy_area)),
+            "draws": basis.n_draws, "method": method}
