@@ -9,6 +9,9 @@ from __future__ import annotations
 from bayesgeo.covariance import FAMILIES, Covariance, get_covariance
 from bayesgeo.data import read_points
 from bayesgeo.demo import demo_data, write_demo_data
+from bayesgeo.autocorr import autocorrelation, integrated_autocorrelation_time
+from bayesgeo.diagnostic_figures import write_diagnostic_figures
+from bayesgeo.diagnostics import Convergence, Thresholds, check_convergence
 from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, semivariogram
 from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
 from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
@@ -19,8 +22,12 @@ __version__ = "0.1.0"
 
 __all__ = [
     "FAMILIES",
+    "Convergence",
     "Covariance",
     "InputError",
+    "Thresholds",
+    "autocorrelation",
+    "check_convergence",
     "correlogram",
     "correlogram_figure",
     "demo_data",
@@ -32,10 +39,12 @@ __all__ = [
     "fit_trend",
     "fit_wls",
     "get_covariance",
+    "integrated_autocorrelation_time",
     "lag_bins",
     "quick_fits",
     "read_points",
     "semivariogram",
     "semivariogram_figure",
     "write_demo_data",
+    "write_diagnostic_figures",
 ]

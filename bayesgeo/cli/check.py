@@ -1,0 +1,127 @@
+"""``bayesgeo check DIR``: convergence diagnostics of a fit folder, with a verdict and figures.
+
+Reads ``DIR/posterior.nc``; writes ``DIR/diagnostics/`` (replaced as a whole, atomically) with
+``diagnostics.json`` and the figures. Exit status 0 on pass or warn, 3 on fail, 2 on bad input.
+"""
+
+from __future__ import annotations
+
+HELP = "check convergence of a fitted posterior (R-hat, ESS, MCSE, divergences, E-BFMI, tree depth)"
+
+DIAGNOSTICS_DIR = "diagnostics"
+POSTERIOR_FILE = "posterior.nc"
+
+
+def add_arguments(p) -> None:
+    p.add_argument("dir", metavar="DIR", help=f"fit folder holding {POSTERIOR_FILE}")
+    p.add_argument("--var", metavar="NAME", action="append", default=[],
+                   help="posterior variable to check (repeatable; default all)")
+    p.add_argument("--max-lag", type=int, default=None, metavar="K",
+                   help="largest lag of the autocorrelation figure (default: 3 x the largest IAT, at least 20)")
+    p.add_argument("--no-figures", action="store_true", help="skip the figures (diagnostics.json only)")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+
+
+def read_posterior(folder):
+    """Open ``folder/posterior.nc`` as a DataTree (loaded into memory); InputError if impossible."""
+    from pathlib import Path
+
+    import xarray as xr
+
+    from bayesgeo.validate import InputError
+
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError(f"{folder}: no such folder; expected a fit folder holding {POSTERIOR_FILE}")
+    path = folder / POSTERIOR_FILE
+    if not path.is_file():
+        raise InputError(f"{path}: not found; run a fit into {folder} first")
+    try:
+        with xr.open_datatree(path, engine="netcdf4") as tree:
+            tree = tree.load()
+    except Exception as err:  # netCDF4 raises OSError, ValueError, RuntimeError ... for bad files
+        msg = " ".join(str(err).split()) or type(err).__name__
+        raise InputError(f"{path}: cannot be read as a NetCDF posterior ({msg})") from None
+    if "posterior" not in tree.children:
+        raise InputError(f"{path}: no 'posterior' group; expected the output of a bayesgeo fit")
+    return tree
+
+
+def run(args) -> int:
+    import sys
+    from pathlib import Path
+
+    from bayesgeo.cli import EXIT_NOT_CONVERGED
+    from bayesgeo.cli._common import emit_json, print_table, progress
+    from bayesgeo.diagnostics import CAUTION, check_convergence
+    from bayesgeo.io import atomic_dir, write_json
+    from bayesgeo.validate import InputError
+
+    folder = Path(args.dir)
+    tree = read_posterior(folder)
+    if args.max_lag is not None and args.max_lag < 1:
+        raise InputError(f"--max-lag: expected an integer >= 1, got {args.max_lag}")
+    bar = progress(total=3 if not args.no_figures else 2, desc="check", enabled=not args.json)
+    conv = check_convergence(tree, var_names=args.var or None)
+    bar.update()
+    result = conv.to_json()
+    outdir = folder / DIAGNOSTICS_DIR
+    figures, figure_error = [], None
+    with atomic_dir(outdir, overwrite=True) as tmp:
+        if not args.no_figures:
+            from bayesgeo.diagnostic_figures import write_diagnostic_figures
+
+            try:
+                written = write_diagnostic_figures(tree, tmp, var_names=args.var or None, max_lag=args.max_lag)
+                figures = [str(outdir / p.name) for p in written]
+            except InputError:
+                raise
+            except Exception as err:  # a figure must not hide the verdict
+                figure_error = " ".join(f"{type(err).__name__}: {err}".split())
+            bar.update()
+        result.update(posterior=str(folder / POSTERIOR_FILE), diagnostics=str(outdir / "diagnostics.json"),
+                      figures=figures, figure_error=figure_error)
+        write_json(tmp / "diagnostics.json", result)
+        bar.update()
+    bar.close()
+    if figure_error:
+        print(f"bayesgeo check: warning: figures not drawn ({figure_error})", file=sys.stderr)
+
+    if args.json:
+        emit_json(result)
+    else:
+        _print_human(conv, result, print_table, CAUTION)
+    return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
+
+
+def _print_human(conv, result, print_table, caution) -> None:
+    ps = conv.parameters
+    rows = [{"parameter": str(p), **{c: float(ps[c].values[i]) for c in
+                                      ("rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat")}}
+            for i, p in enumerate(ps["parameter"].values)]
+    print(f"{conv.n_chains} chains x {conv.n_draws} draws (sampler: {conv.sampler})")
+    print_table(rows, ["parameter", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat"])
+    print()
+    print(f"divergent transitions: {conv.divergences} ({100 * conv.divergence_share:.2f}%)"
+          + (f", per chain {conv.divergences_per_chain}" if conv.divergences_per_chain else ""))
+    if conv.bfmi:
+        print("E-BFMI per chain: " + ", ".join(f"{v:.3f}" for v in conv.bfmi))
+    share = conv.tree_depth.get("saturation_share")
+    if share is not None:
+        print(f"transitions at maximum tree depth: {100 * share:.2f}%"
+              + (f" (max depth {conv.tree_depth['max_depth']})" if conv.tree_depth.get("max_depth") else ""))
+    if conv.step_size:
+        print("step size per chain: " + ", ".join(f"{v:.3g}" for v in conv.step_size))
+    for note in conv.notes:
+        print(f"note: {note}")
+    if conv.problems:
+        print()
+        print("problems:")
+        for p in conv.problems:
+            print(f"  [{p['level'].upper()}] {p['message']}")
+            print(f"      threshold source: {p['source']}")
+            print(f"      advice: {p['advice']}")
+    print()
+    print(f"verdict: {conv.verdict.upper()}")
+    print(f"caution: {caution}")
+    print(f"wrote {result['diagnostics']}" + (f" and {len(result['figures'])} figures" if result["figures"] else ""))
