@@ -6,10 +6,15 @@ the variable named by ``variable=``. Pairs are formed only between points of the
 ``ds`` has a ``site`` coordinate (a pooled within-site statistic); permutations then shuffle the
 values within each site.
 
-Lag bins are uniform from 0 to ``max_lag`` (default: half the largest inter-point distance, common
-practice, e.g. Journel and Huijbregts 1978). A pair at distance d falls in bin floor(d / width);
-pairs beyond ``max_lag`` are left out. Distances are Euclidean in coordinate units, or great-circle
-(haversine) km for lon/lat data.
+Lag bins are uniform from 0 to ``max_lag`` (default: half the largest inter-point distance, a rule
+of thumb usually credited to Journel and Huijbregts 1978, *Mining Geostatistics*). A pair at
+distance d falls in bin floor(d / width); pairs beyond ``max_lag`` are left out. Distances are
+Euclidean in coordinate units, or great-circle (haversine) km for lon/lat data.
+
+Directions are azimuths in degrees clockwise from north (+y), folded to [0, 180) since a pair has
+no head or tail; a pair belongs to a direction when its azimuth is within ``tolerance`` of it. For
+lon/lat data the azimuth of a pair is taken on a local plane (east = longitude difference times
+the cosine of the mean latitude), which suits surveys of a few hundred km or less.
 
 Estimators, for the N(h) pairs in a bin:
 
@@ -21,17 +26,25 @@ Estimators, for the N(h) pairs in a bin:
   (correlation exactly 1).
 
 Permutation envelopes: the values are shuffled over the fixed locations ``permutations`` times
-(a ``numpy.random.Generator`` seeded with ``seed``) and the statistic recomputed. ``envelope_low``
+and the statistic recomputed. Permutation k (k = 1..N) is, for each site in sorted order of the
+labels, ``z_site[rng.permutation(n_site)]`` with ``rng = numpy.random.default_rng(seed)``, so the
+same seed gives the same envelope. The values are centred on their mean first (neither statistic
+changes with a shift). ``envelope_low``
 and ``envelope_high`` are the pointwise 2.5% and 97.5% quantiles (linear interpolation, numpy
 default) of the permutation statistics; ``p_value`` is the two-sided Monte Carlo p-value
 
     p = (1 + #{k : |T_k - m| >= |T_obs - m|}) / (1 + N),
 
-with T_k the N permutation statistics of the bin and m their mean (Davison and Hinkley 1997,
-*Bootstrap Methods*, sec. 4.3, for counting the observed value).
+with T_k the N permutation statistics of the bin and m their mean; differences equal up to
+rounding (1e-12 relative) count as ties, hence as extreme. Counting the observed value keeps p >=
+1 / (1 + N) (Davison and Hinkley 1997, *Bootstrap Methods and their Application*, ch. 4).
 
-Bins with fewer than 30 pairs (common practice, Journel and Huijbregts 1978) are listed in
+Bins with fewer than 30 pairs (common practice, same source) are listed in
 ``attrs["few_pairs_bins"]`` and flagged by a :class:`FewPairsWarning`.
+
+Sums are accumulated in row blocks shared among ``numba.get_num_threads()`` threads and added in a
+fixed order: the same data, settings, seed and thread count give identical numbers (another thread
+count changes them only in the last bits).
 
 These are exploratory summaries under an assumption of stationarity. Results that bear on
 contamination or exposure support, and never replace, the judgement of a licensed professional and
