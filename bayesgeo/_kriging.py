@@ -70,6 +70,7 @@ CAUTION = (
 JITTER = 1e-6
 _FAMILY_CODE = {"exponential": 0, "matern32": 1, "matern52": 2, "gaussian": 3, "spherical": 4}
 _TINY = 1e-300
+_PAD = 16
 _KERNEL = None
 
 
@@ -236,18 +237,25 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
     m = xy_new.shape[0]
     design_new = np.asarray(design_new, dtype=float).reshape(m, -1)
+    # Pad to a multiple of _PAD targets (repeating the last one): BLAS kernels treat a ragged
+    # tail of columns differently in the last bit, and padding makes each target's numbers
+    # independent of how the targets were split into chunks.
+    pad = (-m) % _PAD if m else 0
+    if pad:
+        xy_new = np.vstack([xy_new, np.repeat(xy_new[-1:], pad, axis=0)])
+        design_new = np.vstack([design_new, np.repeat(design_new[-1:], pad, axis=0)])
     dist = _dist_f(basis, xy_new)
     buf = np.empty(dist.shape, order="F")
     mean = design_new @ basis.beta.T  # (m, D)
     mean = np.ascontiguousarray(mean.T)
-    var = np.empty((basis.n_draws, m))
+    var = np.empty((basis.n_draws, m + pad))
     for k in range(basis.n_draws):
         _cross_cov(basis, dist, k, buf)
         mean[k] += basis.alpha[k] @ buf
         v = blas.dtrsm(1.0, basis.chol[k], buf, side=0, lower=1, trans_a=0, diag=0, overwrite_b=1)
         total = basis.partial_sill[k] + (basis.nugget[k] if include_nugget else 0.0)
         var[k] = np.maximum(total - np.einsum("ij,ij->j", v, v), 0.0)
-    return mean, var
+    return mean[:, :m], var[:, :m]
 
 
 def krige(xy_obs, y_obs, design_obs, xy_new, design_new, covariance: Covariance | str, scale: float,
