@@ -1,0 +1,295 @@
+"""The single-site Bayesian Gaussian-process model in PyMC.
+
+    z(s) = f(s)^T beta + w(s) + e(s),
+    w ~ GP(0, sigma^2 rho(d / phi)),   e ~ N(0, tau^2) independent,
+
+with ``z`` the measured value (or its logarithm under ``transform="log"``), ``f(s)`` the trend
+design row of :func:`bayesgeo.trend.design_matrix` (intercept, polynomial in the centred and
+scaled coordinates, covariates), ``rho`` a family of :mod:`bayesgeo.covariance` with practical
+range ``r = range_factor * phi``, partial sill ``sigma^2`` and nugget ``tau^2``. The field ``w``
+is integrated out: the likelihood is the marginal Gaussian
+``z ~ N(F beta, sigma^2 R + (tau^2 + jitter) I)`` (:func:`bayesgeo.likelihood.marginal_loglik`).
+
+Internally the model works on a standardised scale: values ``y = (z - m) / s`` with ``m`` and
+``s`` the sample mean and sd of ``z``, distances divided by ``D``, the largest distance between
+two data points. Its free variables are ``practical_range_z = r / D``, ``sd_z = sigma / s``,
+``nugget_sd_z = tau / s`` and ``beta_z``; PyMC samples the three positive ones on the log scale.
+:mod:`bayesgeo.posterior` converts draws back to data units. The full statement, priors and the
+reasons for this parametrisation are in ``docs/model.md``.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import xarray as xr
+
+from bayesgeo.covariance import get_covariance
+from bayesgeo.data import sites_of
+from bayesgeo.geometry import distance_matrix, metric_of
+from bayesgeo.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
+from bayesgeo.trend import design_matrix
+from bayesgeo.validate import InputError, format_rows
+
+__all__ = ["TRANSFORMS", "FitSpec", "build_model", "model_inputs", "transform_values"]
+
+#: Accepted value transforms (``None`` = model the values as they are).
+TRANSFORMS = (None, "log")
+
+
+@dataclass(frozen=True)
+class FitSpec:
+    """Every setting of a single-site fit and the constants of its standardisation.
+
+    Attributes
+    ----------
+    covariance : str
+        Covariance family name; ``nu`` its smoothness (``None`` for fixed-smoothness families
+        other than the exponential, 0.5 for exponential, ...), as in the registry.
+    nugget : bool
+        Whether the model has a nugget.
+    trend : int
+        Polynomial order of the trend in the coordinates (0-3).
+    covariates : tuple of str
+        Covariate names in the trend.
+    transform : str or None
+        ``"log"`` when the model is for log(values).
+    terms : tuple of str
+        Labels of the design columns.
+    design_attrs : dict
+        Attributes of the design matrix (centre and scale of the coordinates and covariates),
+        enough for :func:`bayesgeo.trend.design_at` at new locations.
+    value_mean, value_sd : float
+        Mean and sd (ddof = 1) of the (transformed) values: y = (z - value_mean) / value_sd.
+    distance_scale : float
+        Largest distance between two data points (distance units): distances are divided by it.
+    range_factor : float
+        Practical range / scale parameter of the covariance family.
+    metric, distance_units, value_units, value_column : str
+        Distance metric (``euclidean`` or ``greatcircle``) and labels from the data.
+    n : int
+        Number of observations.
+    priors : Priors
+        Resolved priors in data units (units of the transformed values).
+    """
+
+    covariance: str
+    nu: float | None
+    nugget: bool
+    trend: int
+    covariates: tuple[str, ...]
+    transform: str | None
+    terms: tuple[str, ...]
+    design_attrs: dict = field(hash=False)
+    value_mean: float
+    value_sd: float
+    distance_scale: float
+    range_factor: float
+    metric: str
+    distance_units: str
+    value_units: str
+    value_column: str
+    n: int
+    priors: Priors
+
+    @property
+    def model_units(self) -> str:
+        """Units of the modelled values: the value units, or ``log(units)`` under the log transform."""
+        u = self.value_units or "value units"
+        return f"log({u})" if self.transform == "log" else u
+
+    @property
+    def rates(self) -> dict[str, float]:
+        """Rates of the PC priors on the standardised scale (practical_range_z, sd_z, nugget_sd_z)."""
+        p = self.priors
+        return {
+            "range": pc_range_rate(p.range[0] / self.distance_scale, p.range[1]),
+            "sd": pc_sd_rate(p.sd[0] / self.value_sd, p.sd[1]),
+            "nugget": pc_sd_rate(p.nugget[0] / self.value_sd, p.nugget[1]),
+        }
+
+    def to_dict(self) -> dict:
+        """JSON-able dictionary; :meth:`from_dict` inverts it."""
+        d = asdict(self)
+        d["covariates"] = list(self.covariates)
+        d["terms"] = list(self.terms)
+        d["priors"] = self.priors.to_dict()
+        d["design_attrs"] = _jsonable(self.design_attrs)
+        return d
+
+    @classmethod
+    def from_dict(cls, d: Mapping) -> FitSpec:
+        """Rebuild a spec from :meth:`to_dict` output (for example read back from a fit file)."""
+        d = dict(d)
+        d["covariates"] = tuple(d.get("covariates") or ())
+        d["terms"] = tuple(d["terms"])
+        d["priors"] = Priors.from_dict(d["priors"])
+        d["nu"] = None if d.get("nu") is None else float(d["nu"])
+        return cls(**d)
+
+    def to_json(self) -> str:
+        """:meth:`to_dict` as a JSON string."""
+        return json.dumps(self.to_dict())
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.generic):
+        return obj.item()
+    return obj
+
+
+def _source(ds: xr.Dataset) -> str:
+    return str(ds.attrs.get("source") or "data")
+
+
+def transform_values(ds: xr.Dataset, transform: str | None) -> np.ndarray:
+    """The values to model: ``ds["value"]`` or its natural logarithm.
+
+    Raises
+    ------
+    InputError
+        Unknown transform, or zero/negative values under ``"log"`` (naming rows and column).
+    """
+    if transform not in TRANSFORMS:
+        raise InputError(f"--transform: {transform!r} is not one of: none, log")
+    z = np.asarray(ds["value"].values, dtype=float)
+    if transform == "log":
+        bad = z <= 0
+        if np.any(bad):
+            col = ds.attrs.get("value_column", "value")
+            raise InputError(
+                f"{_source(ds)}: --transform log needs positive values; column {col!r} has zero or negative "
+                f"values at rows {format_rows(ds['row'].values[bad])}"
+            )
+        z = np.log(z)
+    return z
+
+
+def _check_single_site(ds: xr.Dataset) -> None:
+    labels = sites_of(ds)
+    if len(labels) > 1:
+        shown = ", ".join(labels[:5]) + (", ..." if len(labels) > 5 else "")
+        raise InputError(
+            f"{_source(ds)}: --site: the data hold {len(labels)} sites ({shown}); this model fits one site "
+            "at a time (select one site's rows); a several-site model is not available yet"
+        )
+
+
+def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
+                 nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
+                 transform: str | None = None, priors: Priors | Mapping | None = None):
+    """Check the data and settings and compute everything the model needs.
+
+    Returns
+    -------
+    spec : FitSpec
+    y : ndarray (n,)
+        Standardised values.
+    design : xarray.DataArray (obs, term)
+        Trend design matrix (:func:`bayesgeo.trend.design_matrix`).
+    dist : ndarray (n, n)
+        Distances divided by ``spec.distance_scale``.
+    """
+    for key in ("x", "y", "value"):
+        if key not in ds.variables:
+            raise InputError(f"{_source(ds)}: not point data (variable {key!r} missing)")
+    _check_single_site(ds)
+    try:
+        cov = get_covariance(covariance, nu)
+    except (ValueError, TypeError) as err:
+        raise InputError(f"--covariance/--nu: {err}") from None
+    if not isinstance(nugget, (bool, np.bool_)):
+        raise InputError(f"nugget: expected True or False, got {nugget!r}")
+    z = transform_values(ds, transform)
+    design = design_matrix(ds, trend, tuple(covariates))
+    n, p = design.shape
+    if n < p + 3:
+        raise InputError(f"--trend: {p} trend terms and 3 covariance parameters need more than {n} points")
+    if np.linalg.matrix_rank(design.values) < p:
+        raise InputError(f"--trend: the trend terms ({', '.join(design.attrs['terms'])}) are not identifiable "
+                         "from these locations and covariates; use a lower order or drop a covariate")
+    metric = metric_of(ds)
+    xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
+    d = distance_matrix(xy, metric)
+    extent = float(d.max())
+    if not extent > 0:
+        raise InputError(f"{_source(ds)}: all points share one location")
+    vmean, vsd = float(np.mean(z)), float(np.std(z, ddof=1))
+    if not vsd > 0:
+        raise InputError(f"{_source(ds)}: the values do not vary; nothing to model")
+    coef, *_ = np.linalg.lstsq(design.values, z, rcond=None)
+    resid_sd = float(np.std(z - design.values @ coef, ddof=min(p, n - 1)))
+    resolved = resolve_priors(priors, extent=extent, value_sd=resid_sd if resid_sd > 0 else vsd)
+    spec = FitSpec(
+        covariance=cov.name, nu=cov.nu, nugget=bool(nugget), trend=int(design.attrs["order"]),
+        covariates=tuple(design.attrs["covariates"]), transform=transform,
+        terms=tuple(design.attrs["terms"]), design_attrs=_jsonable(dict(design.attrs)),
+        value_mean=vmean, value_sd=vsd, distance_scale=extent, range_factor=float(cov.range_factor),
+        metric=metric, distance_units=str(ds.attrs.get("distance_units", "")),
+        value_units=str(ds.attrs.get("value_units", "") or ds["value"].attrs.get("units", "")),
+        value_column=str(ds.attrs.get("value_column", "value")), n=int(n), priors=resolved,
+    )
+    return spec, (z - vmean) / vsd, design, d / extent
+
+
+def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
+                nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
+                transform: str | None = None, priors: Priors | Mapping | None = None):
+    """Build the PyMC model of one site's point data.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Point data along ``obs`` (:func:`bayesgeo.read_points`), one site.
+    covariance : str
+        Covariance family (:data:`bayesgeo.covariance.FAMILIES`); ``nu`` its smoothness for
+        ``"matern"``.
+    nugget : bool
+        Include the nugget tau^2 (default). Without it a small jitter keeps K invertible.
+    trend : int
+        Polynomial order 0-3 of the trend in the coordinates.
+    covariates : sequence of str
+        Data variables added to the trend.
+    transform : {None, "log"}
+        Model log(values); zero or negative values are refused.
+    priors : Priors or dict, optional
+        Overrides of the default priors (data units; see :mod:`bayesgeo.priors`).
+
+    Returns
+    -------
+    model : pymc.Model
+        Free variables ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (when ``nugget``) and
+        ``beta_z`` (dim ``term``) on the standardised scale; the marginal log-likelihood is the
+        potential ``"loglik"``.
+    spec : FitSpec
+        Settings and standardisation constants.
+
+    Raises
+    ------
+    InputError
+        Several sites, unknown covariance, bad trend order, non-positive values under log, bad priors.
+    """
+    import pymc as pm
+
+    from bayesgeo.likelihood import marginal_loglik
+
+    spec, y, design, dist = model_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend,
+                                         covariates=covariates, transform=transform, priors=priors)
+    cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
+    rates = spec.rates
+    with pm.Model(coords={"term": list(spec.terms)}) as model:
+        prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"])
+        sd = pm.Exponential("sd_z", lam=rates["sd"])
+        tau2 = pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2 if spec.nugget else 0.0
+        beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
+        resid = y - pm.math.dot(design.values, beta)
+        pm.Potential("loglik", marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd**2, tau2))
+    return model, spec
+

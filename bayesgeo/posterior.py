@@ -1,0 +1,369 @@
+"""The fit result: derived quantities in data units, summary table, saving and loading.
+
+A fit is one ``xarray.DataTree`` that describes itself:
+
+* ``posterior``: the sampled variables on the model's standardised scale (``*_z``) and the derived
+  variables in data units, each with ``units`` and ``long_name`` attributes:
+  ``practical_range``, ``scale``, ``partial_sill``, ``nugget``, ``total_sill``, ``nugget_ratio``,
+  ``microergodic`` (sigma^2 / phi^p, Zhang 2004, JASA 99) and ``beta`` (dim ``term``);
+* ``sample_stats``: the sampler's statistics;
+* ``observed_data``: ``value`` (as measured) and ``model_value`` (transformed, when a transform is used);
+* ``constant_data``: ``x``, ``y`` and ``design`` (obs, term);
+* root attributes: ``settings`` (JSON: every setting of :class:`bayesgeo.model.FitSpec`, the
+  sampler settings, seed, package versions), ``cautions`` (JSON list) and, once checked,
+  ``diagnostics`` (JSON from the diagnostics stage).
+
+On disk (:func:`save_fit`): ``DIR/posterior.nc`` (the tree, netCDF4), ``DIR/summary.csv``,
+``DIR/summary.txt`` and ``DIR/fit.json``.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import platform
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from bayesgeo.covariance import get_covariance
+from bayesgeo.io import atomic_dir
+from bayesgeo.model import FitSpec, build_model, model_inputs
+from bayesgeo.sampling import sample
+from bayesgeo.validate import InputError
+
+__all__ = [
+    "FIT_FILE",
+    "PARAMETERS",
+    "fit",
+    "derive",
+    "fit_spec",
+    "summary_table",
+    "fit_report",
+    "cautions",
+    "with_diagnostics",
+    "save_fit",
+    "load_fit",
+]
+
+#: Name of the NetCDF file of a saved fit.
+FIT_FILE = "posterior.nc"
+#: Scalar derived parameters reported for every fit (those that apply).
+PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
+_FORMAT_VERSION = 1
+
+
+def _versions() -> dict[str, str]:
+    import arviz
+    import pymc
+    import pytensor
+
+    from bayesgeo import __version__
+
+    out = {"bayesgeo": __version__, "pymc": pymc.__version__, "pytensor": pytensor.__version__,
+           "arviz": arviz.__version__, "xarray": xr.__version__, "numpy": np.__version__,
+           "python": platform.python_version()}
+    try:
+        import nutpie
+
+        out["nutpie"] = nutpie.__version__
+    except ImportError:  # pragma: no cover - nutpie is a dependency
+        pass
+    return out
+
+
+def fit_spec(tree: xr.DataTree) -> FitSpec:
+    """The :class:`~bayesgeo.model.FitSpec` recorded in a fit's ``settings`` attribute."""
+    try:
+        settings = json.loads(tree.attrs["settings"])
+        return FitSpec.from_dict(settings["model"])
+    except (KeyError, TypeError, ValueError) as err:
+        raise InputError(f"not a bayesgeo fit (settings attribute missing or unreadable: {err})") from None
+
+
+def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
+    """Add the derived variables in data units to a posterior ``Dataset`` (returns a new one).
+
+    With ``s`` = ``spec.value_sd``, ``D`` = ``spec.distance_scale`` and ``m`` = ``spec.value_mean``:
+    practical range = D practical_range_z, scale = practical range / range_factor,
+    partial sill = (s sd_z)^2, nugget = (s nugget_sd_z)^2 (absent without nugget),
+    total sill = partial sill + nugget, nugget ratio = nugget / total sill,
+    microergodic = partial sill / scale^p (absent for the Gaussian family), beta = s beta_z with
+    m added to the intercept term ``"1"``.
+    """
+    cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
+    s, dscale = spec.value_sd, spec.distance_scale
+    vu, du = spec.model_units, spec.distance_units or "distance units"
+    out = posterior.copy()
+    raw = {
+        "practical_range_z": "practical range / largest inter-point distance",
+        "sd_z": "sd of the spatial field / sd of the modelled values",
+        "nugget_sd_z": "nugget sd / sd of the modelled values",
+        "beta_z": "trend coefficients for standardised values",
+    }
+    for name, text in raw.items():
+        if name in out:
+            out[name].attrs.update(units="1", long_name=text, scale="standardised (sampled)")
+    prange = out["practical_range_z"] * dscale
+    out["practical_range"] = prange.assign_attrs(
+        units=du, long_name=f"practical range (distance where the correlation falls to 0.05{'; the range' if cov.name == 'spherical' else ''})")
+    scale = prange / cov.range_factor
+    out["scale"] = scale.assign_attrs(units=du, long_name=f"scale parameter phi of the {cov.label} correlation")
+    psill = (out["sd_z"] * s) ** 2
+    out["partial_sill"] = psill.assign_attrs(units=f"({vu})^2", long_name="partial sill sigma^2 (variance of the spatial field)")
+    if spec.nugget:
+        nug = (out["nugget_sd_z"] * s) ** 2
+        out["nugget"] = nug.assign_attrs(units=f"({vu})^2", long_name="nugget tau^2 (variance not spatially correlated)")
+        total = psill + nug
+        out["total_sill"] = total.assign_attrs(units=f"({vu})^2", long_name="total sill sigma^2 + tau^2")
+        out["nugget_ratio"] = (nug / total).assign_attrs(units="1", long_name="nugget / total sill")
+    else:
+        out["total_sill"] = psill.copy().assign_attrs(units=f"({vu})^2", long_name="total sill (no nugget: = partial sill)")
+    if cov.microergodic_power is not None:
+        p = cov.microergodic_power
+        out["microergodic"] = (psill / scale**p).assign_attrs(
+            units=f"({vu})^2 / ({du})^{p:g}", long_name=f"microergodic parameter sigma^2 / phi^{p:g} (Zhang 2004)")
+    beta = out["beta_z"] * s
+    intercept = xr.where(beta["term"] == "1", spec.value_mean, 0.0)
+    out["beta"] = (beta + intercept).assign_attrs(
+        units=vu, long_name="trend coefficients per unit of the centred and scaled design columns")
+    for name in ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio",
+                 "microergodic", "beta"):
+        if name in out:
+            out[name].attrs["scale"] = "data units" + (" (log of the values)" if spec.transform == "log" else "")
+    return out
+
+
+def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None) -> list[str]:
+    """The cautions that go with a fit's numbers (model assumptions, regulation, convergence, range)."""
+    out = [
+        "These are statistical summaries under stated assumptions (a stationary, isotropic Gaussian process "
+        f"with a {spec.covariance} covariance{', on the log scale' if spec.transform == 'log' else ''}). "
+        "They support, but never replace, the judgement of a licensed professional.",
+        "Decisions about contamination or exposure must follow the sampling, analysis and decision rules of "
+        "the local regulator; check sampling design, laboratory quality and detection limits first.",
+    ]
+    if spec.transform == "log":
+        out.append("Sills, nugget and trend are on the log scale of the values; back-transforming means "
+                   "needs a bias correction (the median is exp(mean of the log), not the mean).")
+    if posterior is not None and "practical_range" in posterior:
+        med = float(posterior["practical_range"].median())
+        if med > 0.5 * spec.distance_scale:
+            out.append(f"The posterior median practical range ({med:.4g} {spec.distance_units}) exceeds half the "
+                       f"largest distance between samples ({spec.distance_scale:.4g}); the data say little about "
+                       "the range beyond that, so its upper interval reflects the prior (common practice).")
+    if diagnostics is not None and diagnostics.get("verdict") == "fail":
+        out.insert(0, "NOT CONVERGED: the sampler failed its convergence checks; do not use these numbers.")
+    return out
+
+
+def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None, nugget: bool = True,
+        trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None, priors=None,
+        sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
+        target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
+        adaptation: str = "low_rank") -> xr.DataTree:
+    """Fit the single-site Bayesian GP model and return the self-describing result.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Point data of one site (:func:`bayesgeo.read_points`).
+    covariance, nu, nugget, trend, covariates, transform, priors
+        Model settings, see :func:`bayesgeo.model.build_model`.
+    sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation
+        Sampler settings, see :func:`bayesgeo.sampling.sample`.
+
+    Returns
+    -------
+    xarray.DataTree
+        See the module docstring for its groups and attributes.
+    """
+    model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(covariates),
+                    transform=transform, priors=priors)
+    model, spec = build_model(ds, **model_kw)
+    _, _, design, _ = model_inputs(ds, **model_kw)
+    raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
+                 seed=seed, progressbar=progressbar, adaptation=adaptation)
+    post = derive(raw["posterior"].to_dataset(), spec)
+    obs_coords = {"row": ("obs", ds["row"].values)} if "row" in ds.coords else {}
+    observed = xr.Dataset({"value": ("obs", ds["value"].values, {"units": spec.value_units,
+                                                                  "long_name": f"measured {spec.value_column}"})},
+                          coords=obs_coords)
+    if transform == "log":
+        observed["model_value"] = ("obs", np.log(ds["value"].values), {"units": spec.model_units,
+                                                                          "long_name": "log of the measured value"})
+    constant = xr.Dataset(
+        {"x": ("obs", ds["x"].values, {"units": spec.distance_units}),
+         "y": ("obs", ds["y"].values, {"units": spec.distance_units}),
+         "design": (("obs", "term"), design.values, {"long_name": "trend design matrix (centred and scaled)"})},
+        coords={**obs_coords, "term": list(spec.terms)},
+    )
+    sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
+                                                  "adaptation", "sampling_seconds")}
+    settings = {
+        "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
+        "model": spec.to_dict(), "sampler": sampler_settings, "versions": _versions(),
+        "data": {k: _plain(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs",
+                                                           "x_column", "y_column", "value_column")},
+    }
+    groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
+              "/observed_data": observed, "/constant_data": constant}
+    tree = xr.DataTree.from_dict(groups)
+    tree.attrs = {"title": "bayesgeo single-site Gaussian-process fit", "settings": json.dumps(settings),
+                  "cautions": json.dumps(cautions(spec, post))}
+    return tree
+
+
+def _plain(v):
+    if isinstance(v, np.generic):
+        return v.item()
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v]
+    return v if isinstance(v, (str, int, float)) or v is None else str(v)
+
+
+def with_diagnostics(tree: xr.DataTree, diagnostics: Mapping) -> xr.DataTree:
+    """A copy of ``tree`` carrying the diagnostics JSON (and cautions updated for its verdict)."""
+    out = tree.copy()
+    spec = fit_spec(tree)
+    out.attrs["diagnostics"] = json.dumps(_jsonable(dict(diagnostics)))
+    out.attrs["cautions"] = json.dumps(cautions(spec, tree["posterior"].to_dataset(), diagnostics))
+    return out
+
+
+def _jsonable(obj):
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not np.isfinite(obj):
+        return None
+    return obj
+
+
+def _scalar_names(post: xr.Dataset) -> list[str]:
+    return [p for p in PARAMETERS if p in post]
+
+
+def summary_table(tree: xr.DataTree, *, var_names: Sequence[str] | None = None, prob: float = 0.9) -> list[dict]:
+    """Per parameter: mean, sd, q05, q50, q95 and the 90% highest-density interval, with units.
+
+    Mean, sd and HDI come from ``arviz.summary``; quantiles are equal-tailed over all draws.
+    Vector variables (``beta``) give one row per term (``beta[x]``). Returns a list of dicts.
+    """
+    import arviz as az
+
+    post = tree["posterior"].to_dataset()
+    names = list(var_names) if var_names is not None else [*_scalar_names(post), "beta"]
+    lo_q, hi_q = (1 - prob) / 2, 1 - (1 - prob) / 2
+    tag = f"{round(100 * prob):d}"
+    stats = az.summary(post[names], kind="stats", ci_prob=prob, ci_kind="hdi", round_to="none")
+    rows = []
+    for name in names:
+        da = post[name]
+        extra = [d for d in da.dims if d not in ("chain", "draw")]
+        keys = [None] if not extra else list(da[extra[0]].values)
+        for key in keys:
+            x = da if key is None else da.sel({extra[0]: key})
+            label = name if key is None else f"{name}[{key}]"
+            q = np.quantile(x.values.ravel(), [lo_q, 0.5, hi_q])
+            r = stats.loc[label]
+            rows.append({"parameter": label, "mean": float(r["mean"]), "sd": float(r["sd"]),
+                         "q05": float(q[0]), "q50": float(q[1]), "q95": float(q[2]),
+                         f"hdi{tag}_low": float(r[f"hdi{tag}_lb"]), f"hdi{tag}_high": float(r[f"hdi{tag}_ub"]),
+                         "units": str(da.attrs.get("units", ""))})
+    return rows
+
+
+def fit_report(tree: xr.DataTree) -> dict:
+    """The fit as one JSON-able dict: parameters (data units), sampler, diagnostics, cautions, settings."""
+    settings = json.loads(tree.attrs["settings"])
+    spec = fit_spec(tree)
+    rows = summary_table(tree)
+    params = {r["parameter"]: {k: v for k, v in r.items() if k != "parameter"} for r in rows}
+    if not spec.nugget:
+        zero = {k: 0.0 for k in ("mean", "sd", "q05", "q50", "q95", "hdi90_low", "hdi90_high")}
+        params["nugget"] = {**zero, "units": f"({spec.model_units})^2", "fixed": True}
+        params["nugget_ratio"] = {**zero, "units": "1", "fixed": True}
+    smp = settings["sampler"]
+    diag = json.loads(tree.attrs["diagnostics"]) if "diagnostics" in tree.attrs else None
+    return _jsonable({
+        "parameters": params,
+        "sampler": {"name": smp["sampler"], "chains": smp["chains"], "draws": smp["draws"], "tune": smp["tune"],
+                    "seed": smp["seed"], "seconds": smp["sampling_seconds"], "target_accept": smp["target_accept"],
+                    "adaptation": smp["adaptation"]},
+        "diagnostics": diag,
+        "converged": None if diag is None else diag.get("verdict") != "fail",
+        "model": {"covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget, "trend": spec.trend,
+                  "covariates": list(spec.covariates), "transform": spec.transform, "n": spec.n,
+                  "value_units": spec.model_units, "distance_units": spec.distance_units,
+                  "priors": spec.priors.to_dict()},
+        "cautions": json.loads(tree.attrs.get("cautions", "[]")),
+    })
+
+
+def _summary_text(report: dict) -> str:
+    lines = []
+    diag = report.get("diagnostics")
+    if diag is not None and diag.get("verdict") == "fail":
+        lines += ["*** NOT CONVERGED: do not use these numbers ***", ""]
+    m = report["model"]
+    lines.append(f"bayesgeo fit: {m['covariance']} covariance, nugget {'yes' if m['nugget'] else 'no'}, "
+                 f"trend order {m['trend']}, transform {m['transform'] or 'none'}, n = {m['n']}")
+    s = report["sampler"]
+    lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
+                 f"seed {s['seed']}, {s['seconds']:.1f} s")
+    lines.append("")
+    cols = ["mean", "sd", "q05", "q50", "q95", "hdi90_low", "hdi90_high"]
+    width = max(len(k) for k in report["parameters"]) + 2
+    lines.append("parameter".ljust(width) + "".join(c.rjust(12) for c in cols) + "  units")
+    for name, p in report["parameters"].items():
+        lines.append(name.ljust(width) + "".join(f"{p[c]:12.4g}" for c in cols) + f"  {p['units']}")
+    lines.append("")
+    lines.append(f"diagnostics: {diag.get('verdict', '?').upper() if diag else 'not checked'}")
+    lines.append("")
+    lines += [f"- {c}" for c in report["cautions"]]
+    return "\n".join(lines) + "\n"
+
+
+def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = False) -> Path:
+    """Write a fit into ``directory`` atomically: posterior.nc, summary.csv, summary.txt, fit.json.
+
+    The folder is assembled under a temporary name and renamed at the end
+    (:func:`bayesgeo.io.atomic_dir`); an existing folder is refused unless ``overwrite``.
+    """
+    report = fit_report(tree)
+    rows = summary_table(tree)
+    verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
+    with atomic_dir(directory, overwrite=overwrite) as tmp:
+        tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
+        buf = io.StringIO()
+        w = csv.DictWriter(buf, fieldnames=[*rows[0].keys(), "diagnostics"], lineterminator="\n")
+        w.writeheader()
+        for r in rows:
+            w.writerow({**{k: (f"{v:.10g}" if isinstance(v, float) else v) for k, v in r.items()},
+                        "diagnostics": "NOT CONVERGED" if verdict == "fail" else verdict})
+        (tmp / "summary.csv").write_text(buf.getvalue(), encoding="utf-8")
+        (tmp / "summary.txt").write_text(_summary_text(report), encoding="utf-8")
+        (tmp / "fit.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    return Path(directory)
+
+
+def load_fit(directory: str | Path) -> xr.DataTree:
+    """Read a fit written by :func:`save_fit` (``directory`` or the ``posterior.nc`` inside it)."""
+    path = Path(directory)
+    if path.is_dir():
+        path = path / FIT_FILE
+    if not path.is_file():
+        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
+    try:
+        tree = xr.open_datatree(path, engine="netcdf4").load()
+    except Exception as err:  # noqa: BLE001 - any reader failure is bad input here
+        raise InputError(f"{path}: not a readable NetCDF file ({type(err).__name__}: {err})") from None
+    fit_spec(tree)
+    return tree

@@ -1,0 +1,89 @@
+"""Sampling a model with NUTS: nutpie (default) or PyMC's own sampler, on the CPU.
+
+BLAS is limited to one thread per chain while sampling (threadpoolctl): dense GP likelihoods
+factorise n x n matrices, and several BLAS threads per chain on a small machine oversubscribe the
+cores (see ``/work/shared`` facts and ``docs/model.md``). With an integer ``seed`` the same model
+and settings give identical draws.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from bayesgeo.validate import InputError, check_choice, check_positive_int
+
+__all__ = ["SAMPLERS", "ADAPTATIONS", "sample", "new_seed"]
+
+#: NUTS implementations offered.
+SAMPLERS = ("nutpie", "pymc")
+#: nutpie mass-matrix adaptations offered (``low_rank`` adapts to the range/sill correlation).
+ADAPTATIONS = ("low_rank", "diag")
+
+
+def new_seed() -> int:
+    """A fresh seed from the operating system's entropy (recorded so a run can be repeated)."""
+    return int(np.random.SeedSequence().entropy % (2**31 - 1))
+
+
+def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
+           target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
+           adaptation: str = "low_rank", cores: int | None = None):
+    """Draw from the posterior of ``model`` with NUTS.
+
+    Parameters
+    ----------
+    model : pymc.Model
+        From :func:`bayesgeo.model.build_model`.
+    sampler : {"nutpie", "pymc"}
+        nutpie (Rust NUTS over a Numba-compiled log-density; chains in threads) or PyMC's NUTS.
+    chains, draws, tune : int
+        Chains, kept draws per chain and tuning (warm-up) iterations per chain.
+    target_accept : float
+        Target acceptance rate of the step-size adaptation, in (0, 1).
+    seed : int, optional
+        Seed of the sampler; a fresh one is drawn (and recorded in the result) when omitted.
+    progressbar : bool
+        Show the sampler's progress bar.
+    adaptation : {"low_rank", "diag"}
+        Mass-matrix adaptation of nutpie (ignored by ``"pymc"``, which adapts a diagonal one).
+    cores : int, optional
+        Chains run in parallel (default: up to the number of CPUs).
+
+    Returns
+    -------
+    xarray.DataTree
+        ``posterior`` and ``sample_stats`` groups; root attrs ``sampler``, ``seed``, ``chains``,
+        ``draws``, ``tune``, ``target_accept``, ``adaptation``, ``sampling_seconds``.
+    """
+    import pymc as pm
+    from threadpoolctl import threadpool_limits
+
+    check_choice(sampler, SAMPLERS, "--sampler")
+    check_choice(adaptation, ADAPTATIONS, "adaptation")
+    chains = check_positive_int(chains, "--chains")
+    draws = check_positive_int(draws, "--draws")
+    tune = check_positive_int(tune, "--tune", minimum=0)
+    if not (0.0 < float(target_accept) < 1.0):
+        raise InputError(f"--target-accept: expected a number strictly between 0 and 1, got {target_accept!r}")
+    if seed is None:
+        seed = new_seed()
+    seed = check_positive_int(seed, "--seed", minimum=0)
+    nuts = {"target_accept": float(target_accept)}
+    if sampler == "nutpie":
+        nuts["adaptation"] = adaptation
+    t0 = time.perf_counter()
+    with threadpool_limits(limits=1, user_api="blas"):
+        tree = pm.sample(
+            draws=draws, tune=tune, chains=chains, cores=cores, random_seed=seed, nuts_sampler=sampler,
+            progressbar=progressbar, quiet=not progressbar, model=model, nuts=nuts,
+            compute_convergence_checks=False,
+        )
+    seconds = time.perf_counter() - t0
+    tree.attrs.update({
+        "sampler": sampler, "seed": seed, "chains": chains, "draws": draws, "tune": tune,
+        "target_accept": float(target_accept), "adaptation": adaptation if sampler == "nutpie" else "diag",
+        "sampling_seconds": seconds,
+    })
+    return tree
