@@ -157,7 +157,7 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, max_lag: float | None = None) ->
         greatcircle = metric_of(ds) == "greatcircle"
         far = _pairs.max_pair_distance(ds["x"].values, ds["y"].values, group=_groups(ds), greatcircle=greatcircle)
         if not far > 0.0:
-            raise InputError("all points share one location: no lag to bin")
+            raise InputError("no two points (of one site) at distinct locations: no lag to bin")
         max_lag = 0.5 * far
     else:
         max_lag = check_positive(max_lag, "--max-lag")

@@ -335,6 +335,7 @@ def test_few_pairs_warning_lists_bins():
 
 
 def test_no_warning_when_bins_are_full():
+    """No FewPairsWarning when every bin holds at least 30 pairs (common practice threshold)."""
     ds = _random(n=120, seed=15)
     with warnings.catch_warnings():
         warnings.simplefilter("error", FewPairsWarning)
@@ -383,11 +384,13 @@ def test_empty_bins_are_nan_with_centre_lag():
     ],
 )
 def test_bad_options(kwargs, match):
+    """Bad options raise InputError naming the option, the bad value and what is accepted."""
     with pytest.raises(InputError, match=match):
         semivariogram(_random(n=20), **kwargs)
 
 
 def test_nan_values_refused():
+    """NaN values are refused with the input-file row (header = row 1)."""
     ds = _random(n=20)
     ds["value"][3] = np.nan
     with pytest.raises(InputError, match=r"value: NaN or infinite values at rows 5"):
@@ -411,3 +414,10 @@ def test_same_numbers_with_one_or_two_threads():
     np.testing.assert_array_equal(one["pairs"].values, two["pairs"].values)
     np.testing.assert_allclose(one["semivariance"].values, two["semivariance"].values, rtol=1e-12)
     np.testing.assert_allclose(one["envelope_high"].values, two["envelope_high"].values, rtol=1e-12)
+
+
+def test_no_lag_without_two_distinct_locations():
+    """Two sites of one point each give no pair: refused with one line."""
+    ds = _ds(np.array([0.0, 5.0]), np.array([0.0, 5.0]), np.array([1.0, 2.0]), site=np.array(["A", "B"]))
+    with pytest.raises(InputError, match=r"no two points \(of one site\) at distinct locations"):
+        semivariogram(ds)

@@ -145,6 +145,7 @@ def test_collinear_points_cannot_fit_plane():
 
 
 def test_unknown_covariate():
+    """A covariate that is not a data variable is refused naming --covariate."""
     with pytest.raises(InputError, match=r"--covariate: 'ph' is not a column"):
         fit_trend(_points(covariate=True), 1, covariates=["ph"])
 
