@@ -20,7 +20,10 @@ import xarray as xr
 
 from bayesgeo.validate import InputError, check_choice, format_rows
 
-__all__ = ["MIN_POINTS", "read_points", "points_dataset", "sites_of"]
+__all__ = ["MIN_POINTS", "TRANSFORMS", "read_points", "points_dataset", "sites_of", "apply_transform"]
+
+#: Value transforms: ``None`` (values as they are) or ``"log"`` (natural logarithm).
+TRANSFORMS = (None, "log")
 
 #: Fewest points per site for a spatial analysis (fewer cannot pin down a variogram).
 MIN_POINTS = 10
@@ -68,6 +71,7 @@ def read_points(
     coords: str = "auto",
     duplicates: str = "error",
     units: str | None = None,
+    distance_units: str | None = None,
     crs: str | None = None,
 ) -> xr.Dataset:
     """Read point measurements into a ``Dataset`` along ``obs``.
@@ -92,6 +96,9 @@ def read_points(
         Points sharing a location: an error listing the rows, or averaged into one point.
     units : str, optional
         Units of the measured value (e.g. ``"mg/kg"``), recorded in attributes.
+    distance_units : str, optional
+        Units of planar coordinates (e.g. ``"m"``); with ``coords="lonlat"`` distances are in km
+        and this must be omitted or ``"km"``.
     crs : str, optional
         Coordinate reference system label, recorded in attributes.
 
@@ -147,6 +154,8 @@ def read_points(
         sites = sites.astype(str)
 
     lonlat = coords == "lonlat"
+    if lonlat and distance_units not in (None, "km"):
+        raise InputError(f"--distance-units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
     if coords == "auto":
         _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
     if lonlat:
@@ -161,7 +170,7 @@ def read_points(
         "site_column": sitecol or "",
         "covariates": list(covs),
         "coords": "lonlat" if lonlat else "xy",
-        "distance_units": "km" if lonlat else "coordinate units",
+        "distance_units": "km" if lonlat else (distance_units or "coordinate units"),
         "value_units": units or "",
         "crs": crs or ("EPSG:4326 (lon/lat)" if lonlat else ""),
         "duplicates": duplicates,
@@ -199,6 +208,38 @@ def sites_of(ds: xr.Dataset) -> list[str]:
     labels = ds["site"].values
     _, first = np.unique(labels, return_index=True)
     return [str(labels[i]) for i in sorted(first)]
+
+
+def apply_transform(ds: xr.Dataset, transform: str | None) -> xr.Dataset:
+    """Return a copy of ``ds`` whose ``value`` is transformed (``"log"``: natural logarithm).
+
+    Concentrations are positive and right-skewed, so modelling their logarithm is common practice.
+    The copy records ``attrs["transform"]`` and labels the units ``log(<units>)``.
+
+    Raises
+    ------
+    InputError
+        Unknown transform, or zero/negative values under ``"log"`` (naming the rows and column).
+    """
+    if transform in ("none", ""):
+        transform = None
+    if transform not in TRANSFORMS:
+        raise InputError(f"--transform: {transform!r} is not one of: none, log")
+    out = ds.copy()
+    out.attrs["transform"] = transform or "none"
+    if transform is None:
+        return out
+    z = np.asarray(ds["value"].values, dtype=float)
+    bad = z <= 0
+    if np.any(bad):
+        col = ds.attrs.get("value_column", "value")
+        raise InputError(
+            f"{ds.attrs.get('source') or 'data'}: --transform log needs positive values; column {col!r} has "
+            f"zero or negative values at rows {format_rows(ds['row'].values[bad])}"
+        )
+    units = ds.attrs.get("value_units", "") or "value units"
+    out["value"] = ("obs", np.log(z), {**ds["value"].attrs, "units": f"log({units})"})
+    return out
 
 
 def _guess_value(header, body, taken, src) -> str:

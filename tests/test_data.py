@@ -113,3 +113,20 @@ def test_demo_data_recorded_truth(tmp_path):
     assert (tmp_path / "demo.truth.json").exists()
     with pytest.raises(InputError, match="already exists"):
         write_demo_data(tmp_path / "demo.csv")
+
+
+def test_log_transform(write_csv, grid_rows):
+    """log transform of positive concentrations (common practice); zeros refused with rows named."""
+    from bayesgeo.data import apply_transform
+
+    ds = read_points(write_csv(grid_rows), value="conc", units="mg/kg", distance_units="m")
+    assert ds.attrs["distance_units"] == "m"
+    logged = apply_transform(ds, "log")
+    np.testing.assert_allclose(logged["value"].values, np.log(ds["value"].values))
+    assert logged["value"].attrs["units"] == "log(mg/kg)" and logged.attrs["transform"] == "log"
+    assert "transform" not in ds.attrs  # input untouched
+    grid_rows[3][2] = 0
+    with pytest.raises(InputError, match=r"--transform log needs positive values; column 'conc' .* rows 4"):
+        apply_transform(read_points(write_csv(grid_rows), value="conc"), "log")
+    with pytest.raises(InputError, match="--transform: 'sqrt' is not one of"):
+        apply_transform(ds, "sqrt")

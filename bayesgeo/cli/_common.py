@@ -25,6 +25,7 @@ def add_data_options(p) -> None:
     p.add_argument("--duplicates", choices=("error", "mean"), default="error",
                    help="points at the same location: error (default) or average them")
     p.add_argument("--units", metavar="TEXT", help="units of the measured value, e.g. mg/kg")
+    p.add_argument("--distance-units", metavar="TEXT", help="units of planar coordinates, e.g. m (lon/lat: km)")
 
 
 def read_data(args):
@@ -34,6 +35,7 @@ def read_data(args):
     return read_points(
         args.data, x=args.x, y=args.y, value=args.value, site=args.site, covariates=args.covariate,
         coords=args.coords, duplicates=args.duplicates, units=args.units,
+        distance_units=args.distance_units,
     )
 
 
