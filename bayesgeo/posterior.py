@@ -43,6 +43,7 @@ __all__ = [
     "fit_spec",
     "summary_table",
     "fit_report",
+    "summary_text",
     "cautions",
     "with_diagnostics",
     "save_fit",
@@ -202,7 +203,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         coords={**obs_coords, "term": list(spec.terms)},
     )
     sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
-                                                  "adaptation", "sampling_seconds")}
+                                                  "adaptation", "seconds", "sampling_seconds")}
     settings = {
         "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
         "model": spec.to_dict(), "sampler": sampler_settings, "versions": _versions(),
@@ -295,7 +296,8 @@ def fit_report(tree: xr.DataTree) -> dict:
     return _jsonable({
         "parameters": params,
         "sampler": {"name": smp["sampler"], "chains": smp["chains"], "draws": smp["draws"], "tune": smp["tune"],
-                    "seed": smp["seed"], "seconds": smp["sampling_seconds"], "target_accept": smp["target_accept"],
+                    "seed": smp["seed"], "seconds": smp["seconds"], "sampling_seconds": smp["sampling_seconds"],
+                    "target_accept": smp["target_accept"],
                     "adaptation": smp["adaptation"]},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
@@ -307,7 +309,8 @@ def fit_report(tree: xr.DataTree) -> dict:
     })
 
 
-def _summary_text(report: dict) -> str:
+def summary_text(report: dict) -> str:
+    """Human-readable summary of a :func:`fit_report` (table, verdict, cautions)."""
     lines = []
     diag = report.get("diagnostics")
     if diag is not None and diag.get("verdict") == "fail":
@@ -349,7 +352,7 @@ def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = Fals
             w.writerow({**{k: (f"{v:.10g}" if isinstance(v, float) else v) for k, v in r.items()},
                         "diagnostics": "NOT CONVERGED" if verdict == "fail" else verdict})
         (tmp / "summary.csv").write_text(buf.getvalue(), encoding="utf-8")
-        (tmp / "summary.txt").write_text(_summary_text(report), encoding="utf-8")
+        (tmp / "summary.txt").write_text(summary_text(report), encoding="utf-8")
         (tmp / "fit.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     return Path(directory)
 

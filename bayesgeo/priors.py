@@ -103,9 +103,9 @@ class Priors:
         if unknown:
             raise InputError(f"priors: unknown key(s) {', '.join(sorted(unknown))}; "
                              "accepted: range, sd, nugget, beta_sd")
-        pair = lambda v: None if v is None else (float(v[0]), float(v[1]))  # noqa: E731
+        pair = lambda v: None if v is None else tuple(v)  # noqa: E731  (checked by resolve_priors)
         return cls(range=pair(d.get("range")), sd=pair(d.get("sd")), nugget=pair(d.get("nugget")),
-                   beta_sd=None if d.get("beta_sd") is None else float(d["beta_sd"]))
+                   beta_sd=d.get("beta_sd"))
 
 
 def pc_range_rate(r0: float, a1: float) -> float:

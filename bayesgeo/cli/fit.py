@@ -1,0 +1,67 @@
+"""``bayesgeo fit``: fit the single-site Bayesian Gaussian-process model and save the result."""
+
+from __future__ import annotations
+
+HELP = "fit the Bayesian GP model (range, partial sill, nugget, trend) to one site's data"
+
+
+def add_arguments(p) -> None:
+    from bayesgeo.cli._common import add_data_options
+    from bayesgeo.covariance import FAMILIES
+
+    add_data_options(p)
+    p.add_argument("--covariance", required=True, choices=FAMILIES, metavar="FAMILY",
+                   help=f"covariance family: {', '.join(FAMILIES)}")
+    p.add_argument("--nu", type=float, default=None, help="Matérn smoothness (family 'matern' only)")
+    p.add_argument("--no-nugget", action="store_true", help="fit without a nugget")
+    p.add_argument("--trend", type=int, default=0, metavar="ORDER",
+                   help="polynomial order of the trend in the coordinates, 0-3 (default 0: constant mean)")
+    p.add_argument("--transform", choices=("none", "log"), default="none", help="model log(values) (positive values only)")
+    p.add_argument("--prior-range", nargs=2, type=float, metavar=("R0", "A1"),
+                   help="PC prior: P(practical range < R0) = A1 (default: R0 = 5%% of the largest distance, A1 = 0.05)")
+    p.add_argument("--prior-sd", nargs=2, type=float, metavar=("S0", "A2"),
+                   help="PC prior: P(sd of the field > S0) = A2 (default: S0 = 2 x sd of the detrended values, A2 = 0.05)")
+    p.add_argument("--prior-nugget", nargs=2, type=float, metavar=("T0", "A3"),
+                   help="PC prior: P(nugget sd > T0) = A3 (default as --prior-sd)")
+    p.add_argument("--draws", type=int, default=1000, help="kept draws per chain (default 1000)")
+    p.add_argument("--tune", type=int, default=1000, help="tuning iterations per chain (default 1000)")
+    p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
+    p.add_argument("--target-accept", type=float, default=0.8, help="target acceptance rate (default 0.8)")
+    p.add_argument("--seed", type=int, default=None, help="seed (default: a fresh one, recorded in the output)")
+    p.add_argument("--sampler", choices=("nutpie", "pymc"), default="nutpie", help="NUTS implementation (default nutpie)")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+
+
+def run(args) -> int:
+    import sys
+
+    from bayesgeo.cli import EXIT_NOT_CONVERGED
+    from bayesgeo.cli._common import emit_json, read_data
+    from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.io import refuse_existing
+    from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
+    from bayesgeo.priors import Priors
+
+    refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
+    ds = read_data(args)
+    priors = Priors(range=tuple(args.prior_range) if args.prior_range else None,
+                    sd=tuple(args.prior_sd) if args.prior_sd else None,
+                    nugget=tuple(args.prior_nugget) if args.prior_nugget else None)
+    show = not args.json and sys.stderr.isatty()
+    tree = fit(ds, covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
+               covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
+               priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
+               target_accept=args.target_accept, seed=args.seed, progressbar=show)
+    conv = check_convergence(tree)
+    tree = with_diagnostics(tree, conv.to_json())
+    save_fit(tree, args.out, overwrite=args.overwrite)
+    report = fit_report(tree)
+    report["out"] = str(args.out)
+    if args.json:
+        emit_json(report)
+    else:
+        print(summary_text(report), end="")
+        print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json)")
+    return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
