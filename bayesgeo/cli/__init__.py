@@ -21,6 +21,7 @@ EXIT_NOT_CONVERGED = 3
 COMMANDS: dict[str, str] = {
     "demo-data": "demo_data",
     "explore": "explore",
+    "fit": "fit",
     "check": "check",
 }
 
