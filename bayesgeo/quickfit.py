@@ -135,6 +135,9 @@ def fit_wls(vg: xr.Dataset, covariance: str | Covariance, *, nugget: bool = True
     for name in ("semivariance", "pairs"):
         if name not in vg:
             raise InputError(f"semivariogram has no variable {name!r} (expected the output of explore.semivariogram)")
+    if vg["semivariance"].ndim != 1:
+        raise InputError(f"the semivariogram has dimensions {vg['semivariance'].dims}; fit one direction at a "
+                         "time (e.g. vg.isel(azimuth=0)) or the omnidirectional semivariogram")
     lag = np.asarray(vg["lag"].values, dtype=float)
     gam = np.asarray(vg["semivariance"].values, dtype=float)
     npairs = np.asarray(vg["pairs"].values, dtype=float)
