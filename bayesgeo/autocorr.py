@@ -22,7 +22,9 @@ The infinite sum is truncated by one of two published estimators:
     Bürkner (2021, *Bayesian Analysis* 16, eq. 10), the computation behind Stan's and ArviZ's ESS.
 ``"sokal"``
     Sokal's automatic window: tau(M) = 1 + 2 sum_{k=1}^{M} rho_k with the smallest M >= c tau(M),
-    c = 5. Several chains are combined by averaging their autocorrelation functions first.
+    c = 5. Several chains are combined by averaging their autocorrelation functions first. The
+    window assumes positive autocorrelation: for antithetic chains (negative rho_1) it stops at
+    M = 1 and underestimates tau; use ``"geyer"`` there.
 """
 
 from __future__ import annotations
@@ -82,7 +84,8 @@ def acf_array(x: np.ndarray, *, max_lag: int | None = None) -> np.ndarray:
     cov = _autocov(x)
     with np.errstate(invalid="ignore", divide="ignore"):
         rho = cov / cov[..., :1]
-    rho = np.where(cov[..., :1] > 0, rho, np.nan)
+    moving = (np.ptp(x, axis=-1, keepdims=True) > 0) & (cov[..., :1] > 0)
+    rho = np.where(moving, rho, np.nan)
     if max_lag is not None:
         rho = rho[..., : max_lag + 1]
     return rho
@@ -91,7 +94,7 @@ def acf_array(x: np.ndarray, *, max_lag: int | None = None) -> np.ndarray:
 def _geyer_2d(x: np.ndarray) -> float:
     """Geyer initial-monotone IAT of a (chain, draw) array, chains combined (Vehtari et al. 2021)."""
     n_chain, n_draw = x.shape
-    if n_draw < 4 or not np.all(np.isfinite(x)):
+    if n_draw < 4 or not np.all(np.isfinite(x)) or np.ptp(x) == 0:
         return math.nan
     acov = _autocov(x)
     chain_var = acov[:, 0] * n_draw / (n_draw - 1.0)

@@ -398,9 +398,10 @@ def check_convergence(tree, *, var_names: Sequence[str] | None = None, threshold
 
     # --- draws themselves: non-finite, constant, stuck chains
     finite = np.isfinite(x).all(axis=(1, 2))
-    chain_sd = np.nanstd(x, axis=2)  # (parameter, chain)
-    pooled_sd = np.array([np.nanstd(row) for row in x])
-    constant = finite & (pooled_sd == 0)
+    with np.errstate(invalid="ignore"):
+        chain_range = np.ptp(x, axis=2)  # (parameter, chain); exactly 0 for a chain that repeats one value
+        pooled_range = np.ptp(x.reshape(x.shape[0], -1), axis=1)
+    constant = finite & (pooled_range == 0)
     assessed = finite & ~constant
     for i, label in enumerate(labels):
         if not finite[i]:
@@ -410,7 +411,7 @@ def check_convergence(tree, *, var_names: Sequence[str] | None = None, threshold
         elif constant[i]:
             notes.append(f"{label}: constant across all draws and chains (a fixed quantity?); not assessed")
         else:
-            stuck = [c for c in range(n_chains) if chain_sd[i, c] == 0]
+            stuck = [c for c in range(n_chains) if chain_range[i, c] == 0]
             if stuck:
                 problems.append(_problem(label, "fail", stuck, "chain variance > 0",
                                          "common practice: a chain that never moves has not explored the posterior",

@@ -1,0 +1,113 @@
+"""``bayesgeo check DIR``: exit codes, JSON output, diagnostics folder (bayesgeo.cli.check)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from bayesgeo.cli import main
+
+az = pytest.importorskip("arviz")
+
+
+def write_fit(folder, *, seed=0, shift=0.0, chains=4, draws=500):
+    """A fit folder with posterior.nc as the sampler would save it (nutpie statistic names)."""
+    rng = np.random.default_rng(seed)
+    post = {
+        "practical_range": rng.lognormal(np.log(250.0), 0.2, size=(chains, draws)),
+        "nugget": rng.gamma(4.0, 0.05, size=(chains, draws)),
+        "beta": rng.normal(1.0, 0.1, size=(chains, draws, 2)),
+    }
+    post["practical_range"][1] += shift
+    ss = {
+        "diverging": np.zeros((chains, draws), bool),
+        "energy": rng.normal(size=(chains, draws)),
+        "depth": rng.integers(1, 5, size=(chains, draws)).astype("uint64"),
+        "maxdepth_reached": np.zeros((chains, draws), bool),
+        "step_size": np.full((chains, draws), 0.4),
+    }
+    tree = az.from_dict({"posterior": post, "sample_stats": ss}, dims={"beta": ["term"]},
+                        coords={"term": ["intercept", "depth_m"]})
+    folder.mkdir(parents=True, exist_ok=True)
+    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
+    return folder
+
+
+def run_json(capsys, argv):
+    code = main(argv)
+    out = capsys.readouterr().out
+    lines = [ln for ln in out.splitlines() if ln.strip()]
+    assert len(lines) == 1, out  # exactly one JSON object on stdout, nothing else
+    return code, json.loads(lines[0])
+
+
+def test_pass_exits_0_with_json_keys(tmp_path, capsys):
+    """Converged draws (independent, Vehtari et al. 2021 thresholds met): exit 0, one JSON object with
+    the documented keys; diagnostics.json written beside the posterior holds the same verdict."""
+    fit = write_fit(tmp_path / "fit")
+    code, out = run_json(capsys, ["check", str(fit), "--json", "--no-figures"])
+    assert code == 0
+    assert out["verdict"] == "pass"
+    for key in ("parameters", "divergences", "divergence_share", "bfmi", "tree_depth", "step_size",
+                "thresholds", "problems", "caution", "figures", "diagnostics"):
+        assert key in out
+    assert set(out["parameters"]) == {"practical_range", "nugget", "beta[intercept]", "beta[depth_m]"}
+    assert set(out["parameters"]["nugget"]) >= {"rhat", "ess_bulk", "ess_tail", "mcse_mean", "mcse_q05",
+                                                "mcse_q95", "iat"}
+    saved = json.loads((fit / "diagnostics" / "diagnostics.json").read_text())
+    assert saved["verdict"] == "pass" and saved["parameters"] == out["parameters"]
+
+
+def test_fail_exits_3(tmp_path, capsys):
+    """A chain shifted by 3 posterior sd: R-hat >> 1.01 (Vehtari et al. 2021) -> FAIL, exit status 3."""
+    fit = write_fit(tmp_path / "fit", shift=150.0)
+    code, out = run_json(capsys, ["check", str(fit), "--json", "--no-figures"])
+    assert code == 3
+    assert out["verdict"] == "fail"
+    assert any(p["item"] == "rhat[practical_range]" for p in out["problems"])
+
+
+def test_human_output_table_and_verdict(tmp_path, capsys):
+    """Without --json: a table with the documented columns, the verdict and the caution."""
+    fit = write_fit(tmp_path / "fit", shift=150.0)
+    assert main(["check", str(fit), "--no-figures"]) == 3
+    out = capsys.readouterr().out
+    header = next(ln for ln in out.splitlines() if "parameter" in ln and "rhat" in ln)
+    assert header.split() == ["parameter", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat"]
+    assert "verdict: FAIL" in out
+    assert "advice:" in out and "licensed professional" in out
+
+
+def test_bad_input_exits_2_with_one_line(tmp_path, capsys):
+    """Missing folder, missing posterior.nc, unreadable posterior.nc: one-line error, exit 2."""
+    cases = [tmp_path / "nowhere", tmp_path / "empty"]
+    (tmp_path / "empty").mkdir()
+    broken = tmp_path / "broken"
+    broken.mkdir()
+    (broken / "posterior.nc").write_text("not a netcdf file\n")
+    cases.append(broken)
+    for folder in cases:
+        assert main(["check", str(folder), "--json"]) == 2
+        captured = capsys.readouterr()
+        assert captured.out == ""
+        lines = captured.err.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("bayesgeo check: error:"), captured.err
+    assert main(["check", str(write_fit(tmp_path / "fit")), "--var", "range", "--json"]) == 2
+    assert "'range' not found" in capsys.readouterr().err
+
+
+def test_figures_written_and_folder_refreshed(tmp_path, capsys):
+    """Figures and JSON land in DIR/diagnostics/, which a rerun replaces as a whole (atomic refresh)."""
+    fit = write_fit(tmp_path / "fit", draws=200)
+    (fit / "diagnostics").mkdir()
+    (fit / "diagnostics" / "stale.png").write_text("old")
+    code, out = run_json(capsys, ["check", str(fit), "--json", "--max-lag", "30"])
+    assert code == 0 and out["figure_error"] is None
+    names = sorted(p.name for p in (fit / "diagnostics").iterdir())
+    assert names == ["acf.png", "diagnostics.json", "pair.png", "rank.png", "trace.png"]
+    assert sorted(out["figures"]) == sorted(str(fit / "diagnostics" / n) for n in names if n.endswith(".png"))
+    for n in names:
+        assert (fit / "diagnostics" / n).stat().st_size > 0
+    assert (fit / "posterior.nc").exists()
