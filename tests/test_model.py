@@ -1,0 +1,185 @@
+"""Tests of bayesgeo.model: the log-likelihood, the trend coefficients' conditional posterior, the
+priors as PyMC sees them, standardisation and input checks. No sampling here (see test_sampling)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+from scipy.spatial.distance import cdist
+
+from bayesgeo.data import points_dataset
+from bayesgeo.demo import simulate_field
+from bayesgeo.likelihood import JITTER
+from bayesgeo.model import FitSpec, build_model, model_inputs
+from bayesgeo.priors import pc_range_rate, pc_sd_rate
+from bayesgeo.validate import InputError
+
+
+def _data(n=35, seed=4, positive=False, site=None):
+    rng = np.random.default_rng(seed)
+    xy = np.column_stack([431_000 + 300 * rng.random(n), 5_622_000 + 200 * rng.random(n)])
+    z = simulate_field(xy, covariance="matern32", practical_range=120.0, partial_sill=0.5, nugget=0.1,
+                       mean=2.0, rng=rng) + 0.002 * (xy[:, 0] - 431_150)
+    value = np.exp(z) if positive else z
+    return points_dataset(xy[:, 0], xy[:, 1], value, site=site,
+                          attrs={"source": "sim.csv", "value_column": "conc", "distance_units": "m",
+                                 "value_units": "mg/kg", "coords": "xy"})
+
+
+@pytest.fixture(scope="module")
+def model_and_fns():
+    """One model (trend order 1) and its potential and joint logp, compiled without Numba (fast)."""
+    ds = _data()
+    model, spec = build_model(ds, covariance="matern32", trend=1)
+    (pot,) = model.replace_rvs_by_values([model.potentials[0]])
+    loglik = model.compile_fn(pot, inputs=model.value_vars, mode="FAST_COMPILE", point_fn=False)
+    logp = model.compile_logp(mode="FAST_COMPILE")
+    return ds, model, spec, loglik, logp
+
+
+def _point(model, prange_z, sd_z, nsd_z, beta_z):
+    return {"practical_range_z_log__": np.log(prange_z), "sd_z_log__": np.log(sd_z),
+            "nugget_sd_z_log__": np.log(nsd_z), "beta_z": np.asarray(beta_z, dtype=float)}
+
+
+def _m32(d, phi):
+    """Matérn nu = 3/2 correlation (1 + d/phi) exp(-d/phi) (Diggle and Ribeiro 2007, sec. 3.4; published formula)."""
+    u = d / phi
+    return (1 + u) * np.exp(-u)
+
+
+def test_loglik_equals_scipy_multivariate_normal_in_data_units(model_and_fns):
+    """The model's marginal log-likelihood at fixed parameters equals
+    scipy.stats.multivariate_normal.logpdf of the values in data units (reference library), after the
+    change of variables y = (z - m) / s, whose Jacobian contributes n log s (standard calculus).
+    Distances by scipy.spatial.distance.cdist, correlation by the published Matérn 3/2 formula."""
+    ds, model, spec, loglik, _ = model_and_fns
+    z = ds["value"].values
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    d = cdist(xy, xy)
+    from bayesgeo.trend import design_matrix
+
+    x = design_matrix(ds, 1).values
+    s, dmax = spec.value_sd, spec.distance_scale
+    for prange_z, sd_z, nsd_z, beta_z in [(0.4, 0.9, 0.3, [0.1, -0.2, 0.3]), (1.3, 1.4, 0.05, [0.0, 0.5, 0.0])]:
+        point = _point(model, prange_z, sd_z, nsd_z, beta_z)
+        ours = float(loglik(*[point[v.name] for v in model.value_vars]))
+        # data units
+        phi = prange_z * dmax / spec.range_factor
+        sigma2, tau2 = (sd_z * s) ** 2, (nsd_z * s) ** 2
+        beta = s * np.asarray(beta_z)
+        beta[0] += spec.value_mean
+        cov = sigma2 * _m32(d, phi) + (tau2 + JITTER * sigma2) * np.eye(len(z))
+        ref = stats.multivariate_normal(mean=x @ beta, cov=cov).logpdf(z)
+        assert ours - len(z) * np.log(s) == pytest.approx(ref, rel=1e-9, abs=1e-8)
+
+
+def test_beta_conditional_posterior_is_the_gls_normal(model_and_fns):
+    """With the covariance parameters held fixed, the joint log density as a function of the trend
+    coefficients is, up to a constant, the log density of the conjugate Gaussian linear model's
+    posterior N(m, V), V = (X' K^-1 X + I / b^2)^-1, m = V X' K^-1 y (Gelman et al., BDA3, sec. 14.2;
+    Rasmussen and Williams 2006, sec. 2.7; published formula). Checked exactly at random coefficients."""
+    ds, model, spec, _, logp = model_and_fns
+    from bayesgeo.trend import design_matrix
+
+    x = design_matrix(ds, 1).values
+    y = (ds["value"].values - spec.value_mean) / spec.value_sd
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    d = cdist(xy, xy) / spec.distance_scale
+    prange_z, sd_z, nsd_z = 0.6, 1.1, 0.4
+    k = sd_z**2 * _m32(d, prange_z / spec.range_factor) + (nsd_z**2 + JITTER * sd_z**2) * np.eye(len(y))
+    ki = np.linalg.inv(k)
+    v = np.linalg.inv(x.T @ ki @ x + np.eye(3) / spec.priors.beta_sd**2)
+    m = v @ x.T @ ki @ y
+    post = stats.multivariate_normal(mean=m, cov=v)
+    rng = np.random.default_rng(0)
+    diffs = []
+    for _ in range(6):
+        b = m + rng.normal(0, 0.5, 3)
+        diffs.append(logp(_point(model, prange_z, sd_z, nsd_z, b)) - post.logpdf(b))
+    np.testing.assert_allclose(diffs, diffs[0], rtol=0, atol=1e-8)
+
+
+def test_priors_in_the_model_are_the_pc_priors(model_and_fns):
+    """The sampled practical range has the InverseGamma(1, lambda1) PC prior and the sds the
+    Exponential(lambda2) PC prior, on the standardised scale (reference: scipy.stats.invgamma and
+    expon; Fuglstad et al. 2019, JASA 114), and in data units they meet the stated tails."""
+    import pymc as pm
+
+    _, model, spec, _, _ = model_and_fns
+    lam1 = pc_range_rate(spec.priors.range[0] / spec.distance_scale, spec.priors.range[1])
+    for v in (0.01, 0.2, 3.0):
+        got = pm.logp(model["practical_range_z"], v).eval()
+        assert got == pytest.approx(stats.invgamma(1.0, scale=lam1).logpdf(v), rel=1e-10)
+    lam2 = pc_sd_rate(spec.priors.sd[0] / spec.value_sd, spec.priors.sd[1])
+    assert pm.logp(model["sd_z"], 0.7).eval() == pytest.approx(stats.expon(scale=1 / lam2).logpdf(0.7), rel=1e-10)
+    # tails in data units
+    r0, a1 = spec.priors.range
+    assert stats.invgamma(1.0, scale=lam1).cdf(r0 / spec.distance_scale) == pytest.approx(a1, rel=1e-10)
+    s0, a2 = spec.priors.sd
+    assert stats.expon(scale=1 / lam2).sf(s0 / spec.value_sd) == pytest.approx(a2, rel=1e-10)
+
+
+def test_spec_records_standardisation_and_round_trips(model_and_fns):
+    """FitSpec holds the standardisation constants (mean, sd ddof=1, largest distance by cdist) and
+    survives to_json/from_dict unchanged (needed to rebuild a fit from its file)."""
+    import json
+
+    ds, _, spec, _, _ = model_and_fns
+    z = ds["value"].values
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    assert spec.value_mean == pytest.approx(z.mean())
+    assert spec.value_sd == pytest.approx(z.std(ddof=1))
+    assert spec.distance_scale == pytest.approx(cdist(xy, xy).max())
+    assert spec.terms == ("1", "x", "y") and spec.n == ds.sizes["obs"]
+    assert FitSpec.from_dict(json.loads(spec.to_json())) == spec
+    assert spec.priors.range[0] == pytest.approx(0.05 * spec.distance_scale)  # documented default
+
+
+def test_no_nugget_model_has_no_nugget_variable():
+    """nugget=False drops the nugget variable; the likelihood keeps only the jitter (docs/model.md)."""
+    model, spec = build_model(_data(n=20), covariance="exponential", nugget=False)
+    assert "nugget_sd_z" not in model.named_vars and not spec.nugget
+    assert {"practical_range_z", "sd_z", "beta_z"} <= set(model.named_vars)
+
+
+def test_log_transform_models_the_logarithm():
+    """transform='log' standardises log(values) (spec records it; units labelled log)."""
+    ds = _data(positive=True)
+    spec, y, _, _ = model_inputs(ds, transform="log")
+    z = np.log(ds["value"].values)
+    np.testing.assert_allclose(y, (z - z.mean()) / z.std(ddof=1))
+    assert spec.model_units == "log(mg/kg)"
+
+
+def test_log_transform_refuses_zero_and_negative_values():
+    """Zero or negative values under the log transform: InputError naming the rows and the column."""
+    ds = _data(positive=True)
+    v = ds["value"].values.copy()
+    v[[2, 5]] = [0.0, -1.0]
+    ds["value"] = ("obs", v)
+    with pytest.raises(InputError, match=r"sim.csv: --transform log .* column 'conc' .* rows 4, 7"):
+        build_model(ds, transform="log")
+
+
+def test_several_sites_are_refused_one_site_is_accepted():
+    """The single-site model refuses data holding several sites and accepts a one-site label."""
+    n = 30
+    with pytest.raises(InputError, match="--site: the data hold 2 sites"):
+        build_model(_data(n=n, site=np.array(["a"] * 15 + ["b"] * 15)))
+    spec, *_ = model_inputs(_data(n=n, site=np.array(["a"] * n)))
+    assert spec.n == n
+
+
+@pytest.mark.parametrize("kw, match", [
+    ({"covariance": "cubic"}, "unknown covariance"),
+    ({"covariance": "matern"}, "needs its smoothness"),
+    ({"trend": 5}, "--trend"),
+    ({"transform": "sqrt"}, "--transform"),
+    ({"priors": {"range": (10.0, 2.0)}}, "--prior-range"),
+])
+def test_bad_settings_are_refused(kw, match):
+    """Bad settings raise InputError naming the option (common practice)."""
+    with pytest.raises(InputError, match=match):
+        model_inputs(_data(n=20), **kw)
