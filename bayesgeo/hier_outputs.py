@@ -1,0 +1,336 @@
+"""Outputs of a several-site fit: derived variables in data units, population summaries, the
+new-site predictive distribution, summaries per site, and the shrinkage table and figure.
+
+Conversions from the common standardised scale (:mod:`bayesgeo.hierarchical`): with ``m``, ``s``
+and ``D`` the value mean, value sd and distance scale,
+
+    practical_range = r D,   scale = practical_range / range_factor,
+    partial_sill = sd_z^2 s^2,   nugget = nugget_sd_z^2 s^2,   total_sill = partial_sill + nugget,
+    nugget_ratio = nugget / total_sill,   beta = beta_z s  (+ m for the intercept term "1").
+
+Population quantities under hierarchical pooling (log-normal algebra): the population median of
+the practical range is ``R D`` and its mean ``R D exp(s_r^2 / 2)``; likewise for the partial sill
+with ``S^2 s^2`` and ``s_v``; the median nugget ratio is ``expit(mu_f)``; the log nugget is
+``log partial sill + logit f``, normal with mean ``2 log S + mu_f`` and variance ``s_v^2 + s_f^2``;
+the mean total sill is the sum of the means (linearity of expectation).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import xarray as xr
+
+from bayesgeo.covariance import get_covariance
+
+__all__ = [
+    "CAUTIONS",
+    "PARAMETERS",
+    "add_derived",
+    "new_site_draws",
+    "interval",
+    "parameter_block",
+    "site_blocks",
+    "population_block",
+    "new_site_block",
+    "summary_table",
+    "shrinkage_table",
+    "plot_shrinkage",
+]
+
+#: Cautions carried by every several-site output (they may feed contamination decisions).
+CAUTIONS = (
+    "These estimates describe spatial correlation and variability of the measured values; they are not by "
+    "themselves a basis for a contamination, exposure or remediation decision.",
+    "Apply local regulations and guidance, and have results reviewed by a licensed professional before use in "
+    "any regulatory submission or decision.",
+    "A hierarchical model assumes the sites are exchangeable (alike a priori); sites of a different kind "
+    "(geology, source, sampling method or laboratory) should not share a population.",
+    "The new-site predictive distribution describes a site like those fitted; it is no substitute for sampling "
+    "the new site.",
+)
+
+#: Per-site derived parameters reported in blocks (data units).
+PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio")
+
+
+def _units(spec) -> dict[str, str]:
+    sq = f"({spec.model_units})^2"
+    return {"practical_range": spec.distance_units, "scale": spec.distance_units, "partial_sill": sq,
+            "nugget": sq, "total_sill": sq, "nugget_ratio": "1", "beta": spec.model_units,
+            "microergodic": f"{sq} / ({spec.distance_units})^p"}
+
+
+def _covariance(spec):
+    return get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
+
+
+def _parameters_from(prange, psill, nugget, spec) -> dict[str, xr.DataArray]:
+    """practical_range ... nugget_ratio from data-unit range, partial sill and nugget."""
+    total = psill + nugget
+    out = {"practical_range": prange, "scale": prange / spec.range_factor, "partial_sill": psill,
+           "nugget": nugget, "total_sill": total, "nugget_ratio": nugget / total}
+    units = _units(spec)
+    for k, v in out.items():
+        v.attrs = {"units": units[k]}
+    return out
+
+
+def add_derived(post: xr.Dataset, spec) -> xr.Dataset:
+    """Add per-site and population variables in data units to a posterior ``Dataset`` (returns a copy).
+
+    ``spec`` is the :class:`bayesgeo.hierarchical.SiteSpec` of the fit.
+    """
+    post = post.copy()
+    s2, dsc = spec.value_sd**2, spec.distance_scale
+    prange = post["practical_range_z"] * dsc
+    psill = post["sd_z"] ** 2 * s2
+    nug = post["nugget_sd_z"] ** 2 * s2 if "nugget_sd_z" in post else xr.zeros_like(psill)
+    for k, v in _parameters_from(prange, psill, nug, spec).items():
+        post[k] = v
+    cov = _covariance(spec)
+    post["microergodic"] = xr.apply_ufunc(cov.microergodic, post["partial_sill"], post["scale"])
+    post["microergodic"].attrs = {"units": _units(spec)["microergodic"],
+                                  "long_name": "partial_sill / scale^p (Zhang 2004)",
+                                  "p": float("nan") if cov.microergodic_power is None else cov.microergodic_power}
+    beta = post["beta_z"] * spec.value_sd
+    if "1" in spec.terms:
+        beta = beta + xr.where(beta["term"] == "1", spec.value_mean, 0.0)
+    post["beta"] = beta.transpose(*post["beta_z"].dims)
+    post["beta"].attrs = {"units": spec.model_units,
+                          "long_name": "trend coefficients of each site's centred and scaled design columns"}
+    units = _units(spec)
+    if spec.pooling == "hierarchical":
+        med_r = post["population_range_z"] * dsc
+        med_v = post["population_sd_z"] ** 2 * s2
+        sr, sv = post["range_site_sd"], post["sill_site_sd"]
+        pop = {
+            "population_practical_range_median": med_r,
+            "population_practical_range_mean": med_r * np.exp(0.5 * sr**2),
+            "population_partial_sill_median": med_v,
+            "population_partial_sill_mean": med_v * np.exp(0.5 * sv**2),
+        }
+        if spec.nugget:
+            mu_f, sf = post["nugget_logit_mu"], post["nugget_site_sd"]
+            pop["population_nugget_ratio_median"] = 1.0 / (1.0 + np.exp(-mu_f))
+            pop["population_nugget_median"] = med_v * np.exp(mu_f)
+            pop["population_nugget_mean"] = med_v * np.exp(mu_f + 0.5 * (sv**2 + sf**2))
+        else:
+            pop["population_nugget_ratio_median"] = xr.zeros_like(med_r)
+            pop["population_nugget_median"] = xr.zeros_like(med_r)
+            pop["population_nugget_mean"] = xr.zeros_like(med_r)
+        pop["population_total_sill_mean"] = pop["population_partial_sill_mean"] + pop["population_nugget_mean"]
+    elif spec.pooling == "complete":
+        first = {k: post[k].isel(site=0, drop=True) for k in ("practical_range", "partial_sill", "nugget")}
+        pop = {
+            "population_practical_range_median": first["practical_range"],
+            "population_practical_range_mean": first["practical_range"],
+            "population_partial_sill_median": first["partial_sill"],
+            "population_partial_sill_mean": first["partial_sill"],
+            "population_nugget_ratio_median": first["nugget"] / (first["nugget"] + first["partial_sill"]),
+            "population_nugget_median": first["nugget"],
+            "population_nugget_mean": first["nugget"],
+            "population_total_sill_mean": first["nugget"] + first["partial_sill"],
+        }
+    else:
+        pop = {}
+    for k, v in pop.items():
+        base = k.removeprefix("population_").rsplit("_", 1)[0]
+        post[k] = v
+        post[k].attrs = {"units": units.get(base, ""), "long_name": k.replace("_", " ")}
+    return post
+
+
+def new_site_draws(post: xr.Dataset, spec, *, seed: int) -> xr.Dataset:
+    """Posterior predictive draws of a new site's parameters: one fresh eta ~ N(0, 1) per draw.
+
+    Under complete pooling every site shares the parameters, so the new site gets them too.
+    Returns a ``Dataset`` with dims ``(chain, draw)`` and the variables of :data:`PARAMETERS`.
+    """
+    shape = (post.sizes["chain"], post.sizes["draw"])
+    dims = ("chain", "draw")
+    coords = {"chain": post["chain"], "draw": post["draw"]}
+    if spec.pooling == "hierarchical":
+        rng = np.random.default_rng([int(seed), 6])
+        eta = rng.standard_normal((3, *shape))
+        r = post["population_range_z"].values * np.exp(post["range_site_sd"].values * eta[0])
+        sd = post["population_sd_z"].values * np.exp(0.5 * post["sill_site_sd"].values * eta[1])
+        if spec.nugget:
+            logit_f = post["nugget_logit_mu"].values + post["nugget_site_sd"].values * eta[2]
+            tau2 = sd**2 * np.exp(logit_f)
+        else:
+            tau2 = np.zeros(shape)
+        prange = xr.DataArray(r * spec.distance_scale, dims=dims, coords=coords)
+        psill = xr.DataArray(sd**2 * spec.value_sd**2, dims=dims, coords=coords)
+        nug = xr.DataArray(tau2 * spec.value_sd**2, dims=dims, coords=coords)
+    elif spec.pooling == "complete":
+        prange, psill, nug = (post[k].isel(site=0, drop=True) for k in ("practical_range", "partial_sill", "nugget"))
+    else:
+        raise ValueError("independent pooling has no population, hence no new-site predictive distribution")
+    out = xr.Dataset(_parameters_from(prange, psill, nug, spec))
+    out.attrs = {"what": "posterior predictive distribution of the parameters of a new site like those fitted",
+                 "pooling": spec.pooling, "seed": int(seed)}
+    return out
+
+
+# --- summaries ----------------------------------------------------------------------------------
+
+
+def _hdi(x: np.ndarray, prob: float) -> tuple[float, float]:
+    """Shortest interval holding a share ``prob`` of the draws (highest-density interval)."""
+    s = np.sort(x)
+    n = s.size
+    k = max(1, int(np.floor(prob * n)))
+    widths = s[k:] - s[: n - k]
+    i = int(np.argmin(widths))
+    return float(s[i]), float(s[i + k])
+
+
+def interval(x, prob: float = 0.9) -> dict[str, float]:
+    """mean, sd, equal-tailed quantiles (q05, q50, q95 for prob 0.9) and HDI of a set of draws."""
+    x = np.asarray(x, dtype=float).ravel()
+    lo = (1.0 - prob) / 2.0
+    q = np.quantile(x, [lo, 0.5, 1.0 - lo])
+    tag = f"{100 * lo:02.0f}", f"{100 * (1 - lo):02.0f}"
+    h = _hdi(x, prob)
+    pct = f"{100 * prob:g}"
+    return {"mean": float(x.mean()), "sd": float(x.std(ddof=1)), f"q{tag[0]}": float(q[0]), "q50": float(q[1]),
+            f"q{tag[1]}": float(q[2]), f"hdi{pct}_low": h[0], f"hdi{pct}_high": h[1]}
+
+
+def parameter_block(ds: xr.Dataset, names=PARAMETERS, *, prob: float = 0.9) -> dict:
+    """``{name: interval(...) + units}`` for each scalar variable of ``ds`` (dims chain, draw only)."""
+    out = {}
+    for name in names:
+        if name in ds:
+            out[name] = {**interval(ds[name].values, prob), "units": ds[name].attrs.get("units", "")}
+    return out
+
+
+def site_blocks(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
+    """Per site: the parameter blocks of :data:`PARAMETERS` plus ``n``."""
+    post = tree["posterior"].to_dataset()
+    import json
+
+    spec = json.loads(tree.attrs["settings"])
+    out = {}
+    for i, site in enumerate(post["site"].values):
+        one = post[[p for p in PARAMETERS if p in post]].sel(site=site)
+        out[str(site)] = {"n": int(spec["n"][i]), "parameters": parameter_block(one, prob=prob)}
+    return out
+
+
+def population_block(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
+    """Blocks of the ``population_*`` variables and of the between-site spreads (empty when independent)."""
+    post = tree["posterior"].to_dataset()
+    names = [v for v in post.data_vars if str(v).startswith("population_") and not str(v).endswith("_z")]
+    names += [v for v in ("range_site_sd", "sill_site_sd", "nugget_site_sd") if v in post]
+    return parameter_block(post, names, prob=prob)
+
+
+def new_site_block(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
+    """Blocks of the new-site predictive parameters (empty when independent)."""
+    if "new_site" not in tree.children:
+        return {}
+    return parameter_block(tree["new_site"].to_dataset(), prob=prob)
+
+
+def summary_table(tree: xr.DataTree, *, prob: float = 0.9) -> list[dict]:
+    """Rows (site, parameter, units, mean, sd, quantiles, HDI) for every site, population and new-site
+    parameter, for a CSV summary."""
+    rows = []
+    for site, block in site_blocks(tree, prob=prob).items():
+        for name, vals in block["parameters"].items():
+            rows.append({"site": site, "parameter": name, **vals})
+    for name, vals in population_block(tree, prob=prob).items():
+        rows.append({"site": "(population)", "parameter": name, **vals})
+    for name, vals in new_site_block(tree, prob=prob).items():
+        rows.append({"site": "(new site)", "parameter": name, **vals})
+    return rows
+
+
+# --- shrinkage ----------------------------------------------------------------------------------
+
+
+def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: float = 0.9,
+                    parameters=("practical_range", "partial_sill")) -> xr.Dataset:
+    """Per site, the independent-fit and pooled medians and ``prob`` intervals side by side.
+
+    Parameters
+    ----------
+    pooled : xarray.DataTree
+        A hierarchical (or complete-pooling) fit from :func:`bayesgeo.hierarchical.fit_sites`.
+    independent : xarray.DataTree
+        The ``pooling="independent"`` fit of the same data.
+    prob : float
+        Probability of the equal-tailed intervals.
+
+    Returns
+    -------
+    xarray.Dataset
+        Dims ``(site, parameter)``: ``independent_median``, ``independent_low``,
+        ``independent_high``, ``pooled_median``, ``pooled_low``, ``pooled_high`` and
+        ``width_ratio`` (pooled width / independent width, below 1 where pooling narrowed the
+        interval); coordinate ``n`` (points per site). ``attrs["pooling"]`` names the pooled model.
+    """
+    a = pooled["posterior"].to_dataset()
+    b = independent["posterior"].to_dataset()
+    sites = [str(s) for s in a["site"].values]
+    if sites != [str(s) for s in b["site"].values]:
+        raise ValueError("the two fits have different sites")
+    lo = (1.0 - prob) / 2.0
+    qs = [lo, 0.5, 1.0 - lo]
+    shape = (len(sites), len(parameters))
+    res = {k: np.empty(shape) for k in ("independent", "pooled")}
+    vals = {f"{m}_{s}": np.empty(shape) for m in ("independent", "pooled") for s in ("low", "median", "high")}
+    for j, p in enumerate(parameters):
+        for tag, post in (("independent", b), ("pooled", a)):
+            q = post[p].quantile(qs, dim=("chain", "draw")).transpose("site", "quantile").values
+            vals[f"{tag}_low"][:, j], vals[f"{tag}_median"][:, j], vals[f"{tag}_high"][:, j] = q.T
+            res[tag][:, j] = q[:, 2] - q[:, 0]
+    import json
+
+    n = json.loads(pooled.attrs["settings"])["n"]
+    units = {p: a[p].attrs.get("units", "") for p in parameters}
+    ds = xr.Dataset({k: (("site", "parameter"), v) for k, v in vals.items()},
+                    coords={"site": sites, "parameter": list(parameters), "n": ("site", np.asarray(n, dtype=int)),
+                            "units": ("parameter", [units[p] for p in parameters])})
+    ds["width_ratio"] = (("site", "parameter"), res["pooled"] / res["independent"])
+    ds.attrs = {"prob": prob, "pooling": str(pooled.attrs.get("pooling", "")),
+                "what": "independent-fit versus pooled medians and equal-tailed intervals per site"}
+    return ds
+
+
+def plot_shrinkage(table: xr.Dataset, *, population: xr.Dataset | None = None, title: str | None = None):
+    """Figure of :func:`shrinkage_table`: per site and parameter, the independent interval (grey)
+    above the pooled one (blue); ``population`` (a new-site predictive ``Dataset``) adds its median
+    and interval as a band. Log axes. Returns the matplotlib Figure."""
+    import matplotlib.pyplot as plt
+
+    params = [str(p) for p in table["parameter"].values]
+    sites = [str(s) for s in table["site"].values]
+    fig, axes = plt.subplots(1, len(params), figsize=(4.6 * len(params), 0.55 * len(sites) + 1.8), squeeze=False)
+    prob = float(table.attrs.get("prob", 0.9))
+    ypos = np.arange(len(sites))[::-1]
+    for ax, p in zip(axes[0], params):
+        t = table.sel(parameter=p)
+        ax.hlines(ypos + 0.15, t["independent_low"], t["independent_high"], color="#8c8c8c", lw=2.2,
+                  label="independent")
+        ax.plot(t["independent_median"], ypos + 0.15, "o", color="#525252", ms=4)
+        ax.hlines(ypos - 0.15, t["pooled_low"], t["pooled_high"], color="#2b6ca3", lw=2.2,
+                  label=table.attrs.get("pooling") or "pooled")
+        ax.plot(t["pooled_median"], ypos - 0.15, "o", color="#123f66", ms=4)
+        if population is not None and p in population:
+            lo, med, hi = np.quantile(population[p].values, [(1 - prob) / 2, 0.5, 1 - (1 - prob) / 2])
+            ax.axvspan(lo, hi, color="#f2c14e", alpha=0.18, label="new site")
+            ax.axvline(med, color="#c98b00", lw=1)
+        ax.set_xscale("log")
+        ax.set_yticks(ypos, [f"{s} (n={int(n)})" for s, n in zip(sites, table["n"].values)])
+        units = str(t["units"].item())
+        ax.set_xlabel(f"{p.replace('_', ' ')} ({units})" if units else p.replace("_", " "))
+        ax.grid(axis="x", alpha=0.3)
+    axes[0][0].legend(frameon=False, fontsize=8, loc="best")
+    fig.suptitle(title or f"Shrinkage: medians and {100 * prob:g}% intervals per site")
+    fig.text(0.01, 0.005, "Illustrative model output; decisions rest on local regulation and professional review.",
+             fontsize=7, color="#555555")
+    fig.tight_layout(rect=(0, 0.03, 1, 1))
+    return fig
