@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 import xarray as xr
-from scipy import linalg, optimize, stats
+from scipy import optimize, stats
 
 from bayesgeo import quickfit
 from bayesgeo.covariance import get_covariance
