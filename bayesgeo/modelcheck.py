@@ -1,0 +1,465 @@
+"""Model checks of a fit: leave-one-out comparison of fits and the posterior predictive
+semivariogram check.
+
+Comparison (:func:`compare_fits`). Every fit gets exact Gaussian leave-one-out densities per draw
+(:mod:`bayesgeo.loo`, in data units), PSIS-LOO turns them into the expected log predictive
+density ``elpd_loo`` (Vehtari, Gelman and Gabry 2017, Statistics and Computing 27; Vehtari,
+Simpson, Gelman, Yao and Gabry 2024, JMLR 25), and ``arviz.compare`` ranks the fits and gives
+each one's difference to the best with its standard error. A point whose Pareto shape k exceeds
+0.7 makes its importance-sampling estimate unreliable (Vehtari et al. 2024, sec. 3; the
+threshold ArviZ also applies for large samples); they are counted per fit.
+
+Calibration (:func:`loo_pit`). The probability integral transform of each observation under its
+leave-one-out predictive, ``PIT_i = sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s)``: the exact
+normal predictive of each draw, mixed over draws with the PSIS-smoothed importance weights
+``w_is`` of that point (so the mixture approximates the leave-one-out posterior, not the full
+one). A calibrated model gives PIT values close to uniform on (0, 1) (Gneiting, Balabdaoui and
+Raftery 2007, JRSS B 69). The PIT is the same on the data and on the log scale.
+
+Posterior predictive semivariogram (:func:`variogram_check`). For a set of posterior draws,
+replicate data at the observed locations, ``y_rep ~ N(F beta, K)`` on the standardised scale
+(the nugget included: a replicate is a new set of measurements), back to model units
+``z_rep = m + s y_rep`` (log units under ``transform="log"``). The observed modelled values and
+every replicate get the same treatment: the trend of the fit (same design: polynomial order and
+covariates) is removed by ordinary least squares, as :func:`bayesgeo.trend.fit_trend` does for
+the exploratory semivariogram, and Matheron's classical estimator is computed with the same lag
+bins (:func:`bayesgeo.explore.lag_bins`). The replicate band is therefore the like-for-like
+reference for the observed points (OLS residuals understate the semivariance of the process a
+little, for observed and replicated data alike). The model band is the semivariogram of the
+process, ``gamma(h) = sigma^2 (1 - rho(h)) + tau^2`` per draw, in model units; its median and
+equal-tailed interval are drawn too. The share of replicates whose semivariance is at or above
+the observed one in a bin is a posterior predictive p-value (Gelman, Meng and Stern 1996,
+Statistica Sinica 6); values near 0 or 1 mark bins the model does not reproduce.
+
+These checks judge a statistical model. Results that bear on contamination or exposure support,
+and never replace, licensed professional judgement and the requirements of the local regulator.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+from scipy import special
+
+from bayesgeo.covariance import get_covariance
+from bayesgeo.data import points_dataset
+from bayesgeo.explore import MIN_PAIRS, lag_bins
+from bayesgeo.geometry import distance_matrix
+from bayesgeo.loo import FitArrays, add_log_likelihood, draw_covariances, fit_arrays, loo_predictive
+from bayesgeo.validate import InputError, check_positive_int
+
+__all__ = [
+    "PARETO_K_THRESHOLD",
+    "CAUTION",
+    "open_fit",
+    "check_same_data",
+    "fit_loo",
+    "compare_fits",
+    "loo_pit",
+    "variogram_check",
+]
+
+#: Pareto k above which a PSIS estimate is unreliable (Vehtari et al. 2024, JMLR 25, sec. 3).
+PARETO_K_THRESHOLD = 0.7
+
+CAUTION = (
+    "Model checks judge a statistical model, not the site: results that bear on contamination or exposure "
+    "support, and never replace, licensed professional judgement and the requirements of the local regulator."
+)
+
+
+# --- fits ---------------------------------------------------------------------------------------
+
+
+def open_fit(path: str | Path) -> xr.DataTree:
+    """Read a fit folder (or its ``posterior.nc``) into memory (:func:`bayesgeo.posterior.load_fit`).
+
+    Raises
+    ------
+    InputError
+        Missing folder or file, or a file that is not a readable fit.
+    """
+    from bayesgeo.posterior import load_fit
+
+    tree = load_fit(path)
+    fit_arrays(tree)  # refuse early what the checks cannot use
+    return tree
+
+
+def check_same_data(fits: Mapping[str, FitArrays]) -> list[str]:
+    """Refuse fits made from different data; return cautions for lesser differences.
+
+    Fits match when they hold the same number of points, the same locations and the same
+    measured values (exactly). A different source checksum with identical data is accepted with
+    a caution (for example the same table saved twice).
+
+    Raises
+    ------
+    InputError
+        Naming the first fit that differs from the first one and how.
+    """
+    names = list(fits)
+    ref_name, ref = names[0], fits[names[0]]
+    cautions = []
+    for name in names[1:]:
+        fa = fits[name]
+        why = None
+        if fa.n != ref.n:
+            why = f"{fa.n} points against {ref.n}"
+        elif not np.array_equal(fa.xy, ref.xy):
+            why = "the locations differ"
+        elif not np.array_equal(fa.value, ref.value):
+            why = "the measured values differ"
+        elif fa.spec.distance_units != ref.spec.distance_units:
+            why = f"distance units {fa.spec.distance_units!r} against {ref.spec.distance_units!r}"
+        if why:
+            raise InputError(f"{name}: not fitted to the same data as {ref_name} ({why}); LOO compares fits of one data set")
+        if fa.source_sha256 and ref.source_sha256 and fa.source_sha256 != ref.source_sha256:
+            cautions.append(f"{name} and {ref_name} come from files with different checksums but identical data")
+    return cautions
+
+
+def fit_loo(tree: xr.DataTree):
+    """PSIS-LOO of one fit (``arviz.loo``, pointwise) on exact leave-one-out densities.
+
+    A stored ``log_likelihood`` group of :func:`bayesgeo.loo.add_log_likelihood` is used as is;
+    otherwise the densities are computed. Returns the ArviZ ``ELPDDataLOO`` (``elpd``, ``se``,
+    ``p``, ``pareto_k``, ``log_weights``, ...).
+    """
+    import warnings
+
+    import arviz as az
+
+    fa = fit_arrays(tree)
+    if "log_likelihood" not in tree.children or fa.obs_name not in tree["log_likelihood"].data_vars:
+        tree = add_log_likelihood(tree)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # high Pareto k is reported, not warned
+        return az.loo(tree, pointwise=True, var_name=fa.obs_name)
+
+
+def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO_K_THRESHOLD) -> xr.Dataset:
+    """Rank fits of the same data by their PSIS-LOO expected log predictive density.
+
+    Parameters
+    ----------
+    fits : mapping of str to xarray.DataTree
+        Two or more single-site fits of the same data, by name (for example the fit folder).
+    k_threshold : float
+        Pareto k above which a point's importance-sampling estimate is counted as unreliable
+        (default 0.7, Vehtari et al. 2024).
+
+    Returns
+    -------
+    xarray.Dataset
+        Along ``fit`` (best first): ``rank`` (0 = best), ``covariance``, ``transform``,
+        ``elpd_loo`` and ``se`` (log density of the data in data units, summed over points),
+        ``elpd_diff`` (``elpd_loo`` minus the best one's, <= 0) with its standard error ``dse``,
+        ``p_loo`` (effective number of parameters), ``weight`` (stacking weight),
+        ``pareto_k_high`` (points with k > ``k_threshold``) and ``pareto_k_max``. Attributes:
+        ``cautions`` (list of str), ``k_threshold``, ``method``, ``n``; the pointwise
+        ``elpd_i`` and ``pareto_k`` sit along (``fit``, ``obs``).
+
+    Raises
+    ------
+    InputError
+        Fewer than two fits, or fits of different data.
+    """
+    import arviz as az
+
+    if len(fits) < 2:
+        raise InputError(f"compare: give at least two fits (got {len(fits)})")
+    arrays = {name: fit_arrays(tree) for name, tree in fits.items()}
+    cautions = check_same_data(arrays)
+    elpds = {name: fit_loo(tree) for name, tree in fits.items()}
+    table = az.compare(elpds, round_to="none")
+    order = [str(i) for i in table.index]
+    n = next(iter(arrays.values())).n
+    high = {k: int((np.asarray(e.pareto_k) > k_threshold).sum()) for k, e in elpds.items()}
+    out = xr.Dataset(
+        {
+            "rank": ("fit", table["rank"].to_numpy(dtype=int)),
+            "covariance": ("fit", [_family_label(arrays[k]) for k in order]),
+            "transform": ("fit", [arrays[k].spec.transform or "none" for k in order]),
+            "elpd_loo": ("fit", table["elpd"].to_numpy(dtype=float)),
+            "se": ("fit", table["se"].to_numpy(dtype=float)),
+            "elpd_diff": ("fit", table["elpd_diff"].to_numpy(dtype=float)),
+            "dse": ("fit", table["dse"].to_numpy(dtype=float)),
+            "p_loo": ("fit", table["p"].to_numpy(dtype=float)),
+            "weight": ("fit", table["weight"].to_numpy(dtype=float)),
+            "pareto_k_high": ("fit", [high[k] for k in order]),
+            "pareto_k_max": ("fit", [float(np.max(elpds[k].pareto_k)) for k in order]),
+            "elpd_i": (("fit", "obs"), np.stack([np.asarray(elpds[k].elpd_i) for k in order])),
+            "pareto_k": (("fit", "obs"), np.stack([np.asarray(elpds[k].pareto_k) for k in order])),
+        },
+        coords={"fit": order},
+    )
+    for k in order:
+        if high[k]:
+            cautions.append(f"{k}: {high[k]} of {n} points have Pareto k > {k_threshold:g}; its elpd_loo is "
+                            "unreliable there (Vehtari et al. 2024); a refit leaving those points out would settle it")
+    if n < 100:
+        cautions.append(f"only {n} points: elpd differences have skewed, heavy-tailed errors (Sivula et al. 2022); "
+                        "read a difference under about 4 as no clear preference")
+    best_diff = out["elpd_diff"].values[1:] if len(order) > 1 else np.array([])
+    close = [k for k, d, s in zip(order[1:], best_diff, out["dse"].values[1:]) if abs(d) < 2.0 * s or abs(d) < 4.0]
+    if close:
+        cautions.append(f"{', '.join(close)} not clearly worse than {order[0]} (|elpd_diff| < 4 or < 2 dse)")
+    cautions.append(CAUTION)
+    out.attrs.update({
+        "method": "PSIS-LOO (arviz.loo / arviz.compare) on exact Gaussian leave-one-out densities per draw",
+        "k_threshold": float(k_threshold),
+        "k_threshold_source": "Vehtari, Simpson, Gelman, Yao and Gabry (2024), JMLR 25, Pareto smoothed importance sampling",
+        "n": n,
+        "units": "log density of the measured values in data units (summed over points)",
+        "cautions": cautions,
+    })
+    return out
+
+
+def _family_label(fa: FitArrays) -> str:
+    spec = fa.spec
+    return f"matern (nu={spec.nu:g})" if spec.covariance == "matern" else spec.covariance
+
+
+def loo_pit(tree: xr.DataTree, elpd=None) -> xr.DataArray:
+    """Leave-one-out probability integral transform of each observation.
+
+    Parameters
+    ----------
+    tree : xarray.DataTree
+        A single-site fit.
+    elpd : ELPDDataLOO, optional
+        Result of :func:`fit_loo` for ``tree`` (recomputed when omitted); its PSIS-smoothed log
+        weights mix the per-draw predictives.
+
+    Returns
+    -------
+    xarray.DataArray
+        Along ``obs``, values in [0, 1]:
+        ``PIT_i = sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s)`` (module docstring).
+    """
+    elpd = fit_loo(tree) if elpd is None else elpd
+    fa = fit_arrays(tree)
+    pred = loo_predictive(tree)
+    u = (fa.z[None, None, :] - pred["loo_mean"].values) / pred["loo_sd"].values
+    cdf = special.ndtr(u)  # (chain, draw, obs)
+    lw = elpd.log_weights.transpose("chain", "draw", ...).values
+    w = np.exp(lw - special.logsumexp(lw, axis=(0, 1), keepdims=True))
+    pit = np.clip(np.sum(w * cdf, axis=(0, 1)), 0.0, 1.0)
+    return xr.DataArray(pit, dims=("obs",), coords={"obs": fa.obs_index}, name="loo_pit",
+                        attrs={"method": "exact normal LOO predictive per draw, mixed with PSIS weights"})
+
+
+# --- the posterior predictive semivariogram -----------------------------------------------------
+
+
+def _pair_bins(xy: np.ndarray, metric: str, edges: np.ndarray):
+    """Pairs (i < j) within the largest lag and their bin, binned as bayesgeo.explore does."""
+    d = distance_matrix(xy, metric)
+    i, j = np.triu_indices(xy.shape[0], 1)
+    dij = d[i, j]
+    keep = dij <= edges[-1] * (1.0 + 1e-12)
+    i, j, dij = i[keep], j[keep], dij[keep]
+    nb = edges.size - 1
+    k = np.minimum((dij / (edges[1] - edges[0])).astype(np.int64), nb - 1)
+    return i, j, dij, k
+
+
+def _classical(values: np.ndarray, i, j, k, nb: int, chunk: int = 32) -> np.ndarray:
+    """Matheron semivariance per bin for each column of ``values`` (n, m) -> (m, nb)."""
+    count = np.bincount(k, minlength=nb).astype(float)
+    m = values.shape[1]
+    out = np.empty((m, nb))
+    order = np.argsort(k, kind="stable")
+    ks, ii, jj = k[order], i[order], j[order]
+    starts = np.searchsorted(ks, np.arange(nb))
+    nonempty = count > 0
+    for c0 in range(0, m, chunk):
+        v = values[:, c0:c0 + chunk]
+        sq = (v[ii] - v[jj]) ** 2
+        sums = np.zeros((nb, v.shape[1]))
+        if sq.shape[0]:
+            red = np.add.reduceat(sq, starts[nonempty], axis=0)
+            sums[nonempty] = red
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[c0:c0 + chunk] = (sums / (2.0 * count[:, None])).T
+    return out
+
+
+def _ols_residuals(design: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Residuals of ``values`` (n, m) after least squares on the columns of ``design``."""
+    q, _ = np.linalg.qr(design)
+    return values - q @ (q.T @ values)
+
+
+def _pick_draws(total: int, replicates: int) -> np.ndarray:
+    """Flat draw indices evenly spread over the chains (repeating draws when replicates > total)."""
+    if replicates <= total:
+        return np.unique(np.round(np.linspace(0, total - 1, replicates)).astype(np.int64))
+    return np.arange(replicates) % total
+
+
+def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15, max_lag: float | None = None,
+                    seed: int | None = None, prob: float = 0.9, curve_points: int = 120) -> xr.Dataset:
+    """Posterior predictive check of a fit against the empirical semivariogram.
+
+    Parameters
+    ----------
+    tree : xarray.DataTree
+        A single-site fit.
+    replicates : int
+        Number of replicate data sets (one posterior draw each, evenly spread over the chains;
+        draws are reused with new noise when there are fewer draws than replicates).
+    bins : int
+        Number of lag bins (:func:`bayesgeo.explore.lag_bins`).
+    max_lag : float, optional
+        Largest lag in distance units (default half the largest inter-point distance).
+    seed : int, optional
+        Seed of the replicate noise; a fresh one is drawn and recorded when omitted. The same
+        fit, settings and seed give identical results.
+    prob : float
+        Probability of the equal-tailed bands (default 0.9: the 5% and 95% quantiles).
+    curve_points : int
+        Distances at which the model band is evaluated for the figure.
+
+    Returns
+    -------
+    xarray.Dataset
+        Dimension ``bin`` with coordinates ``lag`` (mean pair distance), ``bin_lower``,
+        ``bin_upper``; variables ``pairs``, ``observed``, ``replicate_q05``, ``replicate_q50``,
+        ``replicate_q95``, ``model_q05``, ``model_q50``, ``model_q95`` (semivariances in squared
+        model units at ``lag``), ``p_value`` (share of replicates at or above the observed),
+        ``outside`` (observed outside the replicate band), ``few_pairs``; ``replicate_semivariance``
+        (replicate, bin) holds every replicate semivariogram; ``curve_q05/q50/q95`` along
+        ``distance`` the model band for figures. Attributes record the method, seed, counts,
+        units and cautions; ``outside_band`` counts bins outside the replicate band.
+
+    Raises
+    ------
+    InputError
+        Bad ``replicates``, ``bins``, ``max_lag``, ``seed`` or ``prob``.
+    """
+    replicates = check_positive_int(replicates, "--replicates")
+    curve_points = check_positive_int(curve_points, "curve_points", minimum=2)
+    if seed is None:
+        from bayesgeo.sampling import new_seed
+
+        seed = new_seed()
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise InputError(f"--seed: expected a non-negative integer, got {seed!r}")
+    if not (0.0 < float(prob) < 1.0):
+        raise InputError(f"prob: expected a probability strictly between 0 and 1, got {prob!r}")
+    fa = fit_arrays(tree)
+    spec = fa.spec
+    ds = points_dataset(fa.xy[:, 0], fa.xy[:, 1], fa.z,
+                        attrs={"coords": "lonlat" if spec.metric == "greatcircle" else "xy"})
+    edges = lag_bins(ds, bins=bins, max_lag=max_lag)
+    nb = edges.size - 1
+    i, j, dij, k = _pair_bins(fa.xy, spec.metric, edges)
+    count = np.bincount(k, minlength=nb)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = 0.5 * (edges[:-1] + edges[1:])
+        lag = np.where(count > 0, np.bincount(k, weights=dij, minlength=nb) / np.maximum(count, 1), centre)
+
+    observed = _classical(_ols_residuals(fa.design, fa.z[:, None]), i, j, k, nb)[0]
+
+    total = fa.draws["sd_z"].size
+    picks = _pick_draws(total, replicates)
+    rng = np.random.default_rng(seed)
+    ys = np.empty((fa.n, picks.size))
+    for col, (_, mu, c) in enumerate(draw_covariances(fa, picks)):
+        chol = np.linalg.cholesky(c)
+        ys[:, col] = mu + chol @ rng.standard_normal(fa.n)
+    zrep = spec.value_mean + spec.value_sd * ys
+    rep = _classical(_ols_residuals(fa.design, zrep), i, j, k, nb)
+
+    lo_q, hi_q = (1.0 - prob) / 2.0, 1.0 - (1.0 - prob) / 2.0
+    rq = np.quantile(rep, [lo_q, 0.5, hi_q], axis=0)
+    mq = _model_band(fa, lag, [lo_q, 0.5, hi_q])
+    dist = np.linspace(0.0, float(edges[-1]), curve_points)
+    cq = _model_band(fa, dist, [lo_q, 0.5, hi_q])
+    with np.errstate(invalid="ignore"):
+        pval = np.where(count > 0, np.mean(rep >= observed[None, :], axis=0), np.nan)
+        outside = (count > 0) & ((observed < rq[0]) | (observed > rq[2]))
+
+    sq = f"({spec.model_units})^2"
+    dunits = spec.distance_units
+    q = _qname
+    data = {
+        "pairs": ("bin", count.astype(np.int64)),
+        "few_pairs": ("bin", count < MIN_PAIRS),
+        "observed": ("bin", observed, {"units": sq, "long_name": "empirical semivariance of the detrended modelled values"}),
+        "replicate_semivariance": (("replicate", "bin"), rep, {"units": sq}),
+        f"replicate_{q(lo_q)}": ("bin", rq[0], {"units": sq, "quantile": lo_q}),
+        "replicate_q50": ("bin", rq[1], {"units": sq, "quantile": 0.5}),
+        f"replicate_{q(hi_q)}": ("bin", rq[2], {"units": sq, "quantile": hi_q}),
+        f"model_{q(lo_q)}": ("bin", mq[0], {"units": sq, "quantile": lo_q}),
+        "model_q50": ("bin", mq[1], {"units": sq, "quantile": 0.5}),
+        f"model_{q(hi_q)}": ("bin", mq[2], {"units": sq, "quantile": hi_q}),
+        "p_value": ("bin", pval, {"definition": "share of replicates with semivariance >= observed"}),
+        "outside": ("bin", outside),
+        f"curve_{q(lo_q)}": ("distance", cq[0], {"units": sq}),
+        "curve_q50": ("distance", cq[1], {"units": sq}),
+        f"curve_{q(hi_q)}": ("distance", cq[2], {"units": sq}),
+    }
+    coords = {
+        "bin": np.arange(nb),
+        "lag": ("bin", lag, {"units": dunits, "long_name": "mean distance of the pairs in the bin"}),
+        "bin_lower": ("bin", edges[:-1], {"units": dunits}),
+        "bin_upper": ("bin", edges[1:], {"units": dunits}),
+        "distance": ("distance", dist, {"units": dunits}),
+        "replicate": np.arange(picks.size),
+        "draw_index": ("replicate", picks, {"long_name": "flat (chain-major) index of the posterior draw"}),
+    }
+    few = [int(b) for b in np.flatnonzero((count > 0) & (count < MIN_PAIRS))]
+    cautions = []
+    if int(outside.sum()):
+        cautions.append(f"{int(outside.sum())} of {int((count > 0).sum())} lag bins lie outside the {prob:.0%} "
+                        "replicate band: the model may not reproduce the spatial structure there")
+    if few:
+        cautions.append(f"lag bins {', '.join(map(str, few))} hold fewer than {MIN_PAIRS} pairs; their semivariances "
+                        "scatter widely")
+    cautions.append("the band is pointwise: with many bins, one or two bins outside it are expected by chance")
+    cautions.append(CAUTION)
+    attrs = {
+        "method": "posterior predictive replicates at the data locations; trend removed by OLS from observed and "
+                  "replicated values alike; classical (Matheron) estimator on shared lag bins",
+        "model_band": "sigma^2 (1 - rho(h)) + tau^2 per posterior draw (all draws)",
+        "replicates": int(picks.size),
+        "draws_total": int(total),
+        "seed": int(seed),
+        "prob": float(prob),
+        "bins": int(nb),
+        "max_lag": float(edges[-1]),
+        "covariance": _family_label(fa),
+        "transform": spec.transform or "none",
+        "trend_terms": list(spec.terms),
+        "model_units": spec.model_units,
+        "distance_units": dunits,
+        "outside_band": int(outside.sum()),
+        "few_pairs_bins": few,
+        "cautions": cautions,
+    }
+    return xr.Dataset(data, coords=coords, attrs=attrs)
+
+
+def _qname(p: float) -> str:
+    return f"q{int(round(p * 100)):02d}"
+
+
+def _model_band(fa: FitArrays, h: np.ndarray, quantiles: Sequence[float]) -> np.ndarray:
+    """Quantiles over draws of gamma(h) = sigma^2 (1 - rho(h)) + tau^2 in squared model units."""
+    spec = fa.spec
+    cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
+    scale = fa.draws["practical_range_z"].reshape(-1) * spec.distance_scale / spec.range_factor
+    s2 = (fa.draws["sd_z"].reshape(-1) * spec.value_sd) ** 2
+    t2 = (fa.draws["nugget_sd_z"].reshape(-1) * spec.value_sd) ** 2
+    h = np.asarray(h, dtype=float)
+    rho = cov.correlation(h[None, :], scale[:, None])
+    gam = s2[:, None] * (1.0 - rho) + np.where(h[None, :] > 0, t2[:, None], 0.0)
+    return np.quantile(gam, list(quantiles), axis=0)
+
