@@ -23,6 +23,7 @@ COMMANDS: dict[str, str] = {
     "explore": "explore",
     "fit": "fit",
     "check": "check",
+    "map": "map",
 }
 
 

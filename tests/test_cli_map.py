@@ -1,0 +1,154 @@
+"""Tests of ``bayesgeo map`` on small fit folders.
+
+The fit folders are built here without sampling: posterior draws are generated around the true
+parameters of a demo parcel (bayesgeo.demo, an invented scenario) in the layout a fit stores
+(``posterior``, ``observed_data``, ``constant_data``, ``sample_stats`` groups, settings as JSON
+in the root attributes, as bayesgeo.posterior.fit writes them), so the command is tested in seconds. Independent draws in every chain pass the
+convergence check; chains centred apart fail it.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from bayesgeo.cli import main
+from bayesgeo.demo import demo_data
+from bayesgeo.map_figures import map_figure
+from bayesgeo.model import model_inputs
+from bayesgeo.posterior import derive
+
+
+def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=250, seed=1):
+    ds = demo_data()
+    ds = ds.isel(obs=np.flatnonzero(ds["site"].values == "mill-pond"))
+    ds = ds.drop_vars("site")
+    truth = json.loads(ds.attrs["truth"])["sites"]["mill-pond"]
+    spec, y, design, dist = model_inputs(ds, covariance="matern32", nugget=True, transform=transform)
+    rng = np.random.default_rng(seed)
+    shape = (chains, draws)
+    shift = np.arange(chains)[:, None] * (3.0 if spread_chains else 0.0)
+    if transform == "log":
+        r0, s0, t0, b0 = (truth["practical_range"], np.sqrt(truth["partial_sill"]), np.sqrt(truth["nugget"]),
+                          truth["log_mean"])
+    else:  # rough values on the raw scale of mg/kg
+        r0, s0, t0, b0 = 150.0, float(np.std(ds["value"].values)), 0.3 * float(np.std(ds["value"].values)), \
+            float(np.mean(ds["value"].values))
+    post = xr.Dataset({
+        "practical_range_z": (("chain", "draw"), r0 / spec.distance_scale * np.exp(0.1 * rng.standard_normal(shape) + shift)),
+        "sd_z": (("chain", "draw"), s0 / spec.value_sd * np.exp(0.1 * rng.standard_normal(shape))),
+        "nugget_sd_z": (("chain", "draw"), t0 / spec.value_sd * np.exp(0.1 * rng.standard_normal(shape))),
+        "beta_z": (("chain", "draw", "term"),
+                   ((b0 - spec.value_mean) / spec.value_sd + 0.05 * rng.standard_normal(shape))[..., None]),
+    }, coords={"chain": np.arange(chains), "draw": np.arange(draws), "term": list(spec.terms)})
+    stats = xr.Dataset({"diverging": (("chain", "draw"), np.zeros(shape, bool)),
+                        "energy": (("chain", "draw"), rng.standard_normal(shape)),
+                        "depth": (("chain", "draw"), np.full(shape, 3)),
+                        "maxdepth_reached": (("chain", "draw"), np.zeros(shape, bool))},
+                       coords={"chain": np.arange(chains), "draw": np.arange(draws)})
+    obs = xr.Dataset({"value": ("obs", ds["value"].values)})
+    const = xr.Dataset({"x": ("obs", ds["x"].values), "y": ("obs", ds["y"].values),
+                        "design": (("obs", "term"), design.values)}, coords={"term": list(spec.terms)})
+    tree = xr.DataTree.from_dict({"posterior": derive(post, spec), "sample_stats": stats, "observed_data": obs,
+                                  "constant_data": const})
+    tree.attrs["settings"] = json.dumps({"model": spec.to_dict()})
+    path.mkdir(parents=True, exist_ok=True)
+    tree.to_netcdf(path / "posterior.nc", engine="netcdf4")
+    return path, ds
+
+
+def _run_json(capsys, argv):
+    code = main(argv)
+    out = capsys.readouterr().out
+    lines = [ln for ln in out.splitlines() if ln.strip()]
+    assert len(lines) == 1, out
+    return code, json.loads(lines[0])
+
+
+def test_map_json_grid_and_area(tmp_path, capsys):
+    """--json prints exactly one object with cells, draws, threshold, area and cautions; the NetCDF
+    holds CF-style attributes and the maps are written. Under the log transform the area mean must
+    exceed exp(area mean of the log-scale median map)... checked loosely: exp is convex, so the
+    mean of a log-normal exceeds its median (Jensen's inequality)."""
+    folder, ds = _fit_folder(tmp_path / "fit")
+    code, out = _run_json(capsys, ["map", str(folder), "--cell", "20", "--threshold", "40", "--threshold", "20",
+                                   "--area", "431350,5622350,431450,5622450", "--draws", "30", "--json"])
+    assert code == 0
+    for key in ("cells", "draws", "threshold", "area", "cautions"):
+        assert key in out
+    assert out["draws"] == 30 and out["threshold"] == [40.0, 20.0] and out["cells"] > 100
+    assert set(out["area"]) >= {"mean", "sd", "q05", "q95", "p_exceed"}
+    assert out["area"]["q05"] < out["area"]["mean"] < out["area"]["q95"]
+    assert any("licensed professional" in c for c in out["cautions"])
+    pred = xr.open_dataset(folder / "predictions.nc")
+    assert pred["mean"].dims == ("y", "x") and pred["p_exceed"].dims == ("threshold", "y", "x")
+    assert pred["mean"].attrs["units"] == "mg/kg" and "long_name" in pred["sd"].attrs
+    assert np.all(pred["mean"].values > pred["q50"].values)  # log-normal: mean > median
+    pe = pred["p_exceed"].values
+    assert np.all(pe[0] <= pe[1] + 1e-12)  # P(> 40) <= P(> 20)
+    pred.close()
+    assert sorted(p.name for p in (folder / "maps").iterdir()) == ["mean.png", "p_exceed_20.png", "p_exceed_40.png",
+                                                                  "sd.png"]
+    # existing outputs are refused without --overwrite (exit 2, input error)
+    assert main(["map", str(folder), "--draws", "5", "--json"]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+
+
+def test_map_points_keep_input_order(tmp_path, capsys):
+    """--points predicts at the listed points in file order along 'target'; without nugget and a
+    raw-scale fit the prediction at a far-away point reverts towards the trend mean (kriging fact:
+    beyond the range the weights vanish; common practice)."""
+    folder, ds = _fit_folder(tmp_path / "fit", transform=None)
+    pts = tmp_path / "targets.csv"
+    pts.write_text("x,y\n431400,5622400\n431300.5,5622301\n440000,5630000\n")
+    code, out = _run_json(capsys, ["map", str(folder), "--points", str(pts), "--threshold", "30", "--nugget",
+                                   "exclude", "--no-figures", "--json"])
+    assert code == 0 and out["cells"] == 3 and out["targets"] == "points"
+    pred = xr.open_dataset(folder / "predictions.nc")
+    np.testing.assert_allclose(pred["x"].values, [431400, 431300.5, 440000])
+    far = float(pred["mean"].values[2])
+    post = xr.open_datatree(folder / "posterior.nc")
+    spec = json.loads(post.attrs["settings"])["model"]
+    beta = post["posterior"]["beta_z"].values.mean() * spec["value_sd"] + spec["value_mean"]
+    assert abs(far - beta) < 0.05 * abs(beta)
+    pred.close()
+    post.close()
+
+
+def test_bad_points_file_names_row_and_column(tmp_path, capsys):
+    """Bad input gives one line naming the file, row and column, and exit status 2 (project rule)."""
+    folder, _ = _fit_folder(tmp_path / "fit")
+    pts = tmp_path / "targets.csv"
+    pts.write_text("x,y\n431400,5622400\n431300,abc\n")
+    assert main(["map", str(folder), "--points", str(pts), "--json"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "row 3" in err and "'y'" in err and str(pts) in err and len(err.splitlines()) == 1
+
+
+def test_unconverged_posterior_is_refused_then_marked(tmp_path, capsys):
+    """Chains centred apart fail the R-hat check (Vehtari et al. 2021 threshold 1.01, via
+    bayesgeo.diagnostics): map exits 3 (the status of a failed check) unless --allow-unconverged,
+    which marks the file attributes and titles NOT CONVERGED."""
+    folder, _ = _fit_folder(tmp_path / "fit", spread_chains=True)
+    code, out = _run_json(capsys, ["map", str(folder), "--draws", "10", "--json"])
+    assert code == 3 and out["convergence"] == "fail"
+    assert not (folder / "predictions.nc").exists()
+    code, out = _run_json(capsys, ["map", str(folder), "--draws", "10", "--cell", "40", "--allow-unconverged",
+                                   "--no-figures", "--json"])
+    assert code == 0 and out["cautions"][0].startswith("NOT CONVERGED")
+    pred = xr.open_dataset(folder / "predictions.nc")
+    assert pred.attrs["convergence_status"] == "NOT CONVERGED" and pred.attrs["title"].startswith("NOT CONVERGED")
+    fig = map_figure(pred, "mean", samples_xy=np.zeros((1, 2)), caution="c", not_converged=True)
+    assert fig.axes[0].get_title().startswith("NOT CONVERGED")
+    pred.close()
+
+
+@pytest.mark.parametrize("bad", [["--draws", "0"], ["--area", "5,5,1,1"], ["--cell", "-3"]])
+def test_bad_options_exit_2(tmp_path, capsys, bad):
+    """Invalid option values are input errors: one line on stderr, exit 2 (project rule)."""
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert main(["map", str(folder), "--no-figures", *bad]) == 2
+    assert len(capsys.readouterr().err.strip().splitlines()) == 1
