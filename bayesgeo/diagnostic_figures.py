@@ -30,6 +30,8 @@ __all__ = ["PAIR_DEFAULT", "write_diagnostic_figures"]
 PAIR_DEFAULT = ("practical_range", "partial_sill", "nugget", "microergodic", "nugget_ratio", "scale", "total_sill")
 _PANELS_PER_PAGE = 12
 _MAX_PAIR = 5
+_MAX_ELEMENTS = 10
+_MAX_PANELS = 30
 
 
 def _save(fig, path: Path, *, overwrite: bool, dpi: int) -> Path:
@@ -121,7 +123,9 @@ def write_diagnostic_figures(
     outdir : str or Path
         Folder for the figures (created if needed).
     var_names : sequence of str, optional
-        Posterior variables to draw; default all numeric ones. The pair plot uses the
+        Posterior variables to draw; default the numeric ones with at most 10 elements, up to
+        30 scalar panels in all (so a latent field does not bury the covariance parameters;
+        name it here to draw it anyway). The pair plot uses the
         covariance parameters in :data:`PAIR_DEFAULT` that are among them (at most 5 scalars).
     max_lag : int, optional
         Largest lag of the ACF panels; default covers the decay (see
@@ -139,6 +143,8 @@ def write_diagnostic_figures(
     outdir = Path(outdir)
     outdir.mkdir(parents=True, exist_ok=True)
     draws = stack_parameters(tree, var_names=var_names)
+    if var_names is None:
+        draws = draws.isel(parameter=np.isin(draws["variable"].values, _default_figure_vars(draws)))
     names = list(dict.fromkeys(str(v) for v in draws["variable"].values))
     paths = _acf_pages(draws, outdir, max_lag=max_lag, overwrite=overwrite, dpi=dpi)
     div = _has_divergences(tree)
@@ -150,6 +156,20 @@ def write_diagnostic_figures(
         pair_kw = {"visuals": {"divergence": True}} if div else {}
         paths.append(_arviz_figure("pair", tree, pair, outdir / "pair.png", overwrite=overwrite, dpi=dpi, **pair_kw))
     return paths
+
+
+def _default_figure_vars(draws: xr.DataArray) -> list[str]:
+    """Variables drawn by default: those with at most 10 elements, until 30 panels (a latent field
+    with one value per sample point would bury the covariance parameters)."""
+    counts: dict[str, int] = {}
+    for v in draws["variable"].values:
+        counts[str(v)] = counts.get(str(v), 0) + 1
+    chosen, total = [], 0
+    for v, n in counts.items():
+        if n <= _MAX_ELEMENTS and total + n <= _MAX_PANELS:
+            chosen.append(v)
+            total += n
+    return chosen or [next(iter(counts))]
 
 
 def _n_scalars(draws: xr.DataArray, names: Sequence[str]) -> int:
