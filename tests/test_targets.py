@@ -1,0 +1,103 @@
+"""Tests of prediction targets (bayesgeo.targets): grids, point files, hull mask, areas."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial import ConvexHull
+
+from bayesgeo import targets as tg
+from bayesgeo.validate import InputError
+
+RNG = np.random.default_rng(7)
+
+
+def test_default_grid_has_about_100_cells_on_the_longer_side_and_covers_the_box():
+    """Cell centres are evenly spaced by the cell size, the grid covers the data box plus the margin
+    (geometry of a regular grid; the ~100-cell default is the project's choice)."""
+    xy = np.column_stack([RNG.uniform(1000, 1400, 50), RNG.uniform(2000, 2250, 50)])
+    g = tg.grid_targets(xy, margin=10.0)
+    assert g.sizes["x"] == 100 and 60 <= g.sizes["y"] <= 70
+    cell = g.attrs["cell"]
+    np.testing.assert_allclose(np.diff(g["x"].values), cell)
+    np.testing.assert_allclose(np.diff(g["y"].values), cell)
+    assert g["x"].values[0] - cell / 2 <= xy[:, 0].min() - 10 + 1e-9
+    assert g["x"].values[-1] + cell / 2 >= xy[:, 0].max() + 10 - 1e-9
+    assert g["y"].values[0] - cell / 2 <= xy[:, 1].min() - 10 + 1e-9
+    assert g["y"].values[-1] + cell / 2 >= xy[:, 1].max() + 10 - 1e-9
+    assert g["inside"].dims == ("y", "x") and g["inside"].values.all()
+    g2 = tg.grid_targets(xy, cell=50.0)
+    assert g2.attrs["cell"] == 50.0 and g2.sizes["x"] == int(np.ceil(np.ptp(xy[:, 0]) / 50))
+
+
+def test_hull_mask_agrees_with_convex_hull_half_planes():
+    """A point is inside the convex hull iff it satisfies every facet inequality a.x + b <= 0 of
+    scipy.spatial.ConvexHull (Qhull's facet equations), an independent route from the Delaunay
+    triangulation used by hull_mask."""
+    xy = RNG.random((40, 2)) * 100
+    pts = RNG.random((2000, 2)) * 140 - 20
+    hull = ConvexHull(xy)
+    ref = np.all(pts @ hull.equations[:, :2].T + hull.equations[:, 2] <= 1e-9, axis=1)
+    np.testing.assert_array_equal(tg.hull_mask(xy, pts), ref)
+    g = tg.grid_targets(xy, cells=30, hull=True)
+    assert 0 < g["inside"].values.mean() < 1
+
+
+def test_point_file_keeps_order_rows_and_covariates(tmp_path):
+    """Targets keep file order; rows are spreadsheet rows (header = row 1, project convention)."""
+    f = tmp_path / "pts.csv"
+    f.write_text("id,Easting,Northing,ph\nA,3,4,6.5\nB,1,2,7.0\n\nC,5,6,5.5\n")
+    ds = tg.read_target_points(f, columns=("ph",))
+    np.testing.assert_array_equal(ds["x"].values, [3, 1, 5])
+    np.testing.assert_array_equal(ds["ph"].values, [6.5, 7.0, 5.5])
+    assert ds.attrs["kind"] == "points" and ds["inside"].values.all()
+    with pytest.raises(InputError, match=r"needs covariate column 'clay'"):
+        tg.read_target_points(f, columns=("clay",))
+
+
+@pytest.mark.parametrize("text,match", [
+    ("x,y\n1,2\n3,\n", r"row 3, column 'y': '' is not a number"),
+    ("a,b\n1,2\n", r"no column 'x'"),
+    ("x,y\n", r"no target points"),
+    ("x,y\n1,inf\n", r"row 2, column 'y': 'inf' is not a finite number"),
+])
+def test_point_file_errors_name_file_row_and_column(tmp_path, text, match):
+    """Bad point files: one-line InputError naming file, row and column (project rule)."""
+    f = tmp_path / "bad.csv"
+    f.write_text(text)
+    with pytest.raises(InputError, match=match) as err:
+        tg.read_target_points(f)
+    assert str(f) in str(err.value) and "\n" not in str(err.value)
+
+
+def test_polygon_area_and_discretisation_centroid():
+    """Shoelace area of an L-shaped polygon (area 300 by hand: 20 x 10 + 10 x 10) and the centroid of
+    the discretisation points against the polygon centroid from the standard formula
+    C = 1/(6A) sum (x_i + x_{i+1})(x_i y_{i+1} - x_{i+1} y_i) (published formula for simple polygons)."""
+    v = np.array([[0, 0], [20, 0], [20, 10], [10, 10], [10, 20], [0, 20]], float)
+    assert tg.polygon_area(v) == pytest.approx(300.0)
+    pts = tg.discretise_area(v, points=400)
+    assert 300 <= len(pts) <= 500
+    x, y = v[:, 0], v[:, 1]
+    x1, y1 = np.roll(x, -1), np.roll(y, -1)
+    cross = x * y1 - x1 * y
+    a = cross.sum() / 2
+    cx, cy = ((x + x1) * cross).sum() / (6 * a), ((y + y1) * cross).sum() / (6 * a)
+    assert abs(pts[:, 0].mean() - cx) < 0.3 and abs(pts[:, 1].mean() - cy) < 0.3
+    assert not np.any((pts[:, 0] > 10) & (pts[:, 1] > 10))  # nothing in the notch
+
+
+def test_area_option_rectangle_or_file(tmp_path):
+    """--area takes four numbers or a vertex file (closed or open ring); bad values are input errors."""
+    v, label = tg.area_from_option("0,0,30,10")
+    assert tg.polygon_area(v) == pytest.approx(300.0) and label.startswith("rectangle")
+    f = tmp_path / "area.csv"
+    f.write_text("x,y\n0,0\n10,0\n0,10\n0,0\n")
+    v2, label2 = tg.area_from_option(str(f))
+    assert len(v2) == 3 and tg.polygon_area(v2) == pytest.approx(50.0) and label2 == "area.csv"
+    for bad in ("5,5,1,1", "1,2,3", "a,b,c,d"):
+        with pytest.raises(InputError, match="--area"):
+            tg.area_from_option(bad)
+    f.write_text("x,y\n0,0\n1,1\n2,2\n")
+    with pytest.raises(InputError, match="positive area"):
+        tg.read_area(f)
