@@ -188,3 +188,21 @@ def test_semivariogram_figure_draws_the_fitted_curves(one_site):
     assert len(ax.collections) >= 2  # permutation band and the points
     cax = correlogram_figure(correlogram(ds, bins=10, permutations=19, seed=1)).axes[0]
     assert "correlation" in cax.get_ylabel() and cax.get_ylim() == (-1.05, 1.05)
+
+
+def test_cli_log_transform_equals_api_on_log_values(tmp_path, capsys):
+    """--transform log analyses log(values): the semivariogram equals the API's on
+    data.apply_transform(ds, "log") (concentrations are modelled on the log scale: common practice)."""
+    from bayesgeo.data import apply_transform
+
+    rows = _rows(60, 5)
+    for r in rows[1:]:
+        r[2] = f"{np.exp(float(r[2])):.4f}"
+    data = tmp_path / "pos.csv"
+    data.write_text("\n".join(",".join(r) for r in rows) + "\n")
+    code = main(["explore", str(data), "--value", "conc", "--transform", "log", "--json", *FAST])
+    obj = json.loads(capsys.readouterr().out)
+    assert code == 0 and obj["settings"]["transform"] == "log"
+    vg = semivariogram(apply_transform(read_points(data, value="conc"), "log"), bins=10, permutations=19, seed=1)
+    np.testing.assert_allclose(obj["semivariogram"]["semivariance"], vg["semivariance"].values, rtol=1e-12)
+    assert obj["value_units"].startswith("log(")

@@ -53,6 +53,8 @@ def add_arguments(p) -> None:
     add_data_options(p)
     p.add_argument("--trend", type=int, default=0, metavar="ORDER",
                    help="polynomial trend order in the coordinates, 0-3 (default 0: constant mean)")
+    p.add_argument("--transform", choices=("none", "log"), default="none",
+                   help="analyse the values as they are (none) or their natural logarithm (log; positive values only)")
     p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
     p.add_argument("--max-lag", type=float, default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
@@ -197,7 +199,9 @@ def run(args) -> int:
     if not 0 <= args.trend <= MAX_ORDER:
         raise InputError(f"--trend: order {args.trend} is not one of 0, 1, 2, 3")
     out = Path(args.out) if args.out else Path(args.data).with_name(Path(args.data).stem + "-explore")
-    ds = read_data(args)
+    from bayesgeo.data import apply_transform
+
+    ds = apply_transform(read_data(args), args.transform)
     refuse_existing(out, args.overwrite)
     families = list(dict.fromkeys(args.covariance or QUICK_FAMILIES))
     labels = sites_of(ds)
@@ -211,7 +215,7 @@ def run(args) -> int:
             objects[label], results[label] = _analyse_site(part, args, families, bar)
 
     first = labels[0]
-    settings = {"trend": args.trend, "covariates": list(args.covariate), "bins": args.bins,
+    settings = {"transform": args.transform, "trend": args.trend, "covariates": list(args.covariate), "bins": args.bins,
                 "max_lag": args.max_lag, "permutations": args.permutations, "estimator": args.estimator,
                 "covariance": families, "seed": args.seed, "azimuths": list(_AZIMUTHS), "tolerance": _TOLERANCE}
     obj = {"data": str(args.data), "out": str(out), "site": first if multi else None,
