@@ -21,7 +21,7 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(VENV)/bin/bayesgeo demo-data --out demo-run/arsenic.csv --overwrite
 	$(VENV)/bin/bayesgeo explore demo-run/arsenic.csv --site parcel --value arsenic_mg_kg --units mg/kg \
-	    --permutations 99 --seed 1 --out demo-run/explore --overwrite
+	    --distance-units m --transform log --permutations 99 --seed 1 --out demo-run/explore --overwrite
 
 test: $(STAMP)
 	$(PY) -m pytest -m "not slow" -n 2 --dist loadfile
