@@ -234,7 +234,7 @@ def test_threshold_overrides_are_checked():
 
 
 def test_funnel_with_nutpie_reports_divergences():
-    """Neal's funnel (Neal 2003, Annals of Statistics 31: v ~ N(0, 3), x_i ~ N(0, exp(v/2))) defeats
+    """Neal's funnel (Neal 2003, Annals of Statistics 31, from memory: v ~ N(0, 3^2), x_i ~ N(0, sd exp(v/2))) defeats
     NUTS in its neck: sampled briefly with nutpie (fixed seed) it gives divergences, which are
     reported with the nutpie statistic names and located at low v (common practice)."""
     pm = pytest.importorskip("pymc")
