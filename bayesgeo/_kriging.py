@@ -314,7 +314,7 @@ def _ndtr_ratio(num, sd):
         return special.ndtr(num / np.maximum(sd, _TINY))
 
 
-def mixture_quantiles(mu, sd, probs: Sequence[float], *, iterations: int = 26) -> np.ndarray:
+def mixture_quantiles(mu, sd, probs: Sequence[float], *, iterations: int = 20) -> np.ndarray:
     """Quantiles of the equal-weight Gaussian mixture over draws, per cell.
 
     Solves mean_d Phi((q - mu_d) / sd_d) = p by vectorised bisection on the bracket
