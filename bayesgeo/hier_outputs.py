@@ -35,6 +35,11 @@ __all__ = [
     "summary_table",
     "shrinkage_table",
     "plot_shrinkage",
+    "site_report",
+    "summary_text_sites",
+    "save_site_fit",
+    "load_site_fit",
+    "with_site_diagnostics",
 ]
 
 #: Cautions carried by every several-site output (they may feed contamination decisions).
@@ -49,8 +54,8 @@ CAUTIONS = (
     "the new site.",
 )
 
-#: Per-site derived parameters reported in blocks (data units).
-PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio")
+#: Per-site derived parameters reported in blocks (data units), as for a single-site fit.
+PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
 
 
 def _units(spec) -> dict[str, str]:
@@ -78,26 +83,18 @@ def _parameters_from(prange, psill, nugget, spec) -> dict[str, xr.DataArray]:
 def add_derived(post: xr.Dataset, spec) -> xr.Dataset:
     """Add per-site and population variables in data units to a posterior ``Dataset`` (returns a copy).
 
-    ``spec`` is the :class:`bayesgeo.hierarchical.SiteSpec` of the fit.
+    ``spec`` is the :class:`bayesgeo.hierarchical.SiteSpec` of the fit. Per-site variables are
+    those of the single-site fit (:func:`bayesgeo.posterior.derive`, same names, units and
+    long names) with a ``site`` dim; without a nugget, ``nugget`` and ``nugget_ratio`` are zero.
     """
-    post = post.copy()
+    from bayesgeo.posterior import derive
+
+    post = derive(post, spec.fit_spec(spec.sites[0]))  # the constants used are common to all sites
+    if "nugget" not in post:
+        sq = f"({spec.model_units})^2"
+        post["nugget"] = xr.zeros_like(post["partial_sill"]).assign_attrs(units=sq, long_name="nugget (none fitted)")
+        post["nugget_ratio"] = xr.zeros_like(post["partial_sill"]).assign_attrs(units="1", long_name="nugget / total sill")
     s2, dsc = spec.value_sd**2, spec.distance_scale
-    prange = post["practical_range_z"] * dsc
-    psill = post["sd_z"] ** 2 * s2
-    nug = post["nugget_sd_z"] ** 2 * s2 if "nugget_sd_z" in post else xr.zeros_like(psill)
-    for k, v in _parameters_from(prange, psill, nug, spec).items():
-        post[k] = v
-    cov = _covariance(spec)
-    post["microergodic"] = xr.apply_ufunc(cov.microergodic, post["partial_sill"], post["scale"])
-    post["microergodic"].attrs = {"units": _units(spec)["microergodic"],
-                                  "long_name": "partial_sill / scale^p (Zhang 2004)",
-                                  "p": float("nan") if cov.microergodic_power is None else cov.microergodic_power}
-    beta = post["beta_z"] * spec.value_sd
-    if "1" in spec.terms:
-        beta = beta + xr.where(beta["term"] == "1", spec.value_mean, 0.0)
-    post["beta"] = beta.transpose(*post["beta_z"].dims)
-    post["beta"].attrs = {"units": spec.model_units,
-                          "long_name": "trend coefficients of each site's centred and scaled design columns"}
     units = _units(spec)
     if spec.pooling == "hierarchical":
         med_r = post["population_range_z"] * dsc
@@ -211,11 +208,11 @@ def site_blocks(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
     post = tree["posterior"].to_dataset()
     import json
 
-    spec = json.loads(tree.attrs["settings"])
+    n = json.loads(tree.attrs["settings"])["model"]["n"]
     out = {}
     for i, site in enumerate(post["site"].values):
         one = post[[p for p in PARAMETERS if p in post]].sel(site=site)
-        out[str(site)] = {"n": int(spec["n"][i]), "parameters": parameter_block(one, prob=prob)}
+        out[str(site)] = {"n": int(n[i]), "parameters": parameter_block(one, prob=prob)}
     return out
 
 
@@ -289,7 +286,7 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
             res[tag][:, j] = q[:, 2] - q[:, 0]
     import json
 
-    n = json.loads(pooled.attrs["settings"])["n"]
+    n = json.loads(pooled.attrs["settings"])["model"]["n"]
     units = {p: a[p].attrs.get("units", "") for p in parameters}
     ds = xr.Dataset({k: (("site", "parameter"), v) for k, v in vals.items()},
                     coords={"site": sites, "parameter": list(parameters), "n": ("site", np.asarray(n, dtype=int)),
@@ -334,3 +331,208 @@ def plot_shrinkage(table: xr.Dataset, *, population: xr.Dataset | None = None, t
              fontsize=7, color="#555555")
     fig.tight_layout(rect=(0, 0.03, 1, 1))
     return fig
+
+
+# --- the fit as a report and on disk -------------------------------------------------------------
+
+#: Name of the NetCDF file of a saved several-site fit (as for a single-site fit).
+FIT_FILE = "posterior.nc"
+
+
+def with_site_diagnostics(tree: xr.DataTree, diagnostics) -> xr.DataTree:
+    """A copy of ``tree`` carrying the diagnostics JSON, with cautions updated for its verdict."""
+    import json
+
+    from bayesgeo.hierarchical import site_cautions, site_spec
+
+    out = tree.copy()
+    diag = _plain(dict(diagnostics))
+    out.attrs["diagnostics"] = json.dumps(diag)
+    out.attrs["cautions"] = json.dumps(site_cautions(site_spec(tree), tree["posterior"].to_dataset(), diag))
+    return out
+
+
+def _plain(obj):
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not np.isfinite(obj):
+        return None
+    return obj
+
+
+def table_rows(ds: xr.Dataset) -> list[dict]:
+    """A shrinkage or design ``Dataset`` as a list of flat rows (one per site and parameter, or spacing)."""
+    frame = ds.to_dataframe().reset_index()
+    return [{k: _plain(v) for k, v in row.items()} for row in frame.to_dict(orient="records")]
+
+
+def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, design: xr.Dataset | None = None,
+                prob: float = 0.9) -> dict:
+    """The several-site fit as one JSON-able dict.
+
+    Keys as for a single-site fit (``parameters``, ``sampler``, ``diagnostics``, ``converged``,
+    ``model``, ``cautions``) plus ``sites`` ({site: {"n", "parameters"}}), ``population``,
+    ``new_site`` and, when given, ``shrinkage`` and ``design`` rows. ``parameters`` holds the
+    population medians under the single-site names (hierarchical pooling), the shared values
+    (complete pooling), or nothing (independent pooling); ``parameters_note`` says which.
+    """
+    import json
+
+    from bayesgeo.hierarchical import site_spec
+
+    settings = json.loads(tree.attrs["settings"])
+    spec = site_spec(tree)
+    post = tree["posterior"].to_dataset()
+    params, note = {}, "independent pooling: no population; see 'sites'"
+    if spec.pooling != "independent":
+        names = {"practical_range": "population_practical_range_median", "partial_sill": "population_partial_sill_median",
+                 "nugget": "population_nugget_median", "nugget_ratio": "population_nugget_ratio_median",
+                 "total_sill": "population_total_sill_mean"}
+        params = {k: {**interval(post[v].values, prob), "units": post[v].attrs.get("units", "")}
+                  for k, v in names.items() if v in post}
+        note = ("population medians (total_sill: population mean) of the hierarchical model"
+                if spec.pooling == "hierarchical" else "values shared by all sites (complete pooling)")
+    smp = settings["sampler"]
+    diag = json.loads(tree.attrs["diagnostics"]) if "diagnostics" in tree.attrs else None
+    out = {
+        "parameters": params,
+        "parameters_note": note,
+        "sampler": {k: smp.get(k2) for k, k2 in (("name", "sampler"), ("chains", "chains"), ("draws", "draws"),
+                                                 ("tune", "tune"), ("seed", "seed"), ("seconds", "seconds"),
+                                                 ("sampling_seconds", "sampling_seconds"),
+                                                 ("target_accept", "target_accept"), ("adaptation", "adaptation"))},
+        "diagnostics": diag,
+        "converged": None if diag is None else diag.get("verdict") != "fail",
+        "model": {"pooling": spec.pooling, "covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget,
+                  "trend": spec.trend, "covariates": list(spec.covariates), "transform": spec.transform,
+                  "n": int(sum(spec.n)), "n_sites": len(spec.sites), "value_units": spec.model_units,
+                  "distance_units": spec.distance_units, "priors": spec.priors.to_dict(),
+                  "hyperpriors": dict(spec.hyperpriors),
+                  "standardisation": {"value_mean": spec.value_mean, "value_sd": spec.value_sd,
+                                      "distance_scale": spec.distance_scale},
+                  "small_sites": list(spec.small_sites)},
+        "sites": site_blocks(tree, prob=prob),
+        "population": population_block(tree, prob=prob),
+        "new_site": new_site_block(tree, prob=prob),
+        "cautions": json.loads(tree.attrs.get("cautions", "[]")),
+    }
+    if shrinkage is not None:
+        out["shrinkage"] = table_rows(shrinkage)
+    if design is not None:
+        out["design"] = {"rows": table_rows(design), "caution": design.attrs.get("caution", ""),
+                         "kind": design.attrs.get("kind"), "neighbours": design.attrs.get("neighbours")}
+    return _plain(out)
+
+
+def summary_text_sites(report: dict) -> str:
+    """Human-readable summary of a :func:`site_report`: one table per site, population, new site."""
+    lines = []
+    diag = report.get("diagnostics")
+    if diag is not None and diag.get("verdict") == "fail":
+        lines += ["*** NOT CONVERGED: do not use these numbers ***", ""]
+    m, s = report["model"], report["sampler"]
+    lines.append(f"bayesgeo fit ({m['pooling']} pooling, {m['n_sites']} sites, n = {m['n']}): {m['covariance']} "
+                 f"covariance, nugget {'yes' if m['nugget'] else 'no'}, trend order {m['trend']}, "
+                 f"transform {m['transform'] or 'none'}")
+    lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), seed {s['seed']}, "
+                 f"{(s['seconds'] or 0):.1f} s")
+    cols = ["mean", "sd", "q05", "q50", "q95"]
+
+    def table(title, block):
+        if not block:
+            return
+        lines.extend(["", title])
+        width = max(len(k) for k in block) + 2
+        lines.append("  " + "parameter".ljust(width) + "".join(c.rjust(11) for c in cols) + "  units")
+        for name, p in block.items():
+            lines.append("  " + name.ljust(width) + "".join(f"{p[c]:11.4g}" for c in cols) + f"  {p['units']}")
+
+    for site, b in report["sites"].items():
+        table(f"site {site} (n = {b['n']})", b["parameters"])
+    table("population", report["population"])
+    table("new site (posterior predictive)", report["new_site"])
+    lines.extend(["", f"diagnostics: {diag.get('verdict', '?').upper() if diag else 'not checked'}", ""])
+    lines += [f"- {c}" for c in report["cautions"]]
+    return "\n".join(lines) + "\n"
+
+
+def _write_csv(path, rows: list[dict], extra: dict | None = None) -> None:
+    import csv
+
+    if not rows:
+        path.write_text("", encoding="utf-8")
+        return
+    fields = list(rows[0].keys()) + list((extra or {}).keys())
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=fields, lineterminator="\n")
+        w.writeheader()
+        for r in rows:
+            w.writerow({**{k: (f"{v:.10g}" if isinstance(v, float) else v) for k, v in r.items()}, **(extra or {})})
+
+
+def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shrinkage: xr.Dataset | None = None,
+                  design: xr.Dataset | None = None):
+    """Write a several-site fit into ``directory`` atomically (:func:`bayesgeo.io.atomic_dir`).
+
+    Files: ``posterior.nc`` (the tree), ``summary.csv`` (one row per site/population/new-site
+    parameter), ``summary.txt``, ``fit.json`` (:func:`site_report`) and, when given,
+    ``shrinkage.csv`` / ``shrinkage.png`` and ``design.csv`` / ``design.png``. An existing
+    folder is refused unless ``overwrite``.
+    """
+    import json
+    from pathlib import Path
+
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    from bayesgeo.design import plot_design
+    from bayesgeo.io import atomic_dir
+
+    report = site_report(tree, shrinkage=shrinkage, design=design)
+    verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
+    flag = "NOT CONVERGED" if verdict == "fail" else verdict
+    with atomic_dir(directory, overwrite=overwrite) as tmp:
+        tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
+        _write_csv(tmp / "summary.csv", summary_table(tree), {"diagnostics": flag})
+        (tmp / "summary.txt").write_text(summary_text_sites(report), encoding="utf-8")
+        (tmp / "fit.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+        suffix = " (NOT CONVERGED)" if verdict == "fail" else ""
+        if shrinkage is not None:
+            _write_csv(tmp / "shrinkage.csv", table_rows(shrinkage))
+            pop = tree["new_site"].to_dataset() if "new_site" in tree.children else None
+            fig = plot_shrinkage(shrinkage, population=pop,
+                                 title=f"Shrinkage: independent vs {shrinkage.attrs.get('pooling')}{suffix}")
+            fig.savefig(tmp / "shrinkage.png", dpi=120)
+            plt.close(fig)
+        if design is not None:
+            _write_csv(tmp / "design.csv", table_rows(design))
+            fig = plot_design(design, title=f"Sampling design for a new site{suffix}")
+            fig.savefig(tmp / "design.png", dpi=120)
+            plt.close(fig)
+    return Path(directory)
+
+
+def load_site_fit(directory) -> xr.DataTree:
+    """Read a several-site fit written by :func:`save_site_fit` (folder or its ``posterior.nc``)."""
+    from pathlib import Path
+
+    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.validate import InputError
+
+    path = Path(directory)
+    if path.is_dir():
+        path = path / FIT_FILE
+    if not path.is_file():
+        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit --site')")
+    try:
+        tree = xr.open_datatree(path, engine="netcdf4").load()
+    except Exception as err:  # noqa: BLE001 - any reader failure is bad input here
+        raise InputError(f"{path}: not a readable NetCDF file ({type(err).__name__}: {err})") from None
+    site_spec(tree)
+    return tree

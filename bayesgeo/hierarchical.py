@@ -75,6 +75,8 @@ __all__ = [
     "build_site_model",
     "fit_sites",
     "site_fit",
+    "site_spec",
+    "site_cautions",
 ]
 
 #: Pooling of the covariance parameters across sites.
@@ -476,53 +478,126 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
                                        priors=priors, min_points=min_points)
     for w in caught:
         warnings.warn(w.message, w.category, stacklevel=2)
-    tree = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
-                  seed=seed, progressbar=progressbar, adaptation=adaptation)
-    post = add_derived(tree["posterior"].to_dataset(), spec)
-    tree["posterior"] = xr.DataTree(post)
-    if spec.pooling != "independent":
-        tree["new_site"] = xr.DataTree(new_site_draws(post, spec, seed=int(tree.attrs["seed"])))
-    obs = xr.Dataset(
-        {"value": ("obs", np.asarray(ds["value"].values, dtype=float), {"units": spec.value_units})},
-        coords={"x": ("obs", np.asarray(ds["x"].values, float)), "y": ("obs", np.asarray(ds["y"].values, float)),
-                "row": ("obs", np.asarray(ds["row"].values)),
-                "site": ("obs", np.asarray(ds["site"].values if "site" in ds.coords
-                                           else np.full(ds.sizes["obs"], "all"), dtype=str))},
+    raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
+                 seed=seed, progressbar=progressbar, adaptation=adaptation)
+    post = add_derived(raw["posterior"].to_dataset(), spec)
+    site_of = np.asarray(ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "all"), dtype=str)
+    obs_coords = {"row": ("obs", np.asarray(ds["row"].values)), "site": ("obs", site_of)}
+    observed = xr.Dataset({"value": ("obs", np.asarray(ds["value"].values, dtype=float),
+                                     {"units": spec.value_units, "long_name": f"measured {spec.value_column}"})},
+                          coords=obs_coords)
+    if spec.transform == "log":
+        observed["model_value"] = ("obs", np.log(observed["value"].values),
+                                   {"units": spec.model_units, "long_name": "log of the measured value"})
+    design = np.zeros((ds.sizes["obs"], len(spec.terms)))
+    for one in data:  # rows of each site, in data order
+        design[np.isin(np.asarray(ds["row"].values), one.rows) & (site_of == one.label)] = one.design
+    constant = xr.Dataset(
+        {"x": ("obs", np.asarray(ds["x"].values, float), {"units": spec.distance_units}),
+         "y": ("obs", np.asarray(ds["y"].values, float), {"units": spec.distance_units}),
+         "design": (("obs", "term"), design, {"long_name": "trend design matrix (each site centred and scaled)"})},
+        coords={**obs_coords, "term": list(spec.terms)},
     )
     for c in spec.covariates:
-        obs[c] = ("obs", np.asarray(ds[c].values, dtype=float))
-    tree["observed_data"] = xr.DataTree(obs)
-    from bayesgeo.hier_outputs import CAUTIONS
-
-    tree.attrs.update({"settings": spec.to_json(), "pooling": spec.pooling, "cautions": json.dumps(list(CAUTIONS)),
-                       "model": "bayesgeo several-site Gaussian-process model"})
+        constant[c] = ("obs", np.asarray(ds[c].values, dtype=float))
+    groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
+              "/observed_data": observed, "/constant_data": constant}
+    if spec.pooling != "independent":
+        groups["/new_site"] = new_site_draws(post, spec, seed=int(raw.attrs["seed"]))
+    tree = xr.DataTree.from_dict(groups)
+    sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
+                                                  "adaptation", "seconds", "sampling_seconds") if k in raw.attrs}
+    settings = {
+        "format": "bayesgeo several-site fit", "format_version": 1, "model": spec.to_dict(),
+        "sampler": sampler_settings, "versions": _versions(),
+        "data": {k: _plain(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs", "x_column",
+                                                           "y_column", "value_column", "site_column")},
+    }
+    tree.attrs = {"title": f"bayesgeo several-site Gaussian-process fit ({spec.pooling} pooling)",
+                  "settings": json.dumps(settings), "pooling": spec.pooling,
+                  "cautions": json.dumps(site_cautions(spec, post))}
     return tree
 
 
+def _plain(v):
+    if isinstance(v, np.generic):
+        return v.item()
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v]
+    return v if isinstance(v, (str, int, float)) or v is None else str(v)
+
+
+def _versions() -> dict:
+    from bayesgeo.posterior import _versions as single_site_versions
+
+    return single_site_versions()
+
+
+def site_spec(tree: xr.DataTree) -> SiteSpec:
+    """The :class:`SiteSpec` recorded in a several-site fit's ``settings`` attribute."""
+    try:
+        settings = json.loads(tree.attrs["settings"])
+        if settings.get("format") != "bayesgeo several-site fit":
+            raise ValueError(f"format {settings.get('format')!r}")
+        return SiteSpec.from_dict(settings["model"])
+    except (KeyError, TypeError, ValueError) as err:
+        raise InputError(f"not a bayesgeo several-site fit (settings missing or unreadable: {err})") from None
+
+
+def site_cautions(spec: SiteSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None) -> list[str]:
+    """Cautions of a several-site fit: the single-site ones, the pooling ones and small-site warnings."""
+    from bayesgeo.hier_outputs import CAUTIONS
+    from bayesgeo.posterior import cautions
+
+    out = cautions(spec.fit_spec(spec.sites[0]), None, diagnostics)
+    if posterior is not None and "practical_range" in posterior:
+        med = posterior["practical_range"].median(dim=("chain", "draw")).values
+        far = [s for s, m, e in zip(spec.sites, med, spec.site_extents) if m > 0.5 * e]
+        if far:
+            out.append(f"At site(s) {', '.join(far)} the posterior median practical range exceeds half the largest "
+                       "distance between that site's samples; the data say little about the range beyond that, so "
+                       "its upper interval reflects the prior and the population (common practice).")
+    out += list(CAUTIONS) if spec.pooling != "independent" else list(CAUTIONS[:2])
+    out += list(spec.warnings)
+    return out
+
+
 def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
-    """One site's draws in the single-site layout of :mod:`bayesgeo.model` / :mod:`bayesgeo.posterior`.
+    """One site's draws in the single-site layout of :mod:`bayesgeo.posterior`.
 
     The ``posterior`` group holds ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (with a nugget),
     ``beta_z`` (dim ``term``) and the derived variables in data units, without the ``site`` dim;
-    ``observed_data`` holds that site's points; the root attr ``settings`` is the JSON of that
-    site's :class:`bayesgeo.model.FitSpec` (common standardisation constants), so single-site code
-    (prediction, maps) runs on it unchanged.
+    ``observed_data`` and ``constant_data`` hold that site's points and design; the root attr
+    ``settings`` is in the single-site format with that site's :class:`bayesgeo.model.FitSpec`
+    (common standardisation constants), so :func:`bayesgeo.posterior.fit_spec` and single-site
+    code (prediction, maps, checks) run on it unchanged.
     """
-    spec = SiteSpec.from_dict(json.loads(tree.attrs["settings"]))
+    spec = site_spec(tree)
     spec.site_index(site)
     post = tree["posterior"].to_dataset()
     keep = [v for v in post.data_vars if "site" in post[v].dims]
-    one = post[keep].sel(site=site, drop=True)
-    out = xr.DataTree()
-    out["posterior"] = xr.DataTree(one)
-    for group in ("sample_stats",):
-        if group in tree.children:
-            out[group] = xr.DataTree(tree[group].to_dataset())
-    if "observed_data" in tree.children:
-        obs = tree["observed_data"].to_dataset()
-        out["observed_data"] = xr.DataTree(obs.isel(obs=np.flatnonzero(obs["site"].values == site)))
-    attrs = {k: v for k, v in tree.attrs.items() if k not in ("settings",)}
-    attrs.update({"settings": spec.fit_spec(site).to_json(), "site": site,
-                  "note": f"site {site!r} extracted from a {spec.pooling} several-site fit"})
-    out.attrs.update(attrs)
+    groups = {"/posterior": post[keep].sel(site=site, drop=True)}
+    if "sample_stats" in tree.children:
+        groups["/sample_stats"] = tree["sample_stats"].to_dataset()
+    for name in ("observed_data", "constant_data"):
+        if name in tree.children:
+            g = tree[name].to_dataset()
+            groups[f"/{name}"] = g.isel(obs=np.flatnonzero(g["site"].values == site)).drop_vars("site")
+    out = xr.DataTree.from_dict(groups)
+    settings = json.loads(tree.attrs["settings"])
+    fs = spec.fit_spec(site)
+    one = {"format": "bayesgeo single-site fit", "format_version": 1, "model": fs.to_dict(),
+           "sampler": settings.get("sampler", {}), "versions": settings.get("versions", {}),
+           "data": settings.get("data", {}),
+           "extracted_from": {"format": settings.get("format"), "pooling": spec.pooling, "site": site}}
+    from bayesgeo.posterior import cautions
+
+    cav = cautions(fs, groups["/posterior"])
+    cav.append(f"Site {site!r} extracted from a {spec.pooling} several-site fit: its parameters borrow strength "
+               "from the other sites." if spec.pooling != "independent"
+               else f"Site {site!r} extracted from an independent several-site fit.")
+    out.attrs = {"title": f"bayesgeo fit of site {site!r} ({spec.pooling} several-site model)",
+                 "settings": json.dumps(one), "cautions": json.dumps(cav), "site": site}
+    if "diagnostics" in tree.attrs:
+        out.attrs["diagnostics"] = tree.attrs["diagnostics"]
     return out

@@ -1,0 +1,104 @@
+"""The several-site branch of ``bayesgeo fit``: data with a site column (``--site COL``).
+
+``bayesgeo.cli.fit`` calls :func:`run_sites` with its parsed arguments and the data it has read
+when the data hold a site column; :func:`add_site_arguments` adds ``--pooling`` and
+``--min-points`` to its parser. Outputs as for one site (``posterior.nc``, ``summary.csv``,
+``summary.txt``, ``fit.json``) plus ``shrinkage.csv``/``shrinkage.png`` (pooled against
+independent fits per site; not for ``--pooling independent``) and ``design.csv``/``design.png``
+(grid spacing against predictive sd for a new site; not for ``--pooling independent``).
+"""
+
+from __future__ import annotations
+
+__all__ = ["add_site_arguments", "run_sites"]
+
+
+def add_site_arguments(p) -> None:
+    """``--pooling``, ``--min-points`` and ``--design-neighbours`` for the several-site model."""
+    from bayesgeo.hierarchical import MIN_POINTS_POLICIES, POOLINGS
+
+    p.add_argument("--pooling", choices=POOLINGS, default="hierarchical",
+                   help="with --site: share covariance parameters through a population (hierarchical, default), "
+                        "not at all (independent) or fully (complete)")
+    p.add_argument("--min-points", choices=MIN_POINTS_POLICIES, default="error",
+                   help="with --site: a site with fewer than 10 points is an error (default) or is kept in the "
+                        "model with a warning (pool)")
+    p.add_argument("--design-neighbours", type=int, default=6, metavar="K",
+                   help="with --site: grid nodes per side (K x K) used by the sampling-design aid (default 6)")
+
+
+def _opt(args, name, default):
+    value = getattr(args, name, default)
+    return default if value is None else value
+
+
+def run_sites(args, ds) -> int:
+    """Fit the several-site model named by ``args`` to ``ds``, write ``args.out``, report.
+
+    Returns the exit status: 0, or 3 when the convergence check fails (as for one site).
+    """
+    import json
+    import sys
+
+    from bayesgeo.cli import EXIT_NOT_CONVERGED
+    from bayesgeo.cli._common import emit_json
+    from bayesgeo.design import design_table
+    from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, summary_text_sites, with_site_diagnostics
+    from bayesgeo.hierarchical import fit_sites, site_spec
+    from bayesgeo.io import refuse_existing
+    from bayesgeo.priors import Priors
+    from bayesgeo.validate import InputError, check_positive_int
+
+    refuse_existing(args.out, args.overwrite)
+    if _opt(args, "prior_nugget", None):
+        raise InputError("--prior-nugget: the several-site model puts its prior on the nugget fraction of the sill "
+                         "(see docs/hierarchical.md); drop --prior-nugget")
+    neighbours = check_positive_int(_opt(args, "design_neighbours", 6), "--design-neighbours", minimum=2)
+    if neighbours % 2:
+        raise InputError(f"--design-neighbours: expected an even number, got {neighbours}")
+    pooling = _opt(args, "pooling", "hierarchical")
+    transform = _opt(args, "transform", None)
+    model_kw = dict(
+        covariance=_opt(args, "covariance", "matern32"), nu=_opt(args, "nu", None),
+        nugget=not _opt(args, "no_nugget", False), trend=_opt(args, "trend", 0),
+        covariates=tuple(_opt(args, "covariate", ())), transform=None if transform == "none" else transform,
+        priors=Priors(range=tuple(args.prior_range) if _opt(args, "prior_range", None) else None,
+                      sd=tuple(args.prior_sd) if _opt(args, "prior_sd", None) else None),
+        min_points=_opt(args, "min_points", "error"),
+    )
+    show = not args.json and sys.stderr.isatty()
+    sample_kw = dict(sampler=_opt(args, "sampler", "nutpie"), chains=_opt(args, "chains", 4),
+                     draws=_opt(args, "draws", 1000), tune=_opt(args, "tune", 1000),
+                     target_accept=_opt(args, "target_accept", 0.9), progressbar=show)
+    if show:
+        print(f"fitting the {pooling} model ...", file=sys.stderr)
+    tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None), **model_kw, **sample_kw)
+    seed = int(json.loads(tree.attrs["settings"])["sampler"]["seed"])  # the independent fit reuses it
+    conv = check_convergence(tree)
+    tree = with_site_diagnostics(tree, conv.to_json())
+    shrink = design = None
+    extra = {}
+    if pooling != "independent":
+        if show:
+            print("fitting each site independently for the shrinkage table ...", file=sys.stderr)
+        indep = fit_sites(ds, pooling="independent", seed=seed, **model_kw, **sample_kw)
+        shrink = shrinkage_table(tree, indep)
+        extra["independent_fit_verdict"] = check_convergence(indep).verdict
+        spec = site_spec(tree)
+        design = design_table(tree["new_site"].to_dataset(), covariance=spec.covariance,
+                              nu=spec.nu if spec.covariance == "matern" else None, neighbours=neighbours,
+                              distance_units=spec.distance_units, value_units=spec.model_units)
+    save_site_fit(tree, args.out, overwrite=args.overwrite, shrinkage=shrink, design=design)
+    report = site_report(tree, shrinkage=shrink, design=design)
+    report.update(extra)
+    report["out"] = str(args.out)
+    if args.json:
+        emit_json(report)
+    else:
+        print(summary_text_sites(report), end="")
+        files = "posterior.nc, summary.csv, summary.txt, fit.json"
+        if shrink is not None:
+            files += ", shrinkage.csv, shrinkage.png, design.csv, design.png"
+        print(f"wrote {args.out}/ ({files})")
+    return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0

@@ -1,0 +1,346 @@
+"""Tests of the several-site model (bayesgeo.hierarchical, bayesgeo.hier_outputs, bayesgeo.cli._sites).
+
+The sampled fits are small (3 sites, 40 + 40 + 12 points, 2 chains x 300 draws) and shared by the
+tests through a module-scoped fixture; larger runs are marked slow.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+
+import numpy as np
+import pytest
+import xarray as xr
+from scipy import stats
+
+from bayesgeo.covariance import get_covariance
+from bayesgeo.data import points_dataset
+from bayesgeo.demo import simulate_field
+from bayesgeo.validate import InputError
+
+#: Known population (log scale of the values; practical range in m) the test sites are drawn from.
+TRUTH = {"range_median": 60.0, "range_sd": 0.3, "sill_median": 1.0, "sill_sd": 0.25, "nugget_ratio": 0.15,
+         "mean": 5.0, "mean_sd": 0.5}
+
+
+def _sites(sizes, seed=11, side=100.0, covariance="matern32"):
+    """Points of several sites, each a square of ``side`` m, parameters drawn from TRUTH."""
+    rng = np.random.default_rng(seed)
+    xs, ys, vs, ss, truth = [], [], [], [], {}
+    for k, n in enumerate(sizes):
+        xy = np.round(rng.random((n, 2)) * side + [2000.0 * k, 0.0], 2)
+        prange = TRUTH["range_median"] * math.exp(TRUTH["range_sd"] * rng.standard_normal())
+        psill = TRUTH["sill_median"] * math.exp(TRUTH["sill_sd"] * rng.standard_normal())
+        nug = TRUTH["nugget_ratio"] / (1 - TRUTH["nugget_ratio"]) * psill
+        mu = TRUTH["mean"] + TRUTH["mean_sd"] * rng.standard_normal()
+        v = simulate_field(xy, covariance=covariance, practical_range=prange, partial_sill=psill, nugget=nug,
+                           mean=mu, rng=rng)
+        xs.append(xy[:, 0]), ys.append(xy[:, 1]), vs.append(v)
+        ss += [f"P{k + 1}"] * n
+        truth[f"P{k + 1}"] = {"practical_range": prange, "partial_sill": psill, "nugget": nug}
+    ds = points_dataset(np.concatenate(xs), np.concatenate(ys), np.concatenate(vs), site=np.array(ss),
+                        attrs={"distance_units": "m", "value_units": "log(mg/kg)", "source": "simulated.csv"})
+    return ds, truth
+
+
+SAMPLE = dict(chains=2, draws=300, tune=300, seed=5)
+
+
+@pytest.fixture(scope="module")
+def fits():
+    from bayesgeo.hierarchical import fit_sites
+
+    ds, truth = _sites([40, 40, 12])
+    hier = fit_sites(ds, pooling="hierarchical", **SAMPLE)
+    indep = fit_sites(ds, pooling="independent", **SAMPLE)
+    return ds, truth, hier, indep
+
+
+# --- no sampling ---------------------------------------------------------------------------------
+
+
+def test_small_site_is_an_error_naming_site_and_rows():
+    """A site with fewer than MIN_POINTS = 10 points: InputError naming the site and its rows (the
+    input-check rule of this project); with min_points="pool" it is kept with a warning."""
+    from bayesgeo.hierarchical import build_site_model, site_inputs
+
+    ds, _ = _sites([20, 6], seed=3)
+    with pytest.raises(InputError, match=r"site 'P2' has only 6 points \(rows 22, 23, 24, 25, 26, 27\).*--min-points pool"):
+        build_site_model(ds)
+    with pytest.warns(UserWarning, match="site 'P2' has only 6 points.*borrows strength"):
+        spec, data = site_inputs(ds, min_points="pool")
+    assert spec.small_sites == ("P2",) and spec.n == (20, 6)
+    assert any("P2" in w for w in spec.warnings)
+    tiny, _ = _sites([20, 2], seed=3)
+    with pytest.raises(InputError, match="site 'P2' has only 2 points.*at least 3"):
+        site_inputs(tiny, min_points="pool")
+    with pytest.raises(InputError, match="--pooling"):
+        site_inputs(ds, pooling="partial")
+
+
+def test_common_standardisation():
+    """Common scale (docs/hierarchical.md): m = mean of all values, s^2 = pooled within-site residual
+    variance sum RSS_s / sum (n_s - p), D = median of the per-site largest distances (checked with
+    numpy and scipy.spatial.distance.pdist); with one site these are the single-site constants of
+    bayesgeo.model.model_inputs."""
+    from scipy.spatial.distance import pdist
+
+    from bayesgeo.hierarchical import site_inputs
+    from bayesgeo.model import model_inputs
+
+    ds, _ = _sites([30, 25, 15], seed=4)
+    spec, data = site_inputs(ds)
+    z = ds["value"].values
+    groups = [z[ds["site"].values == s] for s in ("P1", "P2", "P3")]
+    pooled = sum(((g - g.mean()) ** 2).sum() for g in groups) / sum(len(g) - 1 for g in groups)
+    assert spec.value_mean == pytest.approx(z.mean())
+    assert spec.value_sd == pytest.approx(math.sqrt(pooled))
+    ext = [pdist(np.column_stack([ds["x"].values, ds["y"].values])[ds["site"].values == s]).max()
+           for s in ("P1", "P2", "P3")]
+    assert spec.distance_scale == pytest.approx(np.median(ext))
+    np.testing.assert_allclose(data[1].y, (groups[1] - z.mean()) / math.sqrt(pooled))
+    one = ds.isel(obs=np.flatnonzero(ds["site"].values == "P1"))
+    s1, _ = site_inputs(one)
+    single, *_ = model_inputs(one.drop_vars("site"))
+    assert (s1.value_mean, s1.value_sd, s1.distance_scale) == pytest.approx(
+        (single.value_mean, single.value_sd, single.distance_scale))
+    assert s1.rates == pytest.approx({k: single.rates[k] for k in ("range", "sd")})
+
+
+@pytest.mark.parametrize("pooling", ["hierarchical", "independent", "complete"])
+def test_likelihood_is_sum_of_site_blocks(pooling):
+    """The model's log-likelihood is the sum over sites of one multivariate normal each, with that
+    site's own parameters and distances (sites independent given the parameters), checked against
+    scipy.stats.multivariate_normal.logpdf with K = sigma2 R + (tau2 + 1e-6 sigma2) I (likelihood.py
+    jitter policy). Under complete pooling the covariance parameters are equal across sites."""
+    import pymc as pm
+
+    from bayesgeo.hierarchical import build_site_model, site_inputs
+
+    ds, _ = _sites([15, 12, 11], seed=8)
+    model, spec = build_site_model(ds, pooling=pooling, trend=1)
+    _, data = site_inputs(ds, pooling=pooling, trend=1)
+    rng = np.random.default_rng(0)
+    point = {k: v + 0.3 * rng.standard_normal(np.shape(v)) for k, v in model.initial_point().items()}
+    pots = [model[f"loglik_{i}"] for i in range(3)]
+    outs = [model["practical_range_z"], model["sd_z"], model["nugget_sd_z"], model["beta_z"], *pots]
+    fn = model.compile_fn(model.replace_rvs_by_values(outs), inputs=model.value_vars, mode="FAST_COMPILE",
+                          on_unused_input="ignore")
+    r, sd, tau, beta, *ll = fn(point)
+    cov = get_covariance("matern32")
+    for i, d in enumerate(data):
+        k = sd[i] ** 2 * cov.correlation(d.dist, r[i] / cov.range_factor)
+        k[np.diag_indices_from(k)] += tau[i] ** 2 + 1e-6 * sd[i] ** 2
+        ref = stats.multivariate_normal(mean=d.design @ beta[i], cov=k).logpdf(d.y)
+        assert ll[i] == pytest.approx(ref, rel=1e-8, abs=1e-8)
+    if pooling == "complete":
+        assert np.ptp(r) == 0 and np.ptp(sd) == 0 and np.ptp(tau) == 0
+    else:
+        assert np.ptp(r) > 0
+    assert isinstance(model, pm.Model)
+
+
+def test_spec_round_trip():
+    """SiteSpec.to_dict/from_dict invert each other through JSON (internal consistency)."""
+    from bayesgeo.hierarchical import SiteSpec, site_inputs
+
+    ds, _ = _sites([15, 12], seed=2)
+    spec, _ = site_inputs(ds, trend=1)
+    again = SiteSpec.from_dict(json.loads(spec.to_json()))
+    assert again.to_dict() == spec.to_dict()
+    assert again.fit_spec("P2").n == 12
+
+
+# --- sampled fits --------------------------------------------------------------------------------
+
+
+def test_population_intervals_cover_truth(fits):
+    """Sites simulated from a known population (bayesgeo.demo.simulate_field): the 98% posterior
+    intervals of the population median practical range, median partial sill and median nugget ratio
+    cover the true values (a calibrated posterior covers the truth with the stated probability; with
+    three checks at 98% a correct model fails about 6% of seeds; the seed here is fixed)."""
+    _, _, hier, _ = fits
+    post = hier["posterior"].to_dataset()
+    for name, true in (("population_practical_range_median", TRUTH["range_median"]),
+                       ("population_partial_sill_median", TRUTH["sill_median"]),
+                       ("population_nugget_ratio_median", TRUTH["nugget_ratio"])):
+        lo, hi = np.quantile(post[name].values, [0.01, 0.99])
+        assert lo < true < hi, (name, lo, true, hi)
+    assert post["practical_range"].attrs["units"] == "m"
+    assert post["partial_sill"].attrs["units"] == "(log(mg/kg))^2"
+
+
+def test_small_site_borrows_strength(fits):
+    """Partial pooling narrows the interval of a data-poor group (Gelman et al. 2013, Bayesian Data
+    Analysis, 3rd ed., ch. 5): the 12-point site's 90% interval of the practical range and of the
+    partial sill is narrower in the hierarchical fit than in the independent one."""
+    from bayesgeo.hier_outputs import shrinkage_table
+
+    _, _, hier, indep = fits
+    tab = shrinkage_table(hier, indep)
+    assert tab["n"].sel(site="P3") == 12
+    ratio = tab["width_ratio"].sel(site="P3")
+    assert float(ratio.sel(parameter="practical_range")) < 1.0
+    assert float(ratio.sel(parameter="partial_sill")) < 1.0
+    ind = indep["posterior"]["practical_range"].sel(site="P3").quantile([0.05, 0.95]).values
+    np.testing.assert_allclose(tab["independent_low"].sel(site="P3", parameter="practical_range"), ind[0])
+
+
+def test_convergence_check_covers_every_site_parameter(fits):
+    """bayesgeo.diagnostics.check_convergence reports R-hat and ESS (Vehtari et al. 2021) for every
+    element of every site-level variable and every hyperparameter of the hierarchical fit."""
+    from bayesgeo.diagnostics import check_convergence
+
+    _, _, hier, _ = fits
+    conv = check_convergence(hier)
+    labels = {str(p) for p in conv.parameters["parameter"].values}
+    for site in ("P1", "P2", "P3"):
+        for v in ("practical_range", "partial_sill", "nugget", "range_eta", "sill_eta", "nugget_eta"):
+            assert f"{v}[{site}]" in labels
+    for v in ("population_range_z", "range_site_sd", "population_sd_z", "sill_site_sd", "nugget_logit_mu",
+              "nugget_site_sd", "population_practical_range_median"):
+        assert v in labels
+    assert np.all(np.isfinite(conv.parameters["rhat"].values))
+    assert conv.verdict in ("pass", "warn", "fail")
+
+
+def test_derived_and_population_algebra(fits):
+    """Derived variables in data units equal the standardised draws rescaled (practical range = D r,
+    partial sill = s^2 sd_z^2, nugget ratio = tau2 / (sigma2 + tau2)); the population mean of a
+    log-normal is median exp(s^2 / 2) (standard result, checked here by Monte Carlo per draw); the
+    new-site draws are reproducible from the seed and their mean matches the population mean (law of
+    total expectation, Monte Carlo tolerance 15%)."""
+    from bayesgeo.hier_outputs import new_site_draws
+    from bayesgeo.hierarchical import site_spec
+
+    _, _, hier, _ = fits
+    spec = site_spec(hier)
+    post = hier["posterior"].to_dataset()
+    np.testing.assert_allclose(post["practical_range"], post["practical_range_z"] * spec.distance_scale)
+    np.testing.assert_allclose(post["partial_sill"], post["sd_z"] ** 2 * spec.value_sd**2)
+    np.testing.assert_allclose(post["nugget_ratio"], post["nugget"] / (post["nugget"] + post["partial_sill"]))
+    rng = np.random.default_rng(1)
+    med = post["population_practical_range_median"].values.ravel()[:50]
+    sr = post["range_site_sd"].values.ravel()[:50]
+    mc = (med[:, None] * np.exp(sr[:, None] * rng.standard_normal((50, 20000)))).mean(axis=1)
+    np.testing.assert_allclose(post["population_practical_range_mean"].values.ravel()[:50], mc, rtol=0.03)
+    new = hier["new_site"].to_dataset()
+    again = new_site_draws(post, spec, seed=SAMPLE["seed"])
+    xr.testing.assert_allclose(new["practical_range"], again["practical_range"])
+    assert float(new["practical_range"].mean()) == pytest.approx(
+        float(post["population_practical_range_mean"].mean()), rel=0.15)
+
+
+def test_site_fit_has_single_site_layout(fits):
+    """site_fit gives one site's draws in the layout of bayesgeo.posterior (same variable names, no
+    site dim, single-site settings readable by bayesgeo.posterior.fit_spec) (internal contract)."""
+    from bayesgeo.hierarchical import site_fit
+    from bayesgeo.posterior import fit_spec
+
+    _, _, hier, _ = fits
+    one = site_fit(hier, "P3")
+    post = one["posterior"].to_dataset()
+    assert "site" not in post.dims
+    for v in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z", "practical_range", "partial_sill", "nugget"):
+        assert v in post
+    np.testing.assert_array_equal(post["practical_range"].values,
+                                  hier["posterior"]["practical_range"].sel(site="P3").values)
+    spec = fit_spec(one)
+    assert spec.n == 12 and spec.terms == ("1",)
+    assert one["constant_data"]["x"].size == 12 and one["observed_data"]["value"].size == 12
+    with pytest.raises(InputError, match="site 'P9' is not in this fit"):
+        site_fit(hier, "P9")
+
+
+def test_save_report_and_load(fits, tmp_path):
+    """Outputs: posterior.nc, summary.csv, summary.txt, fit.json, shrinkage.csv/png, design.csv/png
+    written atomically, refused when present (project rule), loaded back unchanged; the report carries
+    sites, population, new_site and cautions that defer to local regulation."""
+    from bayesgeo.design import design_table
+    from bayesgeo.hier_outputs import load_site_fit, save_site_fit, shrinkage_table, site_report
+
+    _, _, hier, indep = fits
+    shrink = shrinkage_table(hier, indep)
+    design = design_table(hier["new_site"].to_dataset(), max_draws=60, distance_units="m")
+    out = tmp_path / "fit"
+    save_site_fit(hier, out, shrinkage=shrink, design=design)
+    for f in ("posterior.nc", "summary.csv", "summary.txt", "fit.json", "shrinkage.csv", "shrinkage.png",
+              "design.csv", "design.png"):
+        assert (out / f).stat().st_size > 0, f
+    with pytest.raises(InputError, match="already exists"):
+        save_site_fit(hier, out)
+    back = load_site_fit(out)
+    np.testing.assert_array_equal(back["posterior"]["practical_range"].values, hier["posterior"]["practical_range"].values)
+    rep = json.loads((out / "fit.json").read_text())
+    assert set(rep["sites"]) == {"P1", "P2", "P3"}
+    assert {"practical_range", "partial_sill", "nugget", "total_sill"} <= set(rep["sites"]["P1"]["parameters"])
+    assert {"q05", "q50", "q95", "mean", "sd"} <= set(rep["parameters"]["practical_range"])
+    assert "population_practical_range_median" in rep["population"]
+    assert "practical_range" in rep["new_site"]
+    assert any("regulat" in c for c in rep["cautions"]) and any("professional" in c for c in rep["cautions"])
+    assert len(rep["shrinkage"]) == 6 and len(rep["design"]["rows"]) == 16
+    assert site_report(hier)["model"]["n"] == 92
+    lines = (out / "summary.csv").read_text().splitlines()
+    assert lines[0].startswith("site,parameter,mean,sd,q05,q50,q95")
+    assert len(lines) > 3 * 6
+
+
+# --- slow: single-site reduction and the command line ---------------------------------------------
+
+
+@pytest.mark.slow
+def test_single_site_reduces_to_single_site_fit():
+    """With one site the hierarchical model's population-location priors are the single-site PC priors
+    (Fuglstad et al. 2019) and only the between-site spreads (HalfNormal(0.5) on log scales) and the
+    nugget parametrisation differ, so on 120 points its practical range and partial sill quantiles
+    (5%, 50%, 95%) agree with bayesgeo.posterior.fit within 25% (Monte Carlo error of ~1,000 draws plus
+    that small prior difference; tolerance chosen, not published)."""
+    from bayesgeo.hierarchical import fit_sites
+    from bayesgeo.posterior import fit
+
+    ds, _ = _sites([120], seed=21)
+    kw = dict(chains=2, draws=600, tune=600, seed=3)
+    one = fit(ds.drop_vars("site"), **kw)
+    hier = fit_sites(ds, pooling="hierarchical", **kw)
+    for name in ("practical_range", "partial_sill"):
+        a = np.quantile(one["posterior"][name].values, [0.05, 0.5, 0.95])
+        b = np.quantile(hier["posterior"][name].sel(site="P1").values, [0.05, 0.5, 0.95])
+        np.testing.assert_allclose(b, a, rtol=0.25, err_msg=name)
+
+
+@pytest.mark.slow
+def test_cli_run_sites_json(tmp_path, capsys):
+    """`bayesgeo fit DATA --site COL` branch: exactly one JSON object on stdout with the single-site keys
+    plus sites, population, new_site, shrinkage, design and cautions; the folder holds the promised
+    files (project contract with cli/fit.py)."""
+    import argparse
+
+    from bayesgeo.cli import fit as fit_cli
+    from bayesgeo.cli._sites import add_site_arguments, run_sites
+    from bayesgeo.cli._common import read_data
+
+    ds, _ = _sites([25, 20], seed=6)
+    csv = tmp_path / "pts.csv"
+    with csv.open("w") as fh:
+        fh.write("parcel,x,y,arsenic\n")
+        for s, x, y, v in zip(ds["site"].values, ds["x"].values, ds["y"].values, ds["value"].values):
+            fh.write(f"{s},{x},{y},{v}\n")
+    p = argparse.ArgumentParser()
+    fit_cli.add_arguments(p)
+    if not any(a.dest == "pooling" for a in p._actions):
+        add_site_arguments(p)
+    args = p.parse_args([str(csv), "--site", "parcel", "--value", "arsenic", "--covariance", "matern32",
+                         "--draws", "150", "--tune", "150", "--chains", "2", "--seed", "4", "--out",
+                         str(tmp_path / "out"), "--json"])
+    status = run_sites(args, read_data(args))
+    out = capsys.readouterr().out.strip().splitlines()
+    assert len(out) == 1
+    rep = json.loads(out[0])
+    assert status in (0, 3)
+    for key in ("parameters", "sampler", "diagnostics", "cautions", "sites", "population", "new_site",
+                "shrinkage", "design"):
+        assert key in rep
+    for f in ("shrinkage.csv", "shrinkage.png", "design.csv", "design.png", "posterior.nc", "fit.json"):
+        assert (tmp_path / "out" / f).exists()
