@@ -119,7 +119,8 @@ class KrigingBasis:
 
 
 def make_basis(xy, values, design, *, covariance: Covariance | str, scale, partial_sill, nugget, beta,
-               metric: str = "euclidean", transform: str | None = None, jitter: float = JITTER) -> KrigingBasis:
+               metric: str = "euclidean", transform: str | None = None, jitter: float = JITTER,
+               max_bytes: float = 4 * 2**30) -> KrigingBasis:
     """Factorise the data covariance of every draw once.
 
     Parameters
@@ -140,6 +141,8 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
     transform : {None, "log"}
     jitter : float
         Added to the diagonal as ``jitter * sigma2`` (keeps K invertible without a nugget).
+    max_bytes : float
+        Refuse (InputError naming ``--draws``) when the D factors of n x n would exceed this.
 
     Returns
     -------
@@ -161,6 +164,10 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
         raise ValueError(f"transform must be None or 'log', got {transform!r}")
     if np.any(~(scale > 0)) or np.any(~(psill > 0)) or np.any(~(tau2 >= 0)):
         raise ValueError("every draw needs scale > 0, partial_sill > 0 and nugget >= 0")
+    need = 8.0 * d_count * n * n
+    if need > max_bytes:
+        raise InputError(f"--draws: {d_count} draws x {n} points need {need / 2**30:.1f} GiB of Cholesky factors "
+                         f"(limit {max_bytes / 2**30:.1f} GiB); use at most {int(max_bytes // (8.0 * n * n))} draws")
     dist = distance_matrix(xy, metric)
     chol, alpha = [], np.empty((d_count, n))
     for k in range(d_count):

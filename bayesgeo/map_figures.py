@@ -35,7 +35,7 @@ def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None,
     Parameters
     ----------
     pred : xarray.Dataset
-        Output of :func:`bayesgeo.predict.predict`.
+        Output of :func:`bayesgeo.predict.predict_targets`.
     variable : str
         ``mean``, ``sd``, ``q05``, ``q50``, ``q95`` or ``p_exceed``.
     threshold : int, optional

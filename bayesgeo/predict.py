@@ -5,7 +5,7 @@ The steps, each a function on explicit inputs (nothing is remembered between cal
 1. :func:`posterior_parameters`: posterior draws of the model (standardised scale, see
    :mod:`bayesgeo.model`) to data units, thinned to ``draws`` evenly spaced draws;
 2. :func:`basis_from_fit`: the data covariance of every draw factorised once;
-3. :func:`predict`: per draw the Gaussian conditional mean and variance at every target (simple
+3. :func:`predict_targets`: per draw the Gaussian conditional mean and variance at every target (simple
    kriging given the draw's trend coefficients), combined over draws into predictive mean, sd,
    5/50/95% quantiles and P(Z > T) per threshold; targets are split into chunks of cells run as
    dask tasks, each chunk reducing over all draws;
@@ -51,7 +51,7 @@ __all__ = [
     "mixture_quantiles",
     "mixture_summary",
     "posterior_parameters",
-    "predict",
+    "predict_targets",
     "target_design",
 ]
 
@@ -202,7 +202,7 @@ def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, s
         return client.gather(futures)
 
 
-def predict(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Sequence[float] = (),
+def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Sequence[float] = (),
             include_nugget: bool = True, design_attrs: dict | None = None, chunk_cells: int = 4096,
             scheduler: str = "threads", units: str = "", progress=None) -> xr.Dataset:
     """Predictive summaries at every target (grid cells or points).

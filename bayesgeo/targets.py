@@ -1,6 +1,6 @@
 """Where to predict: regular grids, point lists, the convex-hull mask and areas.
 
-Targets are ``xarray.Dataset`` objects that :func:`bayesgeo.predict.predict` accepts:
+Targets are ``xarray.Dataset`` objects that :func:`bayesgeo.predict.predict_targets` accepts:
 
 * a grid (``attrs["kind"] == "grid"``): 1-D coordinates ``x`` and ``y`` at cell centres and a
   boolean ``inside`` on dims ``(y, x)`` (false for masked cells, which are not computed);

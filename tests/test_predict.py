@@ -177,8 +177,8 @@ def test_results_do_not_depend_on_chunking_or_scheduler():
     Requirement of the project (reproducibility), no outside reference needed."""
     basis = _basis_three_draws()
     grid = grid_targets(basis.xy, cells=12, hull=True)
-    a = P.predict(basis, grid, thresholds=[1.0, 2.0], chunk_cells=7, scheduler="synchronous")
-    b = P.predict(basis, grid, thresholds=[1.0, 2.0], chunk_cells=10_000, scheduler="threads")
+    a = P.predict_targets(basis, grid, thresholds=[1.0, 2.0], chunk_cells=7, scheduler="synchronous")
+    b = P.predict_targets(basis, grid, thresholds=[1.0, 2.0], chunk_cells=10_000, scheduler="threads")
     for name in ("mean", "sd", "q05", "q50", "q95", "p_exceed"):
         np.testing.assert_array_equal(a[name].values, b[name].values)
     outside = ~grid["inside"].values

@@ -129,7 +129,7 @@ def run(args) -> int:
             print(f"bayesgeo map: {msg}", file=sys.stderr)
         return EXIT_NOT_CONVERGED
 
-    from bayesgeo.predict import CAUTION, area_average, make_basis, posterior_parameters, predict
+    from bayesgeo.predict import CAUTION, area_average, make_basis, posterior_parameters, predict_targets
     from bayesgeo.trend import design_at
 
     xy, z, design = fit_data(tree, spec)
@@ -149,7 +149,7 @@ def run(args) -> int:
     units = spec.value_units
     n_cells = int(np.count_nonzero(targets["inside"].values))
     bar = progress(total=max(1, -(-n_cells // chunk)), desc="map", enabled=not args.json)
-    pred = predict(basis, targets, thresholds=args.threshold, include_nugget=args.nugget == "include",
+    pred = predict_targets(basis, targets, thresholds=args.threshold, include_nugget=args.nugget == "include",
                    design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
                    progress=bar)
     bar.close()
