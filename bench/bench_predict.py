@@ -67,12 +67,12 @@ def _grid(cells_side: int):
 
 def child(cells_side: int, draws: int, scheduler: str) -> None:
     """Run one prediction and print a JSON line with times and peak memory."""
-    from bayesgeo.predict import predict
+    from bayesgeo.predict import predict_targets
 
     basis, t_basis = _problem(draws)
     grid = _grid(cells_side)
     t0 = time.perf_counter()
-    out = predict(basis, grid, thresholds=[2.5, 3.5], scheduler=scheduler)
+    out = predict_targets(basis, grid, thresholds=[2.5, 3.5], scheduler=scheduler)
     t_pred = time.perf_counter() - t0
     assert np.isfinite(out["mean"].values).all()
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB -> MB on Linux
