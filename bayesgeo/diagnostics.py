@@ -179,7 +179,9 @@ class Convergence:
         Mean step size per chain.
     thresholds : Thresholds
     problems : list of dict
-        ``item``, ``level`` ("warn"/"fail"), ``value``, ``threshold``, ``source``, ``advice``, ``message``.
+        ``item``, ``check`` (rhat, ess_bulk, ess_tail, divergence, bfmi, tree_depth, stuck, nonfinite,
+        chains, sample_stats), ``level`` ("warn"/"fail"), ``value``, ``threshold``, ``source``,
+        ``advice``, ``message``.
     notes : list of str
         Remarks that do not change the verdict (e.g. parameters constant across all draws).
     n_chains, n_draws : int
@@ -354,8 +356,13 @@ def _divergence_location(draws: xr.DataArray, div: np.ndarray) -> dict:
     return out
 
 
+_PER_ITEM_CHECKS = ("rhat", "ess_bulk", "ess_tail", "bfmi")
+
+
 def _problem(item, level, value, threshold, source_key, advice_key, message) -> dict:
-    return {"item": item, "level": level, "value": value, "threshold": threshold,
+    prefix = item.split("[", 1)[0]
+    check = prefix if "[" in item and prefix in _PER_ITEM_CHECKS else advice_key
+    return {"item": item, "check": check, "level": level, "value": value, "threshold": threshold,
             "source": _SOURCES.get(source_key, source_key), "advice": ADVICE[advice_key], "message": message}
 
 

@@ -12,7 +12,7 @@ from bayesgeo.cli import main
 az = pytest.importorskip("arviz")
 
 
-def write_fit(folder, *, seed=0, shift=0.0, chains=4, draws=500):
+def write_fit(folder, *, seed=0, shift=0.0, shift_vars=("practical_range",), chains=4, draws=500):
     """A fit folder with posterior.nc as the sampler would save it (nutpie statistic names)."""
     rng = np.random.default_rng(seed)
     post = {
@@ -20,7 +20,8 @@ def write_fit(folder, *, seed=0, shift=0.0, chains=4, draws=500):
         "nugget": rng.gamma(4.0, 0.05, size=(chains, draws)),
         "beta": rng.normal(1.0, 0.1, size=(chains, draws, 2)),
     }
-    post["practical_range"][1] += shift
+    for name in shift_vars:
+        post[name][1] += shift
     ss = {
         "diverging": np.zeros((chains, draws), bool),
         "energy": rng.normal(size=(chains, draws)),
@@ -71,12 +72,16 @@ def test_fail_exits_3(tmp_path, capsys):
 
 def test_human_output_table_and_verdict(tmp_path, capsys):
     """Without --json: a table with the documented columns, the verdict and the caution."""
-    fit = write_fit(tmp_path / "fit", shift=150.0)
+    fit = write_fit(tmp_path / "fit", shift=150.0, shift_vars=("practical_range", "nugget"))
     assert main(["check", str(fit), "--no-figures"]) == 3
     out = capsys.readouterr().out
     header = next(ln for ln in out.splitlines() if "parameter" in ln and "rhat" in ln)
     assert header.split() == ["parameter", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat"]
     assert "verdict: FAIL" in out
+    fails = [ln for ln in out.splitlines() if ln.lstrip().startswith("[FAIL]")]
+    rhat_lines = [ln for ln in fails if "R-hat" in ln]
+    assert len(rhat_lines) == 1  # one line per check, listing every parameter, not one per parameter
+    assert "practical_range: R-hat" in rhat_lines[0] and "nugget: R-hat" in rhat_lines[0]
     assert "advice:" in out and "licensed professional" in out
 
 

@@ -96,6 +96,7 @@ def test_shifted_chain_fails_on_rhat():
     assert "rhat[practical_range]" in items
     assert all(not i.startswith("rhat[") or i == "rhat[practical_range]" for i in items)
     rhat_problem = next(p for p in conv.problems if p["item"] == "rhat[practical_range]")
+    assert rhat_problem["check"] == "rhat"
     assert rhat_problem["threshold"] == 1.01 and "Vehtari" in rhat_problem["source"]
     assert "prior" in rhat_problem["advice"]
 

@@ -116,12 +116,20 @@ def _print_human(conv, result, print_table, caution) -> None:
         print(f"note: {note}")
     if conv.problems:
         print()
-        print("problems:")
-        for p in conv.problems:
-            print(f"  [{p['level'].upper()}] {p['message']}")
-            print(f"      threshold source: {p['source']}")
-            print(f"      advice: {p['advice']}")
+        print("problems (the same check on several parameters is listed once):")
+        for (_, level), group in _grouped(conv.problems).items():
+            print(f"  [{level.upper()}] " + "; ".join(p["message"] for p in group))
+            print(f"      threshold source: {group[0]['source']}")
+            print(f"      advice: {group[0]['advice']}")
     print()
     print(f"verdict: {conv.verdict.upper()}")
     print(f"caution: {caution}")
     print(f"wrote {result['diagnostics']}" + (f" and {len(result['figures'])} figures" if result["figures"] else ""))
+
+
+def _grouped(problems: list[dict]) -> dict:
+    """Problems grouped by (check, level), in order of first appearance."""
+    groups: dict = {}
+    for p in problems:
+        groups.setdefault((p.get("check", p["item"]), p["level"]), []).append(p)
+    return groups
