@@ -14,6 +14,9 @@ from bayesgeo.diagnostic_figures import write_diagnostic_figures
 from bayesgeo.diagnostics import Convergence, Thresholds, check_convergence
 from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, semivariogram
 from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
+from bayesgeo.check_figures import loo_pit_figure, variogram_check_figure
+from bayesgeo.loo import add_log_likelihood, pointwise_loo_loglik
+from bayesgeo.modelcheck import compare_fits, loo_pit, variogram_check
 from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
 from bayesgeo.trend import design_at, design_matrix, fit_trend
 from bayesgeo.validate import InputError
@@ -47,4 +50,11 @@ __all__ = [
     "semivariogram_figure",
     "write_demo_data",
     "write_diagnostic_figures",
+    "add_log_likelihood",
+    "compare_fits",
+    "loo_pit",
+    "loo_pit_figure",
+    "pointwise_loo_loglik",
+    "variogram_check",
+    "variogram_check_figure",
 ]

@@ -42,7 +42,6 @@ from scipy.linalg import lapack
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.geometry import distance_matrix
-from bayesgeo.likelihood import covariance_matrix
 from bayesgeo.model import FitSpec
 from bayesgeo.posterior import fit_spec
 from bayesgeo.trend import design_at
@@ -283,6 +282,8 @@ def draw_covariances(fa: FitArrays, index: np.ndarray | None = None):
 
     ``index`` selects flat (chain-major) draw indices; all draws by default.
     """
+    from bayesgeo.likelihood import covariance_matrix  # PyTensor/Numba load only when needed
+
     cov = _covariance(fa.spec)
     rng_ = fa.draws["practical_range_z"].reshape(-1)
     sd = fa.draws["sd_z"].reshape(-1)

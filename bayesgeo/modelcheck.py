@@ -75,16 +75,29 @@ CAUTION = (
 
 
 def open_fit(path: str | Path) -> xr.DataTree:
-    """Read a fit folder (or its ``posterior.nc``) into memory (:func:`bayesgeo.posterior.load_fit`).
+    """Read a fit folder (or its ``posterior.nc``) into memory and close the file.
+
+    The file is opened in a ``with`` block and loaded, so no NetCDF handle stays open (handles
+    left to the garbage collector were seen to crash the HDF5 library when the same file was
+    opened again).
 
     Raises
     ------
     InputError
-        Missing folder or file, or a file that is not a readable fit.
+        Missing folder or file, or a file that is not a readable single-site fit.
     """
-    from bayesgeo.posterior import load_fit
+    from bayesgeo.posterior import FIT_FILE
 
-    tree = load_fit(path)
+    path = Path(path)
+    file = path / FIT_FILE if path.is_dir() else path
+    if not file.is_file():
+        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
+    try:
+        with xr.open_datatree(file, engine="netcdf4") as t:
+            tree = t.load()
+    except Exception as err:  # noqa: BLE001 - netCDF4 raises OSError, ValueError, RuntimeError ...
+        msg = " ".join(str(err).split()) or type(err).__name__
+        raise InputError(f"{file}: not a readable NetCDF fit ({msg})") from None
     fit_arrays(tree)  # refuse early what the checks cannot use
     return tree
 

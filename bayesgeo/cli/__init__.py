@@ -24,6 +24,8 @@ COMMANDS: dict[str, str] = {
     "fit": "fit",
     "check": "check",
     "map": "map",
+    "compare": "compare",
+    "variogram-check": "vgcheck",
 }
 
 

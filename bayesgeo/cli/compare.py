@@ -1,0 +1,138 @@
+"""``bayesgeo compare DIR1 DIR2 ...``: rank fits of the same data by PSIS-LOO.
+
+Each fit folder holds ``posterior.nc`` from ``bayesgeo fit``. Exact Gaussian leave-one-out
+densities are computed per draw (or read from a stored ``log_likelihood`` group) in data units, so
+fits with and without a log transform compare fairly. Fits of different data are refused (exit 2).
+
+With ``--out DIR`` the folder (written atomically; an existing one is refused unless
+``--overwrite``) receives ``comparison.csv`` (the ranking), ``pointwise.csv`` (elpd and Pareto k per
+point and fit), ``loo_pit.png`` (LOO-PIT calibration of every fit) and ``comparison.json`` (the
+object ``--json`` prints). Without ``--out`` nothing is written.
+"""
+
+from __future__ import annotations
+
+HELP = "rank fits of the same data by leave-one-out predictive accuracy (PSIS-LOO)"
+
+COLUMNS = ("fit", "covariance", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "pareto_k_high")
+
+
+def add_arguments(p) -> None:
+    p.add_argument("dirs", metavar="DIR", nargs="+", help="fit folders (each holding posterior.nc), two or more")
+    p.add_argument("--out", metavar="DIR", default=None,
+                   help="folder for the ranking tables, the LOO-PIT figure and comparison.json (default: none)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing --out folder")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
+
+
+def _names(dirs) -> list[str]:
+    """Fit names: the folder names, made unique with their parent when two share a name."""
+    from pathlib import Path
+
+    paths = [Path(d) for d in dirs]
+    names = [p.name or str(p) for p in paths]
+    if len(set(names)) < len(names):
+        names = [str(p) for p in paths]
+    return names
+
+
+def _verdicts(name, tree) -> list[str]:
+    import json
+
+    try:
+        verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
+    except (TypeError, ValueError, AttributeError):
+        verdict = None
+    if verdict == "fail":
+        return [f"NOT CONVERGED: {name} failed its convergence check; its elpd is not to be trusted"]
+    if verdict is None:
+        return [f"{name}: convergence not checked (run 'bayesgeo check' on it)"]
+    return []
+
+
+def build_result(dirs, *, bar=None) -> tuple[dict, object, dict]:
+    """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs)."""
+    from bayesgeo.modelcheck import compare_fits, fit_loo, loo_pit, open_fit
+    from bayesgeo.validate import InputError
+
+    if len(dirs) < 2:
+        raise InputError(f"compare: give at least two fit folders (got {len(dirs)})")
+    names = _names(dirs)
+    if len(set(names)) < len(names):
+        raise InputError("compare: the same fit folder is given twice")
+    trees = {}
+    cautions = []
+    for name, d in zip(names, dirs):
+        trees[name] = open_fit(d)
+        cautions += _verdicts(name, trees[name])
+        if bar is not None:
+            bar.update(1)
+    res = compare_fits(trees)
+    if bar is not None:
+        bar.update(len(trees))
+    pits = {name: loo_pit(trees[name], fit_loo(trees[name])) for name in res["fit"].values}
+    if bar is not None:
+        bar.update(len(trees))
+    ranking = []
+    for k, name in enumerate(res["fit"].values):
+        row = res.isel(fit=k)
+        ranking.append({
+            "fit": str(name), "path": str(dirs[names.index(str(name))]), "covariance": str(row["covariance"].values),
+            "transform": str(row["transform"].values), "elpd_loo": float(row["elpd_loo"]), "se": float(row["se"]),
+            "elpd_diff": float(row["elpd_diff"]), "dse": float(row["dse"]), "p_loo": float(row["p_loo"]),
+            "weight": float(row["weight"]), "pareto_k_high": int(row["pareto_k_high"]),
+            "pareto_k_max": float(row["pareto_k_max"]),
+        })
+    obj = {
+        "ranking": ranking,
+        "n": int(res.attrs["n"]),
+        "k_threshold": res.attrs["k_threshold"],
+        "k_threshold_source": res.attrs["k_threshold_source"],
+        "method": res.attrs["method"],
+        "units": res.attrs["units"],
+        "cautions": cautions + list(res.attrs["cautions"]),
+    }
+    return obj, res, pits
+
+
+def run(args) -> int:
+    from pathlib import Path
+
+    from bayesgeo.cli._common import emit_json, print_table, progress, to_jsonable
+    from bayesgeo.io import atomic_dir, refuse_existing, write_json
+
+    out = Path(args.out) if args.out else None
+    if out is not None:
+        refuse_existing(out, args.overwrite)
+    bar = progress(total=3 * len(args.dirs), desc="compare", enabled=not args.json)
+    with bar:
+        obj, res, pits = build_result(args.dirs, bar=bar)
+    files = []
+    if out is not None:
+        from bayesgeo.check_figures import loo_pit_figure
+        from bayesgeo.figures import save_figure
+
+        with atomic_dir(out, overwrite=args.overwrite) as tmp:
+            table = res[["rank", "covariance", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
+                         "pareto_k_high", "pareto_k_max"]].to_dataframe()
+            table.to_csv(tmp / "comparison.csv", float_format="%.10g")
+            point = res[["elpd_i", "pareto_k"]].to_dataframe()
+            point.to_csv(tmp / "pointwise.csv", float_format="%.10g")
+            save_figure(loo_pit_figure(pits), tmp / "loo_pit.png")
+            files = ["comparison.csv", "pointwise.csv", "loo_pit.png", "comparison.json"]
+            obj["out"] = str(out)
+            obj["files"] = files
+            write_json(tmp / "comparison.json", to_jsonable(obj))
+    if args.json:
+        emit_json(obj)
+        return 0
+    print(f"PSIS-LOO comparison of {len(obj['ranking'])} fits of {obj['n']} points "
+          f"(elpd: log density of the data in data units; higher is better)")
+    rows = [{c: r[c] for c in COLUMNS} for r in obj["ranking"]]
+    print_table(rows, list(COLUMNS), floatfmt=".2f")
+    print(f"pareto_k_high: points with Pareto k > {obj['k_threshold']:g} ({obj['k_threshold_source']})")
+    if files:
+        print(f"wrote {len(files)} files to {out}/")
+    for c in obj["cautions"]:
+        print(f"caution: {c}")
+    return 0

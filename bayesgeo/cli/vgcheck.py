@@ -1,0 +1,113 @@
+"""``bayesgeo variogram-check DIR``: posterior predictive check against the empirical semivariogram.
+
+Replicates data at the sample locations from the fit's posterior, computes the semivariogram of
+every replicate with the bins of the observed one (trend removed by OLS from both alike, on the
+modelled scale: log values under a log transform) and draws the observed semivariogram over the
+replicate band and the model's posterior semivariogram band. Writes ``DIR/variogram_check.png``
+and ``DIR/variogram_check.csv`` (each refused if present, unless ``--overwrite``).
+"""
+
+from __future__ import annotations
+
+HELP = "posterior predictive check of a fit against the empirical semivariogram"
+
+FIGURE = "variogram_check.png"
+TABLE = "variogram_check.csv"
+TABLE_COLUMNS = ("bin", "lag", "bin_lower", "bin_upper", "pairs", "observed", "replicate_q05", "replicate_q50",
+                 "replicate_q95", "model_q05", "model_q50", "model_q95", "p_value", "outside")
+
+
+def add_arguments(p) -> None:
+    p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
+    p.add_argument("--replicates", type=int, default=200, metavar="N",
+                   help="replicate data sets, one posterior draw each (default 200)")
+    p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
+    p.add_argument("--max-lag", type=float, default=None, metavar="D",
+                   help="largest lag in distance units (default: half the largest distance between points)")
+    p.add_argument("--seed", type=int, default=1, metavar="S", help="seed of the replicates (default 1)")
+    p.add_argument("--overwrite", action="store_true", help=f"replace existing {FIGURE} and {TABLE}")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
+
+
+def _list(da) -> list:
+    return [float(v) for v in da.values]
+
+
+def run(args) -> int:
+    import json
+    from pathlib import Path
+
+    from bayesgeo.check_figures import variogram_check_figure
+    from bayesgeo.cli._common import emit_json, print_table, progress
+    from bayesgeo.figures import save_figure
+    from bayesgeo.io import atomic_file, refuse_existing
+    from bayesgeo.modelcheck import open_fit, variogram_check
+
+    folder = Path(args.dir)
+    bar = progress(total=3, desc="variogram-check", enabled=not args.json)
+    with bar:
+        tree = open_fit(folder)
+        fig_path, csv_path = folder / FIGURE, folder / TABLE
+        refuse_existing(fig_path, args.overwrite)
+        refuse_existing(csv_path, args.overwrite)
+        bar.update(1)
+        vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed)
+        bar.update(1)
+        cautions = list(vc.attrs["cautions"])
+        try:
+            verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
+        except (TypeError, ValueError, AttributeError):
+            verdict = None
+        title = None
+        if verdict == "fail":
+            cautions.insert(0, "NOT CONVERGED: the fit failed its convergence check; this check inherits its problems")
+            title = f"NOT CONVERGED - posterior predictive semivariogram check: {vc.attrs['covariance']}"
+        import pandas as pd
+
+        frame = pd.DataFrame({c: vc[c].values for c in TABLE_COLUMNS})
+        with atomic_file(csv_path, overwrite=args.overwrite) as tmp:
+            frame.to_csv(tmp, index=False, float_format="%.10g")
+        with atomic_file(fig_path, overwrite=args.overwrite) as tmp:
+            save_figure(variogram_check_figure(vc, title=title), tmp)
+        bar.update(1)
+    obj = {
+        "lag": _list(vc["lag"]),
+        "observed": _list(vc["observed"]),
+        "pairs": [int(v) for v in vc["pairs"].values],
+        "replicate_q05": _list(vc["replicate_q05"]),
+        "replicate_q50": _list(vc["replicate_q50"]),
+        "replicate_q95": _list(vc["replicate_q95"]),
+        "model_q05": _list(vc["model_q05"]),
+        "model_q50": _list(vc["model_q50"]),
+        "model_q95": _list(vc["model_q95"]),
+        "p_value": _list(vc["p_value"]),
+        "outside_band": int(vc.attrs["outside_band"]),
+        "replicates": int(vc.attrs["replicates"]),
+        "bins": int(vc.attrs["bins"]),
+        "max_lag": float(vc.attrs["max_lag"]),
+        "seed": int(vc.attrs["seed"]),
+        "covariance": vc.attrs["covariance"],
+        "transform": vc.attrs["transform"],
+        "units": {"lag": vc.attrs["distance_units"], "semivariance": f"({vc.attrs['model_units']})^2"},
+        "files": [str(fig_path), str(csv_path)],
+        "cautions": cautions,
+    }
+    if args.json:
+        emit_json(obj)
+        return 0
+    rows = []
+    for k in range(len(obj["lag"])):
+        rows.append({"lag": obj["lag"][k], "pairs": obj["pairs"][k], "observed": obj["observed"][k],
+                     "rep_q05": obj["replicate_q05"][k], "rep_q50": obj["replicate_q50"][k],
+                     "rep_q95": obj["replicate_q95"][k], "model_q05": obj["model_q05"][k],
+                     "model_q50": obj["model_q50"][k], "model_q95": obj["model_q95"][k],
+                     "p_value": obj["p_value"][k], "flag": "OUTSIDE" if vc["outside"].values[k] else ""})
+    print(f"posterior predictive semivariogram check: {obj['covariance']}, {obj['replicates']} replicates, "
+          f"seed {obj['seed']} (semivariance in {obj['units']['semivariance']}, lag in {obj['units']['lag'] or 'distance units'})")
+    print_table(rows, list(rows[0]), floatfmt=".4g")
+    print(f"{obj['outside_band']} of {sum(1 for p in obj['pairs'] if p)} bins outside the 90% replicate band; "
+          "p_value = share of replicates at or above the observed semivariance")
+    print(f"wrote {fig_path} and {csv_path}")
+    for c in cautions:
+        print(f"caution: {c}")
+    return 0

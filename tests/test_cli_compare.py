@@ -1,0 +1,125 @@
+"""Tests of the `bayesgeo compare` and `bayesgeo variogram-check` commands.
+
+Fit folders hold a posterior.nc built from chosen draws in the layout of bayesgeo.posterior.fit
+(tests/test_loo.py: make_fit), so no sampling is needed.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from bayesgeo.cli import main
+from test_loo import make_fit, simulated
+
+
+def _save(tree, folder):
+    folder.mkdir(parents=True)
+    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
+    return folder
+
+
+@pytest.fixture(scope="module")
+def fits(tmp_path_factory):
+    root = tmp_path_factory.mktemp("fits")
+    ds = simulated(40, seed=31)
+    other = simulated(40, seed=32)
+    return {
+        "m32": _save(make_fit(ds, ndraw=100, seed=1), root / "m32"),
+        "exp": _save(make_fit(ds, covariance="exponential", ndraw=100, seed=2), root / "exp"),
+        "other": _save(make_fit(other, ndraw=100, seed=3), root / "other"),
+    }
+
+
+def _json(capsys):
+    out = capsys.readouterr().out
+    lines = [ln for ln in out.splitlines() if ln.strip()]
+    assert len(lines) == 1, out  # exactly one JSON object on stdout
+    return json.loads(lines[0])
+
+
+def test_compare_json_keys_and_files(fits, tmp_path, capsys):
+    """--json prints one object with the ranking keys of the brief (elpd from arviz.loo/compare,
+    Pareto k threshold 0.7 from Vehtari et al. 2024) and --out writes the tables, the LOO-PIT figure
+    and comparison.json; a second run into the same folder is refused (exit 2) without --overwrite."""
+    out = tmp_path / "cmp"
+    code = main(["compare", str(fits["m32"]), str(fits["exp"]), "--json", "--out", str(out)])
+    assert code == 0
+    obj = _json(capsys)
+    assert {r["fit"] for r in obj["ranking"]} == {"m32", "exp"}
+    for row in obj["ranking"]:
+        assert {"fit", "covariance", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "pareto_k_high"} <= set(row)
+        assert isinstance(row["pareto_k_high"], int)
+    assert obj["ranking"][0]["elpd_diff"] == 0.0
+    assert obj["ranking"][0]["elpd_loo"] >= obj["ranking"][1]["elpd_loo"]
+    assert obj["k_threshold"] == 0.7
+    assert any("licensed professional" in c for c in obj["cautions"])
+    for name in ("comparison.csv", "pointwise.csv", "loo_pit.png", "comparison.json"):
+        assert (out / name).is_file()
+    assert json.loads((out / "comparison.json").read_text())["ranking"] == obj["ranking"]
+    assert main(["compare", str(fits["m32"]), str(fits["exp"]), "--json", "--out", str(out)]) == 2
+    assert "already exists" in capsys.readouterr().err
+
+
+def test_compare_refuses_fits_of_different_data(fits, capsys):
+    """Fits of different data exit 2 with a one-line message naming the fit."""
+    code = main(["compare", str(fits["m32"]), str(fits["other"]), "--json"])
+    assert code == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""
+    err = captured.err.strip()
+    assert "\n" not in err and "not fitted to the same data" in err and "other" in err
+
+
+def test_compare_needs_two_existing_fits(fits, tmp_path, capsys):
+    """One fit, or a folder without posterior.nc, is bad input (exit 2)."""
+    assert main(["compare", str(fits["m32"])]) == 2
+    assert "at least two" in capsys.readouterr().err
+    assert main(["compare", str(fits["m32"]), str(tmp_path / "nowhere")]) == 2
+    assert "nowhere" in capsys.readouterr().err
+
+
+def test_compare_human_table(fits, capsys):
+    """Without --json a table and the cautions are printed."""
+    assert main(["compare", str(fits["m32"]), str(fits["exp"])]) == 0
+    out = capsys.readouterr().out
+    assert "elpd_loo" in out and "caution:" in out
+
+
+def test_variogram_check_json_files_and_overwrite(fits, tmp_path, capsys):
+    """--json prints the keys of the brief, the figure and CSV are written into the fit folder, the
+    same seed gives the same replicate band, and existing outputs are refused without --overwrite."""
+    import shutil
+
+    folder = tmp_path / "fit"
+    shutil.copytree(fits["m32"], folder)
+    args = ["variogram-check", str(folder), "--replicates", "30", "--bins", "6", "--seed", "4", "--json"]
+    assert main(args) == 0
+    obj = _json(capsys)
+    for key in ("lag", "observed", "pairs", "replicate_q05", "replicate_q95", "model_q05", "model_q50",
+                "model_q95", "outside_band", "cautions"):
+        assert key in obj
+    assert len(obj["lag"]) == 6 and isinstance(obj["outside_band"], int)
+    assert (folder / "variogram_check.png").is_file() and (folder / "variogram_check.csv").is_file()
+    header = (folder / "variogram_check.csv").read_text().splitlines()[0].split(",")
+    assert header[:3] == ["bin", "lag", "bin_lower"] and "p_value" in header
+    assert main(args) == 2
+    assert "already exists" in capsys.readouterr().err
+    assert main([*args, "--overwrite"]) == 0
+    again = _json(capsys)
+    np.testing.assert_allclose(again["replicate_q05"], obj["replicate_q05"])
+
+
+def test_variogram_check_human_output_and_bad_option(fits, tmp_path, capsys):
+    """The human table lists every bin; --replicates 0 is refused with exit 2."""
+    import shutil
+
+    folder = tmp_path / "fit"
+    shutil.copytree(fits["exp"], folder)
+    assert main(["variogram-check", str(folder), "--replicates", "0"]) == 2
+    assert "--replicates" in capsys.readouterr().err
+    assert main(["variogram-check", str(folder), "--replicates", "10", "--bins", "5"]) == 0
+    out = capsys.readouterr().out
+    assert "p_value" in out and "caution:" in out
