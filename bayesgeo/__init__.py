@@ -17,7 +17,9 @@ from bayesgeo.figures import correlogram_figure, directional_figure, semivariogr
 from bayesgeo.check_figures import loo_pit_figure, variogram_check_figure
 from bayesgeo.loo import add_log_likelihood, pointwise_loo_loglik
 from bayesgeo.modelcheck import compare_fits, loo_pit, variogram_check
+from bayesgeo.predict import area_average, basis_from_fit, krige, make_basis, posterior_parameters, predict_targets
 from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
+from bayesgeo.targets import discretise_area, grid_targets, hull_mask, read_target_points
 from bayesgeo.trend import design_at, design_matrix, fit_trend
 from bayesgeo.validate import InputError
 
@@ -50,6 +52,16 @@ __all__ = [
     "semivariogram_figure",
     "write_demo_data",
     "write_diagnostic_figures",
+    "area_average",
+    "basis_from_fit",
+    "discretise_area",
+    "grid_targets",
+    "hull_mask",
+    "krige",
+    "make_basis",
+    "posterior_parameters",
+    "predict_targets",
+    "read_target_points",
     "add_log_likelihood",
     "compare_fits",
     "loo_pit",
