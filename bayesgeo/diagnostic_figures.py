@@ -138,7 +138,8 @@ def write_diagnostic_figures(
     Returns
     -------
     list of Path
-        The files written, ACF pages first, then ``trace.png``, ``rank.png``, ``pair.png``.
+        The files written, ACF pages first, then ``trace.png``, ``rank.png`` (with at least two
+        chains) and ``pair.png`` (with at least two scalar parameters).
     """
     outdir = Path(outdir)
     outdir.mkdir(parents=True, exist_ok=True)
@@ -150,7 +151,8 @@ def write_diagnostic_figures(
     div = _has_divergences(tree)
     trace_kw = {"visuals": {"divergence": True}} if div else {"visuals": {"divergence": False}}
     paths.append(_arviz_figure("trace", tree, names, outdir / "trace.png", overwrite=overwrite, dpi=dpi, **trace_kw))
-    paths.append(_arviz_figure("rank", tree, names, outdir / "rank.png", overwrite=overwrite, dpi=dpi))
+    if draws.sizes["chain"] >= 2:  # rank plots compare chains
+        paths.append(_arviz_figure("rank", tree, names, outdir / "rank.png", overwrite=overwrite, dpi=dpi))
     pair = _pair_vars(draws)
     if len(pair) >= 2 or (len(pair) == 1 and _n_scalars(draws, pair) >= 2):
         pair_kw = {"visuals": {"divergence": True}} if div else {}

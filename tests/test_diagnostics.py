@@ -252,3 +252,9 @@ def test_funnel_with_nutpie_reports_divergences():
     assert conv.divergence_location["v"]["shift_sd"] < 0
     assert conv.tree_depth["statistic"] == "depth" and conv.tree_depth["max_depth"] == 10
     assert len(conv.bfmi) == 2 and len(conv.step_size) == 2
+
+
+def test_same_draws_give_identical_output():
+    """Same draws, same numbers (bayesgeo rule: reproducible outputs)."""
+    tree = iid_tree(seed=13, draws=200)
+    assert check_convergence(tree).to_json() == check_convergence(tree.copy(deep=True)).to_json()
