@@ -96,8 +96,8 @@ def run(args) -> int:
 
 def _print_human(conv, result, print_table, caution) -> None:
     ps = conv.parameters
-    rows = [{"parameter": str(p), **{c: float(ps[c].values[i]) for c in
-                                      ("rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat")}}
+    fmt = {"rhat": "{:.3f}", "ess_bulk": "{:.0f}", "ess_tail": "{:.0f}", "mcse_mean": "{:.3g}", "iat": "{:.3g}"}
+    rows = [{"parameter": str(p), **{c: _fmt(f, ps[c].values[i]) for c, f in fmt.items()}}
             for i, p in enumerate(ps["parameter"].values)]
     print(f"{conv.n_chains} chains x {conv.n_draws} draws (sampler: {conv.sampler})")
     print_table(rows, ["parameter", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat"])
@@ -133,3 +133,8 @@ def _grouped(problems: list[dict]) -> dict:
     for p in problems:
         groups.setdefault((p.get("check", p["item"]), p["level"]), []).append(p)
     return groups
+
+
+def _fmt(template: str, value) -> str:
+    value = float(value)
+    return template.format(value) if value == value else "n/a"
