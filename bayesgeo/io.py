@@ -17,6 +17,12 @@ from pathlib import Path
 
 from bayesgeo.validate import InputError
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 __all__ = ["refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
 
 
@@ -36,6 +42,7 @@ def atomic_file(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     os.close(fd)
     tmp = Path(tmp)
+    tmp.chmod(0o666 & ~_umask())  # mkstemp makes 0600; outputs get the user's usual permissions
     try:
         yield tmp
         os.replace(tmp, path)
@@ -53,6 +60,7 @@ def atomic_dir(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
     path = refuse_existing(path, overwrite)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
+    tmp.chmod(0o777 & ~_umask())  # mkdtemp makes 0700
     try:
         yield tmp
         old = None
