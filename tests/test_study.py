@@ -1,0 +1,122 @@
+"""Tests of study files: schema, defaults, and errors that name the key and the line."""
+
+from __future__ import annotations
+
+import pytest
+
+from bayesgeo.study import SCHEMA, parse_study, read_study, study_line
+from bayesgeo.validate import InputError
+
+MINIMAL = """\
+title = "t"
+
+[data]
+path = "points.csv"
+units = "mg/kg"
+
+[model]
+covariance = ["matern32", "exponential"]
+transform = "log"
+"""
+
+
+@pytest.fixture
+def study_dir(tmp_path):
+    (tmp_path / "points.csv").write_text("x,y,v\n0,0,1\n1,0,2\n")
+    return tmp_path
+
+
+def _parse(text, folder):
+    return parse_study(text, path=folder / "study.toml")
+
+
+def test_defaults_and_relative_paths(study_dir):
+    """Paths resolve against the study file's folder; explore inherits the model's transform and trend
+    (our own documented rule, docs/study_file.md); every schema key has a value."""
+    st = _parse(MINIMAL, study_dir)
+    assert st["data"]["path"] == study_dir / "points.csv"
+    assert st.families == ["matern32", "exponential"]
+    assert st["explore"]["transform"] == "log" and st["explore"]["trend"] == 0
+    assert st.out_dir == study_dir / "study-run"
+    for table, keys in SCHEMA.items():
+        assert set(keys) <= set(st[table]), table
+    assert st["sampler"]["seed"] == 1 and st["sampler"]["chains"] == 4
+
+
+def test_single_family_string(study_dir):
+    """A single family may be written as a string (TOML strings and arrays, toml.io v1.0.0)."""
+    st = _parse(MINIMAL.replace('["matern32", "exponential"]', '"gaussian"'), study_dir)
+    assert st.families == ["gaussian"]
+
+
+@pytest.mark.parametrize("extra, table, key, line, msg", [
+    ("[sampler]\ndraws = \"many\"\n", "sampler", "draws", 12, "expected an integer"),
+    ("[sampler]\nchains = 2\nbogus = 1\n", "sampler", "bogus", 13, "unknown key"),
+    ("[model.priors]\nrange = [10.0]\n", "model.priors", "range", 12, "two numbers"),
+    ("[model.priors]\nrange = [10.0, 1.5]\n", "model.priors", "range", 12, "probability"),
+    ("[prediction]\nthresholds = [\"high\"]\n", "prediction", "thresholds", 12, "list of numbers"),
+    ("[explore]\nestimator = \"median\"\n", "explore", "estimator", 12, "not one of"),
+    ("[sampler]\ntarget_accept = 1.2\n", "sampler", "target_accept", 12, "in (0, 1)"),
+    ("[output]\noverwrite = \"yes\"\n", "output", "overwrite", 12, "true or false"),
+])
+def test_errors_name_key_and_line(study_dir, extra, table, key, line, msg):
+    """Unknown keys and wrong types are InputErrors naming the file, line, table and key (issue 8
+    requirement; TOML types as in toml.io v1.0.0)."""
+    text = MINIMAL + "\n" + extra
+    with pytest.raises(InputError) as err:
+        _parse(text, study_dir)
+    s = str(err.value)
+    assert f"line {line}: [{table}] {key}" in s and msg in s
+    assert "\n" not in s
+    assert text.splitlines()[line - 1].lstrip().startswith(key)
+
+
+def test_unknown_table_and_top_level_key(study_dir):
+    """An unknown table is named with its line and the accepted tables are listed."""
+    with pytest.raises(InputError, match=r"line 11: \[model\] prior: unknown table; accepted: .*priors"):
+        _parse(MINIMAL + "\n[model.prior]\nrange = [1, 0.05]\n", study_dir)
+    with pytest.raises(InputError, match=r"line 1: colour: unknown key; accepted: .*data.*sampler"):
+        _parse("colour = 1\n" + MINIMAL, study_dir)
+
+
+def test_inline_table_line(study_dir):
+    """A key of an inline sub-table is located at its parent key's line."""
+    text = MINIMAL + "nugget = true\npriors = {range = [1.0, 0.05], sd = \"x\"}\n"
+    with pytest.raises(InputError, match=r"line 11: \[model.priors\] sd"):
+        _parse(text, study_dir)
+
+
+def test_value_checks(study_dir):
+    """Cross-key checks: matern needs nu; model covariates must be read from the data; data must exist."""
+    with pytest.raises(InputError, match="needs nu"):
+        _parse(MINIMAL.replace('"exponential"]', '"matern"]'), study_dir)
+    with pytest.raises(InputError, match=r"\[model\] covariates: depth not listed"):
+        _parse(MINIMAL + 'covariates = ["depth"]\n', study_dir)
+    with pytest.raises(InputError, match=r"line 4: \[data\] path: .*no such file"):
+        _parse(MINIMAL.replace("points.csv", "missing.csv"), study_dir)
+    with pytest.raises(InputError, match="required"):
+        _parse("[data]\nunits = \"m\"\n", study_dir)
+    with pytest.raises(InputError, match="not valid TOML"):
+        _parse("[data\n", study_dir)
+    with pytest.raises(InputError, match="not one of single"):
+        _parse(MINIMAL + 'pooling = "hierarchical"\n', study_dir)
+
+
+def test_read_study_file(study_dir):
+    """read_study reads the file as UTF-8 and keeps its text verbatim for the manifest."""
+    path = study_dir / "s.toml"
+    path.write_text(MINIMAL + "# Matérn note\n", encoding="utf-8")
+    st = read_study(path)
+    assert st.text.endswith("# Matérn note\n")
+    assert st.to_dict()["data"]["path"] == str(study_dir / "points.csv")
+    with pytest.raises(InputError, match="no such study file"):
+        read_study(study_dir / "nope.toml")
+
+
+def test_study_line_headers():
+    """study_line finds table headers and keys (with spaces around dots and quotes)."""
+    text = 'a = 1\n[ model ]\n"trend" = 2\n[model.priors]\nrange = [1, 0.1]\n'
+    assert study_line(text, "model") == 2
+    assert study_line(text, "model", "trend") == 3
+    assert study_line(text, "model.priors", "range") == 5
+    assert study_line(text, "model", "nope") is None
