@@ -266,8 +266,9 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
     xarray.Dataset
         Dims ``(site, parameter)``: ``independent_median``, ``independent_low``,
         ``independent_high``, ``pooled_median``, ``pooled_low``, ``pooled_high`` and
-        ``width_ratio`` (pooled width / independent width, below 1 where pooling narrowed the
-        interval); coordinate ``n`` (points per site). ``attrs["pooling"]`` names the pooled model.
+        ``width_ratio`` (pooled over independent width of the interval on the log scale, i.e. of
+        high / low: these are scale parameters, so widths are compared as ratios; below 1 where
+        pooling narrowed the interval); coordinate ``n`` (points per site). ``attrs["pooling"]`` names the pooled model.
     """
     a = pooled["posterior"].to_dataset()
     b = independent["posterior"].to_dataset()
@@ -283,7 +284,7 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
         for tag, post in (("independent", b), ("pooled", a)):
             q = post[p].quantile(qs, dim=("chain", "draw")).transpose("site", "quantile").values
             vals[f"{tag}_low"][:, j], vals[f"{tag}_median"][:, j], vals[f"{tag}_high"][:, j] = q.T
-            res[tag][:, j] = q[:, 2] - q[:, 0]
+            res[tag][:, j] = np.log(q[:, 2]) - np.log(q[:, 0])
     import json
 
     n = json.loads(pooled.attrs["settings"])["model"]["n"]
@@ -291,7 +292,8 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
     ds = xr.Dataset({k: (("site", "parameter"), v) for k, v in vals.items()},
                     coords={"site": sites, "parameter": list(parameters), "n": ("site", np.asarray(n, dtype=int)),
                             "units": ("parameter", [units[p] for p in parameters])})
-    ds["width_ratio"] = (("site", "parameter"), res["pooled"] / res["independent"])
+    ds["width_ratio"] = (("site", "parameter"), res["pooled"] / res["independent"],
+                         {"long_name": "log(high / low) pooled over log(high / low) independent"})
     ds.attrs = {"prob": prob, "pooling": str(pooled.attrs.get("pooling", "")),
                 "what": "independent-fit versus pooled medians and equal-tailed intervals per site"}
     return ds

@@ -473,9 +473,12 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UserWarning)
-        model, spec = build_site_model(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend,
-                                       covariates=covariates, transform=transform, pooling=pooling,
-                                       priors=priors, min_points=min_points)
+        model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
+                        transform=transform, pooling=pooling, priors=priors, min_points=min_points)
+        model, spec = build_site_model(ds, **model_kw)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        _, data = site_inputs(ds, **model_kw)
     for w in caught:
         warnings.warn(w.message, w.category, stacklevel=2)
     raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
