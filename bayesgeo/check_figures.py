@@ -90,7 +90,7 @@ def variogram_check_figure(vc: xr.Dataset, *, title: str | None = None):
     detr = "mean removed" if list(trend) in (["1"], []) else "trend removed (OLS)"
     ax.set_title(title or f"Posterior predictive semivariogram check: {vc.attrs.get('covariance', '')}", fontsize=10.5)
     ax.grid(True, color="#eeeeee", linewidth=0.6)
-    ax.legend(fontsize=7.5, frameon=False, loc="lower right")
+    ax.legend(fontsize=7.5, loc="upper left", frameon=True, framealpha=0.85, edgecolor="none")
     _footer(fig, f"Classical estimator, {detr}; {vc.attrs.get('outside_band', 0)} bin(s) outside the replicate band.")
     return fig
 

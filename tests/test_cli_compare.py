@@ -123,3 +123,18 @@ def test_variogram_check_human_output_and_bad_option(fits, tmp_path, capsys):
     assert main(["variogram-check", str(folder), "--replicates", "10", "--bins", "5"]) == 0
     out = capsys.readouterr().out
     assert "p_value" in out and "caution:" in out
+
+
+def test_unconverged_fits_are_flagged(tmp_path, capsys):
+    """A stored convergence verdict "fail" (bayesgeo.posterior.with_diagnostics layout) puts a
+    NOT CONVERGED caution first in both commands' JSON."""
+    ds = simulated(30, seed=33)
+    bad = make_fit(ds, ndraw=60, seed=4)
+    bad.attrs["diagnostics"] = json.dumps({"verdict": "fail"})
+    a = _save(bad, tmp_path / "bad")
+    b = _save(make_fit(ds, covariance="exponential", ndraw=60, seed=5), tmp_path / "ok")
+    assert main(["compare", str(a), str(b), "--json"]) == 0
+    cautions = _json(capsys)["cautions"]
+    assert cautions[0].startswith("NOT CONVERGED: bad")
+    assert main(["variogram-check", str(a), "--replicates", "5", "--bins", "4", "--json"]) == 0
+    assert _json(capsys)["cautions"][0].startswith("NOT CONVERGED")
