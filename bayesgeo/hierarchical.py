@@ -459,14 +459,17 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     Returns
     -------
     xarray.DataTree
-        ``posterior``: raw variables, per-site derived variables in data units along ``site``
-        (``practical_range``, ``scale``, ``partial_sill``, ``nugget``, ``total_sill``,
-        ``nugget_ratio``, ``microergodic``, ``beta`` along ``(site, term)``) and, unless
-        ``pooling="independent"``, population-level ones (``population_*``);
-        ``new_site``: the posterior predictive distribution of a new site's parameters (one
-        fresh eta ~ N(0, 1) per draw; absent when independent); ``sample_stats``;
-        ``observed_data`` (x, y, value, site, row along ``obs``). Root attrs: ``settings``
-        (JSON of :class:`SiteSpec`), ``pooling``, the sampler's attributes and ``cautions``.
+        In the layout of the single-site fit (:mod:`bayesgeo.posterior`) with a ``site`` dim.
+        ``posterior``: raw variables, per-site ``practical_range_z``, ``sd_z``, ``nugget_sd_z``,
+        ``beta_z`` and derived variables in data units along ``site`` (``practical_range``,
+        ``scale``, ``partial_sill``, ``nugget``, ``total_sill``, ``nugget_ratio``,
+        ``microergodic``, ``beta`` along ``(site, term)``) and, unless ``pooling="independent"``,
+        population-level ones (``population_*``, see :func:`bayesgeo.hier_outputs.add_derived`);
+        ``new_site``: the posterior predictive distribution of a new site's parameters (one fresh
+        eta ~ N(0, 1) per draw; absent when independent); ``sample_stats``; ``observed_data``
+        (``value`` with ``site`` and ``row``); ``constant_data`` (``x``, ``y``, ``design``). Root
+        attrs: ``settings`` (JSON: format, :class:`SiteSpec`, sampler settings, versions),
+        ``pooling`` and ``cautions``.
     """
     from bayesgeo.hier_outputs import add_derived, new_site_draws
     from bayesgeo.sampling import sample
