@@ -16,7 +16,8 @@ from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, 
 from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
 from bayesgeo.check_figures import loo_pit_figure, variogram_check_figure
 from bayesgeo.loo import add_log_likelihood, pointwise_loo_loglik
-from bayesgeo.modelcheck import compare_fits, loo_pit, variogram_check
+from bayesgeo.modelcheck import compare_fits, loo_pit, store_log_likelihood, variogram_check
+from bayesgeo.parallel import WorkUnit, make_units, run_units
 from bayesgeo.predict import area_average, basis_from_fit, krige, make_basis, posterior_parameters, predict_targets
 from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
 from bayesgeo.targets import discretise_area, grid_targets, hull_mask, read_target_points
@@ -67,6 +68,28 @@ __all__ = [
     "loo_pit",
     "loo_pit_figure",
     "pointwise_loo_loglik",
+    "store_log_likelihood",
     "variogram_check",
     "variogram_check_figure",
+    "WorkUnit",
+    "make_units",
+    "run_units",
+    "maximin_order",
+    "nearest_previous",
+    "nn_krige",
+    "nn_loglik",
+    "nn_loglik_and_grad",
 ]
+
+# Loaded on first use: the nearest-neighbour likelihood needs PyTensor and Numba, which
+# `import bayesgeo` (data intake, exploration) should not pay for.
+_LAZY = {name: "bayesgeo.vecchia" for name in
+         ("maximin_order", "nearest_previous", "nn_krige", "nn_loglik", "nn_loglik_and_grad")}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    raise AttributeError(f"module 'bayesgeo' has no attribute {name!r}")
