@@ -218,7 +218,8 @@ def loglik_and_grad(resid: np.ndarray, dist: np.ndarray, covariance: Covariance,
     resid : ndarray, shape (n,)
         Data minus trend.
     dist : ndarray, shape (n, n)
-        Symmetric distances between the sites (units of ``scale``).
+        Symmetric distances between the sites (units of ``scale``); only the strict upper
+        triangle is read (the diagonal is taken as zero distance).
     covariance : Covariance
         One of :data:`FAST_FAMILIES`.
     scale, partial_sill, nugget : float

@@ -186,7 +186,9 @@ def report(grad_rows, fit_rows, args) -> str:
     now = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     cpu = platform.processor() or platform.machine()
     lines = ["", "## Dense likelihood", "",
-             f"{now}; {platform.system()} {platform.machine()} {cpu}, {os.cpu_count()} CPUs, "
+             f"{now}; {platform.system()} {platform.machine()} {cpu}, {os.cpu_count()} CPUs, 1-minute load "
+             f"average {args.load_start:.1f} at the start and {os.getloadavg()[0]:.1f} at the end (other jobs "
+             "inflate times: read the ratios), "
              f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS')}; pymc {pm.__version__}, "
              f"pytensor {pytensor.__version__}; `python bench/bench_likelihood.py "
              f"{' '.join(sys.argv[1:])}`.", "",
@@ -222,6 +224,7 @@ def main(argv=None) -> int:
     p.add_argument("--draws", type=int, default=500)
     p.add_argument("--no-append", action="store_true", help="print only; do not append to bench/RESULTS.md")
     args = p.parse_args(argv)
+    args.load_start = os.getloadavg()[0]
     grad_rows = per_gradient(args.sizes, args.rounds)
     fit_rows = full_fits(args.fit_sizes, args.seeds, args.tune, args.draws)
     text = report(grad_rows, fit_rows, args)
