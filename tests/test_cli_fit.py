@@ -1,0 +1,99 @@
+"""Tests of ``bayesgeo fit``: JSON output, files, exit codes, refusals. One small fit is shared."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from bayesgeo.cli import EXIT_INPUT, EXIT_NOT_CONVERGED, main
+from bayesgeo.demo import simulate_field
+
+
+def _csv(path, n=40, seed=5, site=None, zero_rows=()):
+    rng = np.random.default_rng(seed)
+    xy = np.column_stack([431_000 + 250 * rng.random(n), 5_622_000 + 250 * rng.random(n)])
+    v = np.exp(simulate_field(xy, covariance="matern32", practical_range=120.0, partial_sill=0.4, nugget=0.08,
+                              mean=3.0, rng=rng))
+    v[list(zero_rows)] = 0.0
+    lines = ["easting,northing,parcel,arsenic_mg_kg"]
+    for i in range(n):
+        lab = site[i] if site is not None else "plot-a"
+        lines.append(f"{xy[i, 0]:.1f},{xy[i, 1]:.1f},{lab},{v[i]:.3f}")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.fixture(scope="module")
+def cli_run(tmp_path_factory):
+    """One `bayesgeo fit --json` run (n = 40, 2 chains x 150 draws) on a one-site CSV."""
+    tmp = tmp_path_factory.mktemp("cli_fit")
+    data = _csv(tmp / "points.csv")
+    out = tmp / "fit-out"
+    argv = [str(data), "--value", "arsenic_mg_kg", "--site", "parcel", "--covariance", "matern32",
+            "--transform", "log", "--draws", "150", "--tune", "150", "--chains", "2", "--seed", "4",
+            "--prior-range", "30", "0.05", "--out", str(out), "--json"]
+    return data, out, argv
+
+
+def test_json_output_keys_and_files(cli_run, capsys):
+    """--json prints exactly one JSON object with the documented keys in data units; the exit code is 0,
+    or 3 exactly when the diagnostics verdict is fail (the CLI contract in bayesgeo.cli)."""
+    data, out, argv = cli_run
+    code = main(["fit", *argv])
+    stdout = capsys.readouterr().out
+    assert stdout.count("\n") == 1
+    rep = json.loads(stdout)
+    for name in ("practical_range", "partial_sill", "nugget", "total_sill", "scale"):
+        assert {"mean", "sd", "q05", "q50", "q95"} <= set(rep["parameters"][name])
+        p = rep["parameters"][name]
+        assert p["q05"] <= p["q50"] <= p["q95"]
+    assert {"name", "chains", "draws", "tune", "seed", "seconds"} <= set(rep["sampler"])
+    assert rep["sampler"]["seed"] == 4 and rep["sampler"]["chains"] == 2 and rep["sampler"]["name"] == "nutpie"
+    assert "verdict" in rep["diagnostics"] and rep["cautions"]
+    assert code == (EXIT_NOT_CONVERGED if rep["diagnostics"]["verdict"] == "fail" else 0)
+    assert rep["model"]["priors"]["range"] == [30.0, 0.05]
+    assert rep["parameters"]["practical_range"]["units"] == "coordinate units"
+    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "summary.csv", "summary.txt"]
+
+
+def test_existing_output_is_refused_without_overwrite(cli_run, capsys):
+    """An existing output folder is refused (exit 2, one line on stderr) before any sampling."""
+    data, out, argv = cli_run
+    if not out.exists():
+        out.mkdir()
+    before = sorted(p.name for p in out.iterdir())
+    code = main(["fit", *argv])
+    err = capsys.readouterr()
+    assert code == EXIT_INPUT and err.out == ""
+    assert "already exists" in err.err and "--overwrite" in err.err and err.err.count("\n") == 1
+    assert sorted(p.name for p in out.iterdir()) == before
+
+
+def test_log_transform_refuses_zeros(tmp_path, capsys):
+    """--transform log with zero values: exit 2 and a line naming the rows and the column."""
+    data = _csv(tmp_path / "z.csv", zero_rows=(3, 8))
+    code = main(["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "exponential",
+                 "--transform", "log", "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err
+    assert code == EXIT_INPUT
+    assert "rows 5, 10" in err and "'arsenic_mg_kg'" in err
+    assert not (tmp_path / "o").exists()
+
+
+def test_several_sites_are_refused(tmp_path, capsys):
+    """--site with several sites: exit 2 with a clear message (the several-site model is separate)."""
+    data = _csv(tmp_path / "s.csv", n=40, site=["p1"] * 20 + ["p2"] * 20)
+    code = main(["fit", str(data), "--value", "arsenic_mg_kg", "--site", "parcel", "--covariance", "matern32",
+                 "--out", str(tmp_path / "o")])
+    assert code == EXIT_INPUT
+    assert "2 sites" in capsys.readouterr().err
+
+
+def test_bad_prior_is_refused(tmp_path, capsys):
+    """A prior probability outside (0, 1) is refused with exit 2, naming the option."""
+    data = _csv(tmp_path / "p.csv")
+    code = main(["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "matern32",
+                 "--prior-sd", "1.0", "1.5", "--out", str(tmp_path / "o")])
+    assert code == EXIT_INPUT and "--prior-sd" in capsys.readouterr().err
