@@ -55,6 +55,7 @@ __all__ = [
     "PARETO_K_THRESHOLD",
     "CAUTION",
     "open_fit",
+    "store_log_likelihood",
     "check_same_data",
     "fit_loo",
     "compare_fits",
@@ -100,6 +101,41 @@ def open_fit(path: str | Path) -> xr.DataTree:
         raise InputError(f"{file}: not a readable NetCDF fit ({msg})") from None
     fit_arrays(tree)  # refuse early what the checks cannot use
     return tree
+
+
+def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
+    """Store the exact leave-one-out ``log_likelihood`` group in a saved fit's ``posterior.nc``.
+
+    The file is rewritten atomically (a temporary file moved into place,
+    :func:`bayesgeo.io.write_netcdf`), with every other group unchanged. Later comparisons read
+    the stored group instead of recomputing it.
+
+    Parameters
+    ----------
+    path : str or Path
+        Fit folder (or its ``posterior.nc``).
+    overwrite : bool
+        Replace a ``log_likelihood`` group already in the file (refused otherwise).
+
+    Returns
+    -------
+    Path
+        The rewritten file.
+
+    Raises
+    ------
+    InputError
+        No readable fit, or a ``log_likelihood`` group present without ``overwrite``.
+    """
+    from bayesgeo.io import write_netcdf
+    from bayesgeo.posterior import FIT_FILE
+
+    tree = open_fit(path)
+    file = Path(path) / FIT_FILE if Path(path).is_dir() else Path(path)
+    if "log_likelihood" in tree.children and not overwrite:
+        raise InputError(f"{file}: already holds a log_likelihood group; pass --overwrite to replace it")
+    write_netcdf(file, add_log_likelihood(tree), overwrite=True)
+    return file
 
 
 def check_same_data(fits: Mapping[str, FitArrays]) -> list[str]:

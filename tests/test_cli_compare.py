@@ -138,3 +138,28 @@ def test_unconverged_fits_are_flagged(tmp_path, capsys):
     assert cautions[0].startswith("NOT CONVERGED: bad")
     assert main(["variogram-check", str(a), "--replicates", "5", "--bins", "4", "--json"]) == 0
     assert _json(capsys)["cautions"][0].startswith("NOT CONVERGED")
+
+
+def test_store_writes_the_group_once(tmp_path, capsys):
+    """--store adds the exact LOO log_likelihood group to each fit file; a later comparison reads it
+    and gives the same elpd (arviz.loo on stored and recomputed densities), and
+    store_log_likelihood refuses to replace an existing group without overwrite."""
+    import xarray as xr
+
+    from bayesgeo.modelcheck import store_log_likelihood
+    from bayesgeo.validate import InputError
+
+    ds = simulated(30, seed=34)
+    a = _save(make_fit(ds, ndraw=60, seed=6), tmp_path / "a")
+    b = _save(make_fit(ds, covariance="exponential", ndraw=60, seed=7), tmp_path / "b")
+    assert main(["compare", str(a), str(b), "--json", "--store"]) == 0
+    first = _json(capsys)
+    with xr.open_datatree(a / "posterior.nc", engine="netcdf4") as t:
+        assert "log_likelihood" in t.children and "posterior" in t.children
+        assert t["log_likelihood"]["value"].shape == (2, 60, 30)
+    assert main(["compare", str(a), str(b), "--json"]) == 0
+    second = _json(capsys)
+    assert [r["elpd_loo"] for r in second["ranking"]] == pytest.approx([r["elpd_loo"] for r in first["ranking"]])
+    with pytest.raises(InputError, match="already holds"):
+        store_log_likelihood(a)
+    store_log_likelihood(a, overwrite=True)

@@ -7,7 +7,8 @@ fits with and without a log transform compare fairly. Fits of different data are
 With ``--out DIR`` the folder (written atomically; an existing one is refused unless
 ``--overwrite``) receives ``comparison.csv`` (the ranking), ``pointwise.csv`` (elpd and Pareto k per
 point and fit), ``loo_pit.png`` (LOO-PIT calibration of every fit) and ``comparison.json`` (the
-object ``--json`` prints). Without ``--out`` nothing is written.
+object ``--json`` prints). Without ``--out`` nothing is written. ``--store`` adds the
+``log_likelihood`` group to each fit's ``posterior.nc`` that lacks one (atomic rewrite).
 """
 
 from __future__ import annotations
@@ -22,6 +23,9 @@ def add_arguments(p) -> None:
     p.add_argument("--out", metavar="DIR", default=None,
                    help="folder for the ranking tables, the LOO-PIT figure and comparison.json (default: none)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing --out folder")
+    p.add_argument("--store", action="store_true",
+                   help="also store the leave-one-out log_likelihood group in each fit's posterior.nc (atomic "
+                        "rewrite; fits that already hold one are left as they are) so later comparisons reuse it")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
 
 
@@ -50,7 +54,7 @@ def _verdicts(name, tree) -> list[str]:
     return []
 
 
-def build_result(dirs, *, bar=None) -> tuple[dict, object, dict]:
+def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, dict]:
     """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs)."""
     from bayesgeo.modelcheck import compare_fits, fit_loo, loo_pit, open_fit
     from bayesgeo.validate import InputError
@@ -68,6 +72,12 @@ def build_result(dirs, *, bar=None) -> tuple[dict, object, dict]:
         if bar is not None:
             bar.update(1)
     res = compare_fits(trees)
+    if store:
+        from bayesgeo.modelcheck import store_log_likelihood
+
+        for name, d in zip(names, dirs):
+            if "log_likelihood" not in trees[name].children:
+                store_log_likelihood(d)
     if bar is not None:
         bar.update(len(trees))
     pits = {name: loo_pit(trees[name], fit_loo(trees[name])) for name in res["fit"].values}
@@ -106,7 +116,7 @@ def run(args) -> int:
         refuse_existing(out, args.overwrite)
     bar = progress(total=3 * len(args.dirs), desc="compare", enabled=not args.json)
     with bar:
-        obj, res, pits = build_result(args.dirs, bar=bar)
+        obj, res, pits = build_result(args.dirs, bar=bar, store=args.store)
     files = []
     if out is not None:
         from bayesgeo.check_figures import loo_pit_figure
