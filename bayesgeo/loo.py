@@ -305,13 +305,15 @@ def draw_covariances(fa: FitArrays, index: np.ndarray | None = None):
 # --- public functions on fits -------------------------------------------------------------------
 
 
-def loo_predictive(tree: xr.DataTree) -> xr.Dataset:
+def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.Dataset:
     """Exact leave-one-out predictive of every point for every posterior draw.
 
     Parameters
     ----------
     tree : xarray.DataTree
         A single-site fit (see :func:`fit_arrays`).
+    arrays : FitArrays, optional
+        ``fit_arrays(tree)`` when already at hand.
 
     Returns
     -------
@@ -321,7 +323,7 @@ def loo_predictive(tree: xr.DataTree) -> xr.Dataset:
         ``transform="log"``), and ``log_lik``, ``log p(v_i | v_-i)`` in data units (module
         docstring). Coordinates ``x``, ``y`` along ``obs``.
     """
-    fa = fit_arrays(tree)
+    fa = fit_arrays(tree) if arrays is None else arrays
     nc, nd = fa.draws["sd_z"].shape
     mean = np.empty((nc * nd, fa.n))
     var = np.empty((nc * nd, fa.n))
@@ -349,13 +351,15 @@ def loo_predictive(tree: xr.DataTree) -> xr.Dataset:
     return out
 
 
-def pointwise_loo_loglik(tree: xr.DataTree) -> xr.DataArray:
+def pointwise_loo_loglik(tree: xr.DataTree, *, predictive: xr.Dataset | None = None) -> xr.DataArray:
     """``log p(v_i | v_-i, theta_s)`` for every draw ``s`` and point ``i``, in data units.
 
     Parameters
     ----------
     tree : xarray.DataTree
         A single-site fit.
+    predictive : xarray.Dataset, optional
+        :func:`loo_predictive` of ``tree`` when already computed (its ``log_lik`` is used).
 
     Returns
     -------
@@ -365,19 +369,22 @@ def pointwise_loo_loglik(tree: xr.DataTree) -> xr.DataArray:
         fits of the same data are comparable whatever their transform.
     """
     fa = fit_arrays(tree)
-    da = loo_predictive(tree)["log_lik"].drop_vars(["x", "y", "row"])
+    pred = loo_predictive(tree, arrays=fa) if predictive is None else predictive
+    da = pred["log_lik"].drop_vars(["x", "y", "row"])
     da.name = fa.obs_name
     da.attrs["units"] = "log density of the measured value (data units)"
     return da
 
 
-def add_log_likelihood(tree: xr.DataTree) -> xr.DataTree:
+def add_log_likelihood(tree: xr.DataTree, *, predictive: xr.Dataset | None = None) -> xr.DataTree:
     """A copy of ``tree`` with a ``log_likelihood`` group of exact leave-one-out densities.
 
     Parameters
     ----------
     tree : xarray.DataTree
         A single-site fit; it is not modified.
+    predictive : xarray.Dataset, optional
+        :func:`loo_predictive` of ``tree`` when already computed.
 
     Returns
     -------
@@ -386,7 +393,7 @@ def add_log_likelihood(tree: xr.DataTree) -> xr.DataTree:
         named after the observed value), so ``arviz.loo(out)`` gives PSIS-LOO in data units.
         An existing ``log_likelihood`` group is replaced.
     """
-    ll = pointwise_loo_loglik(tree)
+    ll = pointwise_loo_loglik(tree, predictive=predictive)
     ds = ll.to_dataset()
     ds.attrs.update({
         "method": "exact Gaussian leave-one-out conditional per draw (Sundararajan and Keerthi 2001; "

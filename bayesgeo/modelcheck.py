@@ -171,12 +171,13 @@ def check_same_data(fits: Mapping[str, FitArrays]) -> list[str]:
     return cautions
 
 
-def fit_loo(tree: xr.DataTree):
+def fit_loo(tree: xr.DataTree, *, predictive: xr.Dataset | None = None):
     """PSIS-LOO of one fit (``arviz.loo``, pointwise) on exact leave-one-out densities.
 
     A stored ``log_likelihood`` group of :func:`bayesgeo.loo.add_log_likelihood` is used as is;
-    otherwise the densities are computed. Returns the ArviZ ``ELPDDataLOO`` (``elpd``, ``se``,
-    ``p``, ``pareto_k``, ``log_weights``, ...).
+    otherwise the densities are computed (from ``predictive``, a :func:`bayesgeo.loo.loo_predictive`
+    result, when given). Returns the ArviZ ``ELPDDataLOO`` (``elpd``, ``se``, ``p``,
+    ``pareto_k``, ``log_weights``, ...).
     """
     import warnings
 
@@ -184,7 +185,7 @@ def fit_loo(tree: xr.DataTree):
 
     fa = fit_arrays(tree)
     if "log_likelihood" not in tree.children or fa.obs_name not in tree["log_likelihood"].data_vars:
-        tree = add_log_likelihood(tree)
+        tree = add_log_likelihood(tree, predictive=predictive)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UserWarning)  # high Pareto k is reported, not warned
         return az.loo(tree, pointwise=True, var_name=fa.obs_name)
@@ -210,7 +211,7 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
         ``p_loo`` (effective number of parameters), ``weight`` (stacking weight),
         ``pareto_k_high`` (points with k > ``k_threshold``) and ``pareto_k_max``. Attributes:
         ``cautions`` (list of str), ``k_threshold``, ``method``, ``n``; the pointwise
-        ``elpd_i`` and ``pareto_k`` sit along (``fit``, ``obs``).
+        ``elpd_i``, ``pareto_k`` and ``loo_pit`` (:func:`loo_pit`) sit along (``fit``, ``obs``).
 
     Raises
     ------
@@ -223,7 +224,9 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
         raise InputError(f"compare: give at least two fits (got {len(fits)})")
     arrays = {name: fit_arrays(tree) for name, tree in fits.items()}
     cautions = check_same_data(arrays)
-    elpds = {name: fit_loo(tree) for name, tree in fits.items()}
+    preds = {name: loo_predictive(tree, arrays=arrays[name]) for name, tree in fits.items()}
+    elpds = {name: fit_loo(tree, predictive=preds[name]) for name, tree in fits.items()}
+    pits = {name: _pit(arrays[name], preds[name], elpds[name]) for name in fits}
     table = az.compare(elpds, round_to="none")
     order = [str(i) for i in table.index]
     n = next(iter(arrays.values())).n
@@ -243,6 +246,7 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
             "pareto_k_max": ("fit", [float(np.max(elpds[k].pareto_k)) for k in order]),
             "elpd_i": (("fit", "obs"), np.stack([np.asarray(elpds[k].elpd_i) for k in order])),
             "pareto_k": (("fit", "obs"), np.stack([np.asarray(elpds[k].pareto_k) for k in order])),
+            "loo_pit": (("fit", "obs"), np.stack([pits[k] for k in order])),
         },
         coords={"fit": order},
     )
@@ -274,7 +278,7 @@ def _family_label(fa: FitArrays) -> str:
     return f"matern (nu={spec.nu:g})" if spec.covariance == "matern" else spec.covariance
 
 
-def loo_pit(tree: xr.DataTree, elpd=None) -> xr.DataArray:
+def loo_pit(tree: xr.DataTree, *, elpd=None) -> xr.DataArray:
     """Leave-one-out probability integral transform of each observation.
 
     Parameters
@@ -291,16 +295,20 @@ def loo_pit(tree: xr.DataTree, elpd=None) -> xr.DataArray:
         Along ``obs``, values in [0, 1]:
         ``PIT_i = sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s)`` (module docstring).
     """
-    elpd = fit_loo(tree) if elpd is None else elpd
     fa = fit_arrays(tree)
-    pred = loo_predictive(tree)
+    pred = loo_predictive(tree, arrays=fa)
+    elpd = fit_loo(tree, predictive=pred) if elpd is None else elpd
+    return xr.DataArray(_pit(fa, pred, elpd), dims=("obs",), coords={"obs": fa.obs_index}, name="loo_pit",
+                        attrs={"method": "exact normal LOO predictive per draw, mixed with PSIS weights"})
+
+
+def _pit(fa: FitArrays, pred: xr.Dataset, elpd) -> np.ndarray:
+    """sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s) with normalised PSIS weights w_is."""
     u = (fa.z[None, None, :] - pred["loo_mean"].values) / pred["loo_sd"].values
     cdf = special.ndtr(u)  # (chain, draw, obs)
     lw = elpd.log_weights.transpose("chain", "draw", ...).values
     w = np.exp(lw - special.logsumexp(lw, axis=(0, 1), keepdims=True))
-    pit = np.clip(np.sum(w * cdf, axis=(0, 1)), 0.0, 1.0)
-    return xr.DataArray(pit, dims=("obs",), coords={"obs": fa.obs_index}, name="loo_pit",
-                        attrs={"method": "exact normal LOO predictive per draw, mixed with PSIS weights"})
+    return np.clip(np.sum(w * cdf, axis=(0, 1)), 0.0, 1.0)
 
 
 # --- the posterior predictive semivariogram -----------------------------------------------------

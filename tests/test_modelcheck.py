@@ -207,6 +207,7 @@ def test_compare_refuses_different_data_and_orders_by_elpd():
     assert int(res["pareto_k_high"].sel(fit="m32")) == int((res["pareto_k"].sel(fit="m32") > 0.7).sum())
     assert list(res["covariance"].values) == [{"m32": "matern32", "exp": "exponential"}[str(f)] for f in res["fit"].values]
     assert any("licensed professional" in c for c in res.attrs["cautions"])
+    np.testing.assert_allclose(res["loo_pit"].sel(fit="exp").values, loo_pit(b).values, rtol=1e-12)
 
 
 def test_compare_ranks_true_smoothness_first_plug_in():

@@ -56,7 +56,7 @@ def _verdicts(name, tree) -> list[str]:
 
 def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, dict]:
     """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs)."""
-    from bayesgeo.modelcheck import compare_fits, fit_loo, loo_pit, open_fit
+    from bayesgeo.modelcheck import compare_fits, open_fit
     from bayesgeo.validate import InputError
 
     if len(dirs) < 2:
@@ -80,9 +80,7 @@ def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, 
                 store_log_likelihood(d)
     if bar is not None:
         bar.update(len(trees))
-    pits = {name: loo_pit(trees[name], fit_loo(trees[name])) for name in res["fit"].values}
-    if bar is not None:
-        bar.update(len(trees))
+    pits = {str(name): res["loo_pit"].sel(fit=name) for name in res["fit"].values}
     ranking = []
     for k, name in enumerate(res["fit"].values):
         row = res.isel(fit=k)
@@ -114,7 +112,7 @@ def run(args) -> int:
     out = Path(args.out) if args.out else None
     if out is not None:
         refuse_existing(out, args.overwrite)
-    bar = progress(total=3 * len(args.dirs), desc="compare", enabled=not args.json)
+    bar = progress(total=2 * len(args.dirs), desc="compare", enabled=not args.json)
     with bar:
         obj, res, pits = build_result(args.dirs, bar=bar, store=args.store)
     files = []
