@@ -16,6 +16,10 @@ from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, 
 from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
 from bayesgeo.check_figures import loo_pit_figure, variogram_check_figure
 from bayesgeo.loo import add_log_likelihood, pointwise_loo_loglik
+from bayesgeo.model import FitSpec, build_model
+from bayesgeo.posterior import fit, fit_report, fit_spec, load_fit, prior_check_figure, save_fit, summary_table
+from bayesgeo.priors import Priors, plot_prior_semivariogram, prior_semivariogram
+from bayesgeo.sampling import compile_model, sample
 from bayesgeo.modelcheck import compare_fits, loo_pit, store_log_likelihood, variogram_check
 from bayesgeo.parallel import WorkUnit, make_units, run_units
 from bayesgeo.predict import area_average, basis_from_fit, krige, make_basis, posterior_parameters, predict_targets
@@ -53,6 +57,20 @@ __all__ = [
     "semivariogram_figure",
     "write_demo_data",
     "write_diagnostic_figures",
+    "FitSpec",
+    "Priors",
+    "build_model",
+    "compile_model",
+    "fit",
+    "fit_report",
+    "fit_spec",
+    "load_fit",
+    "plot_prior_semivariogram",
+    "prior_check_figure",
+    "prior_semivariogram",
+    "sample",
+    "save_fit",
+    "summary_table",
     "area_average",
     "basis_from_fit",
     "discretise_area",
