@@ -152,3 +152,29 @@ def test_bad_options_exit_2(tmp_path, capsys, bad):
     folder, _ = _fit_folder(tmp_path / "fit")
     assert main(["map", str(folder), "--no-figures", *bad]) == 2
     assert len(capsys.readouterr().err.strip().splitlines()) == 1
+
+
+@pytest.mark.slow
+def test_real_fit_then_map_covers_held_out_samples(tmp_path, capsys):
+    """End to end with a real fit (bayesgeo.posterior.fit, nutpie): fit 50 of the 60 'mill-pond'
+    samples of the invented demo (log transform, Matérn 3/2 with nugget, the true model of the demo),
+    then map the 10 held-out sample locations. Their 90% predictive intervals (new measurement,
+    nugget included) should cover most of them: with 10 points, 7 or more covered has probability
+    0.99 under nominal coverage (scipy.stats.binom.sf(6, 10, 0.9) = 0.987)."""
+    from bayesgeo.posterior import fit, save_fit
+
+    ds = demo_data()
+    ds = ds.isel(obs=np.flatnonzero(ds["site"].values == "mill-pond")).drop_vars("site")
+    train, test = ds.isel(obs=slice(0, 50)), ds.isel(obs=slice(50, 60))
+    tree = fit(train, covariance="matern32", transform="log", chains=2, draws=400, tune=400, seed=5)
+    folder = save_fit(tree, tmp_path / "fit")
+    pts = tmp_path / "held_out.csv"
+    pts.write_text("x,y\n" + "".join(f"{x},{y}\n" for x, y in zip(test["x"].values, test["y"].values)))
+    code, out = _run_json(capsys, ["map", str(folder), "--points", str(pts), "--draws", "200", "--no-figures",
+                                   "--allow-unconverged", "--json"])
+    assert code == 0 and out["cells"] == 10
+    pred = xr.open_dataset(folder / "predictions.nc")
+    obs = test["value"].values
+    covered = int(np.sum((obs > pred["q05"].values) & (obs < pred["q95"].values)))
+    pred.close()
+    assert covered >= 7, covered

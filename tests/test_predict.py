@@ -209,3 +209,47 @@ def test_posterior_parameters_converts_units_and_thins_evenly():
     np.testing.assert_allclose(out["partial_sill"], 1.0)
     np.testing.assert_allclose(out["nugget"], 0.04)
     np.testing.assert_allclose(out["beta"].values[0], [5.5, 2.0])
+
+
+def test_joint_covariance_matches_scikit_learn_and_simulations_follow_it():
+    """The joint conditional covariance (krige full_cov) equals scikit-learn's
+    GaussianProcessRegressor.predict(return_cov=True) for the field; joint conditional simulations
+    (simulate_targets, one draw) have that mean and covariance up to Monte Carlo error."""
+    from sklearn.gaussian_process import GaussianProcessRegressor
+    from sklearn.gaussian_process.kernels import ConstantKernel, Matern
+
+    from bayesgeo._kriging import JITTER
+
+    rng = np.random.default_rng(8)
+    xy, xy_new = _sites(40, rng), _sites(6, rng)
+    y = rng.standard_normal(40)
+    mean, cov = krige(xy, y, np.ones((40, 1)), xy_new, np.ones((6, 1)), "matern52", 15.0, 1.3, 0.2, [0.0],
+                      include_nugget=False, full_cov=True)
+    kern = ConstantKernel(1.3, "fixed") * Matern(length_scale=math.sqrt(5.0) * 15.0, nu=2.5, length_scale_bounds="fixed")
+    gpr = GaussianProcessRegressor(kern, optimizer=None, alpha=0.2 + JITTER * 1.3).fit(xy, y)
+    m_ref, c_ref = gpr.predict(xy_new, return_cov=True)
+    np.testing.assert_allclose(mean, m_ref, atol=1e-9)
+    np.testing.assert_allclose(cov, c_ref, atol=1e-9)
+
+    basis = make_basis(xy, y, np.ones((40, 1)), covariance="matern52", scale=15.0, partial_sill=1.3, nugget=0.2,
+                       beta=[0.0])
+    targets = xr.Dataset(coords={"x": ("target", xy_new[:, 0]), "y": ("target", xy_new[:, 1])})
+    targets["inside"] = ("target", np.ones(6, bool))
+    targets.attrs["kind"] = "points"  # the layout of bayesgeo.targets.read_target_points
+    sims = P.simulate_targets(basis, targets, n_sim=20000, seed=3, include_nugget=False).values[0]
+    se = np.sqrt(np.diag(cov) / 20000)
+    assert np.all(np.abs(sims.mean(axis=0) - mean) < 4.5 * se)
+    np.testing.assert_allclose(np.cov(sims.T), cov, atol=0.05 * np.max(np.diag(cov)))
+
+
+def test_distributed_scheduler_gives_the_same_numbers():
+    """A dask.distributed cluster (in-process LocalCluster) gives the numbers of the local threads
+    scheduler exactly (same per-cell arithmetic; project requirement)."""
+    distributed = pytest.importorskip("distributed")
+    basis = _basis_three_draws()
+    grid = grid_targets(basis.xy, cells=8)
+    local = P.predict_targets(basis, grid, thresholds=[1.0], chunk_cells=20)
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=None) as lc:
+        remote = P.predict_targets(basis, grid, thresholds=[1.0], chunk_cells=20, scheduler=lc.scheduler_address)
+    for name in ("mean", "sd", "q05", "q95", "p_exceed"):
+        np.testing.assert_array_equal(local[name].values, remote[name].values)

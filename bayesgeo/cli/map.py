@@ -16,6 +16,7 @@ PREDICTIONS_FILE = "predictions.nc"
 MAPS_DIR = "maps"
 DEFAULT_DRAWS = 500
 AREA_POINTS = 400
+MAX_SIM_TARGETS = 2000
 
 
 def _draws(text: str):
@@ -51,7 +52,11 @@ def add_arguments(p) -> None:
     p.add_argument("--scheduler", default="threads", metavar="ADDRESS",
                    help="'threads' (default, local thread pool), 'synchronous', or a dask.distributed scheduler address")
     p.add_argument("--chunk-cells", type=int, default=4096, metavar="K", help="cells per parallel task (default 4096)")
-    p.add_argument("--seed", type=int, default=0, metavar="S", help="seed of the area simulations (log transform)")
+    p.add_argument("--simulate", type=int, default=0, metavar="N",
+                   help=f"also store N joint conditional simulations per draw (at most {MAX_SIM_TARGETS} targets; "
+                   "use --points or a coarse --cell)")
+    p.add_argument("--seed", type=int, default=0, metavar="S",
+                   help="seed of the simulations (area averages under the log transform, --simulate)")
     p.add_argument("--overwrite", action="store_true", help="replace existing predictions.nc and maps/")
     p.add_argument("--allow-unconverged", action="store_true",
                    help="map a posterior that failed the convergence check (outputs are marked NOT CONVERGED)")
@@ -103,6 +108,8 @@ def run(args) -> int:
     if not (np.isfinite(args.margin) and args.margin >= 0):
         raise InputError(f"--margin: expected a number >= 0, got {args.margin!r}")
     area_vertices = tg.area_from_option(args.area) if args.area else None
+    if args.simulate < 0:
+        raise InputError(f"--simulate: expected an integer >= 0, got {args.simulate}")
     out_nc, out_maps = folder / PREDICTIONS_FILE, folder / MAPS_DIR
     refuse_existing(out_nc, args.overwrite)
     if not args.no_figures:
@@ -171,6 +178,16 @@ def run(args) -> int:
         area = area_average(basis, pts, design_at(pts, spec.design_attrs), thresholds=args.threshold,
                             n_sim=200, seed=args.seed)
         area.update(area=label, area_size=tg.polygon_area(vertices), units=units)
+    if args.simulate:
+        if n_cells > MAX_SIM_TARGETS:
+            raise InputError(f"--simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
+                             "(use --points or a coarser --cell)")
+        from bayesgeo.predict import simulate_targets
+
+        pred["simulation"] = simulate_targets(basis, targets, n_sim=args.simulate, seed=args.seed,
+                                              include_nugget=args.nugget == "include",
+                                              design_attrs=spec.design_attrs, units=units)
+        pred = pred.assign_coords(sample=np.arange(basis.n_draws))
     pred.attrs.update({
         "fit_folder": str(folder), "convergence_verdict": verdict, "draws_total": int(params.attrs["draws_total"]),
         "value_units": units, "distance_units": spec.distance_units, "scheduler": str(args.scheduler),
@@ -195,6 +212,7 @@ def run(args) -> int:
         "predictions": str(out_nc), "maps": maps, "targets": targets.attrs["kind"], "cells": n_cells,
         "draws": basis.n_draws, "draws_total": int(params.attrs["draws_total"]),
         "threshold": [float(t) for t in args.threshold], "nugget": args.nugget, "units": units,
+        "simulations_per_draw": int(args.simulate),
         "transform": spec.transform or "none", "convergence": verdict,
         "summary": {k: {"min": float(np.nanmin(pred[k].values)), "max": float(np.nanmax(pred[k].values))}
                     for k in ("mean", "sd")} if n_cells else {},
