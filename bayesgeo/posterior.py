@@ -14,7 +14,7 @@ A fit is one ``xarray.DataTree`` that describes itself:
   ``diagnostics`` (JSON from the diagnostics stage).
 
 On disk (:func:`save_fit`): ``DIR/posterior.nc`` (the tree, netCDF4), ``DIR/summary.csv``,
-``DIR/summary.txt`` and ``DIR/fit.json``.
+``DIR/summary.txt``, ``DIR/fit.json`` and ``DIR/prior_check.png``.
 """
 
 from __future__ import annotations
@@ -46,6 +46,7 @@ __all__ = [
     "summary_text",
     "cautions",
     "with_diagnostics",
+    "prior_check_figure",
     "save_fit",
     "load_fit",
 ]
@@ -334,8 +335,38 @@ def summary_text(report: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+def prior_check_figure(tree: xr.DataTree, *, draws: int = 4000, seed: int = 0):
+    """Prior predictive check of a fit: the semivariogram band implied by its priors against the
+    empirical semivariogram (Matheron estimator, :func:`bayesgeo.explore.semivariogram`) of the
+    modelled values after removing the least-squares trend. Returns the matplotlib Figure."""
+    import warnings
+
+    from bayesgeo.data import points_dataset
+    from bayesgeo.explore import semivariogram
+    from bayesgeo.priors import plot_prior_semivariogram, prior_semivariogram
+
+    spec = fit_spec(tree)
+    obs = tree["observed_data"]
+    z = obs["model_value"].values if "model_value" in obs else obs["value"].values
+    cdata = tree["constant_data"]
+    x = cdata["design"].values
+    coef, *_ = np.linalg.lstsq(x, z, rcond=None)
+    pts = points_dataset(cdata["x"].values, cdata["y"].values, z,
+                         attrs={"coords": "lonlat" if spec.metric == "greatcircle" else "xy"})
+    pts["residual"] = ("obs", z - x @ coef)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # few-pairs bins are fine for a visual check
+        emp = semivariogram(pts)
+    lags = np.linspace(0.0, float(emp["bin_upper"].values[-1]), 60)
+    band = prior_semivariogram(spec.priors, lags, covariance=spec.covariance,
+                               nu=spec.nu if spec.covariance == "matern" else None,
+                               nugget=spec.nugget, draws=draws, seed=seed)
+    return plot_prior_semivariogram(band, emp, distance_units=spec.distance_units, value_units=spec.model_units)
+
+
 def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = False) -> Path:
-    """Write a fit into ``directory`` atomically: posterior.nc, summary.csv, summary.txt, fit.json.
+    """Write a fit into ``directory`` atomically: posterior.nc, summary.csv, summary.txt, fit.json
+    and prior_check.png (:func:`prior_check_figure`).
 
     The folder is assembled under a temporary name and renamed at the end
     (:func:`bayesgeo.io.atomic_dir`); an existing folder is refused unless ``overwrite``.
@@ -354,6 +385,11 @@ def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = Fals
         (tmp / "summary.csv").write_text(buf.getvalue(), encoding="utf-8")
         (tmp / "summary.txt").write_text(summary_text(report), encoding="utf-8")
         (tmp / "fit.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+        import matplotlib.pyplot as plt
+
+        fig = prior_check_figure(tree)
+        fig.savefig(tmp / "prior_check.png", dpi=120, bbox_inches="tight")
+        plt.close(fig)
     return Path(directory)
 
 

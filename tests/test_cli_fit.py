@@ -55,7 +55,7 @@ def test_json_output_keys_and_files(cli_run, capsys):
     assert code == (EXIT_NOT_CONVERGED if rep["diagnostics"]["verdict"] == "fail" else 0)
     assert rep["model"]["priors"]["range"] == [30.0, 0.05]
     assert rep["parameters"]["practical_range"]["units"] == "coordinate units"
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "summary.csv", "summary.txt"]
+    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "prior_check.png", "summary.csv", "summary.txt"]
 
 
 def test_existing_output_is_refused_without_overwrite(cli_run, capsys):

@@ -29,7 +29,7 @@ def add_arguments(p) -> None:
     p.add_argument("--target-accept", type=float, default=0.8, help="target acceptance rate (default 0.8)")
     p.add_argument("--seed", type=int, default=None, help="seed (default: a fresh one, recorded in the output)")
     p.add_argument("--sampler", choices=("nutpie", "pymc"), default="nutpie", help="NUTS implementation (default nutpie)")
-    p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json)")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
 
@@ -63,5 +63,5 @@ def run(args) -> int:
         emit_json(report)
     else:
         print(summary_text(report), end="")
-        print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json)")
+        print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
