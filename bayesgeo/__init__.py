@@ -12,6 +12,9 @@ from bayesgeo.demo import demo_data, write_demo_data
 from bayesgeo.autocorr import autocorrelation, integrated_autocorrelation_time
 from bayesgeo.diagnostic_figures import write_diagnostic_figures
 from bayesgeo.diagnostics import Convergence, Thresholds, check_convergence
+from bayesgeo.design import design_table, kriging_variance
+from bayesgeo.hier_outputs import load_site_fit, save_site_fit, shrinkage_table
+from bayesgeo.hierarchical import build_site_model, fit_sites, site_fit
 from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, semivariogram
 from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
 from bayesgeo.check_figures import loo_pit_figure, variogram_check_figure
@@ -97,6 +100,14 @@ __all__ = [
     "nn_krige",
     "nn_loglik",
     "nn_loglik_and_grad",
+    "build_site_model",
+    "design_table",
+    "fit_sites",
+    "kriging_variance",
+    "load_site_fit",
+    "save_site_fit",
+    "shrinkage_table",
+    "site_fit",
 ]
 
 # Loaded on first use: the nearest-neighbour likelihood needs PyTensor and Numba, which
