@@ -128,16 +128,16 @@ def loo_pit_figure(pits: Mapping[str, xr.DataArray], *, alpha: float = 0.05, tit
         the mirror shape too narrow; a curve above 0 throughout means over-prediction.
     """
     fig, ax = _figure()
-    u = np.linspace(0.0, 1.0, 201)
     n = None
     for k, (name, pit) in enumerate(pits.items()):
         v = np.sort(np.asarray(pit.values, dtype=float))
         n = v.size
+        u = np.unique(np.concatenate([np.linspace(0.0, 1.0, 201), v]))  # every jump of the ECDF
         ecdf = np.searchsorted(v, u, side="right") / n
         ax.step(u, ecdf - u, where="post", color=_LINES[k % len(_LINES)], linewidth=1.4, label=str(name))
     if n:
         eps = dkw_halfwidth(n, alpha)
-        ax.fill_between(u, -eps, eps, color=_REPLICATE, alpha=0.6, linewidth=0, zorder=0,
+        ax.fill_between([0.0, 1.0], -eps, eps, color=_REPLICATE, alpha=0.6, linewidth=0, zorder=0,
                         label=f"{1 - alpha:.0%} band for a calibrated model (DKW, n = {n})")
     ax.axhline(0.0, color="#888888", linewidth=0.8)
     ax.set_xlim(0.0, 1.0)
