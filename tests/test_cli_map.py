@@ -98,17 +98,19 @@ def test_map_json_grid_and_area(tmp_path, capsys):
 
 
 def test_map_points_keep_input_order(tmp_path, capsys):
-    """--points predicts at the listed points in file order along 'target'; without nugget and a
+    """--points predicts at the listed points in file order along 'target' (and --simulate stores
+    joint simulations per draw there); without nugget and a
     raw-scale fit the prediction at a far-away point reverts towards the trend mean (kriging fact:
     beyond the range the weights vanish; common practice)."""
     folder, ds = _fit_folder(tmp_path / "fit", transform=None)
     pts = tmp_path / "targets.csv"
     pts.write_text("x,y\n431400,5622400\n431300.5,5622301\n440000,5630000\n")
     code, out = _run_json(capsys, ["map", str(folder), "--points", str(pts), "--threshold", "30", "--nugget",
-                                   "exclude", "--no-figures", "--json"])
-    assert code == 0 and out["cells"] == 3 and out["targets"] == "points"
+                                   "exclude", "--no-figures", "--draws", "40", "--simulate", "5", "--json"])
+    assert code == 0 and out["cells"] == 3 and out["targets"] == "points" and out["simulations_per_draw"] == 5
     pred = xr.open_dataset(folder / "predictions.nc")
     np.testing.assert_allclose(pred["x"].values, [431400, 431300.5, 440000])
+    assert pred["simulation"].dims == ("sample", "sim", "target") and pred["simulation"].shape == (40, 5, 3)
     far = float(pred["mean"].values[2])
     post = xr.open_datatree(folder / "posterior.nc")
     spec = json.loads(post.attrs["settings"])["model"]
