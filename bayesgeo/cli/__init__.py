@@ -26,6 +26,8 @@ COMMANDS: dict[str, str] = {
     "map": "map",
     "compare": "compare",
     "variogram-check": "vgcheck",
+    "run": "run",
+    "demo": "demo",
 }
 
 

@@ -1,0 +1,270 @@
+"""Run a whole study: explore, fit (per family), check, variogram check, map, compare, report.
+
+:func:`run_study` drives the stage commands in order, in-process, with the settings of a
+:class:`~bayesgeo.study.Study`; each stage is exactly the code behind its own command
+(``bayesgeo explore``, ``fit``, ``check``, ``variogram-check``, ``map``, ``compare``), so a run
+and a sequence of commands give the same files and numbers. The pipeline therefore sits beside
+the command line, at the end of the stage order.
+
+Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.io.atomic_dir`)::
+
+    inputs/            copies of the study file and the data (and target points, area polygon)
+    explore/           exploratory semivariogram, correlogram, directions, quick fits (explore.json)
+    fits/<family>/     posterior.nc, summary.csv/.txt, fit.json, diagnostics/, variogram_check.*,
+                       predictions.nc, maps/
+    compare/           comparison.csv, pointwise.csv, loo_pit.png, comparison.json (several families)
+    predictions.nc     the predictions of the selected fit (best by PSIS-LOO, or the only one)
+    figures/*.png      every figure of the run, prefixed by its stage
+    tables/*.csv       every table of the run, prefixed by its stage
+    report.html        the self-contained report (bayesgeo.report)
+    manifest.json      inputs with SHA-256, study text, versions, platform, seeds, command line,
+                       times, stage verdicts and the SHA-256 of every output
+
+Exit status of a run: 0 done; 3 a fit failed its convergence check (later stages skipped; the
+report is written and marked NOT CONVERGED); 1 a stage failed unexpectedly (recorded in the
+manifest and the report).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+import shutil
+import sys
+import time
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+from bayesgeo.io import atomic_dir, refuse_existing, write_json
+from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
+from bayesgeo.study import Study, read_study
+from bayesgeo.validate import InputError
+
+__all__ = ["run_study", "stage_commands", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
+
+EXIT_OK = 0
+EXIT_STAGE_FAILED = 1
+EXIT_NOT_CONVERGED = 3
+REPORT_FILE = "report.html"
+
+_PARSER = None
+
+
+def _parser():
+    global _PARSER
+    if _PARSER is None:
+        from bayesgeo.cli import _build_parser
+
+        _PARSER = _build_parser()
+    return _PARSER
+
+
+def _command(argv: Sequence[str]) -> tuple[int, dict]:
+    """Run one ``bayesgeo`` command in-process with ``--json``; return (status, its JSON object)."""
+    args = _parser().parse_args([str(a) for a in argv] + ["--json"])
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        status = int(args._module.run(args) or 0)
+    lines = [ln for ln in buf.getvalue().splitlines() if ln.strip()]
+    try:
+        obj = json.loads(lines[-1]) if lines else {}
+    except ValueError:
+        obj = {"stdout": buf.getvalue()[-2000:]}
+    return status, obj
+
+
+def _data_options(s: dict) -> list[str]:
+    d = s["data"]
+    out = [str(d["path"])]
+    for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("site", "--site"), ("units", "--units"),
+                     ("distance_units", "--distance-units")):
+        if d[key]:
+            out += [opt, d[key]]
+    out += ["--coords", d["coords"], "--duplicates", d["duplicates"]]
+    for c in s["model"]["covariates"]:
+        out += ["--covariate", c]
+    return out
+
+
+def stage_commands(study: Study, root: str | Path) -> dict[str, list[str]]:
+    """The command line of every stage of ``study`` writing under ``root``, keyed by stage name.
+
+    Keys: ``explore``, ``fit:<family>``, ``check:<family>``, ``variogram-check:<family>``,
+    ``map:<family>``, and ``compare`` (several families). Useful to re-run one stage by hand.
+    """
+    s, root = study.settings, Path(root)
+    e, m, smp, pr, ck = s["explore"], s["model"], s["sampler"], s["prediction"], s["check"]
+    data = _data_options(s)
+    cmds: dict[str, list[str]] = {}
+    ex = ["explore", *data, "--trend", str(e["trend"]), "--transform", e["transform"], "--bins", str(e["bins"]),
+          "--permutations", str(e["permutations"]), "--estimator", e["estimator"], "--seed", str(e["seed"]),
+          "--out", str(root / "explore")]
+    if e["max_lag"] is not None:
+        ex += ["--max-lag", repr(e["max_lag"])]
+    cmds["explore"] = ex
+    for fam in study.families:
+        fdir = root / "fits" / fam
+        fit = ["fit", *data, "--covariance", fam, "--trend", str(m["trend"]), "--transform", m["transform"],
+               "--draws", str(smp["draws"]), "--tune", str(smp["tune"]), "--chains", str(smp["chains"]),
+               "--target-accept", repr(smp["target_accept"]), "--seed", str(smp["seed"]), "--sampler", smp["name"],
+               "--out", str(fdir)]
+        if fam == "matern":
+            fit += ["--nu", repr(m["nu"])]
+        if not m["nugget"]:
+            fit += ["--no-nugget"]
+        for key, opt in (("range", "--prior-range"), ("sd", "--prior-sd"), ("nugget", "--prior-nugget")):
+            pair = s["model.priors"][key]
+            if pair is not None:
+                fit += [opt, repr(pair[0]), repr(pair[1])]
+        cmds[f"fit:{fam}"] = fit
+        cmds[f"check:{fam}"] = ["check", str(fdir)]
+        cmds[f"variogram-check:{fam}"] = ["variogram-check", str(fdir), "--replicates", str(ck["replicates"]),
+                                          "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
+        mp = ["map", str(fdir), "--margin", repr(pr["margin"]), "--draws", str(pr["draws"]), "--nugget", pr["nugget"],
+              "--seed", str(pr["seed"]), "--scheduler", "synchronous"]
+        if pr["cell"] is not None:
+            mp += ["--cell", repr(pr["cell"])]
+        if pr["points"] is not None:
+            mp += ["--points", str(pr["points"])]
+        for t in pr["thresholds"]:
+            mp += ["--threshold", repr(t)]
+        area = pr["area"]
+        if area is not None:
+            mp += ["--area", str(area) if isinstance(area, Path) else ",".join(repr(v) for v in area)]
+        if pr["hull_mask"]:
+            mp += ["--hull-mask"]
+        cmds[f"map:{fam}"] = mp
+    if len(study.families) > 1:
+        cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
+    return cmds
+
+
+def _copy_outputs(root: Path, selected: str | None) -> None:
+    """Top-level predictions.nc (selected fit), figures/ and tables/ gathering every PNG and CSV."""
+    if selected and (root / "fits" / selected / "predictions.nc").is_file():
+        shutil.copy2(root / "fits" / selected / "predictions.nc", root / "predictions.nc")
+    (root / "figures").mkdir(exist_ok=True)
+    (root / "tables").mkdir(exist_ok=True)
+    for ext, dest in (("png", "figures"), ("csv", "tables")):
+        for p in sorted(root.rglob(f"*.{ext}")):
+            rel = p.relative_to(root)
+            if rel.parts[0] in ("figures", "tables", "inputs"):
+                continue
+            shutil.copy2(p, root / dest / "__".join(rel.parts))
+
+
+def run_study(study: Study | str | Path, *, out: str | Path | None = None, overwrite: bool | None = None,
+              argv: Sequence[str] | None = None, log: Callable[[str], None] | None = None) -> dict:
+    """Run every stage of a study into its run folder and write the report and the manifest.
+
+    Parameters
+    ----------
+    study : Study or path
+        A checked study (:func:`bayesgeo.study.read_study`) or the path of a study file.
+    out : path, optional
+        Run folder (default: the study's ``[output] dir``).
+    overwrite : bool, optional
+        Replace an existing run folder (default: the study's ``[output] overwrite``).
+    argv : sequence of str, optional
+        Command line recorded in the manifest (default ``sys.argv``).
+    log : callable, optional
+        Receives one line per stage as it starts (progress display); None for silence.
+
+    Returns
+    -------
+    dict
+        ``status`` (0, 1 or 3, see the module docstring), ``out``, ``report``, ``manifest``
+        (path), ``verdicts`` (stage -> verdict), ``selected`` (family whose predictions are at the
+        top of the folder), ``message``.
+
+    Raises
+    ------
+    InputError
+        Bad study, data or settings (nothing is written), or an existing run folder without overwrite.
+    """
+    if not isinstance(study, Study):
+        study = read_study(study)
+    s = study.settings
+    out = Path(out) if out is not None else study.out_dir
+    overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
+    refuse_existing(out, overwrite)
+    if s["model"]["pooling"] != "single" or s["model"]["approx"] != "exact":  # pragma: no cover - schema refuses
+        raise InputError("only single-site models with the exact likelihood run from a study in this version")
+    inputs = [study.path, s["data"]["path"]]
+    for extra in (s["prediction"]["points"], s["prediction"]["area"]):
+        if isinstance(extra, Path):
+            inputs.append(extra)
+    manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
+                            argv=argv)
+    say = log or (lambda _msg: None)
+    fams = study.families
+    status, message, selected = EXIT_OK, "done", fams[0]
+    with atomic_dir(out, overwrite=overwrite) as tmp:
+        (tmp / "inputs").mkdir()
+        for k, p in enumerate(inputs):
+            name = "study.toml" if k == 0 else p.name
+            if not (tmp / "inputs" / name).exists():
+                shutil.copy2(p, tmp / "inputs" / name)
+        cmds = stage_commands(study, tmp)
+        order = ["explore"]
+        for fam in fams:
+            order += [f"fit:{fam}", f"check:{fam}", f"variogram-check:{fam}", f"map:{fam}"]
+        if "compare" in cmds:
+            order.append("compare")
+        n_stages = len(order) + 1
+        stop = False
+        for k, name in enumerate(order, 1):
+            rec = {"stage": name, "command": ["bayesgeo", *[str(a).replace(str(tmp), str(out)) for a in cmds[name]]],
+                   "started": utc_now()}
+            if stop:
+                rec.update(status="skipped", verdict="skipped")
+                manifest["stages"].append(rec)
+                continue
+            say(f"[{k}/{n_stages}] {name.replace(':', ' ')}")
+            t0 = time.perf_counter()
+            try:
+                rc, obj = _command(cmds[name])
+            except InputError:
+                if name == "explore" or name.startswith("fit:"):
+                    raise  # bad data or settings: nothing is written
+                rc, obj = EXIT_STAGE_FAILED, {"error": f"{sys.exc_info()[1]}"}
+            except Exception as err:  # noqa: BLE001 - a failing stage is recorded, the report still written
+                rc, obj = EXIT_STAGE_FAILED, {"error": " ".join(f"{type(err).__name__}: {err}".split())}
+            rec.update(seconds=round(time.perf_counter() - t0, 3), status=rc)
+            verdict = "done" if rc == 0 else ("NOT CONVERGED" if rc == EXIT_NOT_CONVERGED else "failed")
+            if name.startswith("check:") and rc != EXIT_STAGE_FAILED:
+                verdict = obj.get("verdict", verdict)
+            if "error" in obj:
+                rec["error"] = obj["error"]
+            rec["verdict"] = verdict
+            manifest["stages"].append(rec)
+            manifest["verdicts"][name] = verdict
+            if name.startswith(("fit:", "check:")) and rc == EXIT_NOT_CONVERGED:
+                if not name.startswith("fit:"):
+                    status, stop = EXIT_NOT_CONVERGED, True
+                    message = (f"{name.split(':', 1)[1]}: the posterior failed its convergence check; later stages "
+                               "skipped; the report is marked NOT CONVERGED")
+            elif rc != 0:
+                if name.startswith("fit:"):
+                    status, stop = EXIT_STAGE_FAILED, True
+                elif status == EXIT_OK:
+                    status = EXIT_STAGE_FAILED
+                message = f"stage {name} failed: {obj.get('error', 'see the report')}" if status != EXIT_NOT_CONVERGED \
+                    else message
+        if "compare" in manifest["verdicts"] and manifest["verdicts"]["compare"] == "done":
+            comp = json.loads((tmp / "compare" / "comparison.json").read_text())
+            selected = comp["ranking"][0]["fit"]
+        _copy_outputs(tmp, selected)
+        manifest["selected"] = selected
+        manifest["status"] = status
+        manifest["message"] = message
+        say(f"[{n_stages}/{n_stages}] report")
+        from bayesgeo.report import write_report
+
+        manifest["finished"] = utc_now()
+        write_report(tmp, manifest, out_name=str(out))
+        manifest["outputs"] = file_table(tmp, exclude=(MANIFEST_FILE,))
+        write_json(tmp / MANIFEST_FILE, manifest)
+    return {"status": status, "message": message, "out": str(out), "report": str(out / REPORT_FILE),
+            "manifest": str(out / MANIFEST_FILE), "verdicts": dict(manifest["verdicts"]), "selected": selected}

@@ -1,0 +1,650 @@
+"""Sections of the HTML report (:mod:`bayesgeo.report`), one function per section.
+
+Each section takes the report context (:func:`context`: the run folder, the manifest and what the
+run wrote) and returns an HTML fragment. A section whose inputs are missing (a stage skipped or
+failed) says so in a visible box instead of showing anything made up.
+"""
+
+from __future__ import annotations
+
+import base64
+import contextlib
+import html
+import io
+import json
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["context", "SECTIONS", "img_tag", "html_table", "prior_sensitivity", "prior_posterior_figure"]
+
+LIMITATIONS = (
+    "The model assumes a second-order stationary Gaussian field after the trend: the same mean structure, "
+    "variance and correlation everywhere in the study area. Abrupt changes (fill, made ground, hot spots, "
+    "different parcels) break this assumption; check the exploratory figures and the variogram check.",
+    "The covariance is isotropic: correlation depends on distance only, not on direction. The directional "
+    "semivariograms show whether that is plausible; a marked direction effect needs a different model.",
+    "Results are only as good as the data: sampling design, sample support (depth, compositing), laboratory "
+    "quality, detection limits and censored values are not modelled here and must be checked first.",
+    "Intervals are conditional on the chosen covariance family, priors and trend; the prior-sensitivity and "
+    "comparison sections show how much they matter, not every way the model could be wrong.",
+    "Predictions far from samples revert to the mean with wide intervals; maps outside the sampled area "
+    "(beyond the convex hull) are extrapolations.",
+    "This report supports, but does not replace, the judgement of a licensed professional. Decisions about "
+    "contamination, exposure or remediation must follow the rules of the local regulator, including any "
+    "required sampling densities, statistics and action levels.",
+)
+
+
+@dataclass
+class Fam:
+    """What one fitted family left in the run folder."""
+
+    name: str
+    folder: Path
+    report: dict | None = None
+    diagnostics: dict | None = None
+    tree: object | None = None
+
+
+@dataclass
+class Ctx:
+    root: Path
+    manifest: Mapping
+    out_name: str
+    title: str
+    settings: Mapping
+    fams: list[Fam] = field(default_factory=list)
+    not_converged: bool = False
+    failed: list[str] = field(default_factory=list)
+
+
+def _read_json(path: Path) -> dict | None:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:
+    """Gather what the run wrote under ``root``."""
+    settings = manifest.get("settings", {})
+    title = settings.get("", {}).get("title") or "bayesgeo study report"
+    ctx = Ctx(root=root, manifest=manifest, out_name=out_name, title=title, settings=settings)
+    for fam in settings.get("model", {}).get("covariance", []):
+        folder = root / "fits" / fam
+        f = Fam(name=fam, folder=folder, report=_read_json(folder / "fit.json"),
+                diagnostics=_read_json(folder / "diagnostics" / "diagnostics.json"))
+        if (folder / "posterior.nc").is_file():
+            from bayesgeo.posterior import load_fit
+
+            f.tree = load_fit(folder)
+        ctx.fams.append(f)
+    verdicts = manifest.get("verdicts", {})
+    ctx.not_converged = any(v == "NOT CONVERGED" or v == "fail" for k, v in verdicts.items()
+                            if k.startswith(("check:", "fit:")))
+    ctx.failed = [k for k, v in verdicts.items() if v == "failed"]
+    return ctx
+
+
+# --- small HTML helpers -------------------------------------------------------------------------
+def esc(x) -> str:
+    return html.escape(str(x))
+
+
+def fmt(v, digits: int = 4) -> str:
+    if v is None:
+        return "–"
+    if isinstance(v, (bool, np.bool_)):
+        return "yes" if v else "no"
+    if isinstance(v, (int, np.integer)):
+        return str(int(v))
+    if isinstance(v, (float, np.floating)):
+        return "–" if not math.isfinite(v) else f"{v:.{digits}g}"
+    return esc(v)
+
+
+def html_table(rows: Sequence[Mapping], columns: Sequence[str], *, headers: Sequence[str] | None = None,
+               left: Sequence[str] = ()) -> str:
+    """An HTML table of ``rows`` (dicts) with the given columns; ``left`` columns left-aligned."""
+    heads = headers or columns
+    out = ["<table><thead><tr>"]
+    out += [f"<th class=\"{'l' if c in left else ''}\">{esc(h)}</th>" for c, h in zip(columns, heads)]
+    out.append("</tr></thead><tbody>")
+    for r in rows:
+        out.append("<tr>" + "".join(f"<td class=\"{'l' if c in left else ''}\">{fmt(r.get(c))}</td>"
+                                    for c in columns) + "</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def img_tag(png: bytes | Path, alt: str, caption: str = "") -> str:
+    """A figure with the PNG embedded as a base64 data URI."""
+    data = png.read_bytes() if isinstance(png, Path) else png
+    b64 = base64.b64encode(data).decode("ascii")
+    cap = f"<figcaption>{esc(caption)}</figcaption>" if caption else ""
+    return f"<figure><img alt=\"{esc(alt)}\" src=\"data:image/png;base64,{b64}\">{cap}</figure>"
+
+
+def _fig_png(fig) -> bytes:
+    import matplotlib.pyplot as plt
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100)
+    plt.close(fig)
+    return buf.getvalue()
+
+
+def gap(text: str) -> str:
+    return f"<p class=\"gap\">{esc(text)}</p>"
+
+
+def _section(anchor: str, title: str, body: str) -> str:
+    return f"<section id=\"{anchor}\"><h2>{esc(title)}</h2>\n{body}\n</section>"
+
+
+TOC = (("job", "Job and data"), ("explore", "Exploratory analysis"), ("model", "Model and priors"),
+       ("diagnostics", "Convergence diagnostics"), ("posterior", "Posterior: range, sills, nugget"),
+       ("priors", "Prior against posterior and prior sensitivity"), ("vgcheck", "Posterior predictive variogram check"),
+       ("maps", "Predictive and exceedance maps"), ("compare", "Model comparison"),
+       ("cautions", "Limitations and cautions"), ("repro", "Reproducibility appendix"))
+
+
+# --- sections -----------------------------------------------------------------------------------
+def header(ctx: Ctx) -> str:
+    m = ctx.manifest
+    out = [f"<h1>{esc(ctx.title)}</h1>",
+           f"<p class=\"small\">bayesgeo run report &middot; run folder <code>{esc(ctx.out_name)}</code> &middot; "
+           f"started {esc(m.get('started'))}, finished {esc(m.get('finished'))} (UTC)</p>"]
+    if ctx.not_converged:
+        out.append("<div class=\"banner\" id=\"status\">NOT CONVERGED: a fit failed its convergence check. Later "
+                   "stages were skipped and the numbers below must not be used for any decision.</div>")
+    elif ctx.failed:
+        out.append(f"<div class=\"banner\" id=\"status\">INCOMPLETE: stage(s) failed: {esc(', '.join(ctx.failed))}. "
+                   "See the sections concerned and the appendix.</div>")
+    else:
+        out.append("<div class=\"ok\" id=\"status\">All stages completed; every fit passed its convergence check "
+                   "(or passed with warnings, listed below).</div>")
+    return "\n".join(out)
+
+
+def contents(ctx: Ctx) -> str:
+    items = "".join(f"<li><a href=\"#{a}\">{esc(t)}</a></li>" for a, t in TOC)
+    return f"<nav><ol>{items}</ol></nav>"
+
+
+def _data(ctx: Ctx):
+    from bayesgeo.data import read_points
+
+    d = ctx.settings.get("data", {})
+    return read_points(d["path"], x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
+                       covariates=d.get("covariates") or [], coords=d.get("coords", "auto"),
+                       duplicates=d.get("duplicates", "error"), units=d.get("units"),
+                       distance_units=d.get("distance_units"))
+
+
+def samples_figure(ds, thresholds: Sequence[float] = ()):
+    """Map of the sample locations coloured by the measured value (log colour scale for positive data)."""
+    import matplotlib.pyplot as plt
+    from matplotlib.colors import LogNorm
+
+    v = ds["value"].values
+    fig, ax = plt.subplots(figsize=(6.4, 5.2), layout="constrained")
+    norm = LogNorm() if np.all(v > 0) else None
+    sc = ax.scatter(ds["x"].values, ds["y"].values, c=v, s=22, cmap="viridis", norm=norm, edgecolors="k",
+                    linewidths=0.3)
+    for t in thresholds:
+        hit = v > t
+        if hit.any():
+            ax.scatter(ds["x"].values[hit], ds["y"].values[hit], s=70, facecolors="none", edgecolors="red",
+                       linewidths=0.9, label=f"above {t:g}")
+    if len(thresholds):
+        ax.legend(loc="best", fontsize=8)
+    du = ds.attrs.get("distance_units", "")
+    ax.set_xlabel(f"x [{du}]" if du else "x")
+    ax.set_ylabel(f"y [{du}]" if du else "y")
+    ax.set_aspect("equal", adjustable="datalim")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.tick_params(labelsize=7)
+    fig.colorbar(sc, ax=ax, label=f"measured value [{ds.attrs.get('value_units', '')}]")
+    ax.set_title("Sample locations and measured values")
+    return fig
+
+
+def job(ctx: Ctx) -> str:
+    m, s = ctx.manifest, ctx.settings
+    fams = s.get("model", {}).get("covariance", [])
+    rows = [
+        {"k": "study file", "v": m.get("study", {}).get("path")},
+        {"k": "data file", "v": s.get("data", {}).get("path")},
+        {"k": "copies of the inputs", "v": "inputs/ in the run folder (hashes in the appendix)"},
+        {"k": "covariance families", "v": ", ".join(fams)},
+        {"k": "selected fit (maps at the top of the run folder)", "v": m.get("selected")},
+        {"k": "run status", "v": f"{m.get('status')}: {m.get('message')}"},
+    ]
+    out = [html_table(rows, ["k", "v"], headers=["item", "value"], left=["k", "v"])]
+    try:
+        ds = _data(ctx)
+    except Exception as err:  # noqa: BLE001 - the report must still be written
+        return _section("job", "Job and data", "\n".join(out) + gap(f"data could not be read again: {err}"))
+    v = ds["value"].values
+    units = ds.attrs.get("value_units", "")
+    stats = [{"n": int(v.size), "min": float(v.min()), "q25": float(np.quantile(v, 0.25)),
+              "median": float(np.median(v)), "mean": float(v.mean()), "q75": float(np.quantile(v, 0.75)),
+              "max": float(v.max()), "sd": float(v.std(ddof=1)) if v.size > 1 else float("nan")}]
+    out.append(f"<h3>Measured values [{esc(units or 'value units')}]</h3>")
+    out.append(html_table(stats, list(stats[0])))
+    if "site" in ds.coords:
+        labels, counts = np.unique(ds["site"].values, return_counts=True)
+        out.append("<p>Sites: " + ", ".join(f"{esc(lb)} ({c})" for lb, c in zip(labels, counts)) + "</p>")
+    xr_ = [float(ds["x"].min()), float(ds["x"].max())]
+    yr_ = [float(ds["y"].min()), float(ds["y"].max())]
+    out.append(f"<p>Coordinates: {esc(ds.attrs.get('coords', ''))}, x from {fmt(xr_[0], 7)} to {fmt(xr_[1], 7)}, "
+               f"y from {fmt(yr_[0], 7)} to {fmt(yr_[1], 7)} {esc(ds.attrs.get('distance_units', ''))}.</p>")
+    th = s.get("prediction", {}).get("thresholds", [])
+    out.append(img_tag(_fig_png(samples_figure(ds, th)), "map of the samples",
+                       "Sample locations coloured by measured value" + (" (red rings: above a threshold)" if th else "")))
+    return _section("job", "Job and data", "\n".join(out))
+
+
+def explore(ctx: Ctx) -> str:
+    folder = ctx.root / "explore"
+    obj = _read_json(folder / "explore.json")
+    if obj is None:
+        return _section("explore", "Exploratory analysis", gap("not available: the explore stage did not complete"))
+    out = [f"<p>{obj['n_total']} points; semivariogram estimator {esc(obj['semivariogram']['estimator'])}; "
+           f"trend order {obj['trend']['order']}; transform {esc(obj['settings']['transform'])}; "
+           f"{obj['settings']['permutations']} random permutations give the envelopes (seed "
+           f"{obj['settings']['seed']}).</p>"]
+    subdirs = [folder] if not obj.get("sites") else sorted(p for p in folder.iterdir() if p.is_dir())
+    for sub in subdirs:
+        if sub != folder:
+            out.append(f"<h3>Site {esc(sub.name)}</h3>")
+        for name, cap in (("semivariogram.png", "Empirical semivariogram with permutation envelope and quick fits"),
+                          ("correlogram.png", "Correlogram with permutation envelope"),
+                          ("directional.png", "Directional semivariograms (azimuths 0, 45, 90, 135 degrees)")):
+            if (sub / name).is_file():
+                out.append(img_tag(sub / name, name, cap))
+    rows = []
+    for method, fams in obj.get("fits", {}).items():
+        for fam, f in fams.items():
+            rows.append({"method": method.upper(), "family": fam, "nugget": f["nugget"],
+                         "partial_sill": f["partial_sill"], "practical_range": f["practical_range"],
+                         "converged": f["converged"]})
+    if rows:
+        out.append("<h3>Quick fits (screening only, no uncertainty)</h3>")
+        out.append(html_table(rows, ["method", "family", "nugget", "partial_sill", "practical_range", "converged"],
+                              left=["method", "family"]))
+    for note in obj.get("notes", []):
+        out.append(f"<p class=\"small\">note: {esc(note)}</p>")
+    return _section("explore", "Exploratory analysis", "\n".join(out))
+
+
+_FAMILY_FORMULA = {
+    "exponential": "ρ(h) = exp(−h / φ); practical range ≈ 2.996 φ",
+    "gaussian": "ρ(h) = exp(−(h / φ)²); practical range ≈ 1.731 φ",
+    "matern32": "ρ(h) = (1 + √3 h / φ) exp(−√3 h / φ)  (Matérn, ν = 3/2)",
+    "matern52": "ρ(h) = (1 + √5 h / φ + 5h² / (3φ²)) exp(−√5 h / φ)  (Matérn, ν = 5/2)",
+    "matern": "ρ(h) = 2<sup>1−ν</sup> / Γ(ν) · (√(2ν) h / φ)<sup>ν</sup> K<sub>ν</sub>(√(2ν) h / φ)  (Matérn, ν fixed)",
+    "spherical": "ρ(h) = 1 − 1.5 h/φ + 0.5 (h/φ)³ for h < φ, 0 beyond; the range is φ",
+}
+
+
+def model(ctx: Ctx) -> str:
+    s = ctx.settings.get("model", {})
+    out = []
+    f0 = next((f for f in ctx.fams if f.report), None)
+    out.append("<p>Observation model for the (transformed) value Z at location s<sub>i</sub>, i = 1, …, n:</p>")
+    out.append("<span class=\"formula\">Z(s<sub>i</sub>) = x(s<sub>i</sub>)ᵀβ + S(s<sub>i</sub>) + ε<sub>i</sub>,"
+               "   S ~ Gaussian process with mean 0 and Cov(S(s), S(s′)) = σ² ρ(‖s − s′‖; φ),"
+               "   ε<sub>i</sub> ~ N(0, τ²) independent</span>")
+    out.append("<p>σ² is the partial sill, τ² the nugget, σ² + τ² the total sill; the practical range is the "
+               "distance where ρ falls to 0.05. Semivariogram: γ(h) = τ² + σ² (1 − ρ(h)) for h &gt; 0. "
+               "Zhang (2004) shows that with ν fixed only the microergodic parameter σ² / φ<sup>2ν</sup> is "
+               "consistently estimable under infill; the range and the partial sill separately carry more prior "
+               "influence.</p>")
+    rows = [{"family": fam, "formula": _FAMILY_FORMULA.get(fam, "see docs/model.md")} for fam in s.get("covariance", [])]
+    out.append("<table><tr><th class=\"l\">family</th><th class=\"l\">correlation function</th></tr>"
+               + "".join(f"<tr><td class=\"l\">{esc(r['family'])}</td><td class=\"l\">{r['formula']}</td></tr>"
+                         for r in rows) + "</table>")
+    out.append(f"<p>Transform: {esc(s.get('transform'))}; trend: polynomial of order {s.get('trend')} in the "
+               f"coordinates{'; covariates ' + esc(', '.join(s.get('covariates'))) if s.get('covariates') else ''}; "
+               f"nugget: {'yes' if s.get('nugget') else 'no (τ² = 0)'}.</p>")
+    out.append("<h3>Priors (penalised complexity; Fuglstad, Simpson, Lindgren and Rue 2019; Simpson et al. 2017)</h3>")
+    out.append("<span class=\"formula\">1 / R ~ Exponential(λ₁), λ₁ = −ln(α₁) R₀   so that P(R &lt; R₀) = α₁   "
+               "(R: practical range)\nσ ~ Exponential(λ₂), λ₂ = −ln(α₂) / S₀   so that P(σ &gt; S₀) = α₂\n"
+               "τ ~ Exponential(λ₃), λ₃ = −ln(α₃) / T₀   so that P(τ &gt; T₀) = α₃\n"
+               "β (standardised) ~ N(0, b²) independently</span>")
+    if f0 is None:
+        out.append(gap("not available: no fit completed, so the resolved prior values are unknown"))
+    else:
+        p = f0.report["model"]["priors"]
+        m = f0.report["model"]
+        du, vu = m.get("distance_units") or "distance units", m.get("value_units") or "value units"
+        rows = [{"quantity": "practical range R", "setting": f"P(R < {fmt(p['range'][0])} {du}) = {fmt(p['range'][1])}",
+                 "rate": p.get("range_rate")},
+                {"quantity": "field sd σ", "setting": f"P(σ > {fmt(p['sd'][0])} {vu}) = {fmt(p['sd'][1])}",
+                 "rate": p.get("sd_rate")}]
+        if m.get("nugget"):
+            rows.append({"quantity": "nugget sd τ",
+                         "setting": f"P(τ > {fmt(p['nugget'][0])} {vu}) = {fmt(p['nugget'][1])}",
+                         "rate": p.get("nugget_rate")})
+        rows.append({"quantity": "trend coefficients (standardised)", "setting": f"b = {fmt(p.get('beta_sd'))}",
+                     "rate": None})
+        out.append(html_table(rows, ["quantity", "setting", "rate"], headers=["quantity", "prior statement", "rate λ"],
+                              left=["quantity", "setting"]))
+        out.append(f"<p class=\"small\">Values modelled in {esc(vu)}; distances in {esc(du)}; n = {m['n']}. "
+                   "Settings not given in the study take the documented defaults (R₀ = 5% of the largest distance, "
+                   "S₀ = T₀ = 2 × sd of the detrended values, α = 0.05).</p>")
+    smp = ctx.settings.get("sampler", {})
+    out.append(f"<p>Sampler: {esc(smp.get('name'))} (NUTS), {smp.get('chains')} chains × {smp.get('draws')} draws after "
+               f"{smp.get('tune')} tuning iterations, target acceptance {smp.get('target_accept')}, seed {smp.get('seed')}.</p>")
+    return _section("model", "Model and priors", "\n".join(out))
+
+
+def diagnostics(ctx: Ctx) -> str:
+    out = []
+    for f in ctx.fams:
+        out.append(f"<h3>{esc(f.name)}</h3>")
+        d = f.diagnostics
+        if d is None:
+            out.append(gap("not available: the check stage did not run for this family (skipped or failed)"))
+            continue
+        verdict = d.get("verdict", "?")
+        cls = {"pass": "ok", "warn": "warn"}.get(verdict, "banner")
+        label = "NOT CONVERGED" if verdict == "fail" else verdict.upper()
+        out.append(f"<div class=\"{cls}\">verdict: {esc(label)} ({d.get('n_chains')} chains × {d.get('n_draws')} "
+                   f"draws; divergences {d.get('divergences')})</div>")
+        rows = [{"parameter": k, **v} for k, v in d.get("parameters", {}).items()]
+        if rows:
+            out.append(html_table(rows, ["parameter", "mean", "sd", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat"],
+                                  left=["parameter"]))
+        th = d.get("thresholds", {})
+        out.append(f"<p class=\"small\">Thresholds: {esc(json.dumps(th))}. Rank-normalised split R̂ and bulk/tail "
+                   "ESS after Vehtari et al. (2021); E-BFMI after Betancourt (2016).</p>")
+        for p in d.get("problems", []):
+            out.append(f"<p>[{esc(p.get('level', '').upper())}] {esc(p.get('message'))} <span class=\"small\">"
+                       f"(source: {esc(p.get('source'))}; advice: {esc(p.get('advice'))})</span></p>")
+        figs = sorted((f.folder / "diagnostics").glob("*.png"))
+        for fig in figs:
+            if fig.name.startswith(("acf", "trace")):
+                out.append(img_tag(fig, fig.name, f"{f.name}: {fig.stem.replace('_', ' ')}"))
+    return _section("diagnostics", "Convergence diagnostics", "\n".join(out))
+
+
+_POSTERIOR_ROWS = ("practical_range", "partial_sill", "nugget", "total_sill", "microergodic", "nugget_ratio", "scale")
+
+
+def posterior(ctx: Ctx) -> str:
+    out = []
+    for f in ctx.fams:
+        out.append(f"<h3>{esc(f.name)}</h3>")
+        if f.report is None:
+            out.append(gap("not available: no fit for this family"))
+            continue
+        if f.report.get("converged") is False:
+            out.append("<div class=\"banner\">NOT CONVERGED: do not use these numbers.</div>")
+        ps = f.report["parameters"]
+        rows = [{"parameter": k, **ps[k]} for k in _POSTERIOR_ROWS if k in ps]
+        rows += [{"parameter": k, **v} for k, v in ps.items() if k.startswith("beta")]
+        out.append(html_table(rows, ["parameter", "q50", "mean", "sd", "q05", "q95", "hdi90_low", "hdi90_high", "units"],
+                              headers=["parameter", "median", "mean", "sd", "5%", "95%", "90% HDI low",
+                                       "90% HDI high", "units"], left=["parameter", "units"]))
+        out.append("<p class=\"small\">5% and 95%: equal-tailed quantiles; HDI: highest-density interval. "
+                   "The microergodic parameter is σ²/φ<sup>2ν</sup> (Zhang 2004).</p>")
+    return _section("posterior", "Posterior: range, sills, nugget", "\n".join(out))
+
+
+def _log_prior(post, spec) -> np.ndarray:
+    """log prior density per draw (chain, draw), up to a constant, in the sampled parametrisation."""
+    from scipy import stats
+
+    from bayesgeo.priors import pc_range_logpdf, pc_sd_logpdf
+
+    p = spec.priors
+    lp = pc_range_logpdf(post["practical_range"].values, *p.range)
+    lp = lp + pc_sd_logpdf(np.sqrt(post["partial_sill"].values), *p.sd)
+    if spec.nugget and "nugget" in post:
+        lp = lp + pc_sd_logpdf(np.sqrt(post["nugget"].values), *p.nugget)
+    if "beta_z" in post and p.beta_sd:
+        bz = post["beta_z"].values
+        lp = lp + stats.norm.logpdf(bz, 0.0, p.beta_sd).reshape(bz.shape[0], bz.shape[1], -1).sum(axis=-1)
+    return lp
+
+
+def _log_lik(tree, spec, max_draws: int | None = None) -> np.ndarray:
+    """Joint Gaussian log-likelihood per draw (chain, draw) of the modelled values."""
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.geometry import distance_matrix
+    from bayesgeo.likelihood import loglik_numpy
+
+    post = tree["posterior"].to_dataset()
+    const = tree["constant_data"].to_dataset()
+    z = np.asarray(tree["observed_data"]["value"].values, float)
+    if spec.transform == "log":
+        z = np.log(z)
+    xy = np.column_stack([const["x"].values, const["y"].values]).astype(float)
+    design = np.asarray(const["design"].values, float)
+    dist = distance_matrix(xy, spec.metric)
+    cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
+    nc, nd = post.sizes["chain"], post.sizes["draw"]
+    beta = post["beta"].values.reshape(nc, nd, -1)
+    scale, psill = post["scale"].values, post["partial_sill"].values
+    nug = post["nugget"].values if "nugget" in post else np.zeros((nc, nd))
+    out = np.empty((nc, nd))
+    for c in range(nc):
+        for d in range(nd):
+            out[c, d] = loglik_numpy(z - design @ beta[c, d], dist, cov, float(scale[c, d]), float(psill[c, d]),
+                                     float(nug[c, d]))
+    return out
+
+
+def prior_sensitivity(tree) -> list[dict] | str:
+    """Power-scaling prior and likelihood sensitivity (Kallioinen, Paananen, Bürkner and Vehtari 2023).
+
+    The log prior per draw is the sum of the PC prior log densities of the practical range, the field sd
+    and the nugget sd and of the Normal log densities of the standardised trend coefficients; the log
+    likelihood per draw is the joint Gaussian log density of the modelled values. Both go to
+    ``arviz.psense_summary``. Returns its rows, or a one-line reason when it cannot be computed.
+    """
+    import arviz as az
+    import xarray as xr
+
+    from bayesgeo.posterior import fit_spec
+
+    try:
+        spec = fit_spec(tree)
+        post = tree["posterior"].to_dataset()
+        lp = _log_prior(post, spec)
+        ll = _log_lik(tree, spec)
+        if not (np.all(np.isfinite(lp)) and np.all(np.isfinite(ll))):
+            return "not computed: non-finite log prior or log likelihood in some draws"
+        names = [n for n in ("practical_range", "partial_sill", "nugget", "total_sill", "microergodic") if n in post]
+        dims = ("chain", "draw")
+        dt = xr.DataTree.from_dict({
+            "/posterior": post[names],
+            "/log_prior": xr.Dataset({"prior": (dims, lp)}, coords={d: post[d] for d in dims}),
+            "/log_likelihood": xr.Dataset({"value": ((*dims, "obs"), ll[..., None])},
+                                          coords={d: post[d] for d in dims}),
+        })
+        with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+            # ArviZ prints advice with a web address; the report explains the table itself
+            table = az.psense_summary(dt, var_names=names, round_to="none")
+    except Exception as err:  # noqa: BLE001 - shown in the report as the reason
+        return f"not computed: {type(err).__name__}: {' '.join(str(err).split())[:200]}"
+    frame = table.to_dataframe() if hasattr(table, "to_dataframe") else table
+    rows = []
+    for idx, r in frame.iterrows():
+        rows.append({"parameter": str(idx), **{str(k): (float(v) if isinstance(v, (int, float, np.number)) else str(v))
+                                               for k, v in r.items()}})
+    return rows
+
+
+def prior_posterior_figure(tree):
+    """Prior and posterior densities of practical range, partial sill and nugget (histograms)."""
+    import matplotlib.pyplot as plt
+
+    from bayesgeo.posterior import fit_spec
+    from bayesgeo.priors import prior_draws
+
+    spec = fit_spec(tree)
+    post = tree["posterior"].to_dataset()
+    pri = prior_draws(spec.priors, draws=20000, nugget=spec.nugget, seed=0)
+    pri = {"practical_range": pri["practical_range"], "partial_sill": pri["sd"] ** 2, "nugget": pri["nugget_sd"] ** 2}
+    names = [n for n in ("practical_range", "partial_sill", "nugget") if n in post]
+    fig, axes = plt.subplots(1, len(names), figsize=(3.4 * len(names), 3.2), layout="constrained")
+    for ax, n in zip(np.atleast_1d(axes), names):
+        x = post[n].values.ravel()
+        hi = float(np.quantile(x, 0.995)) * 1.6
+        lo = 0.0
+        bins = np.linspace(lo, hi, 50)
+        ax.hist(np.clip(pri[n], lo, hi * 2), bins=bins, density=True, alpha=0.45, color="grey", label="prior")
+        ax.hist(x, bins=bins, density=True, alpha=0.7, color="C0", label="posterior")
+        ax.set_xlim(lo, hi)
+        ax.set_xlabel(f"{n.replace('_', ' ')} [{post[n].attrs.get('units', '')}]", fontsize=8)
+        ax.set_yticks([])
+    np.atleast_1d(axes)[0].legend(fontsize=8)
+    fig.suptitle("Prior (grey) against posterior (blue)", fontsize=10)
+    return fig
+
+
+def priors(ctx: Ctx) -> str:
+    out = []
+    for f in ctx.fams:
+        out.append(f"<h3>{esc(f.name)}</h3>")
+        if f.tree is None:
+            out.append(gap("not available: no fit for this family"))
+            continue
+        try:
+            out.append(img_tag(_fig_png(prior_posterior_figure(f.tree)), f"prior and posterior, {f.name}",
+                               "A posterior much narrower than its prior shows the data inform the parameter; "
+                               "one close to the prior shows it does not."))
+        except Exception as err:  # noqa: BLE001
+            out.append(gap(f"figure not drawn: {type(err).__name__}: {err}"))
+        sens = prior_sensitivity(f.tree)
+        if isinstance(sens, str):
+            out.append(gap(f"prior sensitivity {sens}"))
+        else:
+            cols = [c for c in sens[0] if c != "parameter"]
+            out.append(html_table(sens, ["parameter", *cols], left=["parameter", "diagnosis"]))
+            out.append("<p class=\"small\">Power-scaling sensitivity (Kallioinen, Paananen, Bürkner and Vehtari 2023, "
+                       "Statistics and Computing 34) computed by arviz.psense_summary: the cumulative Jensen–Shannon "
+                       "distance when the prior (or the likelihood) is raised to a power near 1. A value above 0.05 "
+                       "(the authors' suggested threshold) flags a prior–data conflict or a strong prior.</p>")
+    return _section("priors", "Prior against posterior and prior sensitivity", "\n".join(out))
+
+
+def vgcheck(ctx: Ctx) -> str:
+    out = []
+    for f in ctx.fams:
+        out.append(f"<h3>{esc(f.name)}</h3>")
+        png, csv = f.folder / "variogram_check.png", f.folder / "variogram_check.csv"
+        if not png.is_file():
+            out.append(gap("not available: the variogram check did not run for this family (skipped or failed)"))
+            continue
+        out.append(img_tag(png, f"variogram check {f.name}", "Observed semivariogram against the band of "
+                           "semivariograms of data replicated from the posterior (Gelman, Meng and Stern 1996)"))
+        if csv.is_file():
+            import pandas as pd
+
+            frame = pd.read_csv(csv)
+            out.append(f"<p>{int(frame['outside'].astype(bool).sum())} of {int((frame['pairs'] > 0).sum())} "
+                       "lag bins lie outside the 90% replicate band.</p>")
+    return _section("vgcheck", "Posterior predictive variogram check", "\n".join(out))
+
+
+def maps(ctx: Ctx) -> str:
+    out = []
+    for f in ctx.fams:
+        out.append(f"<h3>{esc(f.name)}</h3>")
+        pngs = sorted((f.folder / "maps").glob("*.png"))
+        if not (f.folder / "predictions.nc").is_file():
+            out.append(gap("not available: the map stage did not run for this family (skipped or failed)"))
+            continue
+        for p in sorted(pngs, key=lambda p: (not p.name.startswith("mean"), not p.name.startswith("sd"), p.name)):
+            out.append(img_tag(p, p.stem, f"{f.name}: {p.stem.replace('_', ' ')}"))
+        import xarray as xr
+
+        with xr.open_dataset(f.folder / "predictions.nc", engine="netcdf4") as pred:
+            area = pred.attrs.get("area_average")
+            kind = pred.attrs.get("kind", "")
+        if not pngs:
+            out.append("<p>Predictions at the target points are in <code>predictions.nc</code>.</p>")
+        if area:
+            a = json.loads(area)
+            out.append(f"<h3>Area average: {esc(a.get('area'))} (area {fmt(a.get('area_size'))})</h3>")
+            rows = [{"mean": a.get("mean"), "sd": a.get("sd"), "q05": a.get("q05"), "q95": a.get("q95"),
+                     "units": a.get("units")}]
+            out.append(html_table(rows, ["mean", "sd", "q05", "q95", "units"], left=["units"]))
+            for t, p in zip(a.get("threshold", []), a.get("p_exceed", [])):
+                out.append(f"<p>P(area average &gt; {fmt(t)} {esc(a.get('units'))}) = {fmt(p, 3)}</p>")
+            out.append(f"<p class=\"small\">method: {esc(a.get('method'))}</p>")
+        elif kind:
+            out.append("<p class=\"small\">No area was given in the study ([prediction] area).</p>")
+    return _section("maps", "Predictive and exceedance maps", "\n".join(out))
+
+
+def compare(ctx: Ctx) -> str:
+    fams = ctx.settings.get("model", {}).get("covariance", [])
+    if len(fams) < 2:
+        return _section("compare", "Model comparison", "<p>One covariance family was fitted; list several in "
+                        "[model] covariance to compare them by PSIS-LOO.</p>")
+    obj = _read_json(ctx.root / "compare" / "comparison.json")
+    if obj is None:
+        return _section("compare", "Model comparison", gap("not available: the comparison stage did not run "
+                                                            "(skipped or failed)"))
+    out = [html_table(obj["ranking"], ["fit", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
+                                       "pareto_k_high"], left=["fit"]),
+           f"<p class=\"small\">{esc(obj.get('method'))}. elpd: expected log predictive density of left-out points "
+           "(higher is better); a difference smaller than about twice its standard error (dse) is not decisive. "
+           f"pareto_k_high counts points with Pareto k above {fmt(obj.get('k_threshold'))} "
+           f"({esc(obj.get('k_threshold_source'))}).</p>"]
+    if (ctx.root / "compare" / "loo_pit.png").is_file():
+        out.append(img_tag(ctx.root / "compare" / "loo_pit.png", "LOO-PIT", "LOO-PIT calibration of every fit"))
+    for c in obj.get("cautions", []):
+        out.append(f"<p class=\"small\">caution: {esc(c)}</p>")
+    return _section("compare", "Model comparison", "\n".join(out))
+
+
+def cautions(ctx: Ctx) -> str:
+    items = list(LIMITATIONS)
+    for f in ctx.fams:
+        if f.report:
+            items += [f"{f.name}: {c}" for c in f.report.get("cautions", [])]
+    seen, uniq = set(), []
+    for c in items:
+        if c not in seen:
+            seen.add(c)
+            uniq.append(c)
+    body = "<ul>" + "".join(f"<li>{esc(c)}</li>" for c in uniq) + "</ul>"
+    return _section("cautions", "Limitations and cautions", body)
+
+
+def repro(ctx: Ctx) -> str:
+    m = ctx.manifest
+    out = ["<h3>Inputs</h3>",
+           html_table([{"file": k, **v} for k, v in m.get("inputs", {}).items()], ["file", "sha256", "bytes"],
+                      left=["file", "sha256"]),
+           "<h3>Software</h3>",
+           html_table([{"package": k, "version": v} for k, v in m.get("versions", {}).items()], ["package", "version"],
+                      left=["package", "version"]),
+           "<h3>Platform and seeds</h3>",
+           html_table([{"item": k, "value": v} for k, v in {**m.get("platform", {}),
+                                                             **{f"seed ({k})": v for k, v in m.get("seeds", {}).items()}}.items()],
+                      ["item", "value"], left=["item", "value"]),
+           f"<p>Command line: <code>{esc(' '.join(m.get('command_line', [])))}</code></p>",
+           "<h3>Stages</h3>",
+           html_table([{"stage": r["stage"], "verdict": r.get("verdict"), "seconds": r.get("seconds"),
+                        "command": " ".join(r.get("command", []))} for r in m.get("stages", [])],
+                      ["stage", "verdict", "seconds", "command"], left=["stage", "verdict", "command"]),
+           "<h3>Study file</h3>",
+           f"<pre>{esc(m.get('study', {}).get('text', ''))}</pre>",
+           "<p class=\"small\">The SHA-256 of every output file is in <code>manifest.json</code> beside this report. "
+           "The same study, data, software and seeds give the same numbers.</p>"]
+    return _section("repro", "Reproducibility appendix", "\n".join(out))
+
+
+SECTIONS = (job, explore, model, diagnostics, posterior, priors, vgcheck, maps, compare, cautions, repro)

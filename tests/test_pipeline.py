@@ -1,0 +1,92 @@
+"""Tests of `bayesgeo run` / run_study: stage commands, exit statuses, JSON output, reproducibility."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from bayesgeo.cli import _build_parser, main
+from bayesgeo.pipeline import run_study, stage_commands
+from bayesgeo.study import read_study
+
+from _study_helpers import write_tiny_study
+
+
+def test_stage_commands_parse(tmp_path):
+    """Every stage command built from a study is accepted by that command's own parser (argparse is the
+    reference), carries the study's seed and settings, and compares families only when there are several."""
+    study = read_study(write_tiny_study(tmp_path, families=("exponential", "matern32")))
+    cmds = stage_commands(study, tmp_path / "run")
+    assert list(cmds) == ["explore", "fit:exponential", "check:exponential", "variogram-check:exponential",
+                          "map:exponential", "fit:matern32", "check:matern32", "variogram-check:matern32",
+                          "map:matern32", "compare"]
+    parser = _build_parser()
+    for name, argv in cmds.items():
+        args = parser.parse_args(argv)
+        assert args.command == name.split(":")[0]
+    fit = parser.parse_args(cmds["fit:matern32"])
+    assert (fit.seed, fit.draws, fit.chains, fit.transform, fit.no_nugget) == (11, 600, 2, "log", True)
+    mp = parser.parse_args(cmds["map:exponential"])
+    assert mp.threshold == [15.0] and mp.area == "50.0,50.0,150.0,150.0" and mp.cell == 25.0
+    single = read_study(write_tiny_study(tmp_path, name="one.toml"))
+    assert "compare" not in stage_commands(single, tmp_path / "r2")
+
+
+def test_bad_study_and_existing_output_exit_2(tmp_path, capsys):
+    """Bad input exits 2 with one line naming the study file's line (issue 8 requirement); an existing run
+    folder is refused before any work."""
+    path = write_tiny_study(tmp_path)
+    path.write_text(path.read_text().replace("chains = 2", "chains = \"two\""))
+    assert main(["run", str(path), "--json"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "line 19: [sampler] chains: expected an integer" in err[0]
+    good = write_tiny_study(tmp_path, name="good.toml")
+    (tmp_path / "exists").mkdir()
+    assert main(["run", str(good), "--out", str(tmp_path / "exists")]) == 2
+    assert "already exists" in capsys.readouterr().err
+
+
+def test_not_converged_stops_with_exit_3(tmp_path, capsys):
+    """Too few draws fail the convergence check (bulk ESS > 400 needed, Vehtari et al. 2021): exit 3,
+    later stages skipped, the report still written and marked NOT CONVERGED; --json prints one object."""
+    path = write_tiny_study(tmp_path, n=30, draws=20, tune=30)
+    status = main(["run", str(path), "--json", "--out", str(tmp_path / "run")])
+    out = capsys.readouterr().out.strip().splitlines()
+    assert status == 3
+    assert len(out) == 1
+    res = json.loads(out[0])
+    assert res["status"] == 3 and res["verdicts"]["check:exponential"] == "fail"
+    manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
+    skipped = [s["stage"] for s in manifest["stages"] if s["verdict"] == "skipped"]
+    assert skipped == ["variogram-check:exponential", "map:exponential"]
+    text = (tmp_path / "run" / "report.html").read_text()
+    assert "NOT CONVERGED" in text.split("<nav>")[0]
+    assert "report.html" in manifest["outputs"] and "manifest.json" not in manifest["outputs"]
+
+
+@pytest.mark.slow
+def test_same_study_twice_gives_identical_numbers(tmp_path):
+    """Same data, settings and seeds give bit-identical posterior draws and predictions (issue 8; nutpie
+    with an integer seed is deterministic, FACTS.md [run])."""
+    path = write_tiny_study(tmp_path, draws=300, tune=300)
+    a = run_study(path, out=tmp_path / "a")
+    b = run_study(path, out=tmp_path / "b")
+    assert a["verdicts"] == b["verdicts"]
+    for res in (a, b):
+        assert res["verdicts"]["fit:exponential"] in ("done", "NOT CONVERGED")
+    pa = xr.open_datatree(tmp_path / "a" / "fits" / "exponential" / "posterior.nc", engine="netcdf4")
+    pb = xr.open_datatree(tmp_path / "b" / "fits" / "exponential" / "posterior.nc", engine="netcdf4")
+    for name in ("practical_range", "partial_sill", "beta"):
+        np.testing.assert_array_equal(pa["posterior"][name].values, pb["posterior"][name].values)
+    if (tmp_path / "a" / "predictions.nc").is_file():
+        with xr.open_dataset(tmp_path / "a" / "predictions.nc") as qa, xr.open_dataset(tmp_path / "b" / "predictions.nc") as qb:
+            for name in ("mean", "sd", "p_exceed"):
+                np.testing.assert_array_equal(qa[name].values, qb[name].values)
+    ma = json.loads((tmp_path / "a" / "manifest.json").read_text())
+    mb = json.loads((tmp_path / "b" / "manifest.json").read_text())
+    assert ma["inputs"] == mb["inputs"]
+    for rel in ("explore/semivariogram.csv", "explore/correlogram.csv", "tables/fits__exponential__summary.csv"):
+        assert ma["outputs"][rel]["sha256"] == mb["outputs"][rel]["sha256"], rel
