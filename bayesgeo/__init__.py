@@ -30,6 +30,9 @@ from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
 from bayesgeo.targets import discretise_area, grid_targets, hull_mask, read_target_points
 from bayesgeo.trend import design_at, design_matrix, fit_trend
 from bayesgeo.validate import InputError
+from bayesgeo.study import Study, read_study
+from bayesgeo.pipeline import run_study
+from bayesgeo.report import build_report, write_report
 
 __version__ = "0.1.0"
 
@@ -108,6 +111,11 @@ __all__ = [
     "save_site_fit",
     "shrinkage_table",
     "site_fit",
+    "Study",
+    "read_study",
+    "run_study",
+    "build_report",
+    "write_report",
 ]
 
 # Loaded on first use: the nearest-neighbour likelihood needs PyTensor and Numba, which
