@@ -1,0 +1,304 @@
+"""Nearest-neighbour (Vecchia) likelihood: accuracy against the dense one, speed, and a fit comparison.
+
+Part 1 (accuracy): log-likelihood error nn - dense at n = 2,000 for m = 5, 10, 15, 20, 30 (maximin
+  ordering), exponential and Matérn 3/2 fields simulated exactly, 3 data sets each, at the true
+  parameters; also the error of a log-likelihood *difference* (true range against 1.5 x the true
+  range), which is what moves a posterior.
+Part 2 (speed): one log-density + gradient of the same PyMC model (priors of bayesgeo.model, Matérn
+  3/2, PyTensor function with the Numba linker, as nutpie uses) with the nn likelihood (m = 20) at
+  n = 1,000 / 5,000 / 20,000 / 50,000 and with the dense likelihood at n <= 2,000, interleaved,
+  median; plus the one-off set-up (maximin ordering and neighbour search).
+Part 3 (fit, --fit): one n = 1,000 data set fitted with the dense model (bayesgeo.model.build_model)
+  and with the same model whose likelihood is nn (m = 20), nutpie, 2 chains, low-rank adaptation;
+  posterior 5/50/95% quantiles of practical range, partial sill and nugget side by side.
+
+`OPENBLAS_NUM_THREADS=1 python bench/bench_vecchia.py [--fit]`: prints and appends a section
+"Nearest-neighbour likelihood" to bench/RESULTS.md.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import os
+import platform
+import statistics
+import sys
+import time
+from pathlib import Path
+
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+import pymc as pm  # noqa: E402
+import pytensor  # noqa: E402
+import pytensor.tensor as pt  # noqa: E402
+import xarray as xr  # noqa: E402
+
+from bayesgeo.covariance import get_covariance  # noqa: E402
+from bayesgeo.demo import simulate_field  # noqa: E402
+from bayesgeo.likelihood import loglik_numpy  # noqa: E402
+from bayesgeo.geometry import distance_matrix  # noqa: E402
+from bayesgeo.model import build_model, model_inputs  # noqa: E402
+from bayesgeo.priors import pc_range_rate, pc_sd_rate, resolve_priors  # noqa: E402
+from bayesgeo.vecchia import maximin_order, nearest_previous, nn_loglik, nn_loglik_and_grad  # noqa: E402
+
+SIDE = 1000.0  # m, square study area of an invented survey
+M_FIT = 20
+
+
+def exact_dataset(n: int, seed: int, family: str = "matern32") -> xr.Dataset:
+    """n sites uniform on a 1 km square, exact field: practical range 300 m, partial sill 1, nugget 0.25."""
+    rng = np.random.default_rng(seed)
+    xy = np.round(SIDE * rng.random((n, 2)), 2)
+    z = simulate_field(xy, covariance=family, practical_range=300.0, partial_sill=1.0, nugget=0.25, mean=5.0, rng=rng)
+    return _points(xy, z, n)
+
+
+def cheap_dataset(n: int, seed: int) -> xr.Dataset:
+    """Large n for timing only: a smooth random surface (200 random cosines) plus noise."""
+    rng = np.random.default_rng(seed)
+    xy = np.round(SIDE * rng.random((n, 2)), 2)
+    w = rng.normal(scale=1.0 / 60.0, size=(200, 2))
+    ph = rng.uniform(0, 2 * np.pi, 200)
+    z = 5.0 + np.sqrt(2.0 / 200) * np.cos(xy @ w.T + ph).sum(axis=1) + 0.5 * rng.standard_normal(n)
+    return _points(xy, z, n)
+
+
+def _points(xy, z, n):
+    return xr.Dataset({"value": ("obs", z)},
+                      coords={"x": ("obs", xy[:, 0]), "y": ("obs", xy[:, 1]), "row": ("obs", np.arange(2, n + 2))},
+                      attrs={"source": f"bench-{n}", "crs": "local"})
+
+
+# --- part 1 -------------------------------------------------------------------------------------
+
+
+def accuracy(n: int, ms, seeds) -> list[dict]:
+    rows = []
+    for family in ("exponential", "matern32"):
+        cov = get_covariance(family)
+        phi = cov.scale_from_range(300.0)
+        for seed in seeds:
+            ds = exact_dataset(n, seed, family)
+            xy = np.column_stack([ds["x"].values, ds["y"].values])
+            z = ds["value"].values - 5.0
+            d = distance_matrix(xy)
+            dense = loglik_numpy(z, d, cov, phi, 1.0, 0.25)
+            dense_alt = loglik_numpy(z, d, cov, 1.5 * phi, 1.0, 0.25)
+            order = maximin_order(xy)
+            for m in ms:
+                nbr = nearest_previous(xy, order, neighbours=m)
+                v = nn_loglik_and_grad(z, xy, cov, phi, 1.0, 0.25, nbr=nbr)[0]
+                v_alt = nn_loglik_and_grad(z, xy, cov, 1.5 * phi, 1.0, 0.25, nbr=nbr)[0]
+                rows.append({"family": family, "seed": seed, "m": m, "err": v - dense,
+                             "diff_err": (v_alt - v) - (dense_alt - dense)})
+            print(f"accuracy {family} seed {seed}: " + ", ".join(
+                f"m={r['m']}: {r['err']:+.3f}" for r in rows if r["family"] == family and r["seed"] == seed), flush=True)
+    return rows
+
+
+# --- part 2 -------------------------------------------------------------------------------------
+
+
+def _extent(xy) -> float:
+    from scipy.spatial import ConvexHull
+
+    hull = xy[ConvexHull(xy).vertices]
+    return float(distance_matrix(hull).max())
+
+
+def nn_model(ds: xr.Dataset, *, m: int = M_FIT, rates=None, spec=None, design=None, y=None):
+    """bayesgeo.model.build_model's model (standardised scale, PC priors) with the nn likelihood.
+
+    Given ``spec``/``design``/``y`` from model_inputs it is the same model as build_model's except
+    for the likelihood; without them (large n, where model_inputs would build an n x n matrix) the
+    constants are computed here the same way (largest distance from the convex hull, default priors).
+    """
+    xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
+    if spec is None:
+        z = ds["value"].values
+        extent = _extent(xy)
+        y = (z - z.mean()) / z.std(ddof=1)
+        design = np.ones((len(z), 1))
+        pri = resolve_priors(None, extent=extent, value_sd=float(z.std(ddof=1)))
+        sd_z = float(z.std(ddof=1))
+        rates = {"range": pc_range_rate(pri.range[0] / extent, pri.range[1]),
+                 "sd": pc_sd_rate(pri.sd[0] / sd_z, pri.sd[1]), "nugget": pc_sd_rate(pri.nugget[0] / sd_z, pri.nugget[1])}
+        range_factor = get_covariance("matern32").range_factor
+        beta_sd = pri.beta_sd
+    else:
+        extent, rates, range_factor, beta_sd = spec.distance_scale, spec.rates, spec.range_factor, spec.priors.beta_sd
+        design = np.asarray(design)
+    cov = get_covariance("matern32")
+    with pm.Model(coords={"term": ["1"]}) as model:
+        prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"])
+        sd = pm.Exponential("sd_z", lam=rates["sd"])
+        tau2 = pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
+        beta = pm.Normal("beta_z", mu=0.0, sigma=beta_sd, dims="term")
+        resid = y - pm.math.dot(design, beta)
+        pm.Potential("loglik", nn_loglik(resid, xy, cov, prange / range_factor, sd**2, tau2, neighbours=m,
+                                         distance_scale=extent))
+    return model
+
+
+def grad_function(model):
+    logp = model.logp()
+    fn = pytensor.function(model.value_vars, [logp, *pt.grad(logp, model.value_vars)], mode="NUMBA")
+    start = model.initial_point()
+    args = [start[v.name] for v in model.value_vars]
+    return lambda: fn(*args)
+
+
+def timed(fn, reps: int) -> float:
+    ts = []
+    for _ in range(reps):
+        t0 = time.perf_counter()
+        fn()
+        ts.append(time.perf_counter() - t0)
+    return statistics.median(ts)
+
+
+def speed(sizes, dense_max: int, rounds: int) -> list[dict]:
+    rows = []
+    for n in sizes:
+        ds = exact_dataset(n, n) if n <= dense_max else cheap_dataset(n, n)
+        xy = np.column_stack([ds["x"].values, ds["y"].values])
+        t0 = time.perf_counter()
+        order = maximin_order(xy)
+        t1 = time.perf_counter()
+        nearest_previous(xy, order, neighbours=M_FIT)
+        t2 = time.perf_counter()
+        f_nn = grad_function(nn_model(ds))
+        f_nn()
+        f_dense = None
+        if n <= dense_max:
+            f_dense = grad_function(build_model(ds, covariance="matern32")[0])
+            f_dense()
+        reps = max(3, int(20000 / n))
+        t = {"nn": [], "dense": []}
+        for _ in range(rounds):
+            t["nn"].append(timed(f_nn, reps))
+            if f_dense is not None:
+                t["dense"].append(timed(f_dense, reps))
+        nn_s = statistics.median(t["nn"])
+        dense_s = statistics.median(t["dense"]) if t["dense"] else float("nan")
+        rows.append({"n": n, "nn_ms": 1e3 * nn_s, "dense_ms": 1e3 * dense_s, "order_s": t1 - t0, "nbr_s": t2 - t1})
+        print(f"speed n={n}: nn {1e3 * nn_s:.2f} ms, dense {1e3 * dense_s:.2f} ms, ordering {t1 - t0:.1f} s, "
+              f"neighbours {t2 - t1:.1f} s", flush=True)
+    return rows
+
+
+# --- part 3 -------------------------------------------------------------------------------------
+
+
+def fit_comparison(n: int, tune: int, draws: int, seed: int) -> dict:
+    import arviz as az
+    import nutpie
+
+    ds = exact_dataset(n, 4242)
+    dense, spec = build_model(ds, covariance="matern32")
+    spec2, y, design, _ = model_inputs(ds, covariance="matern32")
+    nn = nn_model(ds, spec=spec2, design=design.values, y=y)
+    out = {"n": n, "tune": tune, "draws": draws, "truth": {"practical_range": 300.0, "partial_sill": 1.0, "nugget": 0.25}}
+    for label, model in (("dense", dense), (f"nn m={M_FIT}", nn)):
+        compiled = nutpie.compile_pymc_model(model)
+        t0 = time.perf_counter()
+        tree = nutpie.sample(compiled, draws=draws, tune=tune, chains=2, cores=2, seed=seed, progress_bar=False,
+                             adaptation="low_rank")
+        wall = time.perf_counter() - t0
+        post = tree["posterior"].to_dataset()
+        s = spec.value_sd
+        derived = {"practical_range": post["practical_range_z"] * spec.distance_scale,
+                   "partial_sill": (post["sd_z"] * s) ** 2, "nugget": (post["nugget_sd_z"] * s) ** 2}
+        q = {k: np.quantile(v.values, [0.05, 0.5, 0.95]).tolist() for k, v in derived.items()}
+        ess = az.ess(post[["practical_range_z", "sd_z", "nugget_sd_z"]], method="bulk")
+        steps = float(tree["sample_stats"]["n_steps"].mean())
+        out[label] = {"q": q, "wall_s": wall, "steps": steps, "min_ess": float(min(float(ess[v]) for v in ess.data_vars))}
+        print(f"fit {label}: {wall:.0f} s, {steps:.1f} steps/draw, " + "; ".join(
+            f"{k} {v[0]:.3g} / {v[1]:.3g} / {v[2]:.3g}" for k, v in q.items()), flush=True)
+    return out
+
+
+# --- report -------------------------------------------------------------------------------------
+
+
+def report(acc, spd, fit, args, load0) -> str:
+    now = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    lines = ["", "## Nearest-neighbour likelihood", "",
+             f"{now}; {platform.system()} {platform.machine()}, {os.cpu_count()} CPUs, 1-minute load average "
+             f"{load0:.1f} at the start and {os.getloadavg()[0]:.1f} at the end (other jobs shared the machine: "
+             f"absolute times are inflated, read ratios and growth); pymc {pm.__version__}, pytensor "
+             f"{pytensor.__version__}; `python bench/bench_vecchia.py {' '.join(sys.argv[1:])}`.", ""]
+    if acc:
+        ms = sorted({r["m"] for r in acc})
+        lines += [f"Accuracy at n = {args.acc_n} (uniform points on a 1 km square, practical range 300 m, partial sill "
+                  "1, nugget 0.25, exact simulation; maximin ordering; evaluated at the true parameters). Error = nn - "
+                  "dense log-likelihood, mean |error| and worst |error| over the data sets; 'difference' = error in "
+                  "logL(1.5 x true range) - logL(true range):", "",
+                  "| family | m | " + "mean abs error | worst abs error | worst abs difference error |",
+                  "| --- | ---: | ---: | ---: | ---: |"]
+        for fam in ("exponential", "matern32"):
+            for m in ms:
+                e = [abs(r["err"]) for r in acc if r["family"] == fam and r["m"] == m]
+                de = [abs(r["diff_err"]) for r in acc if r["family"] == fam and r["m"] == m]
+                lines.append(f"| {fam} | {m} | {np.mean(e):.3f} | {max(e):.3f} | {max(de):.3f} |")
+        lines.append("")
+    if spd:
+        lines += [f"Speed: one log-density + gradient of the model (Matérn 3/2, nugget, constant mean; PyTensor "
+                  f"function with the Numba linker), nn with m = {M_FIT}, median of interleaved rounds; set-up = "
+                  "maximin ordering + neighbour search, once per data set:", "",
+                  "| n | nn (ms) | dense (ms) | dense / nn | nn ms per 1,000 points | ordering (s) | neighbours (s) |",
+                  "| ---: | ---: | ---: | ---: | ---: | ---: | ---: |"]
+        for r in spd:
+            dense = "" if np.isnan(r["dense_ms"]) else f"{r['dense_ms']:.1f}"
+            ratio = "" if np.isnan(r["dense_ms"]) else f"{r['dense_ms'] / r['nn_ms']:.1f}x"
+            lines.append(f"| {r['n']:,} | {r['nn_ms']:.1f} | {dense} | {ratio} | {1e3 * r['nn_ms'] / r['n']:.2f} | "
+                         f"{r['order_s']:.1f} | {r['nbr_s']:.1f} |")
+        lines.append("")
+    if fit:
+        lines += [f"Fit comparison at n = {fit['n']} (Matérn 3/2; truth: practical range 300 m, partial sill 1, "
+                  f"nugget 0.25): nutpie, 2 chains x ({fit['tune']} tune + {fit['draws']} draws), low-rank adaptation, "
+                  "same priors (bayesgeo.model); posterior 5% / 50% / 95%:", "",
+                  "| likelihood | practical range (m) | partial sill | nugget | leapfrog steps per draw | min bulk ESS | "
+                  "wall (s) |", "| --- | --- | --- | --- | ---: | ---: | ---: |"]
+        for label in [k for k in fit if k.startswith(("dense", "nn"))]:
+            r = fit[label]
+            cells = " | ".join(" / ".join(f"{v:.3g}" for v in r["q"][k]) for k in ("practical_range", "partial_sill", "nugget"))
+            lines.append(f"| {label} | {cells} | {r['steps']:.1f} | {r['min_ess']:.0f} | {r['wall_s']:.0f} |")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def main() -> None:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--acc-n", type=int, default=2000)
+    p.add_argument("--sizes", type=int, nargs="*", default=[1000, 2000, 5000, 20000, 50000])
+    p.add_argument("--dense-max", type=int, default=2000)
+    p.add_argument("--rounds", type=int, default=3)
+    p.add_argument("--skip-accuracy", action="store_true")
+    p.add_argument("--skip-speed", action="store_true")
+    p.add_argument("--fit", action="store_true", help="also run the n = 1,000 fit comparison (slow)")
+    p.add_argument("--fit-n", type=int, default=1000)
+    p.add_argument("--tune", type=int, default=300)
+    p.add_argument("--draws", type=int, default=300)
+    p.add_argument("--no-write", action="store_true")
+    args = p.parse_args()
+    load0 = os.getloadavg()[0]
+    acc = [] if args.skip_accuracy else accuracy(args.acc_n, (5, 10, 15, 20, 30), (1, 2, 3))
+    spd = [] if args.skip_speed else speed(args.sizes, args.dense_max, args.rounds)
+    fit = fit_comparison(args.fit_n, args.tune, args.draws, seed=11) if args.fit else None
+    text = report(acc, spd, fit, args, load0)
+    print(text)
+    if not args.no_write:
+        with open(ROOT / "bench" / "RESULTS.md", "a") as fh:
+            fh.write(text + "\n")
+
+
+if __name__ == "__main__":
+    main()
