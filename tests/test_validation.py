@@ -1,0 +1,192 @@
+"""Tests of the simulation-based calibration engine (bayesgeo.validation).
+
+No test here runs the sampler (that is in tests/test_cli_validate.py); model log densities are
+compiled with PyTensor's FAST_COMPILE mode, which is quick.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from bayesgeo.covariance import get_covariance
+from bayesgeo.likelihood import covariance_matrix
+from bayesgeo.validation import (
+    SBCConfig,
+    binomial_bounds,
+    generated_layout,
+    rank_of,
+    rank_uniformity,
+    sbc_model,
+    sbc_summary,
+    simulate_data,
+)
+
+
+def test_binomial_bounds_tail_probabilities():
+    """Bounds are the 0.05% and 99.95% quantiles of Binomial(N, p): reference scipy.stats.binom
+    (cdf/sf), checked from the definition of a quantile of a discrete distribution."""
+    for n, p in ((25, 0.9), (25, 0.5), (100, 0.9), (40, 0.5)):
+        lo, hi = binomial_bounds(n, p, level=0.001)
+        assert stats.binom.cdf(lo - 1, n, p) < 0.0005 <= stats.binom.cdf(lo, n, p)
+        assert stats.binom.sf(hi, n, p) < 0.0005 <= stats.binom.sf(hi - 1, n, p)
+    # N = 25 at 90%: values from scipy's quantile function, quoted in docs/validation.md
+    assert binomial_bounds(25, 0.9) == (17, 25)
+
+
+def test_rank_uniformity_matches_pearson_formula():
+    """Chi-square statistic sum (O - E)^2 / E with E = N / bins (Pearson 1900), compared with
+    scipy.stats.chisquare; the p-value is the chi-square(bins - 1) upper tail."""
+    ranks = np.array([0, 1, 5, 7, 9, 9, 3, 3, 4, 8, 2, 6, 0, 1, 9, 5, 5, 5, 5, 2])
+    u = rank_uniformity(ranks, 9, bins=5)
+    counts = np.bincount(ranks // 2, minlength=5)
+    assert u["counts"] == counts.tolist()
+    expected = np.sum((counts - 4.0) ** 2 / 4.0)
+    assert u["statistic"] == pytest.approx(expected)
+    assert u["pvalue"] == pytest.approx(stats.chi2.sf(expected, 4))
+    # default bins: the largest divisor of L + 1 with about five expected counts per bin
+    assert rank_uniformity(np.arange(100) % 50, 49)["bins"] == 10
+
+
+def test_rank_of_thins_evenly():
+    """Ranks count thinned draws below the truth (Talts et al. 2018, Algorithm 1): with draws
+    0..999 in two chains and L = 9 the thinned draws are evenly spaced in each chain."""
+    draws = np.arange(1000.0).reshape(2, 500)
+    assert rank_of(-1.0, draws, 9) == 0
+    assert rank_of(1e9, draws, 9) == 9
+    # chain 0 keeps draws 0, 125, 250, 374, 499 and chain 1 four draws from 500..999: two lie below 250
+    assert rank_of(250.0, draws, 9) == 2
+    with pytest.raises(ValueError, match="at least"):
+        rank_of(0.0, np.zeros((1, 5)), 9)
+
+
+def test_ranks_detect_miscalibration_in_a_conjugate_model():
+    """SBC theory (Talts et al. 2018, Theorem 1) on the normal-normal conjugate model
+    theta ~ N(0, 1), y_i ~ N(theta, 1), i = 1..n, posterior N(sum y / (n + 1), 1 / (n + 1))
+    (Gelman et al., Bayesian Data Analysis, 3rd ed., sec. 2.5): exact posterior draws give uniform
+    ranks; draws with half the posterior sd give a U-shaped histogram that the test rejects."""
+    rng = np.random.default_rng(4)
+    n, reps, L = 5, 400, 19
+    good, bad = [], []
+    for _ in range(reps):
+        theta = rng.normal()
+        y = rng.normal(theta, 1.0, n)
+        mean, sd = y.sum() / (n + 1), 1.0 / np.sqrt(n + 1)
+        e = rng.standard_normal((1, 200))
+        good.append(rank_of(theta, mean + sd * e, L))
+        bad.append(rank_of(theta, mean + 0.5 * sd * e, L))
+    assert rank_uniformity(good, L)["pvalue"] > 0.001
+    u = rank_uniformity(bad, L)
+    assert u["pvalue"] < 1e-6
+    assert u["counts"][0] + u["counts"][-1] > 3 * (reps / u["bins"])  # the U shape
+
+
+def test_simulated_data_have_the_model_covariance():
+    """y = F beta + chol(K) e has mean F beta and covariance K (the Cholesky construction of a
+    multivariate normal, common practice); checked by the sample moments of 4,000 draws against
+    covariance_matrix, tolerance about 5 Monte Carlo standard errors."""
+    ds = generated_layout(8, seed=2)
+    _, blocks, spec = sbc_model(ds, SBCConfig(covariance="exponential"))
+    truth = {"practical_range_z": 0.4, "sd_z": 1.3, "nugget_sd_z": 0.5, "beta_z": np.array([0.7])}
+    rng = np.random.default_rng(0)
+    sims = np.array([simulate_data(truth, blocks[0], spec, rng) for _ in range(4000)])
+    k = covariance_matrix(blocks[0]["dist"], get_covariance("exponential"), 0.4 / spec.range_factor, 1.3**2, 0.25)
+    assert np.allclose(sims.mean(axis=0), 0.7, atol=5 * np.sqrt(k.diagonal().max() / 4000))
+    se = np.sqrt((k**2 + np.outer(k.diagonal(), k.diagonal())) / 4000)  # sd of a sample covariance
+    assert np.all(np.abs(np.cov(sims.T) - k) < 5 * se)
+
+
+def _logp(model):
+    return model.compile_logp(mode="FAST_COMPILE")
+
+
+def test_sbc_model_is_the_package_model():
+    """The SBC model has the same log density as build_model at random points (same priors, same
+    likelihood; reference: the package's own model, compared at 5 points of the unconstrained
+    space), and swapping the data changes it exactly as rebuilding with those data would:
+    compared with scipy.stats.multivariate_normal on the standardised scale."""
+    from bayesgeo.model import build_model
+
+    ds = generated_layout(12, seed=3)
+    cfg = SBCConfig(covariance="matern32")
+    model, blocks, spec = sbc_model(ds, cfg)
+    ref, _ = build_model(ds, covariance="matern32")
+    f, g = _logp(model), _logp(ref)
+    rng = np.random.default_rng(1)
+    ip = ref.initial_point()
+    for _ in range(5):
+        point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in ip.items()}
+        assert f(point) == pytest.approx(g(point), rel=1e-12, abs=1e-9)
+    # swap in new data: the change in log density equals the change in the Gaussian log-likelihood
+    y_new = rng.normal(size=12)
+    shared = {v.name: v for v in model.data_vars} if hasattr(model, "data_vars") else {}
+    var = shared.get("sbc_y_0")
+    if var is None:
+        from pytensor.compile.sharedvalue import SharedVariable
+        from pytensor.graph.traversal import ancestors
+
+        var = next(v for v in ancestors(model.potentials) if isinstance(v, SharedVariable) and v.name == "sbc_y_0")
+    point = dict(ip)
+    before = f(point)
+    old = var.get_value()
+    var.set_value(y_new)
+    after = _logp(model)(point)
+    var.set_value(old)
+    prange = np.exp(point["practical_range_z_log__"])
+    sd, tau = np.exp(point["sd_z_log__"]), np.exp(point["nugget_sd_z_log__"])
+    k = covariance_matrix(blocks[0]["dist"], get_covariance("matern32"), prange / spec.range_factor, sd**2, tau**2)
+    mu = blocks[0]["design"] @ point["beta_z"]
+    expect = stats.multivariate_normal(mu, k).logpdf(y_new) - stats.multivariate_normal(mu, k).logpdf(blocks[0]["y"])
+    assert after - before == pytest.approx(expect, rel=1e-8, abs=1e-8)
+
+
+def test_nn_model_with_all_neighbours_equals_dense():
+    """With m = n - 1 neighbours the Vecchia product is the exact chain rule (Vecchia 1988), so the
+    nn SBC model has the dense model's log density."""
+    ds = generated_layout(10, seed=5)
+    dense, _, _ = sbc_model(ds, SBCConfig(covariance="exponential"))
+    nn, _, _ = sbc_model(ds, SBCConfig(kind="nn", covariance="exponential", neighbours=9))
+    nn3, _, _ = sbc_model(ds, SBCConfig(kind="nn", covariance="exponential", neighbours=2))
+    ip = dense.initial_point()
+    assert _logp(nn)(ip) == pytest.approx(_logp(dense)(ip), rel=1e-10)
+    assert _logp(nn3)(ip) != pytest.approx(_logp(dense)(ip), rel=1e-10)  # the approximation is in use
+
+
+@pytest.mark.filterwarnings("ignore:The effect of Potentials")
+def test_prior_draws_are_the_model_prior():
+    """Prior draws of the SBC model follow the PC priors of bayesgeo.priors: the practical range
+    InverseGamma(1, lambda1) and the field sd Exponential(lambda2) (Fuglstad et al. 2019), checked
+    with scipy.stats.kstest against scipy's distributions with the spec's rates."""
+    import pymc as pm
+
+    ds = generated_layout(12, seed=3)
+    model, _, spec = sbc_model(ds, SBCConfig(covariance="exponential", nugget=False))
+    prior = pm.sample_prior_predictive(draws=1500, model=model, random_seed=2)["prior"]
+    r = prior["practical_range_z"].values.ravel()
+    s = prior["sd_z"].values.ravel()
+    assert "nugget_sd_z" not in prior
+    assert stats.kstest(r, stats.invgamma(1.0, scale=spec.rates["range"]).cdf).pvalue > 0.001
+    assert stats.kstest(s, stats.expon(scale=1 / spec.rates["sd"]).cdf).pvalue > 0.001
+
+
+def test_summary_flags_coverage_outside_binomial_bounds():
+    """sbc_summary fails a quantity whose 90% intervals cover in too few replicates (outside the
+    scipy.stats.binom bounds), and lists unconverged replicates (kept and flagged)."""
+    import xarray as xr
+
+    n = 30
+    cov = np.ones((n, 1, 2), dtype=bool)
+    cov[:20, 0, 1] = False  # 10/30 at 90%: far below the lower bound
+    res = xr.Dataset(
+        {"rank": (("replicate", "quantity"), (np.arange(n) % 20)[:, None]),
+         "covered": (("replicate", "quantity", "level"), cov),
+         "verdict": ("replicate", np.array(["pass"] * (n - 2) + ["fail"] * 2))},
+        coords={"quantity": ["practical_range"], "level": [0.5, 0.9]},
+        attrs={"ranks_of": 19, "model": "test"},
+    )
+    s = sbc_summary(res)
+    assert s["failed_fits"] == [28, 29]
+    assert s["quantities"]["practical_range"]["coverage"]["0.9"]["ok"] is False
+    assert s["quantities"]["practical_range"]["coverage_converged"]["0.9"]["of"] == 28
+    assert s["ok"] is False
