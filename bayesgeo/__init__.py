@@ -33,10 +33,15 @@ from bayesgeo.validate import InputError
 from bayesgeo.study import Study, read_study
 from bayesgeo.pipeline import run_study
 from bayesgeo.report import build_report, write_report
+from bayesgeo.validation import SBCConfig, generated_layout, sbc_summary, simulation_based_calibration
 
 __version__ = "0.1.0"
 
 __all__ = [
+    "SBCConfig",
+    "generated_layout",
+    "sbc_summary",
+    "simulation_based_calibration",
     "FAMILIES",
     "Convergence",
     "Covariance",

@@ -28,6 +28,7 @@ COMMANDS: dict[str, str] = {
     "variogram-check": "vgcheck",
     "run": "run",
     "demo": "demo",
+    "validate": "validate",
 }
 
 
