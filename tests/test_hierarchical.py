@@ -344,3 +344,32 @@ def test_cli_run_sites_json(tmp_path, capsys):
         assert key in rep
     for f in ("shrinkage.csv", "shrinkage.png", "design.csv", "design.png", "posterior.nc", "fit.json"):
         assert (tmp_path / "out" / f).exists()
+
+
+def test_site_fit_runs_through_prediction(fits, tmp_path):
+    """Per-site maps go through the single-site prediction stage unchanged: with one posterior draw of
+    site P3 the predictive mean of the field at new points is the simple-kriging predictor
+    beta0 + c0^T K^-1 (z - beta0) (Cressie 1993, Statistics for Spatial Data, eq. 3.4.57), computed here
+    with numpy (jitter 1e-6 x partial sill as in likelihood.py; tolerance 1e-4)."""
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.hierarchical import site_fit
+    from bayesgeo.predict import basis_from_fit, predict_targets
+    from bayesgeo.targets import read_target_points
+
+    ds, _, hier, _ = fits
+    basis, spec, params = basis_from_fit(site_fit(hier, "P3"), draws=1)
+    new = np.array([[4010.0, 20.0], [4050.0, 55.0], [4090.0, 90.0]])
+    pts = tmp_path / "targets.csv"
+    pts.write_text("x,y\n" + "".join(f"{a},{b}\n" for a, b in new))
+    out = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous",
+                          include_nugget=False)
+    data = ds.isel(obs=np.flatnonzero(ds["site"].values == "P3"))
+    cov = get_covariance("matern32")
+    xy = np.column_stack([data["x"].values, data["y"].values])
+    scale, s2, t2 = (float(np.ravel(params[k].values)[0]) for k in ("scale", "partial_sill", "nugget"))
+    b0 = float(np.ravel(params["beta"].values)[0])
+    d = np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1))
+    k = s2 * cov.correlation(d, scale) + (t2 + 1e-6 * s2) * np.eye(len(xy))
+    c0 = s2 * cov.correlation(np.hypot(*(new[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)), scale)
+    ref = b0 + c0 @ np.linalg.solve(k, data["value"].values - b0)
+    np.testing.assert_allclose(np.asarray(out["mean"].values).ravel(), ref, rtol=1e-4)
