@@ -373,3 +373,29 @@ def test_site_fit_runs_through_prediction(fits, tmp_path):
     c0 = s2 * cov.correlation(np.hypot(*(new[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)), scale)
     ref = b0 + c0 @ np.linalg.solve(k, data["value"].values - b0)
     np.testing.assert_allclose(np.asarray(out["mean"].values).ravel(), ref, rtol=1e-4)
+
+
+def test_complete_pooling_outputs_from_synthetic_draws():
+    """Under complete pooling the population and the new site are the shared parameters themselves
+    (definition of complete pooling, Gelman et al. 2013, BDA3 sec. 5.5), in data units: practical range
+    = D r, partial sill = s^2 sd_z^2, nugget ratio = tau2 / (sigma2 + tau2). Synthetic draws, no sampling."""
+    from bayesgeo.hier_outputs import add_derived, new_site_draws
+    from bayesgeo.hierarchical import site_inputs
+
+    ds, _ = _sites([15, 12], seed=9)
+    spec, _ = site_inputs(ds, pooling="complete")
+    rng = np.random.default_rng(2)
+    shared = {k: rng.uniform(0.2, 1.0, (2, 50)) for k in ("practical_range_z", "sd_z", "nugget_sd_z")}
+    post = xr.Dataset(
+        {**{k: (("chain", "draw", "site"), np.repeat(v[..., None], 2, axis=2)) for k, v in shared.items()},
+         "beta_z": (("chain", "draw", "site", "term"), rng.normal(size=(2, 50, 2, 1)))},
+        coords={"chain": [0, 1], "draw": np.arange(50), "site": list(spec.sites), "term": ["1"]})
+    out = add_derived(post, spec)
+    np.testing.assert_allclose(out["population_practical_range_median"], shared["practical_range_z"] * spec.distance_scale)
+    np.testing.assert_allclose(out["population_partial_sill_mean"], shared["sd_z"] ** 2 * spec.value_sd**2)
+    ratio = shared["nugget_sd_z"] ** 2 / (shared["nugget_sd_z"] ** 2 + shared["sd_z"] ** 2)
+    np.testing.assert_allclose(out["population_nugget_ratio_median"], ratio)
+    new = new_site_draws(out, spec, seed=1)
+    np.testing.assert_allclose(new["practical_range"], out["practical_range"].isel(site=0))
+    np.testing.assert_allclose(new["nugget_ratio"], ratio)
+    np.testing.assert_allclose(out["beta"].sel(term="1"), post["beta_z"].sel(term="1") * spec.value_sd + spec.value_mean)
