@@ -4,7 +4,8 @@ The steps, each a function on explicit inputs (nothing is remembered between cal
 
 1. :func:`posterior_parameters`: posterior draws of the model (standardised scale, see
    :mod:`bayesgeo.model`) to data units, thinned to ``draws`` evenly spaced draws;
-2. :func:`basis_from_fit`: the data covariance of every draw factorised once;
+2. :func:`basis_from_fit`: from a fit (DataTree), the data covariance of every draw factorised
+   once;
 3. :func:`predict_targets`: per draw the Gaussian conditional mean and variance at every target (simple
    kriging given the draw's trend coefficients), combined over draws into predictive mean, sd,
    5/50/95% quantiles and P(Z > T) per threshold; targets are split into chunks of cells run as
@@ -46,6 +47,7 @@ __all__ = [
     "basis_from_fit",
     "conditional_simulations",
     "draw_moments",
+    "fit_data",
     "krige",
     "make_basis",
     "mixture_quantiles",
@@ -117,19 +119,55 @@ def posterior_parameters(posterior: xr.Dataset, spec, *, draws: int | None = Non
     )
 
 
-def basis_from_fit(data: xr.Dataset, spec, params: xr.Dataset) -> KrigingBasis:
-    """Factorise the data covariance for every draw of ``params`` (:func:`posterior_parameters`)."""
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.model import transform_values
+def fit_data(tree: xr.DataTree, spec) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Data locations (n, 2), modelled values (n,) and trend design (n, p) stored with a fit.
 
-    xy = np.column_stack([data["x"].values, data["y"].values]).astype(float)
-    covs = [np.asarray(data[c].values, float) for c in spec.covariates]
-    design = design_at(xy, spec.design_attrs, np.column_stack(covs) if covs else None)
+    Reads the layout of :func:`bayesgeo.posterior.fit`: ``constant_data`` (``x``, ``y``,
+    ``design``) and ``observed_data`` (``value`` as measured; logged here under the log transform).
+    """
+    try:
+        const = tree["constant_data"].to_dataset()
+        values = np.asarray(tree["observed_data"]["value"].values, dtype=float)
+        xy = np.column_stack([const["x"].values, const["y"].values]).astype(float)
+    except KeyError as err:
+        raise InputError(f"the fit lacks {err} in its observed_data/constant_data groups: not a bayesgeo fit") from None
+    z = np.log(values) if spec.transform == "log" else values
+    if "design" in const and const["design"].shape == (len(values), len(spec.terms)):
+        design = np.asarray(const["design"].values, dtype=float)
+    else:
+        covs = [np.asarray(const[c].values, float) for c in spec.covariates]
+        design = design_at(xy, spec.design_attrs, np.column_stack(covs) if covs else None)
+    return xy, z, design
+
+
+def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
+    """Everything prediction needs from a fit, with each draw's data covariance factorised once.
+
+    Parameters
+    ----------
+    tree : xarray.DataTree
+        A single-site fit (:func:`bayesgeo.posterior.fit` or :func:`bayesgeo.posterior.load_fit`).
+    draws : int, optional
+        Use this many evenly spaced posterior draws (all by default).
+
+    Returns
+    -------
+    basis : KrigingBasis
+    spec : bayesgeo.model.FitSpec
+    params : xarray.Dataset
+        The draws used, in data units (:func:`posterior_parameters`).
+    """
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.posterior import fit_spec
+
+    spec = fit_spec(tree)
+    xy, z, design = fit_data(tree, spec)
+    params = posterior_parameters(tree["posterior"].to_dataset(), spec, draws=draws)
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
-    return make_basis(xy, transform_values(data, spec.transform), design, covariance=cov,
-                      scale=params["scale"].values, partial_sill=params["partial_sill"].values,
-                      nugget=params["nugget"].values, beta=params["beta"].values, metric=spec.metric,
-                      transform=spec.transform)
+    basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
+                       partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
+                       beta=params["beta"].values, metric=spec.metric, transform=spec.transform)
+    return basis, spec, params
 
 
 def target_design(targets: xr.Dataset, design_attrs: dict | None, p: int) -> np.ndarray:

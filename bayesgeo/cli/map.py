@@ -64,28 +64,6 @@ def add_arguments(p) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
 
 
-def fit_data(tree, spec):
-    """Data locations (n, 2), modelled values (n,) and trend design (n, p) stored with a fit."""
-    import numpy as np
-
-    from bayesgeo.trend import design_at
-    from bayesgeo.validate import InputError
-
-    try:
-        const = tree["constant_data"].to_dataset()
-        values = np.asarray(tree["observed_data"]["value"].values, dtype=float)
-        xy = np.column_stack([const["x"].values, const["y"].values]).astype(float)
-    except KeyError as err:
-        raise InputError(f"the fit lacks {err} in its observed_data/constant_data groups: not a bayesgeo fit") from None
-    z = np.log(values) if spec.transform == "log" else values
-    if "design" in const and const["design"].shape == (len(values), len(spec.terms)):
-        design = np.asarray(const["design"].values, dtype=float)
-    else:
-        covs = [np.asarray(const[c].values, float) for c in spec.covariates]
-        design = design_at(xy, spec.design_attrs, np.column_stack(covs) if covs else None)
-    return xy, z, design
-
-
 def run(args) -> int:
     import json
     from pathlib import Path
@@ -116,10 +94,9 @@ def run(args) -> int:
         refuse_existing(out_maps, args.overwrite)
 
     from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.posterior import fit_spec, load_fit
+    from bayesgeo.posterior import load_fit
 
     tree = load_fit(folder)
-    spec = fit_spec(tree)
     verdict = check_convergence(tree).verdict
     stored = json.loads(tree.attrs["diagnostics"]).get("verdict") if "diagnostics" in tree.attrs else None
     if stored == "fail":
@@ -136,17 +113,11 @@ def run(args) -> int:
             print(f"bayesgeo map: {msg}", file=sys.stderr)
         return EXIT_NOT_CONVERGED
 
-    from bayesgeo.predict import CAUTION, area_average, make_basis, posterior_parameters, predict_targets
+    from bayesgeo.predict import CAUTION, area_average, basis_from_fit, predict_targets
     from bayesgeo.trend import design_at
 
-    xy, z, design = fit_data(tree, spec)
-    params = posterior_parameters(tree["posterior"].to_dataset(), spec, draws=draws)
-    from bayesgeo.covariance import get_covariance
-
-    cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
-    basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
-                       partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
-                       beta=params["beta"].values, metric=spec.metric, transform=spec.transform)
+    basis, spec, params = basis_from_fit(tree, draws=draws)
+    xy = basis.xy
     if args.points:
         targets = tg.read_target_points(args.points, columns=tuple(spec.covariates))
         if args.hull_mask:
@@ -157,8 +128,8 @@ def run(args) -> int:
     n_cells = int(np.count_nonzero(targets["inside"].values))
     bar = progress(total=max(1, -(-n_cells // chunk)), desc="map", enabled=not args.json)
     pred = predict_targets(basis, targets, thresholds=args.threshold, include_nugget=args.nugget == "include",
-                   design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
-                   progress=bar)
+                           design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
+                           progress=bar)
     bar.close()
 
     cautions = [CAUTION]
