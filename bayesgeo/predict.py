@@ -384,7 +384,7 @@ def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Seque
                                        seed=seed, include_nugget=False)
         s = summarise_samples(np.exp(sims).mean(axis=2), thr)
         method = (f"joint conditional simulation: {n_sim} per draw x {basis.n_draws} draws, exp() per point, "
-                  "averaged over the area (the area average of a log-normal field is not log-normal)")
+                  "averaged over the area (the area average of a log-normal field is not log-normal); nugget excluded")
         q = s["quantiles"]
         mean, sd, pex = s["mean"], s["sd"], s["p_exceed"]
     else:
@@ -392,7 +392,8 @@ def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Seque
         summ = mixture_summary(m[:, None], v[:, None], thresholds=thr, probs=(0.05, 0.95))
         q = summ["quantiles"][:, 0]
         mean, sd, pex = float(summ["mean"][0]), float(summ["sd"][0]), summ["p_exceed"][:, 0]
-        method = "block kriging per draw (mean of point means, 1'C1/M^2 variance), Gaussian mixture over draws"
+        method = ("block kriging per draw (mean of point means, 1'C1/M^2 variance), Gaussian mixture over draws; "
+                  "nugget excluded")
     return {"mean": float(mean), "sd": float(sd), "q05": float(q[0]), "q95": float(q[1]),
             "p_exceed": [float(p) for p in pex], "threshold": thr, "points": int(len(xy_area)),
             "draws": basis.n_draws, "method": method}
