@@ -363,8 +363,11 @@ def diagnostics(ctx: Ctx) -> str:
             out.append(html_table(rows, ["parameter", "mean", "sd", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "iat"],
                                   left=["parameter"]))
         th = d.get("thresholds", {})
-        out.append(f"<p class=\"small\">Thresholds: {esc(json.dumps(th))}. Rank-normalised split R̂ and bulk/tail "
-                   "ESS after Vehtari et al. (2021); E-BFMI after Betancourt (2016).</p>")
+        th_rows = [{"check": k, "threshold": v.get("value") if isinstance(v, Mapping) else v,
+                    "source": v.get("source", "") if isinstance(v, Mapping) else ""} for k, v in th.items()]
+        if th_rows:
+            out.append("<p class=\"small\">Thresholds of the verdict:</p>")
+            out.append(html_table(th_rows, ["check", "threshold", "source"], left=["check", "source"]))
         for p in d.get("problems", []):
             out.append(f"<p>[{esc(p.get('level', '').upper())}] {esc(p.get('message'))} <span class=\"small\">"
                        f"(source: {esc(p.get('source'))}; advice: {esc(p.get('advice'))})</span></p>")
@@ -472,7 +475,7 @@ def prior_sensitivity(tree) -> list[dict] | str:
         })
         with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
             # ArviZ prints advice with a web address; the report explains the table itself
-            table = az.psense_summary(dt, var_names=names, round_to="none")
+            table = az.psense_summary(dt, var_names=names, round_to=6)
     except Exception as err:  # noqa: BLE001 - shown in the report as the reason
         return f"not computed: {type(err).__name__}: {' '.join(str(err).split())[:200]}"
     frame = table.to_dataframe() if hasattr(table, "to_dataframe") else table
@@ -518,6 +521,10 @@ def priors(ctx: Ctx) -> str:
         if f.tree is None:
             out.append(gap("not available: no fit for this family"))
             continue
+        if (f.folder / "prior_check.png").is_file():
+            out.append(img_tag(f.folder / "prior_check.png", f"prior predictive check, {f.name}",
+                               "Prior predictive check: the band of semivariograms the priors allow, over the "
+                               "empirical semivariogram of the detrended data"))
         try:
             out.append(img_tag(_fig_png(prior_posterior_figure(f.tree)), f"prior and posterior, {f.name}",
                                "A posterior much narrower than its prior shows the data inform the parameter; "
