@@ -49,6 +49,58 @@ def test_bad_study_and_existing_output_exit_2(tmp_path, capsys):
     assert "already exists" in capsys.readouterr().err
 
 
+def test_failed_check_control_flow(tmp_path, monkeypatch):
+    """With the stage commands replaced by stand-ins (a fit and check that report non-convergence, exit 3 as
+    documented for `bayesgeo check`), the run stops: exit 3, later stages and families skipped, the report
+    and manifest still written, the report marked NOT CONVERGED. No sampling: the real path is the slow test below."""
+    import bayesgeo.pipeline as pl
+
+    calls = []
+
+    def fake(argv):
+        calls.append(argv[0])
+        if argv[0] == "explore":
+            return 0, {}
+        if argv[0] == "fit":
+            return 3, {}
+        if argv[0] == "check":
+            return 3, {"verdict": "fail"}
+        raise AssertionError(f"stage {argv[0]} should have been skipped")
+
+    monkeypatch.setattr(pl, "_command", fake)
+    path = write_tiny_study(tmp_path, families=("exponential", "matern32"))
+    res = run_study(path, out=tmp_path / "run")
+    assert calls == ["explore", "fit", "check"]
+    assert res["status"] == 3 and res["verdicts"] == {"explore": "done", "fit:exponential": "NOT CONVERGED",
+                                                      "check:exponential": "fail"}
+    manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
+    assert [s["stage"] for s in manifest["stages"] if s["verdict"] == "skipped"] == [
+        "variogram-check:exponential", "map:exponential", "fit:matern32", "check:matern32",
+        "variogram-check:matern32", "map:matern32", "compare"]
+    text = (tmp_path / "run" / "report.html").read_text()
+    assert "NOT CONVERGED" in text.split("<nav>")[0] and "not available" in text
+    assert (tmp_path / "run" / "inputs" / "tiny.csv").read_bytes() == (tmp_path / "tiny.csv").read_bytes()
+
+
+def test_stage_error_is_recorded(tmp_path, monkeypatch):
+    """An unexpected error in a later stage is recorded (exit 1, verdict failed, error text) and the run goes on."""
+    import bayesgeo.pipeline as pl
+
+    def fake(argv):
+        if argv[0] == "map":
+            raise RuntimeError("boom")
+        return (0, {"verdict": "pass"}) if argv[0] == "check" else (0, {})
+
+    monkeypatch.setattr(pl, "_command", fake)
+    res = run_study(write_tiny_study(tmp_path), out=tmp_path / "run")
+    assert res["status"] == 1 and res["verdicts"]["map:exponential"] == "failed"
+    manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
+    rec = [s for s in manifest["stages"] if s["stage"] == "map:exponential"][0]
+    assert rec["error"] == "RuntimeError: boom"
+    assert "INCOMPLETE" in (tmp_path / "run" / "report.html").read_text()
+
+
+@pytest.mark.slow
 def test_not_converged_stops_with_exit_3(tmp_path, capsys):
     """Too few draws fail the convergence check (bulk ESS > 400 needed, Vehtari et al. 2021): exit 3,
     later stages skipped, the report still written and marked NOT CONVERGED; --json prints one object."""
