@@ -30,9 +30,11 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.covariance import get_covariance
+from bayesgeo.data import sites_of
 from bayesgeo.io import atomic_dir
-from bayesgeo.model import FitSpec, build_model, model_inputs
+from bayesgeo.model import FitSpec, build_model
 from bayesgeo.sampling import sample
+from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
 
 __all__ = [
@@ -186,7 +188,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(covariates),
                     transform=transform, priors=priors)
     model, spec = build_model(ds, **model_kw)
-    _, _, design, _ = model_inputs(ds, **model_kw)
+    design = design_matrix(ds, spec.trend, spec.covariates)
     raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
                  seed=seed, progressbar=progressbar, adaptation=adaptation)
     post = derive(raw["posterior"].to_dataset(), spec)
@@ -208,8 +210,10 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     settings = {
         "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
         "model": spec.to_dict(), "sampler": sampler_settings, "versions": _versions(),
-        "data": {k: _plain(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs",
-                                                           "x_column", "y_column", "value_column")},
+        "data": {**{k: _plain(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs",
+                                                              "x_column", "y_column", "value_column",
+                                                              "site_column")},
+                 "site": sites_of(ds)[0]},
     }
     groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
               "/observed_data": observed, "/constant_data": constant}

@@ -42,6 +42,34 @@ def compile_model(model) -> CompiledModel:
     return CompiledModel(model=model, compiled=nutpie.compile_pymc_model(model, backend="numba"))
 
 
+class _StderrProgress:
+    """A tqdm bar on stderr fed by nutpie's progress callback (draws done over all chains)."""
+
+    def __init__(self, total: int, *, enabled: bool):
+        self.total, self.enabled, self.bar = total, enabled, None
+
+    def __enter__(self):
+        if self.enabled:
+            import sys
+
+            from tqdm.auto import tqdm
+
+            self.bar = tqdm(total=self.total, desc="sampling", unit="draw", file=sys.stderr, leave=False)
+        return self
+
+    def update(self, chains) -> None:
+        if self.bar is not None:
+            done = sum(int(c.finished_draws) for c in chains)
+            div = sum(int(c.divergences) for c in chains)
+            self.bar.n = done
+            self.bar.set_postfix(divergences=div, refresh=False)
+            self.bar.refresh()
+
+    def __exit__(self, *exc) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
 def new_seed() -> int:
     """A fresh seed from the operating system's entropy (recorded so a run can be repeated)."""
     return int(np.random.SeedSequence().entropy % (2**31 - 1))
@@ -65,7 +93,8 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
     seed : int, optional
         Seed of the sampler; a fresh one is drawn (and recorded in the result) when omitted.
     progressbar : bool
-        Show the sampler's progress bar.
+        Show a progress bar on stderr (nutpie: draws over all chains and divergences so far;
+        PyMC: its own bar).
     adaptation : {"low_rank", "diag"}
         Mass-matrix adaptation of nutpie (ignored by ``"pymc"``, which adapts a diagonal one).
     cores : int, optional
@@ -98,11 +127,12 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
 
             compiled = model if isinstance(model, CompiledModel) else compile_model(model)
             t1 = time.perf_counter()
-            tree = nutpie.sample(
-                compiled.compiled, draws=draws, tune=max(tune, 1), chains=chains, cores=cores, seed=seed,
-                save_warmup=False, progress_bar=bool(progressbar), adaptation=adaptation,
-                target_accept=float(target_accept),
-            )
+            with _StderrProgress(chains * (draws + max(tune, 1)), enabled=progressbar) as bar:
+                tree = nutpie.sample(
+                    compiled.compiled, draws=draws, tune=max(tune, 1), chains=chains, cores=cores, seed=seed,
+                    save_warmup=False, progress_bar=False, progress_callback=bar.update if progressbar else None,
+                    adaptation=adaptation, target_accept=float(target_accept),
+                )
         else:
             import pymc as pm
 

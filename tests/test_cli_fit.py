@@ -97,3 +97,20 @@ def test_bad_prior_is_refused(tmp_path, capsys):
     code = main(["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "matern32",
                  "--prior-sd", "1.0", "1.5", "--out", str(tmp_path / "o")])
     assert code == EXIT_INPUT and "--prior-sd" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_human_output_and_overwrite(cli_run, tmp_path, capsys):
+    """Without --json: a table with the parameters and the verdict on stdout; --overwrite replaces an
+    existing folder in one piece (bayesgeo.io.atomic_dir)."""
+    data, _, argv = cli_run
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / "old.txt").write_text("old")
+    argv = [a for a in argv if a != "--json"]
+    argv[argv.index("--out") + 1] = str(out)
+    code = main(["fit", *argv, "--overwrite"])
+    stdout = capsys.readouterr().out
+    assert code in (0, EXIT_NOT_CONVERGED)
+    assert "practical_range" in stdout and "diagnostics:" in stdout and "licensed professional" in stdout
+    assert not (out / "old.txt").exists() and (out / "posterior.nc").exists()
