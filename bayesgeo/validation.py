@@ -366,6 +366,10 @@ def _truth_items(prior: xr.Dataset, r: int, spec, kind: str) -> tuple[dict, list
             key = label if site is None else f"{label}[{site}]"
             items[key] = {"var": var, "site": None if site is None else i,
                           "term": None if term is None else list(spec.terms).index("1"), "value": float(value)}
+    if hier:  # population medians of the practical range and of the field sd (build_site_model)
+        for label, var in (("population_range", "population_range_z"), ("population_sd", "population_sd_z")):
+            if var in one:
+                items[label] = {"var": var, "site": None, "term": None, "value": float(one[var])}
     return items, blocks
 
 

@@ -1,0 +1,85 @@
+"""Tests of ``bayesgeo validate`` (simulation-based calibration from the command line).
+
+The default-suite test runs the whole machinery on a tiny case (one model compilation, three
+replicates); the quick mode itself, whose coverage must fall inside binomial bounds, is marked
+slow (about 4-6 minutes on the 2-core test machine while loaded, most of it compiling the model).
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from bayesgeo.cli import main
+from bayesgeo.validation import binomial_bounds
+
+
+def _run(capsys, argv):
+    code = main(argv)
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_validate_machinery_small(tmp_path, capsys):
+    """End to end on 3 replicates: one JSON object on stdout, ranks within 0..L, coverage counts
+    within 0..N, an HTML page with embedded figures and the regulatory cautions (common practice
+    for outputs that feed contamination decisions), and the same ranks for the same seed in a
+    second run (ranks are integers, so equality is exact)."""
+    argv = ["validate", "--kind", "single", "--covariance", "exponential", "--replicates", "3", "--points", "12",
+            "--draws", "60", "--tune", "80", "--quick", "--seed", "5", "--json"]
+    code, out, _ = _run(capsys, argv + ["--out", str(tmp_path / "a")])
+    assert code in (0, 1)
+    rep = json.loads(out)
+    assert out.count("\n") == 1
+    assert {"ok", "runs", "cautions", "layout", "seconds", "mode"} <= set(rep)
+    run = rep["runs"][0]
+    L = run["ranks_of"]
+    ranks = np.array(run["ranks"])
+    assert ranks.shape == (3, 4) and ranks.min() >= 0 and ranks.max() <= L
+    assert run["quantity_order"] == ["practical_range", "partial_sill", "nugget", "intercept"]
+    for q in run["quantities"].values():
+        for c in q["coverage"].values():
+            assert 0 <= c["count"] <= 3 and c["of"] == 3
+    assert len(run["verdicts"]) == 3 and set(run["verdicts"]) <= {"pass", "warn", "fail"}
+    page = (tmp_path / "a" / "validation.html").read_text()
+    assert "data:image/png;base64," in page and "licensed professional" in page
+    saved = json.loads((tmp_path / "a" / "validation.json").read_text())
+    assert saved["runs"][0]["ranks"] == run["ranks"]
+    # same seed, same ranks (the compiled model is reused within this process, so this is cheap)
+    code2, out2, _ = _run(capsys, argv + ["--out", str(tmp_path / "b")])
+    assert code2 == code and json.loads(out2)["runs"][0]["ranks"] == run["ranks"]
+
+
+def test_validate_refuses_bad_input(tmp_path, capsys, write_csv, grid_rows):
+    """--study with --data, an existing output folder and too few replicates exit 2 with one line
+    on stderr (the package's convention for bad input)."""
+    csv = write_csv(grid_rows)
+    code, _, err = _run(capsys, ["validate", "--study", "s.toml", "--data", str(csv), "--out", str(tmp_path / "o")])
+    assert code == 2 and "--study and --data" in err and err.count("\n") == 1
+    (tmp_path / "exists").mkdir()
+    code, _, err = _run(capsys, ["validate", "--out", str(tmp_path / "exists")])
+    assert code == 2 and "--overwrite" in err
+    code, _, err = _run(capsys, ["validate", "--replicates", "1", "--out", str(tmp_path / "p")])
+    assert code == 2 and "--replicates" in err
+
+
+@pytest.mark.slow
+def test_quick_mode_coverage_within_binomial_bounds(tmp_path, capsys):
+    """Quick mode (28 points, 25 replicates, 2 x 200 draws): the number of replicates whose
+    central 50% and 90% intervals cover the true practical range, partial sill, nugget and
+    intercept lies inside the central 99.9% interval of Binomial(25, 0.5) = [5, 20] and
+    Binomial(25, 0.9) = [17, 25] (scipy.stats.binom quantiles; a calibrated model fails one such
+    check in 1,000 by chance), and no rank histogram is rejected at the 0.1% level
+    (scipy.stats.chisquare; Talts et al. 2018)."""
+    code, out, _ = _run(capsys, ["validate", "--quick", "--seed", "3", "--json", "--out", str(tmp_path / "q")])
+    rep = json.loads(out)
+    assert binomial_bounds(25, 0.5) == (5, 20) and binomial_bounds(25, 0.9) == (17, 25)
+    run = rep["runs"][0]
+    assert run["replicates"] == 25
+    for name, q in run["quantities"].items():
+        for level, c in q["coverage"].items():
+            assert c["bounds"][0] <= c["count"] <= c["bounds"][1], (name, level, c)
+        assert q["uniform_ok"], (name, q["uniformity"])
+    assert code == 0 and rep["ok"]
