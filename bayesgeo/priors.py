@@ -177,7 +177,10 @@ def resolve_priors(priors: Priors | Mapping | None, *, extent: float, value_sd: 
         nugget=base.nugget if priors.nugget is None else _check_pair(priors.nugget, "T0 (sd)", "--prior-nugget"),
     )
     if priors.beta_sd is not None:
-        b = float(priors.beta_sd)
+        try:
+            b = float(priors.beta_sd)
+        except (TypeError, ValueError):
+            b = float("nan")
         if not (math.isfinite(b) and b > 0):
             raise InputError(f"priors: beta_sd must be a positive number, got {priors.beta_sd!r}")
         out = replace(out, beta_sd=b)
