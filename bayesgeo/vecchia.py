@@ -19,11 +19,13 @@ locations; each next point is the one whose smallest distance to the points alre
 largest (ties: the lowest index). It beats coordinate orderings markedly at equal ``m``
 (Guinness 2018, sec. 3; Katzfuss and Guinness 2021).
 
-Default ``m`` (:data:`DEFAULT_NEIGHBOURS` = 20): on n = 2,000 points the error of the log-likelihood
-against the dense one (maximin ordering, exponential and Matérn 3/2 fields) is recorded for
-m = 5 ... 30 in ``bench/RESULTS.md`` ("Nearest-neighbour likelihood") and ``docs/large_data.md``;
-at m = 20 it is well below one log unit, far smaller than the posterior's own spread of
-log-likelihood values (about sqrt(#parameters / 2) log units), while time grows like m^3.
+Default ``m`` (:data:`DEFAULT_NEIGHBOURS` = 20): on n = 2,000 points with a long practical range
+(a third of the side) and a nugget, the worst log-likelihood error at m = 20 was 1.1 (exponential)
+and 5.0 (Matérn 3/2) log units, against 15.6 and 39.4 at m = 5 and 0.4 and 1.4 at m = 30; an
+n = 600 Matérn 3/2 fit with m = 20 matched the exact posterior medians, with somewhat shorter upper
+tails of range and partial sill. Tables in ``bench/RESULTS.md`` ("Nearest-neighbour likelihood")
+and ``docs/large_data.md``, which recommends m = 30 and a check on a subset for smooth families.
+Time grows like m^3.
 
 Gradient: value and analytic gradient w.r.t. the residuals, scale, partial sill and nugget come
 from one pass (formulas in :mod:`bayesgeo._vecchia_numba`), wrapped in one PyTensor Op with a
