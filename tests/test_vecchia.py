@@ -377,3 +377,21 @@ def test_drop_in_for_the_model_likelihood():
     point.update({"practical_range_z_log__": math.log(0.3), "sd_z_log__": 0.1, "nugget_sd_z_log__": -1.0,
                   "beta_z": np.array([0.1, -0.2, 0.3])})
     assert nn.compile_logp()(point) == pytest.approx(dense.compile_logp()(point), rel=1e-10)
+
+
+def test_nn_krige_great_circle_equals_dense_prediction():
+    """lon/lat data (haversine km): with every datum as neighbour, nn_krige equals the dense per-draw
+    prediction bayesgeo.predict.krige (itself tested against scikit-learn and scipy in
+    tests/test_predict.py) for the same parameters."""
+    from bayesgeo.predict import krige
+
+    rng = np.random.default_rng(8)
+    lonlat = np.column_stack([-3.0 + 0.2 * rng.random(50), 54.0 + 0.1 * rng.random(50)])
+    z = rng.normal(size=50)
+    new = np.column_stack([-3.0 + 0.2 * rng.random(10), 54.0 + 0.1 * rng.random(10)])
+    ones, ones_new = np.ones((50, 1)), np.ones((10, 1))
+    m_ref, v_ref = krige(lonlat, z, ones, new, ones_new, "matern32", 2.0, 0.8, 0.1, [0.2], metric="greatcircle")
+    mean, var = nn_krige(lonlat, z, ones, new, ones_new, covariance="matern32", scale=2.0, partial_sill=0.8,
+                         nugget=0.1, beta=[0.2], metric="greatcircle", neighbours=50)
+    np.testing.assert_allclose(mean[0], m_ref, rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(var[0], v_ref, rtol=1e-8, atol=1e-10)
