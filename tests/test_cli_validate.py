@@ -83,3 +83,20 @@ def test_quick_mode_coverage_within_binomial_bounds(tmp_path, capsys):
             assert c["bounds"][0] <= c["count"] <= c["bounds"][1], (name, level, c)
         assert q["uniform_ok"], (name, q["uniformity"])
     assert code == 0 and rep["ok"]
+
+
+def test_validate_reads_the_layout_from_a_study_file(tmp_path):
+    """--study reads the data through the study loader (bayesgeo.study.read_study): the layout is
+    the study's data and its covariance family and nugget choice are used (behaviour check)."""
+    from types import SimpleNamespace
+
+    from bayesgeo.cli.validate import _template
+
+    rows = "".join(f"{i * 7 % 31},{i * 3},{i % 4 + 1}\n" for i in range(12))
+    (tmp_path / "p.csv").write_text("x,y,conc\n" + rows)
+    (tmp_path / "s.toml").write_text('[data]\npath = "p.csv"\nvalue = "conc"\n'
+                                     '[model]\ncovariance = "exponential"\nnugget = false\n')
+    ds, study = _template(SimpleNamespace(study=str(tmp_path / "s.toml"), data=None))
+    assert ds.sizes["obs"] == 12
+    assert np.allclose(ds["x"].values, [i * 7 % 31 for i in range(12)])
+    assert study.families == ["exponential"] and study["model"]["nugget"] is False
