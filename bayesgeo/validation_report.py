@@ -99,7 +99,7 @@ def _table(summary: dict) -> str:
             f"<tr><td>{html.escape(q)}</td><td>{'-' if p is None else f'{p:.3g}'}</td>"
             f"<td>{c5['count']}/{c5['of']} [{c5['bounds'][0]}, {c5['bounds'][1]}]</td>"
             f"<td>{c9['count']}/{c9['of']} [{c9['bounds'][0]}, {c9['bounds'][1]}]</td>"
-            f"<td>{'-' if cc is None else f'{cc['count']}/{cc['of']}'}</td>"
+            f"<td>{'-' if cc is None else str(cc['count']) + '/' + str(cc['of'])}</td>"
             f"<td class={'ok' if ok else 'bad'}>{'pass' if ok else 'FAIL'}</td></tr>")
     return "<table>" + "".join(rows) + "</table>"
 
