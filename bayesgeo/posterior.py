@@ -325,7 +325,7 @@ def summary_text(report: dict) -> str:
                  f"trend order {m['trend']}, transform {m['transform'] or 'none'}, n = {m['n']}")
     s = report["sampler"]
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
-                 f"seed {s['seed']}, {s['seconds']:.1f} s")
+                 f"seed {s['seed']}, {s['seconds']:.1f} s ({s['sampling_seconds']:.1f} s sampling, the rest compiling)")
     lines.append("")
     cols = ["mean", "sd", "q05", "q50", "q95", "hdi90_low", "hdi90_high"]
     width = max(len(k) for k in report["parameters"]) + 2
