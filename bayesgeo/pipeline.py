@@ -28,6 +28,8 @@ manifest and the report).
 from __future__ import annotations
 
 import contextlib
+import gc
+import html
 import io
 import json
 import shutil
@@ -229,8 +231,11 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
                 if name == "explore" or name.startswith("fit:"):
                     raise  # bad data or settings: nothing is written
                 rc, obj = EXIT_STAGE_FAILED, {"error": f"{sys.exc_info()[1]}"}
+            except SystemExit as err:  # argparse refused an option built from the study: a bug, recorded
+                rc, obj = EXIT_STAGE_FAILED, {"error": f"the {name} command refused its options (status {err.code})"}
             except Exception as err:  # noqa: BLE001 - a failing stage is recorded, the report still written
                 rc, obj = EXIT_STAGE_FAILED, {"error": " ".join(f"{type(err).__name__}: {err}".split())}
+            gc.collect()  # close NetCDF handles a stage left to the garbage collector before the next opens the file
             rec.update(seconds=round(time.perf_counter() - t0, 3), status=rc)
             verdict = "done" if rc == 0 else ("NOT CONVERGED" if rc == EXIT_NOT_CONVERGED else "failed")
             if name.startswith("check:") and rc != EXIT_STAGE_FAILED:
@@ -263,7 +268,17 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
         from bayesgeo.report import write_report
 
         manifest["finished"] = utc_now()
-        write_report(tmp, manifest, out_name=str(out))
+        try:
+            write_report(tmp, manifest, out_name=str(out))
+        except Exception as err:  # noqa: BLE001 - keep the run folder; say what went wrong where the report would be
+            reason = " ".join(f"{type(err).__name__}: {err}".split())
+            status, message = EXIT_STAGE_FAILED, f"the report could not be built ({reason})"
+            manifest.update(status=status, message=message)
+            manifest["verdicts"]["report"] = "failed"
+            (tmp / REPORT_FILE).write_text(
+                "<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>bayesgeo report: FAILED"
+                "</title></head><body><h1>Report not built</h1><p>" + html.escape(message) + "</p><p>The stage "
+                "outputs are in this folder; manifest.json lists them.</p></body></html>\n", encoding="utf-8")
         manifest["outputs"] = file_table(tmp, exclude=(MANIFEST_FILE,))
         write_json(tmp / MANIFEST_FILE, manifest)
     return {"status": status, "message": message, "out": str(out), "report": str(out / REPORT_FILE),

@@ -48,6 +48,7 @@ class Fam:
     report: dict | None = None
     diagnostics: dict | None = None
     tree: object | None = None
+    error: str | None = None
 
 
 @dataclass
@@ -69,6 +70,20 @@ def _read_json(path: Path) -> dict | None:
         return None
 
 
+def _load_tree(path: Path):
+    """(tree, None) or (None, reason): read into memory inside a ``with`` block so no NetCDF handle stays open."""
+    import gc
+
+    import xarray as xr
+
+    gc.collect()  # close handles other stages left to the garbage collector before HDF5 sees the file again
+    try:
+        with xr.open_datatree(path, engine="netcdf4") as t:
+            return t.load(), None
+    except Exception as err:  # noqa: BLE001 - shown in the report as the reason
+        return None, f"{type(err).__name__}: {' '.join(str(err).split())[:200]}"
+
+
 def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:
     """Gather what the run wrote under ``root``."""
     settings = manifest.get("settings", {})
@@ -79,9 +94,7 @@ def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:
         f = Fam(name=fam, folder=folder, report=_read_json(folder / "fit.json"),
                 diagnostics=_read_json(folder / "diagnostics" / "diagnostics.json"))
         if (folder / "posterior.nc").is_file():
-            from bayesgeo.posterior import load_fit
-
-            f.tree = load_fit(folder)
+            f.tree, f.error = _load_tree(folder / "posterior.nc")
         ctx.fams.append(f)
     verdicts = manifest.get("verdicts", {})
     ctx.not_converged = any(v == "NOT CONVERGED" or v == "fail" for k, v in verdicts.items()
@@ -519,7 +532,8 @@ def priors(ctx: Ctx) -> str:
     for f in ctx.fams:
         out.append(f"<h3>{esc(f.name)}</h3>")
         if f.tree is None:
-            out.append(gap("not available: no fit for this family"))
+            out.append(gap("not available: " + (f"the fit could not be read ({f.error})" if f.error
+                                                 else "no fit for this family")))
             continue
         if (f.folder / "prior_check.png").is_file():
             out.append(img_tag(f.folder / "prior_check.png", f"prior predictive check, {f.name}",
