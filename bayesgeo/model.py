@@ -28,16 +28,14 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.covariance import get_covariance
-from bayesgeo.data import sites_of
+from bayesgeo.data import TRANSFORMS, apply_transform, sites_of
 from bayesgeo.geometry import distance_matrix, metric_of
 from bayesgeo.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
 from bayesgeo.trend import design_matrix
-from bayesgeo.validate import InputError, format_rows
+from bayesgeo.validate import InputError
 
 __all__ = ["TRANSFORMS", "FitSpec", "build_model", "model_inputs", "transform_values"]
 
-#: Accepted value transforms (``None`` = model the values as they are).
-TRANSFORMS = (None, "log")
 
 
 @dataclass(frozen=True)
@@ -150,26 +148,9 @@ def _source(ds: xr.Dataset) -> str:
 
 
 def transform_values(ds: xr.Dataset, transform: str | None) -> np.ndarray:
-    """The values to model: ``ds["value"]`` or its natural logarithm.
-
-    Raises
-    ------
-    InputError
-        Unknown transform, or zero/negative values under ``"log"`` (naming rows and column).
-    """
-    if transform not in TRANSFORMS:
-        raise InputError(f"--transform: {transform!r} is not one of: none, log")
-    z = np.asarray(ds["value"].values, dtype=float)
-    if transform == "log":
-        bad = z <= 0
-        if np.any(bad):
-            col = ds.attrs.get("value_column", "value")
-            raise InputError(
-                f"{_source(ds)}: --transform log needs positive values; column {col!r} has zero or negative "
-                f"values at rows {format_rows(ds['row'].values[bad])}"
-            )
-        z = np.log(z)
-    return z
+    """The values to model: ``ds["value"]`` or its natural logarithm (see
+    :func:`bayesgeo.data.apply_transform`, which raises the InputError for bad input)."""
+    return np.asarray(apply_transform(ds, transform)["value"].values, dtype=float)
 
 
 def _check_single_site(ds: xr.Dataset) -> None:

@@ -405,7 +405,9 @@ def load_fit(directory: str | Path) -> xr.DataTree:
     if not path.is_file():
         raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
     try:
-        tree = xr.open_datatree(path, engine="netcdf4").load()
+        # Load and close: an open HDF5 handle left behind crashed a later reopen of the same file.
+        with xr.open_datatree(path, engine="netcdf4") as handle:
+            tree = handle.load()
     except Exception as err:  # noqa: BLE001 - any reader failure is bad input here
         raise InputError(f"{path}: not a readable NetCDF file ({type(err).__name__}: {err})") from None
     fit_spec(tree)
