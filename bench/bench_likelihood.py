@@ -182,7 +182,35 @@ def full_fits(sizes, seeds, tune: int, draws: int) -> list[dict]:
     return rows
 
 
-def report(grad_rows, fit_rows, args) -> str:
+def in_sampler(sizes, rounds: int, tune: int, draws: int) -> list[dict]:
+    """Short nutpie runs of both models alternated: wall time per leapfrog step and chain.
+
+    Full fits run one after the other, so a change of machine load between them biases their
+    ratio; alternating short runs exposes both models to the same load."""
+    rows = []
+    for n in sizes:
+        ds = dataset(n, seed=n)
+        ours, builtin = builtin_model(ds)
+        compiled = {"ours": nutpie.compile_pymc_model(ours), "pm.gp.Marginal": nutpie.compile_pymc_model(builtin)}
+        per = {k: [] for k in compiled}
+        for r in range(rounds):
+            for key, cm in compiled.items():
+                t0 = time.perf_counter()
+                tree = nutpie.sample(cm, draws=draws, tune=tune, chains=2, cores=2, seed=100 + r, progress_bar=False,
+                                     save_warmup=True)
+                wall = time.perf_counter() - t0
+                steps = float(tree["warmup_sample_stats"]["n_steps"].sum() + tree["sample_stats"]["n_steps"].sum())
+                per[key].append(wall / (steps / 2.0))  # 2 chains run side by side
+        m = {k: statistics.median(v) for k, v in per.items()}
+        rows.append({"n": n, "ours_ms": 1e3 * m["ours"], "builtin_ms": 1e3 * m["pm.gp.Marginal"],
+                     "ratio": m["ours"] / m["pm.gp.Marginal"]})
+        print(f"n={n}: in nutpie, ms per leapfrog step and chain: ours {1e3 * m['ours']:.2f}, "
+              f"pm.gp.Marginal {1e3 * m['pm.gp.Marginal']:.2f}, ratio {m['ours'] / m['pm.gp.Marginal']:.2f}",
+              flush=True)
+    return rows
+
+
+def report(grad_rows, fit_rows, args, step_rows=()) -> str:
     now = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     cpu = platform.processor() or platform.machine()
     lines = ["", "## Dense likelihood", "",
@@ -200,6 +228,12 @@ def report(grad_rows, fit_rows, args) -> str:
     for r in grad_rows:
         lines.append(f"| {r['n']:,} | {r['ours_ms']:.2f} | {r['builtin_ms']:.2f} | {r['floor_ms']:.2f} | "
                      f"{r['ours/builtin']:.2f} | {r['ours/floor']:.2f} |")
+    if step_rows:
+        lines += ["", f"Inside nutpie (short runs of 100 tune + 100 draws, 2 chains on 2 cores, the two models "
+                  f"alternated {args.step_rounds} times, median): wall time per leapfrog step and chain", "",
+                  "| n | ours (ms) | pm.gp.Marginal (ms) | ours / builtin |", "| --- | --- | --- | --- |"]
+        for r in step_rows:
+            lines.append(f"| {r['n']:,} | {r['ours_ms']:.2f} | {r['builtin_ms']:.2f} | {r['ratio']:.2f} |")
     if fit_rows:
         lines += ["", f"Full fits, nutpie (defaults but the adaptation), 2 chains on 2 cores, {args.tune} tune + "
                   f"{args.draws} draws; wall = sampling only (compiled before); ESS = minimum bulk ESS over the free parameters (ArviZ); ratio = ESS/s over pm.gp.Marginal's at the same n "
@@ -222,12 +256,16 @@ def main(argv=None) -> int:
     p.add_argument("--seeds", type=int, nargs="*", default=[1, 2])
     p.add_argument("--tune", type=int, default=500)
     p.add_argument("--draws", type=int, default=500)
+    p.add_argument("--step-sizes", type=int, nargs="*", default=[200],
+                   help="sizes for alternated short nutpie runs timing each leapfrog step (0 to skip)")
+    p.add_argument("--step-rounds", type=int, default=3)
     p.add_argument("--no-append", action="store_true", help="print only; do not append to bench/RESULTS.md")
     args = p.parse_args(argv)
     args.load_start = os.getloadavg()[0]
     grad_rows = per_gradient(args.sizes, args.rounds)
+    step_rows = in_sampler([n for n in args.step_sizes if n > 0], args.step_rounds, tune=100, draws=100)
     fit_rows = full_fits(args.fit_sizes, args.seeds, args.tune, args.draws)
-    text = report(grad_rows, fit_rows, args)
+    text = report(grad_rows, fit_rows, args, step_rows)
     print(text)
     if not args.no_append:
         path = ROOT / "bench" / "RESULTS.md"
