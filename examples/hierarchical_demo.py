@@ -29,7 +29,12 @@ def main(out: Path) -> dict:
                      draws=draws, tune=draws, seed=3)
     report = site_report(tree)
     save_site_fit(tree, out, overwrite=True)
-    print(json.dumps({k: report[k] for k in report if k in ("population", "sites")}, indent=1, default=str)[:4000])
+    for site, block in report["sites"].items():
+        pr = block["parameters"]["practical_range"]
+        print(f"{site:>12}: n = {block['n']:3d}, practical range median {pr['q50']:.4g} {pr['units']} "
+              f"(90% interval {pr['q05']:.4g} to {pr['q95']:.4g})")
+    print(f"population ({report['parameters_note']}):")
+    print(json.dumps(report["parameters"], indent=1, default=str))
     print(f"wrote {out}/")
     return report
 
