@@ -34,7 +34,13 @@ from bayesgeo.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
 
-__all__ = ["TRANSFORMS", "FitSpec", "build_model", "model_inputs", "transform_values"]
+__all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "FitSpec", "build_model", "model_inputs", "transform_values"]
+
+#: Likelihood choices: exact dense, nearest-neighbour (Vecchia), or dense up to DENSE_LIMIT points.
+APPROX = ("auto", "dense", "nn")
+#: Largest n fitted with the dense likelihood under ``approx="auto"``: at n = 2,000 one dense
+#: log-density + gradient costs about 0.25 s here (bench/RESULTS.md), so a fit takes hours beyond it.
+DENSE_LIMIT = 2000
 
 
 
@@ -92,6 +98,8 @@ class FitSpec:
     value_column: str
     n: int
     priors: Priors
+    approx: str = "dense"
+    neighbours: int = 0
 
     @property
     def model_units(self) -> str:
@@ -165,7 +173,8 @@ def _check_single_site(ds: xr.Dataset) -> None:
 
 def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                  nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
-                 transform: str | None = None, priors: Priors | Mapping | None = None):
+                 transform: str | None = None, priors: Priors | Mapping | None = None,
+                 approx: str = "auto", neighbours: int | None = None):
     """Check the data and settings and compute everything the model needs.
 
     Returns
@@ -175,8 +184,9 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
         Standardised values.
     design : xarray.DataArray (obs, term)
         Trend design matrix (:func:`bayesgeo.trend.design_matrix`).
-    dist : ndarray (n, n)
-        Distances divided by ``spec.distance_scale``.
+    dist : ndarray (n, n) or None
+        Distances divided by ``spec.distance_scale``; ``None`` for the nearest-neighbour
+        likelihood, which never builds an n x n matrix.
     """
     for key in ("x", "y", "value"):
         if key not in ds.variables:
@@ -196,10 +206,18 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
     if np.linalg.matrix_rank(design.values) < p:
         raise InputError(f"--trend: the trend terms ({', '.join(design.attrs['terms'])}) are not identifiable "
                          "from these locations and covariates; use a lower order or drop a covariate")
+    approx, neighbours = _resolve_approx(approx, neighbours, n, cov.name)
     metric = metric_of(ds)
     xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
-    d = distance_matrix(xy, metric)
-    extent = float(d.max())
+    if approx == "dense":
+        d = distance_matrix(xy, metric)
+        extent = float(d.max())
+    else:
+        from bayesgeo._pairs import max_pair_distance
+
+        d = None
+        extent = max_pair_distance(xy[:, 0], xy[:, 1], group=np.zeros(n, dtype=np.int64),
+                                   greatcircle=metric == "greatcircle")
     if not extent > 0:
         raise InputError(f"{_source(ds)}: all points share one location")
     vmean, vsd = float(np.mean(z)), float(np.std(z, ddof=1))
@@ -216,13 +234,33 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
         metric=metric, distance_units=str(ds.attrs.get("distance_units", "")),
         value_units=str(ds.attrs.get("value_units", "") or ds["value"].attrs.get("units", "")),
         value_column=str(ds.attrs.get("value_column", "value")), n=int(n), priors=resolved,
+        approx=approx, neighbours=int(neighbours),
     )
-    return spec, (z - vmean) / vsd, design, d / extent
+    return spec, (z - vmean) / vsd, design, None if d is None else d / extent
+
+
+def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) -> tuple[str, int]:
+    """Pick the likelihood: ``auto`` is dense up to :data:`DENSE_LIMIT` points, else nearest-neighbour."""
+    from bayesgeo.validate import check_choice, check_positive_int
+
+    check_choice(approx, APPROX, "--approx")
+    if approx == "auto":
+        approx = "dense" if n <= DENSE_LIMIT else "nn"
+    if approx == "dense":
+        return "dense", 0
+    if family == "matern":
+        raise InputError("--approx nn: the general 'matern' family has no nearest-neighbour kernel; "
+                         "use exponential, matern32, matern52, gaussian or spherical")
+    from bayesgeo.vecchia import DEFAULT_NEIGHBOURS
+
+    m = DEFAULT_NEIGHBOURS if neighbours is None else check_positive_int(neighbours, "--neighbours")
+    return "nn", min(m, n - 1)
 
 
 def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                 nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
-                transform: str | None = None, priors: Priors | Mapping | None = None):
+                transform: str | None = None, priors: Priors | Mapping | None = None,
+                approx: str = "auto", neighbours: int | None = None):
     """Build the PyMC model of one site's point data.
 
     Parameters
@@ -242,6 +280,12 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         Model log(values); zero or negative values are refused.
     priors : Priors or dict, optional
         Overrides of the default priors (data units; see :mod:`bayesgeo.priors`).
+    approx : {"auto", "dense", "nn"}
+        Exact dense likelihood, or the nearest-neighbour (Vecchia) approximation of
+        :mod:`bayesgeo.vecchia`; ``auto`` (default) is dense up to :data:`DENSE_LIMIT` points.
+    neighbours : int, optional
+        Conditioning set size m of the nearest-neighbour likelihood (default
+        :data:`bayesgeo.vecchia.DEFAULT_NEIGHBOURS`).
 
     Returns
     -------
@@ -262,7 +306,8 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     from bayesgeo.likelihood import marginal_loglik
 
     spec, y, design, dist = model_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend,
-                                         covariates=covariates, transform=transform, priors=priors)
+                                         covariates=covariates, transform=transform, priors=priors,
+                                         approx=approx, neighbours=neighbours)
     cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
     rates = spec.rates
     with pm.Model(coords={"term": list(spec.terms)}) as model:
@@ -271,6 +316,14 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         tau2 = pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2 if spec.nugget else 0.0
         beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
         resid = y - pm.math.dot(design.values, beta)
-        pm.Potential("loglik", marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd**2, tau2))
+        if spec.approx == "nn":
+            from bayesgeo.vecchia import nn_loglik
+
+            xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
+            loglik = nn_loglik(resid, xy, cov, prange / spec.range_factor, sd**2, tau2, neighbours=spec.neighbours,
+                               metric=spec.metric, distance_scale=spec.distance_scale)
+        else:
+            loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd**2, tau2)
+        pm.Potential("loglik", loglik)
     return model, spec
 

@@ -168,14 +168,14 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None, priors=None,
         sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
         target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
-        adaptation: str = "low_rank") -> xr.DataTree:
+        adaptation: str = "low_rank", approx: str = "auto", neighbours: int | None = None) -> xr.DataTree:
     """Fit the single-site Bayesian GP model and return the self-describing result.
 
     Parameters
     ----------
     ds : xarray.Dataset
         Point data of one site (:func:`bayesgeo.read_points`).
-    covariance, nu, nugget, trend, covariates, transform, priors
+    covariance, nu, nugget, trend, covariates, transform, priors, approx, neighbours
         Model settings, see :func:`bayesgeo.model.build_model`.
     sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation
         Sampler settings, see :func:`bayesgeo.sampling.sample`.
@@ -186,7 +186,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         See the module docstring for its groups and attributes.
     """
     model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(covariates),
-                    transform=transform, priors=priors)
+                    transform=transform, priors=priors, approx=approx, neighbours=neighbours)
     model, spec = build_model(ds, **model_kw)
     design = design_matrix(ds, spec.trend, spec.covariates)
     raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,

@@ -183,3 +183,21 @@ def test_bad_settings_are_refused(kw, match):
     """Bad settings raise InputError naming the option (common practice)."""
     with pytest.raises(InputError, match=match):
         model_inputs(_data(n=20), **kw)
+
+
+def test_nearest_neighbour_model_with_all_previous_points_equals_dense():
+    """Vecchia (1988): conditioning each point on ALL previous points is the exact chain rule of
+    the joint density, so with m = n - 1 the nn model's log density equals the dense model's."""
+    rng = np.random.default_rng(11)
+    xy = rng.random((30, 2)) * 100.0
+    z = simulate_field(xy, covariance="exponential", practical_range=40.0, partial_sill=1.0, nugget=0.1,
+                       mean=2.0, rng=rng)
+    ds = points_dataset(xy[:, 0], xy[:, 1], z, attrs={"source": "sim", "distance_units": "m"})
+    dense, dspec = build_model(ds, covariance="exponential", approx="dense")
+    nn, nspec = build_model(ds, covariance="exponential", approx="nn", neighbours=29)
+    assert (dspec.approx, nspec.approx, nspec.neighbours) == ("dense", "nn", 29)
+    point = dense.initial_point()
+    np.testing.assert_allclose(nn.compile_logp()(point), dense.compile_logp()(point), rtol=1e-9)
+    assert build_model(ds, covariance="exponential")[1].approx == "dense"  # auto: small n is dense
+    with pytest.raises(InputError, match="--approx"):
+        build_model(ds, covariance="exponential", approx="fast")

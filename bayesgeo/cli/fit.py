@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-HELP = "fit the Bayesian GP model (range, partial sill, nugget, trend) to one site's data"
+HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one site's data, or to several "
+        "sites at once with --site (hierarchical by default)")
 
 
 def add_arguments(p) -> None:
@@ -10,6 +11,9 @@ def add_arguments(p) -> None:
     from bayesgeo.covariance import FAMILIES
 
     add_data_options(p)
+    from bayesgeo.cli._sites import add_site_arguments
+
+    add_site_arguments(p)
     p.add_argument("--covariance", required=True, choices=FAMILIES, metavar="FAMILY",
                    help=f"covariance family: {', '.join(FAMILIES)}")
     p.add_argument("--nu", type=float, default=None, help="Matérn smoothness (family 'matern' only)")
@@ -23,6 +27,11 @@ def add_arguments(p) -> None:
                    help="PC prior: P(sd of the field > S0) = A2 (default: S0 = 2 x sd of the detrended values, A2 = 0.05)")
     p.add_argument("--prior-nugget", nargs=2, type=float, metavar=("T0", "A3"),
                    help="PC prior: P(nugget sd > T0) = A3 (default as --prior-sd)")
+    p.add_argument("--approx", choices=("auto", "dense", "nn"), default="auto",
+                   help="likelihood: exact dense, nearest-neighbour (Vecchia) approximation, or auto "
+                        "(dense up to 2,000 points per site, nn beyond; docs/large_data.md)")
+    p.add_argument("--neighbours", type=int, default=None, metavar="M",
+                   help="neighbours per point of the nn likelihood (default 20)")
     p.add_argument("--draws", type=int, default=1000, help="kept draws per chain (default 1000)")
     p.add_argument("--tune", type=int, default=1000, help="tuning iterations per chain (default 1000)")
     p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
@@ -43,9 +52,17 @@ def run(args) -> int:
     from bayesgeo.io import refuse_existing
     from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
     from bayesgeo.priors import Priors
+    from bayesgeo.validate import InputError
 
     refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
     ds = read_data(args)
+    if args.site is not None:
+        from bayesgeo.cli._sites import run_sites
+
+        if args.approx == "nn":
+            raise InputError("--approx nn: the several-site model uses the dense likelihood per site; "
+                             "fit large sites one at a time")
+        return run_sites(args, ds)
     priors = Priors(range=tuple(args.prior_range) if args.prior_range else None,
                     sd=tuple(args.prior_sd) if args.prior_sd else None,
                     nugget=tuple(args.prior_nugget) if args.prior_nugget else None)
@@ -53,7 +70,8 @@ def run(args) -> int:
     tree = fit(ds, covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
                covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
                priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
-               target_accept=args.target_accept, seed=args.seed, progressbar=show)
+               target_accept=args.target_accept, seed=args.seed, progressbar=show,
+               approx=args.approx, neighbours=args.neighbours)
     conv = check_convergence(tree)
     tree = with_diagnostics(tree, conv.to_json())
     save_fit(tree, args.out, overwrite=args.overwrite)
