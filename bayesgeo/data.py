@@ -73,6 +73,7 @@ def read_points(
     units: str | None = None,
     distance_units: str | None = None,
     crs: str | None = None,
+    only_site: str | None = None,
 ) -> xr.Dataset:
     """Read point measurements into a ``Dataset`` along ``obs``.
 
@@ -101,6 +102,8 @@ def read_points(
         and this must be omitted or ``"km"``.
     crs : str, optional
         Coordinate reference system label, recorded in attributes.
+    only_site : str, optional
+        Keep the rows of this one site (needs ``site``); checks then apply to that site alone.
 
     Returns
     -------
@@ -152,6 +155,15 @@ def read_points(
         if empty.size:
             raise InputError(f"{src}: empty cells in column {sitecol!r} at rows {format_rows(empty)}")
         sites = sites.astype(str)
+        if only_site is not None:
+            keep = sites == only_site
+            if not keep.any():
+                labels = ", ".join(dict.fromkeys(sites.tolist()))
+                raise InputError(f"{src}: --only-site: no site {only_site!r} in column {sitecol!r} (sites: {labels})")
+            sites, file_rows = sites[keep], file_rows[keep]
+            numeric = {c: v[keep] for c, v in numeric.items()}
+    elif only_site is not None:
+        raise InputError(f"{src}: --only-site needs --site COL naming the site column")
 
     lonlat = coords == "lonlat"
     if lonlat and distance_units not in (None, "km"):

@@ -130,3 +130,16 @@ def test_log_transform(write_csv, grid_rows):
         apply_transform(read_points(write_csv(grid_rows), value="conc"), "log")
     with pytest.raises(InputError, match="--transform: 'sqrt' is not one of"):
         apply_transform(ds, "sqrt")
+
+
+def test_only_site_keeps_one_site(write_csv, grid_rows):
+    rows = [grid_rows[0] + ["site"]] + [r + (["A"] if i % 2 else ["B"]) for i, r in enumerate(grid_rows[1:])]
+    rows += [[1000 + 10 * i, 0, 5.0 + i % 3, "A"] for i in range(10)]
+    path = write_csv(rows)
+    ds = read_points(path, value="conc", site="site", only_site="A")
+    assert set(ds["site"].values) == {"A"} and ds.sizes["obs"] == 12 + 10
+    assert ds["row"].values[0] == 3  # rows keep their file numbers
+    with pytest.raises(InputError, match=r"--only-site: no site 'C' in column 'site' \(sites: B, A\)"):
+        read_points(path, value="conc", site="site", only_site="C")
+    with pytest.raises(InputError, match="--only-site needs --site"):
+        read_points(path, value="conc", only_site="A")

@@ -19,6 +19,7 @@ def add_data_options(p) -> None:
     p.add_argument("--y", metavar="COL", help="y / northing / latitude column (detected if omitted)")
     p.add_argument("--value", metavar="COL", help="measured value column")
     p.add_argument("--site", metavar="COL", help="site label column (several-site data)")
+    p.add_argument("--only-site", metavar="NAME", help="analyse only this site's rows (with --site)")
     p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
     p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto",
                    help="planar coordinates (xy) or degrees (lonlat: great-circle km); auto refuses degree-like values")
@@ -35,7 +36,7 @@ def read_data(args):
     return read_points(
         args.data, x=args.x, y=args.y, value=args.value, site=args.site, covariates=args.covariate,
         coords=args.coords, duplicates=args.duplicates, units=args.units,
-        distance_units=args.distance_units,
+        distance_units=args.distance_units, only_site=args.only_site,
     )
 
 

@@ -56,7 +56,9 @@ def run(args) -> int:
 
     refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
     ds = read_data(args)
-    if args.site is not None:
+    from bayesgeo.data import sites_of
+
+    if len(sites_of(ds)) > 1:
         from bayesgeo.cli._sites import run_sites
 
         if args.approx == "nn":
