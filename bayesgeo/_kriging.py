@@ -97,6 +97,10 @@ class KrigingBasis:
         K^-1 (values - design beta) per draw.
     transform : str or None
         ``"log"``: results are back-transformed to data units per draw.
+    neighbours : int
+        0 for exact kriging with the factors above; m > 0 for nearest-neighbour kriging
+        (:func:`bayesgeo.vecchia.nn_krige`: each target conditioned on its m nearest data), where
+        ``chol`` is empty and ``alpha`` unused, so memory stays O(n) for large data.
     """
 
     xy: np.ndarray
@@ -111,6 +115,7 @@ class KrigingBasis:
     chol: list
     alpha: np.ndarray
     transform: str | None = None
+    neighbours: int = 0
 
     @property
     def n_draws(self) -> int:
@@ -120,7 +125,7 @@ class KrigingBasis:
 
 def make_basis(xy, values, design, *, covariance: Covariance | str, scale, partial_sill, nugget, beta,
                metric: str = "euclidean", transform: str | None = None, jitter: float = JITTER,
-               max_bytes: float = 4 * 2**30) -> KrigingBasis:
+               max_bytes: float = 4 * 2**30, neighbours: int = 0) -> KrigingBasis:
     """Factorise the data covariance of every draw once.
 
     Parameters
@@ -143,6 +148,9 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
         Added to the diagonal as ``jitter * sigma2`` (keeps K invertible without a nugget).
     max_bytes : float
         Refuse (InputError naming ``--draws``) when the D factors of n x n would exceed this.
+    neighbours : int
+        0 (default): exact kriging; m > 0: nearest-neighbour kriging with m data per target,
+        nothing factorised here.
 
     Returns
     -------
@@ -164,6 +172,9 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
         raise ValueError(f"transform must be None or 'log', got {transform!r}")
     if np.any(~(scale > 0)) or np.any(~(psill > 0)) or np.any(~(tau2 >= 0)):
         raise ValueError("every draw needs scale > 0, partial_sill > 0 and nugget >= 0")
+    if neighbours:
+        return KrigingBasis(xy, values, design, cov, metric, scale, psill, tau2, beta, [], np.empty((d_count, 0)),
+                            transform, int(neighbours))
     need = 8.0 * d_count * n * n
     if need > max_bytes:
         raise InputError(f"--draws: {d_count} draws x {n} points need {need / 2**30:.1f} GiB of Cholesky factors "
@@ -244,6 +255,12 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
     m = xy_new.shape[0]
     design_new = np.asarray(design_new, dtype=float).reshape(m, -1)
+    if basis.neighbours:
+        from bayesgeo.vecchia import nn_krige
+
+        return nn_krige(basis.xy, basis.values, basis.design, xy_new, design_new, covariance=basis.covariance,
+                        scale=basis.scale, partial_sill=basis.partial_sill, nugget=basis.nugget, beta=basis.beta,
+                        metric=basis.metric, neighbours=basis.neighbours, include_nugget=include_nugget)
     # Pad to a multiple of _PAD targets (repeating the last one): BLAS kernels treat a ragged
     # tail of columns differently in the last bit, and padding makes each target's numbers
     # independent of how the targets were split into chunks.
@@ -300,8 +317,16 @@ def krige(xy_obs, y_obs, design_obs, xy_new, design_new, covariance: Covariance 
     return mean, cov
 
 
+def _needs_factors(basis: KrigingBasis, what: str) -> None:
+    """Joint quantities need the exact factors, which a nearest-neighbour basis does not hold."""
+    if basis.neighbours:
+        raise InputError(f"{what} needs the exact dense kriging system; this fit uses the nearest-neighbour "
+                         "approximation (large data): map points and grids only, or refit with --approx dense")
+
+
 def _joint_moments(basis: KrigingBasis, k: int, xy_new, design_new, include_nugget: bool):
     """Conditional mean (m,) and covariance (m, m) for draw ``k``."""
+    _needs_factors(basis, "joint conditional simulation (--simulate)")
     dist = _dist_f(basis, xy_new)
     cross = _cross_cov(basis, dist, k, np.empty(dist.shape, order="F"))
     mean = design_new.reshape(len(xy_new), -1) @ basis.beta[k] + basis.alpha[k] @ cross
@@ -420,6 +445,7 @@ def block_moments(basis: KrigingBasis, xy_area, design_area) -> tuple[np.ndarray
     -------
     mean, var : ndarray (D,)
     """
+    _needs_factors(basis, "an area average (--area)")
     xy_area = np.asarray(xy_area, dtype=float).reshape(-1, 2)
     m = xy_area.shape[0]
     design_area = np.asarray(design_area, dtype=float).reshape(m, -1)

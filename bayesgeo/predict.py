@@ -63,6 +63,10 @@ PROBS = (0.05, 0.5, 0.95)
 SCHEDULERS = ("threads", "synchronous")
 
 
+#: Data points per target for nearest-neighbour kriging of fits that used ``--approx nn``.
+NN_PREDICT_NEIGHBOURS = 30
+
+
 def _pick(total: int, draws: int | None) -> np.ndarray:
     if draws is None or draws >= total:
         return np.arange(total)
@@ -164,9 +168,12 @@ def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
     xy, z, design = fit_data(tree, spec)
     params = posterior_parameters(tree["posterior"].to_dataset(), spec, draws=draws)
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
+    # A fit with the nearest-neighbour likelihood (large n) predicts by nearest-neighbour kriging too.
+    neighbours = NN_PREDICT_NEIGHBOURS if getattr(spec, "approx", "dense") == "nn" else 0
     basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
-                       beta=params["beta"].values, metric=spec.metric, transform=spec.transform)
+                       beta=params["beta"].values, metric=spec.metric, transform=spec.transform,
+                       neighbours=neighbours)
     return basis, spec, params
 
 

@@ -253,3 +253,26 @@ def test_distributed_scheduler_gives_the_same_numbers():
         remote = P.predict_targets(basis, grid, thresholds=[1.0], chunk_cells=20, scheduler=lc.scheduler_address)
     for name in ("mean", "sd", "q05", "q95", "p_exceed"):
         np.testing.assert_array_equal(local[name].values, remote[name].values)
+
+
+def test_nn_basis_equals_exact_kriging_with_all_neighbours():
+    """Nearest-neighbour kriging with every data point as a neighbour is simple kriging
+    (Rasmussen and Williams 2006, eqs. 2.23-2.24): the nn basis of a large-data fit reproduces
+    the exact basis; joint quantities are refused on it with a one-line InputError."""
+    from bayesgeo._kriging import block_moments, draw_moments, make_basis
+    from bayesgeo.validate import InputError
+
+    rng = np.random.default_rng(4)
+    xy = rng.random((40, 2)) * 100.0
+    z = rng.normal(size=40)
+    design = np.ones((40, 1))
+    new = rng.random((7, 2)) * 100.0
+    kw = dict(covariance="matern32", scale=np.array([20.0, 35.0]), partial_sill=np.array([1.0, 0.7]),
+              nugget=np.array([0.1, 0.2]), beta=np.array([[0.3], [-0.1]]))
+    exact = draw_moments(make_basis(xy, z, design, **kw), new, np.ones((7, 1)))
+    nn_basis = make_basis(xy, z, design, neighbours=40, **kw)
+    approx = draw_moments(nn_basis, new, np.ones((7, 1)))
+    np.testing.assert_allclose(approx[0], exact[0], rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(approx[1], exact[1], rtol=1e-7, atol=1e-9)
+    with pytest.raises(InputError, match="nearest-neighbour"):
+        block_moments(nn_basis, new, np.ones((7, 1)))
