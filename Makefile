@@ -19,9 +19,7 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(VENV)/bin/bayesgeo demo-data --out demo-run/arsenic.csv --overwrite
-	$(VENV)/bin/bayesgeo explore demo-run/arsenic.csv --site parcel --value arsenic_mg_kg --units mg/kg \
-	    --distance-units m --transform log --permutations 99 --seed 1 --out demo-run/explore --overwrite
+	$(VENV)/bin/bayesgeo demo --out demo-run --overwrite
 
 test: $(STAMP)
 	$(PY) -m pytest -m "not slow" -n 2 --dist loadfile
