@@ -20,6 +20,7 @@ def add_arguments(p) -> None:
                       ("--site", "site label column (several sites: also a hierarchical check)"),
                       ("--units", "units of the measured value"), ("--distance-units", "units of the coordinates")):
         p.add_argument(opt, metavar="COL" if "column" in text else "TEXT", help=text)
+    p.add_argument("--only-site", metavar="NAME", help="use only this site's rows (with --site)")
     p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto", help="planar (xy) or degrees (lonlat)")
     p.add_argument("--duplicates", choices=("error", "mean"), default="error", help="points at one location")
     p.add_argument("--covariance", action="append", choices=FAMILIES, metavar="FAMILY",
@@ -58,7 +59,7 @@ def _template(args):
         d = st["data"]
         ns = SimpleNamespace(data=str(d["path"]), x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
                              covariate=[], coords=d.get("coords", "auto"), duplicates=d.get("duplicates", "error"),
-                             units=d.get("units"), distance_units=d.get("distance_units"))
+                             units=d.get("units"), distance_units=d.get("distance_units"), only_site=d.get("only_site"))
         return read_data(ns), st
     if args.data:
         args.covariate = []
