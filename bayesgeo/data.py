@@ -33,6 +33,8 @@ _Y_NAMES = ("y", "northing", "north", "n", "lat", "latitude")
 _LONLAT_NAMES = {"lon", "longitude", "long", "lat", "latitude"}
 COORDS = ("auto", "xy", "lonlat")
 DUPLICATES = ("error", "mean")
+SMALL_SITES = ("error", "keep")
+_POOLED_MIN = 3
 
 
 def _sha256(path: Path) -> str:
@@ -74,6 +76,7 @@ def read_points(
     distance_units: str | None = None,
     crs: str | None = None,
     only_site: str | None = None,
+    small_sites: str = "error",
 ) -> xr.Dataset:
     """Read point measurements into a ``Dataset`` along ``obs``.
 
@@ -104,6 +107,10 @@ def read_points(
         Coordinate reference system label, recorded in attributes.
     only_site : str, optional
         Keep the rows of this one site (needs ``site``); checks then apply to that site alone.
+    small_sites : {"error", "keep"}
+        A site with fewer than :data:`MIN_POINTS` points is an error (default), or is kept
+        (``"keep"``, for a hierarchical model that lets it borrow strength from the others; it
+        still needs 3 points, and at least one site must have :data:`MIN_POINTS`).
 
     Returns
     -------
@@ -116,6 +123,7 @@ def read_points(
     """
     check_choice(coords, COORDS, "--coords")
     check_choice(duplicates, DUPLICATES, "--duplicates")
+    check_choice(small_sites, SMALL_SITES, "--min-points")
     path = Path(path)
     src = str(path)
     if not path.is_file():
@@ -191,7 +199,7 @@ def read_points(
         numeric[xcol], numeric[ycol], numeric[vcol],
         site=sites, covariates={c: numeric[c] for c in covs}, rows=file_rows, attrs=attrs,
     )
-    return _finish(ds, src, duplicates)
+    return _finish(ds, src, duplicates, small_sites)
 
 
 def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None) -> xr.Dataset:
@@ -313,17 +321,27 @@ def _check_lonlat_ranges(xv, yv, rows, xcol, ycol, src) -> None:
             )
 
 
-def _finish(ds: xr.Dataset, src: str, duplicates: str) -> xr.Dataset:
+def _finish(ds: xr.Dataset, src: str, duplicates: str, small_sites: str = "error") -> xr.Dataset:
     ds = _handle_duplicates(ds, src, duplicates)
     vcol = ds.attrs.get("value_column", "value")
-    for label in sites_of(ds):
+    labels = sites_of(ds)
+    keep_small = small_sites == "keep" and len(labels) > 1
+    counts = {lb: int(np.sum(ds["site"].values == lb)) if lb else ds.sizes["obs"] for lb in labels}
+    if keep_small and max(counts.values()) < MIN_POINTS:
+        raise InputError(f"{src}: no site has {MIN_POINTS} points (largest: {max(counts.values())}); "
+                         "small sites can borrow strength only from larger ones")
+    for label in labels:
         part = ds if label == "" else ds.isel(obs=np.flatnonzero(ds["site"].values == label))
         where = "" if label == "" else f" at site {label!r}"
-        if part.sizes["obs"] < MIN_POINTS:
+        need = _POOLED_MIN if keep_small else MIN_POINTS
+        if part.sizes["obs"] < need:
+            hint = "" if keep_small or len(labels) == 1 else " (or --min-points pool to keep it in a hierarchical fit)"
             raise InputError(
                 f"{src}: only {part.sizes['obs']} points{where} (rows {format_rows(part['row'].values)}); "
-                f"a spatial analysis needs at least {MIN_POINTS} per site"
+                f"a spatial analysis needs at least {need} per site{hint}"
             )
+        if part.sizes["obs"] < MIN_POINTS:
+            continue  # a small pooled site may well have equal values
         v = part["value"].values
         if np.all(v == v[0]):
             raise InputError(f"{src}: every value in column {vcol!r}{where} equals {v[0]:g}; nothing varies to model")

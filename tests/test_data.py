@@ -143,3 +143,17 @@ def test_only_site_keeps_one_site(write_csv, grid_rows):
         read_points(path, value="conc", site="site", only_site="C")
     with pytest.raises(InputError, match="--only-site needs --site"):
         read_points(path, value="conc", only_site="A")
+
+
+def test_small_sites_kept_only_on_request(write_csv, grid_rows):
+    """A site under 10 points is an error naming --min-points pool; kept with small_sites='keep'
+    (it still needs 3 points, and some site must have 10)."""
+    rows = [grid_rows[0] + ["site"]] + [r + (["A"] if i < 20 else ["B"]) for i, r in enumerate(grid_rows[1:])]
+    path = write_csv(rows)
+    with pytest.raises(InputError, match=r"only 5 points at site 'B' .*--min-points pool"):
+        read_points(path, value="conc", site="site")
+    ds = read_points(path, value="conc", site="site", small_sites="keep")
+    assert int((ds["site"].values == "B").sum()) == 5
+    tiny = write_csv(rows[:21] + rows[-2:], name="tiny.csv")
+    with pytest.raises(InputError, match=r"only 2 points at site 'B'.*at least 3"):
+        read_points(tiny, value="conc", site="site", small_sites="keep")

@@ -37,6 +37,7 @@ def read_data(args):
         args.data, x=args.x, y=args.y, value=args.value, site=args.site, covariates=args.covariate,
         coords=args.coords, duplicates=args.duplicates, units=args.units,
         distance_units=args.distance_units, only_site=args.only_site,
+        small_sites="keep" if getattr(args, "min_points", "error") == "pool" else "error",
     )
 
 
