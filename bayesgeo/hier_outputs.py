@@ -532,9 +532,8 @@ def load_site_fit(directory) -> xr.DataTree:
         path = path / FIT_FILE
     if not path.is_file():
         raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit --site')")
-    try:
-        tree = xr.open_datatree(path, engine="netcdf4").load()
-    except Exception as err:  # noqa: BLE001 - any reader failure is bad input here
-        raise InputError(f"{path}: not a readable NetCDF file ({type(err).__name__}: {err})") from None
+    from bayesgeo.io import read_datatree
+
+    tree = read_datatree(path, what="NetCDF fit")
     site_spec(tree)
     return tree

@@ -23,7 +23,7 @@ def _umask() -> int:
     return mask
 
 
-__all__ = ["refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
+__all__ = ["read_datatree", "refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
 
 
 def refuse_existing(path: str | Path, overwrite: bool, option: str = "--overwrite") -> Path:
@@ -92,3 +92,20 @@ def write_netcdf(path: str | Path, obj, *, overwrite: bool = False) -> Path:
     with atomic_file(path, overwrite=overwrite) as tmp:
         obj.to_netcdf(tmp, engine="netcdf4")
     return Path(path)
+
+
+def read_datatree(path: str | Path, *, what: str = "NetCDF file"):
+    """Read a whole NetCDF ``DataTree`` into memory and close the file.
+
+    Closing matters: an HDF5 handle left open crashed a later reopen of the same file in one
+    process. Any reader failure becomes one :class:`InputError` line naming the file.
+    """
+    import xarray as xr
+
+    path = Path(path)
+    try:
+        with xr.open_datatree(path, engine="netcdf4") as handle:
+            return handle.load()
+    except Exception as err:  # noqa: BLE001 - netCDF4 raises OSError, ValueError, RuntimeError ...
+        msg = " ".join(str(err).split()) or type(err).__name__
+        raise InputError(f"{path}: cannot be read as a {what} ({msg})") from None

@@ -93,12 +93,9 @@ def open_fit(path: str | Path) -> xr.DataTree:
     file = path / FIT_FILE if path.is_dir() else path
     if not file.is_file():
         raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
-    try:
-        with xr.open_datatree(file, engine="netcdf4") as t:
-            tree = t.load()
-    except Exception as err:  # noqa: BLE001 - netCDF4 raises OSError, ValueError, RuntimeError ...
-        msg = " ".join(str(err).split()) or type(err).__name__
-        raise InputError(f"{file}: not a readable NetCDF fit ({msg})") from None
+    from bayesgeo.io import read_datatree
+
+    tree = read_datatree(file, what="NetCDF fit")
     fit_arrays(tree)  # refuse early what the checks cannot use
     return tree
 

@@ -31,7 +31,7 @@ import xarray as xr
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.data import sites_of
-from bayesgeo.io import atomic_dir
+from bayesgeo.io import atomic_dir, read_datatree
 from bayesgeo.model import FitSpec, build_model
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
@@ -404,11 +404,6 @@ def load_fit(directory: str | Path) -> xr.DataTree:
         path = path / FIT_FILE
     if not path.is_file():
         raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
-    try:
-        # Load and close: an open HDF5 handle left behind crashed a later reopen of the same file.
-        with xr.open_datatree(path, engine="netcdf4") as handle:
-            tree = handle.load()
-    except Exception as err:  # noqa: BLE001 - any reader failure is bad input here
-        raise InputError(f"{path}: not a readable NetCDF file ({type(err).__name__}: {err})") from None
+    tree = read_datatree(path, what="NetCDF fit")
     fit_spec(tree)
     return tree

@@ -26,8 +26,6 @@ def read_posterior(folder):
     """Open ``folder/posterior.nc`` as a DataTree (loaded into memory); InputError if impossible."""
     from pathlib import Path
 
-    import xarray as xr
-
     from bayesgeo.validate import InputError
 
     folder = Path(folder)
@@ -36,12 +34,9 @@ def read_posterior(folder):
     path = folder / POSTERIOR_FILE
     if not path.is_file():
         raise InputError(f"{path}: not found; run a fit into {folder} first")
-    try:
-        with xr.open_datatree(path, engine="netcdf4") as tree:
-            tree = tree.load()
-    except Exception as err:  # netCDF4 raises OSError, ValueError, RuntimeError ... for bad files
-        msg = " ".join(str(err).split()) or type(err).__name__
-        raise InputError(f"{path}: cannot be read as a NetCDF posterior ({msg})") from None
+    from bayesgeo.io import read_datatree
+
+    tree = read_datatree(path, what="NetCDF posterior")
     if "posterior" not in tree.children:
         raise InputError(f"{path}: no 'posterior' group; expected the output of a bayesgeo fit")
     return tree
