@@ -399,3 +399,31 @@ def test_complete_pooling_outputs_from_synthetic_draws():
     np.testing.assert_allclose(new["practical_range"], out["practical_range"].isel(site=0))
     np.testing.assert_allclose(new["nugget_ratio"], ratio)
     np.testing.assert_allclose(out["beta"].sel(term="1"), post["beta_z"].sel(term="1") * spec.value_sd + spec.value_mean)
+
+
+def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
+    """`bayesgeo map DIR --site NAME` maps one site of a saved several-site fit: its predictions
+    equal the prediction stage run on `site_fit(tree, NAME)` directly (the CLI is a thin shell);
+    without --site the command says which sites there are (exit 2, one line)."""
+    from bayesgeo.cli import main
+    from bayesgeo.hier_outputs import save_site_fit
+    from bayesgeo.hierarchical import site_fit
+    from bayesgeo.predict import basis_from_fit, predict_targets
+    from bayesgeo.targets import read_target_points
+
+    _, _, hier, _ = fits
+    out = tmp_path / "fit"
+    save_site_fit(hier, out)
+    pts = tmp_path / "pts.csv"
+    xy = hier["constant_data"]["x"].values[:3], hier["constant_data"]["y"].values[:3]
+    pts.write_text("x,y\n" + "".join(f"{a + 1.5},{b - 2.5}\n" for a, b in zip(*xy)))
+    assert main(["map", str(out), "--points", str(pts), "--json"]) == 2
+    assert "--site NAME (sites: P1, P2, P3)" in capsys.readouterr().err
+    code = main(["map", str(out), "--site", "P2", "--points", str(pts), "--draws", "40", "--no-figures",
+                 "--allow-unconverged", "--json"])
+    assert code == 0
+    capsys.readouterr()
+    got = xr.load_dataset(out / "predictions_P2.nc")
+    basis, spec, _ = basis_from_fit(site_fit(hier, "P2"), draws=40)
+    want = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous")
+    np.testing.assert_allclose(got["mean"].values, want["mean"].values, rtol=1e-10)

@@ -9,7 +9,7 @@ from collections.abc import Iterable
 
 import numpy as np
 
-__all__ = ["add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table"]
+__all__ = ["load_fit_folder", "add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table"]
 
 
 def add_data_options(p) -> None:
@@ -81,3 +81,36 @@ def print_table(rows: list[dict], columns: list[str], *, file=None, floatfmt: st
         print("  ".join(s.rjust(w) for s, w in zip(row, widths)), file=file)
         if k == 0:
             print("  ".join("-" * w for w in widths), file=file)
+
+
+def load_fit_folder(folder, site: str | None = None):
+    """The fit in ``folder`` as a single-site DataTree; from a several-site fit, the site ``site``.
+
+    Raises
+    ------
+    InputError
+        No readable fit; a several-site fit without ``--site``; ``--site`` on a single-site fit;
+        an unknown site (the message lists the known ones).
+    """
+    from pathlib import Path
+
+    from bayesgeo.io import read_datatree
+    from bayesgeo.posterior import FIT_FILE, fit_spec
+    from bayesgeo.validate import InputError
+
+    path = Path(folder)
+    path = path / FIT_FILE if path.is_dir() else path
+    if not path.is_file():
+        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
+    tree = read_datatree(path, what="NetCDF fit")
+    if json.loads(tree.attrs.get("settings", "{}")).get("format") == "bayesgeo several-site fit":
+        from bayesgeo.hierarchical import site_fit, site_spec
+
+        if site is None:
+            raise InputError(f"{folder}: a several-site fit; choose one site with --site NAME "
+                             f"(sites: {', '.join(site_spec(tree).sites)})")
+        return site_fit(tree, site)
+    if site is not None:
+        raise InputError(f"--site: {folder} holds a single-site fit; drop --site")
+    fit_spec(tree)
+    return tree

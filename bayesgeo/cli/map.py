@@ -38,6 +38,8 @@ def add_arguments(p) -> None:
     p.add_argument("--cell", type=float, metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
                    "along the longer side of the data's bounding box)")
     p.add_argument("--margin", type=float, default=0.0, metavar="M", help="widen the bounding box by M on every side")
+    p.add_argument("--site", metavar="NAME", default=None,
+                   help="with a several-site fit: map this site (outputs predictions_<NAME>.nc and maps_<NAME>/)")
     p.add_argument("--points", metavar="FILE", help="CSV of target points (columns x,y; plus any trend covariates) "
                    "instead of a grid")
     p.add_argument("--threshold", type=float, action="append", default=[], metavar="T",
@@ -89,14 +91,20 @@ def run(args) -> int:
     if args.simulate < 0:
         raise InputError(f"--simulate: expected an integer >= 0, got {args.simulate}")
     out_nc, out_maps = folder / PREDICTIONS_FILE, folder / MAPS_DIR
+    if args.site is not None:
+        import re
+
+        slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", args.site)
+        out_nc = folder / f"{Path(PREDICTIONS_FILE).stem}_{slug}.nc"
+        out_maps = folder / f"{MAPS_DIR}_{slug}"
     refuse_existing(out_nc, args.overwrite)
     if not args.no_figures:
         refuse_existing(out_maps, args.overwrite)
 
+    from bayesgeo.cli._common import load_fit_folder
     from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.posterior import load_fit
 
-    tree = load_fit(folder)
+    tree = load_fit_folder(folder, args.site)
     verdict = check_convergence(tree).verdict
     stored = json.loads(tree.attrs["diagnostics"]).get("verdict") if "diagnostics" in tree.attrs else None
     if stored == "fail":
