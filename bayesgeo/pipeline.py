@@ -111,6 +111,9 @@ def stage_commands(study: Study, root: str | Path) -> dict[str, list[str]]:
                "--draws", str(smp["draws"]), "--tune", str(smp["tune"]), "--chains", str(smp["chains"]),
                "--target-accept", repr(smp["target_accept"]), "--seed", str(smp["seed"]), "--sampler", smp["name"],
                "--out", str(fdir)]
+        fit += ["--approx", m["approx"]]
+        if m["neighbours"] is not None:
+            fit += ["--neighbours", str(m["neighbours"])]
         if fam == "matern":
             fit += ["--nu", repr(m["nu"])]
         if not m["nugget"]:
@@ -191,8 +194,8 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     out = Path(out) if out is not None else study.out_dir
     overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
     refuse_existing(out, overwrite)
-    if s["model"]["pooling"] != "single" or s["model"]["approx"] != "exact":  # pragma: no cover - schema refuses
-        raise InputError("only single-site models with the exact likelihood run from a study in this version")
+    if s["model"]["pooling"] != "single":  # pragma: no cover - schema refuses
+        raise InputError("only single-site models run from a study in this version")
     inputs = [study.path, s["data"]["path"]]
     for extra in (s["prediction"]["points"], s["prediction"]["area"]):
         if isinstance(extra, Path):

@@ -60,7 +60,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "covariates": ("str_list", [], None, "covariates in the trend (a subset of data.covariates)"),
         "transform": ("str", "none", ("none", "log"), "model the values or their natural logarithm"),
         "pooling": ("str", "single", ("single",), "several-site pooling (only 'single' in this version)"),
-        "approx": ("str", "exact", ("exact",), "likelihood ('exact' dense Gaussian in this version)"),
+        "approx": ("str", "auto", ("auto", "dense", "nn"),
+                   "likelihood: dense (exact), nn (nearest-neighbour approximation) or auto (dense up to 2,000 points)"),
         "neighbours": ("int", None, None, "neighbours of a nearest-neighbour likelihood (with approx = 'nn')"),
     },
     "model.priors": {
@@ -307,7 +308,7 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
     for key, pair in s["model.priors"].items():
         if pair is not None and not (pair[0] > 0 and 0 < pair[1] < 1):
             fail("model.priors", key, f"expected [positive number, probability in (0, 1)], got {pair}")
-    if s["model"]["approx"] == "exact" and s["model"]["neighbours"] is not None:
+    if s["model"]["approx"] == "dense" and s["model"]["neighbours"] is not None:
         fail("model", "neighbours", "neighbours applies to approx = 'nn' only")
     if not s["data"]["path"].exists():
         fail("data", "path", f"{s['data']['path']}: no such file")

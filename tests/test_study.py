@@ -120,3 +120,15 @@ def test_study_line_headers():
     assert study_line(text, "model", "trend") == 3
     assert study_line(text, "model.priors", "range") == 5
     assert study_line(text, "model", "nope") is None
+
+
+def test_approx_reaches_the_fit_command(study_dir):
+    """[model] approx / neighbours become the fit stage's --approx / --neighbours; neighbours with
+    the dense likelihood is refused, naming the key."""
+    from bayesgeo.pipeline import stage_commands
+
+    st = _parse(MINIMAL + 'approx = "nn"\nneighbours = 25\n', study_dir)
+    fit = stage_commands(st, study_dir / "run")["fit:matern32"]
+    assert fit[fit.index("--approx") + 1] == "nn" and fit[fit.index("--neighbours") + 1] == "25"
+    with pytest.raises(InputError, match="neighbours"):
+        _parse(MINIMAL + 'approx = "dense"\nneighbours = 25\n', study_dir)
