@@ -51,6 +51,7 @@ import xarray as xr
 
 from bayesgeo.autocorr import IAT_METHODS, iat_array, stack_parameters
 from bayesgeo.validate import InputError
+from bayesgeo.io import to_jsonable
 
 __all__ = ["CAUTION", "Convergence", "Thresholds", "check_convergence"]
 
@@ -211,7 +212,7 @@ class Convergence:
         ps = self.parameters
         cols = ("mean", "sd", "rhat", "ess_bulk", "ess_tail", "mcse_mean", "mcse_q05", "mcse_q95", "iat")
         params = {str(p): {c: _num(ps[c].values[i]) for c in cols} for i, p in enumerate(ps["parameter"].values)}
-        return _clean({
+        return to_jsonable({
             "verdict": self.verdict,
             "parameters": params,
             "divergences": self.divergences,
@@ -238,19 +239,6 @@ def _num(v):
     return v if math.isfinite(v) else None
 
 
-def _clean(obj):
-    """Plain Python types, NaN/inf -> None (strict JSON)."""
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _clean(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
 
 
 # --- per-parameter table ------------------------------------------------------------------------

@@ -21,6 +21,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.covariance import get_covariance
+from bayesgeo.io import to_jsonable
 
 __all__ = [
     "CAUTIONS",
@@ -348,28 +349,18 @@ def with_site_diagnostics(tree: xr.DataTree, diagnostics) -> xr.DataTree:
     from bayesgeo.hierarchical import site_cautions, site_spec
 
     out = tree.copy()
-    diag = _plain(dict(diagnostics))
+    diag = to_jsonable(dict(diagnostics))
     out.attrs["diagnostics"] = json.dumps(diag)
     out.attrs["cautions"] = json.dumps(site_cautions(site_spec(tree), tree["posterior"].to_dataset(), diag))
     return out
 
 
-def _plain(obj):
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, np.ndarray)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not np.isfinite(obj):
-        return None
-    return obj
 
 
 def table_rows(ds: xr.Dataset) -> list[dict]:
     """A shrinkage or design ``Dataset`` as a list of flat rows (one per site and parameter, or spacing)."""
     frame = ds.to_dataframe().reset_index()
-    return [{k: _plain(v) for k, v in row.items()} for row in frame.to_dict(orient="records")]
+    return [{k: to_jsonable(v) for k, v in row.items()} for row in frame.to_dict(orient="records")]
 
 
 def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, design: xr.Dataset | None = None,
@@ -427,7 +418,7 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
     if design is not None:
         out["design"] = {"rows": table_rows(design), "caution": design.attrs.get("caution", ""),
                          "kind": design.attrs.get("kind"), "neighbours": design.attrs.get("neighbours")}
-    return _plain(out)
+    return to_jsonable(out)
 
 
 def summary_text_sites(report: dict) -> str:

@@ -65,6 +65,7 @@ from bayesgeo.model import FitSpec, transform_values
 from bayesgeo.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError, check_choice, format_rows
+from bayesgeo.io import to_jsonable
 
 __all__ = [
     "POOLINGS",
@@ -178,7 +179,7 @@ class SiteSpec:
         for key in ("sites", "n", "small_sites", "covariates", "terms", "site_extents", "warnings"):
             d[key] = list(d[key])
         d["priors"] = self.priors.to_dict()
-        d["design_attrs"] = _jsonable(self.design_attrs)
+        d["design_attrs"] = to_jsonable(self.design_attrs)
         return d
 
     @classmethod
@@ -216,14 +217,6 @@ class SiteSpec:
         return self.sites.index(site)
 
 
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, np.ndarray)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        return obj.item()
-    return obj
 
 
 @dataclass(frozen=True)
@@ -290,7 +283,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         rows = np.asarray(part["row"].values)
         if n < MIN_POINTS:
             if min_points == "error" or n < ABSOLUTE_MIN_POINTS:
-                hint = (f"; pass --min-points pool (min_points='pool') to keep it in the hierarchical model"
+                hint = ("; pass --min-points pool (min_points='pool') to keep it in the hierarchical model"
                         if min_points == "error" and n >= ABSOLUTE_MIN_POINTS else "")
                 need = MIN_POINTS if min_points == "error" else ABSOLUTE_MIN_POINTS
                 raise InputError(f"{_source(ds)}: site {label!r} has only {n} points (rows {format_rows(rows)}); "
@@ -332,7 +325,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         pooling=pooling, sites=tuple(r[0] for r in raw), n=tuple(len(r[5]) for r in raw), small_sites=tuple(small),
         covariance=cov.name, nu=cov.nu, nugget=bool(nugget), trend=int(design0.attrs["order"]),
         covariates=tuple(design0.attrs["covariates"]), transform=transform, terms=tuple(design0.attrs["terms"]),
-        design_attrs={r[0]: _jsonable(dict(r[2].attrs)) for r in raw}, value_mean=vmean, value_sd=vsd,
+        design_attrs={r[0]: to_jsonable(dict(r[2].attrs)) for r in raw}, value_mean=vmean, value_sd=vsd,
         distance_scale=dscale, site_extents=tuple(extents), range_factor=float(cov.range_factor), metric=metric,
         distance_units=str(ds.attrs.get("distance_units", "")),
         value_units=str(ds.attrs.get("value_units", "") or ds["value"].attrs.get("units", "")),

@@ -23,7 +23,7 @@ def _umask() -> int:
     return mask
 
 
-__all__ = ["read_datatree", "refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
+__all__ = ["to_jsonable", "read_datatree", "refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
 
 
 def refuse_existing(path: str | Path, overwrite: bool, option: str = "--overwrite") -> Path:
@@ -73,6 +73,27 @@ def atomic_dir(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+
+
+def to_jsonable(obj):
+    """Plain Python types for ``json.dumps``: mappings, sequences and arrays recursively, numpy
+    scalars as Python numbers, NaN and infinities as ``None`` (strict JSON)."""
+    import math
+    from collections.abc import Mapping
+
+    import numpy as np
+
+    if isinstance(obj, Mapping):
+        return {str(k): to_jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [to_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return to_jsonable(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
 
 
 def write_text(path: str | Path, text: str, *, overwrite: bool = False) -> Path:

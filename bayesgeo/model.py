@@ -33,6 +33,7 @@ from bayesgeo.geometry import distance_matrix, metric_of
 from bayesgeo.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
+from bayesgeo.io import to_jsonable
 
 __all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "FitSpec", "build_model", "model_inputs", "transform_values"]
 
@@ -123,7 +124,7 @@ class FitSpec:
         d["covariates"] = list(self.covariates)
         d["terms"] = list(self.terms)
         d["priors"] = self.priors.to_dict()
-        d["design_attrs"] = _jsonable(self.design_attrs)
+        d["design_attrs"] = to_jsonable(self.design_attrs)
         return d
 
     @classmethod
@@ -141,14 +142,6 @@ class FitSpec:
         return json.dumps(self.to_dict())
 
 
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, np.ndarray)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        return obj.item()
-    return obj
 
 
 def _source(ds: xr.Dataset) -> str:
@@ -229,7 +222,7 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
     spec = FitSpec(
         covariance=cov.name, nu=cov.nu, nugget=bool(nugget), trend=int(design.attrs["order"]),
         covariates=tuple(design.attrs["covariates"]), transform=transform,
-        terms=tuple(design.attrs["terms"]), design_attrs=_jsonable(dict(design.attrs)),
+        terms=tuple(design.attrs["terms"]), design_attrs=to_jsonable(dict(design.attrs)),
         value_mean=vmean, value_sd=vsd, distance_scale=extent, range_factor=float(cov.range_factor),
         metric=metric, distance_units=str(ds.attrs.get("distance_units", "")),
         value_units=str(ds.attrs.get("value_units", "") or ds["value"].attrs.get("units", "")),

@@ -36,6 +36,7 @@ from bayesgeo.model import FitSpec, build_model
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
+from bayesgeo.io import to_jsonable
 
 __all__ = [
     "FIT_FILE",
@@ -235,21 +236,11 @@ def with_diagnostics(tree: xr.DataTree, diagnostics: Mapping) -> xr.DataTree:
     """A copy of ``tree`` carrying the diagnostics JSON (and cautions updated for its verdict)."""
     out = tree.copy()
     spec = fit_spec(tree)
-    out.attrs["diagnostics"] = json.dumps(_jsonable(dict(diagnostics)))
+    out.attrs["diagnostics"] = json.dumps(to_jsonable(dict(diagnostics)))
     out.attrs["cautions"] = json.dumps(cautions(spec, tree["posterior"].to_dataset(), diagnostics))
     return out
 
 
-def _jsonable(obj):
-    if isinstance(obj, Mapping):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple, np.ndarray)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not np.isfinite(obj):
-        return None
-    return obj
 
 
 def _scalar_names(post: xr.Dataset) -> list[str]:
@@ -298,7 +289,7 @@ def fit_report(tree: xr.DataTree) -> dict:
         params["nugget_ratio"] = {**zero, "units": "1", "fixed": True}
     smp = settings["sampler"]
     diag = json.loads(tree.attrs["diagnostics"]) if "diagnostics" in tree.attrs else None
-    return _jsonable({
+    return to_jsonable({
         "parameters": params,
         "sampler": {"name": smp["sampler"], "chains": smp["chains"], "draws": smp["draws"], "tune": smp["tune"],
                     "seed": smp["seed"], "seconds": smp["seconds"], "sampling_seconds": smp["sampling_seconds"],

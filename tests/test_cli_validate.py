@@ -1,9 +1,9 @@
 """Tests of ``bayesgeo validate`` (simulation-based calibration from the command line).
 
 The default-suite test runs the whole machinery on a tiny case (one model compilation, three
-replicates); the quick mode itself, whose coverage must fall inside binomial bounds, is marked
-slow (38 s on the idle 2-core test machine, about 9 minutes when other jobs load it heavily,
-most of it compiling the model). Default tests of this file: 21 s idle.
+replicates); the quick mode itself, whose coverage must fall inside binomial bounds, runs in the
+default suite too, so CI checks calibration on every submission (38 s on the idle 2-core test
+machine, most of it compiling the model).
 """
 
 from __future__ import annotations
@@ -66,7 +66,6 @@ def test_validate_refuses_bad_input(tmp_path, capsys, write_csv, grid_rows):
     assert code == 2 and "--replicates" in err
 
 
-@pytest.mark.slow
 def test_quick_mode_coverage_within_binomial_bounds(tmp_path, capsys):
     """Quick mode (28 points, 25 replicates, 2 x 200 draws): the number of replicates whose
     central 50% and 90% intervals cover the true practical range, partial sill, nugget and

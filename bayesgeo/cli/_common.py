@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import json
-import math
 import sys
 from collections.abc import Iterable
 
 import numpy as np
+from bayesgeo.io import to_jsonable
 
 __all__ = ["load_fit_folder", "add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table"]
 
@@ -41,19 +41,6 @@ def read_data(args):
     )
 
 
-def to_jsonable(obj):
-    """Convert numpy scalars/arrays (and NaN -> None) so json.dumps gives strict JSON."""
-    if isinstance(obj, dict):
-        return {str(k): to_jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [to_jsonable(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return to_jsonable(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
 
 
 def emit_json(obj) -> None:

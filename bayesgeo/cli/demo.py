@@ -10,6 +10,8 @@ not yet driven by study files in this version.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 HELP = "run a complete demo study on the invented Marrowby Works data (report.html at the end)"
 
 #: Parcel of the demo data used by the demo study, and the rectangle averaged over (m, local grid).
@@ -71,10 +73,9 @@ draws = {100 if quick else 300}
 '''
 
 
-def write_demo_inputs(folder, *, quick: bool = False) -> "Path":
+def write_demo_inputs(folder, *, quick: bool = False) -> Path:
     """Write the demo parcel's CSV and the demo study into ``folder``; return the study path."""
     import csv
-    from pathlib import Path
 
     from bayesgeo.demo import demo_data
 
