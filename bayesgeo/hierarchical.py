@@ -65,7 +65,7 @@ from bayesgeo.model import FitSpec, transform_values
 from bayesgeo.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError, check_choice, format_rows
-from bayesgeo.io import to_jsonable
+from bayesgeo.io import plain_attr, to_jsonable
 
 __all__ = [
     "POOLINGS",
@@ -509,7 +509,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     settings = {
         "format": "bayesgeo several-site fit", "format_version": 1, "model": spec.to_dict(),
         "sampler": sampler_settings, "versions": _versions(),
-        "data": {k: _plain(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs", "x_column",
+        "data": {k: plain_attr(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs", "x_column",
                                                            "y_column", "value_column", "site_column")},
     }
     tree.attrs = {"title": f"bayesgeo several-site Gaussian-process fit ({spec.pooling} pooling)",
@@ -517,13 +517,6 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
                   "cautions": json.dumps(site_cautions(spec, post))}
     return tree
 
-
-def _plain(v):
-    if isinstance(v, np.generic):
-        return v.item()
-    if isinstance(v, (list, tuple)):
-        return [_plain(x) for x in v]
-    return v if isinstance(v, (str, int, float)) or v is None else str(v)
 
 
 def _versions() -> dict:

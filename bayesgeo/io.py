@@ -23,7 +23,7 @@ def _umask() -> int:
     return mask
 
 
-__all__ = ["to_jsonable", "read_datatree", "refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
+__all__ = ["plain_attr", "to_jsonable", "read_datatree", "refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
 
 
 def refuse_existing(path: str | Path, overwrite: bool, option: str = "--overwrite") -> Path:
@@ -94,6 +94,18 @@ def to_jsonable(obj):
     if isinstance(obj, float) and not math.isfinite(obj):
         return None
     return obj
+
+
+def plain_attr(value):
+    """A value NetCDF attributes and JSON both take: numpy scalars as Python numbers, sequences
+    element-wise, anything else that is not str/int/float/None as its string."""
+    import numpy as np
+
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, (list, tuple)):
+        return [plain_attr(x) for x in value]
+    return value if isinstance(value, (str, int, float)) or value is None else str(value)
 
 
 def write_text(path: str | Path, text: str, *, overwrite: bool = False) -> Path:

@@ -31,12 +31,11 @@ import xarray as xr
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.data import sites_of
-from bayesgeo.io import atomic_dir, read_datatree
+from bayesgeo.io import atomic_dir, plain_attr, read_datatree, to_jsonable
 from bayesgeo.model import FitSpec, build_model
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
-from bayesgeo.io import to_jsonable
 
 __all__ = [
     "FIT_FILE",
@@ -211,7 +210,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     settings = {
         "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
         "model": spec.to_dict(), "sampler": sampler_settings, "versions": _versions(),
-        "data": {**{k: _plain(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs",
+        "data": {**{k: plain_attr(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs",
                                                               "x_column", "y_column", "value_column",
                                                               "site_column")},
                  "site": sites_of(ds)[0]},
@@ -223,13 +222,6 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
                   "cautions": json.dumps(cautions(spec, post))}
     return tree
 
-
-def _plain(v):
-    if isinstance(v, np.generic):
-        return v.item()
-    if isinstance(v, (list, tuple)):
-        return [_plain(x) for x in v]
-    return v if isinstance(v, (str, int, float)) or v is None else str(v)
 
 
 def with_diagnostics(tree: xr.DataTree, diagnostics: Mapping) -> xr.DataTree:
