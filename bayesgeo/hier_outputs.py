@@ -513,18 +513,9 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
 
 def load_site_fit(directory) -> xr.DataTree:
     """Read a several-site fit written by :func:`save_site_fit` (folder or its ``posterior.nc``)."""
-    from pathlib import Path
-
     from bayesgeo.hierarchical import site_spec
-    from bayesgeo.validate import InputError
+    from bayesgeo.posterior import read_fit_file
 
-    path = Path(directory)
-    if path.is_dir():
-        path = path / FIT_FILE
-    if not path.is_file():
-        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit --site')")
-    from bayesgeo.io import read_datatree
-
-    tree = read_datatree(path, what="NetCDF fit")
+    tree = read_fit_file(directory, written_by="bayesgeo fit --site")
     site_spec(tree)
     return tree

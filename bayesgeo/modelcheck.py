@@ -87,15 +87,9 @@ def open_fit(path: str | Path) -> xr.DataTree:
     InputError
         Missing folder or file, or a file that is not a readable single-site fit.
     """
-    from bayesgeo.posterior import FIT_FILE
+    from bayesgeo.posterior import read_fit_file
 
-    path = Path(path)
-    file = path / FIT_FILE if path.is_dir() else path
-    if not file.is_file():
-        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
-    from bayesgeo.io import read_datatree
-
-    tree = read_datatree(file, what="NetCDF fit")
+    tree = read_fit_file(path)
     fit_arrays(tree)  # refuse early what the checks cannot use
     return tree
 

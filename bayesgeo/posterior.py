@@ -380,13 +380,24 @@ def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = Fals
     return Path(directory)
 
 
-def load_fit(directory: str | Path) -> xr.DataTree:
-    """Read a fit written by :func:`save_fit` (``directory`` or the ``posterior.nc`` inside it)."""
+def read_fit_file(directory: str | Path, *, written_by: str = "bayesgeo fit") -> xr.DataTree:
+    """Read ``directory/posterior.nc`` (or the file ``directory`` itself) into memory, closed.
+
+    Raises
+    ------
+    InputError
+        No such file (naming the command that writes it), or a file NetCDF cannot read.
+    """
     path = Path(directory)
     if path.is_dir():
         path = path / FIT_FILE
     if not path.is_file():
-        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
-    tree = read_datatree(path, what="NetCDF fit")
+        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by '{written_by}')")
+    return read_datatree(path, what="NetCDF fit")
+
+
+def load_fit(directory: str | Path) -> xr.DataTree:
+    """Read a fit written by :func:`save_fit` (``directory`` or the ``posterior.nc`` inside it)."""
+    tree = read_fit_file(directory)
     fit_spec(tree)
     return tree

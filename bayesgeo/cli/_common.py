@@ -79,17 +79,10 @@ def load_fit_folder(folder, site: str | None = None):
         No readable fit; a several-site fit without ``--site``; ``--site`` on a single-site fit;
         an unknown site (the message lists the known ones).
     """
-    from pathlib import Path
-
-    from bayesgeo.io import read_datatree
-    from bayesgeo.posterior import FIT_FILE, fit_spec
+    from bayesgeo.posterior import fit_spec, read_fit_file
     from bayesgeo.validate import InputError
 
-    path = Path(folder)
-    path = path / FIT_FILE if path.is_dir() else path
-    if not path.is_file():
-        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by 'bayesgeo fit')")
-    tree = read_datatree(path, what="NetCDF fit")
+    tree = read_fit_file(folder)
     if json.loads(tree.attrs.get("settings", "{}")).get("format") == "bayesgeo several-site fit":
         from bayesgeo.hierarchical import site_fit, site_spec
 
