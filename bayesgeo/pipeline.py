@@ -3,22 +3,32 @@
 :func:`run_study` drives the stage commands in order, in-process, with the settings of a
 :class:`~bayesgeo.study.Study`; each stage is exactly the code behind its own command
 (``bayesgeo explore``, ``fit``, ``check``, ``variogram-check``, ``map``, ``compare``), so a run
-and a sequence of commands give the same files and numbers. The pipeline therefore sits beside
-the command line, at the end of the stage order.
+and a sequence of commands give the same files and numbers (:func:`stage_commands` lists them).
+The pipeline therefore sits beside the command line, at the end of the stage order.
 
 Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.io.atomic_dir`)::
 
-    inputs/            copies of the study file and the data (and target points, area polygon)
-    explore/           exploratory semivariogram, correlogram, directions, quick fits (explore.json)
+    inputs/            copies of the study file and the data (and target points, area polygons)
+    explore/           exploratory semivariogram, correlogram, directions, quick fits (explore.json);
+                       several sites: one sub-folder per site
     fits/<family>/     posterior.nc, summary.csv/.txt, fit.json, diagnostics/, variogram_check.*,
                        predictions.nc, maps/
+                       several sites: variogram_check_<site>.*, predictions_<site>.nc, maps_<site>/,
+                       shrinkage.csv/.png, design.csv/.png (fit.json holds the population and new-site blocks)
     compare/           comparison.csv, pointwise.csv, loo_pit.png, comparison.json (several families)
-    predictions.nc     the predictions of the selected fit (best by PSIS-LOO, or the only one)
+    predictions.nc     the predictions of the selected fit (best by PSIS-LOO, or the only one);
+                       several sites: predictions_<site>.nc
     figures/*.png      every figure of the run, prefixed by its stage
     tables/*.csv       every table of the run, prefixed by its stage
     report.html        the self-contained report (bayesgeo.report)
     manifest.json      inputs with SHA-256, study text, versions, platform, seeds, command line,
                        times, stage verdicts and the SHA-256 of every output
+
+A several-site study (``[data] site`` and ``[model] pooling`` hierarchical, independent or
+complete) runs ``explore --site COL`` once (one sub-folder per site), ``fit --site COL
+--pooling P`` once per family, ``check`` on the whole fit, then ``variogram-check --site NAME``
+and ``map --site NAME`` for every site (each site's grid around its own points; an area goes to
+the site it lies in, :func:`site_areas`).
 
 Exit status of a run: 0 done; 3 a fit failed its convergence check (later stages skipped; the
 report is written and marked NOT CONVERGED); 1 a stage failed unexpectedly (recorded in the
@@ -32,6 +42,7 @@ import gc
 import html
 import io
 import json
+import re
 import shutil
 import sys
 import time
@@ -40,10 +51,10 @@ from pathlib import Path
 
 from bayesgeo.io import atomic_dir, refuse_existing, write_json
 from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
-from bayesgeo.study import Study, read_study
+from bayesgeo.study import Study, areas_of, read_study, study_line
 from bayesgeo.validate import InputError
 
-__all__ = ["run_study", "stage_commands", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
+__all__ = ["run_study", "stage_commands", "study_sites", "site_areas", "site_slug", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
 
 EXIT_OK = 0
 EXIT_STAGE_FAILED = 1
@@ -89,66 +100,176 @@ def _data_options(s: dict) -> list[str]:
     return out
 
 
-def stage_commands(study: Study, root: str | Path) -> dict[str, list[str]]:
+def site_slug(site: str) -> str:
+    """The file-name form of a site label used by ``map --site`` and ``variogram-check --site``."""
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(site))
+
+
+def study_sites(study: Study) -> dict[str, "object"]:
+    """Site label -> (n, 2) coordinates of that site's points, in file order (reads the study's data)."""
+    import numpy as np
+
+    from bayesgeo.data import read_points, sites_of
+
+    d = study.settings["data"]
+    ds = read_points(d["path"], x=d["x"], y=d["y"], value=d["value"], site=d["site"], covariates=d["covariates"],
+                     coords=d["coords"], duplicates=d["duplicates"], units=d["units"],
+                     distance_units=d["distance_units"])
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    labels = ds["site"].values if "site" in ds.coords else np.array([""] * len(xy))
+    return {lb: xy[labels == lb] for lb in sites_of(ds)}
+
+
+def _area_arg(area) -> str:
+    return str(area) if isinstance(area, Path) else ",".join(repr(v) for v in area)
+
+
+def site_areas(study: Study, sites: dict) -> dict[str, object]:
+    """Site -> the ``[prediction] area`` averaged over at that site (a path or a rectangle).
+
+    A table ``{site = area}`` names the site; an area given alone or in a list goes to the site
+    whose bounding box (of its sample points) holds the area's centre.
+
+    Raises
+    ------
+    InputError
+        An unknown site, an area in no site's bounding box, or two areas for one site (``map``
+        averages over one area per site); the message names the study file and line.
+    """
+    import numpy as np
+
+    from bayesgeo.targets import area_from_option
+
+    area = study.settings["prediction"]["area"]
+    line = study_line(study.text, "prediction", "area")
+    where = f"{study.path}, line {line}: [prediction] area" if line else f"{study.path}: [prediction] area"
+    if isinstance(area, dict):
+        unknown = [k for k in area if k not in sites]
+        if unknown:
+            raise InputError(f"{where}: unknown site(s) {', '.join(unknown)}; sites: {', '.join(sites)}")
+        return dict(area)
+    out: dict[str, object] = {}
+    for a in areas_of(area):
+        vertices, label = area_from_option(_area_arg(a))
+        centre = np.asarray(vertices, float).mean(axis=0)
+        inside = [lb for lb, xy in sites.items()
+                  if np.all(centre >= xy.min(axis=0)) and np.all(centre <= xy.max(axis=0))]
+        if not inside:
+            raise InputError(f"{where}: the centre of {label} lies in no site's sampled bounding box; name the site "
+                             "with a table, e.g. area = {site-name = [xmin, ymin, xmax, ymax]}")
+        if inside[0] in out:
+            raise InputError(f"{where}: two areas fall in site {inside[0]}; one area per site in this version")
+        out[inside[0]] = a
+    return out
+
+
+def _map_options(pr: dict) -> list[str]:
+    mp = ["--margin", repr(pr["margin"]), "--draws", str(pr["draws"]), "--nugget", pr["nugget"],
+          "--seed", str(pr["seed"]), "--scheduler", "synchronous"]
+    if pr["cell"] is not None:
+        mp += ["--cell", repr(pr["cell"])]
+    if pr["points"] is not None:
+        mp += ["--points", str(pr["points"])]
+    for t in pr["thresholds"]:
+        mp += ["--threshold", repr(t)]
+    if pr["hull_mask"]:
+        mp += ["--hull-mask"]
+    return mp
+
+
+def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, list[str]]:
     """The command line of every stage of ``study`` writing under ``root``, keyed by stage name.
 
     Keys: ``explore``, ``fit:<family>``, ``check:<family>``, ``variogram-check:<family>``,
-    ``map:<family>``, and ``compare`` (several families). Useful to re-run one stage by hand.
+    ``map:<family>``, and ``compare`` (several families). In a several-site study the variogram
+    check and the map run once per site: ``variogram-check:<family>:<site>`` and
+    ``map:<family>:<site>``. ``sites`` (from :func:`study_sites`) is read from the data when
+    omitted. Useful to re-run one stage by hand.
     """
+    if study.several_sites:
+        return _site_commands(study, Path(root), study_sites(study) if sites is None else sites)
     s, root = study.settings, Path(root)
-    e, m, smp, pr, ck = s["explore"], s["model"], s["sampler"], s["prediction"], s["check"]
+    m, pr, ck, e = s["model"], s["prediction"], s["check"], s["explore"]
     data = _data_options(s)
-    cmds: dict[str, list[str]] = {}
-    ex = ["explore", *data, "--trend", str(e["trend"]), "--transform", e["transform"], "--bins", str(e["bins"]),
-          "--permutations", str(e["permutations"]), "--estimator", e["estimator"], "--seed", str(e["seed"]),
-          "--out", str(root / "explore")]
-    if e["max_lag"] is not None:
-        ex += ["--max-lag", repr(e["max_lag"])]
-    cmds["explore"] = ex
+    cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
+    areas = areas_of(pr["area"])
     for fam in study.families:
         fdir = root / "fits" / fam
-        fit = ["fit", *data, "--covariance", fam, "--trend", str(m["trend"]), "--transform", m["transform"],
-               "--draws", str(smp["draws"]), "--tune", str(smp["tune"]), "--chains", str(smp["chains"]),
-               "--target-accept", repr(smp["target_accept"]), "--seed", str(smp["seed"]), "--sampler", smp["name"],
-               "--out", str(fdir)]
-        fit += ["--approx", m["approx"]]
+        fit = ["fit", *data, *_fit_options(study, fam), "--out", str(fdir), "--approx", m["approx"]]
         if m["neighbours"] is not None:
             fit += ["--neighbours", str(m["neighbours"])]
-        if fam == "matern":
-            fit += ["--nu", repr(m["nu"])]
-        if not m["nugget"]:
-            fit += ["--no-nugget"]
-        for key, opt in (("range", "--prior-range"), ("sd", "--prior-sd"), ("nugget", "--prior-nugget")):
-            pair = s["model.priors"][key]
-            if pair is not None:
-                fit += [opt, repr(pair[0]), repr(pair[1])]
         cmds[f"fit:{fam}"] = fit
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         cmds[f"variogram-check:{fam}"] = ["variogram-check", str(fdir), "--replicates", str(ck["replicates"]),
                                           "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
-        mp = ["map", str(fdir), "--margin", repr(pr["margin"]), "--draws", str(pr["draws"]), "--nugget", pr["nugget"],
-              "--seed", str(pr["seed"]), "--scheduler", "synchronous"]
-        if pr["cell"] is not None:
-            mp += ["--cell", repr(pr["cell"])]
-        if pr["points"] is not None:
-            mp += ["--points", str(pr["points"])]
-        for t in pr["thresholds"]:
-            mp += ["--threshold", repr(t)]
-        area = pr["area"]
-        if area is not None:
-            mp += ["--area", str(area) if isinstance(area, Path) else ",".join(repr(v) for v in area)]
-        if pr["hull_mask"]:
-            mp += ["--hull-mask"]
+        mp = ["map", str(fdir), *_map_options(pr)]
+        if areas:
+            mp += ["--area", _area_arg(areas[0])]
         cmds[f"map:{fam}"] = mp
     if len(study.families) > 1:
         cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
     return cmds
 
 
+def _explore_command(study: Study, root: Path, data: list[str]) -> list[str]:
+    e = study.settings["explore"]
+    ex = ["explore", *data, "--trend", str(e["trend"]), "--transform", e["transform"], "--bins", str(e["bins"]),
+          "--permutations", str(e["permutations"]), "--estimator", e["estimator"], "--seed", str(e["seed"]),
+          "--out", str(root / "explore")]
+    if e["max_lag"] is not None:
+        ex += ["--max-lag", repr(e["max_lag"])]
+    return ex
+
+
+def _fit_options(study: Study, fam: str) -> list[str]:
+    s = study.settings
+    m, smp = s["model"], s["sampler"]
+    fit = ["--covariance", fam, "--trend", str(m["trend"]), "--transform", m["transform"],
+           "--draws", str(smp["draws"]), "--tune", str(smp["tune"]), "--chains", str(smp["chains"]),
+           "--target-accept", repr(smp["target_accept"]), "--seed", str(smp["seed"]), "--sampler", smp["name"]]
+    if fam == "matern":
+        fit += ["--nu", repr(m["nu"])]
+    if not m["nugget"]:
+        fit += ["--no-nugget"]
+    for key, opt in (("range", "--prior-range"), ("sd", "--prior-sd"), ("nugget", "--prior-nugget")):
+        pair = s["model.priors"][key]
+        if pair is not None:
+            fit += [opt, repr(pair[0]), repr(pair[1])]
+    return fit
+
+
+def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]]:
+    """Stage commands of a several-site study (see :func:`stage_commands`)."""
+    s = study.settings
+    ck, pr, e = s["check"], s["prediction"], s["explore"]
+    data = _data_options(s)
+    areas = site_areas(study, sites)
+    cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
+    for fam in study.families:
+        fdir = root / "fits" / fam
+        cmds[f"fit:{fam}"] = ["fit", *data, *_fit_options(study, fam), "--pooling", s["model"]["pooling"],
+                              "--out", str(fdir)]
+        cmds[f"check:{fam}"] = ["check", str(fdir)]
+        for site in sites:
+            cmds[f"variogram-check:{fam}:{site}"] = [
+                "variogram-check", str(fdir), "--site", site, "--replicates", str(ck["replicates"]),
+                "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
+        for site in sites:
+            mp = ["map", str(fdir), "--site", site, *_map_options(pr)]
+            if site in areas:
+                mp += ["--area", _area_arg(areas[site])]
+            cmds[f"map:{fam}:{site}"] = mp
+    if len(study.families) > 1:
+        # TODO(lead): several-site compare lands with the compare helper's work; until then this stage may fail
+        cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
+    return cmds
+
+
 def _copy_outputs(root: Path, selected: str | None) -> None:
-    """Top-level predictions.nc (selected fit), figures/ and tables/ gathering every PNG and CSV."""
-    if selected and (root / "fits" / selected / "predictions.nc").is_file():
-        shutil.copy2(root / "fits" / selected / "predictions.nc", root / "predictions.nc")
+    """Top-level predictions (selected fit), figures/ and tables/ gathering every PNG and CSV."""
+    if selected:
+        for p in sorted((root / "fits" / selected).glob("predictions*.nc")):
+            shutil.copy2(p, root / p.name)
     (root / "figures").mkdir(exist_ok=True)
     (root / "tables").mkdir(exist_ok=True)
     for ext, dest in (("png", "figures"), ("csv", "tables")):
@@ -194,10 +315,9 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     out = Path(out) if out is not None else study.out_dir
     overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
     refuse_existing(out, overwrite)
-    if s["model"]["pooling"] != "single":  # pragma: no cover - schema refuses
-        raise InputError("only single-site models run from a study in this version")
+    sites = study_sites(study) if study.several_sites else {}
     inputs = [study.path, s["data"]["path"]]
-    for extra in (s["prediction"]["points"], s["prediction"]["area"]):
+    for extra in (s["prediction"]["points"], *areas_of(s["prediction"]["area"])):
         if isinstance(extra, Path):
             inputs.append(extra)
     manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
@@ -211,12 +331,8 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             name = "study.toml" if k == 0 else p.name
             if not (tmp / "inputs" / name).exists():
                 shutil.copy2(p, tmp / "inputs" / name)
-        cmds = stage_commands(study, tmp)
-        order = ["explore"]
-        for fam in fams:
-            order += [f"fit:{fam}", f"check:{fam}", f"variogram-check:{fam}", f"map:{fam}"]
-        if "compare" in cmds:
-            order.append("compare")
+        cmds = stage_commands(study, tmp, sites=sites or None)
+        order = list(cmds)  # explore, then per family: fit, check, variogram checks, maps; compare last
         n_stages = len(order) + 1
         stop = False
         for k, name in enumerate(order, 1):

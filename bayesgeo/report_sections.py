@@ -8,7 +8,6 @@ failed) says so in a visible box instead of showing anything made up.
 from __future__ import annotations
 
 import base64
-import contextlib
 import html
 import io
 import json
@@ -18,6 +17,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+
+from bayesgeo.report_priors import prior_posterior_figure, prior_sensitivity
 
 __all__ = ["context", "SECTIONS", "img_tag", "html_table", "prior_sensitivity", "prior_posterior_figure"]
 
@@ -61,6 +62,8 @@ class Ctx:
     fams: list[Fam] = field(default_factory=list)
     not_converged: bool = False
     failed: list[str] = field(default_factory=list)
+    several: bool = False
+    sites: list[str] = field(default_factory=list)
 
 
 def _read_json(path: Path) -> dict | None:
@@ -100,6 +103,11 @@ def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:
     ctx.not_converged = any(v == "NOT CONVERGED" or v == "fail" for k, v in verdicts.items()
                             if k.startswith(("check:", "fit:")))
     ctx.failed = [k for k, v in verdicts.items() if v == "failed"]
+    ctx.several = settings.get("model", {}).get("pooling", "single") not in ("single", None)
+    if ctx.several:
+        from bayesgeo.report_sites import read_sites
+
+        ctx.sites = read_sites(ctx)
     return ctx
 
 
@@ -161,6 +169,7 @@ def _section(anchor: str, title: str, body: str) -> str:
 
 TOC = (("job", "Job and data"), ("explore", "Exploratory analysis"), ("model", "Model and priors"),
        ("diagnostics", "Convergence diagnostics"), ("posterior", "Posterior: range, sills, nugget"),
+       ("sites", "Sites: shrinkage and sampling design"),
        ("priors", "Prior against posterior and prior sensitivity"), ("vgcheck", "Posterior predictive variogram check"),
        ("maps", "Predictive and exceedance maps"), ("compare", "Model comparison"),
        ("cautions", "Limitations and cautions"), ("repro", "Reproducibility appendix"))
@@ -185,7 +194,7 @@ def header(ctx: Ctx) -> str:
 
 
 def contents(ctx: Ctx) -> str:
-    items = "".join(f"<li><a href=\"#{a}\">{esc(t)}</a></li>" for a, t in TOC)
+    items = "".join(f"<li><a href=\"#{a}\">{esc(t)}</a></li>" for a, t in TOC if a != "sites" or ctx.several)
     return f"<nav><ol>{items}</ol></nav>"
 
 
@@ -323,6 +332,13 @@ def model(ctx: Ctx) -> str:
     out.append("<table><tr><th class=\"l\">family</th><th class=\"l\">correlation function</th></tr>"
                + "".join(f"<tr><td class=\"l\">{esc(r['family'])}</td><td class=\"l\">{r['formula']}</td></tr>"
                          for r in rows) + "</table>")
+    if ctx.several:
+        out.append(f"<p>Several sites ({esc(', '.join(ctx.sites))}), pooling <b>{esc(s.get('pooling'))}</b>: "
+                   + {"hierarchical": "each site has its own range, sills, nugget and mean, drawn from a population "
+                                      "whose centre and spread are estimated (partial pooling).",
+                      "independent": "each site is fitted on its own (no sharing between sites).",
+                      "complete": "all sites share one range, sill and nugget; each keeps its own mean."}.get(
+                          s.get("pooling"), "") + " Prediction at a site conditions on that site's points only.</p>")
     out.append(f"<p>Transform: {esc(s.get('transform'))}; trend: polynomial of order {s.get('trend')} in the "
                f"coordinates{'; covariates ' + esc(', '.join(s.get('covariates'))) if s.get('covariates') else ''}; "
                f"nugget: {'yes' if s.get('nugget') else 'no (τ² = 0)'}.</p>")
@@ -333,6 +349,10 @@ def model(ctx: Ctx) -> str:
                "β (standardised) ~ N(0, b²) independently</span>")
     if f0 is None:
         out.append(gap("not available: no fit completed, so the resolved prior values are unknown"))
+    elif ctx.several:
+        out.append("<p>In the several-site model these statements set the population (hierarchical pooling) or "
+                   "each site's prior (independent pooling); the nugget enters as a fraction of the sill. The "
+                   "resolved values and hyperpriors are in the fit's fit.json and in the prior section below.</p>")
     else:
         p = f0.report["model"]["priors"]
         m = f0.report["model"]
@@ -403,6 +423,11 @@ def posterior(ctx: Ctx) -> str:
             continue
         if f.report.get("converged") is False:
             out.append("<div class=\"banner\">NOT CONVERGED: do not use these numbers.</div>")
+        if ctx.several:
+            from bayesgeo.report_sites import site_posterior
+
+            out.append(site_posterior(ctx, f))
+            continue
         ps = f.report["parameters"]
         rows = [{"parameter": k, **ps[k]} for k in _POSTERIOR_ROWS if k in ps]
         rows += [{"parameter": k, **v} for k, v in ps.items() if k.startswith("beta")]
@@ -414,119 +439,6 @@ def posterior(ctx: Ctx) -> str:
     return _section("posterior", "Posterior: range, sills, nugget", "\n".join(out))
 
 
-def _log_prior(post, spec) -> np.ndarray:
-    """log prior density per draw (chain, draw), up to a constant, in the sampled parametrisation."""
-    from scipy import stats
-
-    from bayesgeo.priors import pc_range_logpdf, pc_sd_logpdf
-
-    p = spec.priors
-    lp = pc_range_logpdf(post["practical_range"].values, *p.range)
-    lp = lp + pc_sd_logpdf(np.sqrt(post["partial_sill"].values), *p.sd)
-    if spec.nugget and "nugget" in post:
-        lp = lp + pc_sd_logpdf(np.sqrt(post["nugget"].values), *p.nugget)
-    if "beta_z" in post and p.beta_sd:
-        bz = post["beta_z"].values
-        lp = lp + stats.norm.logpdf(bz, 0.0, p.beta_sd).reshape(bz.shape[0], bz.shape[1], -1).sum(axis=-1)
-    return lp
-
-
-def _log_lik(tree, spec, max_draws: int | None = None) -> np.ndarray:
-    """Joint Gaussian log-likelihood per draw (chain, draw) of the modelled values."""
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.geometry import distance_matrix
-    from bayesgeo.likelihood import loglik_numpy
-
-    post = tree["posterior"].to_dataset()
-    const = tree["constant_data"].to_dataset()
-    z = np.asarray(tree["observed_data"]["value"].values, float)
-    if spec.transform == "log":
-        z = np.log(z)
-    xy = np.column_stack([const["x"].values, const["y"].values]).astype(float)
-    design = np.asarray(const["design"].values, float)
-    dist = distance_matrix(xy, spec.metric)
-    cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
-    nc, nd = post.sizes["chain"], post.sizes["draw"]
-    beta = post["beta"].values.reshape(nc, nd, -1)
-    scale, psill = post["scale"].values, post["partial_sill"].values
-    nug = post["nugget"].values if "nugget" in post else np.zeros((nc, nd))
-    out = np.empty((nc, nd))
-    for c in range(nc):
-        for d in range(nd):
-            out[c, d] = loglik_numpy(z - design @ beta[c, d], dist, cov, float(scale[c, d]), float(psill[c, d]),
-                                     float(nug[c, d]))
-    return out
-
-
-def prior_sensitivity(tree) -> list[dict] | str:
-    """Power-scaling prior and likelihood sensitivity (Kallioinen, Paananen, Bürkner and Vehtari 2023).
-
-    The log prior per draw is the sum of the PC prior log densities of the practical range, the field sd
-    and the nugget sd and of the Normal log densities of the standardised trend coefficients; the log
-    likelihood per draw is the joint Gaussian log density of the modelled values. Both go to
-    ``arviz.psense_summary``. Returns its rows, or a one-line reason when it cannot be computed.
-    """
-    import arviz as az
-    import xarray as xr
-
-    from bayesgeo.posterior import fit_spec
-
-    try:
-        spec = fit_spec(tree)
-        post = tree["posterior"].to_dataset()
-        lp = _log_prior(post, spec)
-        ll = _log_lik(tree, spec)
-        if not (np.all(np.isfinite(lp)) and np.all(np.isfinite(ll))):
-            return "not computed: non-finite log prior or log likelihood in some draws"
-        names = [n for n in ("practical_range", "partial_sill", "nugget", "total_sill", "microergodic") if n in post]
-        dims = ("chain", "draw")
-        dt = xr.DataTree.from_dict({
-            "/posterior": post[names],
-            "/log_prior": xr.Dataset({"prior": (dims, lp)}, coords={d: post[d] for d in dims}),
-            "/log_likelihood": xr.Dataset({"value": ((*dims, "obs"), ll[..., None])},
-                                          coords={d: post[d] for d in dims}),
-        })
-        with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
-            # ArviZ prints advice with a web address; the report explains the table itself
-            table = az.psense_summary(dt, var_names=names, round_to=6)
-    except Exception as err:  # noqa: BLE001 - shown in the report as the reason
-        return f"not computed: {type(err).__name__}: {' '.join(str(err).split())[:200]}"
-    frame = table.to_dataframe() if hasattr(table, "to_dataframe") else table
-    rows = []
-    for idx, r in frame.iterrows():
-        rows.append({"parameter": str(idx), **{str(k): (float(v) if isinstance(v, (int, float, np.number)) else str(v))
-                                               for k, v in r.items()}})
-    return rows
-
-
-def prior_posterior_figure(tree):
-    """Prior and posterior densities of practical range, partial sill and nugget (histograms)."""
-    import matplotlib.pyplot as plt
-
-    from bayesgeo.posterior import fit_spec
-    from bayesgeo.priors import prior_draws
-
-    spec = fit_spec(tree)
-    post = tree["posterior"].to_dataset()
-    pri = prior_draws(spec.priors, draws=20000, nugget=spec.nugget, seed=0)
-    pri = {"practical_range": pri["practical_range"], "partial_sill": pri["sd"] ** 2, "nugget": pri["nugget_sd"] ** 2}
-    names = [n for n in ("practical_range", "partial_sill", "nugget") if n in post]
-    fig, axes = plt.subplots(1, len(names), figsize=(3.4 * len(names), 3.2), layout="constrained")
-    for ax, n in zip(np.atleast_1d(axes), names):
-        x = post[n].values.ravel()
-        hi = float(np.quantile(x, 0.995)) * 1.6
-        lo = 0.0
-        bins = np.linspace(lo, hi, 50)
-        ax.hist(np.clip(pri[n], lo, hi * 2), bins=bins, density=True, alpha=0.45, color="grey", label="prior")
-        ax.hist(x, bins=bins, density=True, alpha=0.7, color="C0", label="posterior")
-        ax.set_xlim(lo, hi)
-        ax.set_xlabel(f"{n.replace('_', ' ')} [{post[n].attrs.get('units', '')}]", fontsize=8)
-        ax.set_yticks([])
-    np.atleast_1d(axes)[0].legend(fontsize=8)
-    fig.suptitle("Prior (grey) against posterior (blue)", fontsize=10)
-    return fig
-
-
 def priors(ctx: Ctx) -> str:
     out = []
     for f in ctx.fams:
@@ -534,6 +446,14 @@ def priors(ctx: Ctx) -> str:
         if f.tree is None:
             out.append(gap("not available: " + (f"the fit could not be read ({f.error})" if f.error
                                                  else "no fit for this family")))
+            continue
+        if ctx.several:
+            from bayesgeo.report_sites import site_priors
+
+            if (f.folder / "prior_check.png").is_file():
+                out.append(img_tag(f.folder / "prior_check.png", f"prior predictive check, {f.name}",
+                                   "Prior predictive check"))
+            out.append(site_priors(ctx, f))
             continue
         if (f.folder / "prior_check.png").is_file():
             out.append(img_tag(f.folder / "prior_check.png", f"prior predictive check, {f.name}",
@@ -562,6 +482,11 @@ def vgcheck(ctx: Ctx) -> str:
     out = []
     for f in ctx.fams:
         out.append(f"<h3>{esc(f.name)}</h3>")
+        if ctx.several:
+            from bayesgeo.report_sites import site_vgcheck
+
+            out.append(site_vgcheck(ctx, f))
+            continue
         png, csv = f.folder / "variogram_check.png", f.folder / "variogram_check.csv"
         if not png.is_file():
             out.append(gap("not available: the variogram check did not run for this family (skipped or failed)"))
@@ -578,34 +503,25 @@ def vgcheck(ctx: Ctx) -> str:
 
 
 def maps(ctx: Ctx) -> str:
+    from bayesgeo.report_sites import map_block, site_maps
+
     out = []
     for f in ctx.fams:
         out.append(f"<h3>{esc(f.name)}</h3>")
-        pngs = sorted((f.folder / "maps").glob("*.png"))
-        if not (f.folder / "predictions.nc").is_file():
-            out.append(gap("not available: the map stage did not run for this family (skipped or failed)"))
-            continue
-        for p in sorted(pngs, key=lambda p: (not p.name.startswith("mean"), not p.name.startswith("sd"), p.name)):
-            out.append(img_tag(p, p.stem, f"{f.name}: {p.stem.replace('_', ' ')}"))
-        import xarray as xr
-
-        with xr.open_dataset(f.folder / "predictions.nc", engine="netcdf4") as pred:
-            area = pred.attrs.get("area_average")
-            kind = pred.attrs.get("kind", "")
-        if not pngs:
-            out.append("<p>Predictions at the target points are in <code>predictions.nc</code>.</p>")
-        if area:
-            a = json.loads(area)
-            out.append(f"<h3>Area average: {esc(a.get('area'))} (area {fmt(a.get('area_size'))})</h3>")
-            rows = [{"mean": a.get("mean"), "sd": a.get("sd"), "q05": a.get("q05"), "q95": a.get("q95"),
-                     "units": a.get("units")}]
-            out.append(html_table(rows, ["mean", "sd", "q05", "q95", "units"], left=["units"]))
-            for t, p in zip(a.get("threshold", []), a.get("p_exceed", [])):
-                out.append(f"<p>P(area average &gt; {fmt(t)} {esc(a.get('units'))}) = {fmt(p, 3)}</p>")
-            out.append(f"<p class=\"small\">method: {esc(a.get('method'))}</p>")
-        elif kind:
-            out.append("<p class=\"small\">No area was given in the study ([prediction] area).</p>")
+        if ctx.several:
+            out.append(site_maps(ctx, f))
+        else:
+            out += map_block(f.name, f.folder / "predictions.nc", f.folder / "maps")
     return _section("maps", "Predictive and exceedance maps", "\n".join(out))
+
+
+def sites(ctx: Ctx) -> str:
+    """Shrinkage and sampling design (several-site runs; empty otherwise)."""
+    if not ctx.several:
+        return ""
+    from bayesgeo.report_sites import sites_section
+
+    return sites_section(ctx)
 
 
 def compare(ctx: Ctx) -> str:
@@ -632,6 +548,10 @@ def compare(ctx: Ctx) -> str:
 
 def cautions(ctx: Ctx) -> str:
     items = list(LIMITATIONS)
+    if ctx.several:
+        from bayesgeo.report_sites import SITE_CAUTION
+
+        items.append(SITE_CAUTION)
     for f in ctx.fams:
         if f.report:
             items += [f"{f.name}: {c}" for c in f.report.get("cautions", [])]
@@ -668,4 +588,4 @@ def repro(ctx: Ctx) -> str:
     return _section("repro", "Reproducibility appendix", "\n".join(out))
 
 
-SECTIONS = (job, explore, model, diagnostics, posterior, priors, vgcheck, maps, compare, cautions, repro)
+SECTIONS = (job, explore, model, diagnostics, posterior, sites, priors, vgcheck, maps, compare, cautions, repro)

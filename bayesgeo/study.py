@@ -20,7 +20,10 @@ from typing import Any
 from bayesgeo.covariance import FAMILIES
 from bayesgeo.validate import InputError
 
-__all__ = ["SCHEMA", "Study", "read_study", "parse_study", "study_line"]
+#: Poolings a study may name: one site, or the several-site models of :mod:`bayesgeo.hierarchical`.
+POOLINGS = ("single", "hierarchical", "independent", "complete")
+
+__all__ = ["POOLINGS", "SCHEMA", "Study", "read_study", "parse_study", "study_line", "areas_of"]
 
 # --- the schema -------------------------------------------------------------------------------
 # key -> (kind, default, choices or None, one-line help). Kinds: str, int, float, bool, path,
@@ -59,7 +62,9 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "trend": ("int", 0, None, "polynomial trend order in the coordinates, 0-3"),
         "covariates": ("str_list", [], None, "covariates in the trend (a subset of data.covariates)"),
         "transform": ("str", "none", ("none", "log"), "model the values or their natural logarithm"),
-        "pooling": ("str", "single", ("single",), "several-site pooling (only 'single' in this version)"),
+        "pooling": ("str", None, POOLINGS,
+                    "single (one site) or, with [data] site, hierarchical, independent or complete "
+                    "(default: hierarchical with a site column, else single)"),
         "approx": ("str", "auto", ("auto", "dense", "nn"),
                    "likelihood: dense (exact), nn (nearest-neighbour approximation) or auto (dense up to 2,000 points)"),
         "neighbours": ("int", None, None, "neighbours of a nearest-neighbour likelihood (with approx = 'nn')"),
@@ -86,7 +91,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "margin": ("float", 0.0, None, "widen the grid's bounding box on every side"),
         "points": ("path", None, None, "CSV of target points instead of a grid"),
         "thresholds": ("float_list", [], None, "levels for exceedance probabilities (data units)"),
-        "area": ("area", None, None, "polygon CSV path, or [xmin, ymin, xmax, ymax], to average over"),
+        "area": ("area", None, None, "area(s) to average over: a polygon CSV path or [xmin, ymin, xmax, ymax], a list "
+                                     "of these (one per site), or a table {site = area}"),
         "draws": ("int_or_all", 500, None, "posterior draws used for prediction (or 'all')"),
         "nugget": ("str", "include", ("include", "exclude"), "include the nugget in point predictions"),
         "hull_mask": ("bool", False, None, "leave out cells outside the convex hull of the samples"),
@@ -102,7 +108,7 @@ _KIND_TEXT = {
     "str": "a string", "int": "an integer", "float": "a number", "bool": "true or false", "path": "a string (path)",
     "str_list": "a list of strings", "float_list": "a list of numbers", "float_pair": "a list of two numbers",
     "family_list": "a family name or a list of them", "int_or_all": "a positive integer or \"all\"",
-    "area": "a path (string) or [xmin, ymin, xmax, ymax]",
+    "area": "a path (string), [xmin, ymin, xmax, ymax], a list of these, or a table {site = area}",
 }
 
 
@@ -183,14 +189,28 @@ class Study:
         return list(self.settings["model"]["covariance"])
 
     @property
+    def several_sites(self) -> bool:
+        """True for a several-site study (a site column and a several-site pooling)."""
+        return self.settings["model"]["pooling"] != "single"
+
+    @property
     def out_dir(self) -> Path:
         """The run folder."""
         return Path(self.settings["output"]["dir"])
 
     def to_dict(self) -> dict:
         """The resolved settings as plain JSON-able data (paths as strings)."""
-        return {t: {k: (str(v) if isinstance(v, Path) else v) for k, v in kv.items()}
-                for t, kv in self.settings.items()}
+        return {t: {k: _plain(v) for k, v in kv.items()} for t, kv in self.settings.items()}
+
+
+def _plain(v):
+    if isinstance(v, Path):
+        return str(v)
+    if isinstance(v, dict):
+        return {k: _plain(x) for k, x in v.items()}
+    if isinstance(v, list):
+        return [_plain(x) for x in v]
+    return v
 
 
 def _where(src: str, text: str, table: str, key: str | None) -> str:
@@ -261,17 +281,39 @@ def _convert(kind: str, value: Any, choices, where: str, base: Path):
             raise bad
         return int(value)
     if kind == "area":
-        if isinstance(value, str):
-            p = Path(value).expanduser()
-            return p if p.is_absolute() else (base / p)
-        if (isinstance(value, list) and len(value) == 4
-                and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
-            vals = [float(v) for v in value]
-            if not (vals[0] < vals[2] and vals[1] < vals[3]):
-                raise InputError(f"{where}: expected xmin < xmax and ymin < ymax, got {value!r}")
-            return vals
-        raise bad
+        if isinstance(value, Mapping):
+            if not value:
+                raise bad
+            return {str(k): _one_area(v, bad, where, base) for k, v in value.items()}
+        if isinstance(value, list) and value and all(isinstance(v, (str, list)) for v in value):
+            return [_one_area(v, bad, where, base) for v in value]
+        return _one_area(value, bad, where, base)
     raise AssertionError(kind)  # pragma: no cover
+
+
+def _one_area(value: Any, bad: InputError, where: str, base: Path) -> Path | list[float]:
+    """One area: a polygon CSV path (absolute) or a checked rectangle [xmin, ymin, xmax, ymax]."""
+    if isinstance(value, str):
+        p = Path(value).expanduser()
+        return p if p.is_absolute() else (base / p)
+    if (isinstance(value, list) and len(value) == 4
+            and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
+        vals = [float(v) for v in value]
+        if not (vals[0] < vals[2] and vals[1] < vals[3]):
+            raise InputError(f"{where}: expected xmin < xmax and ymin < ymax, got {value!r}")
+        return vals
+    raise bad
+
+
+def areas_of(area) -> list:
+    """The areas of a ``[prediction] area`` setting as a list (empty when none)."""
+    if area is None:
+        return []
+    if isinstance(area, dict):
+        return list(area.values())
+    if isinstance(area, list) and area and isinstance(area[0], (Path, list)):
+        return list(area)
+    return [area]
 
 
 def _check_ranges(s: dict, src: str, text: str) -> None:
@@ -316,8 +358,24 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
     if pts is not None and not pts.exists():
         fail("prediction", "points", f"{pts}: no such file")
     area = s["prediction"]["area"]
-    if isinstance(area, Path) and not area.exists():
-        fail("prediction", "area", f"{area}: no such file")
+    for a in areas_of(area):
+        if isinstance(a, Path) and not a.exists():
+            fail("prediction", "area", f"{a}: no such file")
+    site, pooling = s["data"]["site"], s["model"]["pooling"]
+    if pooling != "single" and not site:
+        fail("model", "pooling", f"pooling {pooling!r} needs several sites: name the site column in [data] site")
+    if pooling == "single" and site:
+        fail("model", "pooling", "pooling 'single' fits one site; with [data] site choose hierarchical, "
+                                 "independent or complete")
+    if pooling == "single" and (isinstance(area, dict) or len(areas_of(area)) > 1):
+        fail("prediction", "area", "a single-site study averages over one area; several areas (a list or a "
+                                   "table {site = area}) need a several-site study")
+    if pooling != "single" and s["model"]["approx"] == "nn":
+        fail("model", "approx", "the several-site model uses the dense likelihood per site; approx = 'nn' is "
+                                "for single-site studies")
+    if pooling != "single" and s["model.priors"]["nugget"] is not None:
+        fail("model.priors", "nugget", "the several-site model puts its prior on the nugget fraction of the sill "
+                                       "(docs/hierarchical.md); drop the nugget prior")
     if pts is not None and area is not None:
         pass  # both allowed: point predictions plus an area average
 
@@ -373,6 +431,8 @@ def parse_study(text: str, *, path: str | Path = "study.toml") -> Study:
     s = settings
     if s["output"]["dir"] is None:
         s["output"]["dir"] = base / f"{path.stem}-run"
+    if s["model"]["pooling"] is None:
+        s["model"]["pooling"] = "hierarchical" if s["data"]["site"] else "single"
     if s["explore"]["trend"] is None:
         s["explore"]["trend"] = s["model"]["trend"]
     if s["explore"]["transform"] is None:

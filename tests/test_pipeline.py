@@ -11,6 +11,7 @@ import xarray as xr
 from bayesgeo.cli import _build_parser, main
 from bayesgeo.pipeline import run_study, stage_commands
 from bayesgeo.study import read_study
+from bayesgeo.validate import InputError
 
 from _study_helpers import write_tiny_study
 
@@ -142,3 +143,91 @@ def test_same_study_twice_gives_identical_numbers(tmp_path):
     assert ma["inputs"] == mb["inputs"]
     for rel in ("explore/semivariogram.csv", "explore/correlogram.csv", "tables/fits__exponential__summary.csv"):
         assert ma["outputs"][rel]["sha256"] == mb["outputs"][rel]["sha256"], rel
+
+
+# --- several sites ------------------------------------------------------------------------------
+
+
+def test_site_stage_commands(tmp_path):
+    """A several-site study runs the commands one would type (docs/study_file.md): explore and fit with
+    --site COL (fit with the study's pooling), one check of the whole fit, then variogram-check and map with
+    --site NAME per site; each command is accepted by its own parser (argparse is the reference) and an area
+    goes to the site whose sampled bounding box holds its centre."""
+    from bayesgeo.pipeline import site_areas, study_sites
+
+    from _study_helpers import write_sites_study
+
+    path = write_sites_study(tmp_path, families=("matern32", "exponential"), pooling="independent",
+                             extra="area = [[20.0, 20.0, 60.0, 60.0], [1100.0, 50.0, 1150.0, 90.0]]\n")
+    study = read_study(path)
+    cmds = stage_commands(study, tmp_path / "run")
+    per_fam = ["fit:{f}", "check:{f}", "variogram-check:{f}:a-yard", "variogram-check:{f}:b-pit", "map:{f}:a-yard",
+               "map:{f}:b-pit"]
+    assert list(cmds) == ["explore", *[k.format(f="matern32") for k in per_fam],
+                          *[k.format(f="exponential") for k in per_fam], "compare"]
+    parser = _build_parser()
+    for name, argv in cmds.items():
+        args = parser.parse_args(argv)
+        assert args.command == name.split(":")[0]
+        if name.startswith(("variogram-check:", "map:")):
+            assert args.site == name.split(":")[2]
+        if name.startswith(("explore", "fit:")):
+            assert args.site == "parcel"
+    fit = parser.parse_args(cmds["fit:exponential"])
+    assert (fit.pooling, fit.seed, fit.chains, fit.draws, fit.transform) == ("independent", 7, 2, 100, "log")
+    assert parser.parse_args(cmds["map:matern32:a-yard"]).area == "20.0,20.0,60.0,60.0"
+    assert parser.parse_args(cmds["map:matern32:b-pit"]).area == "1100.0,50.0,1150.0,90.0"
+    assert parser.parse_args(cmds["map:matern32:b-pit"]).cell == 40.0
+    sites = study_sites(study)
+    assert list(sites) == ["a-yard", "b-pit"] and sites["a-yard"].shape == (30, 2)
+    assert site_areas(study, sites) == {"a-yard": [20.0, 20.0, 60.0, 60.0], "b-pit": [1100.0, 50.0, 1150.0, 90.0]}
+
+
+def test_site_areas_refusals(tmp_path):
+    """Areas that cannot be placed are refused before any work, naming the study file's line: a centre in no
+    site, two areas in one site, an unknown site in a table."""
+    from _study_helpers import write_sites_study
+
+    for area, msg in (("[500.0, 500.0, 600.0, 600.0]", "lies in no site"),
+                      ("[[20.0, 20.0, 60.0, 60.0], [30.0, 30.0, 40.0, 40.0]]", "two areas fall in site a-yard"),
+                      ("{c-dump = [0.0, 0.0, 1.0, 1.0]}", "unknown site\\(s\\) c-dump; sites: a-yard, b-pit")):
+        path = write_sites_study(tmp_path, extra=f"area = {area}\n")
+        with pytest.raises(InputError, match=rf"line 32: \[prediction\] area: .*{msg}"):
+            run_study(path, out=tmp_path / "never")
+        assert not (tmp_path / "never").exists()
+
+
+def test_site_run_control_flow(tmp_path, monkeypatch):
+    """With stand-in stage commands (no sampling), a several-site run calls the stages in order, records one
+    verdict per site stage, and a failed convergence check stops it with exit 3 (as for one site); the report
+    is still written with the several-site section and marked NOT CONVERGED."""
+    import bayesgeo.pipeline as pl
+
+    from _study_helpers import write_sites_study
+
+    calls = []
+
+    def ok(argv):
+        calls.append([a for a in argv if a in ("explore", "fit", "check", "variogram-check", "map", "a-yard", "b-pit")])
+        return (0, {"verdict": "warn"}) if argv[0] == "check" else (0, {})
+
+    monkeypatch.setattr(pl, "_command", ok)
+    res = run_study(write_sites_study(tmp_path), out=tmp_path / "run")
+    assert calls == [["explore"], ["fit"], ["check"], ["variogram-check", "a-yard"], ["variogram-check", "b-pit"],
+                     ["map", "a-yard"], ["map", "b-pit"]]
+    assert res["status"] == 0 and res["verdicts"]["check:matern32"] == "warn"
+    assert res["verdicts"]["map:matern32:b-pit"] == "done"
+    text = (tmp_path / "run" / "report.html").read_text()
+    assert "<section id=\"sites\">" in text and "Site a-yard" in text and "licensed professional" in text
+
+    def fail(argv):
+        return {"explore": (0, {}), "fit": (3, {}), "check": (3, {"verdict": "fail"})}[argv[0]]
+
+    monkeypatch.setattr(pl, "_command", fail)
+    res = run_study(write_sites_study(tmp_path), out=tmp_path / "run2")
+    assert res["status"] == 3
+    manifest = json.loads((tmp_path / "run2" / "manifest.json").read_text())
+    assert [s["stage"] for s in manifest["stages"] if s["verdict"] == "skipped"] == [
+        "variogram-check:matern32:a-yard", "variogram-check:matern32:b-pit", "map:matern32:a-yard",
+        "map:matern32:b-pit"]
+    assert "NOT CONVERGED" in (tmp_path / "run2" / "report.html").read_text().split("<nav>")[0]

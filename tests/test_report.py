@@ -93,7 +93,7 @@ def test_log_prior_and_likelihood_against_scipy(run):
     from bayesgeo.likelihood import JITTER
     from bayesgeo.posterior import fit_spec, load_fit
     from bayesgeo.priors import pc_range_rate, pc_sd_rate
-    from bayesgeo.report_sections import _log_lik, _log_prior
+    from bayesgeo.report_priors import _log_lik, _log_prior
 
     root, _ = run
     tree = load_fit(root / "fits" / "exponential")

@@ -98,8 +98,8 @@ def test_value_checks(study_dir):
         _parse("[data]\nunits = \"m\"\n", study_dir)
     with pytest.raises(InputError, match="not valid TOML"):
         _parse("[data\n", study_dir)
-    with pytest.raises(InputError, match="not one of single"):
-        _parse(MINIMAL + 'pooling = "hierarchical"\n', study_dir)
+    with pytest.raises(InputError, match="not one of single, hierarchical, independent, complete"):
+        _parse(MINIMAL + 'pooling = "partial"\n', study_dir)
 
 
 def test_read_study_file(study_dir):
@@ -132,3 +132,45 @@ def test_approx_reaches_the_fit_command(study_dir):
     assert fit[fit.index("--approx") + 1] == "nn" and fit[fit.index("--neighbours") + 1] == "25"
     with pytest.raises(InputError, match="neighbours"):
         _parse(MINIMAL + 'approx = "dense"\nneighbours = 25\n', study_dir)
+
+
+SITES = MINIMAL.replace('units = "mg/kg"', 'units = "mg/kg"\nsite = "parcel"')
+
+
+def test_several_site_pooling_defaults_and_errors(study_dir):
+    """A site column makes a several-site study, hierarchical by default (our documented rule,
+    docs/study_file.md); a several-site pooling without a site column, 'single' with one, the nn
+    likelihood and a nugget prior with several sites are refused naming the key and its line."""
+    st = _parse(SITES, study_dir)
+    assert st["model"]["pooling"] == "hierarchical" and st.several_sites
+    assert _parse(MINIMAL, study_dir)["model"]["pooling"] == "single"
+    assert not _parse(MINIMAL, study_dir).several_sites
+    for pooling in ("independent", "complete"):
+        assert _parse(SITES + f'pooling = "{pooling}"\n', study_dir)["model"]["pooling"] == pooling
+    with pytest.raises(InputError, match=r"line 10: \[model\] pooling: pooling 'complete' needs several sites"):
+        _parse(MINIMAL + 'pooling = "complete"\n', study_dir)
+    with pytest.raises(InputError, match=r"line 11: \[model\] pooling: pooling 'single' fits one site"):
+        _parse(SITES + 'pooling = "single"\n', study_dir)
+    with pytest.raises(InputError, match=r"line 11: \[model\] approx: .*dense likelihood"):
+        _parse(SITES + 'approx = "nn"\n', study_dir)
+    with pytest.raises(InputError, match=r"line 13: \[model.priors\] nugget: .*nugget fraction"):
+        _parse(SITES + '\n[model.priors]\nnugget = [0.5, 0.05]\n', study_dir)
+
+
+def test_areas_list_and_table(study_dir):
+    """[prediction] area takes one area, a list or a table {site = area} (TOML inline tables and arrays,
+    toml.io v1.0.0); several areas need a several-site study; every rectangle is checked."""
+    (study_dir / "poly.csv").write_text("x,y\n0,0\n1,0\n1,1\n")
+    one = _parse(MINIMAL + '\n[prediction]\narea = [0, 0, 1, 1]\n', study_dir)
+    assert one["prediction"]["area"] == [0.0, 0.0, 1.0, 1.0]
+    st = _parse(SITES + '\n[prediction]\narea = [[0, 0, 1, 1], "poly.csv"]\n', study_dir)
+    assert st["prediction"]["area"] == [[0.0, 0.0, 1.0, 1.0], study_dir / "poly.csv"]
+    st = _parse(SITES + '\n[prediction]\narea = {a-yard = "poly.csv", b-pit = [2, 2, 3, 3]}\n', study_dir)
+    assert st["prediction"]["area"] == {"a-yard": study_dir / "poly.csv", "b-pit": [2.0, 2.0, 3.0, 3.0]}
+    assert st.to_dict()["prediction"]["area"]["a-yard"] == str(study_dir / "poly.csv")
+    with pytest.raises(InputError, match=r"line 12: \[prediction\] area: a single-site study averages over one"):
+        _parse(MINIMAL + '\n[prediction]\narea = [[0, 0, 1, 1], [2, 2, 3, 3]]\n', study_dir)
+    with pytest.raises(InputError, match=r"line 13: \[prediction\] area: expected xmin < xmax"):
+        _parse(SITES + '\n[prediction]\narea = [[0, 0, 1, 1], [3, 2, 2, 3]]\n', study_dir)
+    with pytest.raises(InputError, match=r"\[prediction\] area: .*missing.csv: no such file"):
+        _parse(SITES + '\n[prediction]\narea = {a-yard = "missing.csv"}\n', study_dir)

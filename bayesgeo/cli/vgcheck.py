@@ -4,7 +4,9 @@ Replicates data at the sample locations from the fit's posterior, computes the s
 every replicate with the bins of the observed one (trend removed by OLS from both alike, on the
 modelled scale: log values under a log transform) and draws the observed semivariogram over the
 replicate band and the model's posterior semivariogram band. Writes ``DIR/variogram_check.png``
-and ``DIR/variogram_check.csv`` (each refused if present, unless ``--overwrite``).
+and ``DIR/variogram_check.csv`` (each refused if present, unless ``--overwrite``). For a
+several-site fit, ``--site NAME`` checks one site (its draws and points,
+:func:`bayesgeo.hierarchical.site_fit`) and writes ``DIR/variogram_check_<NAME>.png`` and ``.csv``.
 """
 
 from __future__ import annotations
@@ -19,6 +21,8 @@ TABLE_COLUMNS = ("bin", "lag", "bin_lower", "bin_upper", "pairs", "observed", "r
 
 def add_arguments(p) -> None:
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
+    p.add_argument("--site", metavar="NAME", default=None,
+                   help="with a several-site fit: check this site (outputs variogram_check_<NAME>.png and .csv)")
     p.add_argument("--replicates", type=int, default=200, metavar="N",
                    help="replicate data sets, one posterior draw each (default 200)")
     p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
@@ -27,6 +31,16 @@ def add_arguments(p) -> None:
     p.add_argument("--seed", type=int, default=1, metavar="S", help="seed of the replicates (default 1)")
     p.add_argument("--overwrite", action="store_true", help=f"replace existing {FIGURE} and {TABLE}")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
+
+
+def output_names(site: str | None) -> tuple[str, str]:
+    """File names of the figure and the table (``variogram_check_<site>.*`` for one site of a several-site fit)."""
+    if site is None:
+        return FIGURE, TABLE
+    import re
+
+    slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", site)
+    return f"variogram_check_{slug}.png", f"variogram_check_{slug}.csv"
 
 
 def _list(da) -> list:
@@ -41,13 +55,15 @@ def run(args) -> int:
     from bayesgeo.cli._common import emit_json, print_table, progress
     from bayesgeo.figures import save_figure
     from bayesgeo.io import atomic_file, refuse_existing
-    from bayesgeo.modelcheck import open_fit, variogram_check
+    from bayesgeo.cli._common import load_fit_folder
+    from bayesgeo.modelcheck import variogram_check
 
     folder = Path(args.dir)
     bar = progress(total=3, desc="variogram-check", enabled=not args.json)
     with bar:
-        tree = open_fit(folder)
-        fig_path, csv_path = folder / FIGURE, folder / TABLE
+        tree = load_fit_folder(folder, args.site)
+        fig_name, csv_name = output_names(args.site)
+        fig_path, csv_path = folder / fig_name, folder / csv_name
         refuse_existing(fig_path, args.overwrite)
         refuse_existing(csv_path, args.overwrite)
         bar.update(1)
@@ -59,9 +75,12 @@ def run(args) -> int:
         except (TypeError, ValueError, AttributeError):
             verdict = None
         title = None
+        where = f", site {args.site}" if args.site is not None else ""
+        if args.site is not None:
+            title = f"Posterior predictive semivariogram check: {vc.attrs['covariance']}{where}"
         if verdict == "fail":
             cautions.insert(0, "NOT CONVERGED: the fit failed its convergence check; this check inherits its problems")
-            title = f"NOT CONVERGED - posterior predictive semivariogram check: {vc.attrs['covariance']}"
+            title = f"NOT CONVERGED - posterior predictive semivariogram check: {vc.attrs['covariance']}{where}"
         import pandas as pd
 
         frame = pd.DataFrame({c: vc[c].values for c in TABLE_COLUMNS})
@@ -87,6 +106,7 @@ def run(args) -> int:
         "max_lag": float(vc.attrs["max_lag"]),
         "seed": int(vc.attrs["seed"]),
         "covariance": vc.attrs["covariance"],
+        "site": args.site,
         "transform": vc.attrs["transform"],
         "units": {"lag": vc.attrs["distance_units"], "semivariance": f"({vc.attrs['model_units']})^2"},
         "files": [str(fig_path), str(csv_path)],
@@ -102,7 +122,7 @@ def run(args) -> int:
                      "rep_q95": obj["replicate_q95"][k], "model_q05": obj["model_q05"][k],
                      "model_q50": obj["model_q50"][k], "model_q95": obj["model_q95"][k],
                      "p_value": obj["p_value"][k], "flag": "OUTSIDE" if vc["outside"].values[k] else ""})
-    print(f"posterior predictive semivariogram check: {obj['covariance']}, {obj['replicates']} replicates, "
+    print(f"posterior predictive semivariogram check: {obj['covariance']}{where}, {obj['replicates']} replicates, "
           f"seed {obj['seed']} (semivariance in {obj['units']['semivariance']}, lag in {obj['units']['lag'] or 'distance units'})")
     print_table(rows, list(rows[0]), floatfmt=".4g")
     print(f"{obj['outside_band']} of {sum(1 for p in obj['pairs'] if p)} bins outside the 90% replicate band; "
