@@ -105,6 +105,7 @@ __all__ = [
     "run_units",
     "maximin_order",
     "nearest_previous",
+    "nn_error_moments",
     "nn_krige",
     "nn_loglik",
     "nn_loglik_and_grad",
@@ -126,7 +127,8 @@ __all__ = [
 # Loaded on first use: the nearest-neighbour likelihood needs PyTensor and Numba, which
 # `import bayesgeo` (data intake, exploration) should not pay for.
 _LAZY = {name: "bayesgeo.vecchia" for name in
-         ("maximin_order", "nearest_previous", "nn_krige", "nn_loglik", "nn_loglik_and_grad")}
+         ("maximin_order", "nearest_previous", "nn_error_moments", "nn_krige", "nn_loglik",
+          "nn_loglik_and_grad")}
 
 
 def __getattr__(name):

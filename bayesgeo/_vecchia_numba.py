@@ -258,3 +258,184 @@ def nn_moments(code, metric, xy_obs, values, design_obs, xy_new, design_new, nbr
                 v -= c[a] * b[a]
             mean[d, t] = mu
             var[d, t] = max(v, 0.0)
+
+
+# --- maximin ordering ---------------------------------------------------------------------------
+# A static k-d tree (median splits, leaves of at most ``leaf`` points) answers the ball queries of
+# the exact maximin algorithm; a binary max-heap of (distance, index) entries with lazy deletion
+# picks the next point. Distances are summed left to right, (dx^2 + dy^2) + dz^2, exactly as
+# NumPy's ``((a - b) ** 2).sum(axis=1)`` rounds them, so ties resolve as in the NumPy version.
+
+
+@numba.njit(cache=True)
+def _kd_build(pts, leaf):
+    """k-d tree over ``pts`` (n, dim): (perm, lo, hi, left, right, bmin, bmax, n_nodes); leaves have left = -1."""
+    n, dim = pts.shape
+    cap = 2 * n + 1
+    perm = np.arange(n)
+    lo = np.empty(cap, np.int64)
+    hi = np.empty(cap, np.int64)
+    left = np.full(cap, -1, np.int64)
+    right = np.full(cap, -1, np.int64)
+    bmin = np.empty((cap, dim))
+    bmax = np.empty((cap, dim))
+    stack = np.empty(cap, np.int64)
+    lo[0] = 0
+    hi[0] = n
+    n_nodes = 1
+    top = 0
+    stack[0] = 0
+    while top >= 0:
+        node = stack[top]
+        top -= 1
+        a = lo[node]
+        b = hi[node]
+        for j in range(dim):
+            bmin[node, j] = np.inf
+            bmax[node, j] = -np.inf
+        for t in range(a, b):
+            q = perm[t]
+            for j in range(dim):
+                v = pts[q, j]
+                if v < bmin[node, j]:
+                    bmin[node, j] = v
+                if v > bmax[node, j]:
+                    bmax[node, j] = v
+        if b - a <= leaf:
+            continue
+        split = 0
+        for j in range(1, dim):
+            if bmax[node, j] - bmin[node, j] > bmax[node, split] - bmin[node, split]:
+                split = j
+        seg = perm[a:b].copy()
+        srt = np.argsort(pts[seg, split], kind="mergesort")
+        for t in range(b - a):
+            perm[a + t] = seg[srt[t]]
+        mid = (a + b) // 2
+        for child, c_lo, c_hi in ((n_nodes, a, mid), (n_nodes + 1, mid, b)):
+            lo[child] = c_lo
+            hi[child] = c_hi
+            top += 1
+            stack[top] = child
+        left[node] = n_nodes
+        right[node] = n_nodes + 1
+        n_nodes += 2
+    return perm, lo, hi, left, right, bmin, bmax, n_nodes
+
+
+@numba.njit(cache=True, inline="always")
+def _sqdist(pts, p, q):
+    """Squared distance between rows p and q, summed left to right like NumPy's row sum."""
+    s = 0.0
+    for j in range(pts.shape[1]):
+        t = pts[p, j] - pts[q, j]
+        s = s + t * t
+    return s
+
+
+@numba.njit(cache=True, inline="always")
+def _before(da, qa, db, qb):
+    """Heap priority: larger distance first, then lower index."""
+    return da > db or (da == db and qa < qb)
+
+
+@numba.njit(cache=True)
+def maximin(pts, first, leaf):
+    """Exact maximin ordering of ``pts`` (n, dim) starting at index ``first`` (Guinness 2018).
+
+    Each next point has the largest smallest distance to the points already chosen (ties: lowest
+    index). When point p is chosen with smallest distance l_p, every unchosen point already has a
+    smallest distance <= l_p, so only points within l_p of p can be lowered: a k-d tree ball query.
+    """
+    n, dim = pts.shape
+    order = np.empty(n, np.int64)
+    if n == 0:
+        return order
+    perm, lo, hi, left, right, bmin, bmax, n_nodes = _kd_build(pts, leaf)
+    dmin = np.full(n, np.inf)
+    done = np.zeros(n, np.bool_)
+    cap = 4 * n + 16
+    hd = np.empty(cap)
+    hq = np.empty(cap, np.int64)
+    size = 0
+    stack = np.empty(n_nodes + 1, np.int64)
+    p = first
+    lp = np.inf
+    for k in range(n):
+        order[k] = p
+        done[p] = True
+        dmin[p] = 0.0
+        if k == n - 1:
+            break
+        r2 = lp * lp * (1.0 + 1e-9)  # any superset of the ball gives the same result
+        top = 0
+        stack[0] = 0
+        while top >= 0:
+            node = stack[top]
+            top -= 1
+            gap = 0.0
+            for j in range(dim):
+                v = pts[p, j]
+                if v < bmin[node, j]:
+                    gap += (bmin[node, j] - v) ** 2
+                elif v > bmax[node, j]:
+                    gap += (v - bmax[node, j]) ** 2
+            if gap > r2:
+                continue
+            if left[node] >= 0:
+                top += 1
+                stack[top] = left[node]
+                top += 1
+                stack[top] = right[node]
+                continue
+            for t in range(lo[node], hi[node]):
+                q = perm[t]
+                if done[q]:
+                    continue
+                d = math.sqrt(_sqdist(pts, q, p))
+                if d < dmin[q]:
+                    dmin[q] = d
+                    if size == cap:  # grow the heap arrays
+                        cap *= 2
+                        hd2 = np.empty(cap)
+                        hq2 = np.empty(cap, np.int64)
+                        hd2[:size] = hd[:size]
+                        hq2[:size] = hq[:size]
+                        hd = hd2
+                        hq = hq2
+                    c = size  # sift up
+                    size += 1
+                    while c > 0:
+                        par = (c - 1) // 2
+                        if not _before(d, q, hd[par], hq[par]):
+                            break
+                        hd[c] = hd[par]
+                        hq[c] = hq[par]
+                        c = par
+                    hd[c] = d
+                    hq[c] = q
+        while True:  # pop until an entry is current (lazy deletion of stale ones)
+            d = hd[0]
+            q = hq[0]
+            size -= 1
+            ld = hd[size]
+            lq = hq[size]
+            c = 0
+            while True:  # sift the last entry down from the root
+                ch = 2 * c + 1
+                if ch >= size:
+                    break
+                if ch + 1 < size and _before(hd[ch + 1], hq[ch + 1], hd[ch], hq[ch]):
+                    ch += 1
+                if not _before(hd[ch], hq[ch], ld, lq):
+                    break
+                hd[c] = hd[ch]
+                hq[c] = hq[ch]
+                c = ch
+            hd[c] = ld
+            hq[c] = lq
+            if not done[q] and d == dmin[q]:
+                break
+        p = q
+        lp = d
+    return order

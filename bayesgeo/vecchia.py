@@ -50,7 +50,6 @@ processes. *Statistical Science* 36, 124-141.
 from __future__ import annotations
 
 import hashlib
-import heapq
 import inspect
 import sys
 
@@ -71,6 +70,7 @@ __all__ = [
     "NNLogpGrad",
     "maximin_order",
     "nearest_previous",
+    "nn_error_moments",
     "nn_krige",
     "nn_loglik",
     "nn_loglik_and_grad",
@@ -79,6 +79,7 @@ __all__ = [
 #: Default number of conditioning neighbours m (justified in the module docstring).
 DEFAULT_NEIGHBOURS = 20
 _METRICS = {"euclidean": 0, "greatcircle": 1}
+_KD_LEAF = 16  # points per k-d tree leaf in maximin_order
 
 
 # --- geometry: search space ---------------------------------------------------------------------
@@ -108,9 +109,10 @@ def maximin_order(xy, *, metric: str = "euclidean") -> np.ndarray:
     """Maximin ordering of locations (Guinness 2018).
 
     The first point is the one nearest the centroid; each next one maximises its smallest
-    distance to the points before it; ties go to the lowest index. Exact, using a k-d tree: when
-    point p is chosen with distance l_p, only points within l_p of p can have their smallest
-    distance lowered, and l_p shrinks like n^(-1/2), so the work is about O(n log n).
+    distance to the points before it; ties go to the lowest index. Exact: when point p is chosen
+    with distance l_p, only points within l_p of p can have their smallest distance lowered, so a
+    k-d tree ball query finds them and a heap of candidate distances picks the next point (the
+    algorithm of Guinness 2018, sec. 2.2), compiled with Numba; the work is about O(n log n).
 
     Parameters
     ----------
@@ -123,43 +125,10 @@ def maximin_order(xy, *, metric: str = "euclidean") -> np.ndarray:
     ndarray (n,) of int
         ``order[k]`` is the index of the k-th point.
     """
-    pts = _search_points(_as_xy(xy), metric)
-    n = pts.shape[0]
+    pts = np.ascontiguousarray(_search_points(_as_xy(xy), metric))
     centre = pts.mean(axis=0)
     first = int(np.argmin(np.sqrt(((pts - centre) ** 2).sum(axis=1))))
-    tree = cKDTree(pts)
-    dmin = np.full(n, np.inf)
-    chosen = np.zeros(n, dtype=bool)
-    order = np.empty(n, dtype=np.int64)
-    heap: list[tuple[float, int]] = []
-    done = bytearray(n)          # Python-level copies of chosen/dmin for the heap loop (fast scalar access)
-    best = [np.inf] * n
-    p, lp = first, np.inf
-    for k in range(n):
-        order[k] = p
-        chosen[p] = True
-        done[p] = 1
-        dmin[p] = 0.0
-        if k == n - 1:
-            break
-        if np.isinf(lp):
-            near = np.arange(n)
-        else:
-            near = np.asarray(tree.query_ball_point(pts[p], lp * (1.0 + 1e-12) + 1e-300), dtype=np.int64)
-        near = near[~chosen[near]]
-        d = np.sqrt(((pts[near] - pts[p]) ** 2).sum(axis=1))
-        lower = d < dmin[near]
-        near, d = near[lower], d[lower]
-        dmin[near] = d
-        for q, dq in zip(near.tolist(), d.tolist()):
-            best[q] = dq
-            heapq.heappush(heap, (-dq, q))
-        while True:  # lazy deletion: skip entries that are stale or already chosen
-            negd, q = heapq.heappop(heap)
-            if not done[q] and -negd == best[q]:
-                break
-        p, lp = q, -negd
-    return order
+    return _nb.maximin(pts, first, _KD_LEAF)
 
 
 def nearest_previous(xy, order, *, neighbours: int = DEFAULT_NEIGHBOURS, metric: str = "euclidean") -> np.ndarray:
@@ -441,6 +410,103 @@ def nn_loglik(resid, xy, covariance: Covariance | str, scale, partial_sill, nugg
         raise ValueError(f"distance_scale must be positive, got {distance_scale!r}")
     op = NNLogpGrad(cov.name, _METRICS[metric], 1.0 / float(distance_scale))
     return op(resid, pt.constant(xy), pt.constant(nbr), scale, partial_sill, nugget)[0]
+
+
+def _factors(k: np.ndarray, nbr: np.ndarray):
+    """Sparse U = I - B (rows: point i, -b_i at its neighbours) and the conditional variances f."""
+    from scipy import sparse
+
+    n = k.shape[0]
+    rows, cols, vals = [np.arange(n)], [np.arange(n)], [np.ones(n)]
+    f = np.empty(n)
+    for i in range(n):
+        nb = nbr[i][nbr[i] >= 0]
+        if nb.size:
+            b = np.linalg.solve(k[np.ix_(nb, nb)], k[nb, i])
+            f[i] = k[i, i] - k[nb, i] @ b
+            rows.append(np.full(nb.size, i))
+            cols.append(nb)
+            vals.append(-b)
+        else:
+            f[i] = k[i, i]
+    u = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n))
+    return u, f
+
+
+def nn_error_moments(xy, covariance: Covariance | str, scale: float, partial_sill: float, nugget: float, *,
+                     neighbours: int = DEFAULT_NEIGHBOURS, order="maximin", metric: str = "euclidean",
+                     distance_scale: float = 1.0, alt_scale: float | None = None, nbr=None) -> dict:
+    """Exact mean and sd of the approximation error over data sets drawn from the model.
+
+    For y ~ N(0, K) (K at the given parameters), the error e(y) = log q(y) - log p(y) of the
+    Vecchia density q = N(0, Q^-1), Q = U^T F^-1 U, against the exact p is a quadratic form in y,
+    so its moments have closed forms (no simulation):
+
+        E e = 0.5 (log det K - sum_i log f_i) = -KL(p || q),
+        Var e = 0.5 tr((Q K - I)^2)
+
+    (Gaussian Kullback-Leibler divergence and variance of a Gaussian quadratic form, e.g. Mathai and
+    Provost 1992, *Quadratic Forms in Random Variables*, thm. 3.2b.2; Katzfuss and Guinness 2021 use
+    the KL divergence to compare Vecchia approximations). With ``alt_scale`` it also gives the
+    moments of the error of a log-likelihood *difference*, d(y) = [log q_a - log q](y) - [log p_a -
+    log p](y) with a = the same parameters but scale ``alt_scale``, still for y drawn at ``scale``:
+    what moves a posterior is d, not e. Dense O(n^3): use it on n <= a few thousand points (a
+    subset of the data), to choose ``neighbours`` or to check an nn fit at a few posterior draws.
+
+    Parameters
+    ----------
+    xy, covariance, scale, partial_sill, nugget, neighbours, order, metric, distance_scale, nbr
+        As :func:`nn_loglik_and_grad`.
+    alt_scale : float, optional
+        Second scale for the difference error.
+
+    Returns
+    -------
+    dict
+        ``error_mean``, ``error_sd`` (log units); with ``alt_scale`` also ``difference_mean``,
+        ``difference_sd`` and ``exact_difference_mean`` = E[log p_a - log p] = -KL(p || p_a), the
+        size of the exact difference for comparison.
+    """
+    from bayesgeo.geometry import distance_matrix
+    from bayesgeo.likelihood import covariance_matrix
+
+    cov, _ = _family(covariance)
+    xy = _as_xy(xy)
+    n = xy.shape[0]
+    if nbr is None:
+        xy, nbr = _structure(xy, n, neighbours, order, metric)
+    nbr = np.asarray(nbr, dtype=np.int64)
+    dist = distance_matrix(xy, metric) / float(distance_scale)
+    k0 = covariance_matrix(dist, cov, float(scale), float(partial_sill), float(nugget))
+    l0 = np.linalg.cholesky(k0)
+    logdet0 = 2.0 * np.log(np.diag(l0)).sum()
+    u0, f0 = _factors(k0, nbr)
+    # Q0 K0 - I = U^T F^-1 (U K0) - I; the mean needs only log det, since tr(Q0 K0) = sum f_i / f_i = n
+    qk0 = np.asarray(u0.T @ ((u0 @ k0) / f0[:, None]))
+    m0 = qk0 - np.eye(n)
+    out = {"error_mean": 0.5 * (logdet0 - np.log(f0).sum()), "error_sd": float(np.sqrt(0.5 * np.sum(m0 * m0.T)))}
+    if alt_scale is not None:
+        ka = covariance_matrix(dist, cov, float(alt_scale), float(partial_sill), float(nugget))
+        la = np.linalg.cholesky(ka)
+        logdeta = 2.0 * np.log(np.diag(la)).sum()
+        ua, fa = _factors(ka, nbr)
+        qak0 = np.asarray(ua.T @ ((ua @ k0) / fa[:, None]))
+        kik0 = _cho_solve_lower(la, k0)
+        # d(y) = -0.5 y^T A y + c, A = (Qa - Ka^-1) - (Q0 - K0^-1), c = -0.5 [(sum log fa - logdet a) - (sum log f0 - logdet 0)]
+        ak = qak0 - kik0 - qk0 + np.eye(n)
+        c = -0.5 * ((np.log(fa).sum() - logdeta) - (np.log(f0).sum() - logdet0))
+        out["difference_mean"] = float(c - 0.5 * np.trace(ak))
+        out["difference_sd"] = float(np.sqrt(0.5 * np.sum(ak * ak.T)))
+        out["exact_difference_mean"] = float(-0.5 * (np.trace(kik0) - n + logdeta - logdet0))
+    out["error_mean"] = float(out["error_mean"])
+    return out
+
+
+def _cho_solve_lower(chol_lower: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve (L L^T) x = b for a lower Cholesky factor L."""
+    from scipy import linalg
+
+    return linalg.cho_solve((chol_lower, True), b, check_finite=False)
 
 
 # --- prediction ---------------------------------------------------------------------------------
