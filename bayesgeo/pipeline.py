@@ -260,7 +260,7 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
                 mp += ["--area", _area_arg(areas[site])]
             cmds[f"map:{fam}:{site}"] = mp
     if len(study.families) > 1:
-        # TODO(lead): several-site compare lands with the compare helper's work; until then this stage may fail
+        # several-site fits compare on all points, each conditioning on its own site (bayesgeo compare)
         cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
     return cmds
 

@@ -474,7 +474,14 @@ def priors(ctx: Ctx) -> str:
             out.append("<p class=\"small\">Power-scaling sensitivity (Kallioinen, Paananen, Bürkner and Vehtari 2023, "
                        "Statistics and Computing 34) computed by arviz.psense_summary: the cumulative Jensen–Shannon "
                        "distance when the prior (or the likelihood) is raised to a power near 1. A value above 0.05 "
-                       "(the authors' suggested threshold) flags a prior–data conflict or a strong prior.</p>")
+                       "(the authors' suggested threshold) flags a prior that shapes the posterior; ArviZ labels rows "
+                       "with both values above 0.05 \"potential prior-data conflict\". For the practical range and "
+                       "the partial and total sill such flags are expected unless the data set is large: with the "
+                       "smoothness fixed the data pin down mainly the microergodic parameter (Zhang 2004), and the "
+                       "penalised-complexity range prior, proportional to R<sup>−2</sup> in its tail, then shapes the "
+                       "upper part of the range's posterior. Read the flags with the prior-against-posterior figure, "
+                       "and report results that depend on the prior with a second prior as a sensitivity "
+                       "analysis.</p>")
     return _section("priors", "Prior against posterior and prior sensitivity", "\n".join(out))
 
 

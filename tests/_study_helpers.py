@@ -107,3 +107,23 @@ def write_sites_study(folder, *, n: int = 30, families=("matern32",), pooling: s
     path = folder / name
     path.write_text(SITES_STUDY.format(families=fams, pooling=pooling, draws=draws, tune=tune) + extra)
     return path
+
+
+_SITE_RUNS: dict = {}
+
+
+def sites_run(folder_factory, *, draws: int = 400, tune: int = 400, pooling: str = "complete"):
+    """Run the tiny several-site study once per test process (cached); return (run folder, result).
+
+    ``folder_factory`` is pytest's ``tmp_path_factory``. 2 chains x ``draws`` (tune ``tune``) with complete
+    pooling: enough for the convergence check to pass or warn on these data, so that every later stage runs
+    (the hierarchical model's between-site sds need more draws with two sites; the demo runs it).
+    """
+    from bayesgeo.pipeline import run_study
+
+    key = (draws, tune, pooling)
+    if key not in _SITE_RUNS:
+        folder = folder_factory.mktemp("sites")
+        study = write_sites_study(folder, draws=draws, tune=tune, pooling=pooling)
+        _SITE_RUNS[key] = (folder / "run", run_study(study, out=folder / "run"))
+    return _SITE_RUNS[key]

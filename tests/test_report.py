@@ -121,6 +121,58 @@ def test_log_prior_and_likelihood_against_scipy(run):
     assert ll[c, d] == pytest.approx(stats.multivariate_normal(mean, k).logpdf(z), rel=1e-8)
 
 
+def _normal_posterior(m0, s0, ybar, n, draws=(4, 2000), seed=0):
+    """Exact posterior draws of mu for y_i ~ N(mu, 1), mu ~ N(m0, s0^2) (conjugate normal, Gelman et al.,
+    BDA3 sec. 2.5), with the log prior and the joint log likelihood of each draw (scipy.stats.norm)."""
+    import xarray as xr
+    from scipy import stats
+
+    prec = 1.0 / s0**2 + n
+    mean = (m0 / s0**2 + n * ybar) / prec
+    mu = np.random.default_rng(seed).normal(mean, 1.0 / np.sqrt(prec), draws)
+    y = ybar + np.linspace(-1.0, 1.0, n) - np.mean(np.linspace(-1.0, 1.0, n))
+    lp = stats.norm.logpdf(mu, m0, s0)
+    ll = stats.norm.logpdf(y[None, None, :], mu[..., None], 1.0).sum(axis=-1)
+    post = xr.Dataset({"mu": (("chain", "draw"), mu)}, coords={"chain": np.arange(draws[0]), "draw": np.arange(draws[1])})
+    return post, lp, ll
+
+
+def test_sensitivity_table_on_conjugate_normal():
+    """The sensitivity table reads the right way round on cases with a known answer (Kallioinen, Paananen,
+    Bürkner and Vehtari 2024, Statistics and Computing 34: a weak prior gives prior sensitivity < 0.05 and
+    likelihood sensitivity > 0.05; a prior much stronger than the data the reverse; a prior as strong as the
+    data and far from it both above, "prior-data conflict"), with exact conjugate-normal posteriors."""
+    from bayesgeo.report_priors import sensitivity_table
+
+    weak = sensitivity_table(*_normal_posterior(0.0, 100.0, 0.3, 50), ["mu"])[0]
+    assert weak["prior"] < 0.05 < weak["likelihood"] and weak["diagnosis"] == "✓"
+    strong = sensitivity_table(*_normal_posterior(0.0, 0.01, 0.3, 50), ["mu"])[0]
+    assert strong["likelihood"] < 0.05 < strong["prior"] and "strong prior" in strong["diagnosis"]
+    clash = sensitivity_table(*_normal_posterior(0.0, 0.15, 2.0, 50), ["mu"])[0]
+    assert clash["prior"] > 0.05 and clash["likelihood"] > 0.05 and "conflict" in clash["diagnosis"]
+
+
+def test_range_prior_tail_makes_a_wide_range_sensitive():
+    """Why the practical range is flagged in small data sets (not a computing error): the PC range prior's
+    density is proportional to R^-2 exp(-lambda1 / R) (Fuglstad et al. 2019), so on u = log R it tilts the
+    posterior by exp(-2u); raising it to the power alpha moves a normal posterior of u with sd s by
+    -2 s^2 (alpha - 1) (exponential tilting of a normal, a standard identity). A range pinned down by the data
+    (s = 0.05) is insensitive, one the data leave wide (s = 0.5, typical below ~100 points) is sensitive.
+    Exact draws; log likelihood chosen so that likelihood x prior is the stated normal."""
+    import xarray as xr
+
+    from bayesgeo.report_priors import sensitivity_table
+
+    out = {}
+    for s in (0.05, 0.5):
+        u = np.random.default_rng(1).normal(np.log(150.0), s, (4, 2000))
+        post = xr.Dataset({"practical_range": (("chain", "draw"), np.exp(u))})
+        lp = -2.0 * u  # log R^-2 (lambda1 / R is negligible at R ~ 150 with R0 of a few metres)
+        ll = -0.5 * (u - (np.log(150.0) + 2.0 * s**2)) ** 2 / s**2
+        out[s] = sensitivity_table(post, lp, ll, ["practical_range"])[0]["prior"]
+    assert out[0.05] < 0.05 < out[0.5]
+
+
 def test_not_converged_banner(run):
     """A failed check marks the report NOT CONVERGED at the top (issue 8 requirement)."""
     root, _ = run
@@ -152,10 +204,15 @@ window.addEventListener('load', function () {
 def test_report_in_browser(run, tmp_path):
     """The report loads in headless Chromium with no errors and no broken images (naturalWidth > 0, the HTML
     Living Standard's test for a decoded image), and a screenshot is taken."""
+    root, _ = run
+    _browser_check(root, tmp_path)
+
+
+def _browser_check(root, tmp_path):
+    """Screenshot and DOM check of root/report.html in headless Chromium (skips without chromium)."""
     exe = _chromium()
     if exe is None:
         pytest.skip("chromium not installed (.ci/run installs Debian's chromium)")
-    root, _ = run
     text = (root / "report.html").read_text(encoding="utf-8")
     page = tmp_path / "report_check.html"
     page.write_text(text.replace("</head>", CHECK_SCRIPT + "\n</head>", 1), encoding="utf-8")
@@ -182,3 +239,91 @@ def test_report_in_browser(run, tmp_path):
     assert console == []
     keep = root.parent / "report_screenshot.png"
     shutil.copy2(shot, keep)
+
+
+# --- several sites (one real hierarchical run; slow) ---------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def site_run(tmp_path_factory):
+    from _study_helpers import sites_run
+
+    return sites_run(tmp_path_factory)
+
+
+@pytest.mark.slow
+def test_site_report_sections(site_run):
+    """A several-site report holds the per-site posterior table, the population and new-site tables, the
+    shrinkage and design tables with their figures, a variogram check and maps for every site, and the
+    cautions of the trade (common practice: results support, never replace, licensed professional
+    judgement; the local regulator sets sampling densities and action levels). Every image is an embedded
+    PNG (PNG signature, W3C/ISO 15948, from memory)."""
+    root, res = site_run
+    assert res["status"] == 0, res
+    text = (root / "report.html").read_text(encoding="utf-8")
+    for anchor in ("job", "explore", "model", "diagnostics", "posterior", "sites", "priors", "vgcheck", "maps",
+                   "cautions", "repro"):
+        assert f"<section id=\"{anchor}\">" in text
+    for piece in ("Per site", "Population", "A new, unsampled site", "Shrinkage (90% intervals", "Sampling design",
+                  "Site a-yard", "Site b-pit", "licensed professional", "local regulator", "borrow strength"):
+        assert piece in text, piece
+    vg = text.split("<section id=\"vgcheck\">")[1].split("</section>")[0]
+    mp = text.split("<section id=\"maps\">")[1].split("</section>")[0]
+    for site in ("a-yard", "b-pit"):
+        assert f"variogram check matern32, {site}" in vg
+        assert f"matern32, site {site} mean" in mp and f"matern32, site {site} p_exceed" in mp
+        assert (root / "fits" / "matern32" / f"predictions_{site}.nc").is_file()
+        assert (root / f"predictions_{site}.nc").is_file()
+    assert "not available" not in vg + mp
+    for src in _images(text):
+        assert base64.b64decode(src.split(",", 1)[1])[:8] == PNG_SIGNATURE
+
+
+@pytest.mark.slow
+def test_site_posterior_table_matches_draws(site_run):
+    """The report's per-site median practical range is the median of that site's stored draws
+    (numpy.median reference)."""
+    import xarray as xr
+
+    root, _ = site_run
+    with xr.open_datatree(root / "fits" / "matern32" / "posterior.nc", engine="netcdf4") as tree:
+        med = float(np.median(tree["posterior"]["practical_range"].sel(site="b-pit").values))
+    text = (root / "report.html").read_text(encoding="utf-8").split("<section id=\"posterior\">")[1]
+    row = re.search(r"<td class=\"l\">b-pit \(n = 30\)</td><td class=\"l\">practical_range</td><td class=\"\">([^<]+)</td>",
+                    text)
+    assert row is not None
+    assert float(row.group(1)) == pytest.approx(med, rel=1e-3)
+
+
+@pytest.mark.slow
+def test_site_variogram_check_uses_that_sites_points(site_run):
+    """`variogram-check --site b-pit` (run by the pipeline) computes the observed semivariogram from b-pit's
+    points alone: it equals Matheron's classical estimator (Matheron 1962; Cressie 1993, eq. 2.4.2, from
+    memory) computed here with numpy on b-pit's log values after an ordinary least-squares constant fit
+    (numpy.linalg.lstsq), on the bins the check reports."""
+    import pandas as pd
+
+    root, _ = site_run
+    frame = pd.read_csv(root / "fits" / "matern32" / "variogram_check_b-pit.csv")
+    data = pd.read_csv(root / "inputs" / "sites.csv")
+    part = data[data["parcel"] == "b-pit"]
+    xy = part[["x", "y"]].to_numpy(float)
+    z = np.log(part["conc"].to_numpy(float))
+    design = np.ones((len(z), 1))
+    r = z - design @ np.linalg.lstsq(design, z, rcond=None)[0]
+    i, j = np.triu_indices(len(z), 1)
+    d = np.hypot(*(xy[i] - xy[j]).T)
+    for _, b in frame.iterrows():
+        inside = (d >= b["bin_lower"]) & (d < b["bin_upper"]) if b["bin"] < len(frame) - 1 else \
+            (d >= b["bin_lower"]) & (d <= b["bin_upper"] * (1 + 1e-12))
+        assert inside.sum() == b["pairs"]
+        if b["pairs"]:
+            assert b["observed"] == pytest.approx(np.mean((r[i[inside]] - r[j[inside]]) ** 2) / 2.0, rel=1e-8)
+
+
+@pytest.mark.slow
+def test_site_report_in_browser(site_run, tmp_path):
+    """The several-site report loads in headless Chromium with no errors and no broken images (as
+    test_report_in_browser: naturalWidth > 0, the HTML Living Standard's test for a decoded image)."""
+    root, _ = site_run
+    _browser_check(root, tmp_path)
