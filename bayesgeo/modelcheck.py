@@ -358,7 +358,9 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
     Parameters
     ----------
     tree : xarray.DataTree
-        A single-site fit.
+        A single-site fit, or one site of a several-site fit
+        (:func:`bayesgeo.hierarchical.site_fit`: that site's draws and points; its label is kept in
+        the ``site`` attribute of the result).
     replicates : int
         Number of replicate data sets (one posterior draw each, evenly spread over the chains;
         draws are reused with new noise when there are fewer draws than replicates).
@@ -384,7 +386,8 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         ``outside`` (observed outside the replicate band), ``few_pairs``; ``replicate_semivariance``
         (replicate, bin) holds every replicate semivariogram; ``curve_q05/q50/q95`` along
         ``distance`` the model band for figures. Attributes record the method, seed, counts,
-        units and cautions; ``outside_band`` counts bins outside the replicate band.
+        units and cautions; ``outside_band`` counts bins outside the replicate band; ``site`` names
+        the site ("" for a single-site fit).
 
     Raises
     ------
@@ -484,6 +487,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         "bins": int(nb),
         "max_lag": float(edges[-1]),
         "covariance": _family_label(fa),
+        "site": str(tree.attrs.get("site", "")),
         "transform": spec.transform or "none",
         "trend_terms": list(spec.terms),
         "model_units": spec.model_units,
