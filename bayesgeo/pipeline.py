@@ -322,6 +322,8 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             inputs.append(extra)
     manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
                             argv=argv)
+    if sites:
+        manifest["sites"] = {label: int(len(xy)) for label, xy in sites.items()}
     say = log or (lambda _msg: None)
     fams = study.families
     status, message, selected = EXIT_OK, "done", fams[0]

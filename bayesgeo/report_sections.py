@@ -202,7 +202,10 @@ def _data(ctx: Ctx):
     from bayesgeo.data import read_points
 
     d = ctx.settings.get("data", {})
-    return read_points(d["path"], x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
+    path = Path(d["path"])
+    if not path.is_file() and (ctx.root / "inputs" / path.name).is_file():
+        path = ctx.root / "inputs" / path.name  # the run's copy (the original may have been a scratch file)
+    return read_points(path, x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
                        covariates=d.get("covariates") or [], coords=d.get("coords", "auto"),
                        duplicates=d.get("duplicates", "error"), units=d.get("units"),
                        distance_units=d.get("distance_units"))
