@@ -78,6 +78,13 @@ QUANTITIES = {
     "intercept": ("beta_z", 0),
 }
 _LEVELS = (0.5, 0.9)
+#: Per-replicate convergence figures kept beside the verdict (bayesgeo.diagnostics.check_convergence).
+_FIT_DIAGNOSTICS = {
+    "rhat_max": "largest rank-normalised split R-hat of the checked quantities",
+    "ess_min": "smallest bulk or tail ESS of the checked quantities (draws)",
+    "divergences": "divergent transitions among the kept draws (all chains)",
+    "failed_checks": "checks at level fail, e.g. 'rhat[sd_z],ess_bulk[nugget_sd_z]' (empty when none)",
+}
 
 
 @dataclass(frozen=True)
@@ -130,8 +137,10 @@ class SBCConfig:
 
 #: Settings of the quick mode (CI): short chains, few ranks.
 QUICK = SBCConfig(chains=2, draws=200, tune=300, ranks_of=49, thresholds=(("ess_fail", 50.0), ("rhat", 1.05)))
-#: Settings of the full mode.
-FULL = SBCConfig(chains=2, draws=500, tune=500, ranks_of=99, thresholds=(("ess_fail", 100.0), ("rhat", 1.02)))
+#: Settings of the full mode. Tuning as long as a default fit's (1,000): with 500 tuning iterations
+#: about half the fits with a nugget failed the convergence check, and longer tuning raised their
+#: smallest ESS about threefold (docs/validation.md, "Unconverged fits").
+FULL = SBCConfig(chains=2, draws=500, tune=1000, ranks_of=99, thresholds=(("ess_fail", 100.0), ("rhat", 1.02)))
 
 
 def generated_layout(n: int = 28, *, sites: int = 1, side: float = 100.0, seed: int = 0) -> xr.Dataset:
@@ -324,8 +333,13 @@ def _replicate(unit) -> dict:
         flat = arr.ravel()
         cover[label] = [bool(np.quantile(flat, (1 - a) / 2) <= value["value"] <= np.quantile(flat, (1 + a) / 2))
                         for a in _LEVELS]
+    table = conv.parameters
     return {"index": unit.index, "ranks": ranks, "cover": cover, "verdict": conv.verdict,
-            "seconds": float(tree.attrs.get("sampling_seconds", np.nan))}
+            "seconds": float(tree.attrs.get("sampling_seconds", np.nan)),
+            "rhat_max": float(np.nanmax(table["rhat"].values)),
+            "ess_min": float(np.nanmin(np.minimum(table["ess_bulk"].values, table["ess_tail"].values))),
+            "divergences": int(conv.divergences),
+            "failed_checks": ",".join(p["item"] for p in conv.problems if p["level"] == "fail")}
 
 
 def rank_of(truth: float, draws, ranks_of: int) -> int:
@@ -398,7 +412,8 @@ def simulation_based_calibration(template: xr.Dataset, config: SBCConfig = QUICK
     -------
     xarray.Dataset
         Along ``replicate`` and ``quantity``: ``rank`` (0..L), ``covered`` (with dim ``level``:
-        0.5, 0.9), ``truth``; along ``replicate``: ``verdict`` and ``seconds``. Attributes:
+        0.5, 0.9), ``truth``; along ``replicate``: ``verdict``, ``seconds``, ``rhat_max``,
+        ``ess_min``, ``divergences`` and ``failed_checks`` (which checks failed). Attributes:
         ``config`` (JSON), ``ranks_of`` (L), ``seed``, ``replicates``, ``n`` (points), ``model``.
     """
     import json
@@ -433,7 +448,8 @@ def simulation_based_calibration(template: xr.Dataset, config: SBCConfig = QUICK
                      np.array([[res["cover"][q] for q in labels] for res in results], dtype=bool)),
          "truth": (("replicate", "quantity"), np.array([[t[q]["value"] for q in labels] for t in truths])),
          "verdict": ("replicate", np.array([res["verdict"] for res in results], dtype=object).astype(str)),
-         "seconds": ("replicate", np.array([res["seconds"] for res in results]))},
+         "seconds": ("replicate", np.array([res["seconds"] for res in results])),
+         **{k: ("replicate", np.array([res[k] for res in results])) for k in _FIT_DIAGNOSTICS}},
         coords={"replicate": np.arange(replicates), "quantity": labels, "level": list(_LEVELS)},
         attrs={"config": json.dumps(config.to_dict()), "ranks_of": int(config.ranks_of), "seed": int(seed),
                "replicates": replicates, "n": int(template.sizes["obs"]), "model": config.label,
@@ -441,6 +457,8 @@ def simulation_based_calibration(template: xr.Dataset, config: SBCConfig = QUICK
                "scale": "standardised (ranks and central intervals equal those in data units)"},
     )
     out["truth"].attrs["long_name"] = "true value on the sampled (standardised) scale"
+    for k, text in _FIT_DIAGNOSTICS.items():
+        out[k].attrs["long_name"] = text
     return out
 
 
@@ -462,7 +480,8 @@ def sbc_summary(result: xr.Dataset, *, level: float = 0.001) -> dict:
     model; a count outside the central ``1 - level`` interval of that binomial (default 0.1%,
     two-sided) fails. Returns a JSON-able dictionary with per-quantity ``uniformity`` (from
     :func:`rank_uniformity`), ``coverage`` ``{level: {count, bounds, ok}}``, the same among
-    converged fits, the failed replicates and an overall ``ok``.
+    converged fits, the failed replicates, how often each convergence check failed
+    (``failed_checks``, when the result records it) and an overall ``ok``.
     """
     n = result.sizes["replicate"]
     verdict = result["verdict"].values
@@ -471,6 +490,12 @@ def sbc_summary(result: xr.Dataset, *, level: float = 0.001) -> dict:
            "failed_fits": [int(i) for i in np.flatnonzero(~good)],
            "failed_policy": "failed fits are kept in ranks and coverage and flagged; 'coverage_converged' "
                             "leaves them out", "level": level, "quantities": {}}
+    if "failed_checks" in result:  # how often each check failed, over the unconverged fits
+        counts: dict[str, int] = {}
+        for text in result["failed_checks"].values:
+            for item in filter(None, str(text).split(",")):
+                counts[item] = counts.get(item, 0) + 1
+        out["failed_checks"] = dict(sorted(counts.items(), key=lambda kv: (-kv[1], kv[0])))
     ok_all = True
     for q in result["quantity"].values:
         ranks = result["rank"].sel(quantity=q).values

@@ -11,7 +11,6 @@ from __future__ import annotations
 import json
 
 import numpy as np
-import pytest
 
 from bayesgeo.cli import main
 from bayesgeo.validation import binomial_bounds
@@ -44,6 +43,13 @@ def test_validate_machinery_small(tmp_path, capsys):
         for c in q["coverage"].values():
             assert 0 <= c["count"] <= 3 and c["of"] == 3
     assert len(run["verdicts"]) == 3 and set(run["verdicts"]) <= {"pass", "warn", "fail"}
+    # per-replicate convergence figures (Vehtari et al. 2021: R-hat >= 1 up to rounding, ESS > 0;
+    # a "fail" verdict names the checks that failed)
+    diag = run["fit_diagnostics"]
+    assert all(r > 0.99 for r in diag["rhat_max"]) and all(e > 0 for e in diag["ess_min"])
+    assert all(d >= 0 for d in diag["divergences"])
+    for verdict, failed in zip(run["verdicts"], diag["failed_checks"]):
+        assert (verdict == "fail") == bool(failed), (verdict, failed)
     page = (tmp_path / "a" / "validation.html").read_text()
     assert "data:image/png;base64," in page and "licensed professional" in page
     saved = json.loads((tmp_path / "a" / "validation.json").read_text())

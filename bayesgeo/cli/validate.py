@@ -33,7 +33,7 @@ def add_arguments(p) -> None:
     p.add_argument("--points", type=int, default=None, help="points of a generated layout per site (quick 28, full 60)")
     p.add_argument("--quick", action="store_true", help="CI mode: small layout, 25 replicates, short chains")
     p.add_argument("--draws", type=int, default=None, help="kept draws per chain (quick 200, full 500)")
-    p.add_argument("--tune", type=int, default=None, help="tuning iterations per chain (quick 300, full 500)")
+    p.add_argument("--tune", type=int, default=None, help="tuning iterations per chain (quick 300, full 1000)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://host:8786")
     p.add_argument("--workers", type=int, default=1,
                    help="local processes (default 1: chains already use both cores; each process compiles the model)")
@@ -148,7 +148,10 @@ def run(args) -> int:
     out = {"ok": all(s["ok"] for _, s in runs), **meta, "notes": notes, "cautions": CAUTIONS,
            "runs": [{**s, "config": json.loads(r.attrs["config"]), "seconds": r.attrs["wall_seconds"],
                      "ranks": r["rank"].values.tolist(), "quantity_order": [str(q) for q in r["quantity"].values],
-                     "verdicts": [str(v) for v in r["verdict"].values]} for r, s in runs]}
+                     "verdicts": [str(v) for v in r["verdict"].values],
+                     "fit_diagnostics": {k: r[k].values.tolist() for k in ("rhat_max", "ess_min", "divergences",
+                                                                          "failed_checks") if k in r}}
+                    for r, s in runs]}
     page = validation_html(runs, meta=meta)
     with atomic_dir(args.out, overwrite=args.overwrite) as tmp:
         (tmp / "validation.html").write_text(page, encoding="utf-8")
