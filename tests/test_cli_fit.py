@@ -84,11 +84,12 @@ def test_log_transform_refuses_zeros(tmp_path, capsys):
 
 def test_several_sites_go_to_the_several_site_model(tmp_path, capsys):
     """Data with several sites go to the several-site model (docs/hierarchical.md); options it does
-    not take are refused there with exit 2 before any sampling: --approx nn and --prior-nugget."""
+    not take are refused there with exit 2 before any sampling: --prior-nugget, and bad values of the
+    per-site nearest-neighbour likelihood (--approx nn --neighbours 0)."""
     data = _csv(tmp_path / "s.csv", n=40, site=["p1"] * 20 + ["p2"] * 20)
     base = ["fit", str(data), "--value", "arsenic_mg_kg", "--site", "parcel", "--covariance", "matern32"]
-    code = main([*base, "--approx", "nn", "--out", str(tmp_path / "o")])
-    assert code == EXIT_INPUT and "--approx nn" in capsys.readouterr().err
+    code = main([*base, "--approx", "nn", "--neighbours", "0", "--out", str(tmp_path / "o")])
+    assert code == EXIT_INPUT and "--neighbours" in capsys.readouterr().err
     code = main([*base, "--prior-nugget", "0.5", "0.05", "--out", str(tmp_path / "o2")])
     assert code == EXIT_INPUT and "--prior-nugget" in capsys.readouterr().err
     assert not (tmp_path / "o").exists() and not (tmp_path / "o2").exists()

@@ -196,7 +196,7 @@ def test_convergence_check_covers_every_site_parameter(fits):
     conv = check_convergence(hier)
     labels = {str(p) for p in conv.parameters["parameter"].values}
     for site in ("P1", "P2", "P3"):
-        for v in ("practical_range", "partial_sill", "nugget", "range_eta", "sill_eta", "nugget_eta"):
+        for v in ("practical_range", "partial_sill", "nugget", "range_u", "sill_u", "nugget_u"):
             assert f"{v}[{site}]" in labels
     for v in ("population_range_z", "range_site_sd", "population_sd_z", "sill_site_sd", "nugget_logit_mu",
               "nugget_site_sd", "population_practical_range_median"):
@@ -426,3 +426,132 @@ def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
     basis, spec, _ = basis_from_fit(site_fit(hier, "P2"), draws=40)
     want = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous")
     np.testing.assert_allclose(got["mean"].values, want["mean"].values, rtol=1e-10)
+
+
+# --- parametrisation of the site effects ---------------------------------------------------------
+
+
+def _logp_and_effects(model, point):
+    """Model log density and the per-site parameters at ``point`` (value-variable dict)."""
+    outs = [model["practical_range_z"], model["sd_z"], model["nugget_sd_z"], model["beta_z"]]
+    fn = model.compile_fn(model.replace_rvs_by_values(outs), inputs=model.value_vars, mode="FAST_COMPILE",
+                          on_unused_input="ignore")
+    logp = model.compile_logp(jacobian=True, mode="FAST_COMPILE")
+    return float(logp(point)), [np.asarray(v) for v in fn(point)]
+
+
+def test_centred_and_noncentred_are_one_model():
+    """Centred and non-centred forms are one model written in two coordinate systems (Papaspiliopoulos,
+    Roberts and Sköld 2007, Statistical Science 22): at the same site parameters x = mu + s eta the
+    log densities differ by the Jacobian of u = x -> u = eta, i.e. log p_centred = log p_noncentred -
+    sum over effects of log s (change of variables, N(x | mu, s) = N(eta | 0, 1) / s; exact to
+    rounding). "auto" centres exactly the sites with at least CENTRED_MIN_POINTS points."""
+    from bayesgeo.hierarchical import CENTRED_MIN_POINTS, build_site_model, site_inputs
+
+    ds, _ = _sites([15, 12, 11], seed=8)
+    nc, spec_nc = build_site_model(ds, trend=1, parametrisation="noncentred")
+    ce, spec_ce = build_site_model(ds, trend=1, parametrisation="centred")
+    assert spec_nc.site_centred == (False,) * 3 and spec_ce.site_centred == (True,) * 3
+    rng = np.random.default_rng(3)
+    point = {k: v + 0.4 * rng.standard_normal(np.shape(v)) for k, v in nc.initial_point().items()}
+    lp_nc, (r, sd, tau, beta) = _logp_and_effects(nc, point)
+    s_r, s_v, s_f = (math.exp(point[f"{k}_site_sd_log__"]) for k in ("range", "sill", "nugget"))
+    s_b = np.exp(point["beta_site_sd_z_log__"])
+    cpoint = dict(point)
+    cpoint["range_u"] = np.log(r)
+    cpoint["sill_u"] = np.log(sd**2)
+    cpoint["nugget_u"] = 2.0 * np.log(tau / sd)
+    cpoint["beta_u"] = beta
+    lp_ce, (r2, sd2, tau2, beta2) = _logp_and_effects(ce, cpoint)
+    for a, b in ((r, r2), (sd, sd2), (tau, tau2), (beta, beta2)):
+        np.testing.assert_allclose(b, a, rtol=1e-10)
+    jac = 3 * (math.log(s_r) + math.log(s_v) + math.log(s_f)) + 3 * float(np.sum(np.log(s_b)))
+    assert lp_ce == pytest.approx(lp_nc - jac, abs=1e-8)
+    mixed, _ = _sites([CENTRED_MIN_POINTS, CENTRED_MIN_POINTS - 1, 12], seed=8)
+    spec, _ = site_inputs(mixed)
+    assert spec.parametrisation == "auto" and spec.site_centred == (True, False, False)
+    with pytest.raises(InputError, match="--parametrisation"):
+        site_inputs(ds, parametrisation="partial")
+
+
+# --- nearest-neighbour likelihood in the site blocks ---------------------------------------------
+
+
+def test_nn_site_blocks_equal_dense_with_all_neighbours(monkeypatch):
+    """Each site block may use the Vecchia likelihood (bayesgeo.vecchia): with m = n_s - 1 neighbours
+    the product of conditionals is the chain rule, hence exactly the dense Gaussian density (Vecchia
+    1988; Katzfuss and Guinness 2021, sec. 2), so the several-site model's log density equals the
+    dense model's to rounding at the same point; with m = 3 it differs (the approximation is in
+    use). Under approx="auto" only a site above DENSE_LIMIT points gets the nn block."""
+    import bayesgeo.model as model_module
+    from bayesgeo.hierarchical import build_site_model, site_inputs
+
+    ds, _ = _sites([25, 18, 14], seed=12)
+    dense, spec_d = build_site_model(ds, trend=1, approx="dense")
+    nn, spec_n = build_site_model(ds, trend=1, approx="nn", neighbours=500)
+    few, _ = build_site_model(ds, trend=1, approx="nn", neighbours=3)
+    assert spec_d.site_approx == ("dense",) * 3
+    assert spec_n.site_approx == ("nn",) * 3 and spec_n.site_neighbours == (24, 17, 13)
+    assert spec_n.fit_spec("P2").approx == "nn" and spec_n.fit_spec("P2").neighbours == 17
+    rng = np.random.default_rng(1)
+    point = {k: v + 0.3 * rng.standard_normal(np.shape(v)) for k, v in dense.initial_point().items()}
+    lp_d = float(dense.compile_logp(mode="FAST_COMPILE")(point))
+    assert float(nn.compile_logp(mode="FAST_COMPILE")(point)) == pytest.approx(lp_d, rel=1e-9, abs=1e-8)
+    assert abs(float(few.compile_logp(mode="FAST_COMPILE")(point)) - lp_d) > 1e-6
+    monkeypatch.setattr(model_module, "DENSE_LIMIT", 20)
+    spec, data = site_inputs(ds, approx="auto")
+    assert spec.site_approx == ("nn", "dense", "dense") and spec.site_neighbours[0] == 20
+    assert data[0].dist is None and data[1].dist.shape == (18, 18)
+    with pytest.raises(InputError, match="--approx nn: the general 'matern' family"):
+        site_inputs(ds, covariance="matern", nu=1.0, approx="nn")
+
+
+def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
+    """A small several-site fit with the nn likelihood runs; its saved settings record approx and
+    neighbours per site, so `bayesgeo map DIR --site NAME` predicts by nearest-neighbour kriging
+    (bayesgeo.predict.basis_from_fit through site_fit). With 25 data points and 30 prediction
+    neighbours that is simple kriging on all the site's data: for one draw the mean equals
+    beta0 + c0^T K^-1 (z - beta0) (Cressie 1993, Statistics for Spatial Data, eq. 3.4.57), computed
+    with numpy (jitter 1e-6 x partial sill as in likelihood.py); the CLI's file equals the prediction
+    stage run directly (thin shell)."""
+    from bayesgeo.cli import main
+    from bayesgeo.hier_outputs import load_site_fit, save_site_fit
+    from bayesgeo.hierarchical import fit_sites, site_fit, site_spec
+    from bayesgeo.posterior import fit_spec
+    from bayesgeo.predict import basis_from_fit, predict_targets
+    from bayesgeo.targets import read_target_points
+
+    ds, _ = _sites([25, 22], seed=14)
+    tree = fit_sites(ds, approx="nn", neighbours=10, chains=2, draws=120, tune=150, seed=2)
+    out = tmp_path / "fit"
+    save_site_fit(tree, out)
+    back = load_site_fit(out)
+    assert site_spec(back).site_approx == ("nn", "nn") and site_spec(back).site_neighbours == (10, 10)
+    one = site_fit(back, "P1")
+    assert fit_spec(one).approx == "nn" and fit_spec(one).neighbours == 10
+    new = np.array([[10.0, 20.0], [50.0, 55.0], [90.0, 90.0]])
+    pts = tmp_path / "pts.csv"
+    pts.write_text("x,y\n" + "".join(f"{a},{b}\n" for a, b in new))
+    basis, spec, params = basis_from_fit(one, draws=1)
+    assert basis.neighbours == 30 and len(basis.chol) == 0
+    got = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous",
+                          include_nugget=False)
+    data = ds.isel(obs=np.flatnonzero(ds["site"].values == "P1"))
+    xy = np.column_stack([data["x"].values, data["y"].values])
+    cov = get_covariance("matern32")
+    scale, s2, t2 = (float(np.ravel(params[k].values)[0]) for k in ("scale", "partial_sill", "nugget"))
+    b0 = float(np.ravel(params["beta"].values)[0])
+    d = np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1))
+    k = s2 * cov.correlation(d, scale) + (t2 + 1e-6 * s2) * np.eye(len(xy))
+    c0 = s2 * cov.correlation(np.hypot(*(new[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)), scale)
+    ref = b0 + c0 @ np.linalg.solve(k, data["value"].values - b0)
+    np.testing.assert_allclose(np.asarray(got["mean"].values).ravel(), ref, rtol=1e-6)
+    code = main(["map", str(out), "--site", "P1", "--points", str(pts), "--draws", "30", "--no-figures",
+                 "--allow-unconverged", "--json"])
+    assert code == 0
+    rep = json.loads(capsys.readouterr().out)
+    assert isinstance(rep, dict)
+    written = xr.load_dataset(out / "predictions_P1.nc")
+    basis, spec, _ = basis_from_fit(one, draws=30)
+    want = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous")
+    np.testing.assert_allclose(written["mean"].values, want["mean"].values, rtol=1e-10)

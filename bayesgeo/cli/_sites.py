@@ -14,8 +14,8 @@ __all__ = ["add_site_arguments", "run_sites"]
 
 
 def add_site_arguments(p) -> None:
-    """``--pooling``, ``--min-points`` and ``--design-neighbours`` for the several-site model."""
-    from bayesgeo.hierarchical import MIN_POINTS_POLICIES, POOLINGS
+    """``--pooling``, ``--min-points``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
+    from bayesgeo.hierarchical import CENTRED_MIN_POINTS, MIN_POINTS_POLICIES, PARAMETRISATIONS, POOLINGS
 
     p.add_argument("--pooling", choices=POOLINGS, default="hierarchical",
                    help="with --site: share covariance parameters through a population (hierarchical, default), "
@@ -23,6 +23,10 @@ def add_site_arguments(p) -> None:
     p.add_argument("--min-points", choices=MIN_POINTS_POLICIES, default="error",
                    help="with --site: a site with fewer than 10 points is an error (default) or is kept in the "
                         "model with a warning (pool)")
+    p.add_argument("--parametrisation", choices=PARAMETRISATIONS, default="auto",
+                   help="with --site and hierarchical pooling: sample the site effects centred, non-centred, or "
+                        f"auto (default: centred for sites of at least {CENTRED_MIN_POINTS} points, non-centred "
+                        "for smaller ones); the posterior is the same, only sampling speed differs")
     p.add_argument("--design-neighbours", type=int, default=6, metavar="K",
                    help="with --site: grid nodes per side (K x K) used by the sampling-design aid (default 6)")
 
@@ -65,7 +69,8 @@ def run_sites(args, ds) -> int:
         covariates=tuple(_opt(args, "covariate", ())), transform=None if transform == "none" else transform,
         priors=Priors(range=tuple(args.prior_range) if _opt(args, "prior_range", None) else None,
                       sd=tuple(args.prior_sd) if _opt(args, "prior_sd", None) else None),
-        min_points=_opt(args, "min_points", "error"),
+        min_points=_opt(args, "min_points", "error"), approx=_opt(args, "approx", "auto"),
+        neighbours=_opt(args, "neighbours", None),
     )
     show = not args.json and sys.stderr.isatty()
     sample_kw = dict(sampler=_opt(args, "sampler", "nutpie"), chains=_opt(args, "chains", 4),
@@ -73,7 +78,8 @@ def run_sites(args, ds) -> int:
                      target_accept=_opt(args, "target_accept", 0.9), progressbar=show)
     if show:
         print(f"fitting the {pooling} model ...", file=sys.stderr)
-    tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None), **model_kw, **sample_kw)
+    tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None),
+                     parametrisation=_opt(args, "parametrisation", "auto"), **model_kw, **sample_kw)
     seed = int(json.loads(tree.attrs["settings"])["sampler"]["seed"])  # the independent fit reuses it
     conv = check_convergence(tree)
     tree = with_site_diagnostics(tree, conv.to_json())

@@ -29,7 +29,8 @@ def add_arguments(p) -> None:
                    help="PC prior: P(nugget sd > T0) = A3 (default as --prior-sd)")
     p.add_argument("--approx", choices=("auto", "dense", "nn"), default="auto",
                    help="likelihood: exact dense, nearest-neighbour (Vecchia) approximation, or auto "
-                        "(dense up to 2,000 points per site, nn beyond; docs/large_data.md)")
+                        "(dense up to 2,000 points per site, nn beyond; with --site chosen per site; "
+                        "docs/large_data.md)")
     p.add_argument("--neighbours", type=int, default=None, metavar="M",
                    help="neighbours per point of the nn likelihood (default 20)")
     p.add_argument("--draws", type=int, default=1000, help="kept draws per chain (default 1000)")
@@ -52,7 +53,6 @@ def run(args) -> int:
     from bayesgeo.io import refuse_existing
     from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
     from bayesgeo.priors import Priors
-    from bayesgeo.validate import InputError
 
     refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
     ds = read_data(args)
@@ -61,9 +61,6 @@ def run(args) -> int:
     if len(sites_of(ds)) > 1:
         from bayesgeo.cli._sites import run_sites
 
-        if args.approx == "nn":
-            raise InputError("--approx nn: the several-site model uses the dense likelihood per site; "
-                             "fit large sites one at a time")
         return run_sites(args, ds)
     priors = Priors(range=tuple(args.prior_range) if args.prior_range else None,
                     sd=tuple(args.prior_sd) if args.prior_sd else None,
