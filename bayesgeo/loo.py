@@ -29,6 +29,13 @@ Computational Statistics 36, 1243-1261): importance weights ``1 / p(y_i | y_-i, 
 turn draws from the full posterior into draws from the leave-one-out posterior.
 :func:`add_log_likelihood` stores them as the ``log_likelihood`` group so that ``arviz.loo``
 runs on the fit.
+
+Several sites (:mod:`bayesgeo.hierarchical`). Given the parameters, sites are independent: the
+covariance matrix of all points is block diagonal with one block per site, so ``C^-1`` is block
+diagonal too and the formula above, applied to the whole vector, gives for point ``i`` of site
+``s`` exactly the leave-one-out predictive of that site's block: only the site's own points
+inform it. Each site is therefore computed as a single-site fit with that site's draws
+(:func:`bayesgeo.hierarchical.site_fit`) and the results are put back in data order.
 """
 
 from __future__ import annotations
@@ -50,7 +57,11 @@ from bayesgeo.validate import InputError
 
 __all__ = [
     "FitArrays",
+    "SiteFitArrays",
     "fit_arrays",
+    "site_fit_arrays",
+    "any_fit_arrays",
+    "is_site_fit",
     "gp_loo",
     "loo_predictive",
     "pointwise_loo_loglik",
@@ -219,6 +230,96 @@ def _locations(tree: xr.DataTree, obs: xr.Dataset, name: str) -> np.ndarray:
     return np.column_stack(pair).astype(float)
 
 
+def is_site_fit(tree: xr.DataTree) -> bool:
+    """True when ``tree`` is a several-site fit (settings format of :mod:`bayesgeo.hierarchical`)."""
+    try:
+        return json.loads(tree.attrs.get("settings", "{}")).get("format") == "bayesgeo several-site fit"
+    except (TypeError, ValueError, AttributeError):
+        return False
+
+
+@dataclass(frozen=True)
+class SiteFitArrays:
+    """The data of a several-site fit and one :class:`FitArrays` per site.
+
+    Attributes
+    ----------
+    spec : SiteSpec
+        Settings of the several-site fit (:class:`bayesgeo.hierarchical.SiteSpec`).
+    xy, value, z, obs_name, obs_index, rows, source_sha256 :
+        As in :class:`FitArrays`, for all points in data order.
+    site : ndarray (n,) of str
+        Site label of each point.
+    blocks : dict of str to FitArrays
+        Each site's points and draws in the single-site layout (common standardisation).
+    index : dict of str to ndarray
+        Positions (along ``obs``) of each site's points.
+    """
+
+    spec: object
+    xy: np.ndarray
+    value: np.ndarray
+    z: np.ndarray
+    site: np.ndarray
+    obs_name: str
+    obs_index: np.ndarray
+    rows: np.ndarray
+    source_sha256: str
+    blocks: dict
+    index: dict
+
+    @property
+    def n(self) -> int:
+        """Number of observations (all sites)."""
+        return int(self.value.size)
+
+    @property
+    def sites(self) -> tuple[str, ...]:
+        """Site labels in the order of the fit."""
+        return tuple(self.blocks)
+
+
+def site_fit_arrays(tree: xr.DataTree) -> SiteFitArrays:
+    """Collect the data of a several-site fit and each site's :class:`FitArrays`.
+
+    Raises
+    ------
+    InputError
+        When ``tree`` is not a readable several-site fit.
+    """
+    from bayesgeo.hierarchical import site_fit, site_spec
+
+    spec = site_spec(tree)
+    obs, name = _observed(tree)
+    if "site" not in obs.coords and "site" not in obs.variables:
+        raise InputError("not a bayesgeo several-site fit: the observed data carry no site labels")
+    site = np.asarray(obs["site"].values).astype(str)
+    value = np.asarray(obs[name].values, dtype=float)
+    blocks, index = {}, {}
+    for label in spec.sites:
+        index[label] = np.flatnonzero(site == label)
+        blocks[label] = fit_arrays(site_fit(tree, label))
+        if blocks[label].n != index[label].size:
+            raise InputError(f"site {label!r}: the fit holds {blocks[label].n} values but the data {index[label].size}")
+    try:
+        sha = str(json.loads(tree.attrs["settings"]).get("data", {}).get("source_sha256", "") or "")
+    except (KeyError, TypeError, ValueError, AttributeError):
+        sha = ""
+    rows = obs["row"].values if "row" in obs.coords else _find(tree, "row")
+    return SiteFitArrays(
+        spec=spec, xy=_locations(tree, obs, name), value=value,
+        z=np.log(value) if spec.transform == "log" else value, site=site, obs_name=name,
+        obs_index=np.asarray(obs["obs"].values) if "obs" in obs.coords else np.arange(value.size),
+        rows=np.arange(2, value.size + 2) if rows is None else np.asarray(rows, dtype=np.int64),
+        source_sha256=sha, blocks=blocks, index=index,
+    )
+
+
+def any_fit_arrays(tree: xr.DataTree) -> FitArrays | SiteFitArrays:
+    """:func:`site_fit_arrays` for a several-site fit, :func:`fit_arrays` otherwise."""
+    return site_fit_arrays(tree) if is_site_fit(tree) else fit_arrays(tree)
+
+
 def fit_arrays(tree: xr.DataTree) -> FitArrays:
     """Collect the settings, data and draws of a fit (see :class:`FitArrays`).
 
@@ -311,9 +412,10 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.
     Parameters
     ----------
     tree : xarray.DataTree
-        A single-site fit (see :func:`fit_arrays`).
-    arrays : FitArrays, optional
-        ``fit_arrays(tree)`` when already at hand.
+        A single-site fit (see :func:`fit_arrays`) or a several-site fit (each point's
+        predictive then uses its own site's points only; module docstring).
+    arrays : FitArrays or SiteFitArrays, optional
+        ``any_fit_arrays(tree)`` when already at hand.
 
     Returns
     -------
@@ -321,9 +423,12 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.
         Dims ``(chain, draw, obs)``: ``loo_mean`` and ``loo_sd`` of the normal predictive of the
         modelled value ``z_i`` given the others (model units: log units under
         ``transform="log"``), and ``log_lik``, ``log p(v_i | v_-i)`` in data units (module
-        docstring). Coordinates ``x``, ``y`` along ``obs``.
+        docstring). Coordinates ``x``, ``y``, ``row`` (and ``site`` for a several-site fit) along
+        ``obs``.
     """
-    fa = fit_arrays(tree) if arrays is None else arrays
+    fa = any_fit_arrays(tree) if arrays is None else arrays
+    if isinstance(fa, SiteFitArrays):
+        return _site_loo_predictive(fa)
     nc, nd = fa.draws["sd_z"].shape
     mean = np.empty((nc * nd, fa.n))
     var = np.empty((nc * nd, fa.n))
@@ -357,7 +462,7 @@ def pointwise_loo_loglik(tree: xr.DataTree, *, predictive: xr.Dataset | None = N
     Parameters
     ----------
     tree : xarray.DataTree
-        A single-site fit.
+        A single-site or several-site fit.
     predictive : xarray.Dataset, optional
         :func:`loo_predictive` of ``tree`` when already computed (its ``log_lik`` is used).
 
@@ -368,9 +473,9 @@ def pointwise_loo_loglik(tree: xr.DataTree, *, predictive: xr.Dataset | None = N
         log-Jacobian of the standardisation (and of the log transform) is included, so values of
         fits of the same data are comparable whatever their transform.
     """
-    fa = fit_arrays(tree)
+    fa = any_fit_arrays(tree)
     pred = loo_predictive(tree, arrays=fa) if predictive is None else predictive
-    da = pred["log_lik"].drop_vars(["x", "y", "row"])
+    da = pred["log_lik"].drop_vars([c for c in ("x", "y", "row", "site") if c in pred.coords])
     da.name = fa.obs_name
     da.attrs["units"] = "log density of the measured value (data units)"
     return da
@@ -382,7 +487,7 @@ def add_log_likelihood(tree: xr.DataTree, *, predictive: xr.Dataset | None = Non
     Parameters
     ----------
     tree : xarray.DataTree
-        A single-site fit; it is not modified.
+        A single-site or several-site fit; it is not modified.
     predictive : xarray.Dataset, optional
         :func:`loo_predictive` of ``tree`` when already computed.
 
@@ -402,4 +507,26 @@ def add_log_likelihood(tree: xr.DataTree, *, predictive: xr.Dataset | None = Non
     })
     out = tree.copy()
     out["log_likelihood"] = xr.DataTree(ds)
+    return out
+
+
+def _site_loo_predictive(sfa: SiteFitArrays) -> xr.Dataset:
+    """:func:`loo_predictive` of every site block, put back along ``obs`` in data order."""
+    parts = {label: loo_predictive(None, arrays=fa) for label, fa in sfa.blocks.items()}
+    first = next(iter(parts.values()))
+    shape = (first.sizes["chain"], first.sizes["draw"], sfa.n)
+    data = {k: np.full(shape, np.nan) for k in ("loo_mean", "loo_sd", "log_lik")}
+    for label, part in parts.items():
+        for k in data:
+            data[k][..., sfa.index[label]] = part[k].transpose("chain", "draw", "obs").values
+    dims = ("chain", "draw", "obs")
+    out = xr.Dataset(
+        {k: (dims, v, dict(first[k].attrs)) for k, v in data.items()},
+        coords={"chain": first["chain"].values, "draw": first["draw"].values, "obs": sfa.obs_index,
+                "x": ("obs", sfa.xy[:, 0]), "y": ("obs", sfa.xy[:, 1]), "row": ("obs", sfa.rows),
+                "site": ("obs", sfa.site)},
+        attrs={**first.attrs, "method": first.attrs["method"] + "; one block per site (sites independent given "
+               "the parameters), each point conditioned on its own site's points only",
+               "pooling": sfa.spec.pooling},
+    )
     return out

@@ -48,7 +48,8 @@ from bayesgeo.covariance import get_covariance
 from bayesgeo.data import points_dataset
 from bayesgeo.explore import MIN_PAIRS, lag_bins
 from bayesgeo.geometry import distance_matrix
-from bayesgeo.loo import FitArrays, add_log_likelihood, draw_covariances, fit_arrays, loo_predictive
+from bayesgeo.loo import (FitArrays, SiteFitArrays, add_log_likelihood, any_fit_arrays, draw_covariances, fit_arrays,
+                          is_site_fit, loo_predictive)
 from bayesgeo.validate import InputError, check_positive_int
 
 __all__ = [
@@ -75,22 +76,28 @@ CAUTION = (
 # --- fits ---------------------------------------------------------------------------------------
 
 
-def open_fit(path: str | Path) -> xr.DataTree:
+def open_fit(path: str | Path, *, sites: bool = False) -> xr.DataTree:
     """Read a fit folder (or its ``posterior.nc``) into memory and close the file.
 
     The file is opened in a ``with`` block and loaded, so no NetCDF handle stays open (handles
     left to the garbage collector were seen to crash the HDF5 library when the same file was
     opened again).
 
+    With ``sites=True`` a several-site fit (:mod:`bayesgeo.hierarchical`) is accepted too, for
+    the leave-one-out comparison.
+
     Raises
     ------
     InputError
-        Missing folder or file, or a file that is not a readable single-site fit.
+        Missing folder or file, or a file that is not a readable single-site fit (or several-site
+        fit with ``sites=True``).
     """
     from bayesgeo.posterior import read_fit_file
 
     tree = read_fit_file(path)
-    fit_arrays(tree)  # refuse early what the checks cannot use
+    if is_site_fit(tree) and not sites:
+        raise InputError(f"{path}: a several-site fit; this check takes one site at a time")
+    any_fit_arrays(tree)  # refuse early what the checks cannot use
     return tree
 
 
@@ -121,7 +128,7 @@ def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
     from bayesgeo.io import write_netcdf
     from bayesgeo.posterior import FIT_FILE
 
-    tree = open_fit(path)
+    tree = open_fit(path, sites=True)
     file = Path(path) / FIT_FILE if Path(path).is_dir() else Path(path)
     if "log_likelihood" in tree.children and not overwrite:
         raise InputError(f"{file}: already holds a log_likelihood group; pass --overwrite to replace it")
@@ -129,12 +136,14 @@ def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
     return file
 
 
-def check_same_data(fits: Mapping[str, FitArrays]) -> list[str]:
+def check_same_data(fits: Mapping[str, FitArrays | SiteFitArrays]) -> list[str]:
     """Refuse fits made from different data; return cautions for lesser differences.
 
     Fits match when they hold the same number of points, the same locations and the same
-    measured values (exactly). A different source checksum with identical data is accepted with
-    a caution (for example the same table saved twice).
+    measured values (exactly), and, when both are several-site fits, the same site label for
+    every point. A different source checksum with identical data is accepted with a caution (for
+    example the same table saved twice), and so is a single-site fit beside a several-site fit of
+    the same points (one field for all points against one per site).
 
     Raises
     ------
@@ -155,10 +164,18 @@ def check_same_data(fits: Mapping[str, FitArrays]) -> list[str]:
             why = "the measured values differ"
         elif fa.spec.distance_units != ref.spec.distance_units:
             why = f"distance units {fa.spec.distance_units!r} against {ref.spec.distance_units!r}"
+        elif (isinstance(fa, SiteFitArrays) and isinstance(ref, SiteFitArrays)
+              and not np.array_equal(fa.site, ref.site)):
+            why = "the site labels of the points differ"
         if why:
             raise InputError(f"{name}: not fitted to the same data as {ref_name} ({why}); LOO compares fits of one data set")
         if fa.source_sha256 and ref.source_sha256 and fa.source_sha256 != ref.source_sha256:
             cautions.append(f"{name} and {ref_name} come from files with different checksums but identical data")
+    kinds = {name: isinstance(fa, SiteFitArrays) for name, fa in fits.items()}
+    if len(set(kinds.values())) > 1:
+        single = ", ".join(k for k, v in kinds.items() if not v)
+        cautions.append(f"{single}: one field for all points, compared with per-site fields of the several-site "
+                        "fit(s); the comparison is fair (same points, exact leave-one-out for each model)")
     return cautions
 
 
@@ -174,7 +191,7 @@ def fit_loo(tree: xr.DataTree, *, predictive: xr.Dataset | None = None):
 
     import arviz as az
 
-    fa = fit_arrays(tree)
+    fa = any_fit_arrays(tree)
     if "log_likelihood" not in tree.children or fa.obs_name not in tree["log_likelihood"].data_vars:
         tree = add_log_likelihood(tree, predictive=predictive)
     with warnings.catch_warnings():
@@ -182,13 +199,22 @@ def fit_loo(tree: xr.DataTree, *, predictive: xr.Dataset | None = None):
         return az.loo(tree, pointwise=True, var_name=fa.obs_name)
 
 
-def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO_K_THRESHOLD) -> xr.Dataset:
+def compare_fits(fits: Mapping[str, xr.DataTree], *, site: str | None = None,
+                 k_threshold: float = PARETO_K_THRESHOLD) -> xr.Dataset:
     """Rank fits of the same data by their PSIS-LOO expected log predictive density.
 
     Parameters
     ----------
     fits : mapping of str to xarray.DataTree
-        Two or more single-site fits of the same data, by name (for example the fit folder).
+        Two or more fits of the same data, by name (for example the fit folder): single-site fits
+        and several-site fits (:mod:`bayesgeo.hierarchical`, any pooling) alike. For a several-site
+        fit each point's leave-one-out density conditions on its own site's points only (sites
+        are independent given the parameters; :mod:`bayesgeo.loo`).
+    site : str, optional
+        Compare on this site's points only: every fit must be a several-site fit holding it; its
+        draws are taken with :func:`bayesgeo.hierarchical.site_fit` (the posterior stays the one
+        conditioned on every site, so the elpd is the sum over the site's points of the
+        whole-data pointwise elpd).
     k_threshold : float
         Pareto k above which a point's importance-sampling estimate is counted as unreliable
         (default 0.7, Vehtari et al. 2024).
@@ -201,19 +227,27 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
         ``elpd_diff`` (``elpd_loo`` minus the best one's, <= 0) with its standard error ``dse``,
         ``p_loo`` (effective number of parameters), ``weight`` (stacking weight),
         ``pareto_k_high`` (points with k > ``k_threshold``) and ``pareto_k_max``. Attributes:
-        ``cautions`` (list of str), ``k_threshold``, ``method``, ``n``; the pointwise
+        ``cautions`` (list of str), ``k_threshold``, ``method``, ``n``, ``site``; ``pooling``
+        along ``fit`` ("single-site" or the pooling of a several-site fit); the pointwise
         ``elpd_i``, ``pareto_k`` and ``loo_pit`` (:func:`loo_pit`) sit along (``fit``, ``obs``).
+        When every fit is a several-site fit (and no ``site`` is given), ``elpd_site`` and
+        ``se_site`` along (``fit``, ``site``): the sum of ``elpd_i`` over each site's points and
+        its standard error ``sqrt(n_s var(elpd_i))`` (as ArviZ computes ``se``).
 
     Raises
     ------
     InputError
-        Fewer than two fits, or fits of different data.
+        Fewer than two fits, fits of different data (points, values or site labels), or ``site``
+        with a single-site fit or a site a fit does not hold.
     """
     import arviz as az
 
     if len(fits) < 2:
         raise InputError(f"compare: give at least two fits (got {len(fits)})")
-    arrays = {name: fit_arrays(tree) for name, tree in fits.items()}
+    poolings = {name: _pooling_label(tree) for name, tree in fits.items()}
+    if site is not None:
+        fits = _restrict_to_site(fits, site)
+    arrays = {name: any_fit_arrays(tree) for name, tree in fits.items()}
     cautions = check_same_data(arrays)
     preds = {name: loo_predictive(tree, arrays=arrays[name]) for name, tree in fits.items()}
     elpds = {name: fit_loo(tree, predictive=preds[name]) for name, tree in fits.items()}
@@ -226,6 +260,7 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
         {
             "rank": ("fit", table["rank"].to_numpy(dtype=int)),
             "covariance": ("fit", [_family_label(arrays[k]) for k in order]),
+            "pooling": ("fit", [poolings[k] for k in order]),
             "transform": ("fit", [arrays[k].spec.transform or "none" for k in order]),
             "elpd_loo": ("fit", table["elpd"].to_numpy(dtype=float)),
             "se": ("fit", table["se"].to_numpy(dtype=float)),
@@ -241,6 +276,8 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
         },
         coords={"fit": order},
     )
+    if all(isinstance(arrays[k], SiteFitArrays) for k in order):
+        out = out.merge(_by_site(arrays[order[0]], out["elpd_i"]))
     for k in order:
         if high[k]:
             cautions.append(f"{k}: {high[k]} of {n} points have Pareto k > {k_threshold:g}; its elpd_loo is "
@@ -258,10 +295,48 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, k_threshold: float = PARETO
         "k_threshold": float(k_threshold),
         "k_threshold_source": "Vehtari, Simpson, Gelman, Yao and Gabry (2024), JMLR 25, Pareto smoothed importance sampling",
         "n": n,
+        "site": "" if site is None else site,
         "units": "log density of the measured values in data units (summed over points)",
         "cautions": cautions,
     })
     return out
+
+
+def _restrict_to_site(fits: Mapping[str, xr.DataTree], site: str) -> dict[str, xr.DataTree]:
+    """Each several-site fit reduced to one site (:func:`bayesgeo.hierarchical.site_fit`)."""
+    from bayesgeo.hierarchical import site_fit, site_spec
+
+    out = {}
+    for name, tree in fits.items():
+        if not is_site_fit(tree):
+            raise InputError(f"--site {site}: {name} is a single-site fit; --site compares several-site fits only")
+        spec = site_spec(tree)
+        if site not in spec.sites:
+            raise InputError(f"--site: {name} has no site {site!r}; its sites: {', '.join(spec.sites)}")
+        out[name] = site_fit(tree, site)
+    return out
+
+
+def _pooling_label(tree: xr.DataTree) -> str:
+    if not is_site_fit(tree):
+        return "single-site"
+    from bayesgeo.hierarchical import site_spec
+
+    return site_spec(tree).pooling
+
+
+def _by_site(sfa: SiteFitArrays, elpd_i: xr.DataArray) -> xr.Dataset:
+    """Sum of pointwise elpd per site and its standard error sqrt(n_s var(elpd_i)) along (fit, site)."""
+    x = np.asarray(elpd_i.values)
+    sums, ses = [], []
+    for label in sfa.sites:
+        part = x[:, sfa.index[label]]
+        sums.append(part.sum(axis=1))
+        ses.append(np.sqrt(part.shape[1] * part.var(axis=1, ddof=1)) if part.shape[1] > 1 else np.zeros(x.shape[0]))
+    dims = ("fit", "site")
+    return xr.Dataset({"elpd_site": (dims, np.column_stack(sums)), "se_site": (dims, np.column_stack(ses)),
+                       "n_site": ("site", [sfa.index[s].size for s in sfa.sites])},
+                      coords={"fit": elpd_i["fit"].values, "site": list(sfa.sites)})
 
 
 def _family_label(fa: FitArrays) -> str:
@@ -286,7 +361,7 @@ def loo_pit(tree: xr.DataTree, *, elpd=None) -> xr.DataArray:
         Along ``obs``, values in [0, 1]:
         ``PIT_i = sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s)`` (module docstring).
     """
-    fa = fit_arrays(tree)
+    fa = any_fit_arrays(tree)
     pred = loo_predictive(tree, arrays=fa)
     elpd = fit_loo(tree, predictive=pred) if elpd is None else elpd
     return xr.DataArray(_pit(fa, pred, elpd), dims=("obs",), coords={"obs": fa.obs_index}, name="loo_pit",

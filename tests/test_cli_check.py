@@ -116,3 +116,93 @@ def test_figures_written_and_folder_refreshed(tmp_path, capsys):
     for n in names:
         assert (fit / "diagnostics" / n).stat().st_size > 0
     assert (fit / "posterior.nc").exists()
+
+
+# --- several-site fits --------------------------------------------------------------------------
+
+
+def write_site_fit(folder, *, pooling="hierarchical", bad_site=None, seed=0):
+    """A several-site fit folder (tests/test_loo.py: make_site_fit, 4 chains x 300 independent
+    draws, so it converges) with nutpie-named sampler statistics; ``bad_site`` shifts one chain of
+    that site's practical range so its chains disagree."""
+    import xarray as xr
+
+    from test_loo import make_site_fit, simulated_sites
+
+    tree = make_site_fit(simulated_sites(), pooling=pooling, chains=4, ndraw=300, seed=seed)
+    rng = np.random.default_rng(seed)
+    shape = (4, 300)
+    ss = xr.Dataset({"diverging": (("chain", "draw"), np.zeros(shape, bool)),
+                     "energy": (("chain", "draw"), rng.normal(size=shape)),
+                     "depth": (("chain", "draw"), rng.integers(1, 5, size=shape).astype("uint64")),
+                     "maxdepth_reached": (("chain", "draw"), np.zeros(shape, bool)),
+                     "step_size": (("chain", "draw"), np.full(shape, 0.4))},
+                    coords={"chain": np.arange(4), "draw": np.arange(300)})
+    tree["sample_stats"] = xr.DataTree(ss)
+    if bad_site is not None:
+        post = tree["posterior"].to_dataset()
+        k = list(post["site"].values).index(bad_site)
+        for v in ("practical_range_z", "practical_range"):
+            x = post[v].values.copy()
+            x[0, :, k] *= 3.0
+            post[v] = (post[v].dims, x, post[v].attrs)
+        tree["posterior"] = xr.DataTree(post)
+    folder.mkdir(parents=True, exist_ok=True)
+    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
+    return folder
+
+
+def test_several_site_fit_has_site_and_population_blocks(tmp_path, capsys):
+    """A several-site fit: diagnostics.json keeps the whole-posterior verdict and adds one block per
+    site and one for the population. Each site's worst R-hat and smallest bulk / tail ESS equal the
+    extremes of arviz.rhat / arviz.ess (method "bulk", and "tail" with the 5% and 95% quantiles as
+    bayesgeo.diagnostics documents) over that site's elements alone,
+    computed here independently (reference: ArviZ 1.x, Vehtari et al. 2021 rank-normalised R-hat
+    and ESS). A converged fit passes everywhere."""
+    folder = write_site_fit(tmp_path / "fit")
+    code, res = run_json(capsys, ["check", str(folder), "--json", "--no-figures"])
+    assert code == 0 and res["verdict"] == "pass"
+    assert set(res["sites"]) == {"s0", "s1", "s2"}
+    assert res["population"]["verdict"] == "pass" and res["population"]["parameters"] > 0
+    assert "whole posterior" in res["site_note"]
+    on_disk = json.loads((folder / "diagnostics" / "diagnostics.json").read_text())
+    assert on_disk["sites"] == res["sites"]
+    post = az.from_netcdf(folder / "posterior.nc")["posterior"].to_dataset()
+    site_vars = [v for v in post.data_vars if "site" in post[v].dims]
+    for site, block in res["sites"].items():
+        assert block["verdict"] == "pass" and block["problems"] == []
+        one = post[site_vars].sel(site=site)
+        rhat = az.rhat(one)
+        bulk, tail = az.ess(one, method="bulk"), az.ess(one, method="tail", prob=(0.05, 0.95))
+        varying = [v for v in site_vars if float(one[v].std()) > 0]
+        assert block["worst_rhat"] == pytest.approx(max(float(rhat[v].max()) for v in varying), rel=1e-9)
+        assert block["min_ess_bulk"] == pytest.approx(min(float(bulk[v].min()) for v in varying), rel=1e-9)
+        assert block["min_ess_tail"] == pytest.approx(min(float(tail[v].min()) for v in varying), rel=1e-9)
+        assert block["worst_rhat_parameter"].endswith(f"[{site}]") or f"[{site}," in block["worst_rhat_parameter"]
+
+
+def test_one_unmixed_site_fails_its_own_block(tmp_path, capsys):
+    """One site whose chains disagree on the practical range fails its own block (R-hat >= 1.01,
+    Vehtari et al. 2021) and the whole-posterior verdict (exit 3); the other sites and the
+    population still pass, and the human report shows one row per site."""
+    folder = write_site_fit(tmp_path / "bad", bad_site="s1")
+    code, res = run_json(capsys, ["check", str(folder), "--json", "--no-figures"])
+    assert code == 3 and res["verdict"] == "fail"
+    verdicts = {k: b["verdict"] for k, b in res["sites"].items()}
+    assert verdicts == {"s0": "pass", "s1": "fail", "s2": "pass"}
+    assert res["population"]["verdict"] == "pass"
+    assert res["sites"]["s1"]["worst_rhat"] >= 1.01
+    assert any("practical_range" in m and "R-hat" in m for m in res["sites"]["s1"]["problems"])
+    code = main(["check", str(folder), "--no-figures"])
+    out = capsys.readouterr().out
+    assert code == 3
+    assert "per site:" in out and "site s1" in out and "population" in out
+    assert "verdict: FAIL (whole posterior)" in out
+
+
+def test_independent_fit_has_no_population_block(tmp_path, capsys):
+    """Independent pooling has no parameter without a site index: population is null."""
+    folder = write_site_fit(tmp_path / "ind", pooling="independent")
+    code, res = run_json(capsys, ["check", str(folder), "--json", "--no-figures"])
+    assert code == 0 and res["population"] is None
+    assert set(res["sites"]) == {"s0", "s1", "s2"}

@@ -2,6 +2,12 @@
 
 Reads ``DIR/posterior.nc``; writes ``DIR/diagnostics/`` (replaced as a whole, atomically) with
 ``diagnostics.json`` and the figures. Exit status 0 on pass or warn, 3 on fail, 2 on bad input.
+
+A several-site fit (``bayesgeo fit --site``) keeps one verdict for the whole posterior (every
+site's parameters and every hyperparameter) and adds ``sites`` (one block per site: worst R-hat,
+smallest bulk and tail ESS, the site's own verdict and problems) and ``population`` (the same for
+the parameters without a site index) to ``diagnostics.json`` and to the printed report
+(:func:`bayesgeo.diagnostics.site_convergence`).
 """
 
 from __future__ import annotations
@@ -48,7 +54,7 @@ def run(args) -> int:
 
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json, print_table, progress
-    from bayesgeo.diagnostics import CAUTION, check_convergence
+    from bayesgeo.diagnostics import CAUTION, check_convergence, site_convergence
     from bayesgeo.io import atomic_dir, write_json
     from bayesgeo.validate import InputError
 
@@ -60,6 +66,9 @@ def run(args) -> int:
     conv = check_convergence(tree, var_names=args.var or None)
     bar.update()
     result = conv.to_json()
+    by_site = site_convergence(tree, conv)
+    if by_site is not None:
+        result.update(sites=by_site["sites"], population=by_site["population"], site_note=by_site["note"])
     outdir = folder / DIAGNOSTICS_DIR
     figures, figure_error = [], None
     with atomic_dir(outdir, overwrite=True) as tmp:
@@ -116,10 +125,27 @@ def _print_human(conv, result, print_table, caution) -> None:
             print(f"  [{level.upper()}] " + "; ".join(p["message"] for p in group))
             print(f"      threshold source: {group[0]['source']}")
             print(f"      advice: {group[0]['advice']}")
+    if "sites" in result:
+        _print_sites(result, print_table)
     print()
-    print(f"verdict: {conv.verdict.upper()}")
+    print(f"verdict: {conv.verdict.upper()}" + (" (whole posterior)" if "sites" in result else ""))
     print(f"caution: {caution}")
     print(f"wrote {result['diagnostics']}" + (f" and {len(result['figures'])} figures" if result["figures"] else ""))
+
+
+def _print_sites(result: dict, print_table) -> None:
+    """One row per site (and the population): verdict, worst R-hat, smallest ESS."""
+    blocks = [(f"site {k}", b) for k, b in result["sites"].items()]
+    if result.get("population"):
+        blocks.append(("population", result["population"]))
+    rows = [{"block": name, "verdict": b["verdict"].upper(), "parameters": b["parameters"],
+             "worst_rhat": _fmt("{:.3f}", b["worst_rhat"]), "min_ess_bulk": _fmt("{:.0f}", b["min_ess_bulk"]),
+             "min_ess_tail": _fmt("{:.0f}", b["min_ess_tail"]), "worst_parameter": b["worst_rhat_parameter"] or "n/a"}
+            for name, b in blocks]
+    print()
+    print("per site:")
+    print_table(rows, ["block", "verdict", "parameters", "worst_rhat", "min_ess_bulk", "min_ess_tail", "worst_parameter"])
+    print(f"note: {result['site_note']}")
 
 
 def _grouped(problems: list[dict]) -> dict:
@@ -131,5 +157,5 @@ def _grouped(problems: list[dict]) -> dict:
 
 
 def _fmt(template: str, value) -> str:
-    value = float(value)
+    value = float("nan") if value is None else float(value)
     return template.format(value) if value == value else "n/a"

@@ -4,6 +4,12 @@ Each fit folder holds ``posterior.nc`` from ``bayesgeo fit``. Exact Gaussian lea
 densities are computed per draw (or read from a stored ``log_likelihood`` group) in data units, so
 fits with and without a log transform compare fairly. Fits of different data are refused (exit 2).
 
+Several-site fits (``bayesgeo fit --site``, any ``--pooling``) compare like single-site ones: each
+point's leave-one-out density conditions on its own site's points only (sites are independent given
+the parameters), and the ranking gains a ``pooling`` column and, when every fit is a several-site
+fit, ``by_site`` (elpd per site and fit, with its standard error). ``--site NAME`` compares the
+fits on that site's points only.
+
 With ``--out DIR`` the folder (written atomically; an existing one is refused unless
 ``--overwrite``) receives ``comparison.csv`` (the ranking), ``pointwise.csv`` (elpd and Pareto k per
 point and fit), ``loo_pit.png`` (LOO-PIT calibration of every fit) and ``comparison.json`` (the
@@ -15,11 +21,13 @@ from __future__ import annotations
 
 HELP = "rank fits of the same data by leave-one-out predictive accuracy (PSIS-LOO)"
 
-COLUMNS = ("fit", "covariance", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "pareto_k_high")
+COLUMNS = ("fit", "covariance", "pooling", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "pareto_k_high")
 
 
 def add_arguments(p) -> None:
     p.add_argument("dirs", metavar="DIR", nargs="+", help="fit folders (each holding posterior.nc), two or more")
+    p.add_argument("--site", metavar="NAME", default=None,
+                   help="with several-site fits: compare on this site's points only")
     p.add_argument("--out", metavar="DIR", default=None,
                    help="folder for the ranking tables, the LOO-PIT figure and comparison.json (default: none)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing --out folder")
@@ -54,7 +62,7 @@ def _verdicts(name, tree) -> list[str]:
     return []
 
 
-def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, dict]:
+def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None) -> tuple[dict, object, dict]:
     """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs)."""
     from bayesgeo.modelcheck import compare_fits, open_fit
     from bayesgeo.validate import InputError
@@ -67,11 +75,11 @@ def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, 
     trees = {}
     cautions = []
     for name, d in zip(names, dirs):
-        trees[name] = open_fit(d)
+        trees[name] = open_fit(d, sites=True)
         cautions += _verdicts(name, trees[name])
         if bar is not None:
             bar.update(1)
-    res = compare_fits(trees)
+    res = compare_fits(trees, site=site)
     if store:
         from bayesgeo.modelcheck import store_log_likelihood
 
@@ -86,7 +94,7 @@ def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, 
         row = res.isel(fit=k)
         ranking.append({
             "fit": str(name), "path": str(dirs[names.index(str(name))]), "covariance": str(row["covariance"].values),
-            "transform": str(row["transform"].values), "elpd_loo": float(row["elpd_loo"]), "se": float(row["se"]),
+            "transform": str(row["transform"].values), "pooling": str(row["pooling"].values), "elpd_loo": float(row["elpd_loo"]), "se": float(row["se"]),
             "elpd_diff": float(row["elpd_diff"]), "dse": float(row["dse"]), "p_loo": float(row["p_loo"]),
             "weight": float(row["weight"]), "pareto_k_high": int(row["pareto_k_high"]),
             "pareto_k_max": float(row["pareto_k_max"]),
@@ -96,10 +104,17 @@ def build_result(dirs, *, bar=None, store: bool = False) -> tuple[dict, object, 
         "n": int(res.attrs["n"]),
         "k_threshold": res.attrs["k_threshold"],
         "k_threshold_source": res.attrs["k_threshold_source"],
+        "site": site,
         "method": res.attrs["method"],
         "units": res.attrs["units"],
         "cautions": cautions + list(res.attrs["cautions"]),
     }
+    if "elpd_site" in res:
+        obj["by_site"] = {
+            str(s): {"n": int(res["n_site"].sel(site=s)),
+                     "elpd": {str(f): float(res["elpd_site"].sel(fit=f, site=s)) for f in res["fit"].values},
+                     "se": {str(f): float(res["se_site"].sel(fit=f, site=s)) for f in res["fit"].values}}
+            for s in res["site"].values}
     return obj, res, pits
 
 
@@ -114,30 +129,41 @@ def run(args) -> int:
         refuse_existing(out, args.overwrite)
     bar = progress(total=2 * len(args.dirs), desc="compare", enabled=not args.json)
     with bar:
-        obj, res, pits = build_result(args.dirs, bar=bar, store=args.store)
+        obj, res, pits = build_result(args.dirs, bar=bar, store=args.store, site=args.site)
     files = []
     if out is not None:
         from bayesgeo.check_figures import loo_pit_figure
         from bayesgeo.figures import save_figure
 
         with atomic_dir(out, overwrite=args.overwrite) as tmp:
-            table = res[["rank", "covariance", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
+            table = res[["rank", "covariance", "pooling", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
                          "pareto_k_high", "pareto_k_max"]].to_dataframe()
             table.to_csv(tmp / "comparison.csv", float_format="%.10g")
             point = res[["elpd_i", "pareto_k"]].to_dataframe()
             point.to_csv(tmp / "pointwise.csv", float_format="%.10g")
             save_figure(loo_pit_figure(pits), tmp / "loo_pit.png")
             files = ["comparison.csv", "pointwise.csv", "loo_pit.png", "comparison.json"]
+            if "elpd_site" in res:
+                res[["elpd_site", "se_site", "n_site"]].to_dataframe().to_csv(tmp / "by_site.csv", float_format="%.10g")
+                files.insert(2, "by_site.csv")
             obj["out"] = str(out)
             obj["files"] = files
             write_json(tmp / "comparison.json", to_jsonable(obj))
     if args.json:
         emit_json(obj)
         return 0
-    print(f"PSIS-LOO comparison of {len(obj['ranking'])} fits of {obj['n']} points "
+    where = f" at site {obj['site']}" if obj["site"] else ""
+    print(f"PSIS-LOO comparison of {len(obj['ranking'])} fits of {obj['n']} points{where} "
           f"(elpd: log density of the data in data units; higher is better)")
     rows = [{c: r[c] for c in COLUMNS} for r in obj["ranking"]]
     print_table(rows, list(COLUMNS), floatfmt=".2f")
+    if "by_site" in obj:
+        fits = [r["fit"] for r in obj["ranking"]]
+        print()
+        print("elpd_loo by site (se in brackets):")
+        site_rows = [{"site": s, "n": b["n"], **{f: f"{b['elpd'][f]:.2f} ({b['se'][f]:.2f})" for f in fits}}
+                     for s, b in obj["by_site"].items()]
+        print_table(site_rows, ["site", "n", *fits])
     print(f"pareto_k_high: points with Pareto k > {obj['k_threshold']:g} ({obj['k_threshold_source']})")
     if files:
         print(f"wrote {len(files)} files to {out}/")
