@@ -140,11 +140,11 @@ def _print_sites(result: dict, print_table) -> None:
         blocks.append(("population", result["population"]))
     rows = [{"block": name, "verdict": b["verdict"].upper(), "parameters": b["parameters"],
              "worst_rhat": _fmt("{:.3f}", b["worst_rhat"]), "min_ess_bulk": _fmt("{:.0f}", b["min_ess_bulk"]),
-             "min_ess_tail": _fmt("{:.0f}", b["min_ess_tail"]), "worst_parameter": b["worst_rhat_parameter"] or "n/a"}
+             "min_ess_tail": _fmt("{:.0f}", b["min_ess_tail"]), "worst_rhat_at": b["worst_rhat_parameter"] or "n/a"}
             for name, b in blocks]
     print()
     print("per site:")
-    print_table(rows, ["block", "verdict", "parameters", "worst_rhat", "min_ess_bulk", "min_ess_tail", "worst_parameter"])
+    print_table(rows, ["block", "verdict", "parameters", "worst_rhat", "min_ess_bulk", "min_ess_tail", "worst_rhat_at"])
     print(f"note: {result['site_note']}")
 
 
