@@ -22,7 +22,7 @@ DEMO_AREA_PARCEL = "rail-siding"
 DEMO_AREA = (431_850.0, 5_622_750.0, 431_950.0, 5_622_850.0)
 #: Sampler and prediction settings of the demo (full, quick): chains, draws, tune, replicates, permutations,
 #: prediction draws, grid cell (m).
-DEMO_SETTINGS = {"full": (2, 500, 500, 100, 49, 200, 10.0), "quick": (2, 200, 300, 40, 19, 60, 20.0)}
+DEMO_SETTINGS = {"full": (2, 1000, 1000, 100, 49, 200, 10.0), "quick": (2, 200, 300, 40, 19, 60, 20.0)}
 
 
 def add_arguments(p) -> None:
@@ -71,7 +71,7 @@ pooling = "hierarchical"
 chains = {chains}
 draws = {draws}
 tune = {tune}
-target_accept = 0.9
+target_accept = 0.95
 seed = 20261202
 
 [check]
