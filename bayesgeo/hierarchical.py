@@ -35,10 +35,10 @@ s^2), nugget fraction ``f_s = tau2_s / (sigma2_s + tau2_s)`` on the logit scale 
 Each site effect ``x_s ~ Normal(mu, s)`` is sampled through a free variable ``u_s`` with
 ``x_s = w_s mu + s^w_s u_s`` and ``u_s ~ Normal((1 - w_s) mu, s^(1 - w_s))`` (Papaspiliopoulos,
 Roberts and Sköld 2007): ``w_s = 0`` is the centred form (``u_s = x_s``), ``w_s = 1`` the
-non-centred one (``u_s = (x_s - mu) / s ~ N(0, 1)``). ``parametrisation="auto"`` (default) centres
-sites of at least :data:`bayesgeo.site_inputs.CENTRED_MIN_POINTS` points, whose likelihood
-dominates, and non-centres smaller ones (measurements in ``docs/hierarchical.md``, "Sampling
-efficiency").
+non-centred one (``u_s = (x_s - mu) / s ~ N(0, 1)``). ``parametrisation="noncentred"`` (default)
+non-centres every site: measured faster than centring at 60 points per site
+(``docs/hierarchical.md``, "Sampling efficiency"); ``"centred"`` centres every site and ``"auto"``
+centres only sites of at least :data:`bayesgeo.site_inputs.CENTRED_MIN_POINTS` points.
 
 ``R`` and ``S^2`` are the population medians of the practical range and of the partial sill;
 lambda1 and lambda2 are the single-site PC-prior rates (:mod:`bayesgeo.priors`) computed with the
@@ -94,7 +94,7 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
                      nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                      transform: str | None = None, pooling: str = "hierarchical",
                      priors: Priors | Mapping | None = None, min_points: str = "error",
-                     parametrisation: str = "auto", approx: str = "auto", neighbours: int | None = None):
+                     parametrisation: str = "noncentred", approx: str = "auto", neighbours: int | None = None):
     """Build one PyMC model for the points of several sites.
 
     Parameters
@@ -113,10 +113,11 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
     min_points : {"error", "pool"}
         A site with fewer than :data:`bayesgeo.data.MIN_POINTS` points raises an InputError naming
         the site and its rows, or (``"pool"``) is kept with a warning.
-    parametrisation : {"auto", "centred", "noncentred"}
-        Form of the site effects of the hierarchical model (module docstring): ``auto`` (default)
-        centres sites of at least :data:`CENTRED_MIN_POINTS` points and non-centres the others.
-        Only the sampling efficiency differs: the posterior is the same.
+    parametrisation : {"noncentred", "centred", "auto"}
+        Form of the site effects of the hierarchical model (module docstring): non-centred for
+        every site (default, the faster one measured), centred for every site, or ``auto``
+        (centred for sites of at least :data:`CENTRED_MIN_POINTS` points). Only the sampling
+        efficiency differs: the posterior is the same.
     approx : {"auto", "dense", "nn"}
         Likelihood of each site block: exact dense, nearest-neighbour (Vecchia; maximin ordering
         and neighbour sets computed once per site), or ``auto`` (dense up to
@@ -229,13 +230,15 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
               pooling: str = "hierarchical", priors: Priors | Mapping | None = None, min_points: str = "error",
               sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
               target_accept: float = 0.9, seed: int | None = None, progressbar: bool = False,
-              adaptation: str = "low_rank", parametrisation: str = "auto", approx: str = "auto",
+              adaptation: str = "low_rank", parametrisation: str = "noncentred", approx: str = "auto",
               neighbours: int | None = None) -> xr.DataTree:
     """Fit the several-site model and return the explicit fit result.
 
     Parameters
     ----------
-    ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, min_points, parametrisation, approx, neighbours :
+    ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, min_points :
+        As in :func:`build_site_model`.
+    parametrisation, approx, neighbours :
         As in :func:`build_site_model`.
     sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation :
         As in :func:`bayesgeo.sampling.sample` (``target_accept`` defaults to 0.9 here: funnels

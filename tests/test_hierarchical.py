@@ -440,36 +440,41 @@ def _logp_and_effects(model, point):
     return float(logp(point)), [np.asarray(v) for v in fn(point)]
 
 
-def test_centred_and_noncentred_are_one_model():
+def test_centred_and_noncentred_are_one_model(monkeypatch):
     """Centred and non-centred forms are one model written in two coordinate systems (Papaspiliopoulos,
     Roberts and Sköld 2007, Statistical Science 22): at the same site parameters x = mu + s eta the
-    log densities differ by the Jacobian of u = x -> u = eta, i.e. log p_centred = log p_noncentred -
-    sum over effects of log s (change of variables, N(x | mu, s) = N(eta | 0, 1) / s; exact to
-    rounding). "auto" centres exactly the sites with at least CENTRED_MIN_POINTS points."""
-    from bayesgeo.hierarchical import CENTRED_MIN_POINTS, build_site_model, site_inputs
+    log densities differ by the Jacobian of u = x -> u = eta, i.e. each centred site lowers the log
+    density by the sum over its effects of log s (change of variables, N(x | mu, s) = N(eta | 0, 1) / s;
+    exact to rounding). "auto" centres exactly the sites with at least CENTRED_MIN_POINTS points
+    (lowered to 13 here, so that the mixed model of centred and non-centred sites is checked too)."""
+    import bayesgeo.site_inputs as site_inputs_module
+    from bayesgeo.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([15, 12, 11], seed=8)
-    nc, spec_nc = build_site_model(ds, trend=1, parametrisation="noncentred")
+    nc, spec_nc = build_site_model(ds, trend=1)
     ce, spec_ce = build_site_model(ds, trend=1, parametrisation="centred")
+    assert spec_nc.parametrisation == "noncentred"
     assert spec_nc.site_centred == (False,) * 3 and spec_ce.site_centred == (True,) * 3
     rng = np.random.default_rng(3)
     point = {k: v + 0.4 * rng.standard_normal(np.shape(v)) for k, v in nc.initial_point().items()}
     lp_nc, (r, sd, tau, beta) = _logp_and_effects(nc, point)
     s_r, s_v, s_f = (math.exp(point[f"{k}_site_sd_log__"]) for k in ("range", "sill", "nugget"))
     s_b = np.exp(point["beta_site_sd_z_log__"])
-    cpoint = dict(point)
-    cpoint["range_u"] = np.log(r)
-    cpoint["sill_u"] = np.log(sd**2)
-    cpoint["nugget_u"] = 2.0 * np.log(tau / sd)
-    cpoint["beta_u"] = beta
-    lp_ce, (r2, sd2, tau2, beta2) = _logp_and_effects(ce, cpoint)
-    for a, b in ((r, r2), (sd, sd2), (tau, tau2), (beta, beta2)):
+    jac_site = math.log(s_r) + math.log(s_v) + math.log(s_f) + float(np.sum(np.log(s_b)))
+    centred_u = {"range_u": np.log(r), "sill_u": np.log(sd**2), "nugget_u": 2.0 * np.log(tau / sd), "beta_u": beta}
+    lp_ce, effects = _logp_and_effects(ce, {**point, **centred_u})
+    for a, b in zip((r, sd, tau, beta), effects):
         np.testing.assert_allclose(b, a, rtol=1e-10)
-    jac = 3 * (math.log(s_r) + math.log(s_v) + math.log(s_f)) + 3 * float(np.sum(np.log(s_b)))
-    assert lp_ce == pytest.approx(lp_nc - jac, abs=1e-8)
-    mixed, _ = _sites([CENTRED_MIN_POINTS, CENTRED_MIN_POINTS - 1, 12], seed=8)
-    spec, _ = site_inputs(mixed)
-    assert spec.parametrisation == "auto" and spec.site_centred == (True, False, False)
+    assert lp_ce == pytest.approx(lp_nc - 3 * jac_site, abs=1e-8)
+    monkeypatch.setattr(site_inputs_module, "CENTRED_MIN_POINTS", 13)
+    mixed, spec_mx = build_site_model(ds, trend=1, parametrisation="auto")
+    assert spec_mx.site_centred == (True, False, False)
+    keep = {k: np.where(np.reshape([1.0, 0.0, 0.0], (3,) + (1,) * (np.ndim(v) - 1)) > 0, v, point[k])
+            for k, v in centred_u.items()}
+    lp_mx, effects = _logp_and_effects(mixed, {**point, **keep})
+    for a, b in zip((r, sd, tau, beta), effects):
+        np.testing.assert_allclose(b, a, rtol=1e-10)
+    assert lp_mx == pytest.approx(lp_nc - jac_site, abs=1e-8)
     with pytest.raises(InputError, match="--parametrisation"):
         site_inputs(ds, parametrisation="partial")
 

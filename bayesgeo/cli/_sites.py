@@ -23,10 +23,10 @@ def add_site_arguments(p) -> None:
     p.add_argument("--min-points", choices=MIN_POINTS_POLICIES, default="error",
                    help="with --site: a site with fewer than 10 points is an error (default) or is kept in the "
                         "model with a warning (pool)")
-    p.add_argument("--parametrisation", choices=PARAMETRISATIONS, default="auto",
-                   help="with --site and hierarchical pooling: sample the site effects centred, non-centred, or "
-                        f"auto (default: centred for sites of at least {CENTRED_MIN_POINTS} points, non-centred "
-                        "for smaller ones); the posterior is the same, only sampling speed differs")
+    p.add_argument("--parametrisation", choices=PARAMETRISATIONS, default="noncentred",
+                   help="with --site and hierarchical pooling: sample the site effects non-centred (default), "
+                        f"centred, or auto (centred for sites of at least {CENTRED_MIN_POINTS} points); the "
+                        "posterior is the same, only sampling speed differs")
     p.add_argument("--design-neighbours", type=int, default=6, metavar="K",
                    help="with --site: grid nodes per side (K x K) used by the sampling-design aid (default 6)")
 
@@ -79,7 +79,7 @@ def run_sites(args, ds) -> int:
     if show:
         print(f"fitting the {pooling} model ...", file=sys.stderr)
     tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None),
-                     parametrisation=_opt(args, "parametrisation", "auto"), **model_kw, **sample_kw)
+                     parametrisation=_opt(args, "parametrisation", "noncentred"), **model_kw, **sample_kw)
     seed = int(json.loads(tree.attrs["settings"])["sampler"]["seed"])  # the independent fit reuses it
     conv = check_convergence(tree)
     tree = with_site_diagnostics(tree, conv.to_json())
