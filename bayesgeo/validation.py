@@ -137,10 +137,10 @@ class SBCConfig:
 
 #: Settings of the quick mode (CI): short chains, few ranks.
 QUICK = SBCConfig(chains=2, draws=200, tune=300, ranks_of=49, thresholds=(("ess_fail", 50.0), ("rhat", 1.05)))
-#: Settings of the full mode. Tuning as long as a default fit's (1,000): with 500 tuning iterations
-#: about half the fits with a nugget failed the convergence check, and longer tuning raised their
-#: smallest ESS about threefold (docs/validation.md, "Unconverged fits").
-FULL = SBCConfig(chains=2, draws=500, tune=1000, ranks_of=99, thresholds=(("ess_fail", 100.0), ("rhat", 1.02)))
+#: Settings of the full mode. About 40% of the fits with a nugget fail the convergence check here
+#: whatever the tuning length (500, 1,000 and 2,000 were compared): the failures come from prior
+#: draws the data barely identify, not from short adaptation (docs/validation.md, "Unconverged fits").
+FULL = SBCConfig(chains=2, draws=500, tune=500, ranks_of=99, thresholds=(("ess_fail", 100.0), ("rhat", 1.02)))
 
 
 def generated_layout(n: int = 28, *, sites: int = 1, side: float = 100.0, seed: int = 0) -> xr.Dataset:

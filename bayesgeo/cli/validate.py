@@ -33,7 +33,7 @@ def add_arguments(p) -> None:
     p.add_argument("--points", type=int, default=None, help="points of a generated layout per site (quick 28, full 60)")
     p.add_argument("--quick", action="store_true", help="CI mode: small layout, 25 replicates, short chains")
     p.add_argument("--draws", type=int, default=None, help="kept draws per chain (quick 200, full 500)")
-    p.add_argument("--tune", type=int, default=None, help="tuning iterations per chain (quick 300, full 1000)")
+    p.add_argument("--tune", type=int, default=None, help="tuning iterations per chain (quick 300, full 500)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://host:8786")
     p.add_argument("--workers", type=int, default=1,
                    help="local processes (default 1: chains already use both cores; each process compiles the model)")
