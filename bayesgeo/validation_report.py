@@ -104,6 +104,15 @@ def _table(summary: dict) -> str:
     return "<table>" + "".join(rows) + "</table>"
 
 
+def _failed_checks_text(summary: dict, *, top: int = 6) -> str:
+    """' Checks failed most often: rhat[sd_z] (3 fits), ...' or '' when none is recorded."""
+    counts = summary.get("failed_checks") or {}
+    if not counts:
+        return ""
+    shown = ", ".join(f"{html.escape(k)} ({v} fit{'s' if v != 1 else ''})" for k, v in list(counts.items())[:top])
+    return f" Checks failed most often: {shown}."
+
+
 def validation_html(runs: list[tuple[xr.Dataset, dict]], *, meta: dict) -> str:
     """The self-contained HTML page for ``runs`` (pairs of SBC result and :func:`sbc_summary`)."""
     parts = [
@@ -133,7 +142,8 @@ def validation_html(runs: list[tuple[xr.Dataset, dict]], *, meta: dict) -> str:
             f"<p>{summary['replicates']} replicates, {result.attrs.get('n')} points, L = {summary['ranks_of']}; "
             f"overall: <span class={'ok' if summary['ok'] else 'bad'}>{'pass' if summary['ok'] else 'FAIL'}</span>. "
             f"Fits failing the convergence check: {len(failed)}"
-            + (f" (replicates {', '.join(map(str, failed))})" if failed else "") + ".</p>",
+            + (f" (replicates {', '.join(map(str, failed))})" if failed else "") + "."
+            + _failed_checks_text(summary) + "</p>",
             _table(summary),
             f"<img alt='rank histograms' src='data:image/png;base64,{_png(rank_figure(result, summary))}'>",
             f"<img alt='coverage' src='data:image/png;base64,{_png(coverage_figure(summary))}'>",

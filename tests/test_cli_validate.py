@@ -50,8 +50,10 @@ def test_validate_machinery_small(tmp_path, capsys):
     assert all(d >= 0 for d in diag["divergences"])
     for verdict, failed in zip(run["verdicts"], diag["failed_checks"]):
         assert (verdict == "fail") == bool(failed), (verdict, failed)
+    assert sum(run["failed_checks"].values()) >= run["verdicts"].count("fail")
     page = (tmp_path / "a" / "validation.html").read_text()
     assert "data:image/png;base64," in page and "licensed professional" in page
+    assert ("Checks failed most often" in page) == ("fail" in run["verdicts"])
     saved = json.loads((tmp_path / "a" / "validation.json").read_text())
     assert saved["runs"][0]["ranks"] == run["ranks"]
     # same seed, same ranks (the compiled model is reused within this process, so this is cheap)
