@@ -79,6 +79,7 @@ pooling = "{pooling}"
 chains = 2
 draws = {draws}
 tune = {tune}
+target_accept = 0.95
 seed = 7
 
 [check]
@@ -112,12 +113,18 @@ def write_sites_study(folder, *, n: int = 30, families=("matern32",), pooling: s
 _SITE_RUNS: dict = {}
 
 
-def sites_run(folder_factory, *, draws: int = 400, tune: int = 400, pooling: str = "complete"):
+#: Settings of the cached several-site run (slow tests): enough for the convergence check on these data.
+SITE_RUN = {"draws": 1000, "tune": 800, "pooling": "complete"}
+
+
+def sites_run(folder_factory, *, draws: int = SITE_RUN["draws"], tune: int = SITE_RUN["tune"],
+              pooling: str = SITE_RUN["pooling"]):
     """Run the tiny several-site study once per test process (cached); return (run folder, result).
 
-    ``folder_factory`` is pytest's ``tmp_path_factory``. 2 chains x ``draws`` (tune ``tune``) with complete
-    pooling: enough for the convergence check to pass or warn on these data, so that every later stage runs
-    (the hierarchical model's between-site sds need more draws with two sites; the demo runs it).
+    ``folder_factory`` is pytest's ``tmp_path_factory``. 2 chains x ``draws`` (tune ``tune``, target
+    acceptance 0.95) with complete pooling, so that the convergence check passes or warns and every later
+    stage runs (2 x 400 draws failed it; the hierarchical model's between-site sds need still more draws
+    with two sites; the demo runs that model).
     """
     from bayesgeo.pipeline import run_study
 

@@ -192,7 +192,7 @@ def test_site_areas_refusals(tmp_path):
                       ("[[20.0, 20.0, 60.0, 60.0], [30.0, 30.0, 40.0, 40.0]]", "two areas fall in site a-yard"),
                       ("{c-dump = [0.0, 0.0, 1.0, 1.0]}", "unknown site\\(s\\) c-dump; sites: a-yard, b-pit")):
         path = write_sites_study(tmp_path, extra=f"area = {area}\n")
-        with pytest.raises(InputError, match=rf"line 32: \[prediction\] area: .*{msg}"):
+        with pytest.raises(InputError, match=rf"line 33: \[prediction\] area: .*{msg}"):
             run_study(path, out=tmp_path / "never")
         assert not (tmp_path / "never").exists()
 
@@ -237,13 +237,13 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
 def test_site_study_twice_gives_identical_numbers(tmp_path, tmp_path_factory):
     """A several-site study run twice (same data, settings, seeds) gives bit-identical posterior draws, per-site
     predictions, shrinkage and design tables (issue 8; nutpie with an integer seed is deterministic, FACTS.md
-    [run]); the first run completes every stage (2 sites x 30 points, complete pooling, 2 chains x 400 draws)."""
-    from _study_helpers import sites_run, write_sites_study
+    [run]); the first run completes every stage (2 sites x 30 points, complete pooling, 2 chains x 1000 draws)."""
+    from _study_helpers import SITE_RUN, sites_run, write_sites_study
 
     root_a, a = sites_run(tmp_path_factory)
     assert a["status"] == 0, a
     assert set(a["verdicts"]) >= {"map:matern32:a-yard", "map:matern32:b-pit", "variogram-check:matern32:b-pit"}
-    b = run_study(write_sites_study(tmp_path, draws=400, tune=400, pooling="complete"), out=tmp_path / "b")
+    b = run_study(write_sites_study(tmp_path, **SITE_RUN), out=tmp_path / "b")
     assert a["verdicts"] == b["verdicts"]
     root_b = tmp_path / "b"
     with xr.open_datatree(root_a / "fits" / "matern32" / "posterior.nc", engine="netcdf4") as pa, \
