@@ -150,6 +150,7 @@ def test_cli_bad_input_one_line_exit_2(tmp_path, capsys):
 
 
 def test_cli_subprocess_no_traceback(tmp_path, write_csv, grid_rows):
+    """Bad input through the real command line: one line on stderr, exit status 2, no Python traceback (behaviour check)."""
     grid_rows[5][1] = "abc"
     path = write_csv(grid_rows)
     proc = subprocess.run([sys.executable, "-m", "bayesgeo.cli", "explore", str(path), "--value", "conc"],

@@ -124,6 +124,7 @@ def test_microergodic():
 
 
 def test_bad_names_and_nu():
+    """Unknown family names, a Matérn without nu and nu on a fixed-smoothness family are refused with the valid names (behaviour check)."""
     with pytest.raises(ValueError, match="unknown covariance 'matren'.*exponential"):
         get_covariance("matren")
     with pytest.raises(ValueError, match="needs its smoothness nu"):

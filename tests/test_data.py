@@ -10,6 +10,7 @@ from bayesgeo.validate import InputError
 
 
 def test_reads_and_keeps_attributes(write_csv, grid_rows):
+    """Intake keeps columns, units and file row numbers (header = row 1) and never modifies the input file (our own promise; no outside reference)."""
     path = write_csv(grid_rows)
     before = path.read_bytes()
     ds = read_points(path, value="conc", units="mg/kg")
@@ -21,22 +22,26 @@ def test_reads_and_keeps_attributes(write_csv, grid_rows):
 
 
 def test_detects_easting_northing_and_value(write_csv, grid_rows):
+    """Column detection finds Easting/Northing and the one remaining numeric column (behaviour check)."""
     rows = [["Easting", "Northing", "lead"]] + grid_rows[1:]
     ds = read_points(write_csv(rows))
     assert (ds.attrs["x_column"], ds.attrs["y_column"], ds.attrs["value_column"]) == ("Easting", "Northing", "lead")
 
 
 def test_missing_file(tmp_path):
+    """A missing file is a one-line input error naming the file (behaviour check)."""
     with pytest.raises(InputError, match=r"nope\.csv: file not found"):
         read_points(tmp_path / "nope.csv")
 
 
 def test_missing_column_lists_available(write_csv, grid_rows):
+    """An unknown --value column is named together with the columns that exist (behaviour check)."""
     with pytest.raises(InputError, match=r"column 'zinc' \(--value\) not found; columns are: x, y, conc"):
         read_points(write_csv(grid_rows), value="zinc")
 
 
 def test_non_numeric_cell(write_csv, grid_rows):
+    """A non-numeric cell such as 'n.d.' is reported with file, row and column (behaviour check)."""
     grid_rows[4][2] = "n.d."
     with pytest.raises(InputError, match=r"points\.csv: row 5, column 'conc': 'n\.d\.' is not a number"):
         read_points(write_csv(grid_rows), value="conc")
@@ -44,6 +49,7 @@ def test_non_numeric_cell(write_csv, grid_rows):
 
 @pytest.mark.parametrize("bad", ["", "nan", "inf", "-Infinity"])
 def test_empty_nan_inf_cells_list_rows(write_csv, grid_rows, bad):
+    """Empty, NaN and infinite cells are reported with their column and file rows (behaviour check)."""
     grid_rows[3][2] = bad
     grid_rows[7][0] = bad if bad else ""
     with pytest.raises(InputError, match=r"column '(x|conc)' has empty, NaN or infinite cells at rows (4|8)"):
@@ -51,17 +57,20 @@ def test_empty_nan_inf_cells_list_rows(write_csv, grid_rows, bad):
 
 
 def test_too_few_points(write_csv, grid_rows):
+    """Fewer than 10 points is refused, listing the rows (the minimum is our documented choice, not an outside fact)."""
     with pytest.raises(InputError, match=r"only 9 points \(rows 2, 3, .*at least 10"):
         read_points(write_csv(grid_rows[:10]), value="conc")
 
 
 def test_too_few_points_per_site(write_csv, grid_rows):
+    """A site with fewer than 10 points is refused by name (behaviour check)."""
     rows = [grid_rows[0] + ["site"]] + [r + (["A"] if i < 18 else ["B"]) for i, r in enumerate(grid_rows[1:])]
     with pytest.raises(InputError, match=r"only 7 points at site 'B'"):
         read_points(write_csv(rows), value="conc", site="site")
 
 
 def test_all_values_equal(write_csv, grid_rows):
+    """Constant values (zero variance, nothing to model) are refused with the value (behaviour check)."""
     for r in grid_rows[1:]:
         r[2] = 5
     with pytest.raises(InputError, match=r"every value in column 'conc' equals 5"):
@@ -69,6 +78,7 @@ def test_all_values_equal(write_csv, grid_rows):
 
 
 def test_duplicate_locations_error_or_mean(write_csv, grid_rows):
+    """Duplicate locations make a singular covariance matrix without a nugget (common practice): an error naming both rows, or averaged with --duplicates mean (the arithmetic mean checked by hand)."""
     grid_rows.append([0, 0, 20.0])  # same place as row 2
     path = write_csv(grid_rows)
     with pytest.raises(InputError, match=r"duplicate locations .* at rows 2, 27; pass --duplicates mean"):
@@ -80,6 +90,7 @@ def test_duplicate_locations_error_or_mean(write_csv, grid_rows):
 
 
 def test_lonlat_lookalike_refused_unless_asked(write_csv):
+    """Degree-like coordinates are refused unless --coords says lonlat or xy; lonlat distances are in km (behaviour check)."""
     rng = np.random.default_rng(0)
     rows = [["x", "y", "v"]] + [[round(8.5 + 0.01 * rng.random(), 5), round(47.3 + 0.01 * rng.random(), 5),
                                  round(rng.normal(), 3)] for _ in range(20)]
@@ -92,11 +103,13 @@ def test_lonlat_lookalike_refused_unless_asked(write_csv):
 
 
 def test_lonlat_out_of_range(write_csv, grid_rows):
+    """Longitudes outside [-180, 180] degrees (the WGS 84 convention, common practice) are reported with their rows."""
     with pytest.raises(InputError, match=r"column 'x' is outside \[-180, 180\] degrees at rows 12, 13, .*\(15 rows\)"):
         read_points(write_csv(grid_rows), value="conc", coords="lonlat")
 
 
 def test_netcdf_roundtrip(tmp_path, write_csv, grid_rows):
+    """A point file written with xarray's NetCDF writer reads back with identical values (xarray is the reference)."""
     ds = read_points(write_csv(grid_rows), value="conc")
     ds.to_netcdf(tmp_path / "pts.nc")
     back = read_points(tmp_path / "pts.nc")
@@ -104,6 +117,7 @@ def test_netcdf_roundtrip(tmp_path, write_csv, grid_rows):
 
 
 def test_demo_data_recorded_truth(tmp_path):
+    """The invented demo set has every recorded parcel, 60-300 points each, a truth file, and refuses to overwrite (behaviour check)."""
     from bayesgeo.demo import write_demo_data
 
     truth = write_demo_data(tmp_path / "demo.csv")
@@ -133,6 +147,7 @@ def test_log_transform(write_csv, grid_rows):
 
 
 def test_only_site_keeps_one_site(write_csv, grid_rows):
+    """--only-site keeps one site's rows with their file row numbers and refuses unknown sites or a missing --site (behaviour check)."""
     rows = [grid_rows[0] + ["site"]] + [r + (["A"] if i % 2 else ["B"]) for i, r in enumerate(grid_rows[1:])]
     rows += [[1000 + 10 * i, 0, 5.0 + i % 3, "A"] for i in range(10)]
     path = write_csv(rows)

@@ -76,6 +76,22 @@ def test_study_reference_names_every_key():
             assert f"| `{key}` |" in text, (table, key)
 
 
+def test_audit_table_lists_every_test():
+    """docs/validation_references.md has a row for every test function, with its docstring (the tests'
+    syntax trees, read with Python's ast module, are the source)."""
+    sys.path.insert(0, str(EXAMPLES))
+    try:
+        from make_validation_references import collect
+    finally:
+        sys.path.remove(str(EXAMPLES))
+    text = (ROOT / "docs" / "validation_references.md").read_text(encoding="utf-8")
+    rows = collect(ROOT / "tests")
+    assert len(rows) > 300
+    missing = [f"{r['file']}::{r['test']}" for r in rows
+               if f"| {r['file']} | `{r['test']}" not in text or (r["doc"] and r["doc"][:40].replace("|", "\\|") not in text)]
+    assert missing == [], f"regenerate with: python examples/make_validation_references.py ({missing[:5]})"
+
+
 @pytest.mark.slow
 def test_fit_check_map_example(tmp_path):
     """The fit-check-map example runs end to end with quick settings and writes maps."""

@@ -11,6 +11,7 @@ from bayesgeo.validate import InputError
 
 
 def test_file_refused_then_overwritten(tmp_path):
+    """An existing output is refused unless overwrite is asked, and an atomic write leaves no temporary file (behaviour check)."""
     p = write_text(tmp_path / "a.txt", "one")
     with pytest.raises(InputError, match=r"a\.txt: already exists; .* --overwrite"):
         write_text(p, "two")
@@ -20,6 +21,7 @@ def test_file_refused_then_overwritten(tmp_path):
 
 
 def test_dir_crash_leaves_old_output(tmp_path):
+    """A crash while writing a replacement folder leaves the previous output intact (atomic rename, behaviour check)."""
     out = tmp_path / "run"
     with atomic_dir(out) as tmp:
         (tmp / "x").write_text("old")
