@@ -248,7 +248,9 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
     for fam in study.families:
         fdir = root / "fits" / fam
         cmds[f"fit:{fam}"] = ["fit", *data, *_fit_options(study, fam), "--pooling", s["model"]["pooling"],
-                              "--out", str(fdir)]
+                              "--out", str(fdir), "--approx", s["model"]["approx"]]
+        if s["model"]["neighbours"] is not None:
+            cmds[f"fit:{fam}"] += ["--neighbours", str(s["model"]["neighbours"])]
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         for site in sites:
             cmds[f"variogram-check:{fam}:{site}"] = [

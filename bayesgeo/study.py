@@ -370,9 +370,6 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
     if pooling == "single" and (isinstance(area, dict) or len(areas_of(area)) > 1):
         fail("prediction", "area", "a single-site study averages over one area; several areas (a list or a "
                                    "table {site = area}) need a several-site study")
-    if pooling != "single" and s["model"]["approx"] == "nn":
-        fail("model", "approx", "the several-site model uses the dense likelihood per site; approx = 'nn' is "
-                                "for single-site studies")
     if pooling != "single" and s["model.priors"]["nugget"] is not None:
         fail("model.priors", "nugget", "the several-site model puts its prior on the nugget fraction of the sill "
                                        "(docs/hierarchical.md); drop the nugget prior")

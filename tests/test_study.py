@@ -140,7 +140,8 @@ SITES = MINIMAL.replace('units = "mg/kg"', 'units = "mg/kg"\nsite = "parcel"')
 def test_several_site_pooling_defaults_and_errors(study_dir):
     """A site column makes a several-site study, hierarchical by default (our documented rule,
     docs/study_file.md); a several-site pooling without a site column, 'single' with one, the nn
-    likelihood and a nugget prior with several sites are refused naming the key and its line."""
+    nugget prior with several sites are refused naming the key and its line; the nn likelihood
+    reaches the several-site fit command (per-site blocks, docs/hierarchical.md)."""
     st = _parse(SITES, study_dir)
     assert st["model"]["pooling"] == "hierarchical" and st.several_sites
     assert _parse(MINIMAL, study_dir)["model"]["pooling"] == "single"
@@ -151,8 +152,12 @@ def test_several_site_pooling_defaults_and_errors(study_dir):
         _parse(MINIMAL + 'pooling = "complete"\n', study_dir)
     with pytest.raises(InputError, match=r"line 11: \[model\] pooling: pooling 'single' fits one site"):
         _parse(SITES + 'pooling = "single"\n', study_dir)
-    with pytest.raises(InputError, match=r"line 11: \[model\] approx: .*dense likelihood"):
-        _parse(SITES + 'approx = "nn"\n', study_dir)
+    from bayesgeo.pipeline import stage_commands
+
+    st = _parse(SITES + 'approx = "nn"\nneighbours = 15\n', study_dir)
+    fit = stage_commands(st, study_dir / "run", sites=["A", "B"])["fit:matern32"]
+    assert fit[fit.index("--approx") + 1] == "nn" and fit[fit.index("--neighbours") + 1] == "15"
+    assert fit[fit.index("--pooling") + 1] == "hierarchical"
     with pytest.raises(InputError, match=r"line 13: \[model.priors\] nugget: .*nugget fraction"):
         _parse(SITES + '\n[model.priors]\nnugget = [0.5, 0.05]\n', study_dir)
 
