@@ -6,6 +6,8 @@ values in mg/kg, bayesgeo.demo.simulate_field), sampled with 2 chains x 150 draw
 whole module is one short real run of every command; the numbers themselves are checked elsewhere
 (tests/test_loo.py, tests/test_cli_check.py, tests/test_cli_compare.py, tests/test_hierarchical.py).
 Here the checks are that the commands chain, exit as documented and write what they promise.
+Measured: 48 s for the module (three sampler runs with their compilation, four maps, two
+comparisons) with a 1-minute load average of about 8 on 2 vCPUs; 92 s under a load of about 15.
 """
 
 from __future__ import annotations
