@@ -226,7 +226,9 @@ def _fit_options(study: Study, fam: str) -> list[str]:
     m, smp = s["model"], s["sampler"]
     fit = ["--covariance", fam, "--trend", str(m["trend"]), "--transform", m["transform"],
            "--draws", str(smp["draws"]), "--tune", str(smp["tune"]), "--chains", str(smp["chains"]),
-           "--target-accept", repr(smp["target_accept"]), "--seed", str(smp["seed"]), "--sampler", smp["name"]]
+           "--seed", str(smp["seed"]), "--sampler", smp["name"]]
+    if smp["target_accept"] is not None:
+        fit += ["--target-accept", repr(smp["target_accept"])]
     if fam == "matern":
         fit += ["--nu", repr(m["nu"])]
     if not m["nugget"]:

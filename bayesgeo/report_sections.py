@@ -377,7 +377,7 @@ def model(ctx: Ctx) -> str:
                    "S₀ = T₀ = 2 × sd of the detrended values, α = 0.05).</p>")
     smp = ctx.settings.get("sampler", {})
     out.append(f"<p>Sampler: {esc(smp.get('name'))} (NUTS), {smp.get('chains')} chains × {smp.get('draws')} draws after "
-               f"{smp.get('tune')} tuning iterations, target acceptance {smp.get('target_accept')}, seed {smp.get('seed')}.</p>")
+               f"{smp.get('tune')} tuning iterations, target acceptance {smp.get('target_accept') or 'by default (0.8; 0.9 with several sites)'}, seed {smp.get('seed')}.</p>")
     return _section("model", "Model and priors", "\n".join(out))
 
 

@@ -79,7 +79,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "chains": ("int", 4, None, "chains"),
         "draws": ("int", 1000, None, "kept draws per chain"),
         "tune": ("int", 1000, None, "tuning iterations per chain"),
-        "target_accept": ("float", 0.8, None, "target acceptance rate, in (0, 1)"),
+        "target_accept": ("float", None, None, "target acceptance rate, in (0, 1) (default 0.8; 0.9 for several-site models)"),
         "seed": ("int", 1, None, "seed of the sampler (same seed, same numbers)"),
     },
     "check": {
@@ -330,7 +330,7 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
         v = s[table][key]
         if v is not None and not 0 <= v <= 3:
             fail(table, key, f"trend order {v} is not one of 0, 1, 2, 3")
-    if not 0.0 < s["sampler"]["target_accept"] < 1.0:
+    if s["sampler"]["target_accept"] is not None and not 0.0 < s["sampler"]["target_accept"] < 1.0:
         fail("sampler", "target_accept", f"expected a number in (0, 1), got {s['sampler']['target_accept']}")
     for table, key in (("explore", "max_lag"), ("prediction", "cell")):
         v = s[table][key]

@@ -36,7 +36,8 @@ def add_arguments(p) -> None:
     p.add_argument("--draws", type=int, default=1000, help="kept draws per chain (default 1000)")
     p.add_argument("--tune", type=int, default=1000, help="tuning iterations per chain (default 1000)")
     p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
-    p.add_argument("--target-accept", type=float, default=0.8, help="target acceptance rate (default 0.8)")
+    p.add_argument("--target-accept", type=float, default=None,
+                   help="target acceptance rate (default 0.8; 0.9 with --site, whose population layer needs smaller steps)")
     p.add_argument("--seed", type=int, default=None, help="seed (default: a fresh one, recorded in the output)")
     p.add_argument("--sampler", choices=("nutpie", "pymc"), default="nutpie", help="NUTS implementation (default nutpie)")
     p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
@@ -69,7 +70,7 @@ def run(args) -> int:
     tree = fit(ds, covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
                covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
                priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
-               target_accept=args.target_accept, seed=args.seed, progressbar=show,
+               target_accept=0.8 if args.target_accept is None else args.target_accept, seed=args.seed, progressbar=show,
                approx=args.approx, neighbours=args.neighbours)
     conv = check_convergence(tree)
     tree = with_diagnostics(tree, conv.to_json())
