@@ -279,6 +279,14 @@ class SiteFitArrays:
         return tuple(self.blocks)
 
 
+def _source_sha256(tree) -> str:
+    """SHA-256 of the fitted data file recorded in the fit's settings ('' when not recorded)."""
+    try:
+        return str(json.loads(tree.attrs["settings"]).get("data", {}).get("source_sha256", "") or "")
+    except (KeyError, TypeError, ValueError, AttributeError):
+        return ""
+
+
 def site_fit_arrays(tree: xr.DataTree) -> SiteFitArrays:
     """Collect the data of a several-site fit and each site's :class:`FitArrays`.
 
@@ -301,10 +309,7 @@ def site_fit_arrays(tree: xr.DataTree) -> SiteFitArrays:
         blocks[label] = fit_arrays(site_fit(tree, label))
         if blocks[label].n != index[label].size:
             raise InputError(f"site {label!r}: the fit holds {blocks[label].n} values but the data {index[label].size}")
-    try:
-        sha = str(json.loads(tree.attrs["settings"]).get("data", {}).get("source_sha256", "") or "")
-    except (KeyError, TypeError, ValueError, AttributeError):
-        sha = ""
+    sha = _source_sha256(tree)
     rows = obs["row"].values if "row" in obs.coords else _find(tree, "row")
     return SiteFitArrays(
         spec=spec, xy=_locations(tree, obs, name), value=value,
@@ -365,10 +370,7 @@ def fit_arrays(tree: xr.DataTree) -> FitArrays:
                         if spec.nugget else np.zeros(pr.shape)),
         "beta_z": np.asarray(post["beta_z"].transpose("chain", "draw", ...).values, dtype=float),
     }
-    try:
-        sha = str(json.loads(tree.attrs["settings"]).get("data", {}).get("source_sha256", "") or "")
-    except (KeyError, TypeError, ValueError, AttributeError):
-        sha = ""
+    sha = _source_sha256(tree)
     rows = obs["row"].values if "row" in obs.coords else _find(tree, "row")
     return FitArrays(
         spec=spec, xy=xy, value=value, z=z, y=(z - spec.value_mean) / spec.value_sd,

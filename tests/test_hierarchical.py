@@ -60,6 +60,19 @@ def fits():
 # --- no sampling ---------------------------------------------------------------------------------
 
 
+def _simple_kriging_mean(data, new, params):
+    """Simple-kriging mean of the first draw at ``new`` from one site's ``data`` (Matérn 3/2), written
+    out with numpy (Cressie 1993, eq. 3.4.57): b0 + c0' K^-1 (z - b0)."""
+    cov = get_covariance("matern32")
+    xy = np.column_stack([data["x"].values, data["y"].values])
+    scale, s2, t2 = (float(np.ravel(params[k].values)[0]) for k in ("scale", "partial_sill", "nugget"))
+    b0 = float(np.ravel(params["beta"].values)[0])
+    d = np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1))
+    k = s2 * cov.correlation(d, scale) + (t2 + 1e-6 * s2) * np.eye(len(xy))
+    c0 = s2 * cov.correlation(np.hypot(*(new[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)), scale)
+    return b0 + c0 @ np.linalg.solve(k, data["value"].values - b0)
+
+
 def test_small_site_is_an_error_naming_site_and_rows():
     """A site with fewer than MIN_POINTS = 10 points: InputError naming the site and its rows (the
     input-check rule of this project); with min_points="pool" it is kept with a warning."""
@@ -350,7 +363,6 @@ def test_site_fit_runs_through_prediction(fits, tmp_path):
     site P3 the predictive mean of the field at new points is the simple-kriging predictor
     beta0 + c0^T K^-1 (z - beta0) (Cressie 1993, Statistics for Spatial Data, eq. 3.4.57), computed here
     with numpy (jitter 1e-6 x partial sill as in likelihood.py; tolerance 1e-4)."""
-    from bayesgeo.covariance import get_covariance
     from bayesgeo.hierarchical import site_fit
     from bayesgeo.predict import basis_from_fit, predict_targets
     from bayesgeo.targets import read_target_points
@@ -363,14 +375,7 @@ def test_site_fit_runs_through_prediction(fits, tmp_path):
     out = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous",
                           include_nugget=False)
     data = ds.isel(obs=np.flatnonzero(ds["site"].values == "P3"))
-    cov = get_covariance("matern32")
-    xy = np.column_stack([data["x"].values, data["y"].values])
-    scale, s2, t2 = (float(np.ravel(params[k].values)[0]) for k in ("scale", "partial_sill", "nugget"))
-    b0 = float(np.ravel(params["beta"].values)[0])
-    d = np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1))
-    k = s2 * cov.correlation(d, scale) + (t2 + 1e-6 * s2) * np.eye(len(xy))
-    c0 = s2 * cov.correlation(np.hypot(*(new[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)), scale)
-    ref = b0 + c0 @ np.linalg.solve(k, data["value"].values - b0)
+    ref = _simple_kriging_mean(data, new, params)
     np.testing.assert_allclose(np.asarray(out["mean"].values).ravel(), ref, rtol=1e-4)
 
 
@@ -542,14 +547,7 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     got = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous",
                           include_nugget=False)
     data = ds.isel(obs=np.flatnonzero(ds["site"].values == "P1"))
-    xy = np.column_stack([data["x"].values, data["y"].values])
-    cov = get_covariance("matern32")
-    scale, s2, t2 = (float(np.ravel(params[k].values)[0]) for k in ("scale", "partial_sill", "nugget"))
-    b0 = float(np.ravel(params["beta"].values)[0])
-    d = np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1))
-    k = s2 * cov.correlation(d, scale) + (t2 + 1e-6 * s2) * np.eye(len(xy))
-    c0 = s2 * cov.correlation(np.hypot(*(new[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)), scale)
-    ref = b0 + c0 @ np.linalg.solve(k, data["value"].values - b0)
+    ref = _simple_kriging_mean(data, new, params)
     np.testing.assert_allclose(np.asarray(got["mean"].values).ravel(), ref, rtol=1e-6)
     code = main(["map", str(out), "--site", "P1", "--points", str(pts), "--draws", "30", "--no-figures",
                  "--allow-unconverged", "--json"])
