@@ -141,8 +141,10 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
     return out
 
 
-def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None) -> list[str]:
-    """The cautions that go with a fit's numbers (model assumptions, regulation, convergence, range)."""
+def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None,
+             approximation: Mapping | None = None) -> list[str]:
+    """The cautions that go with a fit's numbers (model assumptions, regulation, convergence, range,
+    and for nearest-neighbour fits the approximation check of :mod:`bayesgeo.nn_accuracy`)."""
     out = [
         "These are statistical summaries under stated assumptions (a stationary, isotropic Gaussian process "
         f"with a {spec.covariance} covariance{', on the log scale' if spec.transform == 'log' else ''}). "
@@ -159,6 +161,8 @@ def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Ma
             out.append(f"The posterior median practical range ({med:.4g} {spec.distance_units}) exceeds half the "
                        f"largest distance between samples ({spec.distance_scale:.4g}); the data say little about "
                        "the range beyond that, so its upper interval reflects the prior (common practice).")
+    if approximation is not None:
+        out.append(approximation["message"])
     if diagnostics is not None and diagnostics.get("verdict") == "fail":
         out.insert(0, "NOT CONVERGED: the sampler failed its convergence checks; do not use these numbers.")
     return out
@@ -218,9 +222,24 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
               "/observed_data": observed, "/constant_data": constant}
     tree = xr.DataTree.from_dict(groups)
+    approximation = None
+    if spec.approx == "nn":
+        from bayesgeo.nn_accuracy import approximation_check
+
+        approximation = approximation_check(post, np.column_stack([ds["x"].values, ds["y"].values]),
+                                            covariance=spec.covariance, neighbours=spec.neighbours,
+                                            metric=spec.metric)
     tree.attrs = {"title": "bayesgeo single-site Gaussian-process fit", "settings": json.dumps(settings),
-                  "cautions": json.dumps(cautions(spec, post))}
+                  "cautions": json.dumps(cautions(spec, post, approximation=approximation))}
+    if approximation is not None:
+        tree.attrs["approximation"] = json.dumps(to_jsonable(approximation))
     return tree
+
+
+def approximation_of(tree: xr.DataTree) -> dict | None:
+    """The stored nearest-neighbour approximation check of a fit (None for dense fits)."""
+    raw = tree.attrs.get("approximation")
+    return json.loads(raw) if raw else None
 
 
 
@@ -229,7 +248,8 @@ def with_diagnostics(tree: xr.DataTree, diagnostics: Mapping) -> xr.DataTree:
     out = tree.copy()
     spec = fit_spec(tree)
     out.attrs["diagnostics"] = json.dumps(to_jsonable(dict(diagnostics)))
-    out.attrs["cautions"] = json.dumps(cautions(spec, tree["posterior"].to_dataset(), diagnostics))
+    out.attrs["cautions"] = json.dumps(cautions(spec, tree["posterior"].to_dataset(), diagnostics,
+                                                approximation_of(tree)))
     return out
 
 
@@ -289,6 +309,7 @@ def fit_report(tree: xr.DataTree) -> dict:
                     "adaptation": smp["adaptation"]},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
+        "approximation": approximation_of(tree),
         "model": {"covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget, "trend": spec.trend,
                   "covariates": list(spec.covariates), "transform": spec.transform, "n": spec.n,
                   "value_units": spec.model_units, "distance_units": spec.distance_units,
@@ -317,6 +338,10 @@ def summary_text(report: dict) -> str:
         lines.append(name.ljust(width) + "".join(f"{p[c]:12.4g}" for c in cols) + f"  {p['units']}")
     lines.append("")
     lines.append(f"diagnostics: {diag.get('verdict', '?').upper() if diag else 'not checked'}")
+    appr = report.get("approximation")
+    if appr is not None:
+        lines.append(f"nearest-neighbour approximation: {appr['status'].upper()} (interval width ratio up to "
+                     f"{max(appr[p]['width_ratio'] for p in appr['parameters']):.2f}, limit {appr['limit']:.2f})")
     lines.append("")
     lines += [f"- {c}" for c in report["cautions"]]
     return "\n".join(lines) + "\n"

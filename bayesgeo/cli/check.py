@@ -66,6 +66,9 @@ def run(args) -> int:
     conv = check_convergence(tree, var_names=args.var or None)
     bar.update()
     result = conv.to_json()
+    from bayesgeo.posterior import approximation_of
+
+    result["approximation"] = approximation_of(tree)
     by_site = site_convergence(tree, conv)
     if by_site is not None:
         result.update(sites=by_site["sites"], population=by_site["population"], site_note=by_site["note"])
@@ -127,6 +130,15 @@ def _print_human(conv, result, print_table, caution) -> None:
             print(f"      advice: {group[0]['advice']}")
     if "sites" in result:
         _print_sites(result, print_table)
+    appr = result.get("approximation")
+    if appr is not None:
+        print()
+        print(f"nearest-neighbour approximation: {appr['status'].upper()}")
+        print_table([{"parameter": p, **{c: f"{appr[p][c]:.3g}" for c in
+                                         ("nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency")}}
+                     for p in appr["parameters"]],
+                    ["parameter", "nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency"])
+        print(f"  {appr['message']}")
     print()
     print(f"verdict: {conv.verdict.upper()}" + (" (whole posterior)" if "sites" in result else ""))
     print(f"caution: {caution}")
