@@ -159,3 +159,35 @@ def test_approximation_check_flags_too_narrow_intervals():
     good = approximation_check(post, xy, covariance="exponential", neighbours=20)
     assert good["status"] == "ok"
     assert max(good[p]["width_ratio"] for p in good["parameters"]) <= good["limit"]
+
+
+def test_cli_fit_and_check_report_the_approximation_check(tmp_path, capsys):
+    """`fit --approx nn --json` carries the approximation check (evaluated at the stored posterior
+    medians) and `check --json` repeats it; a dense fit has none. The medians are recomputed here
+    from posterior.nc with numpy (the check must describe the saved fit)."""
+    import json
+
+    import xarray as xr
+
+    from bayesgeo.cli import main
+    from bayesgeo.demo import simulate_field
+
+    rng = np.random.default_rng(11)
+    xy = 500.0 * rng.random((50, 2))
+    z = simulate_field(xy, covariance="exponential", practical_range=150.0, partial_sill=1.0, nugget=0.2,
+                       mean=2.0, rng=rng)
+    data = tmp_path / "pts.csv"
+    data.write_text("x,y,value\n" + "".join(f"{a:.2f},{b:.2f},{c:.4f}\n" for (a, b), c in zip(xy, z)))
+    base = ["fit", str(data), "--covariance", "exponential", "--draws", "60", "--tune", "60", "--chains", "1",
+            "--seed", "2", "--json"]
+    main([*base, "--approx", "nn", "--neighbours", "6", "--out", str(tmp_path / "nn")])
+    fit_json = json.loads(capsys.readouterr().out)
+    appr = fit_json["approximation"]
+    assert appr["neighbours"] == 6 and appr["window_points"] == 50 and appr["status"] in ("ok", "caution")
+    post = xr.open_datatree(tmp_path / "nn" / "posterior.nc")["posterior"]
+    assert appr["at"]["scale"] == pytest.approx(float(np.median(post["scale"].values)))
+    assert any(c.startswith("Nearest-neighbour likelihood (m = 6)") for c in fit_json["cautions"])
+    main(["check", str(tmp_path / "nn"), "--no-figures", "--json"])
+    assert json.loads(capsys.readouterr().out)["approximation"] == appr
+    main([*base, "--approx", "dense", "--out", str(tmp_path / "dense")])
+    assert json.loads(capsys.readouterr().out)["approximation"] is None
