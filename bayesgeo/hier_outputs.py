@@ -351,7 +351,8 @@ def with_site_diagnostics(tree: xr.DataTree, diagnostics) -> xr.DataTree:
     out = tree.copy()
     diag = to_jsonable(dict(diagnostics))
     out.attrs["diagnostics"] = json.dumps(diag)
-    out.attrs["cautions"] = json.dumps(site_cautions(site_spec(tree), tree["posterior"].to_dataset(), diag))
+    out.attrs["cautions"] = json.dumps(site_cautions(site_spec(tree), tree["posterior"].to_dataset(), diag,
+                                                     json.loads(tree.attrs.get("approximation", "{}"))))
     return out
 
 
@@ -412,6 +413,7 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
         "population": population_block(tree, prob=prob),
         "new_site": new_site_block(tree, prob=prob),
         "cautions": json.loads(tree.attrs.get("cautions", "[]")),
+        "approximation": json.loads(tree.attrs["approximation"]) if "approximation" in tree.attrs else None,
     }
     if shrinkage is not None:
         out["shrinkage"] = table_rows(shrinkage)

@@ -66,7 +66,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.covariance import get_covariance
-from bayesgeo.io import plain_attr
+from bayesgeo.io import plain_attr, to_jsonable
 from bayesgeo.priors import Priors
 from bayesgeo.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, MIN_POINTS_POLICIES, PARAMETRISATIONS,
                                   POOLINGS, SiteData, SiteSpec, site_inputs)
@@ -313,10 +313,28 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         "data": {k: plain_attr(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs", "x_column",
                                                            "y_column", "value_column", "site_column")},
     }
+    approximation = _site_approximation(spec, post, constant)
     tree.attrs = {"title": f"bayesgeo several-site Gaussian-process fit ({spec.pooling} pooling)",
                   "settings": json.dumps(settings), "pooling": spec.pooling,
-                  "cautions": json.dumps(site_cautions(spec, post))}
+                  "cautions": json.dumps(site_cautions(spec, post, approximation=approximation))}
+    if approximation:
+        tree.attrs["approximation"] = json.dumps(to_jsonable(approximation))
     return tree
+
+
+def _site_approximation(spec: SiteSpec, post: xr.Dataset, constant: xr.Dataset) -> dict:
+    """{site: approximation check} for the sites fitted with the nearest-neighbour likelihood."""
+    from bayesgeo.nn_accuracy import approximation_check
+
+    out = {}
+    for i, site in enumerate(spec.sites):
+        if not spec.site_approx or spec.site_approx[i] != "nn":
+            continue
+        pick = np.flatnonzero(constant["site"].values == site)
+        xy = np.column_stack([constant["x"].values[pick], constant["y"].values[pick]])
+        out[site] = approximation_check(post.sel(site=site), xy, covariance=spec.covariance,
+                                        neighbours=spec.site_neighbours[i], metric=spec.metric)
+    return out
 
 
 
@@ -337,8 +355,10 @@ def site_spec(tree: xr.DataTree) -> SiteSpec:
         raise InputError(f"not a bayesgeo several-site fit (settings missing or unreadable: {err})") from None
 
 
-def site_cautions(spec: SiteSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None) -> list[str]:
-    """Cautions of a several-site fit: the single-site ones, the pooling ones and small-site warnings."""
+def site_cautions(spec: SiteSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None,
+                  approximation: Mapping | None = None) -> list[str]:
+    """Cautions of a several-site fit: the single-site ones, the pooling ones, small-site warnings and
+    the nearest-neighbour approximation check of each nn site."""
     from bayesgeo.hier_outputs import CAUTIONS
     from bayesgeo.posterior import cautions
 
@@ -352,6 +372,7 @@ def site_cautions(spec: SiteSpec, posterior: xr.Dataset | None = None, diagnosti
                        "its upper interval reflects the prior and the population (common practice).")
     out += list(CAUTIONS) if spec.pooling != "independent" else list(CAUTIONS[:2])
     out += list(spec.warnings)
+    out += [f"Site {site}: {check['message']}" for site, check in (approximation or {}).items()]
     return out
 
 
@@ -385,7 +406,8 @@ def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
            "extracted_from": {"format": settings.get("format"), "pooling": spec.pooling, "site": site}}
     from bayesgeo.posterior import cautions
 
-    cav = cautions(fs, groups["/posterior"])
+    appr = json.loads(tree.attrs.get("approximation", "{}")).get(site)
+    cav = cautions(fs, groups["/posterior"], approximation=appr)
     cav.append(f"Site {site!r} extracted from a {spec.pooling} several-site fit: its parameters borrow strength "
                "from the other sites." if spec.pooling != "independent"
                else f"Site {site!r} extracted from an independent several-site fit.")
@@ -393,4 +415,6 @@ def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
                  "settings": json.dumps(one), "cautions": json.dumps(cav), "site": site}
     if "diagnostics" in tree.attrs:
         out.attrs["diagnostics"] = tree.attrs["diagnostics"]
+    if appr is not None:
+        out.attrs["approximation"] = json.dumps(appr)
     return out

@@ -539,6 +539,12 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     assert site_spec(back).site_approx == ("nn", "nn") and site_spec(back).site_neighbours == (10, 10)
     one = site_fit(back, "P1")
     assert fit_spec(one).approx == "nn" and fit_spec(one).neighbours == 10
+    # each nn site carries its approximation check at that site's posterior medians (bayesgeo.nn_accuracy)
+    checks = json.loads(back.attrs["approximation"])
+    assert set(checks) == {"P1", "P2"} and checks["P1"]["window_points"] == 25
+    assert checks["P2"]["at"]["scale"] == pytest.approx(float(np.median(back["posterior"]["scale"].sel(site="P2").values)))
+    assert json.loads(one.attrs["approximation"]) == checks["P1"]
+    assert any(c.startswith("Site P2: Nearest-neighbour likelihood") for c in json.loads(back.attrs["cautions"]))
     new = np.array([[10.0, 20.0], [50.0, 55.0], [90.0, 90.0]])
     pts = tmp_path / "pts.csv"
     pts.write_text("x,y\n" + "".join(f"{a},{b}\n" for a, b in new))

@@ -131,14 +131,8 @@ def _print_human(conv, result, print_table, caution) -> None:
     if "sites" in result:
         _print_sites(result, print_table)
     appr = result.get("approximation")
-    if appr is not None:
-        print()
-        print(f"nearest-neighbour approximation: {appr['status'].upper()}")
-        print_table([{"parameter": p, **{c: f"{appr[p][c]:.3g}" for c in
-                                         ("nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency")}}
-                     for p in appr["parameters"]],
-                    ["parameter", "nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency"])
-        print(f"  {appr['message']}")
+    if appr:
+        _print_approximation(appr, print_table)
     print()
     print(f"verdict: {conv.verdict.upper()}" + (" (whole posterior)" if "sites" in result else ""))
     print(f"caution: {caution}")
@@ -171,3 +165,15 @@ def _grouped(problems: list[dict]) -> dict:
 def _fmt(template: str, value) -> str:
     value = float("nan") if value is None else float(value)
     return template.format(value) if value == value else "n/a"
+
+
+def _print_approximation(appr: dict, print_table) -> None:
+    """The nearest-neighbour approximation check: one table (single site) or one per nn site."""
+    checks = {"": appr} if "parameters" in appr else {f" (site {k})": v for k, v in appr.items()}
+    cols = ("nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency")
+    for label, one in checks.items():
+        print()
+        print(f"nearest-neighbour approximation{label}: {one['status'].upper()}")
+        print_table([{"parameter": p, **{c: f"{one[p][c]:.3g}" for c in cols}} for p in one["parameters"]],
+                    ["parameter", *cols])
+        print(f"  {one['message']}")
