@@ -43,6 +43,7 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import xarray as xr
@@ -158,7 +159,8 @@ class FitArrays:
     design : ndarray (n, p)
         Trend design matrix.
     dist : ndarray (n, n)
-        Distances divided by ``spec.distance_scale``.
+        Distances divided by ``spec.distance_scale``; a property computed on first use, so
+        nearest-neighbour fits of many points never build it.
     draws : dict of str to ndarray
         ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (zeros without nugget), each
         (chain, draw), and ``beta_z`` (chain, draw, term), on the standardised scale.
@@ -180,7 +182,6 @@ class FitArrays:
     z: np.ndarray
     y: np.ndarray
     design: np.ndarray
-    dist: np.ndarray
     draws: dict
     chain: np.ndarray
     draw: np.ndarray
@@ -193,6 +194,11 @@ class FitArrays:
     def n(self) -> int:
         """Number of observations."""
         return int(self.value.size)
+
+    @cached_property
+    def dist(self) -> np.ndarray:
+        """(n, n) distances divided by ``spec.distance_scale`` (O(n^2) memory: dense fits only)."""
+        return distance_matrix(self.xy, self.spec.metric) / self.spec.distance_scale
 
 
 def _observed(tree: xr.DataTree) -> tuple[xr.Dataset, str]:
@@ -374,8 +380,7 @@ def fit_arrays(tree: xr.DataTree) -> FitArrays:
     rows = obs["row"].values if "row" in obs.coords else _find(tree, "row")
     return FitArrays(
         spec=spec, xy=xy, value=value, z=z, y=(z - spec.value_mean) / spec.value_sd,
-        design=np.asarray(design, dtype=float),
-        dist=distance_matrix(xy, spec.metric) / spec.distance_scale, draws=draws,
+        design=np.asarray(design, dtype=float), draws=draws,
         chain=np.asarray(pr["chain"].values), draw=np.asarray(pr["draw"].values), obs_name=name,
         obs_index=np.asarray(obs["obs"].values) if "obs" in obs.coords else np.arange(value.size),
         rows=np.arange(2, value.size + 2) if rows is None else np.asarray(rows, dtype=np.int64),
@@ -408,8 +413,12 @@ def draw_covariances(fa: FitArrays, index: np.ndarray | None = None):
 # --- public functions on fits -------------------------------------------------------------------
 
 
-def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.Dataset:
+def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None, progress=None) -> xr.Dataset:
     """Exact leave-one-out predictive of every point for every posterior draw.
+
+    A nearest-neighbour fit (``spec.approx == "nn"``; for a several-site fit, each site block
+    with ``site_approx`` "nn") gets the nearest-neighbour leave-one-out of
+    :func:`bayesgeo.loo_nn.nn_loo_predictive` instead: no n x n matrix, O(S n m^3).
 
     Parameters
     ----------
@@ -418,6 +427,10 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.
         predictive then uses its own site's points only; module docstring).
     arrays : FitArrays or SiteFitArrays, optional
         ``any_fit_arrays(tree)`` when already at hand.
+    progress : callable, optional
+        ``progress(total=..., desc=...)`` returning a bar with ``update(int)`` used as a context
+        manager (such as :func:`bayesgeo.cli._common.progress` with ``enabled`` bound); used for
+        the nearest-neighbour leave-one-out, counting points.
 
     Returns
     -------
@@ -430,7 +443,14 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.
     """
     fa = any_fit_arrays(tree) if arrays is None else arrays
     if isinstance(fa, SiteFitArrays):
-        return _site_loo_predictive(fa)
+        return _site_loo_predictive(fa, progress=progress)
+    if fa.spec.approx == "nn":
+        from bayesgeo.loo_nn import nn_loo_predictive
+
+        if progress is None:
+            return nn_loo_predictive(fa)
+        with progress(total=fa.n, desc="nearest-neighbour LOO") as bar:
+            return nn_loo_predictive(fa, progress=bar)
     nc, nd = fa.draws["sd_z"].shape
     mean = np.empty((nc * nd, fa.n))
     var = np.empty((nc * nd, fa.n))
@@ -438,22 +458,37 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None) -> xr.
     for k, mu, c in draw_covariances(fa):
         m, v, lp = _loo_one(fa.y - mu, c)
         mean[k], var[k], logp[k] = m + mu, v, lp
+    return _predictive_dataset(fa, mean, var, logp, method="exact Gaussian leave-one-out (Sundararajan and "
+                               "Keerthi 2001; Rasmussen and Williams 2006, eq. 5.12)")
+
+
+def _predictive_dataset(fa: FitArrays, mean: np.ndarray, var: np.ndarray, logp: np.ndarray, *,
+                        method: str) -> xr.Dataset:
+    """The :func:`loo_predictive` Dataset from (draws, n) moments and log densities on the standardised scale.
+
+    The three arrays are converted in place (no copies: at large n they are the bulk of the memory).
+    """
+    nc, nd = fa.draws["sd_z"].shape
     s, m0 = fa.spec.value_sd, fa.spec.value_mean
     jac = -math.log(s) - (fa.z if fa.spec.transform == "log" else 0.0)
+    mean *= s
+    mean += m0
+    np.sqrt(var, out=var)
+    var *= s
+    logp += jac
     units = fa.spec.model_units
     dims = ("chain", "draw", "obs")
     shape = (nc, nd, fa.n)
     out = xr.Dataset(
         {
-            "loo_mean": (dims, (m0 + s * mean).reshape(shape), {"units": units, "long_name": "leave-one-out predictive mean"}),
-            "loo_sd": (dims, (s * np.sqrt(var)).reshape(shape), {"units": units, "long_name": "leave-one-out predictive sd"}),
-            "log_lik": (dims, (logp + jac).reshape(shape),
+            "loo_mean": (dims, mean.reshape(shape), {"units": units, "long_name": "leave-one-out predictive mean"}),
+            "loo_sd": (dims, var.reshape(shape), {"units": units, "long_name": "leave-one-out predictive sd"}),
+            "log_lik": (dims, logp.reshape(shape),
                         {"long_name": "log p(v_i | v_-i) per draw, data units (Jacobian included)"}),
         },
         coords={"chain": fa.chain, "draw": fa.draw, "obs": fa.obs_index,
                 "x": ("obs", fa.xy[:, 0]), "y": ("obs", fa.xy[:, 1]), "row": ("obs", fa.rows)},
-        attrs={"method": "exact Gaussian leave-one-out (Sundararajan and Keerthi 2001; Rasmussen and Williams 2006, eq. 5.12)",
-               "transform": fa.spec.transform or "none", "model_units": units},
+        attrs={"method": method, "transform": fa.spec.transform or "none", "model_units": units},
     )
     return out
 
@@ -512,9 +547,12 @@ def add_log_likelihood(tree: xr.DataTree, *, predictive: xr.Dataset | None = Non
     return out
 
 
-def _site_loo_predictive(sfa: SiteFitArrays) -> xr.Dataset:
+def _site_loo_predictive(sfa: SiteFitArrays, *, progress=None) -> xr.Dataset:
     """:func:`loo_predictive` of every site block, put back along ``obs`` in data order."""
-    parts = {label: loo_predictive(None, arrays=fa) for label, fa in sfa.blocks.items()}
+    parts = {label: loo_predictive(None, arrays=fa, progress=progress) for label, fa in sfa.blocks.items()}
+    methods = list(dict.fromkeys(p.attrs["method"].split(":")[0] for p in parts.values()))
+    nn_sites = [s for s in sfa.sites if "caution" in parts[s].attrs]  # nearest-neighbour blocks
+    extra = {"caution": f"sites {', '.join(nn_sites)}: {parts[nn_sites[0]].attrs['caution']}"} if nn_sites else {}
     first = next(iter(parts.values()))
     shape = (first.sizes["chain"], first.sizes["draw"], sfa.n)
     data = {k: np.full(shape, np.nan) for k in ("loo_mean", "loo_sd", "log_lik")}
@@ -527,8 +565,10 @@ def _site_loo_predictive(sfa: SiteFitArrays) -> xr.Dataset:
         coords={"chain": first["chain"].values, "draw": first["draw"].values, "obs": sfa.obs_index,
                 "x": ("obs", sfa.xy[:, 0]), "y": ("obs", sfa.xy[:, 1]), "row": ("obs", sfa.rows),
                 "site": ("obs", sfa.site)},
-        attrs={**first.attrs, "method": first.attrs["method"] + "; one block per site (sites independent given "
+        attrs={**{k: v for k, v in first.attrs.items() if k not in ("loo_neighbours", "caution")}, **extra,
+               "method": "; ".join(methods) + "; one block per site (sites independent given "
                "the parameters), each point conditioned on its own site's points only",
+               "site_method": [parts[s].attrs["method"] for s in sfa.sites],
                "pooling": sfa.spec.pooling},
     )
     return out

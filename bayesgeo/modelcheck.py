@@ -200,7 +200,7 @@ def fit_loo(tree: xr.DataTree, *, predictive: xr.Dataset | None = None):
 
 
 def compare_fits(fits: Mapping[str, xr.DataTree], *, site: str | None = None,
-                 k_threshold: float = PARETO_K_THRESHOLD) -> xr.Dataset:
+                 k_threshold: float = PARETO_K_THRESHOLD, progress=None) -> xr.Dataset:
     """Rank fits of the same data by their PSIS-LOO expected log predictive density.
 
     Parameters
@@ -218,6 +218,8 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, site: str | None = None,
     k_threshold : float
         Pareto k above which a point's importance-sampling estimate is counted as unreliable
         (default 0.7, Vehtari et al. 2024).
+    progress : callable, optional
+        Bar factory for the nearest-neighbour leave-one-out of nn fits (:func:`bayesgeo.loo.loo_predictive`).
 
     Returns
     -------
@@ -249,7 +251,8 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, site: str | None = None,
         fits = _restrict_to_site(fits, site)
     arrays = {name: any_fit_arrays(tree) for name, tree in fits.items()}
     cautions = check_same_data(arrays)
-    preds = {name: loo_predictive(tree, arrays=arrays[name]) for name, tree in fits.items()}
+    preds = {name: loo_predictive(tree, arrays=arrays[name], progress=progress) for name, tree in fits.items()}
+    cautions += [f"{k}: {p.attrs['caution']}" for k, p in preds.items() if p.attrs.get("caution")]
     elpds = {name: fit_loo(tree, predictive=preds[name]) for name, tree in fits.items()}
     pits = {name: _pit(arrays[name], preds[name], elpds[name]) for name in fits}
     table = az.compare(elpds, round_to="none")
@@ -291,7 +294,7 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, site: str | None = None,
         cautions.append(f"{', '.join(close)} not clearly worse than {order[0]} (|elpd_diff| < 4 or < 2 dse)")
     cautions.append(CAUTION)
     out.attrs.update({
-        "method": "PSIS-LOO (arviz.loo / arviz.compare) on exact Gaussian leave-one-out densities per draw",
+        "method": "PSIS-LOO (arviz.loo / arviz.compare) on " + "; ".join(sorted({p.attrs["method"] for p in preds.values()})),
         "k_threshold": float(k_threshold),
         "k_threshold_source": "Vehtari, Simpson, Gelman, Yao and Gabry (2024), JMLR 25, Pareto smoothed importance sampling",
         "n": n,
