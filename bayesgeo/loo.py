@@ -535,11 +535,11 @@ def add_log_likelihood(tree: xr.DataTree, *, predictive: xr.Dataset | None = Non
         named after the observed value), so ``arviz.loo(out)`` gives PSIS-LOO in data units.
         An existing ``log_likelihood`` group is replaced.
     """
-    ll = pointwise_loo_loglik(tree, predictive=predictive)
+    pred = loo_predictive(tree) if predictive is None else predictive
+    ll = pointwise_loo_loglik(tree, predictive=pred)
     ds = ll.to_dataset()
     ds.attrs.update({
-        "method": "exact Gaussian leave-one-out conditional per draw (Sundararajan and Keerthi 2001; "
-                  "Buerkner, Gabry and Vehtari 2021)",
+        "method": f"leave-one-out conditional per draw (Buerkner, Gabry and Vehtari 2021): {pred.attrs['method']}",
         "scale": "data units (log-Jacobian of standardisation and transform included)",
     })
     out = tree.copy()

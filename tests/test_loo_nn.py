@@ -194,8 +194,10 @@ def test_compare_two_nn_fits_end_to_end(tmp_path, capsys):
     for row in obj["ranking"]:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # Pareto k notes of ArviZ on 40 draws
-            ref = az.loo(add_log_likelihood(trees[row["fit"]]), var_name="value").elpd
+            stored = add_log_likelihood(trees[row["fit"]])
+            ref = az.loo(stored, var_name="value").elpd
         assert row["elpd_loo"] == pytest.approx(ref, rel=1e-10)
+        assert "nearest-neighbour" in stored["log_likelihood"].attrs["method"]
     fa = fit_arrays(trees["exp"])
     nn_loo_predictive(fa)
     assert "dist" not in fa.__dict__
