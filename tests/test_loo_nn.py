@@ -65,7 +65,8 @@ def test_all_other_points_give_the_exact_loo():
     (bayesgeo.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12) to rounding, under a log
     transform with a linear trend; and for a few points and draws it equals explicit conditioning
     (numpy.linalg.solve on scikit-learn's Matern 3/2 covariance) with the density from
-    scipy.stats.norm, moved to data units by the change of variables log p(v) = log p(y) - log s - log v."""
+    scipy.stats.norm, moved to data units by the change of variables log p(v) = log p(y) - log s - log v.
+    The same identity holds for lon/lat points (great-circle distances)."""
     ds = simulated(25, seed=41, log=True)
     dense = make_fit(ds, transform="log", trend=1, ndraw=6, seed=2, spread=0.3)
     nn = as_nn(dense, neighbours=20)
@@ -89,6 +90,12 @@ def test_all_other_points_give_the_exact_loo():
             assert float(a["log_lik"][c, d, i]) == pytest.approx(ref, abs=1e-8)
             assert float(a["loo_mean"][c, d, i]) == pytest.approx(spec.value_mean + spec.value_sd * (mu[i] + m), abs=1e-8)
             assert float(a["loo_sd"][c, d, i]) == pytest.approx(spec.value_sd * math.sqrt(v), rel=1e-8)
+    # lon/lat points: great-circle distances in the kernel, unit vectors in the neighbour search
+    ll = ds.assign_coords(x=-1.5 + ds["x"] / 1000.0, y=53.0 + ds["y"] / 1000.0).assign_attrs(coords="lonlat")
+    dense = make_fit(ll, transform="log", ndraw=3, seed=3, spread=0.3)
+    assert json.loads(dense.attrs["settings"])["model"]["metric"] == "greatcircle"
+    a, b = loo_predictive(as_nn(dense)), loo_predictive(dense)
+    np.testing.assert_allclose(a["log_lik"].values, b["log_lik"].values, rtol=1e-9, atol=1e-10)
 
 
 def test_thirty_neighbours_close_to_exact_on_exponential_field():
