@@ -14,7 +14,7 @@ Part 2 (speed): one log-density + gradient of the product's model (bayesgeo.mode
   earlier pure-Python version (kept below as maximin_order_python) in the same run.
 Part 3 (fit, --fit): one n = 1,000 data set simulated exactly from the family under test
   (--fit-family, default matern32), fitted with the product's two models,
-  build_model(approx="dense") and build_model(approx="nn", neighbours=m) (--fit-m, default 20),
+  build_model(approx="dense") and build_model(approx="nn", neighbours=m) (--fit-m, default 20; several values give one nn fit each against one dense fit),
   which differ only in the likelihood (same priors, same standardisation); nutpie, --fit-chains
   chains (default 2), low-rank adaptation, the same seed. For the posterior 5/50/95% quantiles of
   practical range, partial sill and nugget: nn - dense, the Monte Carlo standard error of each
@@ -23,7 +23,7 @@ Part 3 (fit, --fit): one n = 1,000 data set simulated exactly from the family un
   |nn - dense| <= 2 x combined MCSE (a 2-sigma rule, common practice).
 
 `OPENBLAS_NUM_THREADS=1 python bench/bench_vecchia.py [--skip-accuracy] [--skip-speed] [--fit
-[--fit-family exponential] [--fit-chains 4] [--fit-m 20] [--tune 500] [--draws 1000]]`: prints and appends a section
+[--fit-family exponential] [--fit-chains 4] [--fit-m 20 40 60] [--tune 500] [--draws 1000]]`: prints and appends a section
 "Nearest-neighbour likelihood" to bench/RESULTS.md.
 """
 
@@ -270,39 +270,62 @@ def _fit_one(model, spec, *, tune: int, draws: int, chains: int, seed: int) -> d
             "max_rhat": float(max(float(rhat[k]) for k in PARAMS))}
 
 
+def expected_spread(ds: xr.Dataset, family: str, m: int) -> dict:
+    """Expected sd of nn - dense estimates, in exact posterior sds (Hausman 1978), from nn_information.
+
+    For an efficient (exact) estimator and a consistent one (nn), var(nn - exact) = var(nn) -
+    var(exact), so the difference has sd sqrt(sampling_sd^2 - exact_sd^2) / exact_sd in units of the
+    exact estimate's sd (log parameters, at the true values, on the data's own layout).
+    """
+    from bayesgeo.nn_accuracy import nn_information
+
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    info = nn_information(xy, family, get_covariance(family).scale_from_range(300.0), 1.0, 0.25, neighbours=m)
+    keys = {"scale": "practical_range", "partial_sill": "partial_sill", "nugget": "nugget"}
+    return {keys[k]: float(np.sqrt(max(info[k]["nn_sampling_sd"] ** 2 - info[k]["exact_sd"] ** 2, 0.0))
+                           / info[k]["exact_sd"]) for k in info["parameters"]}
+
+
 def fit_comparison(n: int, tune: int, draws: int, seed: int, *, family: str = "matern32", chains: int = 2,
-                   m: int = M_FIT) -> dict:
-    """Fit one exact data set with the product's dense and nn models; compare quantiles against MC error."""
+                   ms=(M_FIT,)) -> dict:
+    """Fit one exact data set with the product's dense model and nn models for each m; compare quantiles."""
     ds = exact_dataset(n, 4242, family)
     dense, spec = build_model(ds, covariance=family, approx="dense")
-    nn, spec_nn = build_model(ds, covariance=family, approx="nn", neighbours=m)
-    a, b = spec.to_dict(), spec_nn.to_dict()
-    differ = sorted(k for k in a if a[k] != b[k])
-    if differ != ["approx", "neighbours"]:
-        raise AssertionError(f"the dense and nn models differ in more than the likelihood: {differ}")
-    nn_label = f"nn m={spec_nn.neighbours}"
-    out = {"n": n, "tune": tune, "draws": draws, "chains": chains, "family": family, "m": spec_nn.neighbours,
-           "seed": seed, "truth": {"practical_range": 300.0, "partial_sill": 1.0, "nugget": 0.25}}
-    for label, model in (("dense", dense), (nn_label, nn)):
+    models = [("dense", dense)]
+    for m in ms:
+        nn, spec_nn = build_model(ds, covariance=family, approx="nn", neighbours=m)
+        a, b = spec.to_dict(), spec_nn.to_dict()
+        differ = sorted(k for k in a if a[k] != b[k])
+        if differ != ["approx", "neighbours"]:
+            raise AssertionError(f"the dense and nn models differ in more than the likelihood: {differ}")
+        models.append((f"nn m={spec_nn.neighbours}", nn))
+    out = {"n": n, "tune": tune, "draws": draws, "chains": chains, "family": family, "ms": list(ms),
+           "seed": seed, "truth": {"practical_range": 300.0, "partial_sill": 1.0, "nugget": 0.25},
+           "labels": [lb for lb, _ in models]}
+    for label, model in models:
         r = _fit_one(model, spec, tune=tune, draws=draws, chains=chains, seed=seed)
         out[label] = r
         print(f"fit {family} {label}: {r['wall_s']:.0f} s, {r['steps']:.1f} steps/draw, {r['divergences']} divergences, "
               f"max R-hat {r['max_rhat']:.3f}; " + "; ".join(
                   f"{k} {v[0]:.3g} / {v[1]:.3g} / {v[2]:.3g}" for k, v in r["q"].items()), flush=True)
-    rows, ok = [], True
-    for k in ROWS:
-        for i, p in enumerate(QUANTILES):
-            diff = out[nn_label]["q"][k][i] - out["dense"]["q"][k][i]
-            se = float(np.hypot(out[nn_label]["mcse"][k][i], out["dense"]["mcse"][k][i]))
-            ratio = abs(diff) / se if se > 0 else float("inf")
-            ok = ok and (ratio <= 2.0 or k not in PARAMS)
-            rows.append({"param": k, "prob": p, "dense": out["dense"]["q"][k][i], "nn": out[nn_label]["q"][k][i],
-                         "diff": diff, "rel": diff / out["dense"]["q"][k][i], "mcse_dense": out["dense"]["mcse"][k][i],
-                         "mcse_nn": out[nn_label]["mcse"][k][i], "mcse": se, "ratio": ratio,
-                         "shift_sd": diff / out["dense"]["sd"][k]})
-    out["rows"], out["within_mc_error"] = rows, ok
-    print(f"fit {family}: {'within MC error' if ok else 'NOT within MC error'} "
-          f"(largest |difference| / combined MCSE {max(r['ratio'] for r in rows if r['param'] in PARAMS):.1f})", flush=True)
+    out["compare"] = {}
+    for (label, _), m in zip(models[1:], ms):
+        rows, ok = [], True
+        for k in ROWS:
+            for i, p in enumerate(QUANTILES):
+                diff = out[label]["q"][k][i] - out["dense"]["q"][k][i]
+                se = float(np.hypot(out[label]["mcse"][k][i], out["dense"]["mcse"][k][i]))
+                ratio = abs(diff) / se if se > 0 else float("inf")
+                ok = ok and (ratio <= 2.0 or k not in PARAMS)
+                rows.append({"param": k, "prob": p, "dense": out["dense"]["q"][k][i], "nn": out[label]["q"][k][i],
+                             "diff": diff, "rel": diff / out["dense"]["q"][k][i], "mcse_dense": out["dense"]["mcse"][k][i],
+                             "mcse_nn": out[label]["mcse"][k][i], "mcse": se, "ratio": ratio,
+                             "shift_sd": diff / out["dense"]["sd"][k]})
+        spread = expected_spread(ds, family, m)
+        out["compare"][label] = {"m": m, "rows": rows, "within_mc_error": ok, "expected_spread": spread}
+        print(f"fit {family} {label}: {'within MC error' if ok else 'NOT within MC error'} "
+              f"(largest |difference| / combined MCSE {max(r['ratio'] for r in rows if r['param'] in PARAMS):.1f}); "
+              f"expected nn - dense spread (posterior sds) {spread}", flush=True)
     return out
 
 
@@ -316,6 +339,68 @@ def _mcse_caveat(fit, labels) -> str:
         return ""
     return (f" Caution: {' and '.join(bad)} did not reach R-hat < 1.01 and bulk/tail ESS > 400 (Vehtari et al. 2021), "
             "so the MCSE estimates, and this verdict, are unreliable.")
+
+
+NAMES = {"practical_range": "practical range (m)", "partial_sill": "partial sill", "nugget": "nugget",
+         "microergodic": "microergodic sigma2 / phi^(2 nu) (not in the verdict)"}
+
+
+def fit_report(fit) -> list[str]:
+    """Markdown lines of the fit comparison: diagnostics, a summary per m, the full table for the largest m."""
+    fam = {"exponential": "exponential", "matern32": "Matérn 3/2", "matern52": "Matérn 5/2",
+           "gaussian": "Gaussian", "spherical": "spherical"}.get(fit["family"], fit["family"])
+    labels = fit["labels"]
+    ms = ", ".join(str(m) for m in fit["ms"])
+    lines = [f"Fit comparison at n = {fit['n']:,}, {fam} (data simulated exactly from the same family; truth: "
+             f"practical range 300 m, partial sill 1, nugget 0.25): the product's models build_model(approx=\"dense\") "
+             f"and build_model(approx=\"nn\", neighbours=m) for m = {ms}, identical except for the likelihood "
+             f"(checked: their FitSpecs differ only in approx and neighbours); nutpie, {fit['chains']} chains x "
+             f"({fit['tune']} tune + {fit['draws']} draws), low-rank adaptation, seed {fit['seed']} for all.", "",
+             "| likelihood | leapfrog steps per draw | divergences | max R-hat | min bulk ESS | min tail ESS | wall (s) |",
+             "| --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
+    for label in labels:
+        r = fit[label]
+        lines.append(f"| {label} | {r['steps']:.1f} | {r['divergences']} | {r['max_rhat']:.3f} | {r['min_ess']:.0f} | "
+                     f"{r['min_tail_ess']:.0f} | {r['wall_s']:.0f} |")
+    lines += ["", "Posterior quantiles: difference nn - dense against its Monte Carlo standard error. MCSE of each "
+              "quantile from arviz.mcse(method=\"quantile\", prob=q) for each run (Vehtari et al. 2021), combined as "
+              "sqrt(MCSE_nn^2 + MCSE_dense^2) since the two runs are independent. Rule applied: the fits agree "
+              "within Monte Carlo error when every |difference| <= 2 x combined MCSE (a 2-sigma rule, common "
+              "practice; were the 9 cells independent, about one agreeing comparison in three would still show "
+              "a cell above 2 by chance, 1 - 0.9545^9 = 0.34). 'Shift' = nn - dense in units of the dense posterior "
+              "sd of the parameter: how far the approximation moves the posterior compared with its width. "
+              "'Expected spread' = sd of the nn - dense difference over data sets predicted before any fit, "
+              "sqrt(sampling sd^2 - exact sd^2) / exact sd of the log parameter from "
+              "bayesgeo.nn_accuracy.nn_information on this layout at the true values (Hausman 1978: for an "
+              "efficient and a consistent estimator, var(difference) = difference of variances); a shift of "
+              "about that size is the approximation's information loss, not a bias.", "",
+              "| likelihood | verdict | largest abs difference / combined MCSE | shift of the median, range / sill / "
+              "nugget (posterior sd) | expected spread, range / sill / nugget (posterior sd) |",
+              "| --- | --- | ---: | --- | --- |"]
+    for label in labels[1:]:
+        c = fit["compare"][label]
+        med = {r["param"]: r["shift_sd"] for r in c["rows"] if r["prob"] == 0.5}
+        worst = max((r for r in c["rows"] if r["param"] in PARAMS), key=lambda r: r["ratio"])
+        sp = c["expected_spread"]
+        lines.append(f"| {label} | {'within MC error' if c['within_mc_error'] else 'NOT within MC error'} | "
+                     f"{worst['ratio']:.1f} ({100 * worst['prob']:.0f}% of {NAMES[worst['param']]}) | "
+                     + " / ".join(f"{med[k]:+.2f}" for k in PARAMS) + " | "
+                     + " / ".join(f"{sp.get(k, float('nan')):.2f}" for k in PARAMS) + " |")
+    last = labels[-1]
+    lines += ["", f"All quantiles, {last}:", "",
+              f"| parameter | quantile | dense | {last} | nn - dense | relative | MCSE dense | MCSE nn | "
+              "combined MCSE | abs difference / combined MCSE | shift (dense posterior sd) |",
+              "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: |"]
+    for r in fit["compare"][last]["rows"]:
+        lines.append(f"| {NAMES[r['param']]} | {100 * r['prob']:.0f}% | {r['dense']:.4g} | {r['nn']:.4g} | "
+                     f"{r['diff']:+.3g} | {100 * r['rel']:+.1f}% | {r['mcse_dense']:.2g} | {r['mcse_nn']:.2g} | "
+                     f"{r['mcse']:.2g} | {r['ratio']:.1f} | {r['shift_sd']:+.2f} |")
+    lines += ["", f"Verdict ({fam}): " + "; ".join(
+        f"{lb}: **{'within MC error' if fit['compare'][lb]['within_mc_error'] else 'NOT within MC error'}**"
+        for lb in labels[1:]) + f".{_mcse_caveat(fit, labels)} One data set and one seed: this checks the "
+        "approximation's effect on this posterior, not its average effect. Model-based estimates do not replace "
+        "site investigation; decisions rest with local regulation and licensed professional judgement.", ""]
+    return lines
 
 
 def report(acc, mom, spd, fit, args, load0) -> str:
@@ -370,44 +455,7 @@ def report(acc, mom, spd, fit, args, load0) -> str:
                   "excluded (one warm-up call)."]
         lines.append("")
     if fit:
-        fam = {"exponential": "exponential", "matern32": "Matérn 3/2", "matern52": "Matérn 5/2",
-               "gaussian": "Gaussian", "spherical": "spherical"}.get(fit["family"], fit["family"])
-        labels = [k for k in fit if k.startswith(("dense", "nn "))]
-        lines += [f"Fit comparison at n = {fit['n']:,}, {fam} (data simulated exactly from the same family; truth: "
-                  f"practical range 300 m, partial sill 1, nugget 0.25): the product's models build_model(approx=\"dense\") "
-                  f"and build_model(approx=\"nn\", neighbours={fit['m']}), identical except for the likelihood (checked: "
-                  f"their FitSpecs differ only in approx and neighbours); nutpie, {fit['chains']} chains x "
-                  f"({fit['tune']} tune + {fit['draws']} draws), low-rank adaptation, seed {fit['seed']} for both.", "",
-                  "| likelihood | leapfrog steps per draw | divergences | max R-hat | min bulk ESS | min tail ESS | wall (s) |",
-                  "| --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
-        for label in labels:
-            r = fit[label]
-            lines.append(f"| {label} | {r['steps']:.1f} | {r['divergences']} | {r['max_rhat']:.3f} | {r['min_ess']:.0f} | "
-                         f"{r['min_tail_ess']:.0f} | {r['wall_s']:.0f} |")
-        lines += ["", "Posterior quantiles: difference nn - dense against its Monte Carlo standard error. MCSE of each "
-                  "quantile from arviz.mcse(method=\"quantile\", prob=q) for each run (Vehtari et al. 2021), combined as "
-                  "sqrt(MCSE_nn^2 + MCSE_dense^2) since the two runs are independent. Rule applied: the fits agree "
-                  "within Monte Carlo error when every |difference| <= 2 x combined MCSE (a 2-sigma rule, common "
-                  "practice; were the 9 cells independent, about one agreeing comparison in three would still show "
-                  "a cell above 2 by chance, 1 - 0.9545^9 = 0.34). 'Shift' = nn - dense in units of the dense posterior "
-                  "sd of the parameter: how far the approximation moves the posterior compared with its width. The "
-                  "microergodic parameter (Zhang 2004; phi = practical range / range factor, in m) is shown for "
-                  "information only.", "",
-                  f"| parameter | quantile | dense | {labels[1]} | nn - dense | relative | MCSE dense | MCSE nn | "
-                  "combined MCSE | abs difference / combined MCSE | shift (dense posterior sd) |",
-                  "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: |"]
-        names = {"practical_range": "practical range (m)", "partial_sill": "partial sill", "nugget": "nugget",
-                 "microergodic": "microergodic sigma2 / phi^(2 nu) (not in the verdict)"}
-        for r in fit["rows"]:
-            lines.append(f"| {names[r['param']]} | {100 * r['prob']:.0f}% | {r['dense']:.4g} | {r['nn']:.4g} | "
-                         f"{r['diff']:+.3g} | {100 * r['rel']:+.1f}% | {r['mcse_dense']:.2g} | {r['mcse_nn']:.2g} | "
-                         f"{r['mcse']:.2g} | {r['ratio']:.1f} | {r['shift_sd']:+.2f} |")
-        worst = max((r for r in fit["rows"] if r["param"] in PARAMS), key=lambda r: r["ratio"])
-        lines += ["", f"Verdict ({fam}, m = {fit['m']}): **{'within MC error' if fit['within_mc_error'] else 'NOT within MC error'}** "
-                  f"(largest abs difference / combined MCSE {worst['ratio']:.1f}, at the {100 * worst['prob']:.0f}% "
-                  f"quantile of {names[worst['param']]}).{_mcse_caveat(fit, labels)} One data set and one seed: this checks the approximation's "
-                  "effect on this posterior, not its average effect. Model-based estimates do not replace site "
-                  "investigation; decisions rest with local regulation and licensed professional judgement.", ""]
+        lines += fit_report(fit)
     return "\n".join(lines)
 
 
@@ -425,7 +473,8 @@ def main() -> None:
     p.add_argument("--fit-family", choices=FAST_FAMILIES, default="matern32",
                    help="covariance family of the simulated data and of both fitted models")
     p.add_argument("--fit-chains", type=int, default=2)
-    p.add_argument("--fit-m", type=int, default=M_FIT, help="neighbours m of the nn model")
+    p.add_argument("--fit-m", type=int, nargs="+", default=[M_FIT],
+                   help="neighbours m of the nn models (several: one dense fit, one nn fit per m)")
     p.add_argument("--tune", type=int, default=300)
     p.add_argument("--draws", type=int, default=300)
     p.add_argument("--no-write", action="store_true")
@@ -435,7 +484,7 @@ def main() -> None:
     mom = [] if args.skip_accuracy else moments(args.moments_n, (10, 20, 30))
     spd = [] if args.skip_speed else speed(args.sizes, args.dense_max, args.rounds)
     fit = (fit_comparison(args.fit_n, args.tune, args.draws, seed=11, family=args.fit_family,
-                          chains=args.fit_chains, m=args.fit_m) if args.fit else None)
+                          chains=args.fit_chains, ms=tuple(args.fit_m)) if args.fit else None)
     text = report(acc, mom, spd, fit, args, load0)
     print(text)
     if not args.no_write:
