@@ -62,8 +62,13 @@ def _verdicts(name, tree) -> list[str]:
     return []
 
 
-def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None) -> tuple[dict, object, dict]:
-    """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs)."""
+def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None,
+                 progress=None) -> tuple[dict, object, dict]:
+    """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs).
+
+    ``progress`` is a bar factory for the long nearest-neighbour leave-one-out of nn fits
+    (:func:`bayesgeo.modelcheck.compare_fits`); ``None`` shows none.
+    """
     from bayesgeo.modelcheck import compare_fits, open_fit
     from bayesgeo.validate import InputError
 
@@ -79,7 +84,7 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
         cautions += _verdicts(name, trees[name])
         if bar is not None:
             bar.update(1)
-    res = compare_fits(trees, site=site)
+    res = compare_fits(trees, site=site, progress=progress)
     if store:
         from bayesgeo.modelcheck import store_log_likelihood
 
@@ -119,6 +124,7 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
 
 
 def run(args) -> int:
+    import functools
     from pathlib import Path
 
     from bayesgeo.cli._common import emit_json, print_table, progress, to_jsonable
@@ -129,7 +135,8 @@ def run(args) -> int:
         refuse_existing(out, args.overwrite)
     bar = progress(total=2 * len(args.dirs), desc="compare", enabled=not args.json)
     with bar:
-        obj, res, pits = build_result(args.dirs, bar=bar, store=args.store, site=args.site)
+        obj, res, pits = build_result(args.dirs, bar=bar, store=args.store, site=args.site,
+                                      progress=functools.partial(progress, enabled=not args.json))
     files = []
     if out is not None:
         from bayesgeo.check_figures import loo_pit_figure
