@@ -170,10 +170,10 @@ def _fmt(template: str, value) -> str:
 def _print_approximation(appr: dict, print_table) -> None:
     """The nearest-neighbour approximation check: one table (single site) or one per nn site."""
     checks = {"": appr} if "parameters" in appr else {f" (site {k})": v for k, v in appr.items()}
-    cols = ("nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency")
+    cols = ("nn_sd", "nn_sampling_sd", "exact_sd", "width_ratio", "efficiency", "shift_sd")
     for label, one in checks.items():
         print()
         print(f"nearest-neighbour approximation{label}: {one['status'].upper()}")
-        print_table([{"parameter": p, **{c: f"{one[p][c]:.3g}" for c in cols}} for p in one["parameters"]],
+        print_table([{"parameter": p, **{c: _fmt("{:.3g}", one[p].get(c)) for c in cols}} for p in one["parameters"]],
                     ["parameter", *cols])
         print(f"  {one['message']}")
