@@ -3,7 +3,7 @@
 VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
-# One BLAS thread per process: two-thread BLAS is erratic on small VMs (docs/numerics.md).
+# One BLAS thread per process: parallelism comes from chains, Numba threads and workers (docs/numerics.md).
 export OPENBLAS_NUM_THREADS := 1
 export OMP_NUM_THREADS := 1
 export MKL_NUM_THREADS := 1
