@@ -22,6 +22,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import numba  # noqa: E402
 import numpy as np  # noqa: E402
+import xarray as xr  # noqa: E402
 from scipy.spatial.distance import pdist  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -36,7 +37,7 @@ SIZES = (1_000, 5_000, 20_000)
 SEED = 1
 
 
-def _data(n: int) -> "xr.Dataset":  # noqa: F821
+def _data(n: int) -> xr.Dataset:
     rng = np.random.default_rng(n)
     side = 1000.0
     return points_dataset(side * rng.random(n), side * rng.random(n), rng.lognormal(2.0, 0.7, n),

@@ -28,6 +28,8 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a script)
+
 from bayesgeo.demo import simulate_field  # noqa: E402
 
 SIDE = 1000.0  # m, invented survey square
@@ -129,10 +131,7 @@ def main() -> None:
              f"{np.nanmin(ess) if ess else float('nan'):.0f}, max R-hat {np.nanmax(rhat) if rhat else float('nan'):.3f}; "
              f"check verdict: {chk.get('verdict')}" + (f" ({len(fails)} failed checks, e.g. {'; '.join(fails[:4])})" if fails else "") + ".", ""]
     text = "\n".join(lines)
-    print(text)
-    if not args.no_write:
-        with open(ROOT / "bench" / "RESULTS.md", "a") as fh:
-            fh.write(text + "\n")
+    publish(text, write=not args.no_write)
 
 
 if __name__ == "__main__":

@@ -31,6 +31,8 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a script)
+
 from bayesgeo.covariance import get_covariance  # noqa: E402
 from bayesgeo.nn_accuracy import WINDOW_POINTS, nn_blocks, nn_information, nn_pseudo_true  # noqa: E402
 
@@ -147,10 +149,7 @@ def main() -> None:
     win_rows = window_rows()
     secs = check_time()
     text = report(rows, pt_rows, win_rows, secs, load0)
-    print(text)
-    if not args.no_write:
-        with open(ROOT / "bench" / "RESULTS.md", "a") as fh:
-            fh.write(text + "\n")
+    publish(text, write=not args.no_write)
 
 
 if __name__ == "__main__":

@@ -47,6 +47,8 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a script)
+
 import pymc as pm  # noqa: E402
 import pytensor  # noqa: E402
 import pytensor.tensor as pt  # noqa: E402
@@ -496,10 +498,7 @@ def main() -> None:
     fit = (fit_comparison(args.fit_n, args.tune, args.draws, seed=11, family=args.fit_family,
                           chains=args.fit_chains, ms=tuple(args.fit_m)) if args.fit else None)
     text = report(acc, mom, spd, fit, args, load0)
-    print(text)
-    if not args.no_write:
-        with open(ROOT / "bench" / "RESULTS.md", "a") as fh:
-            fh.write(text + "\n")
+    publish(text, write=not args.no_write)
 
 
 if __name__ == "__main__":

@@ -64,6 +64,28 @@ def test_observed_semivariogram_is_matheron_on_ols_residuals():
     np.testing.assert_array_equal(vc["pairs"].values, ref["pairs"].values)
 
 
+def assert_replicate_means_match(vc, fa, ds, cov, mean, *, bins: int) -> None:
+    """Mean replicate semivariance of each of ``bins`` equal lag bins against its expectation
+    E[r^T A r] = tr(A Sigma) + mu^T A mu for r = M z, z ~ N(mu, cov), M = I - H the OLS residual
+    maker (Searle 1971, Linear Models, sec. 2.5), within 4 Monte Carlo standard errors."""
+    q, _ = np.linalg.qr(fa.design)
+    proj = np.eye(fa.n) - q @ q.T
+    i, j = np.triu_indices(fa.n, 1)
+    d = np.hypot(*(fa.xy[i] - fa.xy[j]).T)
+    edges = lag_bins(ds, bins=bins)
+    b = np.minimum((d / edges[1]).astype(int), bins - 1)
+    rep = vc["replicate_semivariance"].values
+    for bb in range(bins):
+        sel = (d <= edges[-1]) & (b == bb)
+        e = np.zeros((fa.n, sel.sum()))
+        e[i[sel], np.arange(sel.sum())] = 1.0
+        e[j[sel], np.arange(sel.sum())] -= 1.0
+        a = proj @ e  # columns M (e_i - e_j)
+        expect = (np.einsum("ik,ij,jk->", a, cov, a) + np.sum((a.T @ mean) ** 2)) / (2 * sel.sum())
+        se = rep[:, bb].std(ddof=1) / math.sqrt(rep.shape[0])
+        assert abs(rep[:, bb].mean() - expect) < 4 * se
+
+
 def test_replicates_reproduce_quadratic_form_expectation():
     """With one parameter value, the mean replicate semivariance of a bin equals its expectation,
     E[r^T A r] = tr(A Sigma) + mu^T A mu for r = M z, z ~ N(mu, K), M = I - H (expectation of a
@@ -78,22 +100,7 @@ def test_replicates_reproduce_quadratic_form_expectation():
     s, m0 = fa.spec.value_sd, fa.spec.value_mean
     cov = s * s * k
     mean = m0 + s * mu
-    q, _ = np.linalg.qr(fa.design)
-    proj = np.eye(fa.n) - q @ q.T
-    i, j = np.triu_indices(fa.n, 1)
-    d = np.hypot(*(fa.xy[i] - fa.xy[j]).T)
-    edges = lag_bins(ds, bins=5)
-    b = np.minimum((d / edges[1]).astype(int), 4)
-    rep = vc["replicate_semivariance"].values
-    for bb in range(5):
-        sel = (d <= edges[-1]) & (b == bb)
-        e = np.zeros((fa.n, sel.sum()))
-        e[i[sel], np.arange(sel.sum())] = 1.0
-        e[j[sel], np.arange(sel.sum())] -= 1.0
-        a = proj @ e  # columns M (e_i - e_j)
-        expect = (np.einsum("ik,ij,jk->", a, cov, a) + np.sum((a.T @ mean) ** 2)) / (2 * sel.sum())
-        se = rep[:, bb].std(ddof=1) / math.sqrt(rep.shape[0])
-        assert abs(rep[:, bb].mean() - expect) < 4 * se
+    assert_replicate_means_match(vc, fa, ds, cov, mean, bins=5)
 
 
 def test_model_band_at_one_parameter_value_is_the_formula():

@@ -16,7 +16,6 @@ from scipy.spatial.distance import pdist
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern, WhiteKernel
 
 from bayesgeo.covariance import get_covariance
-from bayesgeo.explore import lag_bins
 from bayesgeo.geometry import distance_matrix
 from bayesgeo.likelihood import JITTER, covariance_matrix
 from bayesgeo.loo import fit_arrays
@@ -24,6 +23,7 @@ from bayesgeo.modelcheck import variogram_check
 from bayesgeo.vecchia import maximin_order, nearest_previous, nn_loglik_and_grad
 from bayesgeo.vecchia_sim import nn_factors, nn_simulate
 from test_loo import make_fit, simulated
+from test_modelcheck import assert_replicate_means_match
 
 
 def _points(n, seed, side=100.0):
@@ -266,22 +266,7 @@ def test_nn_replicates_reproduce_quadratic_form_expectation(m):
     s = spec.value_sd
     cov = s * s * sigma
     mean = spec.value_mean + s * (fa.design @ d0["beta_z"])
-    q, _ = np.linalg.qr(fa.design)
-    proj = np.eye(fa.n) - q @ q.T
-    i, j = np.triu_indices(fa.n, 1)
-    d = np.hypot(*(fa.xy[i] - fa.xy[j]).T)
-    edges = lag_bins(ds, bins=5)
-    b = np.minimum((d / edges[1]).astype(int), 4)
-    rep = vc["replicate_semivariance"].values
-    for bb in range(5):
-        sel = (d <= edges[-1]) & (b == bb)
-        e = np.zeros((fa.n, sel.sum()))
-        e[i[sel], np.arange(sel.sum())] = 1.0
-        e[j[sel], np.arange(sel.sum())] -= 1.0
-        a = proj @ e
-        expect = (np.einsum("ik,ij,jk->", a, cov, a) + np.sum((a.T @ mean) ** 2)) / (2 * sel.sum())
-        se = rep[:, bb].std(ddof=1) / math.sqrt(rep.shape[0])
-        assert abs(rep[:, bb].mean() - expect) < 4 * se
+    assert_replicate_means_match(vc, fa, ds, cov, mean, bins=5)
 
 
 def test_cli_variogram_check_of_nn_fit(tmp_path, capsys):
