@@ -14,8 +14,9 @@ then compares, per replicate:
   the L = 99 thinned draws, and ``u_raw`` = share of all beta_z draws below the truth;
 * Rao-Blackwellised coverage from the covariance-parameter draws only: given theta = (practical
   range, field sd, nugget sd) and y, beta ~ Normal(m, v) with v = (F^T K^-1 F + I / b^2)^-1 and
-  m = v F^T K^-1 y (Bayesian linear model with known covariance and prior N(0, b^2 I); e.g. Gelman
-  et al., *Bayesian Data Analysis*, 3rd ed., sec. 14.2, with a conjugate normal prior), K from
+  m = v F^T K^-1 y (Gaussian linear model with known covariance and conjugate prior N(0, b^2 I):
+  Rasmussen and Williams 2006, *Gaussian Processes for Machine Learning*, sec. 2.7, explicit basis
+  functions, cited from memory; the same formula as intercept_exact.py), K from
   :func:`bayesgeo.likelihood.covariance_matrix` (jitter 1e-6 x partial sill on the diagonal, as the
   model's likelihood kernel adds it). ``u_rb`` = mean over draws of Phi((beta* - m) / sqrt(v)); the
   50% interval covers iff 0.25 < u_rb < 0.75, the 90% iff 0.05 < u_rb < 0.95. Under the exact
@@ -30,12 +31,18 @@ Usage::
     python docs/validation/intercept_rb.py check [--seed 100]            # one replicate: RB mean vs draws
     python docs/validation/intercept_rb.py run --chunks 30 --chunk-size 10 --seed 100 --work DIR
     python docs/validation/intercept_rb.py merge --work DIR --out docs/validation/intercept-rb
+    python docs/validation/intercept_rb.py exact --replicates 20000 --seed 9000   # no MCMC: u given the true theta
     # the same experiment at the quick-mode settings (28 points, 2 x (300 + 200), L = 49):
     python docs/validation/intercept_rb.py run --mode quick --layout-seed 5 --seed 1000 --chunks 30 --work DIR2
 
-Chunk c uses SBC seed ``seed + c`` (chunks of 10 from seed 100 reproduce the full-mode run of
-docs/validation.md replicate for replicate). ``run`` skips chunks already saved, so it can be stopped
-and resumed; ``merge`` writes ``OUT.nc`` (per replicate) and ``OUT.json`` (tests).
+Chunk c uses SBC seed ``seed + c``: chunks of 10 from seed 100 redraw the very truths and data of the
+full-mode run of docs/validation.md (``full2.json``; ``merge`` compares the ranks and verdicts, which
+match only approximately on another machine: nutpie's draws are reproducible on one machine, not
+across machines). ``run`` skips chunks already saved, so it can be stopped and resumed; ``merge``
+writes ``OUT.nc`` (per replicate) and ``OUT.json``: coverage counts with ``scipy.stats.binomtest``
+against 0.5 / 0.9, chi-square tests of u in 10 equal bins (``scipy.stats.chisquare``), paired
+raw-against-other tables with McNemar's exact test (a binomial test of the discordant pairs), for all
+replicates, converged / unconverged fits (SBC verdict), and seeds 100-109 against the rest.
 """
 
 from __future__ import annotations
@@ -263,6 +270,40 @@ def _check(a) -> None:
           f"z = {z:.2f}; sd draws {r['sd_draws']:.4f}, RB sd {r['sd_rb']:.4f}")
 
 
+def _exact(a) -> None:
+    """No MCMC: u_true = Phi((beta* - m*) / sqrt(v*)) over many replicates, its 50% / 90% coverage."""
+    import warnings
+
+    import pymc as pm
+    from scipy.stats import binomtest, chisquare, norm
+
+    from bayesgeo.covariance import get_covariance
+
+    V, cfg, tpl, block, spec = _setup(a)
+    model, _, _ = V.sbc_model(tpl, cfg)
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="The effect of Potentials", category=UserWarning)
+        prior = pm.sample_prior_predictive(draws=a.replicates, model=model, random_seed=a.seed,
+                                           var_names=V._sampled_names(model))["prior"].to_dataset()
+    rng = np.random.default_rng(np.random.SeedSequence([a.seed, 1]))
+    cov, j, b = get_covariance(spec.covariance), list(spec.terms).index("1"), float(spec.priors.beta_sd)
+    u = np.empty(a.replicates)
+    for r in range(a.replicates):
+        _, tb = V._truth_items(prior, r, spec, "single")
+        t = tb[0]
+        y = V.simulate_data(t, block, spec, rng)
+        m, vb, _ = _conditional(block["dist"], block["design"], y, cov, spec, t["practical_range_z"], t["sd_z"],
+                                t["nugget_sd_z"], b)
+        u[r] = norm.cdf((t["beta_z"][j] - m[j]) / np.sqrt(vb[j, j]))
+    out = {"replicates": int(a.replicates), "seed": a.seed, "points": int(tpl.sizes["obs"]),
+           "u_bins10": np.histogram(u, bins=10, range=(0, 1))[0].tolist()}
+    out["chisquare_p"] = float(chisquare(out["u_bins10"]).pvalue)
+    for a_ in _LEVELS:
+        c = int(np.sum(np.abs(u - 0.5) < a_ / 2))
+        out[f"cover_{a_:g}"] = {"count": c, "share": c / len(u), "binomtest_p": float(binomtest(c, len(u), a_).pvalue)}
+    print(json.dumps(out))
+
+
 def _tests(ds: xr.Dataset, mask) -> dict:
     from scipy.stats import binomtest, chisquare
 
@@ -341,6 +382,10 @@ def _merge(a) -> None:
                                        "same_verdict": int(np.sum(ds["verdict"].values[sel] == np.array(
                                            [ref["verdicts"][i] for i in idx])))}
     cfg = json.loads(parts[0].attrs.get("config", "{}"))
+    if not cfg:  # chunks saved before the attribute existed were all run with the default (full) settings
+        from bayesgeo.validation import FULL, with_settings
+
+        cfg = with_settings(FULL, kind="single", covariance="matern32", nugget=True).to_dict()
     summary["setting"] = {"mode": parts[0].attrs.get("mode", "full"), "points": int(parts[0].attrs.get("points", 60)),
                           "layout_seed": int(parts[0].attrs.get("layout_seed", 7)), "config": cfg}
     ds.attrs.update({"description": "per-replicate raw vs Rao-Blackwellised coverage of the intercept "
@@ -350,7 +395,13 @@ def _merge(a) -> None:
                      "sampler": f"nutpie, {cfg.get('chains', 2)} chains x ({cfg.get('tune', 500)} tune + "
                                 f"{cfg.get('draws', 500)} draws), target_accept {cfg.get('target_accept', 0.9)}, low-rank",
                      "config": json.dumps(cfg), "scale": "standardised (beta_z)"})
-    ds.to_netcdf(a.out + ".nc", engine="netcdf4")
+    if a.no_draws:
+        ds = ds.drop_vars(["thin_draws", "thinned"])
+    for k in ds.data_vars:  # float32 keeps the file small; the tests above used float64
+        if ds[k].dtype == np.float64:
+            ds[k] = ds[k].astype(np.float32)
+    ds.to_netcdf(a.out + ".nc", engine="netcdf4",
+                 encoding={k: {"zlib": True, "complevel": 4} for k in ds.data_vars if ds[k].dtype.kind in "fiub"})
     Path(a.out + ".json").write_text(json.dumps(summary, indent=1) + "\n")
     print(json.dumps(summary, indent=1))
 
@@ -361,7 +412,10 @@ def main() -> None:
     c = sub.add_parser("check")
     c.add_argument("--seed", type=int, default=100)
     r = sub.add_parser("run")
-    for q in (c, r):
+    e = sub.add_parser("exact")
+    e.add_argument("--replicates", type=int, default=20000)
+    e.add_argument("--seed", type=int, default=9000)
+    for q in (c, r, e):
         q.add_argument("--mode", choices=("full", "quick"), default="full",
                        help="SBC settings: validation.FULL (default) or validation.QUICK")
         q.add_argument("--points", type=int, default=0, help="generated layout size (default 60 full, 28 quick)")
@@ -375,8 +429,9 @@ def main() -> None:
     m = sub.add_parser("merge")
     m.add_argument("--work", required=True)
     m.add_argument("--out", required=True)
+    m.add_argument("--no-draws", action="store_true", help="leave the thinned beta_z draws out of OUT.nc")
     a = p.parse_args()
-    {"check": _check, "run": _run, "merge": _merge}[a.cmd](a)
+    {"check": _check, "run": _run, "merge": _merge, "exact": _exact}[a.cmd](a)
 
 
 if __name__ == "__main__":
