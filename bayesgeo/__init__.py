@@ -23,7 +23,8 @@ from bayesgeo.model import FitSpec, build_model
 from bayesgeo.posterior import fit, fit_report, fit_spec, load_fit, prior_check_figure, save_fit, summary_table
 from bayesgeo.priors import Priors, plot_prior_semivariogram, prior_semivariogram
 from bayesgeo.sampling import compile_model, sample
-from bayesgeo.modelcheck import compare_fits, loo_pit, store_log_likelihood, variogram_check
+from bayesgeo.modelcheck import compare_fits, loo_pit, store_log_likelihood
+from bayesgeo.ppcheck import variogram_check
 from bayesgeo.parallel import WorkUnit, make_units, run_units
 from bayesgeo.predict import area_average, basis_from_fit, krige, make_basis, posterior_parameters, predict_targets
 from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits

@@ -48,7 +48,7 @@ def variogram_check_figure(vc: xr.Dataset, *, title: str | None = None):
     Parameters
     ----------
     vc : xarray.Dataset
-        Output of :func:`bayesgeo.modelcheck.variogram_check`.
+        Output of :func:`bayesgeo.ppcheck.variogram_check`.
     title : str, optional
 
     Returns

@@ -26,7 +26,7 @@ partial sill of 1) the largest error on the diagonal was 0.13 (m = 3), 0.004 (m 
 ``sigma^2 (1 - rho(h)) + tau^2`` up to that small approximation.
 
 Semivariogram check of a nearest-neighbour fit (:func:`nn_replicates` and
-:func:`nn_semivariances`, used by :func:`bayesgeo.modelcheck.variogram_check` when the fit's
+:func:`nn_semivariances`, used by :func:`bayesgeo.ppcheck.variogram_check` when the fit's
 ``approx`` is ``"nn"``). Replicates are drawn with :func:`nn_simulate` (one posterior draw each,
 the fit's ``m``, ordering, metric and distance scale), and the observed and replicated semivariograms come from one pass over all point pairs
 within the largest lag (:func:`bayesgeo._pairs.pair_sums`, as the exploratory semivariogram

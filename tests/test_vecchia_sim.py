@@ -19,7 +19,7 @@ from bayesgeo.covariance import get_covariance
 from bayesgeo.geometry import distance_matrix
 from bayesgeo.likelihood import JITTER, covariance_matrix
 from bayesgeo.loo import fit_arrays
-from bayesgeo.modelcheck import variogram_check
+from bayesgeo.ppcheck import variogram_check
 from bayesgeo.vecchia import maximin_order, nearest_previous, nn_loglik_and_grad
 from bayesgeo.vecchia_sim import nn_factors, nn_simulate
 from test_loo import make_fit, simulated
@@ -242,6 +242,42 @@ def test_variogram_check_of_nn_fit_has_the_dense_structure_and_is_reproducible()
     other = variogram_check(tree, replicates=25, bins=7, seed=4)
     assert not np.array_equal(other["replicate_semivariance"].values, nn["replicate_semivariance"].values)
     assert any("licensed professional" in c for c in nn.attrs["cautions"])
+
+
+def test_variogram_check_progress_and_chunking_do_not_change_the_numbers(monkeypatch):
+    """The check advances a progress bar once per replicate and once for the semivariances (common
+    practice: long work shows progress), for nn and dense fits alike; simulating the nn replicates
+    in chunks draws the same noise as one call (numpy Generators stream normals without a buffer),
+    so the chunked and the one-piece results are identical."""
+    from bayesgeo import ppcheck
+
+    bars = []
+
+    class Bar:
+        def __init__(self, total, desc):
+            self.total, self.n = total, 0
+            bars.append(self)
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            return False
+
+        def update(self, k):
+            self.n += k
+
+    def factory(total=None, desc=""):
+        return Bar(total, desc)
+
+    ds = simulated(50, seed=23)
+    tree = _nn_tree(ds, 8, ndraw=30)
+    chunked = variogram_check(tree, replicates=60, bins=6, seed=5, progress=factory)  # 25 + 25 + 10
+    monkeypatch.setattr(ppcheck, "REPLICATE_CHUNK", 1000)
+    whole = variogram_check(tree, replicates=60, bins=6, seed=5)
+    np.testing.assert_array_equal(chunked["replicate_semivariance"].values, whole["replicate_semivariance"].values)
+    variogram_check(make_fit(ds, ndraw=30), replicates=12, bins=6, seed=5, progress=factory)
+    assert [(b.total, b.n) for b in bars] == [(61, 61), (13, 13)]
 
 
 @pytest.mark.parametrize("m", [29, 6])

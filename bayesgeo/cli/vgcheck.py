@@ -48,6 +48,7 @@ def _list(da) -> list:
 
 
 def run(args) -> int:
+    import functools
     import json
     from pathlib import Path
 
@@ -56,7 +57,7 @@ def run(args) -> int:
     from bayesgeo.figures import save_figure
     from bayesgeo.io import atomic_file, refuse_existing
     from bayesgeo.cli._common import load_fit_folder
-    from bayesgeo.modelcheck import variogram_check
+    from bayesgeo.ppcheck import variogram_check
 
     folder = Path(args.dir)
     bar = progress(total=3, desc="variogram-check", enabled=not args.json)
@@ -67,7 +68,8 @@ def run(args) -> int:
         refuse_existing(fig_path, args.overwrite)
         refuse_existing(csv_path, args.overwrite)
         bar.update(1)
-        vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed)
+        vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed,
+                             progress=functools.partial(progress, enabled=not args.json))
         bar.update(1)
         cautions = list(vc.attrs["cautions"])
         try:
