@@ -32,14 +32,16 @@ from bayesgeo.validation import FULL, generated_layout, sbc_summary, simulation_
 
 
 def _run(a) -> None:
-    cfg = with_settings(FULL, kind=a.kind, covariance=a.covariance, nugget=bool(a.nugget))
+    cfg = with_settings(FULL, kind=a.kind, covariance=a.covariance, nugget=bool(a.nugget),
+                        nu=a.nu if a.covariance == "matern" else None)
     if a.kind == "hierarchical":
         tpl = generated_layout(max(12, a.points // 2), sites=3, seed=a.layout_seed)
     else:
         tpl = generated_layout(a.points, seed=a.layout_seed)
     out = Path(a.out)
     out.mkdir(parents=True, exist_ok=True)
-    stem = f"{a.kind}-{a.covariance}-{'nugget' if a.nugget else 'no-nugget'}"
+    family = f"matern{a.nu:g}".replace(".", "p") if a.covariance == "matern" else a.covariance
+    stem = f"{a.kind}-{family}-{'nugget' if a.nugget else 'no-nugget'}"
     for c in range(a.chunks):
         path = out / f"{stem}-{c}.nc"
         if path.exists():
@@ -107,6 +109,7 @@ def main() -> None:
     r = sub.add_parser("run")
     r.add_argument("--kind", default="single")
     r.add_argument("--covariance", default="matern32")
+    r.add_argument("--nu", type=float, default=1.0, help="smoothness of --covariance matern (general Matérn)")
     r.add_argument("--nugget", type=int, default=1)
     r.add_argument("--points", type=int, default=60)
     r.add_argument("--layout-seed", type=int, default=7)
