@@ -31,3 +31,31 @@ def grid_rows():
         for j in range(5):
             rows.append([100 * i, 100 * j, round(10 + i + 0.5 * j + rng.normal(), 3)])
     return rows
+
+
+class RecordingBar:
+    """A progress bar that records its total, description and how far it was advanced."""
+
+    def __init__(self, total=None, desc=""):
+        self.total, self.desc, self.n = total, desc, 0
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+    def update(self, k):
+        self.n += k
+
+
+@pytest.fixture
+def recording_progress():
+    """A bar factory ``progress(total=..., desc=...)`` and the list of the bars it made."""
+    bars = []
+
+    def factory(total=None, desc=""):
+        bars.append(RecordingBar(total, desc))
+        return bars[-1]
+
+    return factory, bars

@@ -210,7 +210,7 @@ def test_compare_two_nn_fits_end_to_end(tmp_path, capsys):
     assert "dist" not in fa.__dict__
 
 
-def test_compare_shows_progress_of_the_nn_leave_one_out(tmp_path):
+def test_compare_shows_progress_of_the_nn_leave_one_out(tmp_path, recording_progress):
     """The compare command passes its bar factory down to the nearest-neighbour leave-one-out:
     one bar per nn fit over its n points, advanced to n (common practice: long work shows a
     progress bar)."""
@@ -223,23 +223,8 @@ def test_compare_shows_progress_of_the_nn_leave_one_out(tmp_path):
         folder.mkdir()
         as_nn(make_fit(ds, covariance=cov, ndraw=20, seed=3)).to_netcdf(folder / "posterior.nc", engine="netcdf4")
         dirs.append(str(folder))
-    bars = []
-
-    class Bar:
-        def __init__(self, total, desc):
-            self.total, self.desc, self.n = total, desc, 0
-            bars.append(self)
-
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return False
-
-        def update(self, k):
-            self.n += k
-
-    obj, _, _ = build_result(dirs, progress=lambda total=None, desc="": Bar(total, desc))
+    factory, bars = recording_progress
+    obj, _, _ = build_result(dirs, progress=factory)
     assert len(obj["ranking"]) == 2
     assert [(b.total, b.n) for b in bars] == [(50, 50), (50, 50)]
     assert all("nearest-neighbour" in b.desc for b in bars)

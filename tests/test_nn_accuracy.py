@@ -97,6 +97,20 @@ def test_exact_sd_matches_a_finite_difference_fisher_information_from_scipy():
     assert [r[p]["exact_sd"] for p in ("scale", "partial_sill", "nugget")] == pytest.approx(want, rel=1e-4)
 
 
+def _nn_curvature(xy, nbr, m, params, step=1e-3):
+    """H: minus the Hessian in (log scale, log partial sill, log nugget) of the closed-form expected
+    Matérn 3/2 nn log-likelihood at the true ``params``, by central differences."""
+    blocks = nn_blocks(xy, neighbours=m, nbr=nbr)
+    eta0 = np.log(params)
+    basis = np.eye(3) * step
+
+    def g(eta):
+        return expected_nn_loglik(blocks, "matern32", tuple(np.exp(eta)), tuple(params))
+
+    return np.array([[-(g(eta0 + basis[i] + basis[j]) - g(eta0 + basis[i] - basis[j]) - g(eta0 - basis[i] + basis[j])
+                       + g(eta0 - basis[i] - basis[j])) / (4 * step**2) for j in range(3)] for i in range(3)])
+
+
 def test_sampling_sd_matches_the_monte_carlo_spread_of_the_nn_score():
     """J = Var[d log q / d eta] from the closed form 0.5 tr(Q_j K0 Q_k K0) (Mathai and Provost 1992)
     against the sample variance of the analytic nn gradient over 3,000 data sets drawn with
@@ -114,19 +128,7 @@ def test_sampling_sd_matches_the_monte_carlo_spread_of_the_nn_score():
     info = nn_information(xy, "matern32", scale, psill, nug, neighbours=m)
     # the same sandwich H^-1 J H^-1 with the Monte Carlo J and H by central differences of the
     # closed-form expected log-likelihood
-    from bayesgeo import nn_accuracy as na
-
-    blocks = nn_blocks(xy, neighbours=m, nbr=nbr)
-    eta0 = np.log([scale, psill, nug])
-    step = 1e-3
-    basis = np.eye(3) * step
-
-    def g(eta):
-        return na.expected_nn_loglik(blocks, "matern32", tuple(np.exp(eta)), (scale, psill, nug))
-
-    hm = np.array([[-(g(eta0 + basis[i] + basis[j]) - g(eta0 + basis[i] - basis[j]) - g(eta0 - basis[i] + basis[j])
-                      + g(eta0 - basis[i] - basis[j])) / (4 * step**2) for j in range(3)] for i in range(3)])
-    hinv = np.linalg.inv(hm)
+    hinv = np.linalg.inv(_nn_curvature(xy, nbr, m, (scale, psill, nug)))
     mc_sd = np.sqrt(np.diag(hinv @ jmc @ hinv))
     assert info["scale"]["nn_sampling_sd"] == pytest.approx(mc_sd[0], rel=0.08)
     assert info["partial_sill"]["nn_sampling_sd"] == pytest.approx(mc_sd[1], rel=0.08)
@@ -160,18 +162,7 @@ def test_shift_sd_matches_the_monte_carlo_spread_of_nn_minus_exact_one_step_esti
     a = [kinv @ k @ kinv for k in kj]
     s_ex = np.column_stack([0.5 * np.einsum("ri,ij,rj->r", y, aj, y) - 0.5 * np.trace(kinv @ k) for aj, k in zip(a, kj)])
     fisher = np.array([[0.5 * np.trace(kinv @ ki @ kinv @ kk) for kk in kj] for ki in kj])
-    # H: curvature of the closed-form expected nn log-likelihood, as nn_information computes it
-    from bayesgeo import nn_accuracy as na
-
-    blocks = nn_blocks(xy, neighbours=m, nbr=nbr)
-    h_step = 1e-3
-    basis = np.eye(3) * h_step
-
-    def g(eta):
-        return na.expected_nn_loglik(blocks, "matern32", tuple(np.exp(eta)), (scale, psill, nug))
-
-    hm = np.array([[-(g(eta0 + basis[i] + basis[j]) - g(eta0 + basis[i] - basis[j]) - g(eta0 - basis[i] + basis[j])
-                      + g(eta0 - basis[i] - basis[j])) / (4 * h_step**2) for j in range(3)] for i in range(3)])
+    hm = _nn_curvature(xy, nbr, m, (scale, psill, nug))  # as nn_information computes it
     diff = s_nn @ np.linalg.inv(hm).T - s_ex @ np.linalg.inv(fisher).T
     info = nn_information(xy, "matern32", scale, psill, nug, neighbours=m)
     assert info["scale"]["shift_sd"] > 0.2  # m = 4 loses real information here, so the check has teeth

@@ -244,31 +244,14 @@ def test_variogram_check_of_nn_fit_has_the_dense_structure_and_is_reproducible()
     assert any("licensed professional" in c for c in nn.attrs["cautions"])
 
 
-def test_variogram_check_progress_and_chunking_do_not_change_the_numbers(monkeypatch):
+def test_variogram_check_progress_and_chunking_do_not_change_the_numbers(monkeypatch, recording_progress):
     """The check advances a progress bar once per replicate and once for the semivariances (common
     practice: long work shows progress), for nn and dense fits alike; simulating the nn replicates
     in chunks draws the same noise as one call (numpy Generators stream normals without a buffer),
     so the chunked and the one-piece results are identical."""
     from bayesgeo import ppcheck
 
-    bars = []
-
-    class Bar:
-        def __init__(self, total, desc):
-            self.total, self.n = total, 0
-            bars.append(self)
-
-        def __enter__(self):
-            return self
-
-        def __exit__(self, *exc):
-            return False
-
-        def update(self, k):
-            self.n += k
-
-    def factory(total=None, desc=""):
-        return Bar(total, desc)
+    factory, bars = recording_progress
 
     ds = simulated(50, seed=23)
     tree = _nn_tree(ds, 8, ndraw=30)
