@@ -275,8 +275,9 @@ def nn_information(xy, covariance: Covariance | str, scale: float, partial_sill:
         likelihood's information kept), ``shift_sd`` = sqrt(sampling^2 - exact^2) / exact (the sd
         over data sets of the nn estimate minus the exact one, in exact sds: for a consistent and an
         efficient estimator the variance of their difference is the difference of their variances,
-        Hausman 1978; how far an nn posterior may sit from the exact one); ``window_points``, ``window_diameter`` (twice the largest
-        distance from the window's centre point, distance units), ``neighbours``.
+        Hausman 1978; how far an nn posterior may sit from the exact one); ``window_points``,
+        ``window_diameter`` (twice the largest distance from the window's centre point, distance
+        units), ``neighbours``.
 
     Notes
     -----
