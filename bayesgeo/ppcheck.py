@@ -1,8 +1,8 @@
 """Posterior predictive semivariogram check of a fit (:func:`variogram_check`).
 
-Posterior predictive semivariogram (:func:`variogram_check`). For a set of posterior draws,
-replicate data at the observed locations, ``y_rep ~ N(F beta, K)`` on the standardised scale
-(the nugget included: a replicate is a new set of measurements), back to model units
+For a set of posterior draws, replicate data at the observed locations, ``y_rep ~ N(F beta, K)``
+on the standardised scale (the nugget included: a replicate is a new set of measurements), back
+to model units
 ``z_rep = m + s y_rep`` (log units under ``transform="log"``). The observed modelled values and
 every replicate get the same treatment: the trend of the fit (same design: polynomial order and
 covariates) is removed by ordinary least squares, as :func:`bayesgeo.trend.fit_trend` does for
@@ -15,7 +15,7 @@ equal-tailed interval are drawn too. The share of replicates whose semivariance 
 the observed one in a bin is a posterior predictive p-value (Gelman, Meng and Stern 1996,
 Statistica Sinica 6); values near 0 or 1 mark bins the model does not reproduce.
 
-These checks judge a statistical model. Results that bear on contamination or exposure support,
+This check judges a statistical model. Results that bear on contamination or exposure support,
 and never replace, licensed professional judgement and the requirements of the local regulator.
 """
 
