@@ -36,6 +36,18 @@ RUN = ("run", "study.toml", "--json")  # --json: no progress lines on stderr
 MARKER = ".bayesgeo-output.json"
 
 
+GROUP_SOURCES = {
+    "usage": "docs/cli.md (exit 2, one line); issue #15 (argparse usage errors in one line)",
+    "option": "docs/cli.md (bad option: exit 2, one line naming it); issue #15 (integers bounded, no traceback)",
+    "csv": "issue #15 intake rules; docs/cli.md (exit 2, one line naming file, row, column)",
+    "damaged": "issue #15 (a damaged saved file: one line naming the file; NaN/inf draws: exit 2)",
+    "study": "docs/study_file.md, Rules (one line naming the file, line, table and key; exit 2)",
+    "output": "docs/outputs.md (output-folder rules of issue #15)",
+}
+UNCONVERGED = ("docs/cli.md (exit 3: failed convergence check); R-hat above 1.01 fails "
+               "(Vehtari, Gelman, Simpson, Carpenter and Bürkner 2021)")
+
+
 @dataclass(frozen=True)
 class Case:
     """One reliability class.
@@ -61,6 +73,11 @@ class Case:
     needs_fit: bool = False
     warn_ok: str = ""  # with status 0 allowed: a regex one stderr warning line must match
     home: bool = False  # HOME points into the sandbox (only for cases about the home folder)
+    source: str = ""  # where the expectation comes from (default: the group's, GROUP_SOURCES)
+
+    @property
+    def src(self) -> str:
+        return self.source or GROUP_SOURCES[self.group]
 
     @property
     def command(self) -> str:
@@ -521,7 +538,11 @@ def _cases() -> list[Case]:
     add(Case("explore-only-site-unknown", "option", "--only-site naming no site", ("explore", "sites.csv", "--site", "parcel", "--only-site", "lake", "--permutations", "0", "--out", "ex"), (SITES,), places=(col("lake"), opt("--only-site"))))
     add(Case("explore-data-missing", "option", "DATA that does not exist", ("explore", "nothere.csv", "--out", "ex"), places=(r"nothere\.csv",)))
     add(Case("explore-data-directory", "option", "DATA that is a folder", ("explore", "adir", "--out", "ex"), (mkdir("adir"),), places=(r"adir",)))
-    add(Case("explore-data-empty-string", "option", "DATA given as an empty string", ("explore", "", "--out", "ex"), places=(r"DATA|file|''|\"\"",), usage_ok=True))
+    add(Case("explore-data-empty-string", "option", "DATA given as an empty string", ("explore", "", "--out", "ex"), places=(r"DATA|''|empty",), usage_ok=True))
+    add(Case("explore-value-empty-string", "option", "--value given as an empty string", (*EXPLORE, "--value", ""), (DATA,), places=(opt("--value"),), usage_ok=True))
+    add(Case("explore-x-empty-string", "option", "--x given as an empty string", (*EXPLORE, "--x", ""), (DATA,), places=(opt("--x"),), usage_ok=True))
+    add(Case("explore-out-default-exists", "output", "explore without --out when the default <stem>-explore folder exists",
+             EXPLORE[:-2], (DATA, run_first(*EXPLORE[:-2])), places=(r"data-explore", opt("--overwrite"))))
     add(Case("explore-out-empty-string", "option", "--out given as an empty string", (*EXPLORE[:-2], "--out", ""), (DATA,), places=(opt("--out"),), usage_ok=True))
     add(Case("explore-distance-units-lonlat", "option", "--distance-units m with --coords lonlat", (*EXPLORE, "--coords", "lonlat", "--distance-units", "m"), (write("data.csv", rows_csv(LON360_ROWS, "lon,lat,conc")),), places=(opt("--distance-units"),)))
 
@@ -548,6 +569,8 @@ def _cases() -> list[Case]:
     for which, tag, vals in priors:
         add(Case(f"fit-prior-{which}-{tag}", "option", f"fit --prior-{which} {' '.join(vals)}", (*FIT, f"--prior-{which}", *vals), (DATA,),
                  places=(opt(f"--prior-{which}"),), usage_ok=True))
+    add(Case("fit-data-missing", "option", "fit on a DATA file that does not exist", ("fit", "nothere.csv", *FIT[2:]), places=(r"nothere\.csv",)))
+    add(Case("fit-data-directory", "option", "fit on a folder given as DATA", ("fit", "adir", *FIT[2:]), (mkdir("adir"),), places=(r"adir",)))
     add(Case("fit-out-is-data", "output", "fit --out naming the input CSV", ("fit", "data.csv", "--covariance", "exponential", "--out", "data.csv"), (DATA,), places=(r"data\.csv",)))
     add(Case("fit-log-zeros", "csv", "fit --transform log with zero values", (*FIT, "--transform", "log"), (write("data.csv", with_cell(4, 2, "0")),), places=(r"data\.csv", row(5), col("conc"))))
     add(Case("fit-ragged-row", "csv", "fit on a CSV with a ragged row", FIT, (write("data.csv", with_cell(6, 2, "1.5,7")),), places=(r"data\.csv", row(7))))
@@ -560,7 +583,7 @@ def _cases() -> list[Case]:
         add(Case(f"check-max-lag-{tag}", "option", f"check --max-lag {v}", (*CHECK, "--max-lag", v), (FIT_COPY,), places=(opt("--max-lag"),), usage_ok=True, needs_fit=True))
     add(Case("check-var-unknown", "option", "check --var naming no posterior variable", (*CHECK, "--var", "nope"), (FIT_COPY,), places=(col("nope"),), needs_fit=True))
     add(Case("check-unconverged", "damaged", "check on a posterior whose chains disagree (R-hat >> 1.01)", CHECK, (FIT_COPY, SPLIT_CHAINS), status=3,
-             writes=("fit/diagnostics", f"fit/{MARKER}"), needs_fit=True))
+             writes=("fit/diagnostics", f"fit/{MARKER}", "fit/.diagnostics.*"), needs_fit=True, source=UNCONVERGED))
 
     # map
     map_opts = [
@@ -586,10 +609,16 @@ def _cases() -> list[Case]:
     add(Case("map-points-empty", "option", "map --points CSV that is empty", (*MAP, "--points", "t.csv"), (FIT_COPY, write("t.csv", "")), places=(r"t\.csv",), needs_fit=True))
     add(Case("map-points-nan", "option", "map --points CSV with a NaN coordinate", (*MAP, "--points", "t.csv"), (FIT_COPY, write("t.csv", "x,y\n10,10\nnan,20\n")),
              places=(r"t\.csv", row(3)), needs_fit=True))
+    add(Case("map-points-empty-string", "option", "map --points given as an empty string", (*MAP, "--points", ""), (FIT_COPY,), places=(opt("--points"),),
+             usage_ok=True, needs_fit=True))
+    add(Case("map-points-directory", "option", "map --points naming a folder", (*MAP, "--points", "adir"), (FIT_COPY, mkdir("adir")), places=(r"adir",),
+             needs_fit=True))
+    add(Case("map-area-empty-string", "option", "map --area given as an empty string", (*MAP, "--area", ""), (FIT_COPY,), places=(opt("--area"),),
+             usage_ok=True, needs_fit=True))
     add(Case("map-scheduler-bogus", "option", "map --scheduler that is no address", (*MAP, "--scheduler", "bogus"), (FIT_COPY,), places=(opt("--scheduler"),), needs_fit=True))
     add(Case("map-site-on-single-fit", "option", "map --site on a single-site fit", (*MAP, "--site", "north"), (FIT_COPY,), places=(opt("--site"),), needs_fit=True))
     add(Case("map-unconverged", "damaged", "map of a posterior whose chains disagree, without --allow-unconverged", ("map", "fit", "--cell", "25", "--no-figures"),
-             (FIT_COPY, SPLIT_CHAINS), status=3, places=(r"fit",), needs_fit=True))
+             (FIT_COPY, SPLIT_CHAINS), status=3, places=(r"fit",), needs_fit=True, source=UNCONVERGED))
     add(Case("map-existing-result", "output", "map again without --overwrite keeps the first predictions.nc", MAP,
              (FIT_COPY, run_first(*MAP)), places=(r"predictions\.nc", opt("--overwrite")), needs_fit=True))
 
@@ -621,8 +650,8 @@ def _cases() -> list[Case]:
         add(Case(f"demo-data-seed-{tag}", "option", f"demo-data --seed {v}", (*DEMO_DATA, "--seed", v), places=(opt("--seed"),), usage_ok=True))
     add(Case("demo-data-out-exists", "output", "demo-data --out naming an existing file, no --overwrite", DEMO_DATA, (write("demo.csv", "mine\n"),), places=(r"demo\.csv",)))
     add(Case("demo-data-out-directory", "output", "demo-data --out naming a folder", ("demo-data", "--out", "adir"), (mkdir("adir"),), places=(r"adir",)))
-    add(Case("demo-data-out-users-file", "output", "demo-data --out --overwrite over a CSV bayesgeo did not write", (*DEMO_DATA, "--overwrite"),
-             (write("demo.csv", "x,y,conc\n1,2,3\n"),), places=(r"demo\.csv",)))
+    add(Case("demo-data-out-empty-string", "option", "demo-data --out given as an empty string", ("demo-data", "--out", ""), places=(opt("--out"),),
+             usage_ok=True))
 
     # validate
     for name, tag, v in [("replicates", "zero", "0"), ("replicates", "huge", HUGE), ("points", "two", "2"), ("draws", "zero", "0"),
@@ -630,16 +659,17 @@ def _cases() -> list[Case]:
                          ("draws", "too-few", "20")]:
         add(Case(f"validate-{name}-{tag}", "option", f"validate --{name} {v}", (*VALIDATE, f"--{name}", v), places=(opt(f"--{name}"),), usage_ok=True))
     add(Case("validate-data-missing", "option", "validate --data naming no file", (*VALIDATE, "--data", "nothere.csv"), places=(r"nothere\.csv",)))
+    add(Case("validate-data-directory", "option", "validate --data naming a folder", (*VALIDATE, "--data", "adir"), (mkdir("adir"),), places=(r"adir",)))
     add(Case("validate-study-missing", "option", "validate --study naming no file", (*VALIDATE, "--study", "nothere.toml"), places=(r"nothere\.toml",)))
     add(Case("validate-data-duplicate-header", "csv", "validate --data with a duplicated column name", (*VALIDATE, "--data", "data.csv", "--value", "conc"),
              (write("data.csv", DUP_X),), places=(r"data\.csv", r"'x'")))
 
     # CSV defects, through explore (read_points is shared by every command that reads data)
-    def csv_case(cid, what, content, places, status=2, extra_argv=(), after=None, warn_ok="", name="data.csv"):
+    def csv_case(cid, what, content, places, status=2, extra_argv=(), after=None, warn_ok="", name="data.csv", source=""):
         argv = ("explore", name, *EXPLORE[2:], *extra_argv)
-        writes = ("ex",) if (status == 0 or (isinstance(status, tuple) and 0 in status)) else ()
+        writes = ("ex", ".ex.*") if (status == 0 or (isinstance(status, tuple) and 0 in status)) else ()
         add(Case(f"csv-{cid}", "csv", what, argv, (write(name, content),), status=status, places=places, writes=writes,
-                 after=after, warn_ok=warn_ok))
+                 after=after, warn_ok=warn_ok, source=source))
 
     D = r"data\.csv"
     csv_case("empty-file", "a 0-byte file", b"", (D,))
@@ -683,7 +713,7 @@ def _cases() -> list[Case]:
     csv_case("semicolon-separated", "a semicolon-separated file", good_csv().replace(",", ";"), (D,))
     csv_case("lonlat-in-xy", "lon/lat degrees (20 x 10 degrees) in columns x, y without --coords",
              rows_csv([(10 + 20 * a / 200, 45 + 10 * b / 200, c) for a, b, c in good_rows()]), (D, r"lonlat|--coords|degree"),
-             status=(0, 2), warn_ok=r"lonlat|--coords|degree")
+             status=(0, 2), warn_ok=r"lonlat|--coords|degree", source="issue #15 (lon/lat-looking coordinates without --coords: refused or warned)")
     csv_case("lon-above-360", "--coords lonlat with a longitude of 400", rows_csv([(400.0 if i == 3 else a, b, c) for i, (a, b, c) in enumerate(LON360_ROWS)], "lon,lat,conc"),
              (D, row(5), col("lon")), extra_argv=("--coords", "lonlat"))
     csv_case("lat-above-90", "--coords lonlat with a latitude of 95", rows_csv([(a, 95.0 if i == 3 else b, c) for i, (a, b, c) in enumerate(LON360_ROWS)], "lon,lat,conc"),
@@ -695,12 +725,15 @@ def _cases() -> list[Case]:
              (D, row(8), col("depth")), extra_argv=("--covariate", "depth"))
     csv_case("netcdf-not-ours", "a NetCDF file that is not a bayesgeo point file", b"CDF\x01" + bytes(60), (r"data\.nc",), name="data.nc")
     # accepted inputs: the same checks apply (no traceback, inputs unchanged, writes only to --out)
-    csv_case("bom", "a UTF-8 byte-order mark before the header (accepted)", b"\xef\xbb\xbf" + good_csv().encode(), (), status=0, after=after_bom)
-    csv_case("crlf", "Windows line ends (accepted)", good_csv().replace("\n", "\r\n"), (), status=0, after=after_crlf)
+    csv_case("bom", "a UTF-8 byte-order mark before the header (accepted)", b"\xef\xbb\xbf" + good_csv().encode(), (), status=0, after=after_bom,
+             source="Unicode FAQ on the byte-order mark (a UTF-8 signature, not part of the text): common practice, from memory")
+    csv_case("crlf", "Windows line ends (accepted)", good_csv().replace("\n", "\r\n"), (), status=0, after=after_crlf,
+             source="RFC 4180 (CSV records end in CRLF), from memory")
     csv_case("lon-0-360", "--coords lonlat with longitudes written 0-360 (accepted; great-circle lags)", rows_csv(LON360_ROWS, "lon,lat,conc"), (), status=0,
-             extra_argv=("--coords", "lonlat"), after=after_lon360)
+             extra_argv=("--coords", "lonlat"), after=after_lon360,
+             source="issue #15 (longitudes 0-360 accepted under --coords lonlat); haversine formula (Sinnott 1984), from memory")
     csv_case("site-slash-underscore", "sites 'a/b' and 'a_b' (accepted; two different sub-folders)", sites_csv(("a/b", "a_b")), (), status=0,
-             extra_argv=("--site", "parcel"), after=after_slash_sites)
+             extra_argv=("--site", "parcel"), after=after_slash_sites, source="issue #15 (two sites never share a file name)")
 
     # damaged saved files
     dmg = {
@@ -804,6 +837,9 @@ def _cases() -> list[Case]:
              (FIT_COPY, run_first(*CHECK)), places=(r"diagnostics", opt("--overwrite")), needs_fit=True))
     add(Case("check-users-diagnostics-overwrite", "output", "check --overwrite where diagnostics/ holds the user's files", (*CHECK, "--overwrite"),
              (FIT_COPY, write("fit/diagnostics/my_notes.txt", "mine\n")), places=(r"diagnostics|my_notes",), needs_fit=True))
+    add(Case("map-users-maps-overwrite", "output", "map --overwrite where maps/ holds the user's files",
+             ("map", "fit", "--cell", "25", "--draws", "20", "--allow-unconverged", "--overwrite"),
+             (FIT_COPY, write("fit/maps/my_map.png", "mine\n")), places=(r"maps|my_map",), needs_fit=True))
     add(Case("check-overwrite-own", "output", "check --overwrite replaces its own diagnostics/", (*CHECK, "--overwrite"),
              (FIT_COPY, run_first(*CHECK)), status=(0, 3), writes=("fit/diagnostics", f"fit/{MARKER}", "fit/.diagnostics.*"),
              after=after_check_overwrite, needs_fit=True))
@@ -830,7 +866,7 @@ CASES: list[Case] = _cases()
 def markdown_table(cases: list[Case] | None = None) -> str:
     """The Markdown table of docs/reliability.md."""
     cases = CASES if cases is None else cases
-    lines = ["| id | group | what | expected |", "| --- | --- | --- | --- |"]
+    lines = ["| id | group | what | expected | source |", "| --- | --- | --- | --- | --- |"]
     for c in cases:
         st = c.status if isinstance(c.status, tuple) else (c.status,)
         exp = " or ".join(f"exit {s}" for s in st)
@@ -838,7 +874,7 @@ def markdown_table(cases: list[Case] | None = None) -> str:
             exp += ", one line naming the place"
         if 0 in st and c.writes:
             exp += "; writes only " + ", ".join(f"`{w}`" for w in c.writes)
-        lines.append(f"| `{c.id}` | {c.group} | {c.what.replace('|', '/')} | {exp} |")
+        lines.append(f"| `{c.id}` | {c.group} | {c.what.replace('|', '/')} | {exp} | {c.src} |")
     return "\n".join(lines) + "\n"
 
 

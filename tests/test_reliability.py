@@ -44,69 +44,15 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from _reliability_cases import (CASES, EXPLORE, MARKER, Box, Case, good_csv, good_rows, markdown_table, sites_csv)
+from _reliability_guard import CaseTimeout, GuardTripped, alarm, guard, memory_cap
 from bayesgeo.cli import main
 
 REPO = Path(__file__).resolve().parents[1]
-REAL_HOME = Path(os.path.expanduser("~")).resolve()
 CASE_SECONDS = 120  # a case still running after this is stopped and reported (a hang is a defect)
+ISOLATED = ("validate", "demo")  # commands run in a child process (see run_cli_isolated)
 
 
 # --- the harness ----------------------------------------------------------------------------------
-
-class CaseTimeout(BaseException):
-    """Raised by the alarm; a BaseException so that no ``except Exception`` in the program eats it."""
-
-
-class GuardTripped(BaseException):
-    """The program tried to create, move or delete a path outside the sandbox that must never be touched."""
-
-
-def _ancestors(p: Path) -> set[Path]:
-    return set(p.parents)
-
-
-@contextlib.contextmanager
-def guard(root: Path):
-    """Refuse mkdir/rename/replace/remove/rmdir/rmtree of ``/``, its children, the real home folder,
-    its visible children and the sandbox's ancestors (and new entries directly inside them, except in
-    the system temporary folder, where libraries keep caches)."""
-    root = root.resolve()
-    anc = _ancestors(root)
-    tmp = Path(tempfile.gettempdir()).resolve()
-
-    def dangerous(path) -> bool:
-        try:
-            p = Path(os.path.abspath(os.fspath(path)))
-        except TypeError:
-            return False
-        if p == root or root in p.parents:
-            return False
-        if p == Path("/") or p.parent == Path("/") or p in anc or p == REAL_HOME:
-            return True
-        if p.parent == REAL_HOME and not p.name.startswith("."):
-            return True
-        return p.parent in anc and p.parent != tmp
-
-    def wrap(fn, nargs=1):
-        def guarded(*args, **kw):
-            if kw.get("dir_fd") is None and kw.get("src_dir_fd") is None:
-                for a in args[:nargs]:
-                    if dangerous(a):
-                        raise GuardTripped(f"{fn.__name__}({a!r}) outside the sandbox")
-            return fn(*args, **kw)
-
-        return guarded
-
-    saved = {(os, n): getattr(os, n) for n in ("mkdir", "rmdir", "remove", "unlink", "rename", "replace")}
-    saved[(shutil, "rmtree")] = shutil.rmtree
-    try:
-        for (mod, n), fn in saved.items():
-            setattr(mod, n, wrap(fn, 2 if n in ("rename", "replace") else 1))
-        yield
-    finally:
-        for (mod, n), fn in saved.items():
-            setattr(mod, n, fn)
-
 
 def snapshot(root: Path) -> dict[str, tuple]:
     """Every entry under ``root``: folders, symlinks (target) and files (sha256, size, mtime_ns)."""
@@ -149,20 +95,6 @@ def _allowed(path: str, patterns: tuple[str, ...]) -> bool:
     return False
 
 
-@contextlib.contextmanager
-def _alarm(seconds: float):
-    def fire(signum, frame):
-        raise CaseTimeout(f"still running after {seconds} s")
-
-    old = signal.signal(signal.SIGALRM, fire)
-    signal.setitimer(signal.ITIMER_REAL, seconds)
-    try:
-        yield
-    finally:
-        signal.setitimer(signal.ITIMER_REAL, 0)
-        signal.signal(signal.SIGALRM, old)
-
-
 def make_box(tmp: Path, fit_source: Path | None = None) -> Box:
     """A sandbox: the working folder is two levels down, so that ``..`` stays inside ``tmp``."""
     cwd = tmp / "w" / "d"
@@ -183,7 +115,7 @@ def run_cli(box: Box, argv: list[str], seconds: float = CASE_SECONDS, home: bool
     if home:
         os.environ["HOME"] = str(box.home)
     try:
-        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err), guard(box.root), _alarm(seconds):
+        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err), guard(box.root), memory_cap(), alarm(seconds):
             try:
                 status: object = main(list(argv))
             except SystemExit as exc:  # argparse's exit: a process would end with this status
@@ -199,6 +131,25 @@ def run_cli(box: Box, argv: list[str], seconds: float = CASE_SECONDS, home: bool
         else:
             os.environ["HOME"] = old_home
     return status, out.getvalue(), err.getvalue()
+
+
+def run_cli_isolated(box: Box, argv: list[str], seconds: float = CASE_SECONDS, home: bool = False) -> tuple[object, str, str]:
+    """As :func:`run_cli` in a child process (tests/_reliability_guard.py) for the commands that
+    run whole pipelines when they accept their input (validate, demo): a crash or a hang there
+    must fail one case, not end the suite. An escaped exception shows as a traceback on stderr."""
+    env = _env()
+    if home:
+        env["HOME"] = str(box.home)
+    cmd = [sys.executable, str(Path(__file__).with_name("_reliability_guard.py")), str(box.root), json.dumps(list(argv)),
+           str(seconds)]
+    try:
+        proc = subprocess.run(cmd, cwd=box.cwd, env=env, capture_output=True, text=True, timeout=seconds + 60)
+    except subprocess.TimeoutExpired as exc:
+        return CaseTimeout(f"child still running after {seconds + 60} s"), "", str(exc.stderr or "")
+    status: object = proc.returncode
+    if proc.returncode < 0:
+        status = RuntimeError(f"child ended by signal {-proc.returncode}")
+    return status, proc.stdout, proc.stderr
 
 
 def check_outcome(case: Case, box: Box, status, out: str, err: str, before: dict, after: dict) -> None:
@@ -265,7 +216,8 @@ def test_case(case: Case, request, tmp_path):
         os.chdir(old)
     argv = case.argv(box) if callable(case.argv) else case.argv
     before = snapshot(box.root)
-    status, out, err = run_cli(box, list(argv), home=case.home)
+    runner = run_cli_isolated if case.command in ISOLATED else run_cli
+    status, out, err = runner(box, list(argv), home=case.home)
     after = snapshot(box.root)
     check_outcome(case, box, status, out, err, before, after)
 
