@@ -878,5 +878,20 @@ def markdown_table(cases: list[Case] | None = None) -> str:
     return "\n".join(lines) + "\n"
 
 
+TABLE_MARK = "<!-- the table below is generated: python tests/_reliability_cases.py --write -->\n"
+
+
+def write_doc(path: Path) -> None:
+    """Replace the table of docs/reliability.md (everything after TABLE_MARK)."""
+    text = path.read_text(encoding="utf-8")
+    head = text.split(TABLE_MARK)[0]
+    path.write_text(head + TABLE_MARK + "\n" + markdown_table(), encoding="utf-8")
+
+
 if __name__ == "__main__":  # pragma: no cover
-    print(markdown_table(), end="")
+    import sys
+
+    if "--write" in sys.argv:
+        write_doc(Path(__file__).resolve().parents[1] / "docs" / "reliability.md")
+    else:
+        print(markdown_table(), end="")
