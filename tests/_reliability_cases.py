@@ -422,6 +422,9 @@ def study_replace(old: str, new: str) -> Callable:
 
 # --- place patterns -------------------------------------------------------------------------------
 
+#: the damaged fit named as a file or folder: "fit/posterior.nc" or "fit: ..." (or fit2, its partner in compare)
+FIT_FILE = r"\bfit2?/posterior\.nc\b|(^|[\s'\"])fit2?(: |/ |'|\"|$)"
+
 def opt(name: str) -> str:
     return re.escape(name)
 
@@ -496,6 +499,7 @@ def after_check_overwrite(box: Box, out: str, err: str) -> None:
     assert (box.cwd / "fit" / "diagnostics" / "diagnostics.json").is_file()
 
 
+LONLAT_ROWS = [(10.0 + 20.0 * a / 200.0, 10.0 + 10.0 * b / 200.0, c) for a, b, c in good_rows()]
 LON360_ROWS = [(200.0 + 20.0 * a / 200.0, 10.0 + 10.0 * b / 200.0, c) for a, b, c in good_rows()]
 
 
@@ -675,7 +679,7 @@ def _cases() -> list[Case]:
     csv_case("empty-file", "a 0-byte file", b"", (D,))
     csv_case("blank-lines-only", "a file of blank lines", "\n\n\n", (D,))
     csv_case("header-only", "a header and no rows", "x,y,conc\n", (D,))
-    csv_case("one-row", "a single data row", rows_csv(good_rows(1)), (D,))
+    csv_case("one-row", "a single data row (planar coordinates)", rows_csv(good_rows(1)), (D, r"\b10\b"), extra_argv=("--coords", "xy"))
     csv_case("nine-rows", "nine data rows (fewer than 10 points)", rows_csv(good_rows(9)), (D, r"10"))
     csv_case("missing-value-column", "no value column besides x, y", "x,y\n" + "".join(f"{a},{b}\n" for a, b, _ in good_rows()), (D,))
     csv_case("missing-x-column", "no column recognisable as x", good_csv().replace("x,y,conc", "a,y,conc", 1), (D, opt("--x")))
@@ -706,7 +710,8 @@ def _cases() -> list[Case]:
     csv_case("minus-inf-value", "-inf in the value column", with_cell(4, 2, "-inf"), (D, row(5), col("conc")))
     csv_case("nan-value", "nan in the value column", with_cell(4, 2, "nan"), (D, row(5), col("conc")))
     csv_case("constant-values", "every value the same", rows_csv([(a, b, 5.0) for a, b, _ in good_rows()]), (D, col("conc")))
-    csv_case("identical-points", "every point at the same location", rows_csv([(10.0, 10.0, c) for _, _, c in good_rows()]), (D,))
+    csv_case("identical-points", "every point at the same location (planar coordinates)", rows_csv([(10.0, 10.0, c) for _, _, c in good_rows()]),
+             (D, r"duplicate|same location|identical"), extra_argv=("--coords", "xy"))
     csv_case("duplicate-location", "two rows at the same location", rows_csv([*good_rows()[:10], (good_rows()[2][0], good_rows()[2][1], 12.0), *good_rows()[10:]]),
              (D, row(4), row(12)))
     csv_case("log-negative", "--transform log with a negative value", with_cell(4, 2, "-2"), (D, row(5), col("conc")), extra_argv=("--transform", "log"))
@@ -716,7 +721,7 @@ def _cases() -> list[Case]:
              status=(0, 2), warn_ok=r"lonlat|--coords|degree", source="issue #15 (lon/lat-looking coordinates without --coords: refused or warned)")
     csv_case("lon-above-360", "--coords lonlat with a longitude of 400", rows_csv([(400.0 if i == 3 else a, b, c) for i, (a, b, c) in enumerate(LON360_ROWS)], "lon,lat,conc"),
              (D, row(5), col("lon")), extra_argv=("--coords", "lonlat"))
-    csv_case("lat-above-90", "--coords lonlat with a latitude of 95", rows_csv([(a, 95.0 if i == 3 else b, c) for i, (a, b, c) in enumerate(LON360_ROWS)], "lon,lat,conc"),
+    csv_case("lat-above-90", "--coords lonlat with a latitude of 95", rows_csv([(a, 95.0 if i == 3 else b, c) for i, (a, b, c) in enumerate(LONLAT_ROWS)], "lon,lat,conc"),
              (D, row(5), col("lat")), extra_argv=("--coords", "lonlat"))
     csv_case("site-whitespace", "site labels 'north' and 'north ' (differ by a space)",
              sites_csv().replace(",north,", ",north ,", 3), (D, col("parcel")), extra_argv=("--site", "parcel"))
@@ -767,7 +772,7 @@ def _cases() -> list[Case]:
     for cmd, (argv, kinds) in per_command.items():
         for k in kinds:
             setup = (FIT_COPY, FIT2_COPY, dmg[k]) if cmd == "compare" else (FIT_COPY, dmg[k])
-            add(Case(f"{cmd}-damaged-{k}", "damaged", f"{argv[0]}: {what[k]}", argv, setup, places=(r"\bfit\b|posterior\.nc",), needs_fit=True))
+            add(Case(f"{cmd}-damaged-{k}", "damaged", f"{argv[0]}: {what[k]}", argv, setup, places=(FIT_FILE,), needs_fit=True))
 
     # study files
     def study_case(cid, what, step, places, argv=RUN):
