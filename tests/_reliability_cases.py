@@ -654,6 +654,8 @@ def _cases() -> list[Case]:
         add(Case(f"demo-data-seed-{tag}", "option", f"demo-data --seed {v}", (*DEMO_DATA, "--seed", v), places=(opt("--seed"),), usage_ok=True))
     add(Case("demo-data-out-exists", "output", "demo-data --out naming an existing file, no --overwrite", DEMO_DATA, (write("demo.csv", "mine\n"),), places=(r"demo\.csv",)))
     add(Case("demo-data-out-directory", "output", "demo-data --out naming a folder", ("demo-data", "--out", "adir"), (mkdir("adir"),), places=(r"adir",)))
+    add(Case("demo-data-out-users-file", "output", "demo-data --out --overwrite over a CSV bayesgeo did not write", (*DEMO_DATA, "--overwrite"),
+             (write("demo.csv", "x,y,conc\n1,2,3\n"),), places=(r"demo\.csv",), source="docs/outputs.md, rule 8 (standalone files)"))
     add(Case("demo-data-out-empty-string", "option", "demo-data --out given as an empty string", ("demo-data", "--out", ""), places=(opt("--out"),),
              usage_ok=True))
 
@@ -833,13 +835,19 @@ def _cases() -> list[Case]:
              (DATA, write("notes.txt", "my notes\n")), places=(r"notes\.txt",)))
     add(Case("out-under-a-file", "output", "explore --out data.csv/sub (a path below a file)", (*EXPLORE[:-2], "--out", "data.csv/sub"), (DATA,),
              places=(r"data\.csv",)))
-    add(Case("out-stale-part-cleaned", "output", "a stale .ex.*.part folder of a killed run is cleaned by the next run", EXPLORE,
-             (DATA, write(".ex.k3j9x2qa.part/semivariogram.csv", "half\n")), status=0, writes=("ex", ".ex.*.part"), after=after_stale_cleaned))
+    add(Case("out-stale-part-cleaned", "output", "an empty .ex.*.part folder left by a killed run is removed by the next run", EXPLORE,
+             (DATA, mkdir(".ex.k3j9x2qa.part")), status=0, writes=("ex", ".ex.*.part"), after=after_stale_cleaned,
+             source="docs/outputs.md, rule 6"))
+    add(Case("out-part-named-user-folder-kept", "output", "a folder named like a part but holding the user's file (no bayesgeo tag) is kept",
+             EXPLORE, (DATA, write(".ex.k3j9x2qa.part/mine.txt", "mine\n")), status=0, writes=("ex",), source="docs/outputs.md, rules 1 and 6"))
+    add(Case("out-empty-folder-overwrite", "output", "explore --out <an empty folder> --overwrite (nothing to lose: replaced)",
+             (*EXPLORE, "--overwrite"), (DATA, mkdir("ex")), status=0, writes=("ex",), after=after_replaced, source="docs/outputs.md, rule 3"))
     add(Case("fit-out-dot-overwrite", "output", "fit --out . --overwrite", (*FIT[:-2], "--out", ".", "--overwrite"), (DATA,), places=(opt("--out"),)))
     add(Case("fit-out-data-folder-overwrite", "output", "fit --out <folder holding the CSV> --overwrite",
              ("fit", "in/data.csv", *FIT[2:-2], "--out", "in", "--overwrite"), (write("in/data.csv", good_csv()),), places=(r"\bin\b",)))
-    add(Case("check-existing-diagnostics", "output", "check again without --overwrite keeps the first diagnostics/", CHECK,
-             (FIT_COPY, run_first(*CHECK)), places=(r"diagnostics", opt("--overwrite")), needs_fit=True))
+    add(Case("check-existing-diagnostics", "output", "check again without --overwrite prints its verdict and keeps the first diagnostics/ byte-identical",
+             CHECK, (FIT_COPY, run_first(*CHECK)), status=(0, 3), writes=(f"fit/{MARKER}",), needs_fit=True,
+             source="issue #15; docs/outputs.md, rule 7"))
     add(Case("check-users-diagnostics-overwrite", "output", "check --overwrite where diagnostics/ holds the user's files", (*CHECK, "--overwrite"),
              (FIT_COPY, write("fit/diagnostics/my_notes.txt", "mine\n")), places=(r"diagnostics|my_notes",), needs_fit=True))
     add(Case("map-users-maps-overwrite", "output", "map --overwrite where maps/ holds the user's files",
@@ -850,6 +858,8 @@ def _cases() -> list[Case]:
              after=after_check_overwrite, needs_fit=True))
     add(Case("compare-out-dot-overwrite", "output", "compare --out . --overwrite", (*COMPARE, "--out", ".", "--overwrite"), (FIT_COPY, FIT2_COPY),
              places=(opt("--out"),), needs_fit=True))
+    add(Case("compare-out-is-input", "output", "compare --out <one of the fit folders compared> --overwrite", (*COMPARE, "--out", "fit2", "--overwrite"),
+             (FIT_COPY, FIT2_COPY), places=(r"fit2",), needs_fit=True))
     add(Case("compare-out-users-folder", "output", "compare --out <a folder of the user's> --overwrite", (*COMPARE, "--out", "mine", "--overwrite"),
              (FIT_COPY, FIT2_COPY, write("mine/report.docx", "mine\n")), places=(r"mine",), needs_fit=True))
     add(Case("study-output-dot-overwrite", "output", "study with [output] dir = \".\" and overwrite = true", RUN,
