@@ -434,8 +434,8 @@ def col(name: str) -> str:
 
 
 def row(n: int) -> str:
-    """Row ``n`` (a spreadsheet row: the header is row 1), alone or in a list of rows."""
-    return rf"\brows?\b[^;]*?\b{n}\b"
+    """Row ``n`` (a spreadsheet row: the header is row 1; a CSV parser's line), alone or in a list."""
+    return rf"\b(rows?|lines?)\b[^;]*?\b{n}\b"
 
 
 def line(key: str) -> str:

@@ -153,7 +153,7 @@ def run_cli_isolated(box: Box, argv: list[str], seconds: float = CASE_SECONDS, h
     return status, proc.stdout, proc.stderr
 
 
-def check_outcome(case: Case, box: Box, status, out: str, err: str, before: dict, after: dict) -> None:
+def check_outcome(case: Case, box: Box, argv: list[str], status, out: str, err: str, before: dict, after: dict) -> None:
     """The contract of docs/cli.md and docs/outputs.md for one case."""
     assert not isinstance(status, BaseException), f"{type(status).__name__} escaped main(): {status}\nstderr: {err}"
     allowed = case.status if isinstance(case.status, tuple) else (case.status,)
@@ -164,7 +164,7 @@ def check_outcome(case: Case, box: Box, status, out: str, err: str, before: dict
     if status == 2:
         lines = err.splitlines()
         assert len(lines) == 1 and lines[0].strip() and err.endswith("\n"), f"stderr is not one line: {err!r}"
-        cmd = case.command
+        cmd = argv[0] if argv else ""
         prefixes = [f"bayesgeo {cmd}: error: "] if cmd else []
         if case.usage_ok or not cmd:
             prefixes.append("bayesgeo: error: ")
@@ -220,7 +220,7 @@ def test_case(case: Case, request, tmp_path):
     runner = run_cli_isolated if case.command in ISOLATED else run_cli
     status, out, err = runner(box, list(argv), home=case.home)
     after = snapshot(box.root)
-    check_outcome(case, box, status, out, err, before, after)
+    check_outcome(case, box, list(argv), status, out, err, before, after)
 
 
 # --- the table and its documentation --------------------------------------------------------------
@@ -323,7 +323,8 @@ def test_killed_run_leaves_no_half_output_and_next_run_cleans(tmp_path):
     assert not list(box.cwd.glob(".ex.*.part")), "the stale .part folder was not cleaned"
     assert (box.cwd / "ex" / "explore.json").is_file() and (box.cwd / "ex" / MARKER).is_file()
     changed = changes(before, snapshot(box.root))
-    assert all(re.match(r"w/d/(ex|\.ex\..*\.part)(/|$)", c) for c in changed), changed
+    assert all(re.match(r"w/d/(ex|\.ex\..*\.part|\.ex\.lock)(/|$)", c) for c in changed), changed
+    assert not (box.cwd / ".ex.lock").exists(), "the lock file beside the output was left behind"
     assert (box.cwd / "sites.csv").read_bytes() == data_before
 
 
