@@ -6,7 +6,7 @@
 and a sequence of commands give the same files and numbers (:func:`stage_commands` lists them).
 The pipeline therefore sits beside the command line, at the end of the stage order.
 
-Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.io.atomic_dir`)::
+Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.outputs.new_folder`)::
 
     inputs/            copies of the study file and the data (and target points, area polygons)
     explore/           exploratory semivariogram, correlogram, directions, quick fits (explore.json);
@@ -49,7 +49,8 @@ import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from bayesgeo.io import atomic_dir, refuse_existing, write_json
+from bayesgeo.io import write_json
+from bayesgeo.outputs import claim, new_folder
 from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
 from bayesgeo.study import Study, areas_of, read_study, study_line
 from bayesgeo.validate import InputError
@@ -318,12 +319,12 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     s = study.settings
     out = Path(out) if out is not None else study.out_dir
     overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
-    refuse_existing(out, overwrite)
-    sites = study_sites(study) if study.several_sites else {}
     inputs = [study.path, s["data"]["path"]]
     for extra in (s["prediction"]["points"], *areas_of(s["prediction"]["area"])):
         if isinstance(extra, Path):
             inputs.append(extra)
+    claim(out, overwrite=overwrite, inputs=inputs, option=f"{study.path}: [output] dir")
+    sites = study_sites(study) if study.several_sites else {}
     manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
                             argv=argv)
     if sites:
@@ -331,7 +332,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     say = log or (lambda _msg: None)
     fams = study.families
     status, message, selected = EXIT_OK, "done", fams[0]
-    with atomic_dir(out, overwrite=overwrite) as tmp:
+    with new_folder(out, overwrite=overwrite) as tmp:
         (tmp / "inputs").mkdir()
         for k, p in enumerate(inputs):
             name = "study.toml" if k == 0 else p.name

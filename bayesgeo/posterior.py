@@ -31,7 +31,8 @@ import xarray as xr
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.data import sites_of
-from bayesgeo.io import atomic_dir, plain_attr, read_datatree, to_jsonable
+from bayesgeo.io import plain_attr, read_datatree, to_jsonable
+from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
@@ -381,12 +382,12 @@ def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = Fals
     and prior_check.png (:func:`prior_check_figure`).
 
     The folder is assembled under a temporary name and renamed at the end
-    (:func:`bayesgeo.io.atomic_dir`); an existing folder is refused unless ``overwrite``.
+    (:func:`bayesgeo.outputs.new_folder`, which also says what ``overwrite`` may replace).
     """
     report = fit_report(tree)
     rows = summary_table(tree)
     verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
-    with atomic_dir(directory, overwrite=overwrite) as tmp:
+    with new_folder(directory, overwrite=overwrite) as tmp:
         tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
         buf = io.StringIO()
         w = csv.DictWriter(buf, fieldnames=[*rows[0].keys(), "diagnostics"], lineterminator="\n")

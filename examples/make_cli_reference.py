@@ -19,7 +19,8 @@ Every command prints human tables by default and exactly one JSON object on stdo
 (nothing else goes to stdout then; progress goes to stderr). Exit status: 0 done; 2 bad input (one
 line on stderr naming the file, row, column or option); 3 a posterior failed its convergence check;
 1 (`run`, `demo`) a stage failed unexpectedly. Outputs are written atomically and never replace
-existing files without `--overwrite`.
+existing files without `--overwrite`; with it, only what bayesgeo itself wrote is replaced
+(docs/outputs.md).
 """
 
 

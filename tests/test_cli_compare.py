@@ -13,13 +13,12 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
+from conftest import write_fit_folder
 from test_loo import make_fit, simulated
 
 
 def _save(tree, folder):
-    folder.mkdir(parents=True)
-    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
-    return folder
+    return write_fit_folder(tree, folder)
 
 
 @pytest.fixture(scope="module")

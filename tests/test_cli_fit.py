@@ -55,7 +55,8 @@ def test_json_output_keys_and_files(cli_run, capsys):
     assert code == (EXIT_NOT_CONVERGED if rep["diagnostics"]["verdict"] == "fail" else 0)
     assert rep["model"]["priors"]["range"] == [30.0, 0.05]
     assert rep["parameters"]["practical_range"]["units"] == "coordinate units"
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "prior_check.png", "summary.csv", "summary.txt"]
+    assert sorted(p.name for p in out.iterdir()) == [".bayesgeo-output.json", "fit.json", "posterior.nc", "prior_check.png",
+                                                     "summary.csv", "summary.txt"]
 
 
 def test_existing_output_is_refused_without_overwrite(cli_run, capsys):
@@ -106,13 +107,20 @@ def test_bad_prior_is_refused(tmp_path, capsys):
 @pytest.mark.slow
 def test_human_output_and_overwrite(cli_run, tmp_path, capsys):
     """Without --json: a table with the parameters and the verdict on stdout; --overwrite replaces an
-    existing folder in one piece (bayesgeo.io.atomic_dir)."""
+    earlier bayesgeo output in one piece, and refuses, before sampling, a folder holding a file
+    bayesgeo did not write (bayesgeo.outputs, docs/outputs.md)."""
+    from bayesgeo.outputs import new_folder
+
     data, _, argv = cli_run
     out = tmp_path / "o"
-    out.mkdir()
-    (out / "old.txt").write_text("old")
+    with new_folder(out) as tmp:
+        (tmp / "old.txt").write_text("old")
     argv = [a for a in argv if a != "--json"]
     argv[argv.index("--out") + 1] = str(out)
+    (out / "mine.txt").write_text("mine")
+    assert main(["fit", *argv, "--overwrite"]) == 2
+    assert "mine.txt" in capsys.readouterr().err and (out / "mine.txt").read_text() == "mine"
+    (out / "mine.txt").unlink()
     code = main(["fit", *argv, "--overwrite"])
     stdout = capsys.readouterr().out
     assert code in (0, EXIT_NOT_CONVERGED)

@@ -16,6 +16,7 @@ import pytest
 import xarray as xr
 
 from bayesgeo.cli import main
+from conftest import write_fit_folder
 from bayesgeo.demo import demo_data
 from bayesgeo.map_figures import map_figure
 from bayesgeo.model import model_inputs
@@ -55,8 +56,7 @@ def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=2
     tree = xr.DataTree.from_dict({"posterior": derive(post, spec), "sample_stats": stats, "observed_data": obs,
                                   "constant_data": const})
     tree.attrs["settings"] = json.dumps({"model": spec.to_dict()})
-    path.mkdir(parents=True, exist_ok=True)
-    tree.to_netcdf(path / "posterior.nc", engine="netcdf4")
+    write_fit_folder(tree, path)
     return path, ds
 
 

@@ -105,7 +105,8 @@ def test_save_and_load_round_trip(tree, tmp_path):
     """save_fit writes posterior.nc readable by xarray.open_datatree (netCDF4) with every group and
     attribute, summary.csv with the stated columns, fit.json and summary.txt; load_fit reads it back."""
     out = save_fit(tree, tmp_path / "fit1")
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "prior_check.png", "summary.csv", "summary.txt"]
+    assert sorted(p.name for p in out.iterdir()) == [".bayesgeo-output.json", "fit.json", "posterior.nc", "prior_check.png",
+                                                     "summary.csv", "summary.txt"]
     back = load_fit(out)
     xr.testing.assert_identical(back["posterior"].to_dataset(), tree["posterior"].to_dataset())
     assert back.attrs["settings"] == tree.attrs["settings"]

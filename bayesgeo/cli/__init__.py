@@ -62,6 +62,9 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return EXIT_INPUT
+    from bayesgeo import outputs
+
+    outputs.set_command(sys.argv[1:] if argv is None else argv)
     try:
         return int(args._module.run(args) or 0)
     except InputError as err:
@@ -70,6 +73,8 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"bayesgeo {args.command}: interrupted", file=sys.stderr)
         return 130
+    finally:
+        outputs.release_all()
 
 
 if __name__ == "__main__":  # pragma: no cover

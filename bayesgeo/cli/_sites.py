@@ -50,11 +50,11 @@ def run_sites(args, ds) -> int:
     from bayesgeo.diagnostics import check_convergence
     from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, summary_text_sites, with_site_diagnostics
     from bayesgeo.hierarchical import fit_sites, site_spec
-    from bayesgeo.io import refuse_existing
+    from bayesgeo.outputs import claim
     from bayesgeo.priors import Priors
     from bayesgeo.validate import InputError, check_positive_int
 
-    refuse_existing(args.out, args.overwrite)
+    claim(args.out, overwrite=args.overwrite, inputs=[args.data])
     if _opt(args, "prior_nugget", None):
         raise InputError("--prior-nugget: the several-site model puts its prior on the nugget fraction of the sill "
                          "(see docs/hierarchical.md); drop --prior-nugget")

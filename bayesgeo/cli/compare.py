@@ -128,11 +128,12 @@ def run(args) -> int:
     from pathlib import Path
 
     from bayesgeo.cli._common import emit_json, print_table, progress, to_jsonable
-    from bayesgeo.io import atomic_dir, refuse_existing, write_json
+    from bayesgeo.io import write_json
+    from bayesgeo.outputs import claim, new_folder
 
     out = Path(args.out) if args.out else None
     if out is not None:
-        refuse_existing(out, args.overwrite)
+        claim(out, overwrite=args.overwrite, inputs=args.dirs)
     bar = progress(total=2 * len(args.dirs), desc="compare", enabled=not args.json)
     with bar:
         obj, res, pits = build_result(args.dirs, bar=bar, store=args.store, site=args.site,
@@ -142,7 +143,7 @@ def run(args) -> int:
         from bayesgeo.check_figures import loo_pit_figure
         from bayesgeo.figures import save_figure
 
-        with atomic_dir(out, overwrite=args.overwrite) as tmp:
+        with new_folder(out, overwrite=args.overwrite) as tmp:
             table = res[["rank", "covariance", "pooling", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
                          "pareto_k_high", "pareto_k_max"]].to_dataframe()
             table.to_csv(tmp / "comparison.csv", float_format="%.10g")

@@ -191,7 +191,8 @@ def run(args) -> int:
 
     from bayesgeo.cli._common import emit_json, print_table, progress, read_data
     from bayesgeo.data import sites_of
-    from bayesgeo.io import atomic_dir, refuse_existing, write_json
+    from bayesgeo.io import write_json
+    from bayesgeo.outputs import claim, new_folder
     from bayesgeo.quickfit import QUICK_FAMILIES
     from bayesgeo.trend import MAX_ORDER
     from bayesgeo.validate import InputError
@@ -202,7 +203,7 @@ def run(args) -> int:
     from bayesgeo.data import apply_transform
 
     ds = apply_transform(read_data(args), args.transform)
-    refuse_existing(out, args.overwrite)
+    claim(out, overwrite=args.overwrite, inputs=[args.data])
     families = list(dict.fromkeys(args.covariance or QUICK_FAMILIES))
     labels = sites_of(ds)
     multi = labels != [""]
@@ -223,7 +224,7 @@ def run(args) -> int:
     if multi:
         obj["sites"] = objects
     files: list[str] = []
-    with atomic_dir(out, overwrite=args.overwrite) as tmp:
+    with new_folder(out, overwrite=args.overwrite) as tmp:
         taken: set[str] = set()
         for label in labels:
             sub = _slug(label, taken) if multi else ""

@@ -51,11 +51,11 @@ def run(args) -> int:
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json, read_data
     from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.io import refuse_existing
+    from bayesgeo.outputs import claim
     from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
     from bayesgeo.priors import Priors
 
-    refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
+    claim(args.out, overwrite=args.overwrite, inputs=[args.data])  # refuse before minutes of sampling, not after
     ds = read_data(args)
     from bayesgeo.data import sites_of
 

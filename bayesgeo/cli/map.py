@@ -74,7 +74,7 @@ def run(args) -> int:
 
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json, progress
-    from bayesgeo.io import atomic_dir, refuse_existing, write_netcdf
+    from bayesgeo.outputs import add_to_folder, check_addable
     from bayesgeo.validate import InputError, check_positive_int
 
     from bayesgeo import targets as tg
@@ -97,9 +97,9 @@ def run(args) -> int:
         slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", args.site)
         out_nc = folder / f"{Path(PREDICTIONS_FILE).stem}_{slug}.nc"
         out_maps = folder / f"{MAPS_DIR}_{slug}"
-    refuse_existing(out_nc, args.overwrite)
+    check_addable(folder, out_nc.name, overwrite=args.overwrite)
     if not args.no_figures:
-        refuse_existing(out_maps, args.overwrite)
+        check_addable(folder, out_maps.name, overwrite=args.overwrite)
 
     from bayesgeo.cli._common import load_fit_folder
     from bayesgeo.diagnostics import check_convergence
@@ -177,12 +177,13 @@ def run(args) -> int:
         pred.attrs["convergence_status"] = "NOT CONVERGED"
     if area is not None:
         pred.attrs["area_average"] = json.dumps(area)
-    write_netcdf(out_nc, pred, overwrite=args.overwrite)
+    with add_to_folder(folder, out_nc.name, overwrite=args.overwrite) as tmp:
+        pred.to_netcdf(tmp, engine="netcdf4")
     maps = []
     if not args.no_figures:
         from bayesgeo.map_figures import write_map_figures
 
-        with atomic_dir(out_maps, overwrite=args.overwrite) as tmp:
+        with add_to_folder(folder, out_maps.name, overwrite=args.overwrite, kind="dir") as tmp:
             written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),
                                         not_converged=not_converged)
         maps = [str(out_maps / p.name) for p in written]

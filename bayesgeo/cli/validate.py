@@ -85,12 +85,12 @@ def run(args) -> int:
 
     from bayesgeo.cli._common import emit_json, progress
     from bayesgeo.data import sites_of
-    from bayesgeo.io import atomic_dir, refuse_existing
+    from bayesgeo.outputs import claim, new_folder
     from bayesgeo.validate import InputError, check_positive_int
     from bayesgeo.validation import FULL, QUICK, generated_layout, sbc_summary, simulation_based_calibration, with_settings
     from bayesgeo.validation_report import CAUTIONS, validation_html
 
-    refuse_existing(args.out, args.overwrite)
+    claim(args.out, overwrite=args.overwrite, inputs=[args.study, args.data])
     data, study = _template(args)
     base = QUICK if args.quick else FULL
     changes = {k: v for k, v in (("draws", args.draws), ("tune", args.tune)) if v is not None}
@@ -153,7 +153,7 @@ def run(args) -> int:
                                                                           "failed_checks") if k in r}}
                     for r, s in runs]}
     page = validation_html(runs, meta=meta)
-    with atomic_dir(args.out, overwrite=args.overwrite) as tmp:
+    with new_folder(args.out, overwrite=args.overwrite) as tmp:
         (tmp / "validation.html").write_text(page, encoding="utf-8")
         (tmp / "validation.json").write_text(json.dumps(_clean(out), indent=1), encoding="utf-8")
     if args.json:

@@ -55,7 +55,7 @@ def run(args) -> int:
     from bayesgeo.check_figures import variogram_check_figure
     from bayesgeo.cli._common import emit_json, print_table, progress
     from bayesgeo.figures import save_figure
-    from bayesgeo.io import atomic_file, refuse_existing
+    from bayesgeo.outputs import add_to_folder, check_addable
     from bayesgeo.cli._common import load_fit_folder
     from bayesgeo.ppcheck import variogram_check
 
@@ -65,8 +65,8 @@ def run(args) -> int:
         tree = load_fit_folder(folder, args.site)
         fig_name, csv_name = output_names(args.site)
         fig_path, csv_path = folder / fig_name, folder / csv_name
-        refuse_existing(fig_path, args.overwrite)
-        refuse_existing(csv_path, args.overwrite)
+        check_addable(folder, fig_name, overwrite=args.overwrite)
+        check_addable(folder, csv_name, overwrite=args.overwrite)
         bar.update(1)
         vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed,
                              progress=functools.partial(progress, enabled=not args.json))
@@ -86,9 +86,9 @@ def run(args) -> int:
         import pandas as pd
 
         frame = pd.DataFrame({c: vc[c].values for c in TABLE_COLUMNS})
-        with atomic_file(csv_path, overwrite=args.overwrite) as tmp:
+        with add_to_folder(folder, csv_name, overwrite=args.overwrite) as tmp:
             frame.to_csv(tmp, index=False, float_format="%.10g")
-        with atomic_file(fig_path, overwrite=args.overwrite) as tmp:
+        with add_to_folder(folder, fig_name, overwrite=args.overwrite) as tmp:
             save_figure(variogram_check_figure(vc, title=title), tmp)
         bar.update(1)
     obj = {
