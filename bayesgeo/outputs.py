@@ -33,7 +33,7 @@ from pathlib import Path
 
 from bayesgeo.validate import InputError
 
-__all__ = ["MARKER", "set_command", "claim", "release_all", "new_folder", "new_files", "add_to_folder",
+__all__ = ["MARKER", "set_command", "claim", "release_all", "scope", "new_folder", "new_files", "add_to_folder",
            "check_replaceable", "check_addable", "read_marker", "part_file"]
 
 MARKER = ".bayesgeo-output.json"
@@ -315,9 +315,21 @@ def _release(real: Path) -> None:
 
 
 def release_all() -> None:
-    """Drop every output this process holds (the CLI calls it when a command ends)."""
+    """Drop every output this process holds."""
     for real in list(_HELD):
         _release(real)
+
+
+@contextlib.contextmanager
+def scope() -> Iterator[None]:
+    """Release, on leaving, every output claimed inside (a command ends; a study stage ends)."""
+    before = set(_HELD)
+    try:
+        yield
+    finally:
+        for real in list(_HELD):
+            if real not in before:
+                _release(real)
 
 
 # ---------------------------------------------------------------- writing

@@ -50,6 +50,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from bayesgeo.io import write_json
+from bayesgeo import outputs
 from bayesgeo.outputs import claim, new_folder
 from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
 from bayesgeo.study import Study, areas_of, read_study, study_line
@@ -78,7 +79,7 @@ def _command(argv: Sequence[str]) -> tuple[int, dict]:
     """Run one ``bayesgeo`` command in-process with ``--json``; return (status, its JSON object)."""
     args = _parser().parse_args([str(a) for a in argv] + ["--json"])
     buf = io.StringIO()
-    with contextlib.redirect_stdout(buf):
+    with contextlib.redirect_stdout(buf), outputs.scope():
         status = int(args._module.run(args) or 0)
     lines = [ln for ln in buf.getvalue().splitlines() if ln.strip()]
     try:

@@ -307,3 +307,12 @@ def test_stale_parts_of_other_outputs_and_user_files_survive(tmp_path):
     claim(tmp_path / "run")
     names = sorted(p.name for p in tmp_path.iterdir() if not p.name.endswith(".lock"))
     assert names == [".other.abc12345.part", ".run.mine.part"]
+
+
+def test_scope_releases_only_its_own_claims(tmp_path):
+    """A stage run inside a study releases what it claimed and keeps the study's own claim (behaviour check)."""
+    claim(tmp_path / "run")
+    with outputs.scope():
+        claim(tmp_path / "stage")
+        assert (tmp_path / ".stage.lock").exists()
+    assert not (tmp_path / ".stage.lock").exists() and (tmp_path / ".run.lock").exists()

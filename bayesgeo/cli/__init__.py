@@ -66,15 +66,14 @@ def main(argv: list[str] | None = None) -> int:
 
     outputs.set_command(sys.argv[1:] if argv is None else argv)
     try:
-        return int(args._module.run(args) or 0)
+        with outputs.scope():
+            return int(args._module.run(args) or 0)
     except InputError as err:
         print(f"bayesgeo {args.command}: error: {err}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print(f"bayesgeo {args.command}: interrupted", file=sys.stderr)
         return 130
-    finally:
-        outputs.release_all()
 
 
 if __name__ == "__main__":  # pragma: no cover
