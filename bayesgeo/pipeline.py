@@ -318,13 +318,14 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     if not isinstance(study, Study):
         study = read_study(study)
     s = study.settings
+    option = "--out" if out is not None else f"{study.path}: [output] dir"
     out = Path(out) if out is not None else study.out_dir
     overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
     inputs = [study.path, s["data"]["path"]]
     for extra in (s["prediction"]["points"], *areas_of(s["prediction"]["area"])):
         if isinstance(extra, Path):
             inputs.append(extra)
-    claim(out, overwrite=overwrite, inputs=inputs, option=f"{study.path}: [output] dir")
+    claim(out, overwrite=overwrite, inputs=inputs, option=option)
     sites = study_sites(study) if study.several_sites else {}
     manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
                             argv=argv)
