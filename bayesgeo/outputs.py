@@ -34,7 +34,7 @@ from pathlib import Path
 from bayesgeo.validate import InputError
 
 __all__ = ["MARKER", "set_command", "claim", "release_all", "scope", "new_folder", "new_files", "add_to_folder",
-           "check_replaceable", "check_addable", "read_marker", "part_file"]
+           "check_replaceable", "check_addable", "read_marker", "part_file", "sha256_file"]
 
 MARKER = ".bayesgeo-output.json"
 _FORMAT = "bayesgeo output folder"
@@ -55,10 +55,11 @@ def _umask() -> int:
     return mask
 
 
-def _sha256(path: Path) -> str:
+def sha256_file(path: str | Path, *, chunk: int = 1 << 20) -> str:
+    """SHA-256 of a file's bytes (hex), read in chunks (FIPS 180-4, via :mod:`hashlib`)."""
     h = hashlib.sha256()
-    with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
             h.update(block)
     return h.hexdigest()
 
@@ -114,7 +115,7 @@ def _walk(folder: Path) -> Iterator[tuple[str, Path]]:
 
 
 def _file_table(folder: Path) -> dict[str, str]:
-    return {rel: _sha256(p) for rel, p in _walk(folder)}
+    return {rel: sha256_file(p) for rel, p in _walk(folder)}
 
 
 def _write_marker(folder: Path, files: dict[str, str], *, run: dict | None = None) -> None:
@@ -147,7 +148,7 @@ def _foreign(folder: Path, marker: dict, under: str | None = None) -> tuple[list
         key = "/".join(x for x in (under, rel) if x)
         if key not in listed:
             extra.append(key)
-        elif _sha256(p) != listed[key]:
+        elif sha256_file(p) != listed[key]:
             changed.append(key)
     return extra, changed
 
@@ -413,7 +414,7 @@ def new_files(paths: Iterable[str | Path], *, overwrite: bool = False, inputs: I
                 k = paths.index(record)
                 obj = json.loads(tmps[k].read_text(encoding="utf-8"))
                 obj["bayesgeo_output"] = {"command": " ".join(_COMMAND), "files": {
-                    p.name: _sha256(t) for p, t in zip(paths, tmps) if p != record}}
+                    p.name: sha256_file(t) for p, t in zip(paths, tmps) if p != record}}
                 tmps[k].write_text(json.dumps(obj, indent=2) + "\n", encoding="utf-8")
             for p, t in zip(paths, tmps):
                 os.replace(t, p)
@@ -435,7 +436,7 @@ def _check_record(paths: list[Path], record: Path | None) -> None:
     for p in existing:
         if p == record and files is not None:
             continue
-        if files is None or p.name not in files or _sha256(p) != files[p.name]:
+        if files is None or p.name not in files or sha256_file(p) != files[p.name]:
             raise InputError(f"{p}: not recorded as written by bayesgeo (or changed since); it is never "
                              "replaced; choose another output")
 
@@ -508,9 +509,9 @@ def _update_marker(folder: Path, name: str) -> None:
         files = {k: v for k, v in marker["files"].items() if k != name and not k.startswith(name + "/")}
         target = folder / name
         if target.is_dir():
-            files.update({f"{name}/{rel}": _sha256(p) for rel, p in _walk(target)})
+            files.update({f"{name}/{rel}": sha256_file(p) for rel, p in _walk(target)})
         else:
-            files[name] = _sha256(target)
+            files[name] = sha256_file(target)
         marker.setdefault("additions", []).append(
             {"path": name, "command": " ".join(_COMMAND),
              "time": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")})
