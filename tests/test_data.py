@@ -103,8 +103,8 @@ def test_lonlat_lookalike_refused_unless_asked(write_csv):
 
 
 def test_lonlat_out_of_range(write_csv, grid_rows):
-    """Longitudes outside [-180, 180] degrees (the WGS 84 convention, common practice) are reported with their rows."""
-    with pytest.raises(InputError, match=r"column 'x' is outside \[-180, 180\] degrees at rows 12, 13, .*\(15 rows\)"):
+    """Longitudes outside both written conventions, -180..180 and 0..360 degrees (common practice), are reported with their rows."""
+    with pytest.raises(InputError, match=r"column 'x' is outside \[-180, 360\] degrees at rows 22, 23, 24, 25, 26 "):
         read_points(write_csv(grid_rows), value="conc", coords="lonlat")
 
 

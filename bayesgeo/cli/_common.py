@@ -43,8 +43,14 @@ def read_data(args):
 
 
 
+#: Input warnings printed during this command (see ``bayesgeo.cli._one_line_warnings``); added to --json output.
+WARNINGS: list[str] = []
+
+
 def emit_json(obj) -> None:
-    """Print one JSON object on stdout."""
+    """Print one JSON object on stdout (with ``"warnings"``: the input warnings printed on stderr, if any)."""
+    if WARNINGS and isinstance(obj, dict):
+        obj = {**obj, "warnings": [*obj.get("warnings", []), *WARNINGS]}
     sys.stdout.write(json.dumps(to_jsonable(obj)) + "\n")
     sys.stdout.flush()
 
