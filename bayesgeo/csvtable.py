@@ -159,13 +159,15 @@ def parse_number(cell: str) -> float | None:
 def number_problem(cell: str) -> str:
     """Why ``cell`` is not accepted as a number, with what to write instead."""
     s = cell.strip()
+    if not s:
+        return "the cell is empty"
     if re.fullmatch(r"[+-]?[0-9]+(?:_[0-9]+)+(?:\.[0-9]*)?", s):
         return f"{s!r} has digit separators ('_'); write the number without them"
     if re.fullmatch(r"[+-]?[0-9]{1,3}(?:,[0-9]{3})+(?:\.[0-9]*)?", s):
         return f"{s!r} has digit separators (','); write the number without them, or it is a decimal comma"
     if re.fullmatch(r"[+-]?[0-9]*,[0-9]+", s):
         return f"{s!r} has a decimal comma; write a decimal point"
-    if s[:1] in "<>":
+    if s[:1] in ("<", ">"):
         return (f"{s!r} is a censored value (below or above a limit), not a number; decide how to treat such values "
                 "and enter numbers or remove the rows")
     if not s.isascii():

@@ -19,6 +19,7 @@ scheduler ``"threads"`` (dask's local thread pool, one BLAS thread per task).
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Sequence
 
 import numpy as np
@@ -36,6 +37,8 @@ from bayesgeo._kriging import (
     mixture_summary,
     summarise_samples,
 )
+from bayesgeo.csvtable import InputWarning
+from bayesgeo.targets import check_area_near_data, far_targets_warning
 from bayesgeo.trend import design_at
 from bayesgeo.validate import InputError, check_positive_int
 
@@ -291,6 +294,10 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     design = target_design(targets, design_attrs, basis.design.shape[1])
     inside = np.asarray(targets["inside"].values, bool).ravel()
     idx = np.flatnonzero(inside)
+    rows = targets["row"].values if "row" in targets.coords else np.arange(1, inside.size + 1)
+    far = far_targets_warning(basis.xy, xy[idx], rows[idx], basis.metric) if kind == "points" and idx.size else ""
+    if far:
+        warnings.warn(f"--points {targets.attrs.get('source', '')}: {far}", InputWarning, stacklevel=2)
     results = _run_chunks(basis, xy[idx], design[idx], thresholds=thr, include_nugget=include_nugget,
                           chunk_cells=chunk_cells, scheduler=scheduler, progress=progress) if idx.size else []
     dims = ("y", "x") if kind == "grid" else ("target",)
@@ -331,6 +338,8 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
                                          if basis.transform == "log" else "")),
         "caution": CAUTION,
     })
+    if far:
+        ds.attrs["warning"] = far
     return ds
 
 
@@ -385,6 +394,7 @@ def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Seque
         ``mean``, ``sd``, ``q05``, ``q95``, ``p_exceed`` (list per threshold), ``threshold``,
         ``points`` (discretisation size), ``method``.
     """
+    check_area_near_data(basis.xy, xy_area, basis.metric)
     thr = [float(t) for t in thresholds]
     if basis.transform == "log":
         sims = conditional_simulations(basis, xy_area, design_area, n_sim=check_positive_int(n_sim, "n_sim"),

@@ -56,7 +56,7 @@ def test_point_file_keeps_order_rows_and_covariates(tmp_path):
 
 
 @pytest.mark.parametrize("text,match", [
-    ("x,y\n1,2\n3,\n", r"row 3, column 'y': '' is not a number"),
+    ("x,y\n1,2\n3,\n", r"row 3, column 'y': the cell is empty"),
     ("a,b\n1,2\n", r"no column 'x'"),
     ("x,y\n", r"no target points"),
     ("x,y\n1,inf\n", r"row 2, column 'y': 'inf' is not a finite number"),
