@@ -267,7 +267,18 @@ def _site_labels(table, col: str) -> list[str]:
             f"{table.src}: column {col!r} has labels with leading or trailing spaces ({shown}) at rows "
             f"{format_rows([r for r, _ in changed])}; the spaces were removed, so labels differing only in them "
             "are one site", InputWarning, stacklevel=3)
-    return [c.strip() for c in raw]
+    labels = [c.strip() for c in raw]
+    variants: dict[str, dict[str, list[int]]] = defaultdict(dict)
+    for (r, _), lb in zip(table.rows, labels):
+        variants[lb.casefold()].setdefault(lb, []).append(r)
+    for group in variants.values():
+        if len(group) > 1:
+            shown = " and ".join(f"{lb!r} (rows {format_rows(rs, limit=3)})" for lb, rs in list(group.items())[:3])
+            raise InputError(
+                f"{table.src}: column {col!r} has labels differing only in letter case: {shown}; one site typed two "
+                "ways, or two sites? Relabel so that they differ in more than case (per-site output files would "
+                "collide on Windows and macOS file systems)")
+    return labels
 
 
 def _check_spread(numeric: dict, rows: list[int], src: str) -> None:

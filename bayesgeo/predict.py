@@ -19,6 +19,7 @@ scheduler ``"threads"`` (dask's local thread pool, one BLAS thread per task).
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 from collections.abc import Sequence
 
@@ -177,6 +178,11 @@ def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,
                        neighbours=neighbours)
+    import json
+
+    site = json.loads(tree.attrs.get("settings", "{}")).get("extracted_from", {}).get("site")
+    if site is not None:
+        basis = dataclasses.replace(basis, site=str(site))
     return basis, spec, params
 
 
@@ -340,6 +346,9 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     })
     if far:
         ds.attrs["warning"] = far
+    if basis.site:
+        ds.attrs["site"] = basis.site  # the label, which the file name may abbreviate
+        ds.attrs["title"] += f", site {basis.site}"
     return ds
 
 
