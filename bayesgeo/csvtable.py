@@ -28,10 +28,12 @@ from bayesgeo.validate import InputError, format_rows
 
 __all__ = ["MAX_MAGNITUDE", "InputWarning", "Table", "read_table", "parse_number", "number_problem", "numeric_column"]
 
-#: Largest magnitude accepted in a numeric column. Standardising sums squares of values and of
-#: coordinate differences; with |v| <= 1e150 a square is <= 1e300 and a sum of up to ~1e8 of them
-#: stays below the largest double (1.8e308), so nothing overflows to infinity.
-MAX_MAGNITUDE = 1e150
+#: Largest magnitude accepted in a numeric column. The partial sill is in squared value units
+#: and its draws are squared again and summed by the convergence diagnostics (variances,
+#: autocorrelations over up to ~1e4 draws), so fourth powers times ~1e8 must stay below the largest
+#: double (1.8e308): |v| < ~1e75. A fit of values near 1e149 overflowed there (measured); 1e50
+#: leaves a wide margin and no real measurement or coordinate comes near it.
+MAX_MAGNITUDE = 1e50
 
 class InputWarning(UserWarning):
     """Input was accepted with a change or a doubt the user should know of (one line; the CLI prints it)."""
@@ -205,7 +207,7 @@ def numeric_column(table: Table, col: str) -> np.ndarray:
         k = huge[0]
         raise InputError(
             f"{src}: row {rows[k]}, column {col!r}: {cells[k]} is too large in magnitude (limit {MAX_MAGNITUDE:g}, "
-            f"so that squares and sums stay finite in double precision){_also(rows, huge)}; rescale the column "
+            f"so that powers and sums stay finite in double precision){_also(rows, huge)}; rescale the column "
             "(other units)")
     return out
 

@@ -282,14 +282,14 @@ def _site_labels(table, col: str) -> list[str]:
 
 
 def _check_spread(numeric: dict, rows: list[int], src: str) -> None:
-    """Refuse columns whose spread is so small that squared differences underflow to zero."""
+    """Refuse columns whose spread is so small that powers of differences (sill, its variance) underflow."""
     for col, v in numeric.items():
         spread = float(np.ptp(v)) if v.size else 0.0
         if 0.0 < spread < 1.0 / MAX_MAGNITUDE:
             raise InputError(
                 f"{src}: column {col!r} varies by only {spread:g} (rows {format_rows(rows)}); below "
-                f"{1.0 / MAX_MAGNITUDE:g} squared differences underflow in double precision; rescale the column "
-                "(other units)")
+                f"{1.0 / MAX_MAGNITUDE:g} powers of the differences underflow in double precision; rescale the "
+                "column (other units)")
 
 
 def _refuse_lonlat_lookalike(xv, yv, xcol, ycol, src) -> None:

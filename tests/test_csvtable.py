@@ -127,20 +127,22 @@ def test_cli_warning_is_one_stderr_line_and_in_json(tmp_path, grid_rows, capsys)
     assert any("leading or trailing spaces" in w for w in json.loads(out)["warnings"])
 
 
-@pytest.mark.parametrize("cell, col", [("1e308", "conc"), ("-2e151", "x")])
+@pytest.mark.parametrize("cell, col", [("1e308", "conc"), ("-2e51", "x")])
 def test_extreme_magnitude_refused_at_intake(tmp_path, grid_rows, cell, col):
-    """A value or coordinate beyond 1e150 is refused naming row and column: squares of 1e155 overflow doubles (IEEE 754 largest double 1.8e308)."""
+    """A value or coordinate beyond 1e50 is refused naming row and column: fourth powers (variances of the
+    sill's draws) of 1e78 overflow doubles (IEEE 754 largest double 1.8e308), those of 1e50 times 1e8 do not."""
     rows = [list(r) for r in grid_rows]
     rows[6][0 if col == "x" else 2] = cell
     path = tmp_path / "big.csv"
     path.write_text(_text(rows))
-    _refused(path, rf"big\.csv: row 7, column '{col}': {cell} is too large in magnitude \(limit 1e\+150", value="conc")
+    _refused(path, rf"big\.csv: row 7, column '{col}': {cell} is too large in magnitude \(limit 1e\+50", value="conc")
     with np.errstate(over="ignore"):
-        assert np.isinf(np.float64(1e155) ** 2) and np.isfinite(np.float64(MAX_MAGNITUDE) ** 2 * 1e7)
+        assert np.isinf(np.float64(1e78) ** 4) and np.isfinite(np.float64(MAX_MAGNITUDE) ** 4 * 1e8)
 
 
 def test_all_values_scaled_up_refused_and_tiny_spread_refused(tmp_path, grid_rows):
-    """All values times 1e200 are refused (magnitude); a spread below 1e-150 is refused (squared differences underflow, IEEE 754 smallest normal 2.2e-308)."""
+    """All values times 1e200 are refused (magnitude); a spread below 1e-50 is refused (fourth powers of
+    1e-78 underflow below the IEEE 754 smallest normal double, 2.2e-308)."""
     rows = [list(r) for r in grid_rows]
     big = [rows[0]] + [[r[0], r[1], f"{r[2]}e200"] for r in rows[1:]]
     path = tmp_path / "scaled.csv"
@@ -150,7 +152,7 @@ def test_all_values_scaled_up_refused_and_tiny_spread_refused(tmp_path, grid_row
     path = tmp_path / "tiny.csv"
     path.write_text(_text(tiny))
     _refused(path, r"tiny\.csv: column 'conc' varies by only .*underflow", value="conc")
-    assert (1e-155) ** 2 < 2.2e-308
+    assert (1e-78) ** 4 < 2.2e-308 < (1.0 / MAX_MAGNITUDE) ** 4
 
 
 def test_cli_refusal_exit_status_and_one_line(tmp_path, grid_rows, capsys):
