@@ -19,7 +19,9 @@ Every command prints human tables by default and exactly one JSON object on stdo
 (nothing else goes to stdout then; progress goes to stderr). Exit status: 0 done; 2 bad input (one
 line on stderr naming the file, row, column or option); 3 a posterior failed its convergence check;
 1 (`run`, `demo`) a stage failed unexpectedly. Outputs are written atomically and never replace
-existing files without `--overwrite`.
+existing files without `--overwrite`. Input accepted with a change or a doubt gives one stderr line
+`bayesgeo <command>: warning: ...`, also listed under `"warnings"` in the `--json` object. What a
+data file must look like, and what is refused: [data_files.md](data_files.md).
 """
 
 

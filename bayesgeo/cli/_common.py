@@ -22,7 +22,8 @@ def add_data_options(p) -> None:
     p.add_argument("--only-site", metavar="NAME", help="analyse only this site's rows (with --site)")
     p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
     p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto",
-                   help="planar coordinates (xy) or degrees (lonlat: great-circle km); auto refuses degree-like values")
+                   help="planar coordinates (xy) or degrees (lonlat: great-circle km, longitudes -180..180 or 0..360); "
+                        "auto refuses coordinates that could be degrees, see docs/data_files.md")
     p.add_argument("--duplicates", choices=("error", "mean"), default="error",
                    help="points at the same location: error (default) or average them")
     p.add_argument("--units", metavar="TEXT", help="units of the measured value, e.g. mg/kg")
