@@ -95,8 +95,11 @@ def read_points(
         Extra numeric columns kept as covariates for the trend.
     coords : {"auto", "xy", "lonlat"}
         ``xy``: planar coordinates, Euclidean distances in coordinate units. ``lonlat``: degrees,
-        great-circle distances in km. ``auto`` (default) is ``xy`` but refuses coordinates that
-        look like longitude/latitude, so degrees are never silently treated as planar units.
+        great-circle distances in km; longitudes written -180..180 or 0..360, re-expressed as one
+        continuous range when the data cross 180 degrees (``attrs["longitude_convention"]``).
+        ``auto`` (default) is ``xy`` but refuses coordinates that all lie in the degree box
+        (|lat| <= 90, lon in [-180, 180] or [0, 360]), so degrees are never silently treated as
+        planar units.
     duplicates : {"error", "mean"}
         Points sharing a location: an error listing the rows, or averaged into one point.
     units : str, optional
@@ -120,7 +123,13 @@ def read_points(
     Raises
     ------
     InputError
-        One-line message naming the file, row(s) and column of bad input.
+        One-line message naming the file, row(s) and column of bad input (the CSV rules are in
+        :mod:`bayesgeo.csvtable` and docs/data_files.md).
+
+    Warns
+    -----
+    InputWarning
+        Site labels stripped of surrounding spaces (naming the rows).
     """
     check_choice(coords, COORDS, "--coords")
     check_choice(duplicates, DUPLICATES, "--duplicates")
@@ -404,6 +413,10 @@ def _read_netcdf(path: Path) -> xr.Dataset:
         bad = ds["row"].values[~np.isfinite(ds[name].values)]
         if bad.size:
             raise InputError(f"{src}: variable {name!r} has NaN or infinite values at rows {format_rows(bad)}")
+        bad = ds["row"].values[np.abs(ds[name].values) > MAX_MAGNITUDE]
+        if bad.size:
+            raise InputError(f"{src}: variable {name!r} exceeds {MAX_MAGNITUDE:g} in magnitude at rows "
+                             f"{format_rows(bad)} (powers and sums must stay finite); rescale it (other units)")
     ds.attrs.setdefault("coords", "xy")
     ds.attrs.setdefault("distance_units", "coordinate units")
     ds.attrs.setdefault("value_column", "value")

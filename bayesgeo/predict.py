@@ -287,7 +287,14 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     -------
     xarray.Dataset
         ``mean``, ``sd``, ``q05``, ``q50``, ``q95`` and ``p_exceed`` (threshold first) on the
-        dims of ``targets`` ((y, x) or (target,)); NaN outside the mask. Data units.
+        dims of ``targets`` ((y, x) or (target,)); NaN outside the mask. Data units. Attribute
+        ``site`` holds the site label of a fit extracted from a several-site fit.
+
+    Warns
+    -----
+    InputWarning
+        Target points farther from the nearest data point than the data's extent (their rows and
+        distances; also in attribute ``warning``).
     """
     chunk_cells = check_positive_int(chunk_cells, "chunk_cells")
     thr = np.asarray(thresholds, dtype=float).reshape(-1)
@@ -402,6 +409,12 @@ def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Seque
     dict
         ``mean``, ``sd``, ``q05``, ``q95``, ``p_exceed`` (list per threshold), ``threshold``,
         ``points`` (discretisation size), ``method``.
+
+    Raises
+    ------
+    InputError
+        The area's nearest point is farther from the data than half their extent
+        (:func:`bayesgeo.targets.check_area_near_data`).
     """
     check_area_near_data(basis.xy, xy_area, basis.metric)
     thr = [float(t) for t in thresholds]

@@ -176,3 +176,30 @@ def test_no_warning_for_clean_files(tmp_path, grid_rows):
     with warnings.catch_warnings():
         warnings.simplefilter("error", InputWarning)
         read_points(path, value="conc")
+
+
+def test_warnings_do_not_leak_into_the_next_command(tmp_path, grid_rows, capsys):
+    """A warning of one command is not repeated in the --json of the next command run in the same process (behaviour check)."""
+    rows = [["x", "y", "conc", "site"]] + [r + ["A" if k < 12 else "B"] for k, r in enumerate(grid_rows[1:])]
+    rows[3][3] = '" A"'
+    noisy, clean = tmp_path / "noisy.csv", tmp_path / "clean.csv"
+    noisy.write_text(_text(rows))
+    clean.write_text(_text(grid_rows))
+    assert main(["explore", str(noisy), "--value", "conc", "--site", "site", "--out", str(tmp_path / "a"),
+                 "--json", "--permutations", "0"]) == 0
+    assert "warnings" in json.loads(capsys.readouterr().out)
+    assert main(["explore", str(clean), "--value", "conc", "--out", str(tmp_path / "b"), "--json",
+                 "--permutations", "0"]) == 0
+    out, err = capsys.readouterr()
+    assert "warnings" not in json.loads(out) and "warning" not in err
+
+
+def test_netcdf_point_file_magnitude_refused(tmp_path, grid_rows):
+    """Our own NetCDF point files obey the same 1e50 bound, naming the variable and rows (behaviour check)."""
+    path = tmp_path / "p.csv"
+    path.write_text(_text(grid_rows))
+    ds = read_points(path, value="conc")
+    ds["value"].values[4] = 1e60
+    ds.to_netcdf(tmp_path / "p.nc")
+    with pytest.raises(InputError, match=r"p\.nc: variable 'value' exceeds 1e\+50 in magnitude at rows 6"):
+        read_points(tmp_path / "p.nc")

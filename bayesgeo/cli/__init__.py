@@ -68,11 +68,16 @@ def _one_line_warnings(command: str):
         _common.WARNINGS.append(text)
         print(f"bayesgeo {command}: warning: {text}", file=sys.stderr)
 
+    saved = _common.WARNINGS[:]  # a command run inside another (run -> stages) keeps its own list
+    _common.WARNINGS.clear()
     with warnings.catch_warnings():
         warnings.simplefilter("always", InputWarning)
         original = warnings.showwarning
         warnings.showwarning = show
-        yield
+        try:
+            yield
+        finally:
+            _common.WARNINGS[:] = saved
 
 
 def main(argv: list[str] | None = None) -> int:
