@@ -78,9 +78,13 @@ def _decode(data: bytes, src: str) -> str:
         else:
             row, field = len(records), max(len(records[-1]) - 1, 0)
         first = next(csv.reader(io.StringIO(data.decode("utf-8-sig", errors="replace"), newline="")), [])
-        name = first[field].strip() if row > 1 and field < len(first) else f"number {field + 1}"
+        if row == 1:
+            where = f"row 1 (header), field {field + 1}"
+        else:
+            name = repr(first[field].strip()) if field < len(first) else f"number {field + 1}"
+            where = f"row {row}, column {name}"
         raise InputError(
-            f"{src}: row {row}, column {name!r}: byte 0x{data[err.start]:02x} is not UTF-8 text; save the file "
+            f"{src}: {where}: byte 0x{data[err.start]:02x} is not UTF-8 text; save the file "
             "as UTF-8 (in spreadsheet programs: 'CSV UTF-8')"
         ) from None
 
@@ -113,7 +117,7 @@ def read_table(path: str | Path, *, what: str = "data") -> Table:
     try:
         records = list(reader)
     except csv.Error as err:
-        raise InputError(f"{src}: row {reader.line_num}: not readable as CSV ({err})") from None
+        raise InputError(f"{src}: near line {reader.line_num}: not readable as CSV ({err})") from None
     if not records or not any(c.strip() for c in records[0]):
         raise InputError(f"{src}: empty file (a header row naming the columns is needed)")
     header = [h.strip() for h in records[0]]
@@ -158,9 +162,16 @@ def parse_number(cell: str) -> float | None:
     return None
 
 
+def _shown(s: str, limit: int = 40) -> str:
+    """``repr`` of a cell, shortened to about ``limit`` characters for a one-line message."""
+    return repr(s) if len(s) <= limit else repr(s[:limit]) + f"... ({len(s)} characters)"
+
+
 def number_problem(cell: str) -> str:
     """Why ``cell`` is not accepted as a number, with what to write instead."""
     s = cell.strip()
+    if len(s) > 40:
+        return f"{_shown(s)} is not a number"
     if not s:
         return "the cell is empty"
     if re.fullmatch(r"[+-]?[0-9]+(?:_[0-9]+)+(?:\.[0-9]*)?", s):
@@ -198,15 +209,19 @@ def numeric_column(table: Table, col: str) -> np.ndarray:
         out[k] = v
     src = table.src
     if bad:
-        raise InputError(f"{src}: row {rows[bad[0]]}, column {col!r}: {number_problem(cells[bad[0]])}{_also(rows, bad)}")
+        why = number_problem(cells[bad[0]])
+        raise InputError(f"{src}: row {rows[bad[0]]}, column {col!r}: {why}{_also(rows, bad)}")
+    overflow = [k for k in np.flatnonzero(np.isinf(out)) if cells[k].lstrip("+-").lower() not in _NONFINITE]
+    out[overflow] = np.sign(out[overflow]) * np.finfo(float).max  # a number too large for a double
     nonfinite = [rows[k] for k in np.flatnonzero(~np.isfinite(out))]
     if nonfinite:
         raise InputError(f"{src}: column {col!r} has empty, NaN or infinite cells at rows {format_rows(nonfinite)}")
     huge = np.flatnonzero(np.abs(out) > MAX_MAGNITUDE)
     if huge.size:
         k = huge[0]
+        shown = cells[k] if len(cells[k]) <= 40 else cells[k][:40] + "..."
         raise InputError(
-            f"{src}: row {rows[k]}, column {col!r}: {cells[k]} is too large in magnitude (limit {MAX_MAGNITUDE:g}, "
+            f"{src}: row {rows[k]}, column {col!r}: {shown} is too large in magnitude (limit {MAX_MAGNITUDE:g}, "
             f"so that powers and sums stay finite in double precision){_also(rows, huge)}; rescale the column "
             "(other units)")
     return out

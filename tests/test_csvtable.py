@@ -203,3 +203,17 @@ def test_netcdf_point_file_magnitude_refused(tmp_path, grid_rows):
     ds.to_netcdf(tmp_path / "p.nc")
     with pytest.raises(InputError, match=r"p\.nc: variable 'value' exceeds 1e\+50 in magnitude at rows 6"):
         read_points(tmp_path / "p.nc")
+
+
+def test_overlong_number_and_header_byte(tmp_path, grid_rows):
+    """A 400-digit number (beyond the largest double, IEEE 754) is refused as too large, shown shortened;
+    a bad byte in the header is named by row 1 and field (behaviour check)."""
+    rows = [list(r) for r in grid_rows]
+    rows[2][2] = "1" * 400
+    path = tmp_path / "long.csv"
+    path.write_text(_text(rows))
+    msg = _refused(path, r"row 3, column 'conc': 1{40}\.\.\. is too large in magnitude", value="conc")
+    assert len(msg) < 300
+    path = tmp_path / "head.csv"
+    path.write_bytes(b"x,y,conc\xff\n" + _text(grid_rows[1:]).encode())
+    _refused(path, r"head\.csv: row 1 \(header\), field 3: byte 0xff is not UTF-8", value="conc")
