@@ -154,6 +154,17 @@ def read_points(
     numeric = {c: numeric_column(table, c) for c in dict.fromkeys((xcol, ycol, vcol, *covs))}
     _check_spread(numeric, [r for r, _ in body], src)
     file_rows = np.array([r for r, _ in body])
+    lonlat = coords == "lonlat"
+    if lonlat and distance_units not in (None, "km"):
+        raise InputError(f"--distance-units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
+    if coords == "auto":  # on every row of the file: degrees or not is a property of the file, not of a site
+        _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
+    frame = ""
+    if lonlat:
+        _check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
+        numeric[xcol] = continuous_longitudes(numeric[xcol])
+        frame = "0..360" if numeric[xcol].max() > 180.0 else "-180..180"
+
     sites = None
     if sitecol is not None:
         sites = np.array(_site_labels(table, sitecol), dtype=object)
@@ -170,17 +181,6 @@ def read_points(
             numeric = {c: v[keep] for c, v in numeric.items()}
     elif only_site is not None:
         raise InputError(f"{src}: --only-site needs --site COL naming the site column")
-
-    lonlat = coords == "lonlat"
-    if lonlat and distance_units not in (None, "km"):
-        raise InputError(f"--distance-units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
-    if coords == "auto":
-        _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
-    frame = ""
-    if lonlat:
-        _check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
-        numeric[xcol] = continuous_longitudes(numeric[xcol])
-        frame = "0..360" if numeric[xcol].max() > 180.0 else "-180..180"
 
     attrs = {
         "source": path.name,

@@ -249,3 +249,15 @@ def test_lonlat_latitude_out_of_range(write_csv):
     rows = _degree_rows(np.linspace(10, 12, 12), np.linspace(80, 91, 12))
     with pytest.raises(InputError, match=r"column 'y' is outside \[-90, 90\] degrees at rows 13"):
         read_points(write_csv(rows), coords="lonlat")
+
+
+def test_degree_check_looks_at_the_whole_file_not_one_site(write_csv):
+    """--only-site picks a site whose own coordinates fall inside the degree box; the file's other site
+    lies outside it, so the file is planar and is read under --coords auto (behaviour check)."""
+    rng = np.random.default_rng(9)
+    rows = [["x", "y", "v", "site"]]
+    rows += [[round(a, 2), round(b, 2), round(rng.normal(), 3), "inner"] for a, b in rng.uniform(0, 80, (15, 2))]
+    rows += [[round(a, 2), round(b, 2), round(rng.normal(), 3), "outer"]
+             for a, b in rng.uniform(500, 600, (15, 2))]
+    ds = read_points(write_csv(rows), site="site", only_site="inner")
+    assert ds.sizes["obs"] == 15 and ds.attrs["coords"] == "xy"
