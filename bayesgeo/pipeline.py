@@ -42,7 +42,6 @@ import gc
 import html
 import io
 import json
-import re
 import shutil
 import sys
 import time
@@ -103,8 +102,11 @@ def _data_options(s: dict) -> list[str]:
 
 
 def site_slug(site: str) -> str:
-    """The file-name form of a site label used by ``map --site`` and ``variogram-check --site``."""
-    return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(site))
+    """The file-name form of a site label used by ``map --site`` and ``variogram-check --site``
+    (:func:`bayesgeo.sitenames.site_file_name`: safe and distinct for distinct labels)."""
+    from bayesgeo.sitenames import site_file_name
+
+    return site_file_name(site)
 
 
 def study_sites(study: Study) -> dict[str, "object"]:

@@ -20,7 +20,9 @@ Every command prints human tables by default and exactly one JSON object on stdo
 line on stderr naming the file, row, column or option); 3 a posterior failed its convergence check;
 1 (`run`, `demo`) a stage failed unexpectedly. Outputs are written atomically and never replace
 existing files without `--overwrite`; with it, only what bayesgeo itself wrote is replaced
-(docs/outputs.md).
+(docs/outputs.md). Input accepted with a change or a doubt gives one stderr line
+`bayesgeo <command>: warning: ...`, also listed under `"warnings"` in the `--json` object. What a
+data file must look like, and what is refused: [data_files.md](data_files.md).
 """
 
 

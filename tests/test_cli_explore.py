@@ -134,7 +134,10 @@ def test_cli_several_sites_get_sub_folders(tmp_path, capsys):
     assert set(obj["sites"]) == {"north yard", "mill/pond"}
     assert obj["sites"]["mill/pond"]["n"] == 35
     assert obj["semivariogram"] == obj["sites"]["north yard"]["semivariogram"]
-    for sub in ("north_yard", "mill_pond"):
+    from bayesgeo.sitenames import site_file_name
+
+    for sub in (site_file_name("north yard"), site_file_name("mill/pond")):  # safe part + hash of the label
+        assert sub.startswith(("north_yard+", "mill_pond+"))
         for name in FILES:
             assert (out / sub / name).is_file()
     with (out / "fits.csv").open() as fh:

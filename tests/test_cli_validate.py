@@ -102,7 +102,7 @@ def test_validate_reads_the_layout_from_a_study_file(tmp_path):
 
     rows = "".join(f"{i * 7 % 31},{i * 3},{i % 4 + 1}\n" for i in range(12))
     (tmp_path / "p.csv").write_text("x,y,conc\n" + rows)
-    (tmp_path / "s.toml").write_text('[data]\npath = "p.csv"\nvalue = "conc"\n'
+    (tmp_path / "s.toml").write_text('[data]\npath = "p.csv"\nvalue = "conc"\ncoords = "xy"\n'
                                      '[model]\ncovariance = "exponential"\nnugget = false\n')
     ds, study = _template(SimpleNamespace(study=str(tmp_path / "s.toml"), data=None))
     assert ds.sizes["obs"] == 12

@@ -428,6 +428,7 @@ def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
     assert code == 0
     capsys.readouterr()
     got = xr.load_dataset(out / "predictions_P2.nc")
+    assert got.attrs["site"] == "P2"  # the label is recorded inside the per-site file
     basis, spec, _ = basis_from_fit(site_fit(hier, "P2"), draws=40)
     want = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous")
     np.testing.assert_allclose(got["mean"].values, want["mean"].values, rtol=1e-10)

@@ -9,8 +9,10 @@ stderr and exits with status 2; an unconverged posterior exits with status 3.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import sys
+import warnings
 
 __all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED"]
 
@@ -53,6 +55,31 @@ def _build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+@contextlib.contextmanager
+def _one_line_warnings(command: str):
+    """Print each :class:`bayesgeo.csvtable.InputWarning` as one stderr line and keep it for ``--json``."""
+    from bayesgeo.cli import _common
+    from bayesgeo.csvtable import InputWarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if not issubclass(category, InputWarning):
+            return original(message, category, filename, lineno, file, line)
+        text = " ".join(str(message).split())
+        _common.WARNINGS.append(text)
+        print(f"bayesgeo {command}: warning: {text}", file=sys.stderr)
+
+    saved = _common.WARNINGS[:]  # a command run inside another (run -> stages) keeps its own list
+    _common.WARNINGS.clear()
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", InputWarning)
+        original = warnings.showwarning
+        warnings.showwarning = show
+        try:
+            yield
+        finally:
+            _common.WARNINGS[:] = saved
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``bayesgeo`` console script; returns the exit status."""
     from bayesgeo.validate import InputError
@@ -66,7 +93,7 @@ def main(argv: list[str] | None = None) -> int:
 
     outputs.set_command(sys.argv[1:] if argv is None else argv)
     try:
-        with outputs.scope():
+        with outputs.scope(), _one_line_warnings(args.command):
             return int(args._module.run(args) or 0)
     except InputError as err:
         print(f"bayesgeo {args.command}: error: {err}", file=sys.stderr)

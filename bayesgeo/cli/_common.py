@@ -22,7 +22,8 @@ def add_data_options(p) -> None:
     p.add_argument("--only-site", metavar="NAME", help="analyse only this site's rows (with --site)")
     p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
     p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto",
-                   help="planar coordinates (xy) or degrees (lonlat: great-circle km); auto refuses degree-like values")
+                   help="planar coordinates (xy) or degrees (lonlat: great-circle km, longitudes -180..180 or 0..360); "
+                        "auto refuses coordinates that could be degrees, see docs/data_files.md")
     p.add_argument("--duplicates", choices=("error", "mean"), default="error",
                    help="points at the same location: error (default) or average them")
     p.add_argument("--units", metavar="TEXT", help="units of the measured value, e.g. mg/kg")
@@ -43,8 +44,14 @@ def read_data(args):
 
 
 
+#: Input warnings printed during this command (see ``bayesgeo.cli._one_line_warnings``); added to --json output.
+WARNINGS: list[str] = []
+
+
 def emit_json(obj) -> None:
-    """Print one JSON object on stdout."""
+    """Print one JSON object on stdout (with ``"warnings"``: the input warnings printed on stderr, if any)."""
+    if WARNINGS and isinstance(obj, dict):
+        obj = {**obj, "warnings": [*obj.get("warnings", []), *WARNINGS]}
     sys.stdout.write(json.dumps(to_jsonable(obj)) + "\n")
     sys.stdout.flush()
 

@@ -6,8 +6,8 @@ Output folder (default ``<data stem>-explore``; an existing folder is refused un
 * one site (no ``--site``): ``semivariogram.png``, ``correlogram.png``, ``directional.png``,
   ``semivariogram.csv``, ``correlogram.csv``, ``directional.csv``, ``fits.csv`` and
   ``explore.json`` directly in the folder;
-* several sites (``--site COL``): the same figures and tables in one sub-folder per site (the
-  label with characters other than letters, digits, ``.``, ``_`` and ``-`` replaced by ``_``),
+* several sites (``--site COL``): the same figures and tables in one sub-folder per site (named
+  by :func:`bayesgeo.sitenames.site_file_name`; each CSV has a ``site`` column with the label),
   ``explore.json`` and a ``fits.csv`` of every site (with a ``site`` column) at the top.
 
 ``explore.json`` holds the same object ``--json`` prints. Its top-level statistics (``n``,
@@ -18,7 +18,6 @@ label to its own object of the same keys. NaN (an empty bin, no envelope) is wri
 
 from __future__ import annotations
 
-import re
 import warnings
 
 HELP = "semivariogram, correlogram, directions and quick covariance fits (exploratory)"
@@ -70,13 +69,10 @@ def add_arguments(p) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
 
 
-def _slug(label: str, taken: set[str]) -> str:
-    base = re.sub(r"[^A-Za-z0-9._-]+", "_", label).strip("._") or "site"
-    slug, k = base, 2
-    while slug in taken:
-        slug, k = f"{base}_{k}", k + 1
-    taken.add(slug)
-    return slug
+def _slug(label: str) -> str:
+    from bayesgeo.sitenames import site_file_name
+
+    return site_file_name(label)
 
 
 def _vals(da) -> list:
@@ -182,6 +178,8 @@ def _write_site(folder, res: dict, label: str) -> list[str]:
         figures.save_figure(fig, folder / name)
     for name in ("semivariogram", "correlogram", "directional", "fits"):
         frame = res[name].to_dataframe()
+        if label:
+            frame.insert(0, "site", label)  # the label, which the folder name may abbreviate
         frame.to_csv(folder / f"{name}.csv", float_format="%.10g")
     return [*figs, *(f"{n}.csv" for n in ("semivariogram", "correlogram", "directional", "fits"))]
 
@@ -225,9 +223,8 @@ def run(args) -> int:
         obj["sites"] = objects
     files: list[str] = []
     with new_folder(out, overwrite=args.overwrite) as tmp:
-        taken: set[str] = set()
         for label in labels:
-            sub = _slug(label, taken) if multi else ""
+            sub = _slug(label) if multi else ""
             files += [f"{sub}/{f}" if sub else f for f in _write_site(tmp / sub if sub else tmp, results[label], label)]
         if multi:
             import pandas as pd

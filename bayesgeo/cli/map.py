@@ -92,9 +92,9 @@ def run(args) -> int:
         raise InputError(f"--simulate: expected an integer >= 0, got {args.simulate}")
     out_nc, out_maps = folder / PREDICTIONS_FILE, folder / MAPS_DIR
     if args.site is not None:
-        import re
+        from bayesgeo.sitenames import site_file_name
 
-        slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", args.site)
+        slug = site_file_name(args.site)
         out_nc = folder / f"{Path(PREDICTIONS_FILE).stem}_{slug}.nc"
         out_maps = folder / f"{MAPS_DIR}_{slug}"
     check_addable(folder, out_nc.name, overwrite=args.overwrite)

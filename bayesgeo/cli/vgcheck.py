@@ -37,9 +37,9 @@ def output_names(site: str | None) -> tuple[str, str]:
     """File names of the figure and the table (``variogram_check_<site>.*`` for one site of a several-site fit)."""
     if site is None:
         return FIGURE, TABLE
-    import re
+    from bayesgeo.sitenames import site_file_name
 
-    slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", site)
+    slug = site_file_name(site)
     return f"variogram_check_{slug}.png", f"variogram_check_{slug}.csv"
 
 
@@ -86,6 +86,8 @@ def run(args) -> int:
         import pandas as pd
 
         frame = pd.DataFrame({c: vc[c].values for c in TABLE_COLUMNS})
+        if args.site is not None:
+            frame.insert(0, "site", args.site)  # the label, which the file name may abbreviate
         with add_to_folder(folder, csv_name, overwrite=args.overwrite) as tmp:
             frame.to_csv(tmp, index=False, float_format="%.10g")
         with add_to_folder(folder, fig_name, overwrite=args.overwrite) as tmp:
