@@ -8,7 +8,6 @@ coordinate system and the source file are kept in attributes. The input file is 
 
 from __future__ import annotations
 
-import hashlib
 import warnings
 from collections import defaultdict
 from collections.abc import Sequence
@@ -19,6 +18,7 @@ import xarray as xr
 
 from bayesgeo.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, numeric_column, read_table
 from bayesgeo.geometry import continuous_longitudes, cross_distance
+from bayesgeo.outputs import sha256_file
 from bayesgeo.validate import InputError, check_choice, format_rows
 
 __all__ = ["MIN_POINTS", "TRANSFORMS", "read_points", "points_dataset", "sites_of", "apply_transform"]
@@ -36,14 +36,6 @@ COORDS = ("auto", "xy", "lonlat")
 DUPLICATES = ("error", "mean")
 SMALL_SITES = ("error", "keep")
 _POOLED_MIN = 3
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def _detect(header: Sequence[str], names: Sequence[str], what: str, option: str, src: str) -> str:
@@ -184,7 +176,7 @@ def read_points(
 
     attrs = {
         "source": path.name,
-        "source_sha256": _sha256(path),
+        "source_sha256": sha256_file(path),
         "x_column": xcol,
         "y_column": ycol,
         "value_column": vcol,
@@ -423,5 +415,5 @@ def _read_netcdf(path: Path) -> xr.Dataset:
     ds.attrs.setdefault("x_column", "x")
     ds.attrs.setdefault("y_column", "y")
     ds.attrs["source"] = path.name
-    ds.attrs["source_sha256"] = _sha256(path)
+    ds.attrs["source_sha256"] = sha256_file(path)
     return _finish(ds, src, ds.attrs.get("duplicates", "error"))
