@@ -254,3 +254,18 @@ def test_compare_single_site_fit_beside_site_fit(site_fits, capsys):
     assert main(["compare", str(site_fits["hier"]), str(site_fits["indep"]), "--site", "nowhere"]) == 2
     err = capsys.readouterr().err.strip()
     assert "\n" not in err and "nowhere" in err and "s0, s1, s2" in err
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--replicates", "99999999999999999999", r"argument --replicates: expected an integer from 1 to 100000"),
+    ("--bins", "1", r"argument --bins: expected an integer from 2 to 1000, got 1"),
+    ("--max-lag", "nan", r"argument --max-lag: expected a finite number > 0, got 'nan'"),
+    ("--seed", "-3", r"argument --seed: expected an integer from 0 to"),
+])
+def test_variogram_check_options_bounded(tmp_path, capsys, option, value, pattern):
+    """variogram-check's numeric options are checked where they enter: exit 2, one line, no files."""
+    from _cli_helpers import assert_refused
+
+    (tmp_path / "fit").mkdir()
+    assert_refused(capsys, ["variogram-check", tmp_path / "fit", option, value], "variogram-check", pattern,
+                   inputs=[tmp_path / "fit"], absent=[tmp_path / "fit" / "variogram_check.png"])

@@ -207,3 +207,23 @@ def test_cli_log_transform_equals_api_on_log_values(tmp_path, capsys):
     vg = semivariogram(apply_transform(read_points(data, value="conc"), "log"), bins=10, permutations=19, seed=1)
     np.testing.assert_allclose(obj["semivariogram"]["semivariance"], vg["semivariance"].values, rtol=1e-12)
     assert obj["value_units"].startswith("log(")
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--bins", "0", r"argument --bins: expected an integer from 2 to 1000, got 0"),
+    ("--bins", "99999999999999999999", r"argument --bins: expected an integer from 2 to 1000"),
+    ("--max-lag", "-5", r"argument --max-lag: expected a finite number > 0, got '-5'"),
+    ("--max-lag", "inf", r"argument --max-lag: expected a finite number > 0, got 'inf'"),
+    ("--permutations", "-1", r"argument --permutations: expected an integer from 0 to 100000, got -1"),
+    ("--seed", str(2**70), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--trend", "5", r"argument --trend: expected an integer from 0 to 3, got 5"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """Numeric options are checked where they enter (bayesgeo.validate): exit 2, one line naming the
+    option, the data untouched, no output folder."""
+    from _cli_helpers import assert_refused
+
+    data = tmp_path / "survey.csv"
+    data.write_text("\n".join(",".join(r) for r in _rows(30, 3)) + "\n")
+    assert_refused(capsys, ["explore", data, option, value, "--out", tmp_path / "o"], "explore", pattern,
+                   inputs=[data], absent=[tmp_path / "o"])

@@ -118,3 +118,50 @@ def test_human_output_and_overwrite(cli_run, tmp_path, capsys):
     assert code in (0, EXIT_NOT_CONVERGED)
     assert "practical_range" in stdout and "diagnostics:" in stdout and "licensed professional" in stdout
     assert not (out / "old.txt").exists() and (out / "posterior.nc").exists()
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--chains", "99999999999999999999", r"argument --chains: expected an integer from 1 to 64, got 99999999999999999999"),
+    ("--chains", "0", r"argument --chains: expected an integer from 1 to 64, got 0"),
+    ("--seed", str(2**70), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--seed", "-1", r"argument --seed: expected an integer from 0 to"),
+    ("--draws", "0", r"argument --draws: expected an integer from 1 to 1000000, got 0"),
+    ("--draws", "1e3", r"argument --draws: expected an integer from 1 to 1000000, got '1e3'"),
+    ("--tune", "-1", r"argument --tune: expected an integer from 0 to 1000000, got -1"),
+    ("--neighbours", "100000", r"argument --neighbours: expected an integer from 1 to 200, got 100000"),
+    ("--trend", "4", r"argument --trend: expected an integer from 0 to 3, got 4"),
+    ("--trend", "-1", r"argument --trend: expected an integer from 0 to 3, got -1"),
+    ("--target-accept", "1", r"argument --target-accept: expected a number in \(0, 1\), got '1'"),
+    ("--target-accept", "nan", r"argument --target-accept: expected a number in \(0, 1\), got 'nan'"),
+    ("--nu", "inf", r"argument --nu: expected a number in \(0, 50\], got 'inf'"),
+    ("--nu", "-2", r"argument --nu: expected a number in \(0, 50\], got '-2'"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """Every numeric option is checked where it enters (argparse type, bayesgeo.validate): a value
+    that overflowed (OverflowError) or failed mid-run is refused with exit 2, one line naming the
+    option, the value and the accepted range; the data file is untouched and no output appears.
+    Bounds: seeds are stored as signed 64-bit integers (numpy.random.default_rng takes any
+    non-negative integer, nutpie below 2**64); target_accept is a probability (Hoffman and Gelman
+    2014, the dual-averaging target delta in (0, 1))."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = ["fit", data, "--covariance", "matern", "--value", "arsenic_mg_kg", option, value, "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", pattern, inputs=[data], absent=[tmp_path / "o"])
+
+
+@pytest.mark.parametrize("option, values, pattern", [
+    ("--prior-range", ("100", "1"), r"argument --prior-range: the probability \(second number\): expected a number in \(0, 1\), got '1'"),
+    ("--prior-range", ("-5", "0.05"), r"argument --prior-range: the value \(first number\): expected a finite number > 0, got '-5'"),
+    ("--prior-sd", ("inf", "0.05"), r"argument --prior-sd: the value \(first number\): expected a finite number > 0, got 'inf'"),
+    ("--prior-nugget", ("1", "nan"), r"argument --prior-nugget: the probability \(second number\)"),
+    ("--prior-sd", ("x", "0.05"), r"argument --prior-sd: the value \(first number\): expected a finite number > 0, got 'x'"),
+])
+def test_prior_pairs_checked(tmp_path, capsys, option, values, pattern):
+    """PC-prior statements P(value < or > V) = A need V > 0 finite and A in (0, 1) (Fuglstad et al. 2019,
+    JASA 114: the rates -ln(A) V and -ln(A) / V are finite and positive only then)."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = ["fit", data, "--covariance", "matern32", "--value", "arsenic_mg_kg", option, *values, "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", pattern, inputs=[data], absent=[tmp_path / "o"])

@@ -180,3 +180,22 @@ def test_real_fit_then_map_covers_held_out_samples(tmp_path, capsys):
     covered = int(np.sum((obs > pred["q05"].values) & (obs < pred["q95"].values)))
     pred.close()
     assert covered >= 7, covered
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--cell", "nan", r"argument --cell: expected a finite number > 0, got 'nan'"),
+    ("--margin", "-1", r"argument --margin: expected a finite number >= 0, got '-1'"),
+    ("--threshold", "inf", r"argument --threshold: expected a finite number, got 'inf'"),
+    ("--chunk-cells", "0", r"argument --chunk-cells: expected an integer from 1 to 10000000, got 0"),
+    ("--simulate", "99999999999999999999", r"argument --simulate: expected an integer from 0 to 10000"),
+    ("--seed", str(2**64), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--draws", "99999999999999999999", r"--draws: expected an integer from 1 to 64000000 or 'all'"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """Numeric options are checked before the fit is read (bayesgeo.validate): exit 2, one line
+    naming the option; the fit folder is untouched and no predictions appear."""
+    from _cli_helpers import assert_refused
+
+    folder, _ = _fit_folder(tmp_path / "fit", draws=20)
+    assert_refused(capsys, ["map", folder, option, value], "map", pattern, inputs=[folder],
+                   absent=[folder / "predictions.nc", folder / "maps"])

@@ -16,6 +16,7 @@ __all__ = ["add_site_arguments", "run_sites"]
 def add_site_arguments(p) -> None:
     """``--pooling``, ``--min-points``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
     from bayesgeo.hierarchical import CENTRED_MIN_POINTS, MIN_POINTS_POLICIES, PARAMETRISATIONS, POOLINGS
+    from bayesgeo.validate import int_option
 
     p.add_argument("--pooling", choices=POOLINGS, default="hierarchical",
                    help="with --site: share covariance parameters through a population (hierarchical, default), "
@@ -27,7 +28,7 @@ def add_site_arguments(p) -> None:
                    help="with --site and hierarchical pooling: sample the site effects non-centred (default), "
                         f"centred, or auto (centred for sites of at least {CENTRED_MIN_POINTS} points); the "
                         "posterior is the same, only sampling speed differs")
-    p.add_argument("--design-neighbours", type=int, default=6, metavar="K",
+    p.add_argument("--design-neighbours", type=int_option("design_neighbours"), default=6, metavar="K",
                    help="with --site: grid nodes per side (K x K) used by the sampling-design aid (default 6)")
 
 

@@ -19,10 +19,12 @@ POSTERIOR_FILE = "posterior.nc"
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import int_option
+
     p.add_argument("dir", metavar="DIR", help=f"fit folder holding {POSTERIOR_FILE}")
     p.add_argument("--var", metavar="NAME", action="append", default=[],
                    help="posterior variable to check (repeatable; default all)")
-    p.add_argument("--max-lag", type=int, default=None, metavar="K",
+    p.add_argument("--max-lag", type=int_option("autocorr_lag"), default=None, metavar="K",
                    help="largest lag of the autocorrelation figure (default: 3 x the largest IAT, at least 20)")
     p.add_argument("--no-figures", action="store_true", help="skip the figures (diagnostics.json only)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")

@@ -48,23 +48,24 @@ _TOLERANCE = 22.5
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import add_data_options
     from bayesgeo.quickfit import QUICK_FAMILIES
+    from bayesgeo.validate import float_option, int_option
 
     p.description = DESCRIPTION
     add_data_options(p)
-    p.add_argument("--trend", type=int, default=0, metavar="ORDER",
+    p.add_argument("--trend", type=int_option("trend"), default=0, metavar="ORDER",
                    help="polynomial trend order in the coordinates, 0-3 (default 0: constant mean)")
     p.add_argument("--transform", choices=("none", "log"), default="none",
                    help="analyse the values as they are (none) or their natural logarithm (log; positive values only)")
-    p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
-    p.add_argument("--max-lag", type=float, default=None, metavar="D",
+    p.add_argument("--bins", type=int_option("bins"), default=15, metavar="N", help="number of lag bins (default 15)")
+    p.add_argument("--max-lag", type=float_option("positive"), default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
-    p.add_argument("--permutations", type=int, default=99, metavar="N",
+    p.add_argument("--permutations", type=int_option("permutations"), default=99, metavar="N",
                    help="random permutations for the envelopes and p-values (default 99; 0 for none)")
     p.add_argument("--estimator", choices=("classical", "cressie-hawkins"), default="classical",
                    help="semivariogram estimator (default classical)")
     p.add_argument("--covariance", nargs="+", choices=QUICK_FAMILIES, default=None, metavar="FAMILY",
                    help=f"covariance families to fit (default all: {', '.join(QUICK_FAMILIES)})")
-    p.add_argument("--seed", type=int, default=1, metavar="S", help="seed of the permutations (default 1)")
+    p.add_argument("--seed", type=int_option("seed"), default=1, metavar="S", help="seed of the permutations (default 1)")
     p.add_argument("--out", metavar="DIR", default=None, help="output folder (default <data stem>-explore)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")

@@ -9,6 +9,7 @@ HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one s
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import add_data_options
     from bayesgeo.covariance import FAMILIES
+    from bayesgeo.validate import PriorPairAction, float_option, int_option
 
     add_data_options(p)
     from bayesgeo.cli._sites import add_site_arguments
@@ -16,29 +17,29 @@ def add_arguments(p) -> None:
     add_site_arguments(p)
     p.add_argument("--covariance", required=True, choices=FAMILIES, metavar="FAMILY",
                    help=f"covariance family: {', '.join(FAMILIES)}")
-    p.add_argument("--nu", type=float, default=None, help="Matérn smoothness (family 'matern' only)")
+    p.add_argument("--nu", type=float_option("nu"), default=None, help="Matérn smoothness (family 'matern' only)")
     p.add_argument("--no-nugget", action="store_true", help="fit without a nugget")
-    p.add_argument("--trend", type=int, default=0, metavar="ORDER",
+    p.add_argument("--trend", type=int_option("trend"), default=0, metavar="ORDER",
                    help="polynomial order of the trend in the coordinates, 0-3 (default 0: constant mean)")
     p.add_argument("--transform", choices=("none", "log"), default="none", help="model log(values) (positive values only)")
-    p.add_argument("--prior-range", nargs=2, type=float, metavar=("R0", "A1"),
+    p.add_argument("--prior-range", nargs=2, action=PriorPairAction, metavar=("R0", "A1"),
                    help="PC prior: P(practical range < R0) = A1 (default: R0 = 5%% of the largest distance, A1 = 0.05)")
-    p.add_argument("--prior-sd", nargs=2, type=float, metavar=("S0", "A2"),
+    p.add_argument("--prior-sd", nargs=2, action=PriorPairAction, metavar=("S0", "A2"),
                    help="PC prior: P(sd of the field > S0) = A2 (default: S0 = 2 x sd of the detrended values, A2 = 0.05)")
-    p.add_argument("--prior-nugget", nargs=2, type=float, metavar=("T0", "A3"),
+    p.add_argument("--prior-nugget", nargs=2, action=PriorPairAction, metavar=("T0", "A3"),
                    help="PC prior: P(nugget sd > T0) = A3 (default as --prior-sd)")
     p.add_argument("--approx", choices=("auto", "dense", "nn"), default="auto",
                    help="likelihood: exact dense, nearest-neighbour (Vecchia) approximation, or auto "
                         "(dense up to 2,000 points per site, nn beyond; with --site chosen per site; "
                         "docs/large_data.md)")
-    p.add_argument("--neighbours", type=int, default=None, metavar="M",
+    p.add_argument("--neighbours", type=int_option("neighbours"), default=None, metavar="M",
                    help="neighbours per point of the nn likelihood (default 20)")
-    p.add_argument("--draws", type=int, default=1000, help="kept draws per chain (default 1000)")
-    p.add_argument("--tune", type=int, default=1000, help="tuning iterations per chain (default 1000)")
-    p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
-    p.add_argument("--target-accept", type=float, default=None,
+    p.add_argument("--draws", type=int_option("draws"), default=1000, help="kept draws per chain (default 1000)")
+    p.add_argument("--tune", type=int_option("tune"), default=1000, help="tuning iterations per chain (default 1000)")
+    p.add_argument("--chains", type=int_option("chains"), default=4, help="chains (default 4)")
+    p.add_argument("--target-accept", type=float_option("probability"), default=None,
                    help="target acceptance rate (default 0.8; 0.9 with --site, whose population layer needs smaller steps)")
-    p.add_argument("--seed", type=int, default=None, help="seed (default: a fresh one, recorded in the output)")
+    p.add_argument("--seed", type=int_option("seed"), default=None, help="seed (default: a fresh one, recorded in the output)")
     p.add_argument("--sampler", choices=("nutpie", "pymc"), default="nutpie", help="NUTS implementation (default nutpie)")
     p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")

@@ -20,29 +20,32 @@ MAX_SIM_TARGETS = 2000
 
 
 def _draws(text: str):
-    if str(text).lower() == "all":
+    from bayesgeo.validate import INT_LIMITS, InputError
+
+    if str(text).strip().lower() == "all":
         return None
+    lo, hi = INT_LIMITS["prediction_draws"]
     try:
-        n = int(text)
+        n = int(str(text).strip(), 10)
     except ValueError:
         n = 0
-    if n < 1:
-        from bayesgeo.validate import InputError
-
-        raise InputError(f"--draws: expected a positive integer or 'all', got {text!r}")
+    if not lo <= n <= hi:
+        raise InputError(f"--draws: expected an integer from {lo} to {hi} or 'all', got {text!r}")
     return n
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import float_option, int_option
+
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
-    p.add_argument("--cell", type=float, metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
+    p.add_argument("--cell", type=float_option("positive"), metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
                    "along the longer side of the data's bounding box)")
-    p.add_argument("--margin", type=float, default=0.0, metavar="M", help="widen the bounding box by M on every side")
+    p.add_argument("--margin", type=float_option("nonnegative"), default=0.0, metavar="M", help="widen the bounding box by M on every side")
     p.add_argument("--site", metavar="NAME", default=None,
                    help="with a several-site fit: map this site (outputs predictions_<NAME>.nc and maps_<NAME>/)")
     p.add_argument("--points", metavar="FILE", help="CSV of target points (columns x,y; plus any trend covariates) "
                    "instead of a grid")
-    p.add_argument("--threshold", type=float, action="append", default=[], metavar="T",
+    p.add_argument("--threshold", type=float_option("any"), action="append", default=[], metavar="T",
                    help="level for exceedance probabilities, data units (repeatable)")
     p.add_argument("--area", metavar="FILE|xmin,ymin,xmax,ymax",
                    help="area to average over: a CSV of polygon vertices (x,y) or a rectangle")
@@ -53,11 +56,11 @@ def add_arguments(p) -> None:
     p.add_argument("--hull-mask", action="store_true", help="leave out targets outside the convex hull of the samples")
     p.add_argument("--scheduler", default="threads", metavar="ADDRESS",
                    help="'threads' (default, local thread pool), 'synchronous', or a dask.distributed scheduler address")
-    p.add_argument("--chunk-cells", type=int, default=4096, metavar="K", help="cells per parallel task (default 4096)")
-    p.add_argument("--simulate", type=int, default=0, metavar="N",
+    p.add_argument("--chunk-cells", type=int_option("chunk_cells"), default=4096, metavar="K", help="cells per parallel task (default 4096)")
+    p.add_argument("--simulate", type=int_option("simulate"), default=0, metavar="N",
                    help=f"also store N joint conditional simulations per draw (at most {MAX_SIM_TARGETS} targets; "
                    "use --points or a coarse --cell)")
-    p.add_argument("--seed", type=int, default=0, metavar="S",
+    p.add_argument("--seed", type=int_option("seed"), default=0, metavar="S",
                    help="seed of the simulations (area averages under the log transform, --simulate)")
     p.add_argument("--overwrite", action="store_true", help="replace existing predictions.nc and maps/")
     p.add_argument("--allow-unconverged", action="store_true",
