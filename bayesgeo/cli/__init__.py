@@ -12,10 +12,12 @@ import argparse
 import importlib
 import sys
 
-__all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED"]
+__all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED", "EXIT_PIPE"]
 
 EXIT_INPUT = 2
 EXIT_NOT_CONVERGED = 3
+#: Status when stdout was closed by its reader (128 + SIGPIPE, as a shell reports a program ended by SIGPIPE).
+EXIT_PIPE = 141
 
 #: command name -> module under bayesgeo.cli
 COMMANDS: dict[str, str] = {
@@ -36,7 +38,8 @@ class _Parser(argparse.ArgumentParser):
     """argparse whose usage errors are one line and exit 2 (argparse's own status too)."""
 
     def error(self, message: str):  # pragma: no cover - exercised through main()
-        self.exit(EXIT_INPUT, f"bayesgeo: error: {message} (see '{self.prog} --help')\n")
+        message = " ".join(str(message).split())
+        self.exit(EXIT_INPUT, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
 
 
 def _build_parser() -> argparse.ArgumentParser:
@@ -53,19 +56,48 @@ def _build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _quiet_stdout() -> None:
+    """Point stdout at the null device so the interpreter's final flush cannot fail again."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):  # pragma: no cover - stdout without a file descriptor
+        pass
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the ``bayesgeo`` console script; returns the exit status."""
+    """Entry point of the ``bayesgeo`` console script; returns the exit status (also for refused options).
+
+    A reader that closes stdout early (``bayesgeo ... | head``) ends the command quietly with
+    status :data:`EXIT_PIPE` instead of a BrokenPipeError traceback (Python documentation,
+    "Note on SIGPIPE" in the ``signal`` module).
+    """
+    try:
+        return _main(argv)
+    except BrokenPipeError:
+        _quiet_stdout()
+        return EXIT_PIPE
+
+
+def _main(argv: list[str] | None) -> int:
     from bayesgeo.validate import InputError
 
     parser = _build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as stop:  # --help, --version, or a refused option (one line already printed)
+        return stop.code if isinstance(stop.code, int) else EXIT_INPUT
     if args.command is None:
         parser.print_help()
         return EXIT_INPUT
     try:
-        return int(args._module.run(args) or 0)
+        status = int(args._module.run(args) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handler, not at interpreter exit
+        return status
     except InputError as err:
-        print(f"bayesgeo {args.command}: error: {err}", file=sys.stderr)
+        print(f"bayesgeo {args.command}: error: {' '.join(str(err).split())}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print(f"bayesgeo {args.command}: interrupted", file=sys.stderr)
