@@ -42,12 +42,10 @@ def read_posterior(folder):
     path = folder / POSTERIOR_FILE
     if not path.is_file():
         raise InputError(f"{path}: not found; run a fit into {folder} first")
-    from bayesgeo.io import read_datatree
+    from bayesgeo.fitfile import read_fit
 
-    tree = read_datatree(path, what="NetCDF posterior")
-    if "posterior" not in tree.children:
-        raise InputError(f"{path}: no 'posterior' group; expected the output of a bayesgeo fit")
-    return tree
+    # a bare posterior from another program is fine; a bayesgeo fit (settings present) is checked in full
+    return read_fit(path, require_fit=False)
 
 
 def run(args) -> int:
