@@ -269,3 +269,50 @@ def test_variogram_check_options_bounded(tmp_path, capsys, option, value, patter
     (tmp_path / "fit").mkdir()
     assert_refused(capsys, ["variogram-check", tmp_path / "fit", option, value], "variogram-check", pattern,
                    inputs=[tmp_path / "fit"], absent=[tmp_path / "fit" / "variogram_check.png"])
+
+
+def test_non_finite_elpd_is_never_ranked(fits, tmp_path, capsys, monkeypatch):
+    """A NaN elpd (leave-one-out densities that overflowed although the draws are finite; simulated
+    here by patching the comparison) stops compare with exit 2 and a line naming the fit folder and
+    the variable, instead of a ranking with elpd = nan and exit 0; nothing is written to --out."""
+    import bayesgeo.modelcheck as mc
+
+    real = mc.compare_fits
+
+    def nan_elpd(trees, **kw):
+        res = real(trees, **kw)
+        v = res["elpd_loo"].values.copy()
+        v[res["fit"].values.tolist().index("exp")] = np.nan
+        return res.assign(elpd_loo=("fit", v))
+
+    monkeypatch.setattr(mc, "compare_fits", nan_elpd)
+    from _cli_helpers import assert_refused
+
+    assert_refused(capsys, ["compare", fits["m32"], fits["exp"], "--out", tmp_path / "cmp", "--json"], "compare",
+                   rf"^bayesgeo compare: error: {fits['exp']}: elpd_loo = nan", inputs=[fits["m32"], fits["exp"]],
+                   absent=[tmp_path / "cmp"])
+
+
+def test_non_finite_replicate_band_stops_variogram_check(fits, tmp_path, capsys, monkeypatch):
+    """NaN replicate quantiles in a bin with pairs stop variogram-check with exit 2 naming the fit
+    folder and the variable; no figure or table is written."""
+    import shutil
+
+    import bayesgeo.ppcheck as pp
+
+    real = pp.variogram_check
+
+    def nan_band(tree, **kw):
+        vc = real(tree, **kw)
+        v = vc["replicate_q95"].values.copy()
+        v[np.flatnonzero(vc["pairs"].values > 0)[0]] = np.inf
+        return vc.assign(replicate_q95=(vc["replicate_q95"].dims, v))
+
+    monkeypatch.setattr(pp, "variogram_check", nan_band)
+    folder = tmp_path / "fit"
+    shutil.copytree(fits["exp"], folder)
+    from _cli_helpers import assert_refused
+
+    assert_refused(capsys, ["variogram-check", folder, "--replicates", "5", "--bins", "4"], "variogram-check",
+                   rf"{folder}: replicate_q95 is NaN or infinite in 1 lag bin\(s\) with pairs", inputs=[folder],
+                   absent=[folder / "variogram_check.png", folder / "variogram_check.csv"])

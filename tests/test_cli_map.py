@@ -199,3 +199,25 @@ def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
     folder, _ = _fit_folder(tmp_path / "fit", draws=20)
     assert_refused(capsys, ["map", folder, option, value], "map", pattern, inputs=[folder],
                    absent=[folder / "predictions.nc", folder / "maps"])
+
+
+def test_non_finite_prediction_stops_the_map(tmp_path, capsys, monkeypatch):
+    """A NaN predictive sd at a predicted cell (a numerically singular kriging system, simulated here by
+    patching the prediction) stops map with exit 2 and a line naming the fit folder and the variable,
+    instead of maps with all-NaN bands and exit 0; no predictions.nc or maps/ are written."""
+    import bayesgeo.predict as pr
+    from _cli_helpers import assert_refused
+
+    real = pr.predict_targets
+
+    def nan_sd(*a, **kw):
+        pred = real(*a, **kw)
+        v = pred["sd"].values.copy()
+        v.flat[v.size // 2] = np.nan
+        return pred.assign(sd=(pred["sd"].dims, v))
+
+    monkeypatch.setattr(pr, "predict_targets", nan_sd)
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert_refused(capsys, ["map", folder, "--cell", "40", "--draws", "20"], "map",
+                   rf"{folder}: the prediction sd is NaN or infinite at 1 target\(s\)", inputs=[folder],
+                   absent=[folder / "predictions.nc", folder / "maps"])

@@ -142,6 +142,7 @@ def run(args) -> int:
                            design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
                            progress=bar)
     bar.close()
+    _refuse_non_finite(pred, targets["inside"], folder)
 
     cautions = [CAUTION]
     if spec.transform == "log":
@@ -209,6 +210,22 @@ def run(args) -> int:
     else:
         _print_human(result)
     return 0
+
+
+def _refuse_non_finite(pred, inside, folder) -> None:
+    """A NaN or infinite prediction at a predicted cell stops the map (exit 2) instead of an all-NaN band."""
+    import numpy as np
+
+    from bayesgeo.validate import InputError
+
+    for name in ("mean", "sd", "q05", "q50", "q95", "p_exceed"):
+        if name not in pred:
+            continue
+        bad = int((~np.isfinite(pred[name]) & inside).sum())
+        if bad:
+            raise InputError(f"{folder}: the prediction {name} is NaN or infinite at {bad} target(s) although the "
+                             "posterior draws are finite (a numerically singular kriging system?); no map written: "
+                             "check the fit ('bayesgeo check') and the targets")
 
 
 def _print_human(r: dict) -> None:

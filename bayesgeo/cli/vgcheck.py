@@ -49,6 +49,20 @@ def _list(da) -> list:
     return [float(v) for v in da.values]
 
 
+def _refuse_non_finite(vc, folder) -> None:
+    """NaN or infinite replicate or model semivariances in a bin with pairs stop the check (exit 2)."""
+    import numpy as np
+
+    from bayesgeo.validate import InputError
+
+    has_pairs = vc["pairs"].values > 0
+    for name in ("replicate_q05", "replicate_q50", "replicate_q95", "model_q05", "model_q50", "model_q95"):
+        bad = int(np.count_nonzero(~np.isfinite(vc[name].values) & has_pairs))
+        if bad:
+            raise InputError(f"{folder}: {name} is NaN or infinite in {bad} lag bin(s) with pairs although the "
+                             "posterior draws are finite; no check written: check the fit ('bayesgeo check')")
+
+
 def run(args) -> int:
     import functools
     import json
@@ -73,6 +87,7 @@ def run(args) -> int:
         vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed,
                              progress=functools.partial(progress, enabled=not args.json))
         bar.update(1)
+        _refuse_non_finite(vc, folder)
         cautions = list(vc.attrs["cautions"])
         try:
             verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
