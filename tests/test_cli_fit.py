@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 
 import numpy as np
 import pytest
@@ -52,6 +53,7 @@ def test_json_output_keys_and_files(cli_run, capsys):
     assert {"name", "chains", "draws", "tune", "seed", "seconds"} <= set(rep["sampler"])
     assert rep["sampler"]["seed"] == 4 and rep["sampler"]["chains"] == 2 and rep["sampler"]["name"] == "nutpie"
     assert "verdict" in rep["diagnostics"] and rep["cautions"]
+    assert rep["workload"]["points"] == 40 and rep["workload"]["message"] is None  # small: nothing announced
     assert code == (EXIT_NOT_CONVERGED if rep["diagnostics"]["verdict"] == "fail" else 0)
     assert rep["model"]["priors"]["range"] == [30.0, 0.05]
     assert rep["parameters"]["practical_range"]["units"] == "coordinate units"
@@ -165,3 +167,29 @@ def test_prior_pairs_checked(tmp_path, capsys, option, values, pattern):
     data = _csv(tmp_path / "d.csv")
     argv = ["fit", data, "--covariance", "matern32", "--value", "arsenic_mg_kg", option, *values, "--out", tmp_path / "o"]
     assert_refused(capsys, argv, "fit", pattern, inputs=[data], absent=[tmp_path / "o"])
+
+
+def test_large_input_announced_before_sampling(tmp_path, capsys, monkeypatch):
+    """Above the comfortable size (bayesgeo.workload: 1,000 points per site; above 2,000 the
+    nearest-neighbour likelihood) the fit says on stderr, before any sampling, what will happen and
+    the expected scale of time; with --json nothing extra reaches stdout or stderr. Sampling is
+    replaced by an interruption here so the test takes seconds."""
+    import bayesgeo.posterior as post
+
+    def interrupted(*a, **kw):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(post, "fit", interrupted)
+    data = _csv(tmp_path / "big.csv", n=2500)
+    argv = ["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "exponential", "--duplicates", "mean",
+            "--out", str(tmp_path / "o")]
+    assert main(argv) == 130
+    out, err = capsys.readouterr()
+    lines = err.strip().splitlines()
+    assert out == ""
+    assert re.match(r"bayesgeo fit: note: 2,\d{3} points: expect roughly \d+ min to \d+ min on ", lines[0])
+    assert "nearest-neighbour (Vecchia) likelihood with m = 20 is used" in lines[0]
+    assert lines[1].startswith("bayesgeo fit: compiling the model")
+    assert main([*argv, "--json"]) == 130
+    out, err = capsys.readouterr()
+    assert out == "" and "note:" not in err

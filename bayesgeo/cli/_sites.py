@@ -100,6 +100,7 @@ def run_sites(args, ds) -> int:
     report = site_report(tree, shrinkage=shrink, design=design)
     report.update(extra)
     report["out"] = str(args.out)
+    report["workload"] = getattr(args, "workload", None)  # bayesgeo.workload plan, from bayesgeo.cli.fit
     if args.json:
         emit_json(report)
     else:

@@ -107,8 +107,10 @@ def _fits_json(fits) -> dict:
     return out
 
 
-def _analyse_site(part, args, families, bar) -> tuple[dict, dict]:
-    """Statistics and fits of one site: (JSON object, xarray results for files)."""
+def _analyse_site(part, args, families, bar, log=None) -> tuple[dict, dict]:
+    """Statistics and fits of one site: (JSON object, xarray results for files); ``log(text)`` announces
+    each long step (large inputs)."""
+    log = log or (lambda text: None)
     from bayesgeo import explore
     from bayesgeo.quickfit import quick_fits
     from bayesgeo.trend import fit_trend
@@ -121,15 +123,19 @@ def _analyse_site(part, args, families, bar) -> tuple[dict, dict]:
             part = fit_trend(part, args.trend, args.covariate)
             trend_info["r_squared"] = float(part.attrs["trend_r_squared"])
         common = {"bins": args.bins, "max_lag": args.max_lag}
+        log(f"semivariogram ({args.permutations} permutations)")
         vg = explore.semivariogram(part, estimator=args.estimator, permutations=args.permutations,
                                    seed=args.seed, **common)
         bar.update(1)
+        log(f"correlogram ({args.permutations} permutations)")
         cg = explore.correlogram(part, permutations=args.permutations, seed=args.seed, **common)
         bar.update(1)
+        log("directional semivariograms")
         dvg = explore.directional_semivariograms(part, azimuths=_AZIMUTHS, tolerance=_TOLERANCE,
                                                  estimator=args.estimator, **common)
         bar.update(1)
     notes += sorted({str(w.message) for w in caught if issubclass(w.category, explore.FewPairsWarning)})
+    log("quick covariance fits")
     fits = quick_fits(part, vg, families, trend=args.trend, covariates=args.covariate)
     bar.update(len(families))
     if "ml_skipped" in fits.attrs:
@@ -188,6 +194,7 @@ def _write_site(folder, res: dict, label: str) -> list[str]:
 
 
 def run(args) -> int:
+    import sys
     from pathlib import Path
 
     from bayesgeo.cli._common import emit_json, print_table, progress, read_data
@@ -196,6 +203,7 @@ def run(args) -> int:
     from bayesgeo.quickfit import QUICK_FAMILIES
     from bayesgeo.trend import MAX_ORDER
     from bayesgeo.validate import InputError
+    from bayesgeo.workload import explore_plan
 
     if not 0 <= args.trend <= MAX_ORDER:
         raise InputError(f"--trend: order {args.trend} is not one of 0, 1, 2, 3")
@@ -207,20 +215,27 @@ def run(args) -> int:
     families = list(dict.fromkeys(args.covariance or QUICK_FAMILIES))
     labels = sites_of(ds)
     multi = labels != [""]
+    plan = explore_plan(ds, permutations=args.permutations, max_lag=args.max_lag, families=len(families))
+    if plan["message"] and not args.json:
+        print(f"bayesgeo explore: note: {plan['message']}", file=sys.stderr, flush=True)
     bar = progress(total=len(labels) * (3 + len(families)), desc="explore", enabled=not args.json)
 
     results, objects = {}, {}
     with bar:
         for label in labels:
             part = ds if not multi else ds.isel(obs=(ds["site"].values == label).nonzero()[0])
-            objects[label], results[label] = _analyse_site(part, args, families, bar)
+            log = None
+            if plan["message"] and not args.json:
+                def log(text, _where=f"site {label}: " if multi else ""):
+                    print(f"bayesgeo explore: {_where}{text} ...", file=sys.stderr, flush=True)
+            objects[label], results[label] = _analyse_site(part, args, families, bar, log)
 
     first = labels[0]
     settings = {"transform": args.transform, "trend": args.trend, "covariates": list(args.covariate), "bins": args.bins,
                 "max_lag": args.max_lag, "permutations": args.permutations, "estimator": args.estimator,
                 "covariance": families, "seed": args.seed, "azimuths": list(_AZIMUTHS), "tolerance": _TOLERANCE}
     obj = {"data": str(args.data), "out": str(out), "site": first if multi else None,
-           "n_total": int(ds.sizes["obs"]), **objects[first], "settings": settings}
+           "n_total": int(ds.sizes["obs"]), **objects[first], "settings": settings, "workload": plan}
     if multi:
         obj["sites"] = objects
     files: list[str] = []

@@ -60,10 +60,13 @@ def run(args) -> int:
     ds = read_data(args)
     from bayesgeo.data import sites_of
 
+    args.workload = _announce(args, ds)
     if len(sites_of(ds)) > 1:
         from bayesgeo.cli._sites import run_sites
 
         return run_sites(args, ds)
+    stage = _stage_logger(args)
+    stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal)")
     priors = Priors(range=tuple(args.prior_range) if args.prior_range else None,
                     sd=tuple(args.prior_sd) if args.prior_sd else None,
                     nugget=tuple(args.prior_nugget) if args.prior_nugget else None)
@@ -73,14 +76,51 @@ def run(args) -> int:
                priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
                target_accept=0.8 if args.target_accept is None else args.target_accept, seed=args.seed, progressbar=show,
                approx=args.approx, neighbours=args.neighbours)
+    stage("checking convergence")
     conv = check_convergence(tree)
     tree = with_diagnostics(tree, conv.to_json())
+    stage(f"writing {args.out}")
     save_fit(tree, args.out, overwrite=args.overwrite)
     report = fit_report(tree)
     report["out"] = str(args.out)
+    report["workload"] = args.workload
     if args.json:
         emit_json(report)
     else:
         print(summary_text(report), end="")
         print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
+
+
+def _announce(args, ds) -> dict:
+    """Say on stderr what a large fit will do and roughly how long it takes (bayesgeo.workload); the plan
+    goes into the JSON object as ``workload`` instead when --json is given."""
+    import sys
+
+    import numpy as np
+
+    from bayesgeo.data import sites_of
+    from bayesgeo.workload import fit_plan
+
+    labels = sites_of(ds)
+    sizes = ({lab: int(np.count_nonzero(ds["site"].values == lab)) for lab in labels} if len(labels) > 1
+             else {"": int(ds.sizes["obs"])})
+    pooled = len(labels) > 1 and getattr(args, "pooling", "hierarchical") != "independent"
+    plan = fit_plan(sizes, approx=args.approx, neighbours=args.neighbours, chains=args.chains, draws=args.draws,
+                    tune=args.tune, fits=2 if pooled else 1)
+    if plan["message"] and not args.json:
+        print(f"bayesgeo fit: note: {plan['message']}", file=sys.stderr, flush=True)
+    return plan
+
+
+def _stage_logger(args):
+    """One stderr line per long step, for runs the workload plan announced (silent otherwise and with --json)."""
+    import sys
+
+    enabled = bool(getattr(args, "workload", None) and args.workload.get("message")) and not args.json
+
+    def stage(text: str) -> None:
+        if enabled:
+            print(f"bayesgeo fit: {text} ...", file=sys.stderr, flush=True)
+
+    return stage
