@@ -8,7 +8,8 @@ fits (:mod:`bayesgeo.hierarchical`) alike:
 
 * the ``settings`` attribute: valid JSON with a ``model`` table that decodes into the fit's spec,
   naming a covariance family of the registry (:mod:`bayesgeo.covariance`), a known transform and
-  likelihood;
+  likelihood; the ``diagnostics``, ``approximation`` and ``cautions`` attributes, when present,
+  valid JSON too;
 * the groups ``posterior``, ``observed_data`` and ``constant_data`` and the variables the stages read;
 * sizes: as many observed values as locations and design rows, and as the settings record; the
   design has one column per trend term; a several-site fit's site labels match its settings;
@@ -53,8 +54,30 @@ def read_fit(directory: str | Path, *, written_by: str = "bayesgeo fit", require
         return check_fit(tree, source)
     if "posterior" not in tree.children:
         raise InputError(f"{source}: no 'posterior' group; expected the output of a bayesgeo fit")
+    _check_json_attrs(tree, source)
     check_finite_draws(tree, source)
     return tree
+
+
+#: JSON attributes a fit may carry besides ``settings``, and the type each must decode to.
+_JSON_ATTRS = {"diagnostics": dict, "approximation": dict, "cautions": list}
+
+
+def _check_json_attrs(tree: xr.DataTree, source: str) -> None:
+    """The optional JSON attributes (convergence verdict, nn check, cautions) must decode too."""
+    import json
+
+    for name, kind in _JSON_ATTRS.items():
+        if name not in tree.attrs:
+            continue
+        try:
+            value = json.loads(tree.attrs[name])
+        except (TypeError, ValueError) as err:
+            raise InputError(f"{source}: the '{name}' attribute is not valid JSON ({' '.join(str(err).split())}): "
+                             "the file is damaged (cut short or edited); refit, or restore it from a copy") from None
+        if not isinstance(value, kind):
+            raise InputError(f"{source}: the '{name}' attribute holds {type(value).__name__} where a "
+                             f"{'table' if kind is dict else 'list'} is expected: the file is damaged")
 
 
 def check_fit(tree: xr.DataTree, source: str = "fit") -> xr.DataTree:
@@ -68,6 +91,7 @@ def check_fit(tree: xr.DataTree, source: str = "fit") -> xr.DataTree:
     from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings, fit_spec
 
     settings = fit_settings(tree, source)
+    _check_json_attrs(tree, source)
     several = settings.get("format") == SEVERAL_SITE_FORMAT
     if several:
         from bayesgeo.hierarchical import site_spec

@@ -100,6 +100,10 @@ def _damaged(name, good):
                                r"observed_data variable value holds 1 non-finite value"),
         "infinite coordinate": (lambda t: _poison(t, "constant_data", "x", 0, -np.inf),
                                 r"constant_data variable x holds 1 non-finite value"),
+        "diagnostics cut short": (lambda t: t.attrs.update(diagnostics='{"verdict": "pa') or t,
+                                  r"the 'diagnostics' attribute is not valid JSON \(Unterminated string"),
+        "approximation not a table": (lambda t: t.attrs.update(approximation="[0.5]") or t,
+                                      r"the 'approximation' attribute holds list where a table is expected"),
     }
     make, pattern = cases[name]
     return make(good.copy()), pattern
@@ -108,7 +112,7 @@ def _damaged(name, good):
 DAMAGE = ["settings cut short", "settings not a table", "no settings", "unknown family", "matern nu out of range",
           "unknown transform", "model key missing", "unknown format", "constant_data shorter", "no constant_data",
           "posterior variable lost", "design columns", "NaN draw", "infinite draw", "NaN observed value",
-          "infinite coordinate"]
+          "infinite coordinate", "diagnostics cut short", "approximation not a table"]
 
 
 def test_good_fits_pass(tmp_path, good, good_sites):
@@ -128,7 +132,8 @@ def test_damaged_fit_refused_naming_the_file(tmp_path, good, damage):
 
 
 @pytest.mark.parametrize("command", ["map", "variogram-check", "check", "compare"])
-@pytest.mark.parametrize("damage", ["settings cut short", "unknown family", "constant_data shorter", "NaN draw"])
+@pytest.mark.parametrize("damage", ["settings cut short", "unknown family", "constant_data shorter", "NaN draw",
+                                    "diagnostics cut short"])
 def test_every_command_refuses_damaged_fits(tmp_path, capsys, good, command, damage):
     """map, variogram-check, check and compare all refuse a damaged fit with exit 2 and one stderr line
     naming the file (no JSONDecodeError, ValueError or all-NaN output with exit 0, as before), and
