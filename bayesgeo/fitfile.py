@@ -157,6 +157,14 @@ def _check_spec_values(spec, source: str) -> None:
         raise InputError(f"{source}: the settings name covariance family {spec.covariance!r}{nu}, which this version "
                          f"does not know (known: {', '.join(FAMILIES)}); damaged, or written by another "
                          "version") from None
+    import math
+
+    for name, positive in (("value_sd", True), ("distance_scale", True), ("range_factor", True),
+                           ("value_mean", False)):
+        v = getattr(spec, name, 1.0)
+        if not (isinstance(v, (int, float)) and math.isfinite(v) and (v > 0 or not positive)):
+            raise InputError(f"{source}: the settings record {name} = {v!r}, expected a finite number"
+                             f"{' > 0' if positive else ''}; the file is damaged")
     if spec.transform not in (None, "log"):
         raise InputError(f"{source}: the settings name transform {spec.transform!r}; known: none, log")
     approx = [getattr(spec, "approx", "dense"), *getattr(spec, "site_approx", ())]

@@ -100,6 +100,8 @@ def _damaged(name, good):
                                r"observed_data variable value holds 1 non-finite value"),
         "infinite coordinate": (lambda t: _poison(t, "constant_data", "x", 0, -np.inf),
                                 r"constant_data variable x holds 1 non-finite value"),
+        "standardisation NaN": (lambda t: _settings(t, lambda s: s["model"].update(value_sd=float("nan"))),
+                                r"the settings record value_sd = nan, expected a finite number > 0"),
         "diagnostics cut short": (lambda t: t.attrs.update(diagnostics='{"verdict": "pa') or t,
                                   r"the 'diagnostics' attribute is not valid JSON \(Unterminated string"),
         "approximation not a table": (lambda t: t.attrs.update(approximation="[0.5]") or t,
@@ -112,7 +114,7 @@ def _damaged(name, good):
 DAMAGE = ["settings cut short", "settings not a table", "no settings", "unknown family", "matern nu out of range",
           "unknown transform", "model key missing", "unknown format", "constant_data shorter", "no constant_data",
           "posterior variable lost", "design columns", "NaN draw", "infinite draw", "NaN observed value",
-          "infinite coordinate", "diagnostics cut short", "approximation not a table"]
+          "infinite coordinate", "standardisation NaN", "diagnostics cut short", "approximation not a table"]
 
 
 def test_good_fits_pass(tmp_path, good, good_sites):
