@@ -74,11 +74,13 @@ def run_sites(args, ds) -> int:
         neighbours=_opt(args, "neighbours", None),
     )
     show = not args.json and sys.stderr.isatty()
+    # stage lines for long runs (bayesgeo.workload announced them) even when stderr is a log file
+    stages = show or (not args.json and bool((getattr(args, "workload", None) or {}).get("message")))
     sample_kw = dict(sampler=_opt(args, "sampler", "nutpie"), chains=_opt(args, "chains", 4),
                      draws=_opt(args, "draws", 1000), tune=_opt(args, "tune", 1000),
                      target_accept=_opt(args, "target_accept", 0.9), progressbar=show)
-    if show:
-        print(f"fitting the {pooling} model ...", file=sys.stderr)
+    if stages:
+        print(f"fitting the {pooling} model ...", file=sys.stderr, flush=True)
     tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None),
                      parametrisation=_opt(args, "parametrisation", "noncentred"), **model_kw, **sample_kw)
     seed = int(json.loads(tree.attrs["settings"])["sampler"]["seed"])  # the independent fit reuses it
@@ -87,7 +89,7 @@ def run_sites(args, ds) -> int:
     shrink = design = None
     extra = {}
     if pooling != "independent":
-        if show:
+        if stages:
             print("fitting each site independently for the shrinkage table ...", file=sys.stderr)
         indep = fit_sites(ds, pooling="independent", seed=seed, **model_kw, **sample_kw)
         shrink = shrinkage_table(tree, indep)
