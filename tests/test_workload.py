@@ -70,5 +70,6 @@ def test_explore_max_lag_and_small_data():
 
 
 def test_format_duration():
+    """Durations read as seconds below 90 s, minutes below 90 min, hours above (our own display rule)."""
     assert wl.format_duration(40) == "40 s" and wl.format_duration(720) == "12 min"
     assert wl.format_duration(3 * 3600) == "3.0 h"
