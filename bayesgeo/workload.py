@@ -35,7 +35,7 @@ from collections.abc import Mapping
 import numpy as np
 
 __all__ = ["FIT_COMFORTABLE_POINTS", "EXPLORE_COMFORTABLE_POINTS", "NOTICE_SECONDS", "fit_plan", "explore_plan",
-           "gradient_seconds", "format_duration"]
+           "gradient_seconds", "dense_memory_bytes", "physical_memory_bytes", "format_duration", "format_bytes"]
 
 #: Points per site up to which a default fit (dense likelihood, 4 chains x 2,000 iterations) takes
 #: about ten minutes on two cores; beyond, fits take longer and above ``DENSE_LIMIT`` (2,000) the
@@ -60,6 +60,25 @@ def gradient_seconds(n: int, approx: str, neighbours: int = 20) -> float:
     if approx == "nn":
         return _NN_GRADIENT_PER_1000 * n / 1000.0 * (max(neighbours, 1) / 20.0) ** 2
     return _DENSE_GRADIENT_1000 * (n / 1000.0) ** 3
+
+
+def dense_memory_bytes(n: int, chains: int) -> float:
+    """Rough memory of the dense likelihood of ``n`` points: the distance matrix, a copy, and one n x n
+    work matrix per chain (chains run in threads), 8 bytes per entry."""
+    return 8.0 * n * n * (2 + chains)
+
+
+def physical_memory_bytes() -> float | None:
+    """The machine's physical memory (None where the system does not say)."""
+    try:
+        return float(os.sysconf("SC_PAGE_SIZE")) * float(os.sysconf("SC_PHYS_PAGES"))
+    except (AttributeError, ValueError, OSError):  # pragma: no cover - not POSIX
+        return None
+
+
+def format_bytes(size: float) -> str:
+    """``"350 MB"``, ``"16 GB"``."""
+    return f"{size / 1e6:.0f} MB" if size < 1e9 else f"{size / 1e9:.0f} GB"
 
 
 def format_duration(seconds: float) -> str:
@@ -98,6 +117,7 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
     dict
         ``points`` (total), ``largest_site``, ``likelihood`` (per site: "dense" or "nn"),
         ``estimated_seconds`` ([low, high], a factor 2 either side of the central value),
+        ``dense_memory_bytes`` (rough memory of the dense likelihood terms, :func:`dense_memory_bytes`),
         ``comfortable_points`` and ``message`` (None when the run is within the comfortable size).
     """
     from bayesgeo.model import DENSE_LIMIT
@@ -109,8 +129,9 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
     per_fit = chains * (draws + tune) * _STEPS_PER_ITERATION * grad / min(chains, _cores()) + _COMPILE_SECONDS
     central = fits * per_fit
     total, largest = int(sum(sizes.values())), int(max(sizes.values()))
+    memory = sum(dense_memory_bytes(n, chains) for s, n in sizes.items() if lik[s] == "dense")
     plan = {"points": total, "largest_site": largest, "likelihood": dict(lik),
-            "estimated_seconds": [round(central / 2, 1), round(central * 2, 1)],
+            "estimated_seconds": [round(central / 2, 1), round(central * 2, 1)], "dense_memory_bytes": memory,
             "comfortable_points": FIT_COMFORTABLE_POINTS, "message": None}
     notes = []
     dense_big = [s for s, n in sizes.items() if lik[s] == "dense" and n > DENSE_LIMIT]

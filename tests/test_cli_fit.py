@@ -193,3 +193,20 @@ def test_large_input_announced_before_sampling(tmp_path, capsys, monkeypatch):
     assert main([*argv, "--json"]) == 130
     out, err = capsys.readouterr()
     assert out == "" and "note:" not in err
+
+
+def test_dense_fit_beyond_memory_refused(tmp_path, capsys, monkeypatch):
+    """A dense likelihood whose n x n matrices (8 bytes per entry, one work matrix per chain plus the
+    distances; bayesgeo.workload.dense_memory_bytes) exceed the machine's memory is refused before
+    anything starts, with one line naming --approx and the way out (nn), instead of a MemoryError
+    traceback after minutes. The machine's memory is set to 1 MB here so the test stays small."""
+    import bayesgeo.workload as wl
+    from _cli_helpers import assert_refused
+
+    monkeypatch.setattr(wl, "physical_memory_bytes", lambda: 1e6)
+    data = _csv(tmp_path / "d.csv", n=300)
+    argv = ["fit", data, "--value", "arsenic_mg_kg", "--covariance", "exponential", "--approx", "dense",
+            "--duplicates", "mean", "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", r"--approx dense: the dense likelihood of \d+ points with 4 chains needs "
+                   r"about \d MB of memory; this machine has 1 MB: use --approx nn \(or auto\)",
+                   inputs=[data], absent=[tmp_path / "o"])

@@ -100,7 +100,8 @@ def _announce(args, ds) -> dict:
     import numpy as np
 
     from bayesgeo.data import sites_of
-    from bayesgeo.workload import fit_plan
+    from bayesgeo.validate import InputError
+    from bayesgeo.workload import fit_plan, format_bytes, physical_memory_bytes
 
     labels = sites_of(ds)
     sizes = ({lab: int(np.count_nonzero(ds["site"].values == lab)) for lab in labels} if len(labels) > 1
@@ -108,6 +109,11 @@ def _announce(args, ds) -> dict:
     pooled = len(labels) > 1 and getattr(args, "pooling", "hierarchical") != "independent"
     plan = fit_plan(sizes, approx=args.approx, neighbours=args.neighbours, chains=args.chains, draws=args.draws,
                     tune=args.tune, fits=2 if pooled else 1)
+    ram = physical_memory_bytes()
+    if ram is not None and plan["dense_memory_bytes"] > ram:
+        raise InputError(f"--approx {args.approx}: the dense likelihood of {plan['largest_site']:,} points with "
+                         f"{args.chains} chains needs about {format_bytes(plan['dense_memory_bytes'])} of memory; this "
+                         f"machine has {format_bytes(ram)}: use --approx nn (or auto), docs/large_data.md")
     if plan["message"] and not args.json:
         print(f"bayesgeo fit: note: {plan['message']}", file=sys.stderr, flush=True)
     return plan
