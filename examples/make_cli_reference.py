@@ -18,7 +18,7 @@ Generated from the command parsers by `examples/make_cli_reference.py`; do not e
 Every command prints human tables by default and exactly one JSON object on stdout with `--json`
 (nothing else goes to stdout then; progress goes to stderr). Exit status: 0 done; 2 bad input (one
 line on stderr naming the file, row, column or option); 3 a posterior failed its convergence check;
-1 (`run`, `demo`) a stage failed unexpectedly; 141 stdout was closed by its reader (`bayesgeo ... | head`),
+1 an unexpected failure (one line; `BAYESGEO_DEBUG=1` shows the traceback; for `run` and `demo`, a stage failed); 141 stdout was closed by its reader (`bayesgeo ... | head`),
 ended quietly. Outputs are written atomically and never replace existing files without `--overwrite`.
 
 Numeric options are checked where they enter, with the same ranges as in study files

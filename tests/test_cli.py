@@ -49,3 +49,32 @@ def test_refused_option_returns_status(capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("bayesgeo demo-data: error: argument --seed: expected an integer")
     assert main(["--version"]) == 0
+
+
+def test_unexpected_failure_is_one_line(capsys, monkeypatch):
+    """The last line of defence: an exception no check foresaw ends with status 1 and one stderr line
+    naming the command and the exception, not a traceback; BAYESGEO_DEBUG=1 re-raises it for a developer.
+    A machine problem (OSError such as a full disk) is reported as an error, not as a bug."""
+    import pytest
+
+    import bayesgeo.cli.demo_data as dd
+
+    def broken(args):
+        raise RuntimeError("something\nunforeseen")
+
+    monkeypatch.setattr(dd, "run", broken)
+    monkeypatch.delenv("BAYESGEO_DEBUG", raising=False)
+    assert main(["demo-data", "--out", "x.csv"]) == 1
+    err = capsys.readouterr().err.splitlines()
+    assert err == ["bayesgeo demo-data: internal error: RuntimeError: something unforeseen (a bug in bayesgeo: "
+                   "please report it with the command line; BAYESGEO_DEBUG=1 shows the traceback)"]
+
+    def full(args):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(dd, "run", full)
+    assert main(["demo-data", "--out", "x.csv"]) == 1
+    assert capsys.readouterr().err == "bayesgeo demo-data: error: OSError: [Errno 28] No space left on device\n"
+    monkeypatch.setenv("BAYESGEO_DEBUG", "1")
+    with pytest.raises(OSError):
+        main(["demo-data", "--out", "x.csv"])

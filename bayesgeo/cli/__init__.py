@@ -3,7 +3,9 @@
 Each command lives in its own module ``bayesgeo.cli.<command>`` exposing ``HELP``,
 ``add_arguments(parser)`` and ``run(args) -> int``; modules are imported only when their command
 runs, so ``bayesgeo explore`` does not pay for importing PyMC. Bad input prints one line on
-stderr and exits with status 2; an unconverged posterior exits with status 3.
+stderr and exits with status 2; an unconverged posterior exits with status 3; an unexpected failure
+prints one line (``BAYESGEO_DEBUG=1`` shows the traceback) and exits with status 1; a closed stdout
+ends quietly with status 141.
 """
 
 from __future__ import annotations
@@ -12,10 +14,12 @@ import argparse
 import importlib
 import sys
 
-__all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED", "EXIT_PIPE"]
+__all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED", "EXIT_FAILED", "EXIT_PIPE"]
 
 EXIT_INPUT = 2
 EXIT_NOT_CONVERGED = 3
+#: Status of an unexpected failure (a bug, or the machine: disk full, out of memory); one stderr line.
+EXIT_FAILED = 1
 #: Status when stdout was closed by its reader (128 + SIGPIPE, as a shell reports a program ended by SIGPIPE).
 EXIT_PIPE = 141
 
@@ -102,6 +106,20 @@ def _main(argv: list[str] | None) -> int:
     except KeyboardInterrupt:
         print(f"bayesgeo {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        raise
+    except Exception as err:  # noqa: BLE001 - the last line of defence: a user never sees a traceback
+        import os
+
+        if os.environ.get("BAYESGEO_DEBUG"):
+            raise
+        text = " ".join(str(err).split()) or "(no message)"
+        if isinstance(err, (OSError, MemoryError)):  # the machine, not the input: disk full, permissions, memory
+            print(f"bayesgeo {args.command}: error: {type(err).__name__}: {text}", file=sys.stderr)
+        else:
+            print(f"bayesgeo {args.command}: internal error: {type(err).__name__}: {text} (a bug in bayesgeo: please "
+                  "report it with the command line; BAYESGEO_DEBUG=1 shows the traceback)", file=sys.stderr)
+        return EXIT_FAILED
 
 
 if __name__ == "__main__":  # pragma: no cover
