@@ -316,3 +316,17 @@ def test_non_finite_replicate_band_stops_variogram_check(fits, tmp_path, capsys,
     assert_refused(capsys, ["variogram-check", folder, "--replicates", "5", "--bins", "4"], "variogram-check",
                    rf"{folder}: replicate_q95 is NaN or infinite in 1 lag bin\(s\) with pairs", inputs=[folder],
                    absent=[folder / "variogram_check.png", folder / "variogram_check.csv"])
+
+
+def test_variogram_check_without_pairs_refused(fits, tmp_path, capsys):
+    """A --max-lag below the smallest distance between points leaves every lag bin empty: refused with
+    exit 2 and one line naming --max-lag, instead of a table of NaN with exit 0; nothing written."""
+    import shutil
+
+    from _cli_helpers import assert_refused
+
+    folder = tmp_path / "fit"
+    shutil.copytree(fits["exp"], folder)
+    assert_refused(capsys, ["variogram-check", folder, "--max-lag", "1e-9", "--replicates", "5"], "variogram-check",
+                   r"--max-lag: no pair of points lies within 1e-09 .*use a larger --max-lag", inputs=[folder],
+                   absent=[folder / "variogram_check.png", folder / "variogram_check.csv"])

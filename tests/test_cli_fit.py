@@ -210,3 +210,15 @@ def test_dense_fit_beyond_memory_refused(tmp_path, capsys, monkeypatch):
     assert_refused(capsys, argv, "fit", r"--approx dense: the dense likelihood of \d+ points with 4 chains needs "
                    r"about \d MB of memory; this machine has 1 MB: use --approx nn \(or auto\)",
                    inputs=[data], absent=[tmp_path / "o"])
+
+
+def test_neighbours_with_dense_refused(tmp_path, capsys):
+    """--neighbours with --approx dense would be silently ignored; it is refused with one line, as the
+    study file refuses [model] neighbours with approx = 'dense' (docs/study_file.md)."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = ["fit", data, "--value", "arsenic_mg_kg", "--covariance", "exponential", "--approx", "dense",
+            "--neighbours", "5", "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", r"--neighbours: applies to the nearest-neighbour likelihood",
+                   inputs=[data], absent=[tmp_path / "o"])

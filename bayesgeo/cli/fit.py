@@ -56,6 +56,11 @@ def run(args) -> int:
     from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
     from bayesgeo.priors import Priors
 
+    if args.approx == "dense" and args.neighbours is not None:
+        from bayesgeo.validate import InputError
+
+        raise InputError("--neighbours: applies to the nearest-neighbour likelihood (--approx nn, or auto above "
+                         "2,000 points per site); drop it with --approx dense")
     refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
     ds = read_data(args)
     from bayesgeo.data import sites_of
