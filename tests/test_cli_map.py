@@ -221,3 +221,16 @@ def test_non_finite_prediction_stops_the_map(tmp_path, capsys, monkeypatch):
     assert_refused(capsys, ["map", folder, "--cell", "40", "--draws", "20"], "map",
                    rf"{folder}: the prediction sd is NaN or infinite at 1 target\(s\)", inputs=[folder],
                    absent=[folder / "predictions.nc", folder / "maps"])
+
+
+@pytest.mark.parametrize("value", ["nonsense", "tcp://", "threads please"])
+def test_bad_scheduler_refused_before_work(tmp_path, capsys, value):
+    """A --scheduler that is neither threads, synchronous nor an address (the
+    form dask.distributed takes: scheme://...) is refused before the fit is read, with one line (it raised a
+    ValueError from dask.distributed inside the prediction before)."""
+    from _cli_helpers import assert_refused
+
+    folder, _ = _fit_folder(tmp_path / "fit", draws=20)
+    assert_refused(capsys, ["map", folder, "--scheduler", value], "map",
+                   r"--scheduler: expected threads, synchronous or an address such as tcp://host:8786",
+                   inputs=[folder], absent=[folder / "predictions.nc"])

@@ -83,8 +83,11 @@ def run(args) -> int:
     from bayesgeo import targets as tg
     from bayesgeo.validate import check_positive
 
+    from bayesgeo.predict import check_scheduler
+
     folder = Path(args.dir)
     draws = _draws(args.draws)
+    check_scheduler(args.scheduler)
     chunk = check_positive_int(args.chunk_cells, "--chunk-cells")
     if args.cell is not None:
         check_positive(args.cell, "--cell")
