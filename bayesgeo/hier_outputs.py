@@ -515,9 +515,9 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
 
 def load_site_fit(directory) -> xr.DataTree:
     """Read a several-site fit written by :func:`save_site_fit` (folder or its ``posterior.nc``)."""
+    from bayesgeo.fitfile import read_fit
     from bayesgeo.hierarchical import site_spec
-    from bayesgeo.posterior import read_fit_file
 
-    tree = read_fit_file(directory, written_by="bayesgeo fit --site")
+    tree = read_fit(directory, written_by="bayesgeo fit --site")
     site_spec(tree)
     return tree

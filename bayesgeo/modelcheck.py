@@ -72,9 +72,9 @@ def open_fit(path: str | Path, *, sites: bool = False) -> xr.DataTree:
         Missing folder or file, or a file that is not a readable single-site fit (or several-site
         fit with ``sites=True``).
     """
-    from bayesgeo.posterior import read_fit_file
+    from bayesgeo.fitfile import read_fit
 
-    tree = read_fit_file(path)
+    tree = read_fit(path)  # settings, groups, sizes and finite draws, checked once (one line naming the file)
     if is_site_fit(tree) and not sites:
         raise InputError(f"{path}: a several-site fit; this check takes one site at a time")
     any_fit_arrays(tree)  # refuse early what the checks cannot use

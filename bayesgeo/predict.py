@@ -222,6 +222,16 @@ def _chunk(basis, xy, design, thresholds, include_nugget, probs):
         return mixture_summary(mean, var, thresholds=thresholds, transform=basis.transform, probs=probs)
 
 
+def check_scheduler(scheduler) -> str:
+    """``"threads"``, ``"synchronous"`` or a dask.distributed address ``scheme://...``; InputError otherwise."""
+    import re
+
+    if scheduler in SCHEDULERS or (isinstance(scheduler, str) and re.fullmatch(r"[a-z][a-z0-9+.-]*://\S+", scheduler)):
+        return scheduler
+    raise InputError(f"--scheduler: expected {', '.join(SCHEDULERS)} or an address such as tcp://host:8786, "
+                     f"got {scheduler!r}")
+
+
 def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, scheduler, progress):
     import uuid
 
@@ -245,10 +255,11 @@ def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, s
             return list(dask.compute(*tasks, scheduler=scheduler))
     from distributed import Client, as_completed
 
+    check_scheduler(scheduler)
     try:
         client = Client(scheduler, timeout="20s")
-    except OSError as err:
-        raise InputError(f"--scheduler: cannot connect to {scheduler!r} ({err})") from None
+    except (OSError, ValueError, TypeError) as err:
+        raise InputError(f"--scheduler: cannot connect to {scheduler!r} ({' '.join(str(err).split())})") from None
     with client:
         futures = client.compute(tasks)
         for _ in as_completed(futures):

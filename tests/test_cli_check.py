@@ -220,3 +220,14 @@ def test_independent_fit_has_no_population_block(tmp_path, capsys):
     code, res = run_json(capsys, ["check", str(folder), "--json", "--no-figures"])
     assert code == 0 and res["population"] is None
     assert set(res["sites"]) == {"s0", "s1", "s2"}
+
+
+def test_max_lag_bounded(tmp_path, capsys):
+    """--max-lag of the autocorrelation figure is an integer from 1 to 1,000,000: a huge value is
+    refused where it enters with one line (exit 2), the folder untouched."""
+    from _cli_helpers import assert_refused
+
+    (tmp_path / "fit").mkdir()
+    assert_refused(capsys, ["check", tmp_path / "fit", "--max-lag", "99999999999999999999"], "check",
+                   r"argument --max-lag: expected an integer from 1 to 1000000", inputs=[tmp_path / "fit"],
+                   absent=[tmp_path / "fit" / "diagnostics"])

@@ -3,7 +3,9 @@
 Each command lives in its own module ``bayesgeo.cli.<command>`` exposing ``HELP``,
 ``add_arguments(parser)`` and ``run(args) -> int``; modules are imported only when their command
 runs, so ``bayesgeo explore`` does not pay for importing PyMC. Bad input prints one line on
-stderr and exits with status 2; an unconverged posterior exits with status 3.
+stderr and exits with status 2; an unconverged posterior exits with status 3; an unexpected failure
+prints one line (``BAYESGEO_DEBUG=1`` shows the traceback) and exits with status 1; a closed stdout
+ends quietly with status 141.
 """
 
 from __future__ import annotations
@@ -14,10 +16,14 @@ import importlib
 import sys
 import warnings
 
-__all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED"]
+__all__ = ["main", "COMMANDS", "EXIT_INPUT", "EXIT_NOT_CONVERGED", "EXIT_FAILED", "EXIT_PIPE"]
 
 EXIT_INPUT = 2
 EXIT_NOT_CONVERGED = 3
+#: Status of an unexpected failure (a bug, or the machine: disk full, out of memory); one stderr line.
+EXIT_FAILED = 1
+#: Status when stdout was closed by its reader (128 + SIGPIPE, as a shell reports a program ended by SIGPIPE).
+EXIT_PIPE = 141
 
 #: command name -> module under bayesgeo.cli
 COMMANDS: dict[str, str] = {
@@ -38,7 +44,8 @@ class _Parser(argparse.ArgumentParser):
     """argparse whose usage errors are one line and exit 2 (argparse's own status too)."""
 
     def error(self, message: str):  # pragma: no cover - exercised through main()
-        self.exit(EXIT_INPUT, f"bayesgeo: error: {message} (see '{self.prog} --help')\n")
+        message = " ".join(str(message).split())
+        self.exit(EXIT_INPUT, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
 
 
 def _build_parser() -> argparse.ArgumentParser:
@@ -80,12 +87,39 @@ def _one_line_warnings(command: str):
             _common.WARNINGS[:] = saved
 
 
+def _quiet_stdout() -> None:
+    """Point stdout at the null device so the interpreter's final flush cannot fail again."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):  # pragma: no cover - stdout without a file descriptor
+        pass
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the ``bayesgeo`` console script; returns the exit status."""
+    """Entry point of the ``bayesgeo`` console script; returns the exit status (also for refused options).
+
+    A reader that closes stdout early (``bayesgeo ... | head``) ends the command quietly with
+    status :data:`EXIT_PIPE` instead of a BrokenPipeError traceback (Python documentation,
+    "Note on SIGPIPE" in the ``signal`` module).
+    """
+    try:
+        return _main(argv)
+    except BrokenPipeError:
+        _quiet_stdout()
+        return EXIT_PIPE
+
+
+def _main(argv: list[str] | None) -> int:
     from bayesgeo.validate import InputError
 
     parser = _build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as stop:  # --help, --version, or a refused option (one line already printed)
+        return stop.code if isinstance(stop.code, int) else EXIT_INPUT
     if args.command is None:
         parser.print_help()
         return EXIT_INPUT
@@ -94,13 +128,29 @@ def main(argv: list[str] | None = None) -> int:
     outputs.set_command(sys.argv[1:] if argv is None else argv)
     try:
         with outputs.scope(), _one_line_warnings(args.command):
-            return int(args._module.run(args) or 0)
+            status = int(args._module.run(args) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, inside the handler, not at interpreter exit
+        return status
     except InputError as err:
-        print(f"bayesgeo {args.command}: error: {err}", file=sys.stderr)
+        print(f"bayesgeo {args.command}: error: {' '.join(str(err).split())}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print(f"bayesgeo {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        raise
+    except Exception as err:  # noqa: BLE001 - the last line of defence: a user never sees a traceback
+        import os
+
+        if os.environ.get("BAYESGEO_DEBUG"):
+            raise
+        text = " ".join(str(err).split()) or "(no message)"
+        if isinstance(err, (OSError, MemoryError)):  # the machine, not the input: disk full, permissions, memory
+            print(f"bayesgeo {args.command}: error: {type(err).__name__}: {text}", file=sys.stderr)
+        else:
+            print(f"bayesgeo {args.command}: internal error: {type(err).__name__}: {text} (a bug in bayesgeo: please "
+                  "report it with the command line; BAYESGEO_DEBUG=1 shows the traceback)", file=sys.stderr)
+        return EXIT_FAILED
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -86,11 +86,12 @@ def load_fit_folder(folder, site: str | None = None):
         No readable fit; a several-site fit without ``--site``; ``--site`` on a single-site fit;
         an unknown site (the message lists the known ones).
     """
-    from bayesgeo.posterior import fit_spec, read_fit_file
+    from bayesgeo.fitfile import read_fit
+    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings
     from bayesgeo.validate import InputError
 
-    tree = read_fit_file(folder)
-    if json.loads(tree.attrs.get("settings", "{}")).get("format") == "bayesgeo several-site fit":
+    tree = read_fit(folder)  # settings, groups, sizes and finite draws checked once, naming the file
+    if fit_settings(tree).get("format") == SEVERAL_SITE_FORMAT:
         from bayesgeo.hierarchical import site_fit, site_spec
 
         if site is None:
@@ -99,5 +100,4 @@ def load_fit_folder(folder, site: str | None = None):
         return site_fit(tree, site)
     if site is not None:
         raise InputError(f"--site: {folder} holds a single-site fit; drop --site")
-    fit_spec(tree)
     return tree

@@ -20,10 +20,12 @@ POSTERIOR_FILE = "posterior.nc"
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import int_option
+
     p.add_argument("dir", metavar="DIR", help=f"fit folder holding {POSTERIOR_FILE}")
     p.add_argument("--var", metavar="NAME", action="append", default=[],
                    help="posterior variable to check (repeatable; default all)")
-    p.add_argument("--max-lag", type=int, default=None, metavar="K",
+    p.add_argument("--max-lag", type=int_option("autocorr_lag"), default=None, metavar="K",
                    help="largest lag of the autocorrelation figure (default: 3 x the largest IAT, at least 20)")
     p.add_argument("--no-figures", action="store_true", help="skip the figures (diagnostics.json only)")
     p.add_argument("--overwrite", action="store_true",
@@ -43,12 +45,10 @@ def read_posterior(folder):
     path = folder / POSTERIOR_FILE
     if not path.is_file():
         raise InputError(f"{path}: not found; run a fit into {folder} first")
-    from bayesgeo.io import read_datatree
+    from bayesgeo.fitfile import read_fit
 
-    tree = read_datatree(path, what="NetCDF posterior")
-    if "posterior" not in tree.children:
-        raise InputError(f"{path}: no 'posterior' group; expected the output of a bayesgeo fit")
-    return tree
+    # a bare posterior from another program is fine; a bayesgeo fit (settings present) is checked in full
+    return read_fit(path, require_fit=False)
 
 
 def run(args) -> int:

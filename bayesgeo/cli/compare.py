@@ -62,6 +62,21 @@ def _verdicts(name, tree) -> list[str]:
     return []
 
 
+def _refuse_non_finite(res, folders: dict) -> None:
+    """A fit whose elpd, its se or p_loo is NaN or infinite is never ranked: exit 2 naming the fit folder."""
+    import math
+
+    from bayesgeo.validate import InputError
+
+    for k, name in enumerate(res["fit"].values):
+        for var in ("elpd_loo", "se", "p_loo"):
+            value = float(res[var].values[k])
+            if not math.isfinite(value):
+                raise InputError(f"{folders.get(str(name), name)}: {var} = {value} (leave-one-out densities not "
+                                 "finite for some points); the fits cannot be ranked: check this fit ('bayesgeo "
+                                 "check') and its data")
+
+
 def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None,
                  progress=None) -> tuple[dict, object, dict]:
     """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs).
@@ -85,6 +100,7 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
         if bar is not None:
             bar.update(1)
     res = compare_fits(trees, site=site, progress=progress)
+    _refuse_non_finite(res, dict(zip(names, dirs)))
     if store:
         from bayesgeo.modelcheck import store_log_likelihood
 

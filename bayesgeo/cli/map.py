@@ -20,29 +20,32 @@ MAX_SIM_TARGETS = 2000
 
 
 def _draws(text: str):
-    if str(text).lower() == "all":
+    from bayesgeo.validate import INT_LIMITS, InputError
+
+    if str(text).strip().lower() == "all":
         return None
+    lo, hi = INT_LIMITS["prediction_draws"]
     try:
-        n = int(text)
+        n = int(str(text).strip(), 10)
     except ValueError:
         n = 0
-    if n < 1:
-        from bayesgeo.validate import InputError
-
-        raise InputError(f"--draws: expected a positive integer or 'all', got {text!r}")
+    if not lo <= n <= hi:
+        raise InputError(f"--draws: expected an integer from {lo} to {hi} or 'all', got {text!r}")
     return n
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import float_option, int_option
+
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
-    p.add_argument("--cell", type=float, metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
+    p.add_argument("--cell", type=float_option("positive"), metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
                    "along the longer side of the data's bounding box)")
-    p.add_argument("--margin", type=float, default=0.0, metavar="M", help="widen the bounding box by M on every side")
+    p.add_argument("--margin", type=float_option("nonnegative"), default=0.0, metavar="M", help="widen the bounding box by M on every side")
     p.add_argument("--site", metavar="NAME", default=None,
                    help="with a several-site fit: map this site (outputs predictions_<NAME>.nc and maps_<NAME>/)")
     p.add_argument("--points", metavar="FILE", help="CSV of target points (columns x,y; plus any trend covariates) "
                    "instead of a grid")
-    p.add_argument("--threshold", type=float, action="append", default=[], metavar="T",
+    p.add_argument("--threshold", type=float_option("any"), action="append", default=[], metavar="T",
                    help="level for exceedance probabilities, data units (repeatable)")
     p.add_argument("--area", metavar="FILE|xmin,ymin,xmax,ymax",
                    help="area to average over: a CSV of polygon vertices (x,y) or a rectangle")
@@ -53,11 +56,11 @@ def add_arguments(p) -> None:
     p.add_argument("--hull-mask", action="store_true", help="leave out targets outside the convex hull of the samples")
     p.add_argument("--scheduler", default="threads", metavar="ADDRESS",
                    help="'threads' (default, local thread pool), 'synchronous', or a dask.distributed scheduler address")
-    p.add_argument("--chunk-cells", type=int, default=4096, metavar="K", help="cells per parallel task (default 4096)")
-    p.add_argument("--simulate", type=int, default=0, metavar="N",
+    p.add_argument("--chunk-cells", type=int_option("chunk_cells"), default=4096, metavar="K", help="cells per parallel task (default 4096)")
+    p.add_argument("--simulate", type=int_option("simulate"), default=0, metavar="N",
                    help=f"also store N joint conditional simulations per draw (at most {MAX_SIM_TARGETS} targets; "
                    "use --points or a coarse --cell)")
-    p.add_argument("--seed", type=int, default=0, metavar="S",
+    p.add_argument("--seed", type=int_option("seed"), default=0, metavar="S",
                    help="seed of the simulations (area averages under the log transform, --simulate)")
     p.add_argument("--overwrite", action="store_true", help="replace existing predictions.nc and maps/")
     p.add_argument("--allow-unconverged", action="store_true",
@@ -80,8 +83,11 @@ def run(args) -> int:
     from bayesgeo import targets as tg
     from bayesgeo.validate import check_positive
 
+    from bayesgeo.predict import check_scheduler
+
     folder = Path(args.dir)
     draws = _draws(args.draws)
+    check_scheduler(args.scheduler)
     chunk = check_positive_int(args.chunk_cells, "--chunk-cells")
     if args.cell is not None:
         check_positive(args.cell, "--cell")
@@ -139,6 +145,7 @@ def run(args) -> int:
                            design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
                            progress=bar)
     bar.close()
+    _refuse_non_finite(pred, targets["inside"], folder)
 
     cautions = [CAUTION]
     if spec.transform == "log":
@@ -207,6 +214,22 @@ def run(args) -> int:
     else:
         _print_human(result)
     return 0
+
+
+def _refuse_non_finite(pred, inside, folder) -> None:
+    """A NaN or infinite prediction at a predicted cell stops the map (exit 2) instead of an all-NaN band."""
+    import numpy as np
+
+    from bayesgeo.validate import InputError
+
+    for name in ("mean", "sd", "q05", "q50", "q95", "p_exceed"):
+        if name not in pred:
+            continue
+        bad = int((~np.isfinite(pred[name]) & inside).sum())
+        if bad:
+            raise InputError(f"{folder}: the prediction {name} is NaN or infinite at {bad} target(s) although the "
+                             "posterior draws are finite (a numerically singular kriging system?); no map written: "
+                             "check the fit ('bayesgeo check') and the targets")
 
 
 def _print_human(r: dict) -> None:

@@ -20,15 +20,17 @@ TABLE_COLUMNS = ("bin", "lag", "bin_lower", "bin_upper", "pairs", "observed", "r
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import float_option, int_option
+
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
     p.add_argument("--site", metavar="NAME", default=None,
                    help="with a several-site fit: check this site (outputs variogram_check_<NAME>.png and .csv)")
-    p.add_argument("--replicates", type=int, default=200, metavar="N",
+    p.add_argument("--replicates", type=int_option("replicates"), default=200, metavar="N",
                    help="replicate data sets, one posterior draw each (default 200)")
-    p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
-    p.add_argument("--max-lag", type=float, default=None, metavar="D",
+    p.add_argument("--bins", type=int_option("bins"), default=15, metavar="N", help="number of lag bins (default 15)")
+    p.add_argument("--max-lag", type=float_option("positive"), default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
-    p.add_argument("--seed", type=int, default=1, metavar="S", help="seed of the replicates (default 1)")
+    p.add_argument("--seed", type=int_option("seed"), default=1, metavar="S", help="seed of the replicates (default 1)")
     p.add_argument("--overwrite", action="store_true", help=f"replace existing {FIGURE} and {TABLE}")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
 
@@ -45,6 +47,20 @@ def output_names(site: str | None) -> tuple[str, str]:
 
 def _list(da) -> list:
     return [float(v) for v in da.values]
+
+
+def _refuse_non_finite(vc, folder) -> None:
+    """NaN or infinite replicate or model semivariances in a bin with pairs stop the check (exit 2)."""
+    import numpy as np
+
+    from bayesgeo.validate import InputError
+
+    has_pairs = vc["pairs"].values > 0
+    for name in ("replicate_q05", "replicate_q50", "replicate_q95", "model_q05", "model_q50", "model_q95"):
+        bad = int(np.count_nonzero(~np.isfinite(vc[name].values) & has_pairs))
+        if bad:
+            raise InputError(f"{folder}: {name} is NaN or infinite in {bad} lag bin(s) with pairs although the "
+                             "posterior draws are finite; no check written: check the fit ('bayesgeo check')")
 
 
 def run(args) -> int:
@@ -71,6 +87,7 @@ def run(args) -> int:
         vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed,
                              progress=functools.partial(progress, enabled=not args.json))
         bar.update(1)
+        _refuse_non_finite(vc, folder)
         cautions = list(vc.attrs["cautions"])
         try:
             verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
