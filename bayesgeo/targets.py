@@ -204,14 +204,16 @@ def parse_rectangle(text: str) -> np.ndarray:
         x0, y0, x1, y1 = (float(p) for p in parts)
     except ValueError:
         raise InputError(f"--area: expected a CSV file or xmin,ymin,xmax,ymax, got {text!r}") from None
-    if not (x1 > x0 and y1 > y0) or not all(map(math.isfinite, (x0, y0, x1, y1))):
+    if not all(map(math.isfinite, (x0, y0, x1, y1))):
+        raise InputError(f"--area: xmin,ymin,xmax,ymax must be four finite numbers, got {text!r}")
+    if not (x1 > x0 and y1 > y0):
         raise InputError(f"--area: need xmin < xmax and ymin < ymax, got {text!r}")
     return np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]])
 
 
 def area_from_option(text: str) -> tuple[np.ndarray, str]:
     """Vertices and a label from an ``--area`` value: a vertex CSV file or four numbers."""
-    if Path(text).is_file() or not any(ch.isdigit() for ch in str(text).split(",")[0]):
+    if Path(text).is_file() or str(text).count(",") != 3:
         return read_area(text), Path(text).name
     return parse_rectangle(text), f"rectangle {text}"
 

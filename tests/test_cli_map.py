@@ -234,3 +234,24 @@ def test_bad_scheduler_refused_before_work(tmp_path, capsys, value):
     assert_refused(capsys, ["map", folder, "--scheduler", value], "map",
                    r"--scheduler: expected threads, synchronous or an address such as tcp://host:8786",
                    inputs=[folder], absent=[folder / "predictions.nc"])
+
+
+@pytest.mark.parametrize("extra, pattern", [
+    (["--area", "40000,40000,40100,40100"], r"--area: the area lies outside the data"),
+    (["--area", "0,0,inf,5"], r"--area: xmin,ymin,xmax,ymax must be four finite numbers"),
+    (["--simulate", "5", "--cell", "1"], r"--simulate: \d+ targets; joint simulation is for at most"),
+])
+def test_bad_area_or_simulation_refused_before_predicting(tmp_path, capsys, monkeypatch, extra, pattern):
+    """An area far from the data, a non-finite rectangle and a too-large joint simulation are refused
+    before the grid is predicted (the prediction is replaced by a function that fails if called),
+    with one line and nothing written (behaviour check)."""
+    import bayesgeo.predict as pr
+    from _cli_helpers import assert_refused
+
+    def never(*a, **kw):
+        raise AssertionError("predicted before refusing")
+
+    monkeypatch.setattr(pr, "predict_targets", never)
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert_refused(capsys, ["map", folder, "--draws", "20", *extra], "map", pattern, inputs=[folder],
+                   absent=[folder / "predictions.nc", folder / "maps"])

@@ -98,6 +98,9 @@ def test_area_option_rectangle_or_file(tmp_path):
     for bad in ("5,5,1,1", "1,2,3", "a,b,c,d"):
         with pytest.raises(InputError, match="--area"):
             tg.area_from_option(bad)
+    for bad in ("0,0,inf,5", "nan,0,1,1", "-inf,0,1,1"):
+        with pytest.raises(InputError, match="four finite numbers"):
+            tg.area_from_option(bad)
     f.write_text("x,y\n0,0\n1,1\n2,2\n")
     with pytest.raises(InputError, match="positive area"):
         tg.read_area(f)

@@ -140,6 +140,16 @@ def run(args) -> int:
         targets = tg.grid_targets(xy, cell=args.cell, margin=args.margin, hull=args.hull_mask)
     units = spec.value_units
     n_cells = int(np.count_nonzero(targets["inside"].values))
+    area_pts = None  # refuse a bad area or simulation before the long prediction, not after it
+    if area_vertices is not None:
+        if spec.covariates:
+            raise InputError(f"--area: the trend uses covariates ({', '.join(spec.covariates)}) that are unknown "
+                             "inside the area; area averages need a trend in the coordinates only")
+        area_pts = tg.discretise_area(area_vertices[0], points=AREA_POINTS)
+        tg.check_area_near_data(xy, area_pts, basis.metric)
+    if args.simulate and n_cells > MAX_SIM_TARGETS:
+        raise InputError(f"--simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
+                         "(use --points or a coarser --cell)")
     bar = progress(total=max(1, -(-n_cells // chunk)), desc="map", enabled=not args.json)
     pred = predict_targets(basis, targets, thresholds=args.threshold, include_nugget=args.nugget == "include",
                            design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
@@ -157,17 +167,10 @@ def run(args) -> int:
     area = None
     if area_vertices is not None:
         vertices, label = area_vertices
-        pts = tg.discretise_area(vertices, points=AREA_POINTS)
-        if spec.covariates:
-            raise InputError(f"--area: the trend uses covariates ({', '.join(spec.covariates)}) that are unknown "
-                             "inside the area; area averages need a trend in the coordinates only")
-        area = area_average(basis, pts, design_at(pts, spec.design_attrs), thresholds=args.threshold,
+        area = area_average(basis, area_pts, design_at(area_pts, spec.design_attrs), thresholds=args.threshold,
                             n_sim=200, seed=args.seed)
         area.update(area=label, area_size=tg.polygon_area(vertices), units=units)
     if args.simulate:
-        if n_cells > MAX_SIM_TARGETS:
-            raise InputError(f"--simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
-                             "(use --points or a coarser --cell)")
         from bayesgeo.predict import simulate_targets
 
         pred["simulation"] = simulate_targets(basis, targets, n_sim=args.simulate, seed=args.seed,
