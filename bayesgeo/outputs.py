@@ -211,6 +211,11 @@ def _check_target(path: Path, inputs: Iterable[str | Path], option: str) -> Path
     if _is_within(cwd, real):
         raise InputError(f"{_place(option, path)}: is the current folder or contains it; choose a new folder "
                          "for the output")
+    for anc in real.parents:  # the nearest existing ancestor must be a folder
+        if anc.exists():
+            if not anc.is_dir():
+                raise InputError(f"{_place(option, path)}: {anc} is a file, not a folder; choose another output")
+            break
     for inp in inputs:
         if inp is None:
             continue

@@ -7,6 +7,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 from bayesgeo.cli import EXIT_INPUT, EXIT_PIPE, main
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -78,3 +80,21 @@ def test_unexpected_failure_is_one_line(capsys, monkeypatch):
     monkeypatch.setenv("BAYESGEO_DEBUG", "1")
     with pytest.raises(OSError):
         main(["demo-data", "--out", "x.csv"])
+
+
+@pytest.mark.parametrize("argv, place", [
+    ([], "name a command"),
+    (["explore", "data.csv", "--value", ""], "--value: an empty value"),
+    (["explore", " "], "DATA: an empty value"),
+    (["explore", "data.csv", "--out", ""], "--out: an empty value"),
+])
+def test_no_command_and_empty_values_refused(tmp_path, capsys, monkeypatch, argv, place):
+    """No command, or an empty string for an option (which would otherwise mean 'detect' or 'the current
+    folder'), gives exit 2 and one stderr line naming the option (the CLI contract)."""
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "data.csv").write_text("x,y,v\n1,2,3\n")
+    assert main(argv) == 2
+    captured = capsys.readouterr()
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and place in lines[0] and captured.out == ""
+    assert (tmp_path / "data.csv").read_text() == "x,y,v\n1,2,3\n"

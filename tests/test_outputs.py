@@ -316,3 +316,10 @@ def test_scope_releases_only_its_own_claims(tmp_path):
         claim(tmp_path / "stage")
         assert (tmp_path / ".stage.lock").exists()
     assert not (tmp_path / ".stage.lock").exists() and (tmp_path / ".run.lock").exists()
+
+
+def test_output_below_a_file_is_refused(tmp_path):
+    """An output path below an existing file (data.csv/sub) is refused with one line, not an OSError (behaviour check)."""
+    (tmp_path / "data.csv").write_text("x\n")
+    with pytest.raises(InputError, match=r"data\.csv is a file, not a folder"):
+        claim(tmp_path / "data.csv" / "sub")

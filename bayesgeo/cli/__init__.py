@@ -112,6 +112,18 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_PIPE
 
 
+def _empty_option(parser, args) -> str | None:
+    """The option (or positional) given an empty or blank string, if any: an empty --value or --out
+    would otherwise mean 'detect' or 'the current folder'."""
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices[args.command]
+    for action in sub._actions:
+        v = getattr(args, action.dest, None)
+        values = v if isinstance(v, list) else [v]
+        if any(isinstance(x, str) and not x.strip() for x in values):
+            return action.option_strings[-1] if action.option_strings else action.metavar or action.dest.upper()
+    return None
+
+
 def _main(argv: list[str] | None) -> int:
     from bayesgeo.validate import InputError
 
@@ -121,7 +133,12 @@ def _main(argv: list[str] | None) -> int:
     except SystemExit as stop:  # --help, --version, or a refused option (one line already printed)
         return stop.code if isinstance(stop.code, int) else EXIT_INPUT
     if args.command is None:
-        parser.print_help()
+        print(f"bayesgeo: error: name a command ({', '.join(COMMANDS)}; see 'bayesgeo --help')", file=sys.stderr)
+        return EXIT_INPUT
+    empty = _empty_option(parser, args)
+    if empty:
+        print(f"bayesgeo {args.command}: error: {empty}: an empty value; give a value or leave the option out",
+              file=sys.stderr)
         return EXIT_INPUT
     from bayesgeo import outputs
 

@@ -70,7 +70,10 @@ def run(args) -> int:
     if not keep:
         check_addable(folder, DIAGNOSTICS_DIR, overwrite=args.overwrite)
     bar = progress(total=2 if keep or args.no_figures else 3, desc="check", enabled=not args.json)
-    conv = check_convergence(tree, var_names=args.var or None)
+    try:
+        conv = check_convergence(tree, var_names=args.var or None)
+    except InputError as err:  # the posterior's shape: name the file it came from
+        raise InputError(f"{folder / POSTERIOR_FILE}: {err}") from None
     bar.update()
     result = conv.to_json()
     from bayesgeo.posterior import approximation_of
