@@ -116,6 +116,7 @@ class KrigingBasis:
     alpha: np.ndarray
     transform: str | None = None
     neighbours: int = 0
+    site: str = ""  # the site label of a fit extracted from a several-site fit ("" otherwise)
 
     @property
     def n_draws(self) -> int:

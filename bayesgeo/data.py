@@ -8,9 +8,7 @@ coordinate system and the source file are kept in attributes. The input file is 
 
 from __future__ import annotations
 
-import csv
-import hashlib
-import math
+import warnings
 from collections import defaultdict
 from collections.abc import Sequence
 from pathlib import Path
@@ -18,6 +16,9 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from bayesgeo.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, numeric_column, read_table
+from bayesgeo.geometry import continuous_longitudes, cross_distance
+from bayesgeo.outputs import sha256_file
 from bayesgeo.validate import InputError, check_choice, format_rows
 
 __all__ = ["MIN_POINTS", "TRANSFORMS", "read_points", "points_dataset", "sites_of", "apply_transform"]
@@ -35,14 +36,6 @@ COORDS = ("auto", "xy", "lonlat")
 DUPLICATES = ("error", "mean")
 SMALL_SITES = ("error", "keep")
 _POOLED_MIN = 3
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def _detect(header: Sequence[str], names: Sequence[str], what: str, option: str, src: str) -> str:
@@ -94,8 +87,11 @@ def read_points(
         Extra numeric columns kept as covariates for the trend.
     coords : {"auto", "xy", "lonlat"}
         ``xy``: planar coordinates, Euclidean distances in coordinate units. ``lonlat``: degrees,
-        great-circle distances in km. ``auto`` (default) is ``xy`` but refuses coordinates that
-        look like longitude/latitude, so degrees are never silently treated as planar units.
+        great-circle distances in km; longitudes written -180..180 or 0..360, re-expressed as one
+        continuous range when the data cross 180 degrees (``attrs["longitude_convention"]``).
+        ``auto`` (default) is ``xy`` but refuses coordinates that all lie in the degree box
+        (|lat| <= 90, lon in [-180, 180] or [0, 360]), so degrees are never silently treated as
+        planar units.
     duplicates : {"error", "mean"}
         Points sharing a location: an error listing the rows, or averaged into one point.
     units : str, optional
@@ -119,7 +115,13 @@ def read_points(
     Raises
     ------
     InputError
-        One-line message naming the file, row(s) and column of bad input.
+        One-line message naming the file, row(s) and column of bad input (the CSV rules are in
+        :mod:`bayesgeo.csvtable` and docs/data_files.md).
+
+    Warns
+    -----
+    InputWarning
+        Site labels stripped of surrounding spaces (naming the rows).
     """
     check_choice(coords, COORDS, "--coords")
     check_choice(duplicates, DUPLICATES, "--duplicates")
@@ -130,17 +132,8 @@ def read_points(
         raise InputError(f"{src}: file not found")
     if path.suffix.lower() in (".nc", ".nc4", ".netcdf"):
         return _read_netcdf(path)
-    try:
-        with path.open(newline="", encoding="utf-8-sig") as fh:
-            rows = list(csv.reader(fh))
-    except UnicodeDecodeError as err:
-        raise InputError(f"{src}: not a UTF-8 text CSV file ({err.reason} at byte {err.start})") from None
-    except csv.Error as err:
-        raise InputError(f"{src}: not a readable CSV file ({err})") from None
-    if not rows or not any(c.strip() for c in rows[0]):
-        raise InputError(f"{src}: empty file (a header row and at least {MIN_POINTS} data rows are needed)")
-    header = [h.strip() for h in rows[0]]
-    body = [(i + 2, r) for i, r in enumerate(rows[1:]) if any(c.strip() for c in r)]
+    table = read_table(path)
+    header, body = table.header, table.rows
     if not body:
         raise InputError(f"{src}: no data rows below the header")
 
@@ -148,17 +141,25 @@ def read_points(
     ycol = _require(header, y, "--y", src) if y else _detect(header, _Y_NAMES, "y (northing/latitude)", "--y", src)
     sitecol = _require(header, site, "--site", src) if site else None
     covs = [_require(header, c, "--covariate", src) for c in covariates]
-    if value:
-        vcol = _require(header, value, "--value", src)
-    else:
-        vcol = _guess_value(header, body, {xcol, ycol, sitecol, *covs}, src)
+    vcol = _require(header, value, "--value", src) if value else guess_value(table, {xcol, ycol, sitecol, *covs})
 
-    numeric = {c: _numeric_column(header, body, c, src) for c in (xcol, ycol, vcol, *covs)}
+    numeric = {c: numeric_column(table, c) for c in dict.fromkeys((xcol, ycol, vcol, *covs))}
+    _check_spread(numeric, [r for r, _ in body], src)
     file_rows = np.array([r for r, _ in body])
+    lonlat = coords == "lonlat"
+    if lonlat and distance_units not in (None, "km"):
+        raise InputError(f"--distance-units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
+    if coords == "auto":  # on every row of the file: degrees or not is a property of the file, not of a site
+        _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
+    frame = ""
+    if lonlat:
+        _check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
+        numeric[xcol] = continuous_longitudes(numeric[xcol])
+        frame = "0..360" if numeric[xcol].max() > 180.0 else "-180..180"
+
     sites = None
     if sitecol is not None:
-        j = header.index(sitecol)
-        sites = np.array([(r[j].strip() if j < len(r) else "") for _, r in body], dtype=object)
+        sites = np.array(_site_labels(table, sitecol), dtype=object)
         empty = file_rows[sites == ""]
         if empty.size:
             raise InputError(f"{src}: empty cells in column {sitecol!r} at rows {format_rows(empty)}")
@@ -173,17 +174,9 @@ def read_points(
     elif only_site is not None:
         raise InputError(f"{src}: --only-site needs --site COL naming the site column")
 
-    lonlat = coords == "lonlat"
-    if lonlat and distance_units not in (None, "km"):
-        raise InputError(f"--distance-units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
-    if coords == "auto":
-        _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
-    if lonlat:
-        _check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
-
     attrs = {
         "source": path.name,
-        "source_sha256": _sha256(path),
+        "source_sha256": sha256_file(path),
         "x_column": xcol,
         "y_column": ycol,
         "value_column": vcol,
@@ -195,6 +188,8 @@ def read_points(
         "crs": crs or ("EPSG:4326 (lon/lat)" if lonlat else ""),
         "duplicates": duplicates,
     }
+    if lonlat:
+        attrs["longitude_convention"] = frame
     ds = points_dataset(
         numeric[xcol], numeric[ycol], numeric[vcol],
         site=sites, covariates={c: numeric[c] for c in covs}, rows=file_rows, attrs=attrs,
@@ -262,63 +257,80 @@ def apply_transform(ds: xr.Dataset, transform: str | None) -> xr.Dataset:
     return out
 
 
-def _guess_value(header, body, taken, src) -> str:
-    free = [h for h in header if h not in taken]
-    numeric = []
-    for h in free:
-        j = header.index(h)
-        try:
-            [float(r[j]) for _, r in body[:20] if j < len(r) and r[j].strip()]
-            numeric.append(h)
-        except ValueError:
-            pass
-    if len(numeric) == 1:
-        return numeric[0]
-    raise InputError(
-        f"{src}: cannot tell which column holds the measured value; name it with --value "
-        f"(candidates: {', '.join(numeric) or 'none'})"
-    )
+def _site_labels(table, col: str) -> list[str]:
+    """Site labels stripped of surrounding spaces; a warning names the rows where that changed a label."""
+    j = table.header.index(col)
+    raw = [cells[j] for _, cells in table.rows]
+    changed = [(r, c) for (r, _), c in zip(table.rows, raw) if c != c.strip() and c.strip()]
+    if changed:
+        shown = ", ".join(dict.fromkeys(repr(c) for _, c in changed[:3]))
+        warnings.warn(
+            f"{table.src}: column {col!r} has labels with leading or trailing spaces ({shown}) at rows "
+            f"{format_rows([r for r, _ in changed])}; the spaces were removed, so labels differing only in them "
+            "are one site", InputWarning, stacklevel=3)
+    labels = [c.strip() for c in raw]
+    variants: dict[str, dict[str, list[int]]] = defaultdict(dict)
+    for (r, _), lb in zip(table.rows, labels):
+        variants[lb.casefold()].setdefault(lb, []).append(r)
+    for group in variants.values():
+        if len(group) > 1:
+            shown = " and ".join(f"{lb!r} (rows {format_rows(rs, limit=3)})" for lb, rs in list(group.items())[:3])
+            raise InputError(
+                f"{table.src}: column {col!r} has labels differing only in letter case: {shown}; one site typed two "
+                "ways, or two sites? Relabel so that they differ in more than case (per-site output files would "
+                "collide on Windows and macOS file systems)")
+    return labels
 
 
-def _numeric_column(header, body, col, src) -> np.ndarray:
-    j = header.index(col)
-    out = np.empty(len(body))
-    bad_rows: list[int] = []
-    for k, (row, cells) in enumerate(body):
-        cell = cells[j].strip() if j < len(cells) else ""
-        try:
-            v = float(cell) if cell else math.nan
-        except ValueError:
-            raise InputError(f"{src}: row {row}, column {col!r}: {cell!r} is not a number") from None
-        if not math.isfinite(v):
-            bad_rows.append(row)
-        out[k] = v
-    if bad_rows:
-        raise InputError(f"{src}: column {col!r} has empty, NaN or infinite cells at rows {format_rows(bad_rows)}")
-    return out
+def _check_spread(numeric: dict, rows: list[int], src: str) -> None:
+    """Refuse columns whose spread is so small that powers of differences (sill, its variance) underflow."""
+    for col, v in numeric.items():
+        spread = float(np.ptp(v)) if v.size else 0.0
+        if 0.0 < spread < 1.0 / MAX_MAGNITUDE:
+            raise InputError(
+                f"{src}: column {col!r} varies by only {spread:g} (rows {format_rows(rows)}); below "
+                f"{1.0 / MAX_MAGNITUDE:g} powers of the differences underflow in double precision; rescale the "
+                "column (other units)")
 
 
 def _refuse_lonlat_lookalike(xv, yv, xcol, ycol, src) -> None:
-    named = xcol.lower() in _LONLAT_NAMES or ycol.lower() in _LONLAT_NAMES
-    in_range = np.all(np.abs(xv) <= 180.0) and np.all(np.abs(yv) <= 90.0)
-    # A survey laid out on a planar grid spans metres or more; lon/lat of one survey spans < a few degrees.
-    small_span = np.ptp(xv) < 5.0 and np.ptp(yv) < 5.0
-    if in_range and (named or small_span):
-        raise InputError(
-            f"{src}: columns {xcol!r}, {ycol!r} look like longitude/latitude "
-            f"(x in [{xv.min():g}, {xv.max():g}], y in [{yv.min():g}, {yv.max():g}]); "
-            "pass --coords lonlat for great-circle distances in km, or --coords xy if they are planar"
-        )
+    """Under ``--coords auto``, refuse coordinates that could be degrees.
+
+    Values alone cannot tell a 20 x 10 degree region from a 20 x 10 m plot, and treating degrees
+    as planar units silently gives wrong distances (a degree of longitude shrinks with latitude).
+    So coordinates that all lie in the degree box (|lat| <= 90 and lon in [-180, 180] or
+    [0, 360]) need ``--coords lonlat`` or ``--coords xy``, whatever their span or column names.
+    """
+    in_lat = np.all(np.abs(yv) <= 90.0)
+    in_lon = np.all(np.abs(xv) <= 180.0) or np.all((xv >= 0.0) & (xv <= 360.0))
+    if not (in_lat and in_lon):
+        return
+    lon = continuous_longitudes(xv)
+    ymid = 0.5 * (yv.min() + yv.max())
+    xmid = 0.5 * (lon.min() + lon.max())
+    width = float(cross_distance([[lon.min(), ymid]], [[lon.max(), ymid]], "greatcircle")[0, 0])
+    height = float(cross_distance([[xmid, yv.min()]], [[xmid, yv.max()]], "greatcircle")[0, 0])
+    raise InputError(
+        f"{src}: columns {xcol!r}, {ycol!r} look like longitude/latitude (x in [{xv.min():g}, {xv.max():g}], "
+        f"y in [{yv.min():g}, {yv.max():g}]: as degrees about {width:,.0f} x {height:,.0f} km, as planar units "
+        f"a {np.ptp(xv):g} x {np.ptp(yv):g} site); pass --coords lonlat for great-circle distances in km, "
+        "or --coords xy if they are planar"
+    )
 
 
 def _check_lonlat_ranges(xv, yv, rows, xcol, ycol, src) -> None:
-    for vals, col, lim in ((xv, xcol, 180.0), (yv, ycol, 90.0)):
-        bad = rows[np.abs(vals) > lim]
-        if bad.size:
-            raise InputError(
-                f"{src}: column {col!r} is outside [-{lim:g}, {lim:g}] degrees at rows {format_rows(bad)} "
-                "(--coords lonlat expects longitude/latitude in degrees)"
-            )
+    bad = rows[(xv < -180.0) | (xv > 360.0)]
+    if bad.size:
+        raise InputError(
+            f"{src}: column {xcol!r} is outside [-180, 360] degrees at rows {format_rows(bad)} "
+            "(--coords lonlat expects longitude in degrees, written -180..180 or 0..360)"
+        )
+    bad = rows[np.abs(yv) > 90.0]
+    if bad.size:
+        raise InputError(
+            f"{src}: column {ycol!r} is outside [-90, 90] degrees at rows {format_rows(bad)} "
+            "(--coords lonlat expects latitude in degrees)"
+        )
 
 
 def _finish(ds: xr.Dataset, src: str, duplicates: str, small_sites: str = "error") -> xr.Dataset:
@@ -393,11 +405,15 @@ def _read_netcdf(path: Path) -> xr.Dataset:
         bad = ds["row"].values[~np.isfinite(ds[name].values)]
         if bad.size:
             raise InputError(f"{src}: variable {name!r} has NaN or infinite values at rows {format_rows(bad)}")
+        bad = ds["row"].values[np.abs(ds[name].values) > MAX_MAGNITUDE]
+        if bad.size:
+            raise InputError(f"{src}: variable {name!r} exceeds {MAX_MAGNITUDE:g} in magnitude at rows "
+                             f"{format_rows(bad)} (powers and sums must stay finite); rescale it (other units)")
     ds.attrs.setdefault("coords", "xy")
     ds.attrs.setdefault("distance_units", "coordinate units")
     ds.attrs.setdefault("value_column", "value")
     ds.attrs.setdefault("x_column", "x")
     ds.attrs.setdefault("y_column", "y")
     ds.attrs["source"] = path.name
-    ds.attrs["source_sha256"] = _sha256(path)
+    ds.attrs["source_sha256"] = sha256_file(path)
     return _finish(ds, src, ds.attrs.get("duplicates", "error"))

@@ -21,7 +21,7 @@ import xarray as xr
 from bayesgeo.covariance import get_covariance
 from bayesgeo.data import points_dataset
 from bayesgeo.geometry import distance_matrix
-from bayesgeo.io import atomic_file
+from bayesgeo.outputs import new_files
 
 __all__ = ["DEMO_SEED", "DEMO_ACTION_LEVEL", "demo_data", "write_demo_data", "simulate_field"]
 
@@ -123,12 +123,15 @@ def demo_data(seed: int = DEMO_SEED) -> xr.Dataset:
 
 def write_demo_data(path: str | Path, *, seed: int = DEMO_SEED, overwrite: bool = False) -> dict:
     """Write the demo data as CSV (columns sample_id, parcel, easting, northing, arsenic_mg_kg)
-    and the true parameters beside it as ``<stem>.truth.json``. Returns the truth dictionary."""
+    and the true parameters beside it as ``<stem>.truth.json``. Returns the truth dictionary.
+
+    Both files are written or neither (:func:`bayesgeo.outputs.new_files`); the truth file records
+    the CSV's SHA-256, and ``overwrite`` replaces only files so recorded and unchanged."""
     path = Path(path)
     ds = demo_data(seed)
     truth = json.loads(ds.attrs["truth"])
     truth_path = path.with_name(path.stem + ".truth.json")
-    with atomic_file(path, overwrite=overwrite) as tmp, atomic_file(truth_path, overwrite=overwrite) as ttmp:
+    with new_files([path, truth_path], overwrite=overwrite, record=truth_path) as (tmp, ttmp):
         with tmp.open("w", newline="") as fh:
             w = csv.writer(fh)
             w.writerow(["sample_id", "parcel", "easting", "northing", "arsenic_mg_kg"])

@@ -60,7 +60,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.geometry import metric_of
-from bayesgeo.validate import InputError, check_choice, check_positive, check_positive_int
+from bayesgeo.validate import InputError, check_choice, check_int, check_positive, check_positive_int
 
 __all__ = [
     "ESTIMATORS",
@@ -120,8 +120,8 @@ def _check_common(bins, max_lag, permutations, seed):
     if max_lag is not None:
         max_lag = check_positive(max_lag, "--max-lag")
     permutations = check_positive_int(permutations, "--permutations", minimum=0)
-    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0):
-        raise InputError(f"--seed: expected a non-negative integer, got {seed!r}")
+    if seed is not None:
+        seed = check_int(seed, "--seed", limit="seed")
     return bins, max_lag, permutations, seed
 
 

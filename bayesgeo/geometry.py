@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["EARTH_RADIUS_KM", "METRICS", "distance_matrix", "cross_distance", "metric_of"]
+__all__ = ["EARTH_RADIUS_KM", "METRICS", "distance_matrix", "cross_distance", "metric_of", "continuous_longitudes",
+           "wrap_longitudes_near"]
 
 #: Mean Earth radius in km (IUGG value, Moritz 2000, Geodetic Reference System 1980).
 EARTH_RADIUS_KM = 6371.0088
@@ -19,6 +20,30 @@ METRICS = ("euclidean", "greatcircle")
 def metric_of(ds) -> str:
     """Distance metric recorded on a point data set: ``greatcircle`` for lon/lat, else ``euclidean``."""
     return "greatcircle" if ds.attrs.get("coords") == "lonlat" else "euclidean"
+
+
+def continuous_longitudes(lon) -> np.ndarray:
+    """Longitudes (degrees) written in whichever convention, -180..180 or 0..360, spans less.
+
+    Data across the antimeridian (e.g. 170..190 written as 170..180 and -180..-170) get one
+    continuous range (170..190), so bounding boxes, grids, hulls and maps built from raw
+    longitudes do not wrap around the globe. Great-circle distances do not change (they depend on
+    longitude only modulo 360). Values already in the narrower convention are returned as they are.
+    """
+    lon = np.asarray(lon, dtype=float)
+    if lon.size == 0:
+        return lon.copy()
+    west = (lon + 180.0) % 360.0 - 180.0  # [-180, 180)
+    west = np.where((lon == 180.0), 180.0, west)
+    east = lon % 360.0  # [0, 360)
+    best = west if np.ptp(west) <= np.ptp(east) else east
+    return lon.copy() if np.ptp(lon) <= np.ptp(best) else best
+
+
+def wrap_longitudes_near(lon, centre: float) -> np.ndarray:
+    """Longitudes shifted by multiples of 360 to lie within 180 degrees of ``centre``."""
+    lon = np.asarray(lon, dtype=float)
+    return centre + (lon - centre + 180.0) % 360.0 - 180.0
 
 
 def _haversine(lon1, lat1, lon2, lat2):

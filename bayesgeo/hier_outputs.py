@@ -471,7 +471,7 @@ def _write_csv(path, rows: list[dict], extra: dict | None = None) -> None:
 
 def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shrinkage: xr.Dataset | None = None,
                   design: xr.Dataset | None = None):
-    """Write a several-site fit into ``directory`` atomically (:func:`bayesgeo.io.atomic_dir`).
+    """Write a several-site fit into ``directory`` atomically (:func:`bayesgeo.outputs.new_folder`).
 
     Files: ``posterior.nc`` (the tree), ``summary.csv`` (one row per site/population/new-site
     parameter), ``summary.txt``, ``fit.json`` (:func:`site_report`) and, when given,
@@ -487,12 +487,12 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
     import matplotlib.pyplot as plt
 
     from bayesgeo.design import plot_design
-    from bayesgeo.io import atomic_dir
+    from bayesgeo.outputs import new_folder
 
     report = site_report(tree, shrinkage=shrinkage, design=design)
     verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
     flag = "NOT CONVERGED" if verdict == "fail" else verdict
-    with atomic_dir(directory, overwrite=overwrite) as tmp:
+    with new_folder(directory, overwrite=overwrite) as tmp:
         tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
         _write_csv(tmp / "summary.csv", summary_table(tree), {"diagnostics": flag})
         (tmp / "summary.txt").write_text(summary_text_sites(report), encoding="utf-8")
@@ -515,9 +515,9 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
 
 def load_site_fit(directory) -> xr.DataTree:
     """Read a several-site fit written by :func:`save_site_fit` (folder or its ``posterior.nc``)."""
+    from bayesgeo.fitfile import read_fit
     from bayesgeo.hierarchical import site_spec
-    from bayesgeo.posterior import read_fit_file
 
-    tree = read_fit_file(directory, written_by="bayesgeo fit --site")
+    tree = read_fit(directory, written_by="bayesgeo fit --site")
     site_spec(tree)
     return tree

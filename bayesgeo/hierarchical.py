@@ -344,15 +344,21 @@ def _versions() -> dict:
     return single_site_versions()
 
 
-def site_spec(tree: xr.DataTree) -> SiteSpec:
-    """The :class:`SiteSpec` recorded in a several-site fit's ``settings`` attribute."""
+def site_spec(tree: xr.DataTree, source: str | None = None) -> SiteSpec:
+    """The :class:`SiteSpec` recorded in a several-site fit's ``settings`` attribute
+    (decoded by :func:`bayesgeo.posterior.fit_settings`; ``source`` names the file in messages)."""
+    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings
+
+    where = f"{source}: " if source else ""
+    settings = fit_settings(tree, source)
+    if settings.get("format") != SEVERAL_SITE_FORMAT:
+        raise InputError(f"{where}not a bayesgeo several-site fit (settings format {settings.get('format')!r})")
     try:
-        settings = json.loads(tree.attrs["settings"])
-        if settings.get("format") != "bayesgeo several-site fit":
-            raise ValueError(f"format {settings.get('format')!r}")
         return SiteSpec.from_dict(settings["model"])
-    except (KeyError, TypeError, ValueError) as err:
-        raise InputError(f"not a bayesgeo several-site fit (settings missing or unreadable: {err})") from None
+    except (KeyError, TypeError, ValueError, AttributeError) as err:
+        what = f"missing {err}" if isinstance(err, KeyError) else " ".join(str(err).split())
+        raise InputError(f"{where}the model settings cannot be decoded ({what}): not a bayesgeo several-site fit, "
+                         "or a damaged one") from None
 
 
 def site_cautions(spec: SiteSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None,
@@ -398,7 +404,9 @@ def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
             g = tree[name].to_dataset()
             groups[f"/{name}"] = g.isel(obs=np.flatnonzero(g["site"].values == site)).drop_vars("site")
     out = xr.DataTree.from_dict(groups)
-    settings = json.loads(tree.attrs["settings"])
+    from bayesgeo.posterior import fit_settings
+
+    settings = fit_settings(tree)
     fs = spec.fit_spec(site)
     one = {"format": "bayesgeo single-site fit", "format_version": 1, "model": fs.to_dict(),
            "sampler": settings.get("sampler", {}), "versions": settings.get("versions", {}),

@@ -1,8 +1,8 @@
-"""Writing results: atomically, never silently over an existing output.
+"""Writing and reading result files: atomic file writes, JSON-safe values, NetCDF DataTrees.
 
 A file is written to a temporary name in the same folder and moved into place with
-``os.replace``; a folder is assembled under a temporary name and renamed at the end, so a crash
-leaves either the old output or the new one, never half of one.
+``os.replace``, so a crash leaves either the old file or the new one, never half of one. Which
+outputs may be created or replaced is decided in :mod:`bayesgeo.outputs`.
 """
 
 from __future__ import annotations
@@ -10,69 +10,33 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-import shutil
-import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 
+from bayesgeo.outputs import part_file
 from bayesgeo.validate import InputError
 
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
 
-
-__all__ = ["plain_attr", "to_jsonable", "read_datatree", "refuse_existing", "atomic_file", "atomic_dir", "write_json", "write_netcdf", "write_text"]
-
-
-def refuse_existing(path: str | Path, overwrite: bool, option: str = "--overwrite") -> Path:
-    """Raise :class:`InputError` if ``path`` exists and ``overwrite`` is false."""
-    path = Path(path)
-    if path.exists() and not overwrite:
-        raise InputError(f"{path}: already exists; choose another output or pass {option}")
-    return path
+__all__ = ["plain_attr", "to_jsonable", "read_datatree", "atomic_file", "write_json", "write_netcdf", "write_text"]
 
 
 @contextlib.contextmanager
 def atomic_file(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
-    """Yield a temporary path beside ``path``; move it into place if the block succeeds."""
-    path = refuse_existing(path, overwrite)
+    """Yield a temporary path beside ``path``; move it into place if the block succeeds.
+
+    The low-level step for files inside a folder being assembled; outputs a user names go
+    through :mod:`bayesgeo.outputs`, which owns what may be created and replaced.
+    """
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise InputError(f"{path}: already exists; choose another output or pass --overwrite")
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
-    os.close(fd)
-    tmp = Path(tmp)
-    tmp.chmod(0o666 & ~_umask())  # mkstemp makes 0600; outputs get the user's usual permissions
+    tmp = part_file(path)
     try:
         yield tmp
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
-
-
-@contextlib.contextmanager
-def atomic_dir(path: str | Path, *, overwrite: bool = False) -> Iterator[Path]:
-    """Yield a temporary folder; on success it replaces ``path`` in one rename.
-
-    An existing ``path`` is refused unless ``overwrite``; with ``overwrite`` the old folder is
-    removed only after the new one is complete.
-    """
-    path = refuse_existing(path, overwrite)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent))
-    tmp.chmod(0o777 & ~_umask())  # mkdtemp makes 0700
-    try:
-        yield tmp
-        old = None
-        if path.exists():
-            old = path.with_name(f".{path.name}.old-{os.getpid()}")
-            os.replace(path, old)
-        os.replace(tmp, path)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
 
 
 def to_jsonable(obj):

@@ -9,7 +9,6 @@ that the files they hold are the files the run wrote.
 
 from __future__ import annotations
 
-import hashlib
 import importlib.metadata as md
 import os
 import platform
@@ -17,6 +16,8 @@ import sys
 from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime, timezone
 from pathlib import Path
+
+from bayesgeo.outputs import sha256_file
 
 __all__ = ["DEPENDENCIES", "sha256_file", "file_table", "versions", "platform_info", "utc_now", "new_manifest",
            "MANIFEST_FILE"]
@@ -26,15 +27,6 @@ MANIFEST_FILE = "manifest.json"
 #: Distributions whose versions every manifest records (missing ones are recorded as null).
 DEPENDENCIES = ("bayesgeo", "numpy", "scipy", "pymc", "pytensor", "nutpie", "arviz", "arviz-base", "arviz-stats",
                 "arviz-plots", "xarray", "numba", "netCDF4", "matplotlib", "dask", "pandas", "tqdm")
-
-
-def sha256_file(path: str | Path, *, chunk: int = 1 << 20) -> str:
-    """SHA-256 of a file's bytes (hex), read in chunks (FIPS 180-4, via :mod:`hashlib`)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while block := fh.read(chunk):
-            h.update(block)
-    return h.hexdigest()
 
 
 def file_table(root: str | Path, *, exclude: Iterable[str] = ()) -> dict[str, dict]:

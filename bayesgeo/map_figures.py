@@ -108,8 +108,9 @@ def write_map_figures(pred: xr.Dataset, folder: str | Path, *, samples_xy=None, 
     for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
         jobs.append(("p_exceed", j, f"P({what} > {t:g} {units})", f"p_exceed_{_threshold_label(float(t))}.png"))
     written = []
+    site = f" - site {pred.attrs['site']}" if pred.attrs.get("site") else ""  # the label the folder name may abbreviate
     for var, j, title, name in jobs:
-        fig = map_figure(pred, var, threshold=j, samples_xy=samples_xy, title=title, caution=caution,
+        fig = map_figure(pred, var, threshold=j, samples_xy=samples_xy, title=title + site, caution=caution,
                          not_converged=not_converged)
         with atomic_file(folder / name, overwrite=overwrite) as tmp:
             fig.savefig(tmp, format="png", dpi=110)

@@ -72,9 +72,9 @@ def open_fit(path: str | Path, *, sites: bool = False) -> xr.DataTree:
         Missing folder or file, or a file that is not a readable single-site fit (or several-site
         fit with ``sites=True``).
     """
-    from bayesgeo.posterior import read_fit_file
+    from bayesgeo.fitfile import read_fit
 
-    tree = read_fit_file(path)
+    tree = read_fit(path)  # settings, groups, sizes and finite draws, checked once (one line naming the file)
     if is_site_fit(tree) and not sites:
         raise InputError(f"{path}: a several-site fit; this check takes one site at a time")
     any_fit_arrays(tree)  # refuse early what the checks cannot use
@@ -84,8 +84,9 @@ def open_fit(path: str | Path, *, sites: bool = False) -> xr.DataTree:
 def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
     """Store the exact leave-one-out ``log_likelihood`` group in a saved fit's ``posterior.nc``.
 
-    The file is rewritten atomically (a temporary file moved into place,
-    :func:`bayesgeo.io.write_netcdf`), with every other group unchanged. Later comparisons read
+    The file is rewritten atomically (a temporary file moved into place and recorded in the
+    folder's marker, :func:`bayesgeo.outputs.add_to_folder`), with every other group unchanged; a
+    ``posterior.nc`` the marker does not vouch for is not replaced. Later comparisons read
     the stored group instead of recomputing it.
 
     Parameters
@@ -105,14 +106,15 @@ def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
     InputError
         No readable fit, or a ``log_likelihood`` group present without ``overwrite``.
     """
-    from bayesgeo.io import write_netcdf
+    from bayesgeo.outputs import add_to_folder
     from bayesgeo.posterior import FIT_FILE
 
     tree = open_fit(path, sites=True)
     file = Path(path) / FIT_FILE if Path(path).is_dir() else Path(path)
     if "log_likelihood" in tree.children and not overwrite:
         raise InputError(f"{file}: already holds a log_likelihood group; pass --overwrite to replace it")
-    write_netcdf(file, add_log_likelihood(tree), overwrite=True)
+    with add_to_folder(file.parent, file.name, overwrite=True) as tmp:
+        add_log_likelihood(tree).to_netcdf(tmp, engine="netcdf4")
     return file
 
 

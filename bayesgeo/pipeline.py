@@ -6,7 +6,7 @@
 and a sequence of commands give the same files and numbers (:func:`stage_commands` lists them).
 The pipeline therefore sits beside the command line, at the end of the stage order.
 
-Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.io.atomic_dir`)::
+Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.outputs.new_folder`)::
 
     inputs/            copies of the study file and the data (and target points, area polygons)
     explore/           exploratory semivariogram, correlogram, directions, quick fits (explore.json);
@@ -42,14 +42,15 @@ import gc
 import html
 import io
 import json
-import re
 import shutil
 import sys
 import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from bayesgeo.io import atomic_dir, refuse_existing, write_json
+from bayesgeo.io import write_json
+from bayesgeo import outputs
+from bayesgeo.outputs import claim, new_folder
 from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
 from bayesgeo.study import Study, areas_of, read_study, study_line
 from bayesgeo.validate import InputError
@@ -77,7 +78,7 @@ def _command(argv: Sequence[str]) -> tuple[int, dict]:
     """Run one ``bayesgeo`` command in-process with ``--json``; return (status, its JSON object)."""
     args = _parser().parse_args([str(a) for a in argv] + ["--json"])
     buf = io.StringIO()
-    with contextlib.redirect_stdout(buf):
+    with contextlib.redirect_stdout(buf), outputs.scope():
         status = int(args._module.run(args) or 0)
     lines = [ln for ln in buf.getvalue().splitlines() if ln.strip()]
     try:
@@ -101,8 +102,11 @@ def _data_options(s: dict) -> list[str]:
 
 
 def site_slug(site: str) -> str:
-    """The file-name form of a site label used by ``map --site`` and ``variogram-check --site``."""
-    return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(site))
+    """The file-name form of a site label used by ``map --site`` and ``variogram-check --site``
+    (:func:`bayesgeo.sitenames.site_file_name`: safe and distinct for distinct labels)."""
+    from bayesgeo.sitenames import site_file_name
+
+    return site_file_name(site)
 
 
 def study_sites(study: Study) -> dict[str, "object"]:
@@ -316,14 +320,15 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     if not isinstance(study, Study):
         study = read_study(study)
     s = study.settings
+    option = "--out" if out is not None else f"{study.path}: [output] dir"
     out = Path(out) if out is not None else study.out_dir
     overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
-    refuse_existing(out, overwrite)
-    sites = study_sites(study) if study.several_sites else {}
     inputs = [study.path, s["data"]["path"]]
     for extra in (s["prediction"]["points"], *areas_of(s["prediction"]["area"])):
         if isinstance(extra, Path):
             inputs.append(extra)
+    claim(out, overwrite=overwrite, inputs=inputs, option=option)
+    sites = study_sites(study) if study.several_sites else {}
     manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
                             argv=argv)
     if sites:
@@ -331,7 +336,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     say = log or (lambda _msg: None)
     fams = study.families
     status, message, selected = EXIT_OK, "done", fams[0]
-    with atomic_dir(out, overwrite=overwrite) as tmp:
+    with new_folder(out, overwrite=overwrite) as tmp:
         (tmp / "inputs").mkdir()
         for k, p in enumerate(inputs):
             name = "study.toml" if k == 0 else p.name

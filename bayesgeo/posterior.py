@@ -31,7 +31,8 @@ import xarray as xr
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.data import sites_of
-from bayesgeo.io import atomic_dir, plain_attr, read_datatree, to_jsonable
+from bayesgeo.io import plain_attr, read_datatree, to_jsonable
+from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
@@ -43,6 +44,7 @@ __all__ = [
     "fit",
     "derive",
     "fit_spec",
+    "fit_settings",
     "summary_table",
     "fit_report",
     "summary_text",
@@ -79,13 +81,47 @@ def _versions() -> dict[str, str]:
     return out
 
 
-def fit_spec(tree: xr.DataTree) -> FitSpec:
-    """The :class:`~bayesgeo.model.FitSpec` recorded in a fit's ``settings`` attribute."""
+#: ``format`` values of the ``settings`` attribute (a fit written before formats were recorded is single-site).
+SINGLE_SITE_FORMAT = "bayesgeo single-site fit"
+SEVERAL_SITE_FORMAT = "bayesgeo several-site fit"
+
+
+def fit_settings(tree: xr.DataTree, source: str | None = None) -> dict:
+    """The decoded ``settings`` attribute of a fit: the one place it is parsed.
+
+    Raises
+    ------
+    InputError
+        One line naming ``source`` (the file, when known): no settings attribute, JSON cut short
+        or edited, no ``model`` table, or an unknown ``format``.
+    """
+    where = f"{source}: " if source else ""
+    raw = tree.attrs.get("settings")
+    if raw is None:
+        raise InputError(f"{where}no 'settings' attribute: not a bayesgeo fit (expected the output of 'bayesgeo fit')")
     try:
-        settings = json.loads(tree.attrs["settings"])
+        settings = json.loads(raw)
+    except (TypeError, ValueError) as err:
+        raise InputError(f"{where}the 'settings' attribute is not valid JSON ({' '.join(str(err).split())}): the file "
+                         "is damaged (cut short or edited); refit, or restore it from a copy") from None
+    if not isinstance(settings, dict) or not isinstance(settings.get("model"), dict):
+        raise InputError(f"{where}the 'settings' attribute holds no 'model' table: not a bayesgeo fit")
+    fmt = settings.get("format", SINGLE_SITE_FORMAT)
+    if fmt not in (SINGLE_SITE_FORMAT, SEVERAL_SITE_FORMAT):
+        raise InputError(f"{where}settings of format {fmt!r}; expected {SINGLE_SITE_FORMAT!r} or {SEVERAL_SITE_FORMAT!r}")
+    return settings
+
+
+def fit_spec(tree: xr.DataTree, source: str | None = None) -> FitSpec:
+    """The :class:`~bayesgeo.model.FitSpec` recorded in a fit's ``settings`` attribute."""
+    where = f"{source}: " if source else ""
+    settings = fit_settings(tree, source)
+    try:
         return FitSpec.from_dict(settings["model"])
-    except (KeyError, TypeError, ValueError) as err:
-        raise InputError(f"not a bayesgeo fit (settings attribute missing or unreadable: {err})") from None
+    except (KeyError, TypeError, ValueError, AttributeError) as err:
+        what = f"missing {err}" if isinstance(err, KeyError) else " ".join(str(err).split())
+        raise InputError(f"{where}the model settings cannot be decoded ({what}): not a bayesgeo single-site fit, "
+                         "or a damaged one") from None
 
 
 def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
@@ -381,12 +417,12 @@ def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = Fals
     and prior_check.png (:func:`prior_check_figure`).
 
     The folder is assembled under a temporary name and renamed at the end
-    (:func:`bayesgeo.io.atomic_dir`); an existing folder is refused unless ``overwrite``.
+    (:func:`bayesgeo.outputs.new_folder`, which also says what ``overwrite`` may replace).
     """
     report = fit_report(tree)
     rows = summary_table(tree)
     verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
-    with atomic_dir(directory, overwrite=overwrite) as tmp:
+    with new_folder(directory, overwrite=overwrite) as tmp:
         tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
         buf = io.StringIO()
         w = csv.DictWriter(buf, fieldnames=[*rows[0].keys(), "diagnostics"], lineterminator="\n")
@@ -422,7 +458,8 @@ def read_fit_file(directory: str | Path, *, written_by: str = "bayesgeo fit") ->
 
 
 def load_fit(directory: str | Path) -> xr.DataTree:
-    """Read a fit written by :func:`save_fit` (``directory`` or the ``posterior.nc`` inside it)."""
-    tree = read_fit_file(directory)
-    fit_spec(tree)
-    return tree
+    """Read a fit written by :func:`save_fit` (``directory`` or the ``posterior.nc`` inside it), checked
+    by :func:`bayesgeo.fitfile.check_fit` (settings, groups, sizes, finite draws)."""
+    from bayesgeo.fitfile import read_fit  # the checks need the several-site format too
+
+    return read_fit(directory)

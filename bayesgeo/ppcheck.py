@@ -32,7 +32,7 @@ from bayesgeo.explore import MIN_PAIRS, lag_bins
 from bayesgeo.geometry import distance_matrix
 from bayesgeo.loo import FitArrays, draw_covariances, fit_arrays
 from bayesgeo.modelcheck import CAUTION, _family_label
-from bayesgeo.validate import InputError, check_positive_int
+from bayesgeo.validate import InputError, check_int, check_positive_int
 
 __all__ = ["variogram_check"]
 
@@ -158,8 +158,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         from bayesgeo.sampling import new_seed
 
         seed = new_seed()
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise InputError(f"--seed: expected a non-negative integer, got {seed!r}")
+    seed = check_int(seed, "--seed", limit="seed")
     if not (0.0 < float(prob) < 1.0):
         raise InputError(f"prob: expected a probability strictly between 0 and 1, got {prob!r}")
     fa = fit_arrays(tree)
@@ -192,6 +191,9 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
                 bar.update(1)
             rep = _classical(_ols_residuals(fa.design, spec.value_mean + spec.value_sd * ys), i, j, k, nb)
         bar.update(1)
+    if not np.any(count > 0):
+        raise InputError(f"--max-lag: no pair of points lies within {edges[-1]:.4g} {spec.distance_units or 'distance units'}, "
+                         "so no lag bin can be checked; use a larger --max-lag (default: half the largest distance)")
     with np.errstate(invalid="ignore", divide="ignore"):
         lag = np.where(count > 0, dsum / np.maximum(count, 1), 0.5 * (edges[:-1] + edges[1:]))
 

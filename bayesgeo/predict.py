@@ -19,6 +19,8 @@ scheduler ``"threads"`` (dask's local thread pool, one BLAS thread per task).
 
 from __future__ import annotations
 
+import dataclasses
+import warnings
 from collections.abc import Sequence
 
 import numpy as np
@@ -36,6 +38,8 @@ from bayesgeo._kriging import (
     mixture_summary,
     summarise_samples,
 )
+from bayesgeo.csvtable import InputWarning
+from bayesgeo.targets import check_area_near_data, far_targets_warning
 from bayesgeo.trend import design_at
 from bayesgeo.validate import InputError, check_positive_int
 
@@ -174,6 +178,11 @@ def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,
                        neighbours=neighbours)
+    import json
+
+    site = json.loads(tree.attrs.get("settings", "{}")).get("extracted_from", {}).get("site")
+    if site is not None:
+        basis = dataclasses.replace(basis, site=str(site))
     return basis, spec, params
 
 
@@ -213,6 +222,16 @@ def _chunk(basis, xy, design, thresholds, include_nugget, probs):
         return mixture_summary(mean, var, thresholds=thresholds, transform=basis.transform, probs=probs)
 
 
+def check_scheduler(scheduler) -> str:
+    """``"threads"``, ``"synchronous"`` or a dask.distributed address ``scheme://...``; InputError otherwise."""
+    import re
+
+    if scheduler in SCHEDULERS or (isinstance(scheduler, str) and re.fullmatch(r"[a-z][a-z0-9+.-]*://\S+", scheduler)):
+        return scheduler
+    raise InputError(f"--scheduler: expected {', '.join(SCHEDULERS)} or an address such as tcp://host:8786, "
+                     f"got {scheduler!r}")
+
+
 def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, scheduler, progress):
     import uuid
 
@@ -236,10 +255,11 @@ def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, s
             return list(dask.compute(*tasks, scheduler=scheduler))
     from distributed import Client, as_completed
 
+    check_scheduler(scheduler)
     try:
         client = Client(scheduler, timeout="20s")
-    except OSError as err:
-        raise InputError(f"--scheduler: cannot connect to {scheduler!r} ({err})") from None
+    except (OSError, ValueError, TypeError) as err:
+        raise InputError(f"--scheduler: cannot connect to {scheduler!r} ({' '.join(str(err).split())})") from None
     with client:
         futures = client.compute(tasks)
         for _ in as_completed(futures):
@@ -278,7 +298,14 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     -------
     xarray.Dataset
         ``mean``, ``sd``, ``q05``, ``q50``, ``q95`` and ``p_exceed`` (threshold first) on the
-        dims of ``targets`` ((y, x) or (target,)); NaN outside the mask. Data units.
+        dims of ``targets`` ((y, x) or (target,)); NaN outside the mask. Data units. Attribute
+        ``site`` holds the site label of a fit extracted from a several-site fit.
+
+    Warns
+    -----
+    InputWarning
+        Target points farther from the nearest data point than the data's extent (their rows and
+        distances; also in attribute ``warning``).
     """
     chunk_cells = check_positive_int(chunk_cells, "chunk_cells")
     thr = np.asarray(thresholds, dtype=float).reshape(-1)
@@ -291,6 +318,10 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     design = target_design(targets, design_attrs, basis.design.shape[1])
     inside = np.asarray(targets["inside"].values, bool).ravel()
     idx = np.flatnonzero(inside)
+    rows = targets["row"].values if "row" in targets.coords else np.arange(1, inside.size + 1)
+    far = far_targets_warning(basis.xy, xy[idx], rows[idx], basis.metric) if kind == "points" and idx.size else ""
+    if far:
+        warnings.warn(f"--points {targets.attrs.get('source', '')}: {far}", InputWarning, stacklevel=2)
     results = _run_chunks(basis, xy[idx], design[idx], thresholds=thr, include_nugget=include_nugget,
                           chunk_cells=chunk_cells, scheduler=scheduler, progress=progress) if idx.size else []
     dims = ("y", "x") if kind == "grid" else ("target",)
@@ -331,6 +362,11 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
                                          if basis.transform == "log" else "")),
         "caution": CAUTION,
     })
+    if far:
+        ds.attrs["warning"] = far
+    if basis.site:
+        ds.attrs["site"] = basis.site  # the label, which the file name may abbreviate
+        ds.attrs["title"] += f", site {basis.site}"
     return ds
 
 
@@ -384,7 +420,14 @@ def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Seque
     dict
         ``mean``, ``sd``, ``q05``, ``q95``, ``p_exceed`` (list per threshold), ``threshold``,
         ``points`` (discretisation size), ``method``.
+
+    Raises
+    ------
+    InputError
+        The area's nearest point is farther from the data than half their extent
+        (:func:`bayesgeo.targets.check_area_near_data`).
     """
+    check_area_near_data(basis.xy, xy_area, basis.metric)
     thr = [float(t) for t in thresholds]
     if basis.transform == "log":
         sims = conditional_simulations(basis, xy_area, design_area, n_sim=check_positive_int(n_sim, "n_sim"),

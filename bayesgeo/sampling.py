@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from bayesgeo.validate import InputError, check_choice, check_positive_int
+from bayesgeo.validate import check_choice, check_float, check_int
 
 __all__ = ["SAMPLERS", "ADAPTATIONS", "CompiledModel", "compile_model", "sample", "new_seed"]
 
@@ -112,14 +112,13 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
 
     check_choice(sampler, SAMPLERS, "--sampler")
     check_choice(adaptation, ADAPTATIONS, "adaptation")
-    chains = check_positive_int(chains, "--chains")
-    draws = check_positive_int(draws, "--draws")
-    tune = check_positive_int(tune, "--tune", minimum=0)
-    if not (0.0 < float(target_accept) < 1.0):
-        raise InputError(f"--target-accept: expected a number strictly between 0 and 1, got {target_accept!r}")
+    chains = check_int(chains, "--chains", limit="chains")
+    draws = check_int(draws, "--draws", limit="draws")
+    tune = check_int(tune, "--tune", limit="tune")
+    target_accept = check_float(target_accept, "--target-accept", "probability")
     if seed is None:
         seed = new_seed()
-    seed = check_positive_int(seed, "--seed", minimum=0)
+    seed = check_int(seed, "--seed", limit="seed")
     t0 = time.perf_counter()
     with threadpool_limits(limits=1, user_api="blas"):
         if sampler == "nutpie":

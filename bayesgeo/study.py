@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any
 
 from bayesgeo.covariance import FAMILIES
-from bayesgeo.validate import InputError
+from bayesgeo.validate import INT_LIMITS, InputError, check_float, check_int, check_prior_pair
 
 #: Poolings a study may name: one site, or the several-site models of :mod:`bayesgeo.hierarchical`.
 POOLINGS = ("single", "hierarchical", "independent", "complete")
@@ -298,7 +298,7 @@ def _one_area(value: Any, bad: InputError, where: str, base: Path) -> Path | lis
         return p if p.is_absolute() else (base / p)
     if (isinstance(value, list) and len(value) == 4
             and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)):
-        vals = [float(v) for v in value]
+        vals = [check_float(v, where) for v in value]
         if not (vals[0] < vals[2] and vals[1] < vals[3]):
             raise InputError(f"{where}: expected xmin < xmax and ymin < ymax, got {value!r}")
         return vals
@@ -316,28 +316,38 @@ def areas_of(area) -> list:
     return [area]
 
 
+#: Integer keys -> (name in :data:`bayesgeo.validate.INT_LIMITS`, a stricter minimum for study files or 0).
+_INT_KEYS = {
+    ("explore", "bins"): ("bins", 0), ("explore", "permutations"): ("permutations", 0),
+    ("explore", "trend"): ("trend", 0), ("explore", "seed"): ("seed", 0), ("model", "trend"): ("trend", 0),
+    ("model", "neighbours"): ("neighbours", 0), ("sampler", "chains"): ("chains", 0),
+    ("sampler", "draws"): ("draws", 10), ("sampler", "tune"): ("tune", 0), ("sampler", "seed"): ("seed", 0),
+    ("check", "replicates"): ("replicates", 10), ("check", "seed"): ("seed", 0),
+    ("prediction", "draws"): ("prediction_draws", 0), ("prediction", "seed"): ("seed", 0),
+}
+#: Real-valued keys -> range name in :data:`bayesgeo.validate.FLOAT_LIMITS` (every value finite).
+_FLOAT_KEYS = {
+    ("explore", "max_lag"): "positive", ("model", "nu"): "nu", ("sampler", "target_accept"): "probability",
+    ("prediction", "cell"): "positive", ("prediction", "margin"): "nonnegative",
+}
+
+
 def _check_ranges(s: dict, src: str, text: str) -> None:
     """Value checks that go beyond types (each names its key and line)."""
 
     def fail(table, key, msg):
         raise InputError(f"{_where(src, text, table, key)}: {msg}")
 
-    for table, key, lo in (("explore", "bins", 2), ("explore", "permutations", 0), ("sampler", "chains", 1),
-                           ("sampler", "draws", 10), ("sampler", "tune", 0), ("check", "replicates", 10)):
-        if s[table][key] < lo:
-            fail(table, key, f"expected an integer >= {lo}, got {s[table][key]}")
-    for table, key in (("model", "trend"), ("explore", "trend")):
+    for (table, key), (limit, lo) in _INT_KEYS.items():
         v = s[table][key]
-        if v is not None and not 0 <= v <= 3:
-            fail(table, key, f"trend order {v} is not one of 0, 1, 2, 3")
-    if s["sampler"]["target_accept"] is not None and not 0.0 < s["sampler"]["target_accept"] < 1.0:
-        fail("sampler", "target_accept", f"expected a number in (0, 1), got {s['sampler']['target_accept']}")
-    for table, key in (("explore", "max_lag"), ("prediction", "cell")):
-        v = s[table][key]
-        if v is not None and not v > 0:
-            fail(table, key, f"expected a positive number, got {v}")
-    if s["prediction"]["margin"] < 0:
-        fail("prediction", "margin", f"expected a number >= 0, got {s['prediction']['margin']}")
+        if v is not None and v != "all":
+            check_int(v, _where(src, text, table, key), minimum=max(lo, INT_LIMITS[limit][0]),
+                      maximum=INT_LIMITS[limit][1])
+    for (table, key), limit in _FLOAT_KEYS.items():
+        if s[table][key] is not None:
+            check_float(s[table][key], _where(src, text, table, key), limit)
+    for v in s["prediction"]["thresholds"]:
+        check_float(v, _where(src, text, "prediction", "thresholds"))
     fams = s["model"]["covariance"]
     if s["model"]["nu"] is not None and "matern" not in fams:
         fail("model", "nu", "nu applies to the 'matern' family only; add \"matern\" to covariance or drop nu")
@@ -348,8 +358,8 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
         fail("model", "covariates", f"{', '.join(missing)} not listed in [data] covariates "
                                     f"({', '.join(s['data']['covariates']) or 'none'})")
     for key, pair in s["model.priors"].items():
-        if pair is not None and not (pair[0] > 0 and 0 < pair[1] < 1):
-            fail("model.priors", key, f"expected [positive number, probability in (0, 1)], got {pair}")
+        if pair is not None:
+            check_prior_pair(pair, _where(src, text, "model.priors", key))
     if s["model"]["approx"] == "dense" and s["model"]["neighbours"] is not None:
         fail("model", "neighbours", "neighbours applies to approx = 'nn' only")
     if not s["data"]["path"].exists():

@@ -14,13 +14,13 @@ area (point-in-polygon by :class:`matplotlib.path.Path`) for block averages.
 
 from __future__ import annotations
 
-import csv
 import math
 from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
+from bayesgeo.csvtable import MAX_MAGNITUDE, number_problem, parse_number, read_table
 from bayesgeo.validate import InputError, check_positive
 
 __all__ = [
@@ -33,6 +33,10 @@ __all__ = [
     "area_from_option",
     "discretise_area",
     "polygon_area",
+    "nearest_data_distance",
+    "data_extent",
+    "check_area_near_data",
+    "far_targets_warning",
 ]
 
 #: Cells along the longer side of a default grid.
@@ -101,16 +105,9 @@ def hull_mask(xy_obs, xy_new) -> np.ndarray:
     return tri.find_simplex(np.asarray(xy_new, dtype=float), tol=1e-9) >= 0
 
 
-def _read_csv(path: str | Path, what: str) -> tuple[list[str], list[list[str]], str]:
-    path = Path(path)
-    src = str(path)
-    if not path.is_file():
-        raise InputError(f"{src}: {what} file not found")
-    with path.open(newline="", encoding="utf-8-sig") as fh:
-        rows = [r for r in csv.reader(fh)]
-    if not rows:
-        raise InputError(f"{src}: empty file; expected a header with columns x,y")
-    return [h.strip() for h in rows[0]], rows[1:], src
+def _read_csv(path: str | Path, what: str) -> tuple[list[str], list[list[str]], str, list[int]]:
+    table = read_table(path, what=what)
+    return table.header, [cells for _, cells in table.rows], table.src, [r for r, _ in table.rows]
 
 
 def _column(header: list[str], names: tuple[str, ...], src: str) -> int:
@@ -124,13 +121,16 @@ def _column(header: list[str], names: tuple[str, ...], src: str) -> int:
 def _numbers(body, col: int, name: str, src: str, rows: list[int]) -> np.ndarray:
     out = np.empty(len(body))
     for i, r in enumerate(body):
-        text = r[col].strip() if col < len(r) else ""
-        try:
-            out[i] = float(text)
-        except ValueError:
-            raise InputError(f"{src}: row {rows[i]}, column {name!r}: {text!r} is not a number") from None
-        if not np.isfinite(out[i]):
+        text = r[col].strip()
+        v = parse_number(text) if text else None
+        if v is None:
+            raise InputError(f"{src}: row {rows[i]}, column {name!r}: {number_problem(text)}")
+        if not np.isfinite(v):
             raise InputError(f"{src}: row {rows[i]}, column {name!r}: {text!r} is not a finite number")
+        if abs(v) > MAX_MAGNITUDE:
+            raise InputError(f"{src}: row {rows[i]}, column {name!r}: {text} is too large in magnitude "
+                             f"(limit {MAX_MAGNITUDE:g}); rescale the column (other units)")
+        out[i] = v
     return out
 
 
@@ -155,11 +155,9 @@ def read_target_points(path: str | Path, *, columns: tuple[str, ...] = ()) -> xr
         Missing file or column, empty table, or a cell that is not a finite number, naming the
         file, the row (header = row 1) and the column.
     """
-    header, body, src = _read_csv(path, "--points")
-    body = [r for r in body if any(c.strip() for c in r)]
+    header, body, src, rows = _read_csv(path, "--points")
     if not body:
         raise InputError(f"{src}: no target points below the header")
-    rows = list(range(2, len(body) + 2))
     ix = _column(header, ("x", "easting", "lon", "longitude"), src)
     iy = _column(header, ("y", "northing", "lat", "latitude"), src)
     ds = xr.Dataset(coords={"x": ("target", _numbers(body, ix, header[ix], src, rows)),
@@ -188,9 +186,7 @@ def read_area(path: str | Path) -> np.ndarray:
     The polygon is closed automatically; at least three distinct vertices enclosing a positive
     area are required.
     """
-    header, body, src = _read_csv(path, "--area")
-    body = [r for r in body if any(c.strip() for c in r)]
-    rows = list(range(2, len(body) + 2))
+    header, body, src, rows = _read_csv(path, "--area")
     ix = _column(header, ("x", "easting", "lon", "longitude"), src)
     iy = _column(header, ("y", "northing", "lat", "latitude"), src)
     v = np.column_stack([_numbers(body, ix, header[ix], src, rows), _numbers(body, iy, header[iy], src, rows)])
@@ -208,14 +204,16 @@ def parse_rectangle(text: str) -> np.ndarray:
         x0, y0, x1, y1 = (float(p) for p in parts)
     except ValueError:
         raise InputError(f"--area: expected a CSV file or xmin,ymin,xmax,ymax, got {text!r}") from None
-    if not (x1 > x0 and y1 > y0) or not all(map(math.isfinite, (x0, y0, x1, y1))):
+    if not all(map(math.isfinite, (x0, y0, x1, y1))):
+        raise InputError(f"--area: xmin,ymin,xmax,ymax must be four finite numbers, got {text!r}")
+    if not (x1 > x0 and y1 > y0):
         raise InputError(f"--area: need xmin < xmax and ymin < ymax, got {text!r}")
     return np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]])
 
 
 def area_from_option(text: str) -> tuple[np.ndarray, str]:
     """Vertices and a label from an ``--area`` value: a vertex CSV file or four numbers."""
-    if Path(text).is_file() or not any(ch.isdigit() for ch in str(text).split(",")[0]):
+    if Path(text).is_file() or str(text).count(",") != 3:
         return read_area(text), Path(text).name
     return parse_rectangle(text), f"rectangle {text}"
 
@@ -246,3 +244,78 @@ def discretise_area(vertices, *, points: int = 400) -> np.ndarray:
             return pts
         h /= 2.0
     raise InputError("--area: the polygon is too thin to place points inside it")
+
+
+def _unit_vectors(xy) -> np.ndarray:
+    lon, lat = np.radians(xy[:, 0]), np.radians(xy[:, 1])
+    return np.column_stack([np.cos(lat) * np.cos(lon), np.cos(lat) * np.sin(lon), np.sin(lat)])
+
+
+def nearest_data_distance(xy_obs, xy_new, metric: str = "euclidean") -> np.ndarray:
+    """Distance from each row of ``xy_new`` to the nearest data location (distance units; km for ``greatcircle``).
+
+    A k-d tree (scipy) on the planar coordinates, or on unit vectors for great-circle distances
+    (chord c to angle 2 arcsin(c / 2)), so no targets x data matrix is built.
+    """
+    from scipy.spatial import cKDTree
+
+    from bayesgeo.geometry import EARTH_RADIUS_KM
+
+    a = np.asarray(xy_obs, dtype=float)
+    b = np.asarray(xy_new, dtype=float).reshape(-1, 2)
+    if metric == "greatcircle":
+        chord, _ = cKDTree(_unit_vectors(a)).query(_unit_vectors(b))
+        return 2.0 * EARTH_RADIUS_KM * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
+    d, _ = cKDTree(a).query(b)
+    return d
+
+
+def data_extent(xy_obs, metric: str = "euclidean") -> float:
+    """Largest distance between two data locations (the diameter of their convex hull)."""
+    from scipy.spatial import ConvexHull, QhullError
+
+    from bayesgeo.geometry import continuous_longitudes, cross_distance
+
+    xy = np.array(xy_obs, dtype=float)
+    if metric == "greatcircle":
+        xy[:, 0] = continuous_longitudes(xy[:, 0])
+    try:
+        cand = xy[ConvexHull(xy).vertices]
+    except (QhullError, ValueError):
+        cand = xy[np.unique([xy[:, 0].argmin(), xy[:, 0].argmax(), xy[:, 1].argmin(), xy[:, 1].argmax()])]
+    return float(cross_distance(cand, cand, metric).max())
+
+
+def _units(metric: str) -> str:
+    return "km" if metric == "greatcircle" else "distance units"
+
+
+def check_area_near_data(xy_obs, xy_area, metric: str = "euclidean") -> None:
+    """Refuse an area all of whose points are farther from the data than half the data's extent.
+
+    There the kriging predictor has reverted to the fitted mean and the prior variance: an
+    average over such an area says nothing the data support.
+    """
+    near = float(nearest_data_distance(xy_obs, xy_area, metric).min())
+    extent = data_extent(xy_obs, metric)
+    if near > 0.5 * extent:
+        u = _units(metric)
+        raise InputError(
+            f"--area: the area lies outside the data: its nearest point is {near:,.4g} {u} from the nearest data "
+            f"point, more than half the data's extent ({extent:,.4g} {u}); an average there is the fitted mean with "
+            "prior uncertainty, not an estimate from the data; choose an area over or next to the data")
+
+
+def far_targets_warning(xy_obs, xy_targets, rows, metric: str = "euclidean", *, what: str = "target points") -> str:
+    """A warning naming the targets farther from the nearest data point than the data's extent ('' if none)."""
+    d = nearest_data_distance(xy_obs, xy_targets, metric)
+    extent = data_extent(xy_obs, metric)
+    far = np.flatnonzero(d > extent)
+    if not far.size:
+        return ""
+    from bayesgeo.validate import format_rows
+
+    u = _units(metric)
+    return (f"{len(far)} {what} lie farther from the nearest data point than the data's extent ({extent:,.4g} {u}), "
+            f"up to {d[far].max():,.4g} {u} (rows {format_rows(np.asarray(rows)[far])}); predictions there are the "
+            "fitted mean with prior uncertainty, not estimates from the data")

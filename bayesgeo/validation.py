@@ -525,4 +525,9 @@ def with_settings(config: SBCConfig, **changes) -> SBCConfig:
     for key in ("chains", "draws", "tune", "ranks_of", "neighbours"):
         if key in changes:
             changes[key] = check_positive_int(changes[key], f"--{key.replace('_', '-')}")
-    return replace(config, **changes)
+    out = replace(config, **changes)
+    if out.chains * out.draws < out.ranks_of:
+        need = -(-out.ranks_of // out.chains)
+        raise InputError(f"--draws: {out.draws} draws per chain x {out.chains} chains is fewer than the {out.ranks_of} "
+                         f"posterior draws each rank is taken among (Talts et al. 2018); use --draws {need} or more")
+    return out

@@ -18,8 +18,23 @@ Generated from the command parsers by `examples/make_cli_reference.py`; do not e
 Every command prints human tables by default and exactly one JSON object on stdout with `--json`
 (nothing else goes to stdout then; progress goes to stderr). Exit status: 0 done; 2 bad input (one
 line on stderr naming the file, row, column or option); 3 a posterior failed its convergence check;
-1 (`run`, `demo`) a stage failed unexpectedly. Outputs are written atomically and never replace
-existing files without `--overwrite`.
+1 an unexpected failure (one line; `BAYESGEO_DEBUG=1` shows the traceback; for `run` and `demo`, a stage failed); 141 stdout was closed by its reader (`bayesgeo ... | head`),
+ended quietly. Outputs are written atomically and never replace existing files without `--overwrite`;
+with it, only what bayesgeo itself wrote is replaced (docs/outputs.md). Input accepted with a change
+or a doubt gives one stderr line `bayesgeo <command>: warning: ...`, also listed under `"warnings"` in
+the `--json` object. What a data file must look like, and what is refused: [data_files.md](data_files.md).
+
+Numeric options are checked where they enter, with the same ranges as in study files
+(`bayesgeo.validate.INT_LIMITS`): seeds 0 to 2^63 - 1, `--chains` 1 to 64, `--draws` 1 to 1,000,000,
+`--tune` 0 to 1,000,000, `--neighbours` 1 to 200, `--trend` 0 to 3, `--bins` 2 to 1,000,
+`--permutations` 0 to 100,000, `variogram-check --replicates` 1 to 100,000; real numbers must be finite, `--target-accept`
+and prior probabilities lie in (0, 1), prior values and `--cell`, `--max-lag` are positive. A saved fit
+that is damaged or foreign (settings cut short, an unknown covariance family, a missing group,
+sizes that disagree, NaN or infinite draws) is refused with one line naming the file; a NaN or
+infinite result (a map band, an elpd) stops the command with exit 2 instead of reaching a table.
+`fit` and `explore` say on stderr before starting when an input is above the comfortable size
+([large data](large_data.md#comfortable-sizes)), and put the same plan in the `--json` object as
+`workload`.
 """
 
 

@@ -59,3 +59,13 @@ def recording_progress():
         return bars[-1]
 
     return factory, bars
+
+
+def write_fit_folder(tree, folder):
+    """Write ``tree`` as ``folder/posterior.nc`` the way bayesgeo writes fit folders (with the output
+    marker of bayesgeo.outputs), for tests that build posteriors by hand."""
+    from bayesgeo.outputs import new_folder
+
+    with new_folder(folder) as tmp:
+        tree.to_netcdf(tmp / "posterior.nc", engine="netcdf4")
+    return folder

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
+from conftest import write_fit_folder
 
 az = pytest.importorskip("arviz")
 
@@ -31,8 +32,7 @@ def write_fit(folder, *, seed=0, shift=0.0, shift_vars=("practical_range",), cha
     }
     tree = az.from_dict({"posterior": post, "sample_stats": ss}, dims={"beta": ["term"]},
                         coords={"term": ["intercept", "depth_m"]})
-    folder.mkdir(parents=True, exist_ok=True)
-    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
+    write_fit_folder(tree, folder)
     return folder
 
 
@@ -103,11 +103,11 @@ def test_bad_input_exits_2_with_one_line(tmp_path, capsys):
     assert "'range' not found" in capsys.readouterr().err
 
 
-def test_figures_written_and_folder_refreshed(tmp_path, capsys):
-    """Figures and JSON land in DIR/diagnostics/, which a rerun replaces as a whole (atomic refresh)."""
+def test_figures_written_and_earlier_check_kept(tmp_path, capsys):
+    """Figures and JSON land in DIR/diagnostics/; a rerun keeps them (verdict still printed) unless
+    --overwrite, which replaces only what bayesgeo wrote: a figure the user put there stops it
+    (output rules, docs/outputs.md)."""
     fit = write_fit(tmp_path / "fit", draws=200)
-    (fit / "diagnostics").mkdir()
-    (fit / "diagnostics" / "stale.png").write_text("old")
     code, out = run_json(capsys, ["check", str(fit), "--json", "--max-lag", "30"])
     assert code == 0 and out["figure_error"] is None
     names = sorted(p.name for p in (fit / "diagnostics").iterdir())
@@ -116,6 +116,21 @@ def test_figures_written_and_folder_refreshed(tmp_path, capsys):
     for n in names:
         assert (fit / "diagnostics" / n).stat().st_size > 0
     assert (fit / "posterior.nc").exists()
+
+    first = (fit / "diagnostics" / "diagnostics.json").read_bytes()
+    code, again = run_json(capsys, ["check", str(fit), "--json"])
+    assert code == 0 and again["kept"] == str(fit / "diagnostics") and again["diagnostics"] is None
+    assert again["verdict"] == out["verdict"]
+    assert (fit / "diagnostics" / "diagnostics.json").read_bytes() == first
+
+    code, _ = run_json(capsys, ["check", str(fit), "--json", "--overwrite", "--no-figures"])
+    assert code == 0 and sorted(p.name for p in (fit / "diagnostics").iterdir()) == ["diagnostics.json"]
+
+    (fit / "diagnostics" / "annotated.png").write_bytes(b"mine")
+    assert main(["check", str(fit), "--overwrite"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "bayesgeo did not write" in err[0] and "annotated.png" in err[0]
+    assert (fit / "diagnostics" / "annotated.png").read_bytes() == b"mine"
 
 
 # --- several-site fits --------------------------------------------------------------------------
@@ -147,8 +162,7 @@ def write_site_fit(folder, *, pooling="hierarchical", bad_site=None, seed=0):
             x[0, :, k] *= 3.0
             post[v] = (post[v].dims, x, post[v].attrs)
         tree["posterior"] = xr.DataTree(post)
-    folder.mkdir(parents=True, exist_ok=True)
-    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
+    write_fit_folder(tree, folder)
     return folder
 
 
@@ -206,3 +220,14 @@ def test_independent_fit_has_no_population_block(tmp_path, capsys):
     code, res = run_json(capsys, ["check", str(folder), "--json", "--no-figures"])
     assert code == 0 and res["population"] is None
     assert set(res["sites"]) == {"s0", "s1", "s2"}
+
+
+def test_max_lag_bounded(tmp_path, capsys):
+    """--max-lag of the autocorrelation figure is an integer from 1 to 1,000,000: a huge value is
+    refused where it enters with one line (exit 2), the folder untouched."""
+    from _cli_helpers import assert_refused
+
+    (tmp_path / "fit").mkdir()
+    assert_refused(capsys, ["check", tmp_path / "fit", "--max-lag", "99999999999999999999"], "check",
+                   r"argument --max-lag: expected an integer from 1 to 1000000", inputs=[tmp_path / "fit"],
+                   absent=[tmp_path / "fit" / "diagnostics"])

@@ -13,13 +13,12 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
+from conftest import write_fit_folder
 from test_loo import make_fit, simulated
 
 
 def _save(tree, folder):
-    folder.mkdir(parents=True)
-    tree.to_netcdf(folder / "posterior.nc", engine="netcdf4")
-    return folder
+    return write_fit_folder(tree, folder)
 
 
 @pytest.fixture(scope="module")
@@ -254,3 +253,79 @@ def test_compare_single_site_fit_beside_site_fit(site_fits, capsys):
     assert main(["compare", str(site_fits["hier"]), str(site_fits["indep"]), "--site", "nowhere"]) == 2
     err = capsys.readouterr().err.strip()
     assert "\n" not in err and "nowhere" in err and "s0, s1, s2" in err
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--replicates", "99999999999999999999", r"argument --replicates: expected an integer from 1 to 100000"),
+    ("--bins", "1", r"argument --bins: expected an integer from 2 to 1000, got 1"),
+    ("--max-lag", "nan", r"argument --max-lag: expected a finite number > 0, got 'nan'"),
+    ("--seed", "-3", r"argument --seed: expected an integer from 0 to"),
+])
+def test_variogram_check_options_bounded(tmp_path, capsys, option, value, pattern):
+    """variogram-check's numeric options are checked where they enter: exit 2, one line, no files."""
+    from _cli_helpers import assert_refused
+
+    (tmp_path / "fit").mkdir()
+    assert_refused(capsys, ["variogram-check", tmp_path / "fit", option, value], "variogram-check", pattern,
+                   inputs=[tmp_path / "fit"], absent=[tmp_path / "fit" / "variogram_check.png"])
+
+
+def test_non_finite_elpd_is_never_ranked(fits, tmp_path, capsys, monkeypatch):
+    """A NaN elpd (leave-one-out densities that overflowed although the draws are finite; simulated
+    here by patching the comparison) stops compare with exit 2 and a line naming the fit folder and
+    the variable, instead of a ranking with elpd = nan and exit 0; nothing is written to --out."""
+    import bayesgeo.modelcheck as mc
+
+    real = mc.compare_fits
+
+    def nan_elpd(trees, **kw):
+        res = real(trees, **kw)
+        v = res["elpd_loo"].values.copy()
+        v[res["fit"].values.tolist().index("exp")] = np.nan
+        return res.assign(elpd_loo=("fit", v))
+
+    monkeypatch.setattr(mc, "compare_fits", nan_elpd)
+    from _cli_helpers import assert_refused
+
+    assert_refused(capsys, ["compare", fits["m32"], fits["exp"], "--out", tmp_path / "cmp", "--json"], "compare",
+                   rf"^bayesgeo compare: error: {fits['exp']}: elpd_loo = nan", inputs=[fits["m32"], fits["exp"]],
+                   absent=[tmp_path / "cmp"])
+
+
+def test_non_finite_replicate_band_stops_variogram_check(fits, tmp_path, capsys, monkeypatch):
+    """NaN replicate quantiles in a bin with pairs stop variogram-check with exit 2 naming the fit
+    folder and the variable; no figure or table is written."""
+    import shutil
+
+    import bayesgeo.ppcheck as pp
+
+    real = pp.variogram_check
+
+    def nan_band(tree, **kw):
+        vc = real(tree, **kw)
+        v = vc["replicate_q95"].values.copy()
+        v[np.flatnonzero(vc["pairs"].values > 0)[0]] = np.inf
+        return vc.assign(replicate_q95=(vc["replicate_q95"].dims, v))
+
+    monkeypatch.setattr(pp, "variogram_check", nan_band)
+    folder = tmp_path / "fit"
+    shutil.copytree(fits["exp"], folder)
+    from _cli_helpers import assert_refused
+
+    assert_refused(capsys, ["variogram-check", folder, "--replicates", "5", "--bins", "4"], "variogram-check",
+                   rf"{folder}: replicate_q95 is NaN or infinite in 1 lag bin\(s\) with pairs", inputs=[folder],
+                   absent=[folder / "variogram_check.png", folder / "variogram_check.csv"])
+
+
+def test_variogram_check_without_pairs_refused(fits, tmp_path, capsys):
+    """A --max-lag below the smallest distance between points leaves every lag bin empty: refused with
+    exit 2 and one line naming --max-lag, instead of a table of NaN with exit 0; nothing written."""
+    import shutil
+
+    from _cli_helpers import assert_refused
+
+    folder = tmp_path / "fit"
+    shutil.copytree(fits["exp"], folder)
+    assert_refused(capsys, ["variogram-check", folder, "--max-lag", "1e-9", "--replicates", "5"], "variogram-check",
+                   r"--max-lag: no pair of points lies within 1e-09 .*use a larger --max-lag", inputs=[folder],
+                   absent=[folder / "variogram_check.png", folder / "variogram_check.csv"])

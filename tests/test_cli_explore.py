@@ -134,7 +134,10 @@ def test_cli_several_sites_get_sub_folders(tmp_path, capsys):
     assert set(obj["sites"]) == {"north yard", "mill/pond"}
     assert obj["sites"]["mill/pond"]["n"] == 35
     assert obj["semivariogram"] == obj["sites"]["north yard"]["semivariogram"]
-    for sub in ("north_yard", "mill_pond"):
+    from bayesgeo.sitenames import site_file_name
+
+    for sub in (site_file_name("north yard"), site_file_name("mill/pond")):  # safe part + hash of the label
+        assert sub.startswith(("north_yard+", "mill_pond+"))
         for name in FILES:
             assert (out / sub / name).is_file()
     with (out / "fits.csv").open() as fh:
@@ -207,3 +210,42 @@ def test_cli_log_transform_equals_api_on_log_values(tmp_path, capsys):
     vg = semivariogram(apply_transform(read_points(data, value="conc"), "log"), bins=10, permutations=19, seed=1)
     np.testing.assert_allclose(obj["semivariogram"]["semivariance"], vg["semivariance"].values, rtol=1e-12)
     assert obj["value_units"].startswith("log(")
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--bins", "0", r"argument --bins: expected an integer from 2 to 1000, got 0"),
+    ("--bins", "99999999999999999999", r"argument --bins: expected an integer from 2 to 1000"),
+    ("--max-lag", "-5", r"argument --max-lag: expected a finite number > 0, got '-5'"),
+    ("--max-lag", "inf", r"argument --max-lag: expected a finite number > 0, got 'inf'"),
+    ("--permutations", "-1", r"argument --permutations: expected an integer from 0 to 100000, got -1"),
+    ("--seed", str(2**70), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--trend", "5", r"argument --trend: expected an integer from 0 to 3, got 5"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """Numeric options are checked where they enter (bayesgeo.validate): exit 2, one line naming the
+    option, the data untouched, no output folder."""
+    from _cli_helpers import assert_refused
+
+    data = tmp_path / "survey.csv"
+    data.write_text("\n".join(",".join(r) for r in _rows(30, 3)) + "\n")
+    assert_refused(capsys, ["explore", data, option, value, "--out", tmp_path / "o"], "explore", pattern,
+                   inputs=[data], absent=[tmp_path / "o"])
+
+
+def test_large_input_note_on_stderr_and_in_json(tmp_path, capsys):
+    """Above 3,000 points per site the maximum-likelihood quick fits are skipped: explore says so before
+    starting, on stderr (one note, then one line per long step); with --json the same plan is the
+    ``workload`` field of the one JSON object and stderr stays empty."""
+    data = tmp_path / "survey.csv"
+    data.write_text("\n".join(",".join(r) for r in _rows(3200, 7)) + "\n")
+    base = ["explore", str(data), "--permutations", "0", "--covariance", "exponential", "--bins", "6"]
+    assert main([*base, "--out", str(tmp_path / "a")]) == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err[0].startswith("bayesgeo explore: note: ") and "skipped above 3,000 points" in err[0]
+    assert err[1] == "bayesgeo explore: semivariogram (0 permutations) ..."
+    assert main([*base, "--out", str(tmp_path / "b"), "--json"]) == 0
+    out, err = capsys.readouterr()
+    assert err == ""
+    obj = json.loads(out)
+    assert obj["workload"]["points"] == 3200 and "skipped above 3,000 points" in obj["workload"]["message"]
+    assert obj["workload"]["estimated_seconds"][0] <= obj["workload"]["estimated_seconds"][1]

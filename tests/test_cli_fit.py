@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 
 import numpy as np
 import pytest
@@ -52,10 +53,12 @@ def test_json_output_keys_and_files(cli_run, capsys):
     assert {"name", "chains", "draws", "tune", "seed", "seconds"} <= set(rep["sampler"])
     assert rep["sampler"]["seed"] == 4 and rep["sampler"]["chains"] == 2 and rep["sampler"]["name"] == "nutpie"
     assert "verdict" in rep["diagnostics"] and rep["cautions"]
+    assert rep["workload"]["points"] == 40 and rep["workload"]["message"] is None  # small: nothing announced
     assert code == (EXIT_NOT_CONVERGED if rep["diagnostics"]["verdict"] == "fail" else 0)
     assert rep["model"]["priors"]["range"] == [30.0, 0.05]
     assert rep["parameters"]["practical_range"]["units"] == "coordinate units"
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "prior_check.png", "summary.csv", "summary.txt"]
+    assert sorted(p.name for p in out.iterdir()) == [".bayesgeo-output.json", "fit.json", "posterior.nc", "prior_check.png",
+                                                     "summary.csv", "summary.txt"]
 
 
 def test_existing_output_is_refused_without_overwrite(cli_run, capsys):
@@ -106,15 +109,124 @@ def test_bad_prior_is_refused(tmp_path, capsys):
 @pytest.mark.slow
 def test_human_output_and_overwrite(cli_run, tmp_path, capsys):
     """Without --json: a table with the parameters and the verdict on stdout; --overwrite replaces an
-    existing folder in one piece (bayesgeo.io.atomic_dir)."""
+    earlier bayesgeo output in one piece, and refuses, before sampling, a folder holding a file
+    bayesgeo did not write (bayesgeo.outputs, docs/outputs.md)."""
+    from bayesgeo.outputs import new_folder
+
     data, _, argv = cli_run
     out = tmp_path / "o"
-    out.mkdir()
-    (out / "old.txt").write_text("old")
+    with new_folder(out) as tmp:
+        (tmp / "old.txt").write_text("old")
     argv = [a for a in argv if a != "--json"]
     argv[argv.index("--out") + 1] = str(out)
+    (out / "mine.txt").write_text("mine")
+    assert main(["fit", *argv, "--overwrite"]) == 2
+    assert "mine.txt" in capsys.readouterr().err and (out / "mine.txt").read_text() == "mine"
+    (out / "mine.txt").unlink()
     code = main(["fit", *argv, "--overwrite"])
     stdout = capsys.readouterr().out
     assert code in (0, EXIT_NOT_CONVERGED)
     assert "practical_range" in stdout and "diagnostics:" in stdout and "licensed professional" in stdout
     assert not (out / "old.txt").exists() and (out / "posterior.nc").exists()
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--chains", "99999999999999999999", r"argument --chains: expected an integer from 1 to 64, got 99999999999999999999"),
+    ("--chains", "0", r"argument --chains: expected an integer from 1 to 64, got 0"),
+    ("--seed", str(2**70), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--seed", "-1", r"argument --seed: expected an integer from 0 to"),
+    ("--draws", "0", r"argument --draws: expected an integer from 1 to 1000000, got 0"),
+    ("--draws", "1e3", r"argument --draws: expected an integer from 1 to 1000000, got '1e3'"),
+    ("--tune", "-1", r"argument --tune: expected an integer from 0 to 1000000, got -1"),
+    ("--neighbours", "100000", r"argument --neighbours: expected an integer from 1 to 200, got 100000"),
+    ("--trend", "4", r"argument --trend: expected an integer from 0 to 3, got 4"),
+    ("--trend", "-1", r"argument --trend: expected an integer from 0 to 3, got -1"),
+    ("--target-accept", "1", r"argument --target-accept: expected a number in \(0, 1\), got '1'"),
+    ("--target-accept", "nan", r"argument --target-accept: expected a number in \(0, 1\), got 'nan'"),
+    ("--nu", "inf", r"argument --nu: expected a number in \(0, 50\], got 'inf'"),
+    ("--nu", "-2", r"argument --nu: expected a number in \(0, 50\], got '-2'"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """Every numeric option is checked where it enters (argparse type, bayesgeo.validate): a value
+    that overflowed (OverflowError) or failed mid-run is refused with exit 2, one line naming the
+    option, the value and the accepted range; the data file is untouched and no output appears.
+    Bounds: seeds are stored as signed 64-bit integers (numpy.random.default_rng takes any
+    non-negative integer, nutpie below 2**64); target_accept is a probability (Hoffman and Gelman
+    2014, the dual-averaging target delta in (0, 1))."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = ["fit", data, "--covariance", "matern", "--value", "arsenic_mg_kg", option, value, "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", pattern, inputs=[data], absent=[tmp_path / "o"])
+
+
+@pytest.mark.parametrize("option, values, pattern", [
+    ("--prior-range", ("100", "1"), r"argument --prior-range: the probability \(second number\): expected a number in \(0, 1\), got '1'"),
+    ("--prior-range", ("-5", "0.05"), r"argument --prior-range: the value \(first number\): expected a finite number > 0, got '-5'"),
+    ("--prior-sd", ("inf", "0.05"), r"argument --prior-sd: the value \(first number\): expected a finite number > 0, got 'inf'"),
+    ("--prior-nugget", ("1", "nan"), r"argument --prior-nugget: the probability \(second number\)"),
+    ("--prior-sd", ("x", "0.05"), r"argument --prior-sd: the value \(first number\): expected a finite number > 0, got 'x'"),
+])
+def test_prior_pairs_checked(tmp_path, capsys, option, values, pattern):
+    """PC-prior statements P(value < or > V) = A need V > 0 finite and A in (0, 1) (Fuglstad et al. 2019,
+    JASA 114: the rates -ln(A) V and -ln(A) / V are finite and positive only then)."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = ["fit", data, "--covariance", "matern32", "--value", "arsenic_mg_kg", option, *values, "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", pattern, inputs=[data], absent=[tmp_path / "o"])
+
+
+def test_large_input_announced_before_sampling(tmp_path, capsys, monkeypatch):
+    """Above the comfortable size (bayesgeo.workload: 1,000 points per site; above 2,000 the
+    nearest-neighbour likelihood) the fit says on stderr, before any sampling, what will happen and
+    the expected scale of time; with --json nothing extra reaches stdout or stderr. Sampling is
+    replaced by an interruption here so the test takes seconds."""
+    import bayesgeo.posterior as post
+
+    def interrupted(*a, **kw):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(post, "fit", interrupted)
+    data = _csv(tmp_path / "big.csv", n=2500)
+    argv = ["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "exponential", "--duplicates", "mean",
+            "--out", str(tmp_path / "o")]
+    assert main(argv) == 130
+    out, err = capsys.readouterr()
+    lines = err.strip().splitlines()
+    assert out == ""
+    assert re.match(r"bayesgeo fit: note: 2,\d{3} points: expect roughly \d+ min to \d+ min on ", lines[0])
+    assert "nearest-neighbour (Vecchia) likelihood with m = 20 is used" in lines[0]
+    assert lines[1].startswith("bayesgeo fit: compiling the model")
+    assert main([*argv, "--json"]) == 130
+    out, err = capsys.readouterr()
+    assert out == "" and "note:" not in err
+
+
+def test_dense_fit_beyond_memory_refused(tmp_path, capsys, monkeypatch):
+    """A dense likelihood whose n x n matrices (8 bytes per entry, one work matrix per chain plus the
+    distances; bayesgeo.workload.dense_memory_bytes) exceed the machine's memory is refused before
+    anything starts, with one line naming --approx and the way out (nn), instead of a MemoryError
+    traceback after minutes. The machine's memory is set to 1 MB here so the test stays small."""
+    import bayesgeo.workload as wl
+    from _cli_helpers import assert_refused
+
+    monkeypatch.setattr(wl, "physical_memory_bytes", lambda: 1e6)
+    data = _csv(tmp_path / "d.csv", n=300)
+    argv = ["fit", data, "--value", "arsenic_mg_kg", "--covariance", "exponential", "--approx", "dense",
+            "--duplicates", "mean", "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", r"--approx dense: the dense likelihood of \d+ points with 4 chains needs "
+                   r"about \d MB of memory; this machine has 1 MB: use --approx nn \(or auto\)",
+                   inputs=[data], absent=[tmp_path / "o"])
+
+
+def test_neighbours_with_dense_refused(tmp_path, capsys):
+    """--neighbours with --approx dense would be silently ignored; it is refused with one line, as the
+    study file refuses [model] neighbours with approx = 'dense' (docs/study_file.md)."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = ["fit", data, "--value", "arsenic_mg_kg", "--covariance", "exponential", "--approx", "dense",
+            "--neighbours", "5", "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, "fit", r"--neighbours: applies to the nearest-neighbour likelihood",
+                   inputs=[data], absent=[tmp_path / "o"])

@@ -16,6 +16,7 @@ import pytest
 import xarray as xr
 
 from bayesgeo.cli import main
+from conftest import write_fit_folder
 from bayesgeo.demo import demo_data
 from bayesgeo.map_figures import map_figure
 from bayesgeo.model import model_inputs
@@ -55,8 +56,7 @@ def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=2
     tree = xr.DataTree.from_dict({"posterior": derive(post, spec), "sample_stats": stats, "observed_data": obs,
                                   "constant_data": const})
     tree.attrs["settings"] = json.dumps({"model": spec.to_dict()})
-    path.mkdir(parents=True, exist_ok=True)
-    tree.to_netcdf(path / "posterior.nc", engine="netcdf4")
+    write_fit_folder(tree, path)
     return path, ds
 
 
@@ -180,3 +180,78 @@ def test_real_fit_then_map_covers_held_out_samples(tmp_path, capsys):
     covered = int(np.sum((obs > pred["q05"].values) & (obs < pred["q95"].values)))
     pred.close()
     assert covered >= 7, covered
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--cell", "nan", r"argument --cell: expected a finite number > 0, got 'nan'"),
+    ("--margin", "-1", r"argument --margin: expected a finite number >= 0, got '-1'"),
+    ("--threshold", "inf", r"argument --threshold: expected a finite number, got 'inf'"),
+    ("--chunk-cells", "0", r"argument --chunk-cells: expected an integer from 1 to 10000000, got 0"),
+    ("--simulate", "99999999999999999999", r"argument --simulate: expected an integer from 0 to 10000"),
+    ("--seed", str(2**64), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--draws", "99999999999999999999", r"--draws: expected an integer from 1 to 64000000 or 'all'"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """Numeric options are checked before the fit is read (bayesgeo.validate): exit 2, one line
+    naming the option; the fit folder is untouched and no predictions appear."""
+    from _cli_helpers import assert_refused
+
+    folder, _ = _fit_folder(tmp_path / "fit", draws=20)
+    assert_refused(capsys, ["map", folder, option, value], "map", pattern, inputs=[folder],
+                   absent=[folder / "predictions.nc", folder / "maps"])
+
+
+def test_non_finite_prediction_stops_the_map(tmp_path, capsys, monkeypatch):
+    """A NaN predictive sd at a predicted cell (a numerically singular kriging system, simulated here by
+    patching the prediction) stops map with exit 2 and a line naming the fit folder and the variable,
+    instead of maps with all-NaN bands and exit 0; no predictions.nc or maps/ are written."""
+    import bayesgeo.predict as pr
+    from _cli_helpers import assert_refused
+
+    real = pr.predict_targets
+
+    def nan_sd(*a, **kw):
+        pred = real(*a, **kw)
+        v = pred["sd"].values.copy()
+        v.flat[v.size // 2] = np.nan
+        return pred.assign(sd=(pred["sd"].dims, v))
+
+    monkeypatch.setattr(pr, "predict_targets", nan_sd)
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert_refused(capsys, ["map", folder, "--cell", "40", "--draws", "20"], "map",
+                   rf"{folder}: the prediction sd is NaN or infinite at 1 target\(s\)", inputs=[folder],
+                   absent=[folder / "predictions.nc", folder / "maps"])
+
+
+@pytest.mark.parametrize("value", ["nonsense", "tcp://", "threads please"])
+def test_bad_scheduler_refused_before_work(tmp_path, capsys, value):
+    """A --scheduler that is neither threads, synchronous nor an address (the
+    form dask.distributed takes: scheme://...) is refused before the fit is read, with one line (it raised a
+    ValueError from dask.distributed inside the prediction before)."""
+    from _cli_helpers import assert_refused
+
+    folder, _ = _fit_folder(tmp_path / "fit", draws=20)
+    assert_refused(capsys, ["map", folder, "--scheduler", value], "map",
+                   r"--scheduler: expected threads, synchronous or an address such as tcp://host:8786",
+                   inputs=[folder], absent=[folder / "predictions.nc"])
+
+
+@pytest.mark.parametrize("extra, pattern", [
+    (["--area", "40000,40000,40100,40100"], r"--area: the area lies outside the data"),
+    (["--area", "0,0,inf,5"], r"--area: xmin,ymin,xmax,ymax must be four finite numbers"),
+    (["--simulate", "5", "--cell", "1"], r"--simulate: \d+ targets; joint simulation is for at most"),
+])
+def test_bad_area_or_simulation_refused_before_predicting(tmp_path, capsys, monkeypatch, extra, pattern):
+    """An area far from the data, a non-finite rectangle and a too-large joint simulation are refused
+    before the grid is predicted (the prediction is replaced by a function that fails if called),
+    with one line and nothing written (behaviour check)."""
+    import bayesgeo.predict as pr
+    from _cli_helpers import assert_refused
+
+    def never(*a, **kw):
+        raise AssertionError("predicted before refusing")
+
+    monkeypatch.setattr(pr, "predict_targets", never)
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert_refused(capsys, ["map", folder, "--draws", "20", *extra], "map", pattern, inputs=[folder],
+                   absent=[folder / "predictions.nc", folder / "maps"])

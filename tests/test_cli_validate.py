@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 
 import numpy as np
+import pytest
 
 from bayesgeo.cli import main
 from bayesgeo.validation import binomial_bounds
@@ -102,9 +103,25 @@ def test_validate_reads_the_layout_from_a_study_file(tmp_path):
 
     rows = "".join(f"{i * 7 % 31},{i * 3},{i % 4 + 1}\n" for i in range(12))
     (tmp_path / "p.csv").write_text("x,y,conc\n" + rows)
-    (tmp_path / "s.toml").write_text('[data]\npath = "p.csv"\nvalue = "conc"\n'
+    (tmp_path / "s.toml").write_text('[data]\npath = "p.csv"\nvalue = "conc"\ncoords = "xy"\n'
                                      '[model]\ncovariance = "exponential"\nnugget = false\n')
     ds, study = _template(SimpleNamespace(study=str(tmp_path / "s.toml"), data=None))
     assert ds.sizes["obs"] == 12
     assert np.allclose(ds["x"].values, [i * 7 % 31 for i in range(12)])
     assert study.families == ["exponential"] and study["model"]["nugget"] is False
+
+
+@pytest.mark.parametrize("option, value, pattern", [
+    ("--replicates", "99999999999999999999", r"argument --replicates: expected an integer from 2 to 10000"),
+    ("--points", "3", r"argument --points: expected an integer from 8 to 100000, got 3"),
+    ("--workers", "0", r"argument --workers: expected an integer from 1 to 256, got 0"),
+    ("--draws", "-1", r"argument --draws: expected an integer from 1 to 1000000, got -1"),
+    ("--seed", str(2**70), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
+    ("--nu", "0", r"argument --nu: expected a number in \(0, 50\], got '0'"),
+])
+def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
+    """validate's numeric options are checked where they enter: exit 2, one line, no output folder."""
+    from _cli_helpers import assert_refused
+
+    assert_refused(capsys, ["validate", option, value, "--out", tmp_path / "v"], "validate", pattern,
+                   absent=[tmp_path / "v"])

@@ -103,8 +103,8 @@ def test_lonlat_lookalike_refused_unless_asked(write_csv):
 
 
 def test_lonlat_out_of_range(write_csv, grid_rows):
-    """Longitudes outside [-180, 180] degrees (the WGS 84 convention, common practice) are reported with their rows."""
-    with pytest.raises(InputError, match=r"column 'x' is outside \[-180, 180\] degrees at rows 12, 13, .*\(15 rows\)"):
+    """Longitudes outside both written conventions, -180..180 and 0..360 degrees (common practice), are reported with their rows."""
+    with pytest.raises(InputError, match=r"column 'x' is outside \[-180, 360\] degrees at rows 22, 23, 24, 25, 26 "):
         read_points(write_csv(grid_rows), value="conc", coords="lonlat")
 
 
@@ -172,3 +172,92 @@ def test_small_sites_kept_only_on_request(write_csv, grid_rows):
     tiny = write_csv(rows[:21] + rows[-2:], name="tiny.csv")
     with pytest.raises(InputError, match=r"only 2 points at site 'B'.*at least 3"):
         read_points(tiny, value="conc", site="site", small_sites="keep")
+
+
+def _degree_rows(lon, lat, names=("x", "y")):
+    rng = np.random.default_rng(5)
+    return [[*names, "v"]] + [[round(a, 4), round(b, 4), round(rng.normal(), 3)] for a, b in zip(lon, lat)]
+
+
+def test_continental_degrees_in_xy_columns_refused_under_auto(write_csv):
+    """Columns named x, y holding a 20 x 10 degree region are refused under --coords auto, naming the
+    columns, the extent as degrees in km and as planar units, and both choices. Check value: at latitude
+    45 a degree of longitude spans R cos(45) pi/180 = 78.6 km (spherical Earth, common practice), so 20
+    degrees are about 1,570 km."""
+    rng = np.random.default_rng(2)
+    lon, lat = rng.uniform(0.0, 20.0, 40), rng.uniform(40.0, 50.0, 40)
+    lon[:2], lat[:2] = (0.0, 20.0), (40.0, 50.0)
+    path = write_csv(_degree_rows(lon, lat))
+    before = path.read_bytes()
+    with pytest.raises(InputError, match=r"columns 'x', 'y' look like longitude/latitude .*as degrees about "
+                                         r"1,5[67]\d x 1,11\d km, as planar units a 20 x 10 site\); "
+                                         r"pass --coords lonlat .* or --coords xy"):
+        read_points(path)
+    assert path.read_bytes() == before
+    assert read_points(path, coords="xy").attrs["coords"] == "xy"
+    assert read_points(path, coords="lonlat").attrs["distance_units"] == "km"
+
+
+def test_planar_field_trial_in_latitude_longitude_columns_passes_with_xy(write_csv):
+    """Planar field-trial coordinates 1-47 in columns named latitude/longitude (as in real open data sets,
+    FACTS.md) are refused under auto and accepted with --coords xy as planar units (behaviour check)."""
+    rng = np.random.default_rng(4)
+    path = write_csv(_degree_rows(rng.integers(1, 48, 60).astype(float) + rng.random(60),
+                                  rng.integers(1, 48, 60).astype(float), names=("longitude", "latitude")))
+    with pytest.raises(InputError, match=r"'longitude', 'latitude' look like longitude/latitude"):
+        read_points(path)
+    ds = read_points(path, coords="xy")
+    assert ds.attrs["coords"] == "xy" and ds.attrs["distance_units"] == "coordinate units"
+
+
+def test_longitudes_0_360_accepted_under_lonlat(write_csv):
+    """Pacific longitudes written 0..360 (165-188 degrees) are accepted under --coords lonlat and kept as
+    written; distances across 180 equal the arc-length formula R * dlon (radians) on the equator."""
+    lon = np.linspace(165.0, 188.0, 24)
+    lat = np.tile([0.0, 1.0], 12)
+    ds = read_points(write_csv(_degree_rows(lon, lat)), coords="lonlat")
+    np.testing.assert_allclose(ds["x"].values, np.round(lon, 4))
+    assert ds.attrs["longitude_convention"] == "0..360"
+    from bayesgeo.geometry import EARTH_RADIUS_KM, cross_distance
+
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    d = cross_distance(xy[[0]], xy[[22]], "greatcircle")[0, 0]
+    assert d == pytest.approx(EARTH_RADIUS_KM * np.radians(xy[22, 0] - xy[0, 0]), rel=1e-9)
+
+
+def test_longitudes_across_180_become_continuous(write_csv):
+    """The same Pacific points written -180..180 (170..180 and -180..-172) read as one continuous range
+    170..188, so their bounding box, grid and hull do not span the globe (longitude is periodic in 360)."""
+    from bayesgeo.targets import grid_targets, hull_mask
+
+    rng = np.random.default_rng(6)
+    lon = rng.uniform(170.0, 188.0, 40)
+    lat = rng.uniform(-20.0, -10.0, 40)
+    written = np.where(lon > 180.0, lon - 360.0, lon)
+    ds = read_points(write_csv(_degree_rows(written, lat)), coords="lonlat")
+    x = ds["x"].values
+    assert x.min() >= 170.0 and x.max() <= 188.0
+    assert ds.attrs["longitude_convention"] == "0..360"
+    xy = np.column_stack([x, ds["y"].values])
+    grid = grid_targets(xy, cells=20, hull=True)
+    assert float(grid["x"].max() - grid["x"].min()) < 20.0
+    assert hull_mask(xy, np.array([[179.9, -15.0], [0.0, -15.0]])).tolist() == [True, False]
+
+
+def test_lonlat_latitude_out_of_range(write_csv):
+    """Latitudes beyond +-90 degrees (common practice) are refused under --coords lonlat with their rows."""
+    rows = _degree_rows(np.linspace(10, 12, 12), np.linspace(80, 91, 12))
+    with pytest.raises(InputError, match=r"column 'y' is outside \[-90, 90\] degrees at rows 13"):
+        read_points(write_csv(rows), coords="lonlat")
+
+
+def test_degree_check_looks_at_the_whole_file_not_one_site(write_csv):
+    """--only-site picks a site whose own coordinates fall inside the degree box; the file's other site
+    lies outside it, so the file is planar and is read under --coords auto (behaviour check)."""
+    rng = np.random.default_rng(9)
+    rows = [["x", "y", "v", "site"]]
+    rows += [[round(a, 2), round(b, 2), round(rng.normal(), 3), "inner"] for a, b in rng.uniform(0, 80, (15, 2))]
+    rows += [[round(a, 2), round(b, 2), round(rng.normal(), 3), "outer"]
+             for a, b in rng.uniform(500, 600, (15, 2))]
+    ds = read_points(write_csv(rows), site="site", only_site="inner")
+    assert ds.sizes["obs"] == 15 and ds.attrs["coords"] == "xy"

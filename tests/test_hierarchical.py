@@ -428,6 +428,7 @@ def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
     assert code == 0
     capsys.readouterr()
     got = xr.load_dataset(out / "predictions_P2.nc")
+    assert got.attrs["site"] == "P2"  # the label is recorded inside the per-site file
     basis, spec, _ = basis_from_fit(site_fit(hier, "P2"), draws=40)
     want = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous")
     np.testing.assert_allclose(got["mean"].values, want["mean"].values, rtol=1e-10)
@@ -564,3 +565,22 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     basis, spec, _ = basis_from_fit(one, draws=30)
     want = predict_targets(basis, read_target_points(pts), design_attrs=spec.design_attrs, scheduler="synchronous")
     np.testing.assert_allclose(written["mean"].values, want["mean"].values, rtol=1e-10)
+
+
+def test_site_spec_names_the_source():
+    """site_spec decodes through bayesgeo.posterior.fit_settings: a single-site settings attribute or a
+    cut one is one InputError line naming the source, not a JSONDecodeError."""
+    import json as _json
+
+    import xarray as _xr
+
+    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.validate import InputError
+
+    tree = _xr.DataTree()
+    tree.attrs["settings"] = _json.dumps({"format": "bayesgeo single-site fit", "model": {}})
+    with pytest.raises(InputError, match=r"^f.nc: not a bayesgeo several-site fit \(settings format "):
+        site_spec(tree, "f.nc")
+    tree.attrs["settings"] = '{"format": "bayesgeo several-site fit", "model": {"sites": ["a"'
+    with pytest.raises(InputError, match=r"^f.nc: the 'settings' attribute is not valid JSON"):
+        site_spec(tree, "f.nc")

@@ -50,6 +50,22 @@ def test_bad_study_and_existing_output_exit_2(tmp_path, capsys):
     assert "already exists" in capsys.readouterr().err
 
 
+@pytest.mark.parametrize("out_dir", [".", "data"])
+def test_study_output_never_swallows_its_inputs(tmp_path, capsys, out_dir):
+    """A study file whose [output] dir is its own folder (or the data's) with overwrite = true is
+    refused before any work, naming the study file's setting; the study file and data stay
+    byte-identical (output rules, docs/outputs.md)."""
+    path = write_tiny_study(tmp_path)
+    data = next(p for p in tmp_path.iterdir() if p.suffix == ".csv")
+    target = "." if out_dir == "." else data.name
+    path.write_text(path.read_text() + f'\n[output]\ndir = "{target}"\noverwrite = true\n')
+    before = {p.name: p.read_bytes() for p in tmp_path.iterdir()}
+    assert main(["run", str(path), "--json"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "[output] dir" in err[0] and ("contains the input" in err[0] or "is the input" in err[0])
+    assert {p.name: p.read_bytes() for p in tmp_path.iterdir()} == before
+
+
 def test_failed_check_control_flow(tmp_path, monkeypatch):
     """With the stage commands replaced by stand-ins (a fit and check that report non-convergence, exit 3 as
     documented for `bayesgeo check`), the run stops: exit 3, later stages and families skipped, the report

@@ -105,7 +105,8 @@ def test_save_and_load_round_trip(tree, tmp_path):
     """save_fit writes posterior.nc readable by xarray.open_datatree (netCDF4) with every group and
     attribute, summary.csv with the stated columns, fit.json and summary.txt; load_fit reads it back."""
     out = save_fit(tree, tmp_path / "fit1")
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "prior_check.png", "summary.csv", "summary.txt"]
+    assert sorted(p.name for p in out.iterdir()) == [".bayesgeo-output.json", "fit.json", "posterior.nc", "prior_check.png",
+                                                     "summary.csv", "summary.txt"]
     back = load_fit(out)
     xr.testing.assert_identical(back["posterior"].to_dataset(), tree["posterior"].to_dataset())
     assert back.attrs["settings"] == tree.attrs["settings"]
@@ -116,7 +117,7 @@ def test_save_and_load_round_trip(tree, tmp_path):
 
 def test_save_refuses_existing_and_is_atomic(tree, tmp_path, monkeypatch):
     """An existing folder is refused without overwrite; a crash while writing leaves no folder and no
-    temporary debris (atomic rename, bayesgeo.io.atomic_dir)."""
+    temporary debris (atomic rename, bayesgeo.outputs.new_folder)."""
     import bayesgeo.posterior as post_mod
 
     save_fit(tree, tmp_path / "a")
@@ -147,3 +148,27 @@ def test_load_refuses_a_missing_fit(tmp_path):
     """load_fit on a folder without posterior.nc: one-line InputError."""
     with pytest.raises(InputError, match="no fit found"):
         load_fit(tmp_path)
+
+
+@pytest.mark.parametrize("settings, pattern", [
+    (None, r"^f.nc: no 'settings' attribute: not a bayesgeo fit"),
+    ('{"model": {"covariance": "exp', r"^f.nc: the 'settings' attribute is not valid JSON \(Unterminated string"),
+    ('"a string"', r"^f.nc: the 'settings' attribute holds no 'model' table"),
+    ('{"format": "other", "model": {}}', r"^f.nc: settings of format 'other'"),
+    ('{"model": {"covariance": "exponential"}}', r"^f.nc: the model settings cannot be decoded \(missing "),
+])
+def test_settings_decoded_in_one_place(settings, pattern):
+    """fit_settings is the one place the settings attribute is parsed; fit_spec builds on it, and every
+    failure is one InputError line naming the source (JSON syntax per RFC 8259: a cut string is invalid)."""
+    from bayesgeo.posterior import fit_settings
+
+    tree = xr.DataTree()
+    if settings is not None:
+        tree.attrs["settings"] = settings
+    with pytest.raises(InputError, match=pattern):
+        fit_spec(tree, "f.nc")
+    if "cannot be decoded" in pattern:  # valid JSON with a model table: decoding the settings succeeds
+        assert fit_settings(tree, "f.nc")["model"] == {"covariance": "exponential"}
+    else:
+        with pytest.raises(InputError, match=pattern):
+            fit_settings(tree, "f.nc")

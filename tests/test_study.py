@@ -179,3 +179,48 @@ def test_areas_list_and_table(study_dir):
         _parse(SITES + '\n[prediction]\narea = [[0, 0, 1, 1], [3, 2, 2, 3]]\n', study_dir)
     with pytest.raises(InputError, match=r"\[prediction\] area: .*missing.csv: no such file"):
         _parse(SITES + '\n[prediction]\narea = {a-yard = "missing.csv"}\n', study_dir)
+
+
+@pytest.mark.parametrize("extra, table, key, line, msg", [
+    ("[sampler]\nchains = 99999999999999999999\n", "sampler", "chains", 12, "expected an integer from 1 to 64"),
+    ("[sampler]\nseed = 1180591620717411303424\n", "sampler", "seed", 12, "from 0 to 9223372036854775807"),
+    ("[sampler]\nseed = -1\n", "sampler", "seed", 12, "expected an integer from 0 to"),
+    ("[sampler]\ndraws = 0\n", "sampler", "draws", 12, "expected an integer from 10 to"),
+    ("[sampler]\ntune = -5\n", "sampler", "tune", 12, "expected an integer from 0 to"),
+    ("[sampler]\ntarget_accept = nan\n", "sampler", "target_accept", 12, r"in \(0, 1\)"),
+    ("[explore]\nbins = 0\n", "explore", "bins", 12, "expected an integer from 2 to"),
+    ("[explore]\npermutations = 10000000000\n", "explore", "permutations", 12, "from 0 to 100000"),
+    ("[explore]\nmax_lag = inf\n", "explore", "max_lag", 12, "expected a finite number > 0, got inf"),
+    ("[explore]\ntrend = 7\n", "explore", "trend", 12, "expected an integer from 0 to 3"),
+    ("[check]\nreplicates = 100000000000\n", "check", "replicates", 12, "from 10 to 100000"),
+    ("[prediction]\ndraws = 0\n", "prediction", "draws", 12, "positive integer or \"all\""),
+    ("[prediction]\ndraws = 99999999999999\n", "prediction", "draws", 12, "from 1 to"),
+    ("[prediction]\ncell = -inf\n", "prediction", "cell", 12, "expected a finite number > 0"),
+    ("[prediction]\nmargin = nan\n", "prediction", "margin", 12, "expected a finite number >= 0"),
+    ("[prediction]\nthresholds = [1.0, inf]\n", "prediction", "thresholds", 12, "expected a finite number, got inf"),
+    ("[prediction]\narea = [0, 0, inf, 5]\n", "prediction", "area", 12, "expected a finite number, got inf"),
+    ("[model.priors]\nrange = [-1.0, 0.05]\n", "model.priors", "range", 12, "value .first number.: expected a finite"),
+    ("[model.priors]\nsd = [1.0, nan]\n", "model.priors", "sd", 12, r"probability .second number.: .*\(0, 1\)"),
+    ("[model.priors]\nrange = [1e400, 0.05]\n", "model.priors", "range", 12, "got inf"),
+])
+def test_numeric_settings_bounded(study_dir, extra, table, key, line, msg):
+    """Every number in a study file is checked where the file is read, with the bounds the command
+    line uses (bayesgeo.validate.INT_LIMITS/FLOAT_LIMITS), so none fails mid-run: huge integers (which
+    TOML 1.0 limits to 64 bits but Python's tomllib accepts), negatives, zero, and the TOML float
+    values nan and inf (toml.io v1.0.0, "Float"). The message names file, line, table and key."""
+    text = MINIMAL + "\n" + extra
+    with pytest.raises(InputError, match=msg) as err:
+        _parse(text, study_dir)
+    s = str(err.value)
+    assert f"study.toml, line {line}: [{table}] {key}: " in s
+    assert "\n" not in s
+
+
+def test_model_neighbours_and_nu_bounded(study_dir):
+    """[model] neighbours and nu are bounded like --neighbours and --nu (nu in (0, 50], the
+    registry's range for the general Matérn family)."""
+    with pytest.raises(InputError, match=r"line 11: \[model\] neighbours: expected an integer from 1 to 200, got 0"):
+        _parse(MINIMAL + 'approx = "nn"\nneighbours = 0\n', study_dir)
+    text = MINIMAL.replace('"exponential"]', '"matern"]') + "nu = 1e9\n"
+    with pytest.raises(InputError, match=r"line 10: \[model\] nu: expected a number in \(0, 50\], got 1000000000.0"):
+        _parse(text, study_dir)

@@ -56,7 +56,7 @@ def test_point_file_keeps_order_rows_and_covariates(tmp_path):
 
 
 @pytest.mark.parametrize("text,match", [
-    ("x,y\n1,2\n3,\n", r"row 3, column 'y': '' is not a number"),
+    ("x,y\n1,2\n3,\n", r"row 3, column 'y': the cell is empty"),
     ("a,b\n1,2\n", r"no column 'x'"),
     ("x,y\n", r"no target points"),
     ("x,y\n1,inf\n", r"row 2, column 'y': 'inf' is not a finite number"),
@@ -98,6 +98,100 @@ def test_area_option_rectangle_or_file(tmp_path):
     for bad in ("5,5,1,1", "1,2,3", "a,b,c,d"):
         with pytest.raises(InputError, match="--area"):
             tg.area_from_option(bad)
+    for bad in ("0,0,inf,5", "nan,0,1,1", "-inf,0,1,1"):
+        with pytest.raises(InputError, match="four finite numbers"):
+            tg.area_from_option(bad)
     f.write_text("x,y\n0,0\n1,1\n2,2\n")
     with pytest.raises(InputError, match="positive area"):
+        tg.read_area(f)
+
+
+def _basis(xy, metric="euclidean"):
+    from bayesgeo._kriging import make_basis
+
+    n = len(xy)
+    z = np.sin(np.asarray(xy)[:, 0] / 50.0)
+    return make_basis(xy, z, np.ones((n, 1)), covariance="exponential", scale=30.0, partial_sill=1.0, nugget=0.1,
+                      beta=[0.0], metric=metric)
+
+
+def test_nearest_data_distance_and_extent_match_brute_force():
+    """k-d tree nearest distances and the hull diameter equal brute-force minima/maxima of
+    scipy.spatial.distance.cdist (planar) and of a haversine matrix (great-circle, across 180 degrees)."""
+    from scipy.spatial.distance import cdist
+
+    from bayesgeo.geometry import cross_distance
+
+    rng = np.random.default_rng(11)
+    xy = rng.uniform(0, 100, (60, 2))
+    new = rng.uniform(-300, 400, (25, 2))
+    np.testing.assert_allclose(tg.nearest_data_distance(xy, new), cdist(new, xy).min(axis=1), rtol=1e-12)
+    assert tg.data_extent(xy) == pytest.approx(cdist(xy, xy).max(), rel=1e-12)
+    ll = np.column_stack([rng.uniform(170, 190, 50), rng.uniform(-20, -5, 50)])
+    new_ll = np.column_stack([rng.uniform(-180, 180, 30), rng.uniform(-60, 60, 30)])
+    np.testing.assert_allclose(tg.nearest_data_distance(ll, new_ll, "greatcircle"),
+                               cross_distance(new_ll, ll, "greatcircle").min(axis=1), rtol=1e-9, atol=1e-9)
+    assert tg.data_extent(ll, "greatcircle") == pytest.approx(cross_distance(ll, ll, "greatcircle").max(), rel=1e-9)
+
+
+def test_area_far_from_the_data_is_refused_and_near_area_accepted():
+    """An area 4,000 units from data spanning 100 is refused naming both distances; an area over the data
+    is averaged (behaviour check)."""
+    from bayesgeo.predict import area_average
+
+    rng = np.random.default_rng(12)
+    xy = rng.uniform(0, 100, (40, 2))
+    basis = _basis(xy)
+    far = tg.discretise_area(tg.parse_rectangle("4000,4000,4100,4100"), points=100)
+    with pytest.raises(InputError, match=r"--area: the area lies outside the data: its nearest point is 5,5\d\d "
+                                         r"distance units from the nearest data point, more than half the data's "
+                                         r"extent \(1\d\d(\.\d)? distance units\)"):
+        area_average(basis, far, np.ones((len(far), 1)))
+    near = tg.discretise_area(tg.parse_rectangle("20,20,80,80"), points=100)
+    assert np.isfinite(area_average(basis, near, np.ones((len(near), 1)))["mean"])
+
+
+def test_far_lonlat_area_refused_in_km():
+    """A lon/lat area about 4,000 km from Pacific data (written 0..360) is refused in km; distance check:
+    the nearest points are on the equator 36+ degrees of longitude apart, about R * 0.63 = 4,000 km
+    (arc-length formula)."""
+    from bayesgeo.predict import area_average
+
+    rng = np.random.default_rng(13)
+    xy = np.column_stack([rng.uniform(170, 190, 40), rng.uniform(-5, 5, 40)])
+    basis = _basis(xy, "greatcircle")
+    far = tg.discretise_area(tg.parse_rectangle("-135,-5,-125,5"), points=100)
+    with pytest.raises(InputError, match=r"its nearest point is [34],\d\d\d km from the nearest data point"):
+        area_average(basis, far, np.ones((len(far), 1)))
+    across = tg.discretise_area(tg.parse_rectangle("-178,-3,-172,3"), points=100)  # the same data, other convention
+    assert np.isfinite(area_average(basis, across, np.ones((len(across), 1)))["mean"])
+
+
+def test_far_target_points_warn_with_rows_and_distances(tmp_path):
+    """--points farther from the data than the data's extent are predicted with a one-line warning naming
+    their rows and distance, recorded in the predictions' attributes (behaviour check)."""
+    from bayesgeo.csvtable import InputWarning
+    from bayesgeo.predict import predict_targets
+
+    rng = np.random.default_rng(14)
+    xy = rng.uniform(0, 100, (40, 2))
+    f = tmp_path / "pts.csv"
+    f.write_text("x,y\n50,50\n5000,0\n60,40\n-900,-900\n")
+    targets = tg.read_target_points(f)
+    with pytest.warns(InputWarning, match=r"pts\.csv: 2 target points lie farther from the nearest data point than "
+                                          r"the data's extent \(1\d\d(\.\d)? distance units\), up to 4,9\d\d distance units "
+                                          r"\(rows 3, 5\)"):
+        pred = predict_targets(_basis(xy), targets, scheduler="synchronous")
+    assert "rows 3, 5" in pred.attrs["warning"]
+    assert np.all(np.isfinite(pred["mean"].values))
+
+
+def test_target_files_refuse_bad_bytes_and_ragged_rows(tmp_path):
+    """Target and area files share the strict CSV reader: non-UTF-8 bytes and ragged rows are refused with row and column (behaviour check)."""
+    f = tmp_path / "t.csv"
+    f.write_bytes(b"x,y\n1,2\n3,4\xff\n")
+    with pytest.raises(InputError, match=r"t\.csv: row 3, column 'y': byte 0xff is not UTF-8"):
+        tg.read_target_points(f)
+    f.write_text("x,y\n1,2\n3,4,5\n")
+    with pytest.raises(InputError, match=r"t\.csv: row 3 has 3 fields but the header has 2"):
         tg.read_area(f)

@@ -262,3 +262,14 @@ def test_intercept_ranks_uniform_under_the_exact_conditional_posterior():
     assert spec.priors.beta_sd == 2.5  # the documented default (bayesgeo.priors.DEFAULT_BETA_SD)
     assert rank_uniformity(good, L, bins=10)["pvalue"] > 0.001
     assert rank_uniformity(bad, L, bins=10)["pvalue"] < 1e-6
+
+
+def test_too_few_draws_for_the_ranks_refused():
+    """Each SBC rank is taken among L thinned draws (Talts et al. 2018, Algorithm 1), so chains x draws
+    below L is bad input named by option, not an error deep inside the run."""
+    from bayesgeo.validate import InputError
+    from bayesgeo.validation import QUICK, with_settings
+
+    with pytest.raises(InputError, match=r"--draws: 20 draws per chain x 2 chains is fewer than the 49 .* --draws 25"):
+        with_settings(QUICK, draws=20)
+    assert with_settings(QUICK, draws=25).draws == 25

@@ -22,7 +22,8 @@ def add_data_options(p) -> None:
     p.add_argument("--only-site", metavar="NAME", help="analyse only this site's rows (with --site)")
     p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
     p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto",
-                   help="planar coordinates (xy) or degrees (lonlat: great-circle km); auto refuses degree-like values")
+                   help="planar coordinates (xy) or degrees (lonlat: great-circle km, longitudes -180..180 or 0..360); "
+                        "auto refuses coordinates that could be degrees, see docs/data_files.md")
     p.add_argument("--duplicates", choices=("error", "mean"), default="error",
                    help="points at the same location: error (default) or average them")
     p.add_argument("--units", metavar="TEXT", help="units of the measured value, e.g. mg/kg")
@@ -43,8 +44,14 @@ def read_data(args):
 
 
 
+#: Input warnings printed during this command (see ``bayesgeo.cli._one_line_warnings``); added to --json output.
+WARNINGS: list[str] = []
+
+
 def emit_json(obj) -> None:
-    """Print one JSON object on stdout."""
+    """Print one JSON object on stdout (with ``"warnings"``: the input warnings printed on stderr, if any)."""
+    if WARNINGS and isinstance(obj, dict):
+        obj = {**obj, "warnings": [*obj.get("warnings", []), *WARNINGS]}
     sys.stdout.write(json.dumps(to_jsonable(obj)) + "\n")
     sys.stdout.flush()
 
@@ -79,11 +86,12 @@ def load_fit_folder(folder, site: str | None = None):
         No readable fit; a several-site fit without ``--site``; ``--site`` on a single-site fit;
         an unknown site (the message lists the known ones).
     """
-    from bayesgeo.posterior import fit_spec, read_fit_file
+    from bayesgeo.fitfile import read_fit
+    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings
     from bayesgeo.validate import InputError
 
-    tree = read_fit_file(folder)
-    if json.loads(tree.attrs.get("settings", "{}")).get("format") == "bayesgeo several-site fit":
+    tree = read_fit(folder)  # settings, groups, sizes and finite draws checked once, naming the file
+    if fit_settings(tree).get("format") == SEVERAL_SITE_FORMAT:
         from bayesgeo.hierarchical import site_fit, site_spec
 
         if site is None:
@@ -92,5 +100,4 @@ def load_fit_folder(folder, site: str | None = None):
         return site_fit(tree, site)
     if site is not None:
         raise InputError(f"--site: {folder} holds a single-site fit; drop --site")
-    fit_spec(tree)
     return tree

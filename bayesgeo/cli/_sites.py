@@ -16,6 +16,7 @@ __all__ = ["add_site_arguments", "run_sites"]
 def add_site_arguments(p) -> None:
     """``--pooling``, ``--min-points``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
     from bayesgeo.hierarchical import CENTRED_MIN_POINTS, MIN_POINTS_POLICIES, PARAMETRISATIONS, POOLINGS
+    from bayesgeo.validate import int_option
 
     p.add_argument("--pooling", choices=POOLINGS, default="hierarchical",
                    help="with --site: share covariance parameters through a population (hierarchical, default), "
@@ -27,7 +28,7 @@ def add_site_arguments(p) -> None:
                    help="with --site and hierarchical pooling: sample the site effects non-centred (default), "
                         f"centred, or auto (centred for sites of at least {CENTRED_MIN_POINTS} points); the "
                         "posterior is the same, only sampling speed differs")
-    p.add_argument("--design-neighbours", type=int, default=6, metavar="K",
+    p.add_argument("--design-neighbours", type=int_option("design_neighbours"), default=6, metavar="K",
                    help="with --site: grid nodes per side (K x K) used by the sampling-design aid (default 6)")
 
 
@@ -50,11 +51,11 @@ def run_sites(args, ds) -> int:
     from bayesgeo.diagnostics import check_convergence
     from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, summary_text_sites, with_site_diagnostics
     from bayesgeo.hierarchical import fit_sites, site_spec
-    from bayesgeo.io import refuse_existing
+    from bayesgeo.outputs import claim
     from bayesgeo.priors import Priors
     from bayesgeo.validate import InputError, check_positive_int
 
-    refuse_existing(args.out, args.overwrite)
+    claim(args.out, overwrite=args.overwrite, inputs=[args.data])
     if _opt(args, "prior_nugget", None):
         raise InputError("--prior-nugget: the several-site model puts its prior on the nugget fraction of the sill "
                          "(see docs/hierarchical.md); drop --prior-nugget")
@@ -73,11 +74,13 @@ def run_sites(args, ds) -> int:
         neighbours=_opt(args, "neighbours", None),
     )
     show = not args.json and sys.stderr.isatty()
+    # stage lines for long runs (bayesgeo.workload announced them) even when stderr is a log file
+    stages = show or (not args.json and bool((getattr(args, "workload", None) or {}).get("message")))
     sample_kw = dict(sampler=_opt(args, "sampler", "nutpie"), chains=_opt(args, "chains", 4),
                      draws=_opt(args, "draws", 1000), tune=_opt(args, "tune", 1000),
                      target_accept=_opt(args, "target_accept", 0.9), progressbar=show)
-    if show:
-        print(f"fitting the {pooling} model ...", file=sys.stderr)
+    if stages:
+        print(f"fitting the {pooling} model ...", file=sys.stderr, flush=True)
     tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None),
                      parametrisation=_opt(args, "parametrisation", "noncentred"), **model_kw, **sample_kw)
     seed = int(json.loads(tree.attrs["settings"])["sampler"]["seed"])  # the independent fit reuses it
@@ -86,7 +89,7 @@ def run_sites(args, ds) -> int:
     shrink = design = None
     extra = {}
     if pooling != "independent":
-        if show:
+        if stages:
             print("fitting each site independently for the shrinkage table ...", file=sys.stderr)
         indep = fit_sites(ds, pooling="independent", seed=seed, **model_kw, **sample_kw)
         shrink = shrinkage_table(tree, indep)
@@ -99,6 +102,7 @@ def run_sites(args, ds) -> int:
     report = site_report(tree, shrinkage=shrink, design=design)
     report.update(extra)
     report["out"] = str(args.out)
+    report["workload"] = getattr(args, "workload", None)  # bayesgeo.workload plan, from bayesgeo.cli.fit
     if args.json:
         emit_json(report)
     else:

@@ -1,7 +1,8 @@
 """``bayesgeo check DIR``: convergence diagnostics of a fit folder, with a verdict and figures.
 
-Reads ``DIR/posterior.nc``; writes ``DIR/diagnostics/`` (replaced as a whole, atomically) with
-``diagnostics.json`` and the figures. Exit status 0 on pass or warn, 3 on fail, 2 on bad input.
+Reads ``DIR/posterior.nc``; writes ``DIR/diagnostics/`` (atomically) with ``diagnostics.json``
+and the figures. An earlier ``diagnostics/`` is left as it is (the verdict is still computed and
+printed) unless ``--overwrite`` replaces it (docs/outputs.md). Exit status 0 on pass or warn, 3 on fail, 2 on bad input.
 
 A several-site fit (``bayesgeo fit --site``) keeps one verdict for the whole posterior (every
 site's parameters and every hyperparameter) and adds ``sites`` (one block per site: worst R-hat,
@@ -19,12 +20,16 @@ POSTERIOR_FILE = "posterior.nc"
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import int_option
+
     p.add_argument("dir", metavar="DIR", help=f"fit folder holding {POSTERIOR_FILE}")
     p.add_argument("--var", metavar="NAME", action="append", default=[],
                    help="posterior variable to check (repeatable; default all)")
-    p.add_argument("--max-lag", type=int, default=None, metavar="K",
+    p.add_argument("--max-lag", type=int_option("autocorr_lag"), default=None, metavar="K",
                    help="largest lag of the autocorrelation figure (default: 3 x the largest IAT, at least 20)")
     p.add_argument("--no-figures", action="store_true", help="skip the figures (diagnostics.json only)")
+    p.add_argument("--overwrite", action="store_true",
+                   help=f"replace {DIAGNOSTICS_DIR}/ from an earlier check (kept otherwise; the verdict is printed either way)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
 
 
@@ -40,12 +45,10 @@ def read_posterior(folder):
     path = folder / POSTERIOR_FILE
     if not path.is_file():
         raise InputError(f"{path}: not found; run a fit into {folder} first")
-    from bayesgeo.io import read_datatree
+    from bayesgeo.fitfile import read_fit
 
-    tree = read_datatree(path, what="NetCDF posterior")
-    if "posterior" not in tree.children:
-        raise InputError(f"{path}: no 'posterior' group; expected the output of a bayesgeo fit")
-    return tree
+    # a bare posterior from another program is fine; a bayesgeo fit (settings present) is checked in full
+    return read_fit(path, require_fit=False)
 
 
 def run(args) -> int:
@@ -55,15 +58,22 @@ def run(args) -> int:
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json, print_table, progress
     from bayesgeo.diagnostics import CAUTION, check_convergence, site_convergence
-    from bayesgeo.io import atomic_dir, write_json
+    from bayesgeo.outputs import check_addable
     from bayesgeo.validate import InputError
 
     folder = Path(args.dir)
     tree = read_posterior(folder)
     if args.max_lag is not None and args.max_lag < 1:
         raise InputError(f"--max-lag: expected an integer >= 1, got {args.max_lag}")
-    bar = progress(total=3 if not args.no_figures else 2, desc="check", enabled=not args.json)
-    conv = check_convergence(tree, var_names=args.var or None)
+    outdir = folder / DIAGNOSTICS_DIR
+    keep = (outdir.exists() or outdir.is_symlink()) and not args.overwrite
+    if not keep:
+        check_addable(folder, DIAGNOSTICS_DIR, overwrite=args.overwrite)
+    bar = progress(total=2 if keep or args.no_figures else 3, desc="check", enabled=not args.json)
+    try:
+        conv = check_convergence(tree, var_names=args.var or None)
+    except InputError as err:  # the posterior's shape: name the file it came from
+        raise InputError(f"{folder / POSTERIOR_FILE}: {err}") from None
     bar.update()
     result = conv.to_json()
     from bayesgeo.posterior import approximation_of
@@ -72,9 +82,33 @@ def run(args) -> int:
     by_site = site_convergence(tree, conv)
     if by_site is not None:
         result.update(sites=by_site["sites"], population=by_site["population"], site_note=by_site["note"])
+    if keep:
+        result.update(posterior=str(folder / POSTERIOR_FILE), diagnostics=None, figures=[], figure_error=None,
+                      kept=str(outdir))
+        bar.update()
+    else:
+        _write(folder, args, tree, result, bar)
+    bar.close()
+    if result["figure_error"]:
+        print(f"bayesgeo check: warning: figures not drawn ({result['figure_error']})", file=sys.stderr)
+
+    if args.json:
+        emit_json(result)
+    else:
+        _print_human(conv, result, print_table, CAUTION)
+    return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
+
+
+def _write(folder, args, tree, result: dict, bar) -> None:
+    """Write ``DIAGNOSTICS_DIR`` (diagnostics.json and the figures) into the fit folder; adds the
+    file names to ``result``."""
+    from bayesgeo.io import write_json
+    from bayesgeo.outputs import add_to_folder
+    from bayesgeo.validate import InputError
+
     outdir = folder / DIAGNOSTICS_DIR
     figures, figure_error = [], None
-    with atomic_dir(outdir, overwrite=True) as tmp:
+    with add_to_folder(folder, DIAGNOSTICS_DIR, overwrite=args.overwrite, kind="dir") as tmp:
         if not args.no_figures:
             from bayesgeo.diagnostic_figures import write_diagnostic_figures
 
@@ -90,15 +124,6 @@ def run(args) -> int:
                       figures=figures, figure_error=figure_error)
         write_json(tmp / "diagnostics.json", result)
         bar.update()
-    bar.close()
-    if figure_error:
-        print(f"bayesgeo check: warning: figures not drawn ({figure_error})", file=sys.stderr)
-
-    if args.json:
-        emit_json(result)
-    else:
-        _print_human(conv, result, print_table, CAUTION)
-    return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
 
 
 def _print_human(conv, result, print_table, caution) -> None:
@@ -136,7 +161,10 @@ def _print_human(conv, result, print_table, caution) -> None:
     print()
     print(f"verdict: {conv.verdict.upper()}" + (" (whole posterior)" if "sites" in result else ""))
     print(f"caution: {caution}")
-    print(f"wrote {result['diagnostics']}" + (f" and {len(result['figures'])} figures" if result["figures"] else ""))
+    if result.get("kept"):
+        print(f"note: {result['kept']} from an earlier check was left as it is; pass --overwrite to replace it")
+    else:
+        print(f"wrote {result['diagnostics']}" + (f" and {len(result['figures'])} figures" if result["figures"] else ""))
 
 
 def _print_sites(result: dict, print_table) -> None:

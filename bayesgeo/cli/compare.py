@@ -62,6 +62,21 @@ def _verdicts(name, tree) -> list[str]:
     return []
 
 
+def _refuse_non_finite(res, folders: dict) -> None:
+    """A fit whose elpd, its se or p_loo is NaN or infinite is never ranked: exit 2 naming the fit folder."""
+    import math
+
+    from bayesgeo.validate import InputError
+
+    for k, name in enumerate(res["fit"].values):
+        for var in ("elpd_loo", "se", "p_loo"):
+            value = float(res[var].values[k])
+            if not math.isfinite(value):
+                raise InputError(f"{folders.get(str(name), name)}: {var} = {value} (leave-one-out densities not "
+                                 "finite for some points); the fits cannot be ranked: check this fit ('bayesgeo "
+                                 "check') and its data")
+
+
 def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None,
                  progress=None) -> tuple[dict, object, dict]:
     """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs).
@@ -85,6 +100,7 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
         if bar is not None:
             bar.update(1)
     res = compare_fits(trees, site=site, progress=progress)
+    _refuse_non_finite(res, dict(zip(names, dirs)))
     if store:
         from bayesgeo.modelcheck import store_log_likelihood
 
@@ -128,11 +144,12 @@ def run(args) -> int:
     from pathlib import Path
 
     from bayesgeo.cli._common import emit_json, print_table, progress, to_jsonable
-    from bayesgeo.io import atomic_dir, refuse_existing, write_json
+    from bayesgeo.io import write_json
+    from bayesgeo.outputs import claim, new_folder
 
     out = Path(args.out) if args.out else None
     if out is not None:
-        refuse_existing(out, args.overwrite)
+        claim(out, overwrite=args.overwrite, inputs=args.dirs)
     bar = progress(total=2 * len(args.dirs), desc="compare", enabled=not args.json)
     with bar:
         obj, res, pits = build_result(args.dirs, bar=bar, store=args.store, site=args.site,
@@ -142,7 +159,7 @@ def run(args) -> int:
         from bayesgeo.check_figures import loo_pit_figure
         from bayesgeo.figures import save_figure
 
-        with atomic_dir(out, overwrite=args.overwrite) as tmp:
+        with new_folder(out, overwrite=args.overwrite) as tmp:
             table = res[["rank", "covariance", "pooling", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
                          "pareto_k_high", "pareto_k_max"]].to_dataframe()
             table.to_csv(tmp / "comparison.csv", float_format="%.10g")

@@ -115,10 +115,10 @@ def run(args) -> int:
 
     from bayesgeo.cli._common import emit_json
     from bayesgeo.cli.run import print_result, stage_logger
-    from bayesgeo.io import refuse_existing
+    from bayesgeo.outputs import claim
     from bayesgeo.pipeline import run_study
 
-    refuse_existing(args.out, args.overwrite)
+    claim(args.out, overwrite=args.overwrite)
     log = stage_logger(not args.json)
     if log:
         log(f"demo: invented data, parcels {', '.join(DEMO_PARCELS)} of Marrowby Works, hierarchical model"

@@ -6,8 +6,10 @@ HELP = "write the demo data set (invented scenario, simulated from known paramet
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import int_option
+
     p.add_argument("--out", required=True, metavar="FILE", help="CSV to write; true parameters go beside it as <stem>.truth.json")
-    p.add_argument("--seed", type=int, default=None, help="seed (default: the demo's own)")
+    p.add_argument("--seed", type=int_option("seed"), default=None, help="seed (default: the demo's own)")
     p.add_argument("--overwrite", action="store_true", help="replace existing files")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
 

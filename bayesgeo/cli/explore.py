@@ -6,8 +6,8 @@ Output folder (default ``<data stem>-explore``; an existing folder is refused un
 * one site (no ``--site``): ``semivariogram.png``, ``correlogram.png``, ``directional.png``,
   ``semivariogram.csv``, ``correlogram.csv``, ``directional.csv``, ``fits.csv`` and
   ``explore.json`` directly in the folder;
-* several sites (``--site COL``): the same figures and tables in one sub-folder per site (the
-  label with characters other than letters, digits, ``.``, ``_`` and ``-`` replaced by ``_``),
+* several sites (``--site COL``): the same figures and tables in one sub-folder per site (named
+  by :func:`bayesgeo.sitenames.site_file_name`; each CSV has a ``site`` column with the label),
   ``explore.json`` and a ``fits.csv`` of every site (with a ``site`` column) at the top.
 
 ``explore.json`` holds the same object ``--json`` prints. Its top-level statistics (``n``,
@@ -18,7 +18,6 @@ label to its own object of the same keys. NaN (an empty bin, no envelope) is wri
 
 from __future__ import annotations
 
-import re
 import warnings
 
 HELP = "semivariogram, correlogram, directions and quick covariance fits (exploratory)"
@@ -48,35 +47,33 @@ _TOLERANCE = 22.5
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import add_data_options
     from bayesgeo.quickfit import QUICK_FAMILIES
+    from bayesgeo.validate import float_option, int_option
 
     p.description = DESCRIPTION
     add_data_options(p)
-    p.add_argument("--trend", type=int, default=0, metavar="ORDER",
+    p.add_argument("--trend", type=int_option("trend"), default=0, metavar="ORDER",
                    help="polynomial trend order in the coordinates, 0-3 (default 0: constant mean)")
     p.add_argument("--transform", choices=("none", "log"), default="none",
                    help="analyse the values as they are (none) or their natural logarithm (log; positive values only)")
-    p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
-    p.add_argument("--max-lag", type=float, default=None, metavar="D",
+    p.add_argument("--bins", type=int_option("bins"), default=15, metavar="N", help="number of lag bins (default 15)")
+    p.add_argument("--max-lag", type=float_option("positive"), default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
-    p.add_argument("--permutations", type=int, default=99, metavar="N",
+    p.add_argument("--permutations", type=int_option("permutations"), default=99, metavar="N",
                    help="random permutations for the envelopes and p-values (default 99; 0 for none)")
     p.add_argument("--estimator", choices=("classical", "cressie-hawkins"), default="classical",
                    help="semivariogram estimator (default classical)")
     p.add_argument("--covariance", nargs="+", choices=QUICK_FAMILIES, default=None, metavar="FAMILY",
                    help=f"covariance families to fit (default all: {', '.join(QUICK_FAMILIES)})")
-    p.add_argument("--seed", type=int, default=1, metavar="S", help="seed of the permutations (default 1)")
+    p.add_argument("--seed", type=int_option("seed"), default=1, metavar="S", help="seed of the permutations (default 1)")
     p.add_argument("--out", metavar="DIR", default=None, help="output folder (default <data stem>-explore)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
 
 
-def _slug(label: str, taken: set[str]) -> str:
-    base = re.sub(r"[^A-Za-z0-9._-]+", "_", label).strip("._") or "site"
-    slug, k = base, 2
-    while slug in taken:
-        slug, k = f"{base}_{k}", k + 1
-    taken.add(slug)
-    return slug
+def _slug(label: str) -> str:
+    from bayesgeo.sitenames import site_file_name
+
+    return site_file_name(label)
 
 
 def _vals(da) -> list:
@@ -106,8 +103,10 @@ def _fits_json(fits) -> dict:
     return out
 
 
-def _analyse_site(part, args, families, bar) -> tuple[dict, dict]:
-    """Statistics and fits of one site: (JSON object, xarray results for files)."""
+def _analyse_site(part, args, families, bar, log=None) -> tuple[dict, dict]:
+    """Statistics and fits of one site: (JSON object, xarray results for files); ``log(text)`` announces
+    each long step (large inputs)."""
+    log = log or (lambda text: None)
     from bayesgeo import explore
     from bayesgeo.quickfit import quick_fits
     from bayesgeo.trend import fit_trend
@@ -120,15 +119,19 @@ def _analyse_site(part, args, families, bar) -> tuple[dict, dict]:
             part = fit_trend(part, args.trend, args.covariate)
             trend_info["r_squared"] = float(part.attrs["trend_r_squared"])
         common = {"bins": args.bins, "max_lag": args.max_lag}
+        log(f"semivariogram ({args.permutations} permutations)")
         vg = explore.semivariogram(part, estimator=args.estimator, permutations=args.permutations,
                                    seed=args.seed, **common)
         bar.update(1)
+        log(f"correlogram ({args.permutations} permutations)")
         cg = explore.correlogram(part, permutations=args.permutations, seed=args.seed, **common)
         bar.update(1)
+        log("directional semivariograms")
         dvg = explore.directional_semivariograms(part, azimuths=_AZIMUTHS, tolerance=_TOLERANCE,
                                                  estimator=args.estimator, **common)
         bar.update(1)
     notes += sorted({str(w.message) for w in caught if issubclass(w.category, explore.FewPairsWarning)})
+    log("quick covariance fits")
     fits = quick_fits(part, vg, families, trend=args.trend, covariates=args.covariate)
     bar.update(len(families))
     if "ml_skipped" in fits.attrs:
@@ -182,19 +185,24 @@ def _write_site(folder, res: dict, label: str) -> list[str]:
         figures.save_figure(fig, folder / name)
     for name in ("semivariogram", "correlogram", "directional", "fits"):
         frame = res[name].to_dataframe()
+        if label:
+            frame.insert(0, "site", label)  # the label, which the folder name may abbreviate
         frame.to_csv(folder / f"{name}.csv", float_format="%.10g")
     return [*figs, *(f"{n}.csv" for n in ("semivariogram", "correlogram", "directional", "fits"))]
 
 
 def run(args) -> int:
+    import sys
     from pathlib import Path
 
     from bayesgeo.cli._common import emit_json, print_table, progress, read_data
     from bayesgeo.data import sites_of
-    from bayesgeo.io import atomic_dir, refuse_existing, write_json
+    from bayesgeo.io import write_json
+    from bayesgeo.outputs import claim, new_folder
     from bayesgeo.quickfit import QUICK_FAMILIES
     from bayesgeo.trend import MAX_ORDER
     from bayesgeo.validate import InputError
+    from bayesgeo.workload import explore_plan
 
     if not 0 <= args.trend <= MAX_ORDER:
         raise InputError(f"--trend: order {args.trend} is not one of 0, 1, 2, 3")
@@ -202,31 +210,37 @@ def run(args) -> int:
     from bayesgeo.data import apply_transform
 
     ds = apply_transform(read_data(args), args.transform)
-    refuse_existing(out, args.overwrite)
+    claim(out, overwrite=args.overwrite, inputs=[args.data])
     families = list(dict.fromkeys(args.covariance or QUICK_FAMILIES))
     labels = sites_of(ds)
     multi = labels != [""]
+    plan = explore_plan(ds, permutations=args.permutations, max_lag=args.max_lag, families=len(families))
+    if plan["message"] and not args.json:
+        print(f"bayesgeo explore: note: {plan['message']}", file=sys.stderr, flush=True)
     bar = progress(total=len(labels) * (3 + len(families)), desc="explore", enabled=not args.json)
 
     results, objects = {}, {}
     with bar:
         for label in labels:
             part = ds if not multi else ds.isel(obs=(ds["site"].values == label).nonzero()[0])
-            objects[label], results[label] = _analyse_site(part, args, families, bar)
+            log = None
+            if plan["message"] and not args.json:
+                def log(text, _where=f"site {label}: " if multi else ""):
+                    print(f"bayesgeo explore: {_where}{text} ...", file=sys.stderr, flush=True)
+            objects[label], results[label] = _analyse_site(part, args, families, bar, log)
 
     first = labels[0]
     settings = {"transform": args.transform, "trend": args.trend, "covariates": list(args.covariate), "bins": args.bins,
                 "max_lag": args.max_lag, "permutations": args.permutations, "estimator": args.estimator,
                 "covariance": families, "seed": args.seed, "azimuths": list(_AZIMUTHS), "tolerance": _TOLERANCE}
     obj = {"data": str(args.data), "out": str(out), "site": first if multi else None,
-           "n_total": int(ds.sizes["obs"]), **objects[first], "settings": settings}
+           "n_total": int(ds.sizes["obs"]), **objects[first], "settings": settings, "workload": plan}
     if multi:
         obj["sites"] = objects
     files: list[str] = []
-    with atomic_dir(out, overwrite=args.overwrite) as tmp:
-        taken: set[str] = set()
+    with new_folder(out, overwrite=args.overwrite) as tmp:
         for label in labels:
-            sub = _slug(label, taken) if multi else ""
+            sub = _slug(label) if multi else ""
             files += [f"{sub}/{f}" if sub else f for f in _write_site(tmp / sub if sub else tmp, results[label], label)]
         if multi:
             import pandas as pd

@@ -9,6 +9,7 @@ HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one s
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import add_data_options
     from bayesgeo.covariance import FAMILIES
+    from bayesgeo.validate import PriorPairAction, float_option, int_option
 
     add_data_options(p)
     from bayesgeo.cli._sites import add_site_arguments
@@ -16,29 +17,29 @@ def add_arguments(p) -> None:
     add_site_arguments(p)
     p.add_argument("--covariance", required=True, choices=FAMILIES, metavar="FAMILY",
                    help=f"covariance family: {', '.join(FAMILIES)}")
-    p.add_argument("--nu", type=float, default=None, help="Matérn smoothness (family 'matern' only)")
+    p.add_argument("--nu", type=float_option("nu"), default=None, help="Matérn smoothness (family 'matern' only)")
     p.add_argument("--no-nugget", action="store_true", help="fit without a nugget")
-    p.add_argument("--trend", type=int, default=0, metavar="ORDER",
+    p.add_argument("--trend", type=int_option("trend"), default=0, metavar="ORDER",
                    help="polynomial order of the trend in the coordinates, 0-3 (default 0: constant mean)")
     p.add_argument("--transform", choices=("none", "log"), default="none", help="model log(values) (positive values only)")
-    p.add_argument("--prior-range", nargs=2, type=float, metavar=("R0", "A1"),
+    p.add_argument("--prior-range", nargs=2, action=PriorPairAction, metavar=("R0", "A1"),
                    help="PC prior: P(practical range < R0) = A1 (default: R0 = 5%% of the largest distance, A1 = 0.05)")
-    p.add_argument("--prior-sd", nargs=2, type=float, metavar=("S0", "A2"),
+    p.add_argument("--prior-sd", nargs=2, action=PriorPairAction, metavar=("S0", "A2"),
                    help="PC prior: P(sd of the field > S0) = A2 (default: S0 = 2 x sd of the detrended values, A2 = 0.05)")
-    p.add_argument("--prior-nugget", nargs=2, type=float, metavar=("T0", "A3"),
+    p.add_argument("--prior-nugget", nargs=2, action=PriorPairAction, metavar=("T0", "A3"),
                    help="PC prior: P(nugget sd > T0) = A3 (default as --prior-sd)")
     p.add_argument("--approx", choices=("auto", "dense", "nn"), default="auto",
                    help="likelihood: exact dense, nearest-neighbour (Vecchia) approximation, or auto "
                         "(dense up to 2,000 points per site, nn beyond; with --site chosen per site; "
                         "docs/large_data.md)")
-    p.add_argument("--neighbours", type=int, default=None, metavar="M",
+    p.add_argument("--neighbours", type=int_option("neighbours"), default=None, metavar="M",
                    help="neighbours per point of the nn likelihood (default 20)")
-    p.add_argument("--draws", type=int, default=1000, help="kept draws per chain (default 1000)")
-    p.add_argument("--tune", type=int, default=1000, help="tuning iterations per chain (default 1000)")
-    p.add_argument("--chains", type=int, default=4, help="chains (default 4)")
-    p.add_argument("--target-accept", type=float, default=None,
+    p.add_argument("--draws", type=int_option("draws"), default=1000, help="kept draws per chain (default 1000)")
+    p.add_argument("--tune", type=int_option("tune"), default=1000, help="tuning iterations per chain (default 1000)")
+    p.add_argument("--chains", type=int_option("chains"), default=4, help="chains (default 4)")
+    p.add_argument("--target-accept", type=float_option("probability"), default=None,
                    help="target acceptance rate (default 0.8; 0.9 with --site, whose population layer needs smaller steps)")
-    p.add_argument("--seed", type=int, default=None, help="seed (default: a fresh one, recorded in the output)")
+    p.add_argument("--seed", type=int_option("seed"), default=None, help="seed (default: a fresh one, recorded in the output)")
     p.add_argument("--sampler", choices=("nutpie", "pymc"), default="nutpie", help="NUTS implementation (default nutpie)")
     p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
@@ -51,18 +52,26 @@ def run(args) -> int:
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json, read_data
     from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.io import refuse_existing
+    from bayesgeo.outputs import claim
     from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
     from bayesgeo.priors import Priors
 
-    refuse_existing(args.out, args.overwrite)  # fail before minutes of sampling, not after
+    if args.approx == "dense" and args.neighbours is not None:
+        from bayesgeo.validate import InputError
+
+        raise InputError("--neighbours: applies to the nearest-neighbour likelihood (--approx nn, or auto above "
+                         "2,000 points per site); drop it with --approx dense")
+    claim(args.out, overwrite=args.overwrite, inputs=[args.data])  # refuse before minutes of sampling, not after
     ds = read_data(args)
     from bayesgeo.data import sites_of
 
+    args.workload = _announce(args, ds)
     if len(sites_of(ds)) > 1:
         from bayesgeo.cli._sites import run_sites
 
         return run_sites(args, ds)
+    stage = _stage_logger(args)
+    stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal)")
     priors = Priors(range=tuple(args.prior_range) if args.prior_range else None,
                     sd=tuple(args.prior_sd) if args.prior_sd else None,
                     nugget=tuple(args.prior_nugget) if args.prior_nugget else None)
@@ -72,14 +81,57 @@ def run(args) -> int:
                priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
                target_accept=0.8 if args.target_accept is None else args.target_accept, seed=args.seed, progressbar=show,
                approx=args.approx, neighbours=args.neighbours)
+    stage("checking convergence")
     conv = check_convergence(tree)
     tree = with_diagnostics(tree, conv.to_json())
+    stage(f"writing {args.out}")
     save_fit(tree, args.out, overwrite=args.overwrite)
     report = fit_report(tree)
     report["out"] = str(args.out)
+    report["workload"] = args.workload
     if args.json:
         emit_json(report)
     else:
         print(summary_text(report), end="")
         print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
+
+
+def _announce(args, ds) -> dict:
+    """Say on stderr what a large fit will do and roughly how long it takes (bayesgeo.workload); the plan
+    goes into the JSON object as ``workload`` instead when --json is given."""
+    import sys
+
+    import numpy as np
+
+    from bayesgeo.data import sites_of
+    from bayesgeo.validate import InputError
+    from bayesgeo.workload import fit_plan, format_bytes, physical_memory_bytes
+
+    labels = sites_of(ds)
+    sizes = ({lab: int(np.count_nonzero(ds["site"].values == lab)) for lab in labels} if len(labels) > 1
+             else {"": int(ds.sizes["obs"])})
+    pooled = len(labels) > 1 and getattr(args, "pooling", "hierarchical") != "independent"
+    plan = fit_plan(sizes, approx=args.approx, neighbours=args.neighbours, chains=args.chains, draws=args.draws,
+                    tune=args.tune, fits=2 if pooled else 1)
+    ram = physical_memory_bytes()
+    if ram is not None and plan["dense_memory_bytes"] > ram:
+        raise InputError(f"--approx {args.approx}: the dense likelihood of {plan['largest_site']:,} points with "
+                         f"{args.chains} chains needs about {format_bytes(plan['dense_memory_bytes'])} of memory; this "
+                         f"machine has {format_bytes(ram)}: use --approx nn (or auto), docs/large_data.md")
+    if plan["message"] and not args.json:
+        print(f"bayesgeo fit: note: {plan['message']}", file=sys.stderr, flush=True)
+    return plan
+
+
+def _stage_logger(args):
+    """One stderr line per long step, for runs the workload plan announced (silent otherwise and with --json)."""
+    import sys
+
+    enabled = bool(getattr(args, "workload", None) and args.workload.get("message")) and not args.json
+
+    def stage(text: str) -> None:
+        if enabled:
+            print(f"bayesgeo fit: {text} ...", file=sys.stderr, flush=True)
+
+    return stage

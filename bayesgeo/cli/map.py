@@ -20,29 +20,32 @@ MAX_SIM_TARGETS = 2000
 
 
 def _draws(text: str):
-    if str(text).lower() == "all":
+    from bayesgeo.validate import INT_LIMITS, InputError
+
+    if str(text).strip().lower() == "all":
         return None
+    lo, hi = INT_LIMITS["prediction_draws"]
     try:
-        n = int(text)
+        n = int(str(text).strip(), 10)
     except ValueError:
         n = 0
-    if n < 1:
-        from bayesgeo.validate import InputError
-
-        raise InputError(f"--draws: expected a positive integer or 'all', got {text!r}")
+    if not lo <= n <= hi:
+        raise InputError(f"--draws: expected an integer from {lo} to {hi} or 'all', got {text!r}")
     return n
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import float_option, int_option
+
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
-    p.add_argument("--cell", type=float, metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
+    p.add_argument("--cell", type=float_option("positive"), metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
                    "along the longer side of the data's bounding box)")
-    p.add_argument("--margin", type=float, default=0.0, metavar="M", help="widen the bounding box by M on every side")
+    p.add_argument("--margin", type=float_option("nonnegative"), default=0.0, metavar="M", help="widen the bounding box by M on every side")
     p.add_argument("--site", metavar="NAME", default=None,
                    help="with a several-site fit: map this site (outputs predictions_<NAME>.nc and maps_<NAME>/)")
     p.add_argument("--points", metavar="FILE", help="CSV of target points (columns x,y; plus any trend covariates) "
                    "instead of a grid")
-    p.add_argument("--threshold", type=float, action="append", default=[], metavar="T",
+    p.add_argument("--threshold", type=float_option("any"), action="append", default=[], metavar="T",
                    help="level for exceedance probabilities, data units (repeatable)")
     p.add_argument("--area", metavar="FILE|xmin,ymin,xmax,ymax",
                    help="area to average over: a CSV of polygon vertices (x,y) or a rectangle")
@@ -53,11 +56,11 @@ def add_arguments(p) -> None:
     p.add_argument("--hull-mask", action="store_true", help="leave out targets outside the convex hull of the samples")
     p.add_argument("--scheduler", default="threads", metavar="ADDRESS",
                    help="'threads' (default, local thread pool), 'synchronous', or a dask.distributed scheduler address")
-    p.add_argument("--chunk-cells", type=int, default=4096, metavar="K", help="cells per parallel task (default 4096)")
-    p.add_argument("--simulate", type=int, default=0, metavar="N",
+    p.add_argument("--chunk-cells", type=int_option("chunk_cells"), default=4096, metavar="K", help="cells per parallel task (default 4096)")
+    p.add_argument("--simulate", type=int_option("simulate"), default=0, metavar="N",
                    help=f"also store N joint conditional simulations per draw (at most {MAX_SIM_TARGETS} targets; "
                    "use --points or a coarse --cell)")
-    p.add_argument("--seed", type=int, default=0, metavar="S",
+    p.add_argument("--seed", type=int_option("seed"), default=0, metavar="S",
                    help="seed of the simulations (area averages under the log transform, --simulate)")
     p.add_argument("--overwrite", action="store_true", help="replace existing predictions.nc and maps/")
     p.add_argument("--allow-unconverged", action="store_true",
@@ -74,14 +77,17 @@ def run(args) -> int:
 
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json, progress
-    from bayesgeo.io import atomic_dir, refuse_existing, write_netcdf
+    from bayesgeo.outputs import add_to_folder, check_addable
     from bayesgeo.validate import InputError, check_positive_int
 
     from bayesgeo import targets as tg
     from bayesgeo.validate import check_positive
 
+    from bayesgeo.predict import check_scheduler
+
     folder = Path(args.dir)
     draws = _draws(args.draws)
+    check_scheduler(args.scheduler)
     chunk = check_positive_int(args.chunk_cells, "--chunk-cells")
     if args.cell is not None:
         check_positive(args.cell, "--cell")
@@ -92,14 +98,14 @@ def run(args) -> int:
         raise InputError(f"--simulate: expected an integer >= 0, got {args.simulate}")
     out_nc, out_maps = folder / PREDICTIONS_FILE, folder / MAPS_DIR
     if args.site is not None:
-        import re
+        from bayesgeo.sitenames import site_file_name
 
-        slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", args.site)
+        slug = site_file_name(args.site)
         out_nc = folder / f"{Path(PREDICTIONS_FILE).stem}_{slug}.nc"
         out_maps = folder / f"{MAPS_DIR}_{slug}"
-    refuse_existing(out_nc, args.overwrite)
+    check_addable(folder, out_nc.name, overwrite=args.overwrite)
     if not args.no_figures:
-        refuse_existing(out_maps, args.overwrite)
+        check_addable(folder, out_maps.name, overwrite=args.overwrite)
 
     from bayesgeo.cli._common import load_fit_folder
     from bayesgeo.diagnostics import check_convergence
@@ -134,11 +140,22 @@ def run(args) -> int:
         targets = tg.grid_targets(xy, cell=args.cell, margin=args.margin, hull=args.hull_mask)
     units = spec.value_units
     n_cells = int(np.count_nonzero(targets["inside"].values))
+    area_pts = None  # refuse a bad area or simulation before the long prediction, not after it
+    if area_vertices is not None:
+        if spec.covariates:
+            raise InputError(f"--area: the trend uses covariates ({', '.join(spec.covariates)}) that are unknown "
+                             "inside the area; area averages need a trend in the coordinates only")
+        area_pts = tg.discretise_area(area_vertices[0], points=AREA_POINTS)
+        tg.check_area_near_data(xy, area_pts, basis.metric)
+    if args.simulate and n_cells > MAX_SIM_TARGETS:
+        raise InputError(f"--simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
+                         "(use --points or a coarser --cell)")
     bar = progress(total=max(1, -(-n_cells // chunk)), desc="map", enabled=not args.json)
     pred = predict_targets(basis, targets, thresholds=args.threshold, include_nugget=args.nugget == "include",
                            design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=args.scheduler, units=units,
                            progress=bar)
     bar.close()
+    _refuse_non_finite(pred, targets["inside"], folder)
 
     cautions = [CAUTION]
     if spec.transform == "log":
@@ -150,17 +167,10 @@ def run(args) -> int:
     area = None
     if area_vertices is not None:
         vertices, label = area_vertices
-        pts = tg.discretise_area(vertices, points=AREA_POINTS)
-        if spec.covariates:
-            raise InputError(f"--area: the trend uses covariates ({', '.join(spec.covariates)}) that are unknown "
-                             "inside the area; area averages need a trend in the coordinates only")
-        area = area_average(basis, pts, design_at(pts, spec.design_attrs), thresholds=args.threshold,
+        area = area_average(basis, area_pts, design_at(area_pts, spec.design_attrs), thresholds=args.threshold,
                             n_sim=200, seed=args.seed)
         area.update(area=label, area_size=tg.polygon_area(vertices), units=units)
     if args.simulate:
-        if n_cells > MAX_SIM_TARGETS:
-            raise InputError(f"--simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
-                             "(use --points or a coarser --cell)")
         from bayesgeo.predict import simulate_targets
 
         pred["simulation"] = simulate_targets(basis, targets, n_sim=args.simulate, seed=args.seed,
@@ -177,12 +187,13 @@ def run(args) -> int:
         pred.attrs["convergence_status"] = "NOT CONVERGED"
     if area is not None:
         pred.attrs["area_average"] = json.dumps(area)
-    write_netcdf(out_nc, pred, overwrite=args.overwrite)
+    with add_to_folder(folder, out_nc.name, overwrite=args.overwrite) as tmp:
+        pred.to_netcdf(tmp, engine="netcdf4")
     maps = []
     if not args.no_figures:
         from bayesgeo.map_figures import write_map_figures
 
-        with atomic_dir(out_maps, overwrite=args.overwrite) as tmp:
+        with add_to_folder(folder, out_maps.name, overwrite=args.overwrite, kind="dir") as tmp:
             written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),
                                         not_converged=not_converged)
         maps = [str(out_maps / p.name) for p in written]
@@ -206,6 +217,22 @@ def run(args) -> int:
     else:
         _print_human(result)
     return 0
+
+
+def _refuse_non_finite(pred, inside, folder) -> None:
+    """A NaN or infinite prediction at a predicted cell stops the map (exit 2) instead of an all-NaN band."""
+    import numpy as np
+
+    from bayesgeo.validate import InputError
+
+    for name in ("mean", "sd", "q05", "q50", "q95", "p_exceed"):
+        if name not in pred:
+            continue
+        bad = int((~np.isfinite(pred[name]) & inside).sum())
+        if bad:
+            raise InputError(f"{folder}: the prediction {name} is NaN or infinite at {bad} target(s) although the "
+                             "posterior draws are finite (a numerically singular kriging system?); no map written: "
+                             "check the fit ('bayesgeo check') and the targets")
 
 
 def _print_human(r: dict) -> None:

@@ -13,6 +13,7 @@ EXIT_MISCALIBRATED = 1
 def add_arguments(p) -> None:
     from bayesgeo.covariance import FAMILIES
     from bayesgeo.validation import KINDS
+    from bayesgeo.validate import float_option, int_option
 
     p.add_argument("--study", metavar="STUDY.toml", help="study file: its data locations, covariance and nugget")
     p.add_argument("--data", metavar="CSV", help="point data whose locations form the layout (default: a generated one)")
@@ -25,19 +26,19 @@ def add_arguments(p) -> None:
     p.add_argument("--duplicates", choices=("error", "mean"), default="error", help="points at one location")
     p.add_argument("--covariance", action="append", choices=FAMILIES, metavar="FAMILY",
                    help=f"covariance family, repeatable ({', '.join(FAMILIES)}; default matern32)")
-    p.add_argument("--nu", type=float, default=None, help="Matérn smoothness (family 'matern' only)")
+    p.add_argument("--nu", type=float_option("nu"), default=None, help="Matérn smoothness (family 'matern' only)")
     p.add_argument("--kind", action="append", choices=KINDS,
                    help="models to check, repeatable (default: quick: single; full: single with and without "
                         "nugget, nn, hierarchical)")
-    p.add_argument("--replicates", type=int, default=None, help="simulated data sets per model (quick 25, full 100)")
-    p.add_argument("--points", type=int, default=None, help="points of a generated layout per site (quick 28, full 60)")
+    p.add_argument("--replicates", type=int_option("sbc_replicates"), default=None, help="simulated data sets per model (quick 25, full 100)")
+    p.add_argument("--points", type=int_option("layout_points"), default=None, help="points of a generated layout per site (quick 28, full 60)")
     p.add_argument("--quick", action="store_true", help="CI mode: small layout, 25 replicates, short chains")
-    p.add_argument("--draws", type=int, default=None, help="kept draws per chain (quick 200, full 500)")
-    p.add_argument("--tune", type=int, default=None, help="tuning iterations per chain (quick 300, full 500)")
+    p.add_argument("--draws", type=int_option("draws"), default=None, help="kept draws per chain (quick 200, full 500)")
+    p.add_argument("--tune", type=int_option("tune"), default=None, help="tuning iterations per chain (quick 300, full 500)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://host:8786")
-    p.add_argument("--workers", type=int, default=1,
+    p.add_argument("--workers", type=int_option("workers"), default=1,
                    help="local processes (default 1: chains already use both cores; each process compiles the model)")
-    p.add_argument("--seed", type=int, default=1, help="seed (default 1; same seed, same numbers)")
+    p.add_argument("--seed", type=int_option("seed"), default=1, help="seed (default 1; same seed, same numbers)")
     p.add_argument("--out", required=True, metavar="DIR", help="output folder (validation.html, validation.json)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
@@ -85,12 +86,12 @@ def run(args) -> int:
 
     from bayesgeo.cli._common import emit_json, progress
     from bayesgeo.data import sites_of
-    from bayesgeo.io import atomic_dir, refuse_existing
+    from bayesgeo.outputs import claim, new_folder
     from bayesgeo.validate import InputError, check_positive_int
     from bayesgeo.validation import FULL, QUICK, generated_layout, sbc_summary, simulation_based_calibration, with_settings
     from bayesgeo.validation_report import CAUTIONS, validation_html
 
-    refuse_existing(args.out, args.overwrite)
+    claim(args.out, overwrite=args.overwrite, inputs=[args.study, args.data])
     data, study = _template(args)
     base = QUICK if args.quick else FULL
     changes = {k: v for k, v in (("draws", args.draws), ("tune", args.tune)) if v is not None}
@@ -153,7 +154,7 @@ def run(args) -> int:
                                                                           "failed_checks") if k in r}}
                     for r, s in runs]}
     page = validation_html(runs, meta=meta)
-    with atomic_dir(args.out, overwrite=args.overwrite) as tmp:
+    with new_folder(args.out, overwrite=args.overwrite) as tmp:
         (tmp / "validation.html").write_text(page, encoding="utf-8")
         (tmp / "validation.json").write_text(json.dumps(_clean(out), indent=1), encoding="utf-8")
     if args.json:

@@ -20,15 +20,17 @@ TABLE_COLUMNS = ("bin", "lag", "bin_lower", "bin_upper", "pairs", "observed", "r
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.validate import float_option, int_option
+
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
     p.add_argument("--site", metavar="NAME", default=None,
                    help="with a several-site fit: check this site (outputs variogram_check_<NAME>.png and .csv)")
-    p.add_argument("--replicates", type=int, default=200, metavar="N",
+    p.add_argument("--replicates", type=int_option("replicates"), default=200, metavar="N",
                    help="replicate data sets, one posterior draw each (default 200)")
-    p.add_argument("--bins", type=int, default=15, metavar="N", help="number of lag bins (default 15)")
-    p.add_argument("--max-lag", type=float, default=None, metavar="D",
+    p.add_argument("--bins", type=int_option("bins"), default=15, metavar="N", help="number of lag bins (default 15)")
+    p.add_argument("--max-lag", type=float_option("positive"), default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
-    p.add_argument("--seed", type=int, default=1, metavar="S", help="seed of the replicates (default 1)")
+    p.add_argument("--seed", type=int_option("seed"), default=1, metavar="S", help="seed of the replicates (default 1)")
     p.add_argument("--overwrite", action="store_true", help=f"replace existing {FIGURE} and {TABLE}")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
 
@@ -37,14 +39,28 @@ def output_names(site: str | None) -> tuple[str, str]:
     """File names of the figure and the table (``variogram_check_<site>.*`` for one site of a several-site fit)."""
     if site is None:
         return FIGURE, TABLE
-    import re
+    from bayesgeo.sitenames import site_file_name
 
-    slug = re.sub(r"[^A-Za-z0-9_.-]+", "_", site)
+    slug = site_file_name(site)
     return f"variogram_check_{slug}.png", f"variogram_check_{slug}.csv"
 
 
 def _list(da) -> list:
     return [float(v) for v in da.values]
+
+
+def _refuse_non_finite(vc, folder) -> None:
+    """NaN or infinite replicate or model semivariances in a bin with pairs stop the check (exit 2)."""
+    import numpy as np
+
+    from bayesgeo.validate import InputError
+
+    has_pairs = vc["pairs"].values > 0
+    for name in ("replicate_q05", "replicate_q50", "replicate_q95", "model_q05", "model_q50", "model_q95"):
+        bad = int(np.count_nonzero(~np.isfinite(vc[name].values) & has_pairs))
+        if bad:
+            raise InputError(f"{folder}: {name} is NaN or infinite in {bad} lag bin(s) with pairs although the "
+                             "posterior draws are finite; no check written: check the fit ('bayesgeo check')")
 
 
 def run(args) -> int:
@@ -55,7 +71,7 @@ def run(args) -> int:
     from bayesgeo.check_figures import variogram_check_figure
     from bayesgeo.cli._common import emit_json, print_table, progress
     from bayesgeo.figures import save_figure
-    from bayesgeo.io import atomic_file, refuse_existing
+    from bayesgeo.outputs import add_to_folder, check_addable
     from bayesgeo.cli._common import load_fit_folder
     from bayesgeo.ppcheck import variogram_check
 
@@ -65,12 +81,13 @@ def run(args) -> int:
         tree = load_fit_folder(folder, args.site)
         fig_name, csv_name = output_names(args.site)
         fig_path, csv_path = folder / fig_name, folder / csv_name
-        refuse_existing(fig_path, args.overwrite)
-        refuse_existing(csv_path, args.overwrite)
+        check_addable(folder, fig_name, overwrite=args.overwrite)
+        check_addable(folder, csv_name, overwrite=args.overwrite)
         bar.update(1)
         vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed,
                              progress=functools.partial(progress, enabled=not args.json))
         bar.update(1)
+        _refuse_non_finite(vc, folder)
         cautions = list(vc.attrs["cautions"])
         try:
             verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
@@ -86,9 +103,11 @@ def run(args) -> int:
         import pandas as pd
 
         frame = pd.DataFrame({c: vc[c].values for c in TABLE_COLUMNS})
-        with atomic_file(csv_path, overwrite=args.overwrite) as tmp:
+        if args.site is not None:
+            frame.insert(0, "site", args.site)  # the label, which the file name may abbreviate
+        with add_to_folder(folder, csv_name, overwrite=args.overwrite) as tmp:
             frame.to_csv(tmp, index=False, float_format="%.10g")
-        with atomic_file(fig_path, overwrite=args.overwrite) as tmp:
+        with add_to_folder(folder, fig_name, overwrite=args.overwrite) as tmp:
             save_figure(variogram_check_figure(vc, title=title), tmp)
         bar.update(1)
     obj = {
