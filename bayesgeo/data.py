@@ -258,16 +258,25 @@ def apply_transform(ds: xr.Dataset, transform: str | None) -> xr.Dataset:
 
 
 def _site_labels(table, col: str) -> list[str]:
-    """Site labels stripped of surrounding spaces; a warning names the rows where that changed a label."""
+    """Site labels stripped of surrounding spaces (a warning names the rows); labels that differ only in
+    spaces or only in letter case are refused, naming the rows of each spelling."""
     j = table.header.index(col)
     raw = [cells[j] for _, cells in table.rows]
+    spellings: dict[str, dict[str, list[int]]] = defaultdict(dict)
+    for (r, _), c in zip(table.rows, raw):
+        spellings[c.strip()].setdefault(c, []).append(r)
+    for group in spellings.values():
+        if len(group) > 1:
+            shown = " and ".join(f"{c!r} (rows {format_rows(rs, limit=3)})" for c, rs in list(group.items())[:3])
+            raise InputError(
+                f"{table.src}: column {col!r} has labels differing only in spaces: {shown}; one site typed two "
+                "ways, or two sites? Write each site's label the same way in every row")
     changed = [(r, c) for (r, _), c in zip(table.rows, raw) if c != c.strip() and c.strip()]
     if changed:
         shown = ", ".join(dict.fromkeys(repr(c) for _, c in changed[:3]))
         warnings.warn(
             f"{table.src}: column {col!r} has labels with leading or trailing spaces ({shown}) at rows "
-            f"{format_rows([r for r, _ in changed])}; the spaces were removed, so labels differing only in them "
-            "are one site", InputWarning, stacklevel=3)
+            f"{format_rows([r for r, _ in changed])}; the spaces were removed", InputWarning, stacklevel=3)
     labels = [c.strip() for c in raw]
     variants: dict[str, dict[str, list[int]]] = defaultdict(dict)
     for (r, _), lb in zip(table.rows, labels):

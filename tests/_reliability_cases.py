@@ -478,13 +478,6 @@ def after_slash_sites(box: Box, out: str, err: str) -> None:
     assert set(obj["sites"]) == {"a/b", "a_b"}
 
 
-def after_whitespace_merged(box: Box, out: str, err: str) -> None:
-    """'north ' and 'north' are one site after the warning: three sites of 12 points, not four."""
-    obj = json.loads((box.cwd / "ex" / "explore.json").read_text())
-    assert sorted(obj["sites"]) == ["mill", "north", "south"], sorted(obj["sites"])
-    assert obj["sites"]["north"]["n"] == 12
-
-
 def after_replaced(box: Box, out: str, err: str) -> None:
     """--overwrite on our own folder: the folder is there again, with its marker."""
     assert (box.cwd / "ex" / "explore.json").is_file()
@@ -732,10 +725,9 @@ def _cases() -> list[Case]:
              (D, row(5), col("lon")), extra_argv=("--coords", "lonlat"))
     csv_case("lat-above-90", "--coords lonlat with a latitude of 95", rows_csv([(a, 95.0 if i == 3 else b, c) for i, (a, b, c) in enumerate(LONLAT_ROWS)], "lon,lat,conc"),
              (D, row(5), col("lat")), extra_argv=("--coords", "lonlat"))
-    csv_case("site-whitespace", "site labels 'north' and 'north ' (differ by a space): refused, or merged into one site with a warning naming the rows",
-             sites_csv().replace(",north,", ",north ,", 3), (D, col("parcel")), extra_argv=("--site", "parcel"), status=(0, 2),
-             warn_ok=r"parcel.*\brows?\b.*\b[2-4]\b", after=after_whitespace_merged,
-             source="issue #15 (refused); docs/data_files.md (surrounding spaces removed with a warning naming the rows)")
+    csv_case("site-whitespace", "site labels 'north' and 'north ' (differ by a space): refused, naming the rows of each spelling",
+             sites_csv().replace(",north,", ",north ,", 3), (D, col("parcel"), r"rows? 2"), extra_argv=("--site", "parcel"),
+             source="issue #15; docs/data_files.md")
     csv_case("site-empty-label", "an empty site label", sites_csv().replace(",south,", ",,", 1), (D, col("parcel")), extra_argv=("--site", "parcel"))
     csv_case("covariate-text", "text in a covariate column", "x,y,depth,conc\n" + "".join(f"{a},{b},{'deep' if i == 6 else 1.0},{c}\n" for i, (a, b, c) in enumerate(good_rows())),
              (D, row(8), col("depth")), extra_argv=("--covariate", "depth"))

@@ -99,15 +99,23 @@ def test_auto_value_column_names_the_text_cells(tmp_path, grid_rows):
                    r"name it with --value")
 
 
-def test_site_labels_with_spaces_are_stripped_with_a_warning(tmp_path, grid_rows):
-    """Site labels 'A', ' A', 'A ' are one site after stripping, and a warning names the rows (our documented choice)."""
+def test_site_labels_differing_only_in_spaces_are_refused(tmp_path, grid_rows):
+    """Site labels 'A', ' A', 'A ' are refused, naming the rows of each spelling (issue #15: they were
+    silently merged); a label padded the same way in every row is stripped with a warning."""
     rows = [["x", "y", "conc", "site"]] + [r + ["A"] for r in grid_rows[1:]]
     rows[3][3] = '" A"'
     rows[6][3] = '"A "'
     path = tmp_path / "sites.csv"
     path.write_text(_text(rows))
+    before = path.read_bytes()
+    with pytest.raises(InputError, match=r"column 'site' has labels differing only in spaces: 'A' \(rows 2, 3, 5, "
+                                         r".*\) and ' A' \(rows 4\) and 'A ' \(rows 7\)"):
+        read_points(path, value="conc", site="site")
+    assert path.read_bytes() == before
+    rows = [["x", "y", "conc", "site"]] + [r + ['" A"'] for r in grid_rows[1:]]
+    path.write_text(_text(rows))
     with pytest.warns(InputWarning, match=r"column 'site' has labels with leading or trailing spaces "
-                                          r"\(' A', 'A '\) at rows 4, 7"):
+                                          r"\(' A'\) at rows 2, 3, 4"):
         ds = read_points(path, value="conc", site="site")
     assert set(ds["site"].values) == {"A"}
 
@@ -115,7 +123,8 @@ def test_site_labels_with_spaces_are_stripped_with_a_warning(tmp_path, grid_rows
 def test_cli_warning_is_one_stderr_line_and_in_json(tmp_path, grid_rows, capsys):
     """The CLI prints an input warning as one 'bayesgeo <command>: warning:' line and adds it to --json (behaviour check)."""
     rows = [["x", "y", "conc", "site"]] + [r + ["A" if k < 12 else "B"] for k, r in enumerate(grid_rows[1:])]
-    rows[3][3] = '" A"'
+    for k in range(1, 13):
+        rows[k][3] = '" A"'  # padded the same way in every row: stripped, with a warning
     path = tmp_path / "sites.csv"
     path.write_text(_text(rows))
     status = main(["explore", str(path), "--value", "conc", "--site", "site", "--out", str(tmp_path / "ex"),
@@ -123,7 +132,7 @@ def test_cli_warning_is_one_stderr_line_and_in_json(tmp_path, grid_rows, capsys)
     out, err = capsys.readouterr()
     assert status == 0, err
     lines = [ln for ln in err.splitlines() if ln.strip()]
-    assert len(lines) == 1 and lines[0].startswith("bayesgeo explore: warning: ") and "rows 4" in lines[0]
+    assert len(lines) == 1 and lines[0].startswith("bayesgeo explore: warning: ") and "rows 2, 3, 4" in lines[0]
     assert any("leading or trailing spaces" in w for w in json.loads(out)["warnings"])
 
 
@@ -181,7 +190,8 @@ def test_no_warning_for_clean_files(tmp_path, grid_rows):
 def test_warnings_do_not_leak_into_the_next_command(tmp_path, grid_rows, capsys):
     """A warning of one command is not repeated in the --json of the next command run in the same process (behaviour check)."""
     rows = [["x", "y", "conc", "site"]] + [r + ["A" if k < 12 else "B"] for k, r in enumerate(grid_rows[1:])]
-    rows[3][3] = '" A"'
+    for k in range(1, 13):
+        rows[k][3] = '" A"'  # padded the same way in every row: stripped, with a warning
     noisy, clean = tmp_path / "noisy.csv", tmp_path / "clean.csv"
     noisy.write_text(_text(rows))
     clean.write_text(_text(grid_rows))
