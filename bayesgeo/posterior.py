@@ -108,6 +108,8 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
         "sd_z": "sd of the spatial field / sd of the modelled values",
         "nugget_sd_z": "nugget sd / sd of the modelled values",
         "beta_z": "trend coefficients for standardised values",
+        "variance_coords_z": "sampled coordinates of the variances: log(sd_z^2 + nugget_sd_z^2) and "
+                             "logit(sd_z^2 / (sd_z^2 + nugget_sd_z^2))",
     }
     for name, text in raw.items():
         if name in out:
