@@ -10,7 +10,8 @@ adaptation, target acceptance 0.8, dense likelihood up to 2,000 points) in two s
 side by side, same data and sampler seed:
 
 * ``legacy``: log practical_range_z, log sd_z, log nugget_sd_z (the coordinates before issue 16);
-* ``share``: log practical_range_z and (log total variance, logit spatial share) (the default now).
+* ``share``: log practical_range_z and (log total variance, logit spatial share) (the default now);
+* ``share_ta90`` (only when asked): the same with target acceptance 0.9 instead of 0.8.
 
 Per fit it records the convergence verdict of `bayesgeo.diagnostics.check_convergence` as the
 command line computes it (exit 0 = pass or warn, exit 3 = fail), the minimum bulk ESS over every
@@ -44,7 +45,9 @@ from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a 
 
 FAMILIES = ("exponential", "matern32", "matern52", "gaussian", "spherical")
 SIDE = 1000.0  # m, side of the invented survey square
-COORDS = ("legacy", "share")
+#: Arms compared: name -> (sampling coordinates, target acceptance rate).
+ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9)}
+COORDS = ("legacy", "share")  # the default side-by-side
 
 
 def data_sets(count: int, seed: int = 16, *, n_max: int = 500) -> list[dict]:
@@ -90,8 +93,8 @@ def simulate(recipe: dict):
                                                          "value_units": "mg/kg", "coords": "xy"})
 
 
-def fit_one(recipe: dict, coords: str, approx: str) -> dict:
-    """Fit one data set with the command-line defaults in the given coordinates; the record of it."""
+def fit_one(recipe: dict, arm: str, approx: str) -> dict:
+    """Fit one data set with the command-line defaults in the coordinates of ``arm``; the record of it."""
     import xarray as xr
 
     from bayesgeo.diagnostics import check_convergence
@@ -101,9 +104,10 @@ def fit_one(recipe: dict, coords: str, approx: str) -> dict:
 
     ds = simulate(recipe)
     t0 = time.perf_counter()
+    coords, target_accept = ARMS[arm]
     model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
     compiled = compile_model(model)
-    raw = sample(compiled, seed=recipe["seed"] % 100_000)
+    raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept)
     wall = time.perf_counter() - t0
     post = derive(raw["posterior"].to_dataset(), spec)
     stats = raw["sample_stats"].to_dataset()
@@ -122,23 +126,24 @@ def fit_one(recipe: dict, coords: str, approx: str) -> dict:
                  "range_div_median": float(np.median(rz[div])), "range_all_median": float(np.median(rz)),
                  "range_all_q95": float(np.quantile(rz, 0.95))}
     worst = [p["item"] + ":" + p["check"] for p in conv.problems if p["level"] == "fail"]
-    return {**recipe, "coords": coords, "approx": spec.approx, "verdict": conv.verdict,
+    return {**recipe, "coords": arm, "approx": spec.approx, "verdict": conv.verdict,
             "exit": 3 if conv.verdict == "fail" else 0, "min_ess_bulk": float(np.nanmin(table["ess_bulk"].values)),
             "min_ess_tail": float(np.nanmin(table["ess_tail"].values)), "max_rhat": float(np.nanmax(table["rhat"].values)),
             "divergences": int(conv.divergences), "sampling_seconds": float(raw.attrs["sampling_seconds"]),
-            "wall_seconds": float(wall), "steps_per_draw": float(np.mean(stats["n_steps"].values)),
+            "target_accept": target_accept, "wall_seconds": float(wall), "steps_per_draw": float(np.mean(stats["n_steps"].values)),
             "divergence_location": where, "failed": worst[:6]}
 
 
-def summarise(records: list[dict], header: str) -> str:
-    """Markdown: one row per coordinate system, then the failed fits and the divergence locations."""
+def summarise(records: list[dict], header: str, arms=COORDS) -> str:
+    """Markdown: one row per arm (sets fitted in every arm), then per set, then the divergence locations."""
     lines = [header, "",
              "| coordinates | fits | exit 0 (pass or warn) | pass | median min bulk ESS | median min ESS/s | "
              "fits with divergences | divergences (all) | median wall (s) | total wall (s) |",
              "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
-    sets = sorted({r["set"] for r in records if all((r["set"], c) in {(q["set"], q["coords"]) for q in records}
-                                                     for c in COORDS)})
-    for c in COORDS:
+    have = {(q["set"], q["coords"]) for q in records}
+    sets = sorted({r["set"] for r in records if all((r["set"], c) in have for c in arms)})
+    records = [r for r in records if r["coords"] in arms]
+    for c in arms:
         rs = [r for r in records if r["coords"] == c and r["set"] in sets]
         if not rs:
             continue
@@ -156,18 +161,18 @@ def summarise(records: list[dict], header: str) -> str:
             row = {r["coords"]: r for r in records if r["set"] == s}
             lines.append(f"- set {s}: " + ", ".join(
                 f"{c} {row[c]['min_ess_bulk'] / row[c]['sampling_seconds']:.2f} ({row[c]['min_ess_bulk']:.0f} ESS in "
-                f"{row[c]['sampling_seconds']:.0f} s, {row[c]['steps_per_draw']:.1f} steps/draw)" for c in COORDS if c in row)
+                f"{row[c]['sampling_seconds']:.0f} s, {row[c]['steps_per_draw']:.1f} steps/draw)" for c in arms if c in row)
                 + (f"; ratio share/legacy {(row['share']['min_ess_bulk'] / row['share']['sampling_seconds']) / (row['legacy']['min_ess_bulk'] / row['legacy']['sampling_seconds']):.2f}"
-                   if len(row) == 2 else ""))
+                   if "share" in row and "legacy" in row else ""))
     lines += ["", "Per set (family, n, true nugget share, practical range / spacing; per coordinates: verdict, "
               "min bulk ESS, max R-hat, divergences, sampling s):", "",
-              "| set | family | n | nugget share | range / spacing | " + " | ".join(COORDS) + " |",
-              "| --- | --- | --- | --- | --- | " + " | ".join("---" for _ in COORDS) + " |"]
+              "| set | family | n | nugget share | range / spacing | " + " | ".join(arms) + " |",
+              "| --- | --- | --- | --- | --- | " + " | ".join("---" for _ in arms) + " |"]
     for s in sets:
         row = {r["coords"]: r for r in records if r["set"] == s}
         r0 = next(iter(row.values()))
         cells = [f"{row[c]['verdict']}, {row[c]['min_ess_bulk']:.0f}, {row[c]['max_rhat']:.3f}, {row[c]['divergences']}, "
-                 f"{row[c]['sampling_seconds']:.0f}" if c in row else "" for c in COORDS]
+                 f"{row[c]['sampling_seconds']:.0f}" if c in row else "" for c in arms]
         lines.append(f"| {s} | {r0['family']} | {r0['n']} | {r0['nugget_share']:.2f} | "
                      f"{r0['practical_range'] / r0['spacing']:.1f} | " + " | ".join(cells) + " |")
     divs = [r for r in records if r["set"] in sets and r["divergence_location"]]
@@ -188,7 +193,8 @@ def main(argv=None) -> int:
     ap.add_argument("--quick", action="store_true", help="6 small data sets (n <= 120): a smoke run")
     ap.add_argument("--count", type=int, default=40, help="number of data sets (default 40)")
     ap.add_argument("--sets", type=int, nargs="*", default=None, help="only these set numbers")
-    ap.add_argument("--coords", nargs="*", default=list(COORDS), choices=COORDS)
+    ap.add_argument("--coords", nargs="*", default=list(COORDS), choices=list(ARMS),
+                    help="arms: legacy (old coordinates), share (new), share_ta90 (new, target acceptance 0.9)")
     ap.add_argument("--approx", choices=("dense", "nn"), default="dense")
     ap.add_argument("--log", default=str(ROOT / "bench" / "convergence_fits.jsonl"), help="JSON-lines record of every fit")
     ap.add_argument("--resume", action="store_true", help="skip fits already in --log")
@@ -223,19 +229,23 @@ def main(argv=None) -> int:
                       f"t={rec['sampling_seconds']:.0f}s {' '.join(rec['failed'][:3])}", flush=True)
     wanted = {r["set"] for r in recipes}
     records = [r for r in done if r["set"] in wanted]
+    for r in records:
+        r.setdefault("target_accept", ARMS[r["coords"]][1])
     import nutpie
     import pymc
 
+    when = (f"summary of the fits recorded in {log.name} (run times there)" if args.summarise_only else
+            f"{started:%Y-%m-%d %H:%M} UTC, 1-minute load average {load0:.1f} at the start and "
+            f"{os.getloadavg()[0]:.1f} at the end")
     header = (f"## Convergence with the default settings ({mode})\n\n"
-              f"{started:%Y-%m-%d %H:%M} UTC; {platform.system()} {platform.machine()}, {os.cpu_count()} CPUs, "
-              f"1-minute load average {load0:.1f} at the start and {os.getloadavg()[0]:.1f} at the end, "
+              f"{when}; {platform.system()} {platform.machine()}, {os.cpu_count()} CPUs, "
               f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; pymc {pymc.__version__}, "
               f"nutpie {nutpie.__version__}; `python bench/bench_convergence.py {' '.join(sys.argv[1:])}`. "
-              f"Data sets: {len({r['set'] for r in records})} of {len(recipes)} recipes fitted in both coordinates; "
+              f"Data sets: {len({r['set'] for r in records})} of {len(recipes)} recipes fitted; "
               "each fit 4 chains x (1000 + 1000), nutpie low-rank, target acceptance 0.8 (the `bayesgeo fit` "
-              "defaults). ESS/s = minimum bulk ESS over every checked parameter / sampling seconds (compiled "
+              "defaults; 0.9 in the arm share_ta90). ESS/s = minimum bulk ESS over every checked parameter / sampling seconds (compiled "
               "before); wall includes compilation.")
-    publish(summarise(records, header), write=not args.no_write)
+    publish(summarise(records, header, args.coords), write=not args.no_write)
     return 0
 
 
