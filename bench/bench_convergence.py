@@ -125,6 +125,11 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
                  "nugget_ratio_all_q05": float(np.quantile(ratio, 0.05)),
                  "range_div_median": float(np.median(rz[div])), "range_all_median": float(np.median(rz)),
                  "range_all_q95": float(np.quantile(rz, 0.95))}
+        b0 = np.asarray(post["beta_z"].sel(term="1").values)
+        z0 = np.abs(b0 - b0.mean()) / b0.std()
+        where["intercept_absz_div_median"] = float(np.median(z0[div]))  # |intercept - mean| in posterior sds
+        where["long_range_share_div"] = float(np.mean(rz[div] > 1.0))  # divergent draws with range > extent
+        where["long_range_share_all"] = float(np.mean(rz > 1.0))
     worst = [p["item"] + ":" + p["check"] for p in conv.problems if p["level"] == "fail"]
     return {**recipe, "coords": arm, "approx": spec.approx, "verdict": conv.verdict,
             "exit": 3 if conv.verdict == "fail" else 0, "min_ess_bulk": float(np.nanmin(table["ess_bulk"].values)),
@@ -179,12 +184,16 @@ def summarise(records: list[dict], header: str, arms=COORDS) -> str:
     if divs:
         lines += ["", "Where the divergent draws sit (median over the divergent draws against all draws of the fit):", "",
                   "| set | coordinates | divergences | nugget ratio: divergent / all (all 5%) | "
-                  "practical range / extent: divergent / all (all 95%) |", "| --- | --- | --- | --- | --- |"]
+                  "practical range / extent: divergent / all (all 95%) | share of draws with range > extent: "
+                  "divergent / all | intercept: median abs. deviation of divergent draws (posterior sds) |",
+                  "| --- | --- | --- | --- | --- | --- | --- |"]
         for r in divs:
             w = r["divergence_location"]
             lines.append(f"| {r['set']} | {r['coords']} | {r['divergences']} | {w['nugget_ratio_div_median']:.3f} / "
                          f"{w['nugget_ratio_all_median']:.3f} ({w['nugget_ratio_all_q05']:.3f}) | "
-                         f"{w['range_div_median']:.3f} / {w['range_all_median']:.3f} ({w['range_all_q95']:.3f}) |")
+                         f"{w['range_div_median']:.3f} / {w['range_all_median']:.3f} ({w['range_all_q95']:.3f}) | "
+                         f"{w.get('long_range_share_div', np.nan):.2f} / {w.get('long_range_share_all', np.nan):.2f} | "
+                         f"{w.get('intercept_absz_div_median', np.nan):.2f} |")
     return "\n".join(lines)
 
 
