@@ -299,7 +299,9 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
     of the log range, both sds, the intercept, the log microergodic parameter sd^2 / range (Zhang
     2004: the well-determined combination, so the sharpest test of the kernel's scaling) and the log
     total variance are compared in units of their combined Monte Carlo standard error (ArviZ mcse);
-    |z| < 4.5 for each of the 24 comparisons."""
+    |z| < 4.5 for each of the 24 comparisons. Power, measured once on these data and seeds: with the
+    reference kernel's length scale wrongly multiplied by 1.3 the largest |z| was 5.1 (log range,
+    10% quantile), with the right one 2.6."""
     import arviz as az
     import pymc as pm
     import xarray as xr
@@ -307,7 +309,7 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
     from bayesgeo.sampling import sample
 
     rng = np.random.default_rng(21)
-    xy = rng.random((40, 2)) * 100.0
+    xy = rng.random((100, 2)) * 100.0
     z = simulate_field(xy, covariance="exponential", practical_range=45.0, partial_sill=1.0, nugget=0.4,
                        mean=3.0, rng=rng)
     ds = points_dataset(xy[:, 0], xy[:, 1], z, attrs={"source": "sim", "distance_units": "m"})
