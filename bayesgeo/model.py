@@ -347,31 +347,19 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
 
 
 def variance_split_logp(value, rates):
-    """Log prior density of ``(log v, logit s)`` (last axis) when ``sigma ~ Exponential(lam_sd)``
-    and ``tau ~ Exponential(lam_nugget)`` independently, ``rates = (lam_sd, lam_nugget)``, with ``v = sigma^2 + tau^2`` and
-    ``s = sigma^2 / v``: the two PC priors at ``sigma = sqrt(v s)``, ``tau = sqrt(v (1 - s))`` plus
-    the log-Jacobian ``log v + 0.5 log(s (1 - s)) - log 4`` of ``(log v, logit s) -> (sigma, tau)``.
-    Works on PyTensor tensors (the model) and NumPy arrays (tests)."""
-    lib = np if isinstance(value, np.ndarray) else _pt()
-    a, b = value[..., 0], value[..., 1]
-    lam_sd, lam_nugget = rates[..., 0], rates[..., 1]
-    log_s, log_1ms = -_softplus(lib, -b), -_softplus(lib, b)
-    sigma, tau = lib.exp(0.5 * (a + log_s)), lib.exp(0.5 * (a + log_1ms))
-    prior = lib.log(lam_sd) - lam_sd * sigma + lib.log(lam_nugget) - lam_nugget * tau
-    return prior + a + 0.5 * (log_s + log_1ms) - _LOG4
-
-
-def _pt():
+    """PyTensor log prior density of ``value = (log v, logit s)`` (last axis) when
+    ``sigma ~ Exponential(lam_sd)`` and ``tau ~ Exponential(lam_nugget)`` independently,
+    ``rates = (lam_sd, lam_nugget)``, ``v = sigma^2 + tau^2`` and ``s = sigma^2 / v``: the two PC
+    priors at ``sigma = sqrt(v s)``, ``tau = sqrt(v (1 - s))`` plus the log-Jacobian
+    ``log v + 0.5 log(s (1 - s)) - log 4`` of ``(log v, logit s) -> (sigma, tau)``."""
     import pytensor.tensor as pt
 
-    return pt
-
-
-def _softplus(lib, x):
-    """log(1 + exp(x)), stable for large |x|."""
-    if lib is np:
-        return np.logaddexp(0.0, x)
-    return lib.softplus(x)
+    a, b = value[..., 0], value[..., 1]
+    lam_sd, lam_nugget = rates[..., 0], rates[..., 1]
+    log_s, log_1ms = -pt.softplus(-b), -pt.softplus(b)  # log s, log(1 - s), stable for large |b|
+    sigma, tau = pt.exp(0.5 * (a + log_s)), pt.exp(0.5 * (a + log_1ms))
+    prior = pt.log(lam_sd) - lam_sd * sigma + pt.log(lam_nugget) - lam_nugget * tau
+    return prior + a + 0.5 * (log_s + log_1ms) - _LOG4
 
 
 def _variance_split_dist(rates, size):
