@@ -11,7 +11,11 @@ side by side, same data and sampler seed:
 
 * ``legacy``: log practical_range_z, log sd_z, log nugget_sd_z (the coordinates before issue 16);
 * ``share``: log practical_range_z and (log total variance, logit spatial share) (the default now);
-* ``share_ta90`` (only when asked): the same with target acceptance 0.9 instead of 0.8.
+* ``share_ta90`` (only when asked): the same with target acceptance 0.9 instead of 0.8;
+* ``share_int`` (only when asked, dense only): the new coordinates with the trend coefficients
+  integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
+  from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
+  (Rasmussen and Williams 2006, sec. 2.7): a measurement, not the package's model.
 
 Per fit it records the convergence verdict of `bayesgeo.diagnostics.check_convergence` as the
 command line computes it (exit 0 = pass or warn, exit 3 = fail), the minimum bulk ESS over every
@@ -46,7 +50,8 @@ from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a 
 FAMILIES = ("exponential", "matern32", "matern52", "gaussian", "spherical")
 SIDE = 1000.0  # m, side of the invented survey square
 #: Arms compared: name -> (sampling coordinates, target acceptance rate).
-ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9)}
+ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
+        "share_int": ("share", 0.8)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -105,11 +110,17 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     ds = simulate(recipe)
     t0 = time.perf_counter()
     coords, target_accept = ARMS[arm]
-    model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
+    if arm == "share_int":
+        model, spec, parts = _integrated_model(ds, recipe["family"])
+    else:
+        model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
     compiled = compile_model(model)
     raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept)
+    post = raw["posterior"].to_dataset()
+    if arm == "share_int":
+        post["beta_z"] = _draw_beta(post, spec, *parts, seed=recipe["seed"] % 100_000)
     wall = time.perf_counter() - t0
-    post = derive(raw["posterior"].to_dataset(), spec)
+    post = derive(post, spec)
     stats = raw["sample_stats"].to_dataset()
     tree = xr.DataTree.from_dict({"/posterior": post, "/sample_stats": stats})
     conv = check_convergence(tree)
@@ -137,6 +148,51 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
             "divergences": int(conv.divergences), "sampling_seconds": float(raw.attrs["sampling_seconds"]),
             "target_accept": target_accept, "wall_seconds": float(wall), "steps_per_draw": float(np.mean(stats["n_steps"].values)),
             "divergence_location": where, "failed": worst[:6]}
+
+
+def _integrated_model(ds, family: str):
+    """The package's model in the new coordinates with beta integrated out (dense likelihood)."""
+    import pymc as pm
+
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.likelihood import marginal_loglik
+    from bayesgeo.model import VARIANCE_COORDS, _variance_split, model_inputs
+
+    spec, y, design, dist = model_inputs(ds, covariance=family, approx="dense")
+    f, b = np.asarray(design.values, dtype=float), spec.priors.beta_sd
+    with pm.Model(coords={"term": list(spec.terms), "variance_coord": list(VARIANCE_COORDS)}) as model:
+        prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=spec.rates["range"])
+        sd2, tau2 = _variance_split(spec.rates["sd"], spec.rates["nugget"])
+        pm.Potential("loglik", marginal_loglik(y, dist, get_covariance(family), prange / spec.range_factor, sd2,
+                                               tau2, extra=b**2 * f @ f.T))
+    return model, spec, (y, f, dist)
+
+
+def _draw_beta(post, spec, y, f, dist, *, seed: int):
+    """beta_z draws from N(m, V) given each posterior draw of the covariance parameters."""
+    import xarray as xr
+    from scipy import linalg
+
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.likelihood import covariance_matrix
+
+    cov, b = get_covariance(spec.covariance), spec.priors.beta_sd
+    rng = np.random.default_rng(seed)
+    pr = post["practical_range_z"].values
+    s2, t2 = post["sd_z"].values ** 2, post["nugget_sd_z"].values ** 2
+    out = np.empty(pr.shape + (f.shape[1],))
+    for idx in np.ndindex(pr.shape):
+        k = covariance_matrix(dist, cov, pr[idx] / spec.range_factor, s2[idx], t2[idx])
+        c = linalg.cho_factor(k, lower=True, check_finite=False)
+        kf, ky = linalg.cho_solve(c, f, check_finite=False), linalg.cho_solve(c, y, check_finite=False)
+        a = f.T @ kf + np.eye(f.shape[1]) / b**2
+        ca = linalg.cho_factor(a, lower=True, check_finite=False)
+        m = linalg.cho_solve(ca, f.T @ ky, check_finite=False)
+        # V = A^-1: m + L^-T e with A = L L^T has covariance A^-1
+        out[idx] = m + linalg.solve_triangular(ca[0], rng.standard_normal(f.shape[1]), lower=True, trans="T",
+                                               check_finite=False)
+    return xr.DataArray(out, dims=("chain", "draw", "term"),
+                        coords={"chain": post["chain"], "draw": post["draw"], "term": list(spec.terms)})
 
 
 def summarise(records: list[dict], header: str, arms=COORDS) -> str:
@@ -203,7 +259,8 @@ def main(argv=None) -> int:
     ap.add_argument("--count", type=int, default=40, help="number of data sets (default 40)")
     ap.add_argument("--sets", type=int, nargs="*", default=None, help="only these set numbers")
     ap.add_argument("--coords", nargs="*", default=list(COORDS), choices=list(ARMS),
-                    help="arms: legacy (old coordinates), share (new), share_ta90 (new, target acceptance 0.9)")
+                    help="arms: legacy (old coordinates), share (new), share_ta90 (new, target acceptance 0.9), "
+                         "share_int (new, trend integrated out; dense)")
     ap.add_argument("--approx", choices=("dense", "nn"), default="dense")
     ap.add_argument("--log", default=str(ROOT / "bench" / "convergence_fits.jsonl"), help="JSON-lines record of every fit")
     ap.add_argument("--resume", action="store_true", help="skip fits already in --log")
