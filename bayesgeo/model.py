@@ -12,13 +12,13 @@ is integrated out: the likelihood is the marginal Gaussian
 
 Internally the model works on a standardised scale: values ``y = (z - m) / s`` with ``m`` and
 ``s`` the sample mean and sd of ``z``, distances divided by ``D``, the largest distance between
-two data points. Its parameters are ``practical_range_z = r / D``, ``sd_z = sigma / s``,
-``nugget_sd_z = tau / s`` and ``beta_z``. With a nugget the sampler moves in
+two data points. Its free variables are ``practical_range_z = r / D``, ``sd_z = sigma / s``,
+``nugget_sd_z = tau / s`` and ``beta_z``; PyMC samples the three positive ones on the log scale.
+A private option, ``_coordinates="share"``, samples the variances of a model with a nugget as
 ``variance_coords_z`` = (log(sd_z^2 + nugget_sd_z^2), logit of the spatial share
-sd_z^2 / (sd_z^2 + nugget_sd_z^2)) and log ``practical_range_z``, where the posterior is far less
-curved than in (log sd_z, log nugget_sd_z); the priors stay the PC priors of sigma and tau, carried
-over with the change-of-variables Jacobian, and ``sd_z``, ``nugget_sd_z`` are Deterministics.
-Without a nugget it samples log ``practical_range_z`` and log ``sd_z``.
+sd_z^2 / (sd_z^2 + nugget_sd_z^2)) instead, with the same PC priors carried over by the
+change-of-variables Jacobian and ``sd_z``, ``nugget_sd_z`` as Deterministics; measured against
+the default in bench/bench_convergence.py, it is not the default (docs/model.md, "Parametrisation").
 :mod:`bayesgeo.posterior` converts draws back to data units. The full statement, priors and the
 reasons for this parametrisation are in ``docs/model.md``.
 """
@@ -264,7 +264,7 @@ def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) ->
 def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                 nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                 transform: str | None = None, priors: Priors | Mapping | None = None,
-                approx: str = "auto", neighbours: int | None = None, _coordinates: str = "share"):
+                approx: str = "auto", neighbours: int | None = None, _coordinates: str = "legacy"):
     """Build the PyMC model of one site's point data.
 
     Parameters
@@ -294,12 +294,12 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     Returns
     -------
     model : pymc.Model
-        Free variables ``practical_range_z``, ``beta_z`` (dim ``term``) and, with a nugget,
-        ``variance_coords_z`` (dim ``variance_coord``: :data:`VARIANCE_COORDS`) with
-        Deterministics ``sd_z`` and ``nugget_sd_z``; without a nugget, ``sd_z``. All on the
-        standardised scale; the marginal log-likelihood is the potential ``"loglik"``.
-        (``_coordinates="legacy"``, private and kept only for the side-by-side convergence
-        benchmark, samples ``sd_z`` and ``nugget_sd_z`` directly as before.)
+        Free variables ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (when ``nugget``) and
+        ``beta_z`` (dim ``term``) on the standardised scale; the marginal log-likelihood is the
+        potential ``"loglik"``. (The private ``_coordinates="share"``, an alternative measured in
+        bench/bench_convergence.py, replaces ``sd_z`` and ``nugget_sd_z`` by the free variable
+        ``variance_coords_z`` (dim ``variance_coord``: :data:`VARIANCE_COORDS`) and keeps them as
+        Deterministics.)
     spec : FitSpec
         Settings and standardisation constants.
 

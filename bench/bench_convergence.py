@@ -9,10 +9,11 @@ share and log range), and fits each with the defaults of
 adaptation, target acceptance 0.8, dense likelihood up to 2,000 points) in two sampling coordinates
 side by side, same data and sampler seed:
 
-* ``legacy``: log practical_range_z, log sd_z, log nugget_sd_z (the coordinates before issue 16);
-* ``share``: log practical_range_z and (log total variance, logit spatial share) (the default now);
+* ``legacy``: log practical_range_z, log sd_z, log nugget_sd_z (the package's coordinates);
+* ``share``: log practical_range_z and (log total variance, logit spatial share) (issue 16's proposal;
+  measured here, not the default);
 * ``share_ta90`` (only when asked): the same with target acceptance 0.9 instead of 0.8;
-* ``share_int`` (only when asked, dense only): the new coordinates with the trend coefficients
+* ``share_int``, ``legacy_int`` (only when asked, dense only): those coordinates with the trend coefficients
   integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
   (Rasmussen and Williams 2006, sec. 2.7): a measurement, not the package's model.
@@ -51,7 +52,7 @@ FAMILIES = ("exponential", "matern32", "matern52", "gaussian", "spherical")
 SIDE = 1000.0  # m, side of the invented survey square
 #: Arms compared: name -> (sampling coordinates, target acceptance rate).
 ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
-        "share_int": ("share", 0.8)}
+        "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -110,14 +111,14 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     ds = simulate(recipe)
     t0 = time.perf_counter()
     coords, target_accept = ARMS[arm]
-    if arm == "share_int":
-        model, spec, parts = _integrated_model(ds, recipe["family"])
+    if arm.endswith("_int"):
+        model, spec, parts = _integrated_model(ds, recipe["family"], coords)
     else:
         model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
     compiled = compile_model(model)
     raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept)
     post = raw["posterior"].to_dataset()
-    if arm == "share_int":
+    if arm.endswith("_int"):
         post["beta_z"] = _draw_beta(post, spec, *parts, seed=recipe["seed"] % 100_000)
     wall = time.perf_counter() - t0
     post = derive(post, spec)
@@ -150,8 +151,8 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
             "divergence_location": where, "failed": worst[:6]}
 
 
-def _integrated_model(ds, family: str):
-    """The package's model in the new coordinates with beta integrated out (dense likelihood)."""
+def _integrated_model(ds, family: str, coords: str):
+    """The package's model in the given coordinates with beta integrated out (dense likelihood)."""
     import pymc as pm
 
     from bayesgeo.covariance import get_covariance
@@ -162,7 +163,11 @@ def _integrated_model(ds, family: str):
     f, b = np.asarray(design.values, dtype=float), spec.priors.beta_sd
     with pm.Model(coords={"term": list(spec.terms), "variance_coord": list(VARIANCE_COORDS)}) as model:
         prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=spec.rates["range"])
-        sd2, tau2 = _variance_split(spec.rates["sd"], spec.rates["nugget"])
+        if coords == "share":
+            sd2, tau2 = _variance_split(spec.rates["sd"], spec.rates["nugget"])
+        else:
+            sd2 = pm.Exponential("sd_z", lam=spec.rates["sd"]) ** 2
+            tau2 = pm.Exponential("nugget_sd_z", lam=spec.rates["nugget"]) ** 2
         pm.Potential("loglik", marginal_loglik(y, dist, get_covariance(family), prange / spec.range_factor, sd2,
                                                tau2, extra=b**2 * f @ f.T))
     return model, spec, (y, f, dist)
@@ -260,7 +265,7 @@ def main(argv=None) -> int:
     ap.add_argument("--sets", type=int, nargs="*", default=None, help="only these set numbers")
     ap.add_argument("--coords", nargs="*", default=list(COORDS), choices=list(ARMS),
                     help="arms: legacy (old coordinates), share (new), share_ta90 (new, target acceptance 0.9), "
-                         "share_int (new, trend integrated out; dense)")
+                         "share_int / legacy_int (trend integrated out; dense)")
     ap.add_argument("--approx", choices=("dense", "nn"), default="dense")
     ap.add_argument("--log", default=str(ROOT / "bench" / "convergence_fits.jsonl"), help="JSON-lines record of every fit")
     ap.add_argument("--resume", action="store_true", help="skip fits already in --log")

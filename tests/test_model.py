@@ -39,13 +39,15 @@ def model_and_fns():
 
 
 def _point(model, prange_z, sd_z, nsd_z, beta_z):
-    """The model's unconstrained point for the given parameters: log range and, with a nugget,
-    (log(sd^2 + tau^2), logit(sd^2 / (sd^2 + tau^2))) (docs/model.md, "Parametrisation")."""
+    """The model's unconstrained point for the given parameters: log range, log sds, or in the share
+    coordinates (log(sd^2 + tau^2), logit(sd^2 / (sd^2 + tau^2))) (docs/model.md, "Parametrisation")."""
     out = {"practical_range_z_log__": np.log(prange_z), "beta_z": np.asarray(beta_z, dtype=float)}
     if "variance_coords_z" in model.named_vars:
         out["variance_coords_z"] = np.array([np.log(sd_z**2 + nsd_z**2), np.log(sd_z**2 / nsd_z**2)])
     else:
         out["sd_z_log__"] = np.log(sd_z)
+        if "nugget_sd_z" in model.named_vars:
+            out["nugget_sd_z_log__"] = np.log(nsd_z)
     return out
 
 
@@ -116,19 +118,23 @@ def _sd_tau(u):
 def test_priors_in_the_model_are_the_pc_priors(model_and_fns):
     """The sampled practical range has the InverseGamma(1, lambda1) PC prior and the sds the
     Exponential(lambda2) PC prior, on the standardised scale (reference: scipy.stats.invgamma and
-    expon; Fuglstad et al. 2019, JASA 114), and in data units they meet the stated tails. The sds
-    are sampled in (log total variance, logit spatial share): their density there must be the PC
-    priors times the Jacobian of the change of variables (standard calculus)."""
+    expon; Fuglstad et al. 2019, JASA 114), and in data units they meet the stated tails. In the
+    share coordinates (log total variance, logit spatial share) the density must be the PC priors
+    times the Jacobian of the change of variables (standard calculus)."""
     import pymc as pm
 
-    _, model, spec, _, _ = model_and_fns
+    ds, model, spec, _, _ = model_and_fns
     lam1 = pc_range_rate(spec.priors.range[0] / spec.distance_scale, spec.priors.range[1])
     for v in (0.01, 0.2, 3.0):
         got = pm.logp(model["practical_range_z"], v).eval()
         assert got == pytest.approx(stats.invgamma(1.0, scale=lam1).logpdf(v), rel=1e-10)
     lam2 = pc_sd_rate(spec.priors.sd[0] / spec.value_sd, spec.priors.sd[1])
     lam3 = pc_sd_rate(spec.priors.nugget[0] / spec.value_sd, spec.priors.nugget[1])
-    # the sds are sampled as u = (log v, logit s): their density is the two exponential priors at
+    assert pm.logp(model["sd_z"], 0.7).eval() == pytest.approx(stats.expon(scale=1 / lam2).logpdf(0.7), rel=1e-10)
+    assert pm.logp(model["nugget_sd_z"], 0.3).eval() == pytest.approx(stats.expon(scale=1 / lam3).logpdf(0.3),
+                                                                      rel=1e-10)
+    share, _ = build_model(ds, covariance="matern32", trend=1, _coordinates="share")
+    # in the share coordinates the sds are sampled as u = (log v, logit s): their density is the two exponential priors at
     # (sigma, tau)(u) times |det d(sigma, tau) / du| (change of variables; determinant by central differences)
     for u in ([0.3, -1.2], [-1.5, 2.5], [1.1, 0.0]):
         u = np.array(u)
@@ -137,7 +143,7 @@ def test_priors_in_the_model_are_the_pc_priors(model_and_fns):
                                for h in (np.array([1e-6, 0.0]), np.array([0.0, 1e-6]))])
         expect = (stats.expon(scale=1 / lam2).logpdf(sigma) + stats.expon(scale=1 / lam3).logpdf(tau)
                   + np.log(abs(np.linalg.det(jac))))
-        assert pm.logp(model["variance_coords_z"], u).eval() == pytest.approx(expect, rel=1e-7)
+        assert pm.logp(share["variance_coords_z"], u).eval() == pytest.approx(expect, rel=1e-7)
     # the same Jacobian in closed form (shared/FACTS.md): log v + 0.5 log(s (1 - s)) - log 4
     v, share = np.exp(u[0]), 1 / (1 + np.exp(-u[1]))
     assert np.log(abs(np.linalg.det(jac))) == pytest.approx(np.log(v) + 0.5 * np.log(share * (1 - share)) - np.log(4),
@@ -255,15 +261,15 @@ def _log_jacobian_numeric(u):
     ("gaussian", None, "nn"), ("spherical", None, "nn"),
 ])
 def test_new_coordinates_density_is_the_old_one_plus_the_log_jacobian(covariance, nu, approx):
-    """The model sampled in (log v, logit s, log r) is the documented model: at random points its
-    log density equals the log density of the model sampled in (log sd, log tau, log r) (same PC
-    priors, same likelihood; kept as the private ``_coordinates="legacy"``) plus
+    """The model sampled in (log v, logit s, log r) (the private ``_coordinates="share"``) is the
+    documented model: at random points its log density equals the log density of the default model,
+    sampled in (log sd, log tau, log r) (same PC priors, same likelihood), plus
     log |det d(log sd, log tau) / d(log v, logit s)|, computed here by central differences
     (change of variables, standard calculus); analytically that determinant is -1/4 everywhere."""
     ds = _data(n=30, seed=9)
     kw = dict(covariance=covariance, nu=nu, trend=1, approx=approx, neighbours=8)
-    new, _ = build_model(ds, **kw)
-    old, _ = build_model(ds, **kw, _coordinates="legacy")
+    new, _ = build_model(ds, **kw, _coordinates="share")
+    old, _ = build_model(ds, **kw)
     assert "variance_coords_z" in new.named_vars and "sd_z_log__" in old.initial_point()
     f_new, f_old = new.compile_logp(mode="FAST_COMPILE"), old.compile_logp(mode="FAST_COMPILE")
     rng = np.random.default_rng(5)
@@ -279,8 +285,8 @@ def test_no_nugget_model_keeps_log_sd_and_log_range():
     """Without a nugget the coordinates are log sd_z and log practical_range_z, the old ones: the two
     builds have the same log density at random points (nothing to change of variables)."""
     ds = _data(n=25, seed=2)
-    new, _ = build_model(ds, covariance="matern32", nugget=False)
-    old, _ = build_model(ds, covariance="matern32", nugget=False, _coordinates="legacy")
+    new, _ = build_model(ds, covariance="matern32", nugget=False, _coordinates="share")
+    old, _ = build_model(ds, covariance="matern32", nugget=False)
     f_new, f_old = new.compile_logp(mode="FAST_COMPILE"), old.compile_logp(mode="FAST_COMPILE")
     rng = np.random.default_rng(1)
     for _ in range(3):
@@ -291,7 +297,8 @@ def test_no_nugget_model_keeps_log_sd_and_log_range():
 
 @pytest.mark.slow
 def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
-    """The posterior of the package's model (sampled in the new coordinates) equals, within Monte
+    """The posterior of the package's model (sampled in the share coordinates, the less tested path)
+    equals, within Monte
     Carlo error, the posterior of an independent implementation of the model of docs/model.md:
     PyMC's own ``pm.gp.Marginal`` with a ``Matern12`` kernel (exp(-d / l), PyMC source; our
     exponential family exp(-d / phi)), a constant mean, noise sd tau and the same PC priors written
@@ -313,7 +320,7 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
     z = simulate_field(xy, covariance="exponential", practical_range=45.0, partial_sill=1.0, nugget=0.4,
                        mean=3.0, rng=rng)
     ds = points_dataset(xy[:, 0], xy[:, 1], z, attrs={"source": "sim", "distance_units": "m"})
-    ours, spec = build_model(ds, covariance="exponential")
+    ours, spec = build_model(ds, covariance="exponential", _coordinates="share")
     _, y, _, _ = model_inputs(ds, covariance="exponential")
     rates = spec.rates
     x_std = (xy - xy.mean(axis=0)) / spec.distance_scale

@@ -134,9 +134,7 @@ def test_sbc_model_is_the_package_model():
     after = _logp(model)(point)
     var.set_value(old)
     prange = np.exp(point["practical_range_z_log__"])
-    log_v, logit_s = point["variance_coords_z"]  # (log(sd^2 + tau^2), logit(sd^2 / (sd^2 + tau^2)))
-    share = 1.0 / (1.0 + np.exp(-logit_s))
-    sd, tau = np.sqrt(np.exp(log_v) * share), np.sqrt(np.exp(log_v) * (1.0 - share))
+    sd, tau = np.exp(point["sd_z_log__"]), np.exp(point["nugget_sd_z_log__"])
     k = covariance_matrix(blocks[0]["dist"], get_covariance("matern32"), prange / spec.range_factor, sd**2, tau**2)
     mu = blocks[0]["design"] @ point["beta_z"]
     expect = stats.multivariate_normal(mu, k).logpdf(y_new) - stats.multivariate_normal(mu, k).logpdf(blocks[0]["y"])
