@@ -122,10 +122,12 @@ def _dlog(code, u, r):
 
 
 @numba.njit(nogil=True, cache=True)
-def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r):
+def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r, extra):
     """Family ``code``: fill ``work``, factor, invert; return (logp, g_phi, g_s2, g_t2) and write -alpha to grad_r.
 
-    ``addrs`` are the LAPACK addresses from :func:`bayesgeo._lapack.lapack_addresses`.
+    ``addrs`` are the LAPACK addresses from :func:`bayesgeo._lapack.lapack_addresses`. ``extra``
+    is a constant (n, n) matrix added to K (its upper triangle is read), or a (0, 0) array for none;
+    it does not depend on the parameters, so the gradient formulas are unchanged.
 
     ``work`` (n, n) is scratch: its upper triangle holds K, then its factor, then K^-1; its
     strictly lower triangle keeps the correlation R. Invalid parameters or a failed
@@ -152,6 +154,10 @@ def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r):
                     work[j, i] = r
     for i in range(n):
         work[i, i] = diag
+    if extra.shape[0] > 0:
+        for i in range(n):
+            for j in range(i, n):
+                work[i, j] += extra[i, j]
     info = _lapack.potrf_upper(work, addrs)
     if info != 0:
         return ninf, 0.0, 0.0, 0.0
@@ -210,7 +216,8 @@ def _check_family(covariance: Covariance) -> str:
 
 
 def loglik_and_grad(resid: np.ndarray, dist: np.ndarray, covariance: Covariance, scale: float,
-                    partial_sill: float, nugget: float) -> tuple[float, np.ndarray, float, float, float]:
+                    partial_sill: float, nugget: float, *,
+                    extra: np.ndarray | None = None) -> tuple[float, np.ndarray, float, float, float]:
     """Log-likelihood and its analytic gradient from one Cholesky factorisation.
 
     Parameters
@@ -224,11 +231,15 @@ def loglik_and_grad(resid: np.ndarray, dist: np.ndarray, covariance: Covariance,
         One of :data:`FAST_FAMILIES`.
     scale, partial_sill, nugget : float
         phi (distance units), sigma2 and tau2 (squared data units).
+    extra : ndarray, shape (n, n), optional
+        A constant symmetric matrix added to K (for example b^2 F F^T, the covariance of a
+        trend with a Normal(0, b^2) prior integrated out).
 
     Returns
     -------
     logp : float
-        log N(resid | 0, K); ``-inf`` for invalid parameters or a K that is not positive definite.
+        log N(resid | 0, K (+ extra)); ``-inf`` for invalid parameters or a matrix that is not
+        positive definite.
     d_resid : ndarray, shape (n,)
         d logp / d resid = -K^-1 resid.
     d_scale, d_partial_sill, d_nugget : float
@@ -239,19 +250,25 @@ def loglik_and_grad(resid: np.ndarray, dist: np.ndarray, covariance: Covariance,
     Rasmussen, C. E. and Williams, C. K. I. (2006). *Gaussian Processes for Machine Learning*,
     MIT Press, sec. 5.4.1, eq. 5.9.
     """
-    return _loglik_and_grad(_check_family(covariance), resid, dist, scale, partial_sill, nugget)
+    return _loglik_and_grad(_check_family(covariance), resid, dist, scale, partial_sill, nugget, extra)
 
 
-def _loglik_and_grad(family, resid, dist, scale, partial_sill, nugget):
+_NO_EXTRA = np.zeros((0, 0))
+
+
+def _loglik_and_grad(family, resid, dist, scale, partial_sill, nugget, extra=None):
     resid = np.ascontiguousarray(resid, dtype=float)
     dist = np.ascontiguousarray(dist, dtype=float)
     n = resid.shape[0]
     if resid.ndim != 1 or dist.shape != (n, n):
         raise ValueError(f"resid must have shape (n,) and dist (n, n); got {resid.shape} and {dist.shape}")
+    extra = _NO_EXTRA if extra is None or np.size(extra) == 0 else np.ascontiguousarray(extra, dtype=float)
+    if extra.shape not in ((0, 0), (n, n)):
+        raise ValueError(f"extra must have shape (n, n) = {(n, n)}; got {extra.shape}")
     grad_r = np.empty(n)
     logp, g_phi, g_s2, g_t2 = _kernel(FAST_FAMILIES.index(family), resid, dist, float(scale),
                                       float(partial_sill), float(nugget), _lapack.workspace(n),
-                                      _lapack.lapack_addresses(), grad_r)
+                                      _lapack.lapack_addresses(), grad_r, extra)
     return logp, grad_r, g_phi, g_s2, g_t2
 
 
@@ -261,27 +278,38 @@ def _loglik_and_grad(family, resid, dist, scale, partial_sill, nugget):
 class GPLogpGrad(Op):
     """Outputs (logp, d logp/d resid, d logp/d scale, d logp/d partial_sill, d logp/d nugget).
 
-    Inputs: resid (n,), dist (n, n), scale, partial_sill, nugget (scalars). One factorisation
-    serves the value and the whole gradient; :meth:`pullback` only scales the stored gradient.
-    ``perform`` (Python linkers) and the Numba implementation (nutpie, Numba linker) run the same
-    compiled kernel.
+    Inputs: resid (n,), dist (n, n), scale, partial_sill, nugget (scalars) and, when
+    ``with_extra``, a constant (n, n) matrix added to K. One factorisation serves the value and the
+    whole gradient; :meth:`pullback` only scales the stored gradient. ``perform`` (Python linkers)
+    and the Numba implementation (nutpie, Numba linker) run the same compiled kernel.
     """
 
-    __props__ = ("family",)
+    __props__ = ("family", "with_extra")
 
-    def __init__(self, family: str):
+    def __init__(self, family: str, with_extra: bool = False):
         if family not in FAST_FAMILIES:
             raise ValueError(f"no fast kernel for covariance {family!r}; choose one of: {', '.join(FAST_FAMILIES)}")
         self.family = family
+        self.with_extra = bool(with_extra)
 
-    def make_node(self, resid, dist, scale, partial_sill, nugget):
+    def make_node(self, resid, dist, scale, partial_sill, nugget, extra=None):
         resid = pt.as_tensor_variable(resid).astype("float64")
         dist = pt.as_tensor_variable(dist).astype("float64")
         scalars = [pt.as_tensor_variable(v).astype("float64") for v in (scale, partial_sill, nugget)]
         if resid.type.ndim != 1 or dist.type.ndim != 2 or any(s.type.ndim != 0 for s in scalars):
             raise TypeError("GPLogpGrad needs resid (n,), dist (n, n) and three scalars")
+        inputs = [resid, dist, *scalars]
+        if self.with_extra:
+            if extra is None:
+                raise TypeError("GPLogpGrad(with_extra=True) needs the extra (n, n) matrix")
+            extra = pt.as_tensor_variable(extra).astype("float64")
+            if extra.type.ndim != 2:
+                raise TypeError("GPLogpGrad: extra must be an (n, n) matrix")
+            inputs.append(extra)
+        elif extra is not None:
+            raise TypeError("GPLogpGrad: extra given to an Op built without with_extra=True")
         outs = [pt.dscalar(), pt.dvector(), pt.dscalar(), pt.dscalar(), pt.dscalar()]
-        return Apply(self, [resid, dist, *scalars], outs)
+        return Apply(self, inputs, outs)
 
     def perform(self, node, inputs, outputs):
         res = _loglik_and_grad(self.family, *inputs)
@@ -292,15 +320,18 @@ class GPLogpGrad(Op):
         return [(), shapes[0], (), (), ()]
 
     def connection_pattern(self, node):
-        return [[True] * 5, [False] * 5, [True] * 5, [True] * 5, [True] * 5]
+        out = [[True] * 5, [False] * 5, [True] * 5, [True] * 5, [True] * 5]
+        return out + [[False] * 5] if self.with_extra else out
 
     def pullback(self, inputs, outputs, cotangents):
+        constant = [1] + ([5] if self.with_extra else [])  # dist and extra: constants of the model
         if any(not isinstance(c.type, DisconnectedType) for c in cotangents[1:]):
             # second derivatives (Hessians) are not implemented
-            return [disconnected_type() if i == 1 else grad_not_implemented(self, i, x)
+            return [disconnected_type() if i in constant else grad_not_implemented(self, i, x)
                     for i, x in enumerate(inputs)]
         g = cotangents[0]
-        return [g * outputs[1], disconnected_type(), g * outputs[2], g * outputs[3], g * outputs[4]]
+        grads = [g * outputs[1], disconnected_type(), g * outputs[2], g * outputs[3], g * outputs[4]]
+        return grads + [disconnected_type()] if self.with_extra else grads
 
 
 @register_funcify_default_op_cache_key(GPLogpGrad)
@@ -309,21 +340,33 @@ def _numba_funcify_gp_logp_grad(op, node=None, **kwargs):
     kernel = _kernel
     workspace_nb = _lapack.workspace_nb
 
+    if op.with_extra:
+        @numba.njit
+        def gp_logp_grad_extra(resid, dist, scale, psill, nugget, extra):
+            n = resid.shape[0]
+            grad_r = np.empty(n)
+            work, addrs = workspace_nb(n)
+            logp, g_phi, g_s2, g_t2 = kernel(code, resid, dist, scale.item(), psill.item(), nugget.item(), work,
+                                             addrs, grad_r, extra)
+            return np.asarray(logp), grad_r, np.asarray(g_phi), np.asarray(g_s2), np.asarray(g_t2)
+
+        return gp_logp_grad_extra, _SOURCE_VERSION
+
     @numba.njit
     def gp_logp_grad(resid, dist, scale, psill, nugget):
         n = resid.shape[0]
         grad_r = np.empty(n)
         work, addrs = workspace_nb(n)
         logp, g_phi, g_s2, g_t2 = kernel(code, resid, dist, scale.item(), psill.item(), nugget.item(), work,
-                                         addrs, grad_r)
+                                         addrs, grad_r, np.zeros((0, 0)))
         return np.asarray(logp), grad_r, np.asarray(g_phi), np.asarray(g_s2), np.asarray(g_t2)
 
     return gp_logp_grad, _SOURCE_VERSION
 
 
 def marginal_loglik(resid, dist: np.ndarray, covariance: Covariance, scale, partial_sill, nugget, *,
-                    method: str = "auto"):
-    """PyTensor scalar log N(resid | 0, K).
+                    method: str = "auto", extra: np.ndarray | None = None):
+    """PyTensor scalar log N(resid | 0, K), or log N(resid | 0, K + extra).
 
     Parameters
     ----------
@@ -341,6 +384,9 @@ def marginal_loglik(resid, dist: np.ndarray, covariance: Covariance, scale, part
         differentiation (any family, slower: about 4 n^3 flops per gradient); ``"auto"`` (default):
         fast where available, else reference (the general ``matern``, whose Bessel function has
         no closed form in the Numba kernel).
+    extra : ndarray, shape (n, n), optional
+        A constant symmetric matrix added to K, for example b^2 F F^T: the covariance of a trend
+        F beta with beta ~ Normal(0, b^2 I) integrated out (Rasmussen and Williams 2006, sec. 2.7).
 
     Returns
     -------
@@ -351,13 +397,21 @@ def marginal_loglik(resid, dist: np.ndarray, covariance: Covariance, scale, part
     if method not in ("auto", "fast", "reference"):
         raise ValueError(f"method must be 'auto', 'fast' or 'reference', got {method!r}")
     dist = np.ascontiguousarray(dist, dtype=float)
-    if method == "fast" or (method == "auto" and covariance.name in FAST_FAMILIES):
-        op = GPLogpGrad(_check_family(covariance))
-        return op(resid, pt.constant(dist), scale, partial_sill, nugget)[0]
-
     n = dist.shape[0]
+    if extra is not None:
+        extra = np.ascontiguousarray(extra, dtype=float)
+        if extra.shape != (n, n):
+            raise ValueError(f"extra must have shape {(n, n)}, got {extra.shape}")
+    if method == "fast" or (method == "auto" and covariance.name in FAST_FAMILIES):
+        if extra is None:
+            return GPLogpGrad(_check_family(covariance))(resid, pt.constant(dist), scale, partial_sill, nugget)[0]
+        op = GPLogpGrad(_check_family(covariance), with_extra=True)
+        return op(resid, pt.constant(dist), scale, partial_sill, nugget, pt.constant(extra))[0]
+
     k = partial_sill * covariance.pt_correlation(pt.as_tensor(dist), scale)
     k = k + (nugget + JITTER * partial_sill) * pt.eye(n)
+    if extra is not None:
+        k = k + pt.constant(extra)
     chol = pt.linalg.cholesky(k, lower=True)
     z = pt.linalg.solve_triangular(chol, resid, lower=True)
     logdet = 2.0 * pt.sum(pt.log(pt.diag(chol)))

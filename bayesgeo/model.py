@@ -14,6 +14,11 @@ Internally the model works on a standardised scale: values ``y = (z - m) / s`` w
 ``s`` the sample mean and sd of ``z``, distances divided by ``D``, the largest distance between
 two data points. Its free variables are ``practical_range_z = r / D``, ``sd_z = sigma / s``,
 ``nugget_sd_z = tau / s`` and ``beta_z``; PyMC samples the three positive ones on the log scale.
+A private option, ``_coordinates="share"``, samples the variances of a model with a nugget as
+``variance_coords_z`` = (log(sd_z^2 + nugget_sd_z^2), logit of the spatial share
+sd_z^2 / (sd_z^2 + nugget_sd_z^2)) instead, with the same PC priors carried over by the
+change-of-variables Jacobian and ``sd_z``, ``nugget_sd_z`` as Deterministics; measured against
+the default in bench/bench_convergence.py, it is not the default (docs/model.md, "Parametrisation").
 :mod:`bayesgeo.posterior` converts draws back to data units. The full statement, priors and the
 reasons for this parametrisation are in ``docs/model.md``.
 """
@@ -21,6 +26,7 @@ reasons for this parametrisation are in ``docs/model.md``.
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 
@@ -35,13 +41,18 @@ from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
 from bayesgeo.io import to_jsonable
 
-__all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "FitSpec", "build_model", "model_inputs", "transform_values"]
+__all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "model_inputs",
+           "transform_values", "variance_split_logp"]
 
 #: Likelihood choices: exact dense, nearest-neighbour (Vecchia), or dense up to DENSE_LIMIT points.
 APPROX = ("auto", "dense", "nn")
 #: Largest n fitted with the dense likelihood under ``approx="auto"``: at n = 2,000 one dense
 #: log-density + gradient costs about 0.25 s here (bench/RESULTS.md), so a fit takes hours beyond it.
 DENSE_LIMIT = 2000
+#: Labels of the two sampled coordinates of the variances in a model with a nugget:
+#: log(sigma_z^2 + tau_z^2) and logit(sigma_z^2 / (sigma_z^2 + tau_z^2)) (docs/model.md, "Parametrisation").
+VARIANCE_COORDS = ("log_total_variance", "logit_spatial_share")
+_LOG4 = math.log(4.0)
 
 
 
@@ -253,7 +264,7 @@ def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) ->
 def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                 nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                 transform: str | None = None, priors: Priors | Mapping | None = None,
-                approx: str = "auto", neighbours: int | None = None):
+                approx: str = "auto", neighbours: int | None = None, _coordinates: str = "legacy"):
     """Build the PyMC model of one site's point data.
 
     Parameters
@@ -285,7 +296,10 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     model : pymc.Model
         Free variables ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (when ``nugget``) and
         ``beta_z`` (dim ``term``) on the standardised scale; the marginal log-likelihood is the
-        potential ``"loglik"``.
+        potential ``"loglik"``. (The private ``_coordinates="share"``, an alternative measured in
+        bench/bench_convergence.py, replaces ``sd_z`` and ``nugget_sd_z`` by the free variable
+        ``variance_coords_z`` (dim ``variance_coord``: :data:`VARIANCE_COORDS`) and keeps them as
+        Deterministics.)
     spec : FitSpec
         Settings and standardisation constants.
 
@@ -303,20 +317,75 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
                                          approx=approx, neighbours=neighbours)
     cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
     rates = spec.rates
-    with pm.Model(coords={"term": list(spec.terms)}) as model:
+    if _coordinates not in ("share", "legacy"):
+        raise ValueError(f"_coordinates must be 'share' or 'legacy', got {_coordinates!r}")
+    coords = {"term": list(spec.terms)}
+    if spec.nugget and _coordinates == "share":
+        coords["variance_coord"] = list(VARIANCE_COORDS)
+    with pm.Model(coords=coords) as model:
         prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"])
-        sd = pm.Exponential("sd_z", lam=rates["sd"])
-        tau2 = pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2 if spec.nugget else 0.0
+        if not spec.nugget:
+            sd = pm.Exponential("sd_z", lam=rates["sd"])
+            sd2, tau2 = sd**2, 0.0
+        elif _coordinates == "legacy":
+            sd = pm.Exponential("sd_z", lam=rates["sd"])
+            sd2, tau2 = sd**2, pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
+        else:
+            sd2, tau2 = _variance_split(rates["sd"], rates["nugget"])
         beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
         resid = y - pm.math.dot(design.values, beta)
         if spec.approx == "nn":
             from bayesgeo.vecchia import nn_loglik
 
             xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
-            loglik = nn_loglik(resid, xy, cov, prange / spec.range_factor, sd**2, tau2, neighbours=spec.neighbours,
+            loglik = nn_loglik(resid, xy, cov, prange / spec.range_factor, sd2, tau2, neighbours=spec.neighbours,
                                metric=spec.metric, distance_scale=spec.distance_scale)
         else:
-            loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd**2, tau2)
+            loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd2, tau2)
         pm.Potential("loglik", loglik)
     return model, spec
 
+
+def variance_split_logp(value, rates):
+    """PyTensor log prior density of ``value = (log v, logit s)`` (last axis) when
+    ``sigma ~ Exponential(lam_sd)`` and ``tau ~ Exponential(lam_nugget)`` independently,
+    ``rates = (lam_sd, lam_nugget)``, ``v = sigma^2 + tau^2`` and ``s = sigma^2 / v``: the two PC
+    priors at ``sigma = sqrt(v s)``, ``tau = sqrt(v (1 - s))`` plus the log-Jacobian
+    ``log v + 0.5 log(s (1 - s)) - log 4`` of ``(log v, logit s) -> (sigma, tau)``."""
+    import pytensor.tensor as pt
+
+    a, b = value[..., 0], value[..., 1]
+    lam_sd, lam_nugget = rates[..., 0], rates[..., 1]
+    log_s, log_1ms = -pt.softplus(-b), -pt.softplus(b)  # log s, log(1 - s), stable for large |b|
+    sigma, tau = pt.exp(0.5 * (a + log_s)), pt.exp(0.5 * (a + log_1ms))
+    prior = pt.log(lam_sd) - lam_sd * sigma + pt.log(lam_nugget) - lam_nugget * tau
+    return prior + a + 0.5 * (log_s + log_1ms) - _LOG4
+
+
+def _variance_split_dist(rates, size):
+    """Generative graph of ``(log v, logit s)``: sigma and tau drawn from their exponential PC priors."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    sigma = pm.Exponential.dist(lam=rates[..., 0], size=size)
+    tau = pm.Exponential.dist(lam=rates[..., 1], size=size)
+    return pt.stack([pt.log(sigma**2 + tau**2), 2.0 * (pt.log(sigma) - pt.log(tau))], axis=-1)
+
+
+def _variance_split(lam_sd: float, lam_nugget: float):
+    """Free variable ``variance_coords_z`` = (log total variance, logit spatial share) with the PC
+    priors of sigma and tau carried over exactly (:func:`variance_split_logp`); Deterministics
+    ``sd_z`` and ``nugget_sd_z``. Returns (sigma^2, tau^2) as tensors."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    u = pm.CustomDist(
+        "variance_coords_z", np.array([lam_sd, lam_nugget], dtype=float), logp=variance_split_logp,
+        dist=_variance_split_dist, support_point=lambda rv, size, rates: pt.zeros_like(rv),
+        signature="(k)->(k)", dims="variance_coord",
+    )
+    log_v, b = u[0], u[1]
+    log_sd2, log_tau2 = log_v - pt.softplus(-b), log_v - pt.softplus(b)
+    pm.Deterministic("sd_z", pt.exp(0.5 * log_sd2))
+    pm.Deterministic("nugget_sd_z", pt.exp(0.5 * log_tau2))
+    return pt.exp(log_sd2), pt.exp(log_tau2)

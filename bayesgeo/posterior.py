@@ -143,6 +143,8 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
         "sd_z": "sd of the spatial field / sd of the modelled values",
         "nugget_sd_z": "nugget sd / sd of the modelled values",
         "beta_z": "trend coefficients for standardised values",
+        "variance_coords_z": "sampled coordinates of the variances: log(sd_z^2 + nugget_sd_z^2) and "
+                             "logit(sd_z^2 / (sd_z^2 + nugget_sd_z^2))",
     }
     for name, text in raw.items():
         if name in out:
@@ -342,7 +344,8 @@ def fit_report(tree: xr.DataTree) -> dict:
         "sampler": {"name": smp["sampler"], "chains": smp["chains"], "draws": smp["draws"], "tune": smp["tune"],
                     "seed": smp["seed"], "seconds": smp["seconds"], "sampling_seconds": smp["sampling_seconds"],
                     "target_accept": smp["target_accept"],
-                    "adaptation": smp["adaptation"]},
+                    "adaptation": smp["adaptation"],
+                    **({k: smp[k] for k in ("attempts", "stopped", "budget_minutes")} if "attempts" in smp else {})},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
         "approximation": approximation_of(tree),
@@ -366,6 +369,10 @@ def summary_text(report: dict) -> str:
     s = report["sampler"]
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
                  f"seed {s['seed']}, {s['seconds']:.1f} s ({s['sampling_seconds']:.1f} s sampling, the rest compiling)")
+    if s.get("attempts"):
+        verdicts = ", ".join(f"{a['verdict']} ({a['tune']} + {a['draws']})" for a in s["attempts"])
+        lines.append(f"--keep-sampling {s['budget_minutes']:g} min: {len(s['attempts'])} attempt(s): {verdicts}; "
+                     f"stopped: {s['stopped']}")
     lines.append("")
     cols = ["mean", "sd", "q05", "q50", "q95", "hdi90_low", "hdi90_high"]
     width = max(len(k) for k in report["parameters"]) + 2

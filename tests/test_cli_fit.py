@@ -230,3 +230,22 @@ def test_neighbours_with_dense_refused(tmp_path, capsys):
             "--neighbours", "5", "--out", tmp_path / "o"]
     assert_refused(capsys, argv, "fit", r"--neighbours: applies to the nearest-neighbour likelihood",
                    inputs=[data], absent=[tmp_path / "o"])
+
+
+def test_keep_sampling_records_its_attempts(tmp_path, capsys):
+    """--keep-sampling MINUTES: fit.json and the JSON output list every attempt (tuning, draws, seed,
+    verdict) and why the run stopped; with several sites the option is refused naming it."""
+    data = _csv(tmp_path / "points.csv", n=30)
+    out = tmp_path / "fit-out"
+    code = main(["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "matern32", "--draws", "100",
+                 "--tune", "100", "--chains", "2", "--seed", "3", "--keep-sampling", "5", "--out", str(out), "--json"])
+    report = json.loads(capsys.readouterr().out)
+    att = report["sampler"]["attempts"]
+    assert att[0]["tune"] == 100 and att[0]["seed"] == 3 and report["sampler"]["stopped"] in ("converged", "budget",
+                                                                                                 "attempts")
+    assert json.loads((out / "fit.json").read_text())["sampler"]["attempts"] == att
+    assert code == (EXIT_NOT_CONVERGED if att[-1]["verdict"] == "fail" else 0)
+    sites = _csv(tmp_path / "sites.csv", n=30, site=np.array(["a"] * 15 + ["b"] * 15))
+    code = main(["fit", str(sites), "--value", "arsenic_mg_kg", "--site", "parcel", "--covariance", "matern32",
+                 "--keep-sampling", "5", "--out", str(tmp_path / "s")])
+    assert code == EXIT_INPUT and "--keep-sampling" in capsys.readouterr().err

@@ -309,3 +309,49 @@ def test_tiny_model_samples(sampler):
         assert np.all(np.isfinite(post[name].values))
     assert post["phi"].std() > 0  # the chain moved
     assert 0.01 < float(post["t2"].median()) < 0.6
+
+
+@pytest.mark.parametrize("method", ["fast", "reference"])
+def test_trend_integrated_out_with_an_extra_matrix(method):
+    """With extra = b^2 F F^T the likelihood is the marginal of y = F beta + e, e ~ N(0, K),
+    beta ~ N(0, b^2 I) (Rasmussen and Williams 2006, sec. 2.7; published formula): equal to
+    scipy.stats.multivariate_normal(0, K + b^2 F F^T).logpdf(y) (reference library) and, by Bayes'
+    rule, to log N(y | F beta, K) + log N(beta | 0, b^2 I) - log N(beta | m, V) at any beta, with the
+    conjugate posterior V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y (Gelman et al., BDA3,
+    sec. 14.2). The analytic gradient in (phi, sigma2, tau2) matches central differences."""
+    import pytensor
+    import pytensor.tensor as pt
+
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.likelihood import covariance_matrix, loglik_and_grad, marginal_loglik
+
+    rng = np.random.default_rng(12)
+    n, b = 35, 2.5
+    xy = rng.random((n, 2))
+    d = np.sqrt(((xy[:, None, :] - xy[None, :, :]) ** 2).sum(-1))
+    f = np.column_stack([np.ones(n), xy - 0.5])
+    y = f @ np.array([0.3, -1.0, 0.5]) + rng.normal(size=n)
+    cov = get_covariance("exponential")
+    phi, s2, t2 = 0.3, 0.8, 0.2
+    k = covariance_matrix(d, cov, phi, s2, t2)
+    ref = stats.multivariate_normal(np.zeros(n), k + b**2 * f @ f.T).logpdf(y)
+    ki = np.linalg.inv(k)
+    v = np.linalg.inv(f.T @ ki @ f + np.eye(3) / b**2)
+    m = v @ f.T @ ki @ y
+    beta = rng.normal(size=3)
+    bayes = (stats.multivariate_normal(f @ beta, k).logpdf(y) + stats.norm(0, b).logpdf(beta).sum()
+             - stats.multivariate_normal(m, v).logpdf(beta))
+    assert bayes == pytest.approx(ref, rel=1e-9)
+    a, s, t = pt.dscalars("a", "s", "t")
+    out = marginal_loglik(pt.as_tensor(y), d, cov, a, s, t, method=method, extra=b**2 * f @ f.T)
+    fn = pytensor.function([a, s, t], [out, *pt.grad(out, [a, s, t])])
+    val, *grad = fn(phi, s2, t2)
+    assert val == pytest.approx(ref, rel=1e-10)
+    h = 1e-6
+
+    def lp(*p):
+        return loglik_and_grad(y, d, cov, *p, extra=b**2 * f @ f.T)[0]
+
+    num = [(lp(phi + h, s2, t2) - lp(phi - h, s2, t2)) / (2 * h), (lp(phi, s2 + h, t2) - lp(phi, s2 - h, t2)) / (2 * h),
+           (lp(phi, s2, t2 + h) - lp(phi, s2, t2 - h)) / (2 * h)]
+    np.testing.assert_allclose(grad, num, rtol=1e-5, atol=1e-6)

@@ -509,31 +509,39 @@ def test_nn_krige_close_to_full_kriging_with_few_neighbours():
 def test_drop_in_for_the_model_likelihood():
     """The call the model uses (bayesgeo.model.build_model's Potential, with locations and
     distance_scale=spec.distance_scale in place of the scaled distance matrix) gives, with m = n - 1,
-    the same model log-density as build_model's exact likelihood, whose value is tested against
+    the same model log-density as the exact dense likelihood build_model uses (marginal_loglik on the
+    scaled distance matrix, same priors), whose value is tested against
     scipy.stats.multivariate_normal in tests/test_likelihood.py and tests/test_model.py."""
     import pymc as pm
     import xarray as xr
 
     from bayesgeo.covariance import get_covariance
-    from bayesgeo.model import build_model, model_inputs
+    from bayesgeo.likelihood import marginal_loglik
+    from bayesgeo.model import model_inputs
 
     xy, z = _field(40, 21, "matern32", 0.08, 1.0, 0.1)
     xy = 500.0 * xy + np.array([431_000.0, 5_622_000.0])  # projected-looking coordinates, metres
     ds = xr.Dataset({"value": ("obs", 5.0 + z)},
                     coords={"x": ("obs", xy[:, 0]), "y": ("obs", xy[:, 1]), "row": ("obs", np.arange(2, 42))},
                     attrs={"source": "test", "crs": "local"})
-    dense, spec = build_model(ds, covariance="matern32", trend=1)
-    _, y, design, _ = model_inputs(ds, covariance="matern32", trend=1)
+    spec, y, design, dist = model_inputs(ds, covariance="matern32", trend=1, approx="dense")
     cov = get_covariance("matern32")
     rates = spec.rates
-    with pm.Model(coords={"term": list(spec.terms)}) as nn:
-        prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"])
-        sd = pm.Exponential("sd_z", lam=rates["sd"])
-        tau2 = pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
-        beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
-        resid = y - pm.math.dot(design.values, beta)
-        pm.Potential("loglik", nn_loglik(resid, xy, cov, prange / spec.range_factor, sd**2, tau2,
-                                         neighbours=39, metric=spec.metric, distance_scale=spec.distance_scale))
+    models = {}
+    for kind in ("dense", "nn"):
+        with pm.Model(coords={"term": list(spec.terms)}) as models[kind]:
+            prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"])
+            sd = pm.Exponential("sd_z", lam=rates["sd"])
+            tau2 = pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
+            beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
+            resid = y - pm.math.dot(design.values, beta)
+            if kind == "nn":
+                loglik = nn_loglik(resid, xy, cov, prange / spec.range_factor, sd**2, tau2, neighbours=39,
+                                   metric=spec.metric, distance_scale=spec.distance_scale)
+            else:
+                loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd**2, tau2)
+            pm.Potential("loglik", loglik)
+    dense, nn = models["dense"], models["nn"]
     point = dense.initial_point()
     point.update({"practical_range_z_log__": math.log(0.3), "sd_z_log__": 0.1, "nugget_sd_z_log__": -1.0,
                   "beta_z": np.array([0.1, -0.2, 0.3])})

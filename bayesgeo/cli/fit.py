@@ -41,6 +41,10 @@ def add_arguments(p) -> None:
                    help="target acceptance rate (default 0.8; 0.9 with --site, whose population layer needs smaller steps)")
     p.add_argument("--seed", type=int_option("seed"), default=None, help="seed (default: a fresh one, recorded in the output)")
     p.add_argument("--sampler", choices=("nutpie", "pymc"), default="nutpie", help="NUTS implementation (default nutpie)")
+    p.add_argument("--keep-sampling", type=float_option("positive"), default=None, metavar="MINUTES",
+                   help="when the convergence check fails, fit again with fresh chains and twice the tuning and "
+                        "draws, until it passes or MINUTES are spent (every attempt is recorded in fit.json; "
+                        "single-site fits)")
     p.add_argument("--out", required=True, metavar="DIR", help="output folder (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
@@ -67,6 +71,10 @@ def run(args) -> int:
 
     args.workload = _announce(args, ds)
     if len(sites_of(ds)) > 1:
+        if args.keep_sampling is not None:
+            from bayesgeo.validate import InputError
+
+            raise InputError("--keep-sampling: single-site fits only for now; run without it and check each site")
         from bayesgeo.cli._sites import run_sites
 
         return run_sites(args, ds)
@@ -76,13 +84,19 @@ def run(args) -> int:
                     sd=tuple(args.prior_sd) if args.prior_sd else None,
                     nugget=tuple(args.prior_nugget) if args.prior_nugget else None)
     show = not args.json and sys.stderr.isatty()
-    tree = fit(ds, covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
-               covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
-               priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
-               target_accept=0.8 if args.target_accept is None else args.target_accept, seed=args.seed, progressbar=show,
-               approx=args.approx, neighbours=args.neighbours)
-    stage("checking convergence")
-    conv = check_convergence(tree)
+    kw = dict(covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
+              covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
+              priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
+              target_accept=0.8 if args.target_accept is None else args.target_accept, seed=args.seed,
+              progressbar=show, approx=args.approx, neighbours=args.neighbours)
+    if args.keep_sampling is not None:
+        from bayesgeo.keep_sampling import fit_until_converged
+
+        tree, conv = fit_until_converged(ds, budget_minutes=args.keep_sampling, **kw)
+    else:
+        tree = fit(ds, **kw)
+        stage("checking convergence")
+        conv = check_convergence(tree)
     tree = with_diagnostics(tree, conv.to_json())
     stage(f"writing {args.out}")
     save_fit(tree, args.out, overwrite=args.overwrite)
