@@ -261,34 +261,33 @@ def _site_labels(table, col: str) -> list[str]:
     """Site labels stripped of surrounding spaces (a warning names the rows); labels that differ only in
     spaces or only in letter case are refused, naming the rows of each spelling."""
     j = table.header.index(col)
+    rows = [r for r, _ in table.rows]
     raw = [cells[j] for _, cells in table.rows]
-    spellings: dict[str, dict[str, list[int]]] = defaultdict(dict)
-    for (r, _), c in zip(table.rows, raw):
-        spellings[c.strip()].setdefault(c, []).append(r)
-    for group in spellings.values():
-        if len(group) > 1:
-            shown = " and ".join(f"{c!r} (rows {format_rows(rs, limit=3)})" for c, rs in list(group.items())[:3])
-            raise InputError(
-                f"{table.src}: column {col!r} has labels differing only in spaces: {shown}; one site typed two "
-                "ways, or two sites? Write each site's label the same way in every row")
-    changed = [(r, c) for (r, _), c in zip(table.rows, raw) if c != c.strip() and c.strip()]
+    _refuse_spellings(table.src, col, rows, raw, str.strip, "spaces",
+                      "Write each site's label the same way in every row")
+    changed = [(r, c) for r, c in zip(rows, raw) if c != c.strip() and c.strip()]
     if changed:
         shown = ", ".join(dict.fromkeys(repr(c) for _, c in changed[:3]))
         warnings.warn(
             f"{table.src}: column {col!r} has labels with leading or trailing spaces ({shown}) at rows "
             f"{format_rows([r for r, _ in changed])}; the spaces were removed", InputWarning, stacklevel=3)
     labels = [c.strip() for c in raw]
-    variants: dict[str, dict[str, list[int]]] = defaultdict(dict)
-    for (r, _), lb in zip(table.rows, labels):
-        variants[lb.casefold()].setdefault(lb, []).append(r)
-    for group in variants.values():
+    _refuse_spellings(table.src, col, rows, labels, str.casefold, "letter case",
+                      "Relabel so that they differ in more than case (per-site output files would collide on "
+                      "Windows and macOS file systems)")
+    return labels
+
+
+def _refuse_spellings(src: str, col: str, rows, labels, key, what: str, advice: str) -> None:
+    """Refuse labels that are one label under ``key`` but spelled differently, naming each spelling's rows."""
+    spellings: dict[str, dict[str, list[int]]] = defaultdict(dict)
+    for r, lb in zip(rows, labels):
+        spellings[key(lb)].setdefault(lb, []).append(r)
+    for group in spellings.values():
         if len(group) > 1:
             shown = " and ".join(f"{lb!r} (rows {format_rows(rs, limit=3)})" for lb, rs in list(group.items())[:3])
-            raise InputError(
-                f"{table.src}: column {col!r} has labels differing only in letter case: {shown}; one site typed two "
-                "ways, or two sites? Relabel so that they differ in more than case (per-site output files would "
-                "collide on Windows and macOS file systems)")
-    return labels
+            raise InputError(f"{src}: column {col!r} has labels differing only in {what}: {shown}; one site typed "
+                             f"two ways, or two sites? {advice}")
 
 
 def _check_spread(numeric: dict, rows: list[int], src: str) -> None:
