@@ -114,6 +114,16 @@ def _walk(folder: Path) -> Iterator[tuple[str, Path]]:
             yield entry.name, entry
 
 
+def _marked_subfolders(folder: Path) -> Iterator[Path]:
+    """The subfolders :func:`_walk` skips: the outermost ones below ``folder`` with a marker of their own."""
+    for entry in sorted(folder.iterdir()):
+        if entry.is_dir() and not entry.is_symlink() and not _is_debris(entry):
+            if (entry / MARKER).exists():
+                yield entry
+            else:
+                yield from _marked_subfolders(entry)
+
+
 def _file_table(folder: Path) -> dict[str, str]:
     return {rel: sha256_file(p) for rel, p in _walk(folder)}
 
@@ -182,9 +192,8 @@ def check_replaceable(path: str | Path) -> None:
     if changed:
         raise InputError(f"{path}: files were changed since bayesgeo wrote them ({_names(changed)}); "
                          "they are not replaced; choose another output or move the folder away")
-    for sub in path.rglob(MARKER):
-        if sub.parent != path:
-            check_replaceable(sub.parent)
+    for sub in _marked_subfolders(path):  # each checks its own nested folders in turn
+        check_replaceable(sub)
 
 
 # ---------------------------------------------------------------- targets
