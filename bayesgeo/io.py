@@ -17,7 +17,7 @@ from bayesgeo.outputs import part_file
 from bayesgeo.validate import InputError
 
 
-__all__ = ["plain_attr", "to_jsonable", "read_datatree", "atomic_file", "write_json", "write_netcdf", "write_text"]
+__all__ = ["plain_attr", "to_jsonable", "read_datatree", "atomic_file", "write_json", "write_text"]
 
 
 @contextlib.contextmanager
@@ -82,13 +82,6 @@ def write_text(path: str | Path, text: str, *, overwrite: bool = False) -> Path:
 def write_json(path: str | Path, obj, *, overwrite: bool = False) -> Path:
     """Write ``obj`` as indented JSON atomically."""
     return write_text(path, json.dumps(obj, indent=2, allow_nan=True) + "\n", overwrite=overwrite)
-
-
-def write_netcdf(path: str | Path, obj, *, overwrite: bool = False) -> Path:
-    """Write an ``xarray.Dataset`` or ``DataTree`` to NetCDF (netCDF4 engine) atomically."""
-    with atomic_file(path, overwrite=overwrite) as tmp:
-        obj.to_netcdf(tmp, engine="netcdf4")
-    return Path(path)
 
 
 def read_datatree(path: str | Path, *, what: str = "NetCDF file"):
