@@ -79,12 +79,14 @@ ADVICE = {
     "rhat": ("chains disagree: run longer tuning and more draws; inspect the trace and rank plots for a "
              "stuck or multimodal chain (range and partial sill trade off along a ridge); use a more "
              "informative range prior (e.g. a PC prior) or sample the microergodic parameter "
-             "sigma^2/phi^(2 nu); run at least 4 chains; `bayesgeo fit --keep-sampling MINUTES` refits with "
-             "fresh chains and doubled tuning and draws until the check passes or the time runs out"),
+             "sigma^2/phi^(2 nu); run at least 4 chains; `bayesgeo fit` continues the same chains while R-hat or "
+             "ESS is too poor, up to --max-draws (default 4 x --draws): raise it; `bayesgeo fit --keep-sampling "
+             "MINUTES` refits with fresh chains and doubled tuning and draws until the check passes or the time "
+             "runs out"),
     "ess": ("too few effective draws: run more draws (ESS grows about linearly with them); use "
             "low-rank or dense mass-matrix adaptation, which helps the correlated range and sill; "
-            "reparametrise (log scale, microergodic parameter); `bayesgeo fit --keep-sampling MINUTES` does "
-            "the longer runs for you"),
+            "reparametrise (log scale, microergodic parameter); raise `bayesgeo fit --max-draws` (the chains "
+            "continue while ESS is too low) or use `--keep-sampling MINUTES`, which does the longer runs for you"),
     "divergence": ("raise the target acceptance rate (e.g. 0.95) and the tuning length; if the divergent "
                    "draws sit at small range or near-zero nugget (see divergence_location), use a more "
                    "informative prior that keeps them away from zero or drop the nugget"),

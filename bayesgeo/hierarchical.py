@@ -231,7 +231,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
               sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
               target_accept: float = 0.9, seed: int | None = None, progressbar: bool = False,
               adaptation: str = "low_rank", parametrisation: str = "noncentred", approx: str = "auto",
-              neighbours: int | None = None) -> xr.DataTree:
+              neighbours: int | None = None, max_draws: int | None = None) -> xr.DataTree:
     """Fit the several-site model and return the explicit fit result.
 
     Parameters
@@ -243,6 +243,10 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation :
         As in :func:`bayesgeo.sampling.sample` (``target_accept`` defaults to 0.9 here: funnels
         of hierarchical models need smaller steps, common practice).
+    max_draws : int, optional
+        While the convergence check (every site and the population) finds R-hat or ESS too poor,
+        the same chains continue up to this many draws per chain (default ``4 * draws``;
+        ``draws``: off); see :mod:`bayesgeo.looks`.
 
     Returns
     -------
@@ -260,6 +264,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         ``pooling`` and ``cautions``.
     """
     from bayesgeo.hier_outputs import add_derived, new_site_draws
+    from bayesgeo.looks import convergence_look, default_max_draws
     from bayesgeo.sampling import sample
 
     with warnings.catch_warnings(record=True) as caught:
@@ -277,9 +282,13 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
 
     # Centred site effects trigger a harmless PyTensor graph-rewrite failure (local_subtensor_SpecifyShape_lift
     # is skipped; values are unaffected, see tests): keep its traceback off the user's terminal.
+    look = convergence_look(lambda raw: xr.DataTree.from_dict({
+        "/posterior": add_derived(raw["posterior"].to_dataset(), spec),
+        "/sample_stats": raw["sample_stats"].to_dataset()}))
     with pytensor.config.change_flags(on_opt_error="ignore"):
         raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
-                     seed=seed, progressbar=progressbar, adaptation=adaptation)
+                     seed=seed, progressbar=progressbar, adaptation=adaptation,
+                     max_draws=default_max_draws(draws) if max_draws is None else max_draws, look=look)
     post = add_derived(raw["posterior"].to_dataset(), spec)
     site_of = np.asarray(ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "all"), dtype=str)
     obs_coords = {"row": ("obs", np.asarray(ds["row"].values)), "site": ("obs", site_of)}
@@ -306,7 +315,8 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         groups["/new_site"] = new_site_draws(post, spec, seed=int(raw.attrs["seed"]))
     tree = xr.DataTree.from_dict(groups)
     sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
-                                                  "adaptation", "seconds", "sampling_seconds") if k in raw.attrs}
+                                                  "adaptation", "seconds", "sampling_seconds", "max_draws", "looks")
+                        if k in raw.attrs}
     settings = {
         "format": "bayesgeo several-site fit", "format_version": 1, "model": spec.to_dict(),
         "sampler": sampler_settings, "versions": _versions(),

@@ -22,6 +22,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.diagnostics import Convergence, check_convergence
+from bayesgeo.looks import default_max_draws
 from bayesgeo.posterior import fit
 from bayesgeo.sampling import new_seed
 from bayesgeo.validate import InputError
@@ -74,18 +75,21 @@ def fit_until_converged(ds: xr.Dataset, *, budget_minutes: float, seed: int | No
     if not (np.isfinite(budget) and budget > 0):
         raise InputError(f"--keep-sampling: expected a positive number of minutes, got {budget_minutes!r}")
     seed = new_seed() if seed is None else int(seed)
+    longest = fit_kwargs.pop("max_draws", None)
+    longest = default_max_draws(draws) if longest is None else int(longest)
     start = time.perf_counter()
     attempts: list[dict] = []
     k = 0
     while True:
         t0 = time.perf_counter()
         factor = 2**k
-        tree = fit(ds, seed=_attempt_seed(seed, k), draws=draws * factor, tune=tune * factor, **fit_kwargs)
+        tree = fit(ds, seed=_attempt_seed(seed, k), draws=draws * factor, tune=tune * factor,
+                   max_draws=longest * factor, **fit_kwargs)
         conv = check_convergence(tree, thresholds=thresholds)
         table = conv.parameters
         seconds = time.perf_counter() - t0
         attempts.append({"attempt": k + 1, "seed": _attempt_seed(seed, k), "tune": tune * factor,
-                         "draws": draws * factor, "verdict": conv.verdict,
+                         "draws": int(tree["posterior"].sizes["draw"]), "verdict": conv.verdict,
                          "rhat_max": float(np.nanmax(table["rhat"].values)),
                          "ess_bulk_min": float(np.nanmin(table["ess_bulk"].values)),
                          "divergences": int(conv.divergences), "seconds": seconds})

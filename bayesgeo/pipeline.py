@@ -233,6 +233,8 @@ def _fit_options(study: Study, fam: str) -> list[str]:
            "--seed", str(smp["seed"]), "--sampler", smp["name"]]
     if smp["target_accept"] is not None:
         fit += ["--target-accept", repr(smp["target_accept"])]
+    if smp.get("max_draws") is not None:
+        fit += ["--max-draws", str(smp["max_draws"])]
     if fam == "matern":
         fit += ["--nu", repr(m["nu"])]
     if not m["nugget"]:

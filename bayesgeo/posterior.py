@@ -34,6 +34,7 @@ from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model
+from bayesgeo.looks import convergence_look, default_max_draws
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
@@ -210,7 +211,8 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None, priors=None,
         sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
         target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
-        adaptation: str = "low_rank", approx: str = "auto", neighbours: int | None = None) -> xr.DataTree:
+        adaptation: str = "low_rank", approx: str = "auto", neighbours: int | None = None,
+        max_draws: int | None = None) -> xr.DataTree:
     """Fit the single-site Bayesian GP model and return the self-describing result.
 
     Parameters
@@ -221,6 +223,10 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         Model settings, see :func:`bayesgeo.model.build_model`.
     sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation
         Sampler settings, see :func:`bayesgeo.sampling.sample`.
+    max_draws : int, optional
+        While the convergence check finds R-hat or ESS too poor, the same chains continue, up to
+        this many draws per chain (default ``4 * draws``; ``draws`` turns it off); see
+        :mod:`bayesgeo.looks`. The looks are recorded in ``settings["sampler"]["looks"]``.
 
     Returns
     -------
@@ -231,8 +237,11 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
                     transform=transform, priors=priors, approx=approx, neighbours=neighbours)
     model, spec = build_model(ds, **model_kw)
     design = design_matrix(ds, spec.trend, spec.covariates)
+    look = convergence_look(lambda raw: xr.DataTree.from_dict({
+        "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
     raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
-                 seed=seed, progressbar=progressbar, adaptation=adaptation)
+                 seed=seed, progressbar=progressbar, adaptation=adaptation,
+                 max_draws=default_max_draws(draws) if max_draws is None else max_draws, look=look)
     post = derive(raw["posterior"].to_dataset(), spec)
     obs_coords = {"row": ("obs", ds["row"].values)} if "row" in ds.coords else {}
     observed = xr.Dataset({"value": ("obs", ds["value"].values, {"units": spec.value_units,
@@ -248,7 +257,8 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         coords={**obs_coords, "term": list(spec.terms)},
     )
     sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
-                                                  "adaptation", "seconds", "sampling_seconds")}
+                                                  "adaptation", "seconds", "sampling_seconds", "max_draws", "looks")
+                        if k in raw.attrs}
     settings = {
         "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
         "model": spec.to_dict(), "sampler": sampler_settings, "versions": _versions(),

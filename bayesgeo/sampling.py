@@ -77,7 +77,8 @@ def new_seed() -> int:
 
 def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
            target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
-           adaptation: str = "low_rank", cores: int | None = None):
+           adaptation: str = "low_rank", cores: int | None = None, max_draws: int | None = None,
+           look=None):
     """Draw from the posterior of ``model`` with NUTS.
 
     Parameters
@@ -98,15 +99,25 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
     adaptation : {"low_rank", "diag"}
         Mass-matrix adaptation of nutpie (ignored by ``"pymc"``, which adapts a diagonal one).
     cores : int, optional
-        Chains run in parallel (default: up to the number of CPUs).
+        Chains run in parallel (default: up to the number of CPUs; every chain at once when the
+        chains may be extended, so that they all reach a look together).
+    max_draws : int, optional
+        With ``look``: continue the same chains up to this many draws per chain while ``look``
+        asks for more (nutpie only; :func:`bayesgeo.looks.chain_lengths` gives the looks:
+        ``draws``, then doubling, then ``max_draws``). Without it, or with ``max_draws <= draws``,
+        exactly ``draws`` are drawn.
+    look : callable, optional
+        ``look(tree) -> dict`` on the first ``k`` draws of every chain; a true ``"extend"`` in
+        the dict asks for the next look. Every dict is kept in the ``looks`` attribute.
 
     Returns
     -------
     xarray.DataTree
         ``posterior`` and ``sample_stats`` groups; root attrs ``sampler``, ``seed``, ``chains``,
-        ``draws``, ``tune``, ``target_accept``, ``adaptation``, ``seconds`` (wall time with
-        compilation) and ``sampling_seconds`` (the sampler's call alone; PyMC's
-        sampler still compiles inside it).
+        ``draws`` (kept per chain), ``tune``, ``target_accept``, ``adaptation``, ``seconds``
+        (wall time with compilation), ``sampling_seconds`` (the sampler's call alone; PyMC's
+        sampler still compiles inside it) and, when chains could be extended, ``max_draws`` and
+        ``looks`` (list of the ``look`` dicts, each with its ``draws``).
     """
     from threadpoolctl import threadpool_limits
 
@@ -119,6 +130,10 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
     if seed is None:
         seed = new_seed()
     seed = check_int(seed, "--seed", limit="seed")
+    if max_draws is not None:
+        max_draws = check_int(max_draws, "--max-draws", limit="draws")
+    extend = sampler == "nutpie" and look is not None and max_draws is not None and max_draws > draws
+    looks = None
     t0 = time.perf_counter()
     with threadpool_limits(limits=1, user_api="blas"):
         if sampler == "nutpie":
@@ -127,11 +142,20 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
             compiled = model if isinstance(model, CompiledModel) else compile_model(model)
             t1 = time.perf_counter()
             with _StderrProgress(chains * (draws + max(tune, 1)), enabled=progressbar) as bar:
-                tree = nutpie.sample(
-                    compiled.compiled, draws=draws, tune=max(tune, 1), chains=chains, cores=cores, seed=seed,
-                    save_warmup=False, progress_bar=False, progress_callback=bar.update if progressbar else None,
-                    adaptation=adaptation, target_accept=float(target_accept),
-                )
+                if extend:
+                    from bayesgeo.looks import sample_with_looks
+
+                    tree, looks = sample_with_looks(
+                        compiled.compiled, look=look, draws=draws, max_draws=max_draws, tune=max(tune, 1),
+                        chains=chains, cores=chains if cores is None else cores, seed=seed, bar=bar,
+                        adaptation=adaptation, target_accept=float(target_accept))
+                else:
+                    tree = nutpie.sample(
+                        compiled.compiled, draws=draws, tune=max(tune, 1), chains=chains, cores=cores, seed=seed,
+                        save_warmup=False, progress_bar=False,
+                        progress_callback=bar.update if progressbar else None,
+                        adaptation=adaptation, target_accept=float(target_accept),
+                    )
         else:
             import pymc as pm
 
@@ -145,8 +169,10 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
             )
     t2 = time.perf_counter()
     tree.attrs.update({
-        "sampler": sampler, "seed": seed, "chains": chains, "draws": draws, "tune": tune,
-        "target_accept": float(target_accept), "adaptation": adaptation if sampler == "nutpie" else "diag",
-        "seconds": t2 - t0, "sampling_seconds": t2 - t1,
+        "sampler": sampler, "seed": seed, "chains": chains, "draws": int(tree["posterior"].sizes["draw"]),
+        "tune": tune, "target_accept": float(target_accept),
+        "adaptation": adaptation if sampler == "nutpie" else "diag", "seconds": t2 - t0, "sampling_seconds": t2 - t1,
     })
+    if extend:
+        tree.attrs.update({"max_draws": max_draws, "looks": looks})
     return tree

@@ -78,6 +78,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "name": ("str", "nutpie", ("nutpie", "pymc"), "NUTS implementation"),
         "chains": ("int", 4, None, "chains"),
         "draws": ("int", 1000, None, "kept draws per chain"),
+        "max_draws": ("int", None, None, "continue the same chains up to this many draws per chain while R-hat or "
+                                         "ESS is too poor (default 4 x draws; equal to draws: off)"),
         "tune": ("int", 1000, None, "tuning iterations per chain"),
         "target_accept": ("float", None, None, "target acceptance rate, in (0, 1) (default 0.8; 0.9 for several-site models)"),
         "seed": ("int", 1, None, "seed of the sampler (same seed, same numbers)"),
@@ -321,7 +323,7 @@ _INT_KEYS = {
     ("explore", "bins"): ("bins", 0), ("explore", "permutations"): ("permutations", 0),
     ("explore", "trend"): ("trend", 0), ("explore", "seed"): ("seed", 0), ("model", "trend"): ("trend", 0),
     ("model", "neighbours"): ("neighbours", 0), ("sampler", "chains"): ("chains", 0),
-    ("sampler", "draws"): ("draws", 10), ("sampler", "tune"): ("tune", 0), ("sampler", "seed"): ("seed", 0),
+    ("sampler", "draws"): ("draws", 10), ("sampler", "max_draws"): ("draws", 10), ("sampler", "tune"): ("tune", 0), ("sampler", "seed"): ("seed", 0),
     ("check", "replicates"): ("replicates", 10), ("check", "seed"): ("seed", 0),
     ("prediction", "draws"): ("prediction_draws", 0), ("prediction", "seed"): ("seed", 0),
 }

@@ -13,6 +13,9 @@ side by side, same data and sampler seed:
 * ``share``: log practical_range_z and (log total variance, logit spatial share) (issue 16's proposal;
   measured here, not the default);
 * ``share_ta90`` (only when asked): the same with target acceptance 0.9 instead of 0.8;
+* ``looks`` (only when asked): the package's coordinates with chains that continue while R-hat or ESS is
+  too poor (bayesgeo.looks: looks at 1000, 2000 and 4000 draws per chain; the `bayesgeo fit` defaults since
+  this arm was measured), against ``legacy``, the same chains stopped at 1000 draws;
 * ``share_int``, ``legacy_int`` (only when asked, dense only): those coordinates with the trend coefficients
   integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
@@ -52,7 +55,7 @@ FAMILIES = ("exponential", "matern32", "matern52", "gaussian", "spherical")
 SIDE = 1000.0  # m, side of the invented survey square
 #: Arms compared: name -> (sampling coordinates, target acceptance rate).
 ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
-        "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8)}
+        "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8), "looks": ("legacy", 0.8)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -116,7 +119,13 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     else:
         model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
     compiled = compile_model(model)
-    raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept)
+    extra = {}
+    if arm == "looks":
+        from bayesgeo.looks import convergence_look, default_max_draws
+
+        extra = {"max_draws": default_max_draws(1000), "look": convergence_look(lambda r: xr.DataTree.from_dict({
+            "/posterior": derive(r["posterior"].to_dataset(), spec), "/sample_stats": r["sample_stats"].to_dataset()}))}
+    raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept, **extra)
     post = raw["posterior"].to_dataset()
     if arm.endswith("_int"):
         post["beta_z"] = _draw_beta(post, spec, *parts, seed=recipe["seed"] % 100_000)
@@ -148,7 +157,8 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
             "min_ess_tail": float(np.nanmin(table["ess_tail"].values)), "max_rhat": float(np.nanmax(table["rhat"].values)),
             "divergences": int(conv.divergences), "sampling_seconds": float(raw.attrs["sampling_seconds"]),
             "target_accept": target_accept, "wall_seconds": float(wall), "steps_per_draw": float(np.mean(stats["n_steps"].values)),
-            "divergence_location": where, "failed": worst[:6]}
+            "divergence_location": where, "failed": worst[:6], "draws_kept": int(post.sizes["draw"]),
+            "looks": [{k: v for k, v in lk.items() if k != "short"} for lk in raw.attrs.get("looks", [])]}
 
 
 def _integrated_model(ds, family: str, coords: str):
@@ -200,6 +210,11 @@ def _draw_beta(post, spec, y, f, dist, *, seed: int):
                         coords={"chain": post["chain"], "draw": post["draw"], "term": list(spec.terms)})
 
 
+def _rate(r: dict) -> float:
+    """Minimum bulk ESS per sampling second of one fit record."""
+    return r["min_ess_bulk"] / r["sampling_seconds"]
+
+
 def summarise(records: list[dict], header: str, arms=COORDS) -> str:
     """Markdown: one row per arm (sets fitted in every arm), then per set, then the divergence locations."""
     lines = [header, "",
@@ -228,8 +243,8 @@ def summarise(records: list[dict], header: str, arms=COORDS) -> str:
             lines.append(f"- set {s}: " + ", ".join(
                 f"{c} {row[c]['min_ess_bulk'] / row[c]['sampling_seconds']:.2f} ({row[c]['min_ess_bulk']:.0f} ESS in "
                 f"{row[c]['sampling_seconds']:.0f} s, {row[c]['steps_per_draw']:.1f} steps/draw)" for c in arms if c in row)
-                + (f"; ratio share/legacy {(row['share']['min_ess_bulk'] / row['share']['sampling_seconds']) / (row['legacy']['min_ess_bulk'] / row['legacy']['sampling_seconds']):.2f}"
-                   if "share" in row and "legacy" in row else ""))
+                + "".join(f"; ratio {c}/{arms[0]} {_rate(row[c]) / _rate(row[arms[0]]):.2f}"
+                          for c in arms[1:] if c in row and arms[0] in row))
     lines += ["", "Per set (family, n, true nugget share, practical range / spacing; per coordinates: verdict, "
               "min bulk ESS, max R-hat, divergences, sampling s):", "",
               "| set | family | n | nugget share | range / spacing | " + " | ".join(arms) + " |",
@@ -238,7 +253,8 @@ def summarise(records: list[dict], header: str, arms=COORDS) -> str:
         row = {r["coords"]: r for r in records if r["set"] == s}
         r0 = next(iter(row.values()))
         cells = [f"{row[c]['verdict']}, {row[c]['min_ess_bulk']:.0f}, {row[c]['max_rhat']:.3f}, {row[c]['divergences']}, "
-                 f"{row[c]['sampling_seconds']:.0f}" if c in row else "" for c in arms]
+                 f"{row[c]['sampling_seconds']:.0f}" + (f", {row[c]['draws_kept']} draws" if c == "looks" else "")
+                 if c in row else "" for c in arms]
         lines.append(f"| {s} | {r0['family']} | {r0['n']} | {r0['nugget_share']:.2f} | "
                      f"{r0['practical_range'] / r0['spacing']:.1f} | " + " | ".join(cells) + " |")
     divs = [r for r in records if r["set"] in sets and r["divergence_location"]]
@@ -265,7 +281,8 @@ def main(argv=None) -> int:
     ap.add_argument("--sets", type=int, nargs="*", default=None, help="only these set numbers")
     ap.add_argument("--coords", nargs="*", default=list(COORDS), choices=list(ARMS),
                     help="arms: legacy (old coordinates), share (new), share_ta90 (new, target acceptance 0.9), "
-                         "share_int / legacy_int (trend integrated out; dense)")
+                         "share_int / legacy_int (trend integrated out; dense), looks (legacy coordinates, chains "
+                         "continued while R-hat or ESS is too poor)")
     ap.add_argument("--approx", choices=("dense", "nn"), default="dense")
     ap.add_argument("--log", default=str(ROOT / "bench" / "convergence_fits.jsonl"), help="JSON-lines record of every fit")
     ap.add_argument("--resume", action="store_true", help="skip fits already in --log")
@@ -314,7 +331,8 @@ def main(argv=None) -> int:
               f"nutpie {nutpie.__version__}; `python bench/bench_convergence.py {' '.join(sys.argv[1:])}`. "
               f"Data sets: {len({r['set'] for r in records})} of {len(recipes)} recipes fitted; "
               "each fit 4 chains x (1000 + 1000), nutpie low-rank, target acceptance 0.8 (the `bayesgeo fit` "
-              "defaults; 0.9 in the arm share_ta90). ESS/s = minimum bulk ESS over every checked parameter / sampling seconds (compiled "
+              "defaults before chains were continued; 0.9 in the arm share_ta90; the arm looks continues the same "
+              "chains to 2000 and 4000 draws while R-hat or ESS is too poor, the defaults now). ESS/s = minimum bulk ESS over every checked parameter / sampling seconds (compiled "
               "before); wall includes compilation.")
     publish(summarise(records, header, args.coords), write=not args.no_write)
     return 0

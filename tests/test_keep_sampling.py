@@ -27,7 +27,7 @@ def test_attempts_double_and_stop_at_the_attempt_limit():
     differ and derive from the user's seed (same seed, same attempts), and the run stops at
     max_attempts, all recorded in the fit's settings and in fit.json's report."""
     kw = dict(budget_minutes=30.0, seed=7, chains=2, draws=50, tune=50, max_attempts=2, covariance="matern32",
-              thresholds={"rhat": 0.5})
+              thresholds={"rhat": 0.5}, max_draws=50)  # no continued chains: each attempt keeps its draws
     tree, conv = fit_until_converged(_data(), **kw)
     smp = json.loads(tree.attrs["settings"])["sampler"]
     assert conv.verdict == "fail" and smp["stopped"] == "attempts"
@@ -38,6 +38,17 @@ def test_attempts_double_and_stop_at_the_attempt_limit():
     assert fit_report(tree)["sampler"]["attempts"] == att
     again, _ = fit_until_converged(_data(), **kw)
     assert [a["seed"] for a in json.loads(again.attrs["settings"])["sampler"]["attempts"]] == [a["seed"] for a in att]
+
+
+def test_continued_chains_scale_with_the_attempt():
+    """max_draws is the first attempt's longest chain; later attempts scale it with their draws, and the
+    draws recorded per attempt are those kept (after the chains were continued)."""
+    tree, _ = fit_until_converged(_data(), budget_minutes=30.0, seed=7, chains=2, draws=50, tune=50,
+                                  max_attempts=2, covariance="matern32", thresholds={"rhat": 0.5}, max_draws=100)
+    smp = json.loads(tree.attrs["settings"])["sampler"]
+    assert smp["max_draws"] == 200  # 2 x 100 in the second attempt
+    # 2 x 50 draws cannot give ESS >= 400 (Vehtari et al. 2021): both attempts continue to their longest chain
+    assert [(a["tune"], a["draws"]) for a in smp["attempts"]] == [(50, 100), (100, 200)]
 
 
 def test_budget_stops_before_an_attempt_that_would_not_fit():

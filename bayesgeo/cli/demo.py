@@ -71,6 +71,8 @@ pooling = "hierarchical"
 chains = {chains}
 draws = {draws}
 tune = {tune}
+{f"max_draws = {draws}  # a smoke test: the chains are not continued" if quick else
+ "# max_draws = 4000 by default: the chains continue while R-hat or ESS is too poor"}
 target_accept = 0.95
 seed = 20261202
 

@@ -35,6 +35,10 @@ def add_arguments(p) -> None:
     p.add_argument("--neighbours", type=int_option("neighbours"), default=None, metavar="M",
                    help="neighbours per point of the nn likelihood (default 20)")
     p.add_argument("--draws", type=int_option("draws"), default=1000, help="kept draws per chain (default 1000)")
+    p.add_argument("--max-draws", type=int_option("draws"), default=None, metavar="N",
+                   help="while the convergence check finds R-hat or ESS too poor, the same chains continue, looking "
+                        "again at twice the draws, up to N draws per chain (default 4 x --draws; equal to --draws: "
+                        "off); every look is recorded in fit.json")
     p.add_argument("--tune", type=int_option("tune"), default=1000, help="tuning iterations per chain (default 1000)")
     p.add_argument("--chains", type=int_option("chains"), default=4, help="chains (default 4)")
     p.add_argument("--target-accept", type=float_option("probability"), default=None,
@@ -65,6 +69,7 @@ def run(args) -> int:
 
         raise InputError("--neighbours: applies to the nearest-neighbour likelihood (--approx nn, or auto above "
                          "2,000 points per site); drop it with --approx dense")
+    max_draws = _max_draws(args)
     claim(args.out, overwrite=args.overwrite, inputs=[args.data])  # refuse before minutes of sampling, not after
     ds = read_data(args)
     from bayesgeo.data import sites_of
@@ -88,7 +93,7 @@ def run(args) -> int:
               covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
               priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
               target_accept=0.8 if args.target_accept is None else args.target_accept, seed=args.seed,
-              progressbar=show, approx=args.approx, neighbours=args.neighbours)
+              progressbar=show, approx=args.approx, neighbours=args.neighbours, max_draws=max_draws)
     if args.keep_sampling is not None:
         from bayesgeo.keep_sampling import fit_until_converged
 
@@ -109,6 +114,16 @@ def run(args) -> int:
         print(summary_text(report), end="")
         print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
     return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
+
+
+def _max_draws(args) -> int | None:
+    """--max-draws, refused below --draws (one line)."""
+    from bayesgeo.validate import InputError
+
+    value = getattr(args, "max_draws", None)
+    if value is not None and value < args.draws:
+        raise InputError(f"--max-draws: expected at least --draws ({args.draws}), got {value}")
+    return value
 
 
 def _announce(args, ds) -> dict:
