@@ -64,7 +64,8 @@ def first_draws(tree: xr.DataTree, k: int) -> xr.DataTree:
     return out
 
 
-def convergence_look(prepare: Callable[[xr.DataTree], xr.DataTree], *, thresholds=None) -> Callable[[xr.DataTree], dict]:
+def convergence_look(prepare: Callable[[xr.DataTree], xr.DataTree], *, thresholds=None, var_names=None,
+                     levels: tuple[str, ...] = ("fail", "warn")) -> Callable[[xr.DataTree], dict]:
     """A ``look`` for :func:`bayesgeo.sampling.sample`: the convergence check of the draws so far.
 
     Parameters
@@ -72,8 +73,11 @@ def convergence_look(prepare: Callable[[xr.DataTree], xr.DataTree], *, threshold
     prepare : callable
         Raw sampler output (``posterior`` and ``sample_stats``) -> the tree the check reads (with
         the derived parameters in data units, as the saved fit will have them).
-    thresholds
+    thresholds, var_names
         Passed to :func:`bayesgeo.diagnostics.check_convergence` (default: its defaults).
+    levels : tuple of str
+        Problem levels that ask for more draws: R-hat and ESS problems that fail or only warn
+        (default; ESS >= 400 is the reference's recommendation, Vehtari et al. 2021), or ``("fail",)``.
 
     Returns
     -------
@@ -85,9 +89,9 @@ def convergence_look(prepare: Callable[[xr.DataTree], xr.DataTree], *, threshold
     from bayesgeo.diagnostics import check_convergence
 
     def look(raw: xr.DataTree) -> dict:
-        conv = check_convergence(prepare(raw), thresholds=thresholds)
+        conv = check_convergence(prepare(raw), thresholds=thresholds, var_names=var_names)
         table = conv.parameters
-        short = [p["item"] for p in conv.problems if p["check"] in EXTEND_CHECKS]
+        short = [p["item"] for p in conv.problems if p["check"] in EXTEND_CHECKS and p["level"] in levels]
 
         def pick(col, fn):
             v = np.asarray(table[col].values, dtype=float) if table.sizes.get("parameter") else np.array([])

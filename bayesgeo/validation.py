@@ -84,6 +84,7 @@ _FIT_DIAGNOSTICS = {
     "ess_min": "smallest bulk or tail ESS of the checked quantities (draws)",
     "divergences": "divergent transitions among the kept draws (all chains)",
     "failed_checks": "checks at level fail, e.g. 'rhat[sd_z],ess_bulk[nugget_sd_z]' (empty when none)",
+    "draws": "draws per chain kept (more than the setting when the chains were continued, bayesgeo.looks)",
 }
 
 
@@ -109,6 +110,10 @@ class SBCConfig:
         Target acceptance of NUTS.
     thresholds : dict
         Overrides of :class:`bayesgeo.diagnostics.Thresholds` for the convergence verdict.
+    max_draws : int or None
+        The chains continue while R-hat or ESS *fails* (relaxed thresholds above), looking at
+        ``draws``, doubling, up to this many draws per chain (:mod:`bayesgeo.looks`); ``None``:
+        ``4 * draws`` as in ``bayesgeo fit``; equal to ``draws``: off.
     """
 
     kind: str = "single"
@@ -122,6 +127,7 @@ class SBCConfig:
     ranks_of: int = 99
     target_accept: float = 0.9
     thresholds: tuple = ()
+    max_draws: int | None = None
 
     @property
     def label(self) -> str:
@@ -308,16 +314,20 @@ def _compiled(payload):
 def _replicate(unit) -> dict:
     """Fit one simulated data set and rank the truth (a work unit of :func:`bayesgeo.parallel.run_units`)."""
     from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.looks import convergence_look, default_max_draws
     from bayesgeo.sampling import CompiledModel, sample
 
     p, cfg = unit.payload, unit.payload["config"]
     base = _compiled(p)
     compiled = CompiledModel(model=base.model, compiled=base.compiled.with_data(
         **{f"sbc_y_{i}": y for i, y in enumerate(p["ys"])}))
+    names = [q for q in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z")
+             if q in base.model.named_vars]
+    look = convergence_look(lambda t: t, thresholds=dict(cfg.thresholds) or None, var_names=names, levels=("fail",))
     tree = sample(compiled, chains=cfg.chains, draws=cfg.draws, tune=cfg.tune, target_accept=cfg.target_accept,
-                  seed=int(unit.seed % (2**31 - 1)))
+                  seed=int(unit.seed % (2**31 - 1)), look=look,
+                  max_draws=default_max_draws(cfg.draws) if cfg.max_draws is None else cfg.max_draws)
     post = tree["posterior"].to_dataset()
-    names = [q for q in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z") if q in post]
     conv = check_convergence(tree, var_names=[v for v in names if v in tree["posterior"]],
                              thresholds=dict(cfg.thresholds) or None)
     ranks, cover = {}, {}
@@ -335,6 +345,7 @@ def _replicate(unit) -> dict:
                         for a in _LEVELS]
     table = conv.parameters
     return {"index": unit.index, "ranks": ranks, "cover": cover, "verdict": conv.verdict,
+            "draws": int(post.sizes["draw"]),
             "seconds": float(tree.attrs.get("sampling_seconds", np.nan)),
             "rhat_max": float(np.nanmax(table["rhat"].values)),
             "ess_min": float(np.nanmin(np.minimum(table["ess_bulk"].values, table["ess_tail"].values))),
@@ -496,6 +507,9 @@ def sbc_summary(result: xr.Dataset, *, level: float = 0.001) -> dict:
             for item in filter(None, str(text).split(",")):
                 counts[item] = counts.get(item, 0) + 1
         out["failed_checks"] = dict(sorted(counts.items(), key=lambda kv: (-kv[1], kv[0])))
+    if "draws" in result:  # chains continued while R-hat or ESS failed (bayesgeo.looks)
+        kept = np.asarray(result["draws"].values, dtype=int)
+        out["draws_kept"] = {str(k): int(v) for k, v in zip(*np.unique(kept, return_counts=True))}
     ok_all = True
     for q in result["quantity"].values:
         ranks = result["rank"].sel(quantity=q).values
@@ -525,7 +539,11 @@ def with_settings(config: SBCConfig, **changes) -> SBCConfig:
     for key in ("chains", "draws", "tune", "ranks_of", "neighbours"):
         if key in changes:
             changes[key] = check_positive_int(changes[key], f"--{key.replace('_', '-')}")
+    if changes.get("max_draws") is not None:
+        changes["max_draws"] = check_positive_int(changes["max_draws"], "--max-draws")
     out = replace(config, **changes)
+    if out.max_draws is not None and out.max_draws < out.draws:
+        raise InputError(f"--max-draws: expected at least --draws ({out.draws}), got {out.max_draws}")
     if out.chains * out.draws < out.ranks_of:
         need = -(-out.ranks_of // out.chains)
         raise InputError(f"--draws: {out.draws} draws per chain x {out.chains} chains is fewer than the {out.ranks_of} "

@@ -51,6 +51,9 @@ def test_validate_machinery_small(tmp_path, capsys):
     assert all(d >= 0 for d in diag["divergences"])
     for verdict, failed in zip(run["verdicts"], diag["failed_checks"]):
         assert (verdict == "fail") == bool(failed), (verdict, failed)
+    # chains continue while R-hat or ESS fails: looks at 60, 120, 240 draws (4 x --draws, bayesgeo.looks)
+    assert set(diag["draws"]) <= {60, 120, 240}
+    assert sum(run["draws_kept"].values()) == 3
     assert sum(run["failed_checks"].values()) >= run["verdicts"].count("fail")
     page = (tmp_path / "a" / "validation.html").read_text()
     assert "data:image/png;base64," in page and "licensed professional" in page

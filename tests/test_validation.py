@@ -273,3 +273,6 @@ def test_too_few_draws_for_the_ranks_refused():
     with pytest.raises(InputError, match=r"--draws: 20 draws per chain x 2 chains is fewer than the 49 .* --draws 25"):
         with_settings(QUICK, draws=20)
     assert with_settings(QUICK, draws=25).draws == 25
+    with pytest.raises(InputError, match=r"--max-draws: expected at least --draws \(200\), got 100"):
+        with_settings(QUICK, max_draws=100)
+    assert with_settings(QUICK, max_draws=200).max_draws == 200

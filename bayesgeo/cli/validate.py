@@ -35,6 +35,9 @@ def add_arguments(p) -> None:
     p.add_argument("--quick", action="store_true", help="CI mode: small layout, 25 replicates, short chains")
     p.add_argument("--draws", type=int_option("draws"), default=None, help="kept draws per chain (quick 200, full 500)")
     p.add_argument("--tune", type=int_option("tune"), default=None, help="tuning iterations per chain (quick 300, full 500)")
+    p.add_argument("--max-draws", type=int_option("draws"), default=None, metavar="N",
+                   help="continue a replicate's chains while R-hat or ESS fails, up to N draws per chain (default "
+                        "4 x --draws; equal to --draws: off)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="dask.distributed scheduler, e.g. tcp://host:8786")
     p.add_argument("--workers", type=int_option("workers"), default=1,
                    help="local processes (default 1: chains already use both cores; each process compiles the model)")
@@ -94,7 +97,8 @@ def run(args) -> int:
     claim(args.out, overwrite=args.overwrite, inputs=[args.study, args.data])
     data, study = _template(args)
     base = QUICK if args.quick else FULL
-    changes = {k: v for k, v in (("draws", args.draws), ("tune", args.tune)) if v is not None}
+    changes = {k: v for k, v in (("draws", args.draws), ("tune", args.tune), ("max_draws", args.max_draws))
+               if v is not None}
     base = with_settings(base, **changes)
     replicates = check_positive_int(args.replicates if args.replicates is not None else (25 if args.quick else 100),
                                     "--replicates", minimum=2)
@@ -150,7 +154,7 @@ def run(args) -> int:
            "runs": [{**s, "config": json.loads(r.attrs["config"]), "seconds": r.attrs["wall_seconds"],
                      "ranks": r["rank"].values.tolist(), "quantity_order": [str(q) for q in r["quantity"].values],
                      "verdicts": [str(v) for v in r["verdict"].values],
-                     "fit_diagnostics": {k: r[k].values.tolist() for k in ("rhat_max", "ess_min", "divergences",
+                     "fit_diagnostics": {k: r[k].values.tolist() for k in ("rhat_max", "ess_min", "divergences", "draws",
                                                                           "failed_checks") if k in r}}
                     for r, s in runs]}
     page = validation_html(runs, meta=meta)
