@@ -355,7 +355,8 @@ def fit_report(tree: xr.DataTree) -> dict:
                     "seed": smp["seed"], "seconds": smp["seconds"], "sampling_seconds": smp["sampling_seconds"],
                     "target_accept": smp["target_accept"],
                     "adaptation": smp["adaptation"],
-                    **({k: smp[k] for k in ("attempts", "stopped", "budget_minutes")} if "attempts" in smp else {})},
+                    **({k: smp[k] for k in ("attempts", "stopped", "budget_minutes")} if "attempts" in smp else {}),
+                    **({k: smp[k] for k in ("max_draws", "looks")} if "looks" in smp else {})},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
         "approximation": approximation_of(tree),
@@ -379,6 +380,9 @@ def summary_text(report: dict) -> str:
     s = report["sampler"]
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
                  f"seed {s['seed']}, {s['seconds']:.1f} s ({s['sampling_seconds']:.1f} s sampling, the rest compiling)")
+    if len(s.get("looks") or []) > 1:
+        seen = ", ".join(f"{lk['verdict']} at {lk['draws']}" for lk in s["looks"])
+        lines.append(f"chains continued while R-hat or ESS was too poor (up to {s['max_draws']} draws): {seen}")
     if s.get("attempts"):
         verdicts = ", ".join(f"{a['verdict']} ({a['tune']} + {a['draws']})" for a in s["attempts"])
         lines.append(f"--keep-sampling {s['budget_minutes']:g} min: {len(s['attempts'])} attempt(s): {verdicts}; "
