@@ -12,10 +12,12 @@ import time
 from dataclasses import dataclass
 
 import numpy as np
+import xarray as xr
 
 from bayesgeo.validate import check_choice, check_float, check_int
 
-__all__ = ["SAMPLERS", "ADAPTATIONS", "CompiledModel", "compile_model", "sample", "new_seed"]
+__all__ = ["SAMPLERS", "ADAPTATIONS", "CompiledModel", "chain_lengths", "compile_model", "first_draws", "sample",
+           "new_seed"]
 
 #: NUTS implementations offered.
 SAMPLERS = ("nutpie", "pymc")
@@ -103,7 +105,7 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
         chains may be extended, so that they all reach a look together).
     max_draws : int, optional
         With ``look``: continue the same chains up to this many draws per chain while ``look``
-        asks for more (nutpie only; :func:`bayesgeo.looks.chain_lengths` gives the looks:
+        asks for more (nutpie only; :func:`chain_lengths` gives the looks:
         ``draws``, then doubling, then ``max_draws``). Without it, or with ``max_draws <= draws``,
         exactly ``draws`` are drawn.
     look : callable, optional
@@ -143,9 +145,7 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
             t1 = time.perf_counter()
             with _StderrProgress(chains * (draws + max(tune, 1)), enabled=progressbar) as bar:
                 if extend:
-                    from bayesgeo.looks import sample_with_looks
-
-                    tree, looks = sample_with_looks(
+                    tree, looks = _sample_with_looks(
                         compiled.compiled, look=look, draws=draws, max_draws=max_draws, tune=max(tune, 1),
                         chains=chains, cores=chains if cores is None else cores, seed=seed, bar=bar,
                         adaptation=adaptation, target_accept=float(target_accept))
@@ -176,3 +176,119 @@ def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000
     if extend:
         tree.attrs.update({"max_draws": max_draws, "looks": looks})
     return tree
+
+
+# --- chains continued while a look asks for more (bayesgeo.looks) --------------------------------
+
+
+def chain_lengths(draws: int, max_draws: int) -> list[int]:
+    """Draws per chain at each look: ``draws``, doubling while below ``max_draws``, then ``max_draws``.
+
+    >>> chain_lengths(1000, 4000)
+    [1000, 2000, 4000]
+    >>> chain_lengths(1000, 3000)
+    [1000, 2000, 3000]
+    """
+    out, k = [], int(draws)
+    while k < max_draws:
+        out.append(k)
+        k *= 2
+    out.append(int(max_draws))
+    return out
+
+
+def first_draws(tree: xr.DataTree, k: int) -> xr.DataTree:
+    """The first ``k`` draws of every chain in every group of ``tree`` that has a ``draw`` dim."""
+    groups = {}
+    for name, node in tree.children.items():
+        ds = node.to_dataset()
+        groups[f"/{name}"] = ds.isel(draw=slice(0, k)) if "draw" in ds.dims else ds
+    out = xr.DataTree.from_dict(groups)
+    out.attrs = dict(tree.attrs)
+    return out
+
+
+class _Progress:
+    """nutpie's progress callback: remembers each chain's finished iterations (tuning included)."""
+
+    def __init__(self, bar):
+        self.bar, self.done = bar, None
+
+    def __call__(self, chains) -> None:
+        self.done = [int(c.finished_draws) for c in chains]
+        self.bar.update(chains)
+
+
+def _complete(tree: xr.DataTree, k: int) -> bool:
+    """Whether the first ``k`` draws of every chain are all present (nutpie pads unfinished chains)."""
+    post = tree["posterior"].to_dataset()
+    if post.sizes.get("draw", 0) < k:
+        return False
+    return all(bool(np.isfinite(np.asarray(post[v].isel(draw=slice(0, k)).values, dtype=float)).all())
+               for v in post.data_vars)
+
+
+def _stop(run) -> None:
+    """Stop a nutpie run that may still be sampling (its ``is_finished`` raises while it runs)."""
+    try:
+        run.cancel()
+    except Exception:  # noqa: BLE001 - already finished and its results taken: nothing to stop
+        pass
+
+
+def _sample_with_looks(compiled, *, look, draws: int, max_draws: int, tune: int, chains: int, cores: int,
+                      seed: int, bar, adaptation: str, target_accept: float,
+                      poll_seconds: float = 0.05) -> tuple[xr.DataTree, list[dict]]:
+    """Run nutpie for up to ``max_draws`` draws per chain, looking at :func:`chain_lengths`.
+
+    Parameters
+    ----------
+    compiled
+        A nutpie compiled model.
+    look : callable
+        ``look(tree) -> dict`` (e.g. :func:`bayesgeo.looks.convergence_look`); ``"extend"`` true asks for the next look.
+    draws, max_draws, tune, chains, cores, seed, adaptation, target_accept
+        As in :func:`sample`; ``cores`` should equal ``chains`` so that every
+        chain reaches a look at the same time.
+    bar
+        The progress bar of :func:`sample` (its total follows the looks).
+    poll_seconds : float
+        How often the chains' progress is read while waiting for a look (s).
+
+    Returns
+    -------
+    tree : xarray.DataTree
+        ``posterior`` and ``sample_stats`` with the draws kept (the first ``k`` of every chain).
+    looks : list of dict
+        ``{"draws": k, **look(...)}`` per look, in order.
+    """
+    import nutpie
+
+    progress = _Progress(bar)
+    lengths = chain_lengths(draws, max_draws)
+    run = nutpie.sample(compiled, draws=max_draws, tune=tune, chains=chains, cores=cores, seed=seed,
+                        save_warmup=False, progress_bar=False, progress_callback=progress, blocking=False,
+                        adaptation=adaptation, target_accept=target_accept)
+    looks: list[dict] = []
+    try:
+        for k in lengths:
+            if bar.bar is not None:
+                bar.bar.total = chains * (tune + k)
+            if k == max_draws:
+                kept = run.wait()
+            else:
+                while True:
+                    if progress.done is not None and len(progress.done) == chains and min(progress.done) >= tune + k:
+                        kept = first_draws(run.inspect(), k)
+                        if _complete(kept, k):
+                            break
+                    time.sleep(poll_seconds)
+            record = look(kept)
+            if "short" in record:
+                record = {**record, "short": list(record["short"])[:10]}  # a few labels suffice
+            looks.append({"draws": int(k), **record})
+            if not record.get("extend") or k == max_draws:
+                return kept, looks
+    finally:
+        _stop(run)
+    raise AssertionError("unreachable: the last look returns")  # pragma: no cover

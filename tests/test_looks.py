@@ -17,10 +17,10 @@ import xarray as xr
 
 from bayesgeo.data import points_dataset
 from bayesgeo.demo import simulate_field
-from bayesgeo.looks import chain_lengths, convergence_look, default_max_draws, first_draws
+from bayesgeo.looks import convergence_look, default_max_draws
 from bayesgeo.model import build_model
 from bayesgeo.posterior import fit
-from bayesgeo.sampling import compile_model, sample
+from bayesgeo.sampling import chain_lengths, compile_model, first_draws, sample
 from bayesgeo.validate import InputError
 
 
