@@ -218,7 +218,7 @@ def _rate(r: dict) -> float:
 def summarise(records: list[dict], header: str, arms=COORDS) -> str:
     """Markdown: one row per arm (sets fitted in every arm), then per set, then the divergence locations."""
     lines = [header, "",
-             "| coordinates | fits | exit 0 (pass or warn) | pass | median min bulk ESS | median min ESS/s | "
+             "| arm | fits | exit 0 (pass or warn) | pass | median min bulk ESS | median min ESS/s | "
              "fits with divergences | divergences (all) | median wall (s) | total wall (s) |",
              "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
     have = {(q["set"], q["coords"]) for q in records}
