@@ -38,7 +38,7 @@ def add_arguments(p) -> None:
     p.add_argument("--max-draws", type=int_option("draws"), default=None, metavar="N",
                    help="while the convergence check finds R-hat or ESS too poor, the same chains continue, looking "
                         "again at twice the draws, up to N draws per chain (default 4 x --draws; equal to --draws: "
-                        "off); every look is recorded in fit.json")
+                        "off; nutpie only); every look is recorded in fit.json")
     p.add_argument("--tune", type=int_option("tune"), default=1000, help="tuning iterations per chain (default 1000)")
     p.add_argument("--chains", type=int_option("chains"), default=4, help="chains (default 4)")
     p.add_argument("--target-accept", type=float_option("probability"), default=None,
