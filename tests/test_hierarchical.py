@@ -584,3 +584,19 @@ def test_site_spec_names_the_source():
     tree.attrs["settings"] = '{"format": "bayesgeo several-site fit", "model": {"sites": ["a"'
     with pytest.raises(InputError, match=r"^f.nc: the 'settings' attribute is not valid JSON"):
         site_spec(tree, "f.nc")
+
+
+def test_chains_continue_in_the_several_site_model(fits):
+    """fit_sites looks at the convergence check of every site and the population while sampling
+    (bayesgeo.looks): looks at 300, 600, 1200 draws per chain (4 x draws by default); the draws kept
+    are those of the last look, which is the first without an R-hat or ESS problem (Vehtari et al.
+    2021: R-hat < 1.01, ESS >= 400) or the longest chain."""
+    import json
+
+    for tree in fits[2:]:
+        smp = json.loads(tree.attrs["settings"])["sampler"]
+        looks = smp["looks"]
+        assert smp["max_draws"] == 1200 and [lk["draws"] for lk in looks] == [300, 600, 1200][:len(looks)]
+        assert smp["draws"] == looks[-1]["draws"] == tree["posterior"].sizes["draw"]
+        assert all(lk["extend"] for lk in looks[:-1])
+        assert (not looks[-1]["extend"]) or looks[-1]["draws"] == 1200
