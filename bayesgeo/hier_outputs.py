@@ -22,6 +22,7 @@ import xarray as xr
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.io import to_jsonable
+from bayesgeo.looks import looks_line, report_fields
 
 __all__ = [
     "CAUTIONS",
@@ -398,7 +399,8 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
         "sampler": {k: smp.get(k2) for k, k2 in (("name", "sampler"), ("chains", "chains"), ("draws", "draws"),
                                                  ("tune", "tune"), ("seed", "seed"), ("seconds", "seconds"),
                                                  ("sampling_seconds", "sampling_seconds"),
-                                                 ("target_accept", "target_accept"), ("adaptation", "adaptation"))},
+                                                 ("target_accept", "target_accept"), ("adaptation", "adaptation"))}
+        | report_fields(smp),
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
         "model": {"pooling": spec.pooling, "covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget,
@@ -435,6 +437,8 @@ def summary_text_sites(report: dict) -> str:
                  f"transform {m['transform'] or 'none'}")
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), seed {s['seed']}, "
                  f"{(s['seconds'] or 0):.1f} s")
+    if looks_line(s):
+        lines.append(looks_line(s))
     cols = ["mean", "sd", "q05", "q50", "q95"]
 
     def table(title, block):

@@ -25,7 +25,7 @@ from collections.abc import Callable
 import numpy as np
 import xarray as xr
 
-__all__ = ["EXTEND_CHECKS", "convergence_look", "default_max_draws"]
+__all__ = ["EXTEND_CHECKS", "convergence_look", "default_max_draws", "looks_line", "report_fields"]
 
 #: Problems of the check that longer chains cure (any level): R-hat and the two ESS.
 EXTEND_CHECKS = ("rhat", "ess_bulk", "ess_tail")
@@ -75,3 +75,18 @@ def convergence_look(prepare: Callable[[xr.DataTree], xr.DataTree], *, threshold
                 "divergences": int(conv.divergences), "short": short, "extend": bool(short)}
 
     return look
+
+
+def report_fields(sampler: dict) -> dict:
+    """``max_draws`` and ``looks`` of a fit's sampler settings, for its JSON report (empty when the
+    chains could not be continued)."""
+    return {k: sampler[k] for k in ("max_draws", "looks")} if "looks" in sampler else {}
+
+
+def looks_line(sampler: dict) -> str | None:
+    """One line for summary.txt when the chains were continued (None when one look sufficed)."""
+    looks = sampler.get("looks") or []
+    if len(looks) < 2:
+        return None
+    seen = ", ".join(f"{lk['verdict']} at {lk['draws']}" for lk in looks)
+    return f"chains continued while R-hat or ESS was too poor (up to {sampler['max_draws']} draws): {seen}"

@@ -34,7 +34,7 @@ from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model
-from bayesgeo.looks import convergence_look, default_max_draws
+from bayesgeo.looks import convergence_look, default_max_draws, looks_line, report_fields
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
@@ -356,7 +356,7 @@ def fit_report(tree: xr.DataTree) -> dict:
                     "target_accept": smp["target_accept"],
                     "adaptation": smp["adaptation"],
                     **({k: smp[k] for k in ("attempts", "stopped", "budget_minutes")} if "attempts" in smp else {}),
-                    **({k: smp[k] for k in ("max_draws", "looks")} if "looks" in smp else {})},
+                    **report_fields(smp)},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
         "approximation": approximation_of(tree),
@@ -380,9 +380,8 @@ def summary_text(report: dict) -> str:
     s = report["sampler"]
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
                  f"seed {s['seed']}, {s['seconds']:.1f} s ({s['sampling_seconds']:.1f} s sampling, the rest compiling)")
-    if len(s.get("looks") or []) > 1:
-        seen = ", ".join(f"{lk['verdict']} at {lk['draws']}" for lk in s["looks"])
-        lines.append(f"chains continued while R-hat or ESS was too poor (up to {s['max_draws']} draws): {seen}")
+    if looks_line(s):
+        lines.append(looks_line(s))
     if s.get("attempts"):
         verdicts = ", ".join(f"{a['verdict']} ({a['tune']} + {a['draws']})" for a in s["attempts"])
         lines.append(f"--keep-sampling {s['budget_minutes']:g} min: {len(s['attempts'])} attempt(s): {verdicts}; "

@@ -600,3 +600,17 @@ def test_chains_continue_in_the_several_site_model(fits):
         assert smp["draws"] == looks[-1]["draws"] == tree["posterior"].sizes["draw"]
         assert all(lk["extend"] for lk in looks[:-1])
         assert (not looks[-1]["extend"]) or looks[-1]["draws"] == 1200
+
+
+def test_site_report_carries_the_looks(fits):
+    """The several-site fit.json report and summary.txt carry the looks like the single-site ones."""
+    import json
+
+    from bayesgeo.hier_outputs import site_report, summary_text_sites
+
+    tree = fits[2]
+    smp = json.loads(tree.attrs["settings"])["sampler"]
+    report = site_report(tree)
+    assert report["sampler"]["looks"] == smp["looks"] and report["sampler"]["max_draws"] == smp["max_draws"]
+    text = summary_text_sites(report)
+    assert ("chains continued while R-hat or ESS was too poor" in text) == (len(smp["looks"]) > 1)
