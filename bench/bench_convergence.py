@@ -16,7 +16,7 @@ side by side, same data and sampler seed:
 * ``looks`` (only when asked): the package's coordinates with chains that continue while R-hat or ESS is
   too poor (bayesgeo.looks: looks at 1000, 2000 and 4000 draws per chain; the `bayesgeo fit` defaults since
   this arm was measured), against ``legacy``, the same chains stopped at 1000 draws; ``looks_ta90``: the
-  same with target acceptance 0.9;
+  same with target acceptance 0.9; ``share_looks``: the variance-split coordinates with chains continued;
 * ``share_int``, ``legacy_int`` (only when asked, dense only): those coordinates with the trend coefficients
   integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
@@ -57,7 +57,7 @@ SIDE = 1000.0  # m, side of the invented survey square
 #: Arms compared: name -> (sampling coordinates, target acceptance rate).
 ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
         "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8), "looks": ("legacy", 0.8),
-        "looks_ta90": ("legacy", 0.9)}
+        "looks_ta90": ("legacy", 0.9), "share_looks": ("share", 0.8)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -122,7 +122,7 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
         model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
     compiled = compile_model(model)
     extra = {}
-    if arm.startswith("looks"):
+    if "looks" in arm:
         from bayesgeo.looks import convergence_look, default_max_draws
 
         extra = {"max_draws": default_max_draws(1000), "look": convergence_look(lambda r: xr.DataTree.from_dict({
@@ -255,7 +255,7 @@ def summarise(records: list[dict], header: str, arms=COORDS) -> str:
         row = {r["coords"]: r for r in records if r["set"] == s}
         r0 = next(iter(row.values()))
         cells = [f"{row[c]['verdict']}, {row[c]['min_ess_bulk']:.0f}, {row[c]['max_rhat']:.3f}, {row[c]['divergences']}, "
-                 f"{row[c]['sampling_seconds']:.0f}" + (f", {row[c]['draws_kept']} draws" if c.startswith("looks") else "")
+                 f"{row[c]['sampling_seconds']:.0f}" + (f", {row[c]['draws_kept']} draws" if "looks" in c else "")
                  if c in row else "" for c in arms]
         lines.append(f"| {s} | {r0['family']} | {r0['n']} | {r0['nugget_share']:.2f} | "
                      f"{r0['practical_range'] / r0['spacing']:.1f} | " + " | ".join(cells) + " |")
