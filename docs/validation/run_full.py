@@ -33,7 +33,7 @@ from bayesgeo.validation import FULL, generated_layout, sbc_summary, simulation_
 
 def _run(a) -> None:
     cfg = with_settings(FULL, kind=a.kind, covariance=a.covariance, nugget=bool(a.nugget),
-                        nu=a.nu if a.covariance == "matern" else None)
+                        nu=a.nu if a.covariance == "matern" else None, max_draws=a.max_draws)
     if a.kind == "hierarchical":
         tpl = generated_layout(max(12, a.points // 2), sites=3, seed=a.layout_seed)
     else:
@@ -116,6 +116,8 @@ def main() -> None:
     r.add_argument("--seed", type=int, default=100)
     r.add_argument("--chunks", type=int, default=4)
     r.add_argument("--chunk-size", type=int, default=25)
+    r.add_argument("--max-draws", type=int, default=None,
+                   help="continue a replicate's chains while R-hat or ESS fails, up to this many draws (default 4 x 500)")
     r.add_argument("--out", required=True)
     m = sub.add_parser("merge")
     m.add_argument("--out", required=True)
