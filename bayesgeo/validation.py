@@ -114,6 +114,10 @@ class SBCConfig:
         The chains continue while R-hat or ESS *fails* (relaxed thresholds above), looking at
         ``draws``, doubling, up to this many draws per chain (:mod:`bayesgeo.looks`); ``None``:
         ``4 * draws`` as in ``bayesgeo fit``; equal to ``draws``: off.
+    coordinates : {"legacy", "share"}
+        Sampling coordinates of the single-site model (``build_model``'s private ``_coordinates``:
+        the default log sds, or the measured alternative log total variance and logit spatial
+        share; docs/model.md). Same model and priors either way.
     """
 
     kind: str = "single"
@@ -128,6 +132,7 @@ class SBCConfig:
     target_accept: float = 0.9
     thresholds: tuple = ()
     max_draws: int | None = None
+    coordinates: str = "legacy"
 
     @property
     def label(self) -> str:
@@ -226,7 +231,7 @@ def sbc_model(template: xr.Dataset, config: SBCConfig):
     from bayesgeo.model import build_model, model_inputs
 
     kw = dict(covariance=config.covariance, nu=config.nu, nugget=config.nugget)
-    model, spec = build_model(template, **kw)
+    model, spec = build_model(template, **kw, _coordinates=config.coordinates)
     _, y, design, dist = model_inputs(template, **kw)
     blocks = [{"y": y, "design": np.asarray(design.values, dtype=float), "dist": dist}]
     nn = None

@@ -141,6 +141,24 @@ def test_sbc_model_is_the_package_model():
     assert after - before == pytest.approx(expect, rel=1e-8, abs=1e-8)
 
 
+def test_sbc_model_in_share_coordinates_is_the_package_model_in_them():
+    """SBCConfig(coordinates="share") fits build_model(..., _coordinates="share"): the same log density
+    at 5 random unconstrained points (reference: the package's model in those coordinates, whose
+    density is the default model's plus the log-Jacobian, tests/test_model.py)."""
+    from bayesgeo.model import build_model
+
+    ds = generated_layout(12, seed=3)
+    model, _, _ = sbc_model(ds, SBCConfig(covariance="exponential", coordinates="share"))
+    ref, _ = build_model(ds, covariance="exponential", _coordinates="share")
+    assert "variance_coords_z" in model.named_vars and "variance_coords_z" in ref.named_vars
+    f, g = _logp(model), _logp(ref)
+    rng = np.random.default_rng(2)
+    ip = ref.initial_point()
+    for _ in range(5):
+        point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in ip.items()}
+        assert f(point) == pytest.approx(g(point), rel=1e-12, abs=1e-9)
+
+
 def test_model_is_mirror_symmetric_in_the_intercept():
     """The SBC model's log density is unchanged when the data and the intercept change sign,
     (y, beta) -> (-y, -beta): the Gaussian likelihood depends on y - F beta only through a

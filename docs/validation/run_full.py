@@ -33,7 +33,8 @@ from bayesgeo.validation import FULL, generated_layout, sbc_summary, simulation_
 
 def _run(a) -> None:
     cfg = with_settings(FULL, kind=a.kind, covariance=a.covariance, nugget=bool(a.nugget),
-                        nu=a.nu if a.covariance == "matern" else None, max_draws=a.max_draws)
+                        nu=a.nu if a.covariance == "matern" else None, max_draws=a.max_draws,
+                        coordinates=a.coordinates)
     if a.kind == "hierarchical":
         tpl = generated_layout(max(12, a.points // 2), sites=3, seed=a.layout_seed)
     else:
@@ -42,6 +43,8 @@ def _run(a) -> None:
     out.mkdir(parents=True, exist_ok=True)
     family = f"matern{a.nu:g}".replace(".", "p") if a.covariance == "matern" else a.covariance
     stem = f"{a.kind}-{family}-{'nugget' if a.nugget else 'no-nugget'}"
+    if a.coordinates != "legacy":
+        stem = f"{a.coordinates}-{stem}"
     for c in range(a.chunks):
         path = out / f"{stem}-{c}.nc"
         if path.exists():
@@ -116,6 +119,8 @@ def main() -> None:
     r.add_argument("--seed", type=int, default=100)
     r.add_argument("--chunks", type=int, default=4)
     r.add_argument("--chunk-size", type=int, default=25)
+    r.add_argument("--coordinates", choices=("legacy", "share"), default="legacy",
+                   help="sampling coordinates of the single-site model (share: log total variance, logit spatial share)")
     r.add_argument("--max-draws", type=int, default=None,
                    help="continue a replicate's chains while R-hat or ESS fails, up to this many draws (default 4 x 500)")
     r.add_argument("--out", required=True)
