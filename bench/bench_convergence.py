@@ -16,7 +16,8 @@ side by side, same data and sampler seed:
 * ``looks`` (only when asked): the package's coordinates with chains that continue while R-hat or ESS is
   too poor (bayesgeo.looks: looks at 1000, 2000 and 4000 draws per chain; the `bayesgeo fit` defaults since
   this arm was measured), against ``legacy``, the same chains stopped at 1000 draws; ``looks_ta90``: the
-  same with target acceptance 0.9; ``share_looks``: the variance-split coordinates with chains continued;
+  same with target acceptance 0.9; ``share_looks``: the variance-split coordinates with chains continued; ``share_int_looks``: the same with
+  the trend integrated out (dense; the looks judge the sampled parameters, beta is drawn afterwards);
 * ``share_int``, ``legacy_int`` (only when asked, dense only): those coordinates with the trend coefficients
   integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
@@ -57,7 +58,7 @@ SIDE = 1000.0  # m, side of the invented survey square
 #: Arms compared: name -> (sampling coordinates, target acceptance rate).
 ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
         "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8), "looks": ("legacy", 0.8),
-        "looks_ta90": ("legacy", 0.9), "share_looks": ("share", 0.8)}
+        "looks_ta90": ("legacy", 0.9), "share_looks": ("share", 0.8), "share_int_looks": ("share", 0.8)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -116,7 +117,7 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     ds = simulate(recipe)
     t0 = time.perf_counter()
     coords, target_accept = ARMS[arm]
-    if arm.endswith("_int"):
+    if "_int" in arm:
         model, spec, parts = _integrated_model(ds, recipe["family"], coords)
     else:
         model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
@@ -125,11 +126,15 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     if "looks" in arm:
         from bayesgeo.looks import convergence_look, default_max_draws
 
-        extra = {"max_draws": default_max_draws(1000), "look": convergence_look(lambda r: xr.DataTree.from_dict({
-            "/posterior": derive(r["posterior"].to_dataset(), spec), "/sample_stats": r["sample_stats"].to_dataset()}))}
+        if "_int" in arm:  # beta is drawn after sampling: the looks judge the sampled parameters alone
+            prepare = lambda r: r  # noqa: E731
+        else:
+            prepare = lambda r: xr.DataTree.from_dict({  # noqa: E731
+                "/posterior": derive(r["posterior"].to_dataset(), spec), "/sample_stats": r["sample_stats"].to_dataset()})
+        extra = {"max_draws": default_max_draws(1000), "look": convergence_look(prepare)}
     raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept, **extra)
     post = raw["posterior"].to_dataset()
-    if arm.endswith("_int"):
+    if "_int" in arm:
         post["beta_z"] = _draw_beta(post, spec, *parts, seed=recipe["seed"] % 100_000)
     wall = time.perf_counter() - t0
     post = derive(post, spec)
