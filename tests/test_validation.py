@@ -101,6 +101,16 @@ def _logp(model):
     return model.compile_logp(mode="FAST_COMPILE")
 
 
+def _assert_same_logp(model, ref, rng, points: int = 5):
+    """The two models' log densities agree at ``points`` random points near ref's initial point."""
+    f, g = _logp(model), _logp(ref)
+    ip = ref.initial_point()
+    for _ in range(points):
+        point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in ip.items()}
+        assert f(point) == pytest.approx(g(point), rel=1e-12, abs=1e-9)
+    return f, ip
+
+
 def test_sbc_model_is_the_package_model():
     """The SBC model has the same log density as build_model at random points (same priors, same
     likelihood; reference: the package's own model, compared at 5 points of the unconstrained
@@ -112,12 +122,8 @@ def test_sbc_model_is_the_package_model():
     cfg = SBCConfig(covariance="matern32")
     model, blocks, spec = sbc_model(ds, cfg)
     ref, _ = build_model(ds, covariance="matern32")
-    f, g = _logp(model), _logp(ref)
     rng = np.random.default_rng(1)
-    ip = ref.initial_point()
-    for _ in range(5):
-        point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in ip.items()}
-        assert f(point) == pytest.approx(g(point), rel=1e-12, abs=1e-9)
+    f, ip = _assert_same_logp(model, ref, rng)
     # swap in new data: the change in log density equals the change in the Gaussian log-likelihood
     y_new = rng.normal(size=12)
     shared = {v.name: v for v in model.data_vars} if hasattr(model, "data_vars") else {}
@@ -151,12 +157,7 @@ def test_sbc_model_in_share_coordinates_is_the_package_model_in_them():
     model, _, _ = sbc_model(ds, SBCConfig(covariance="exponential", coordinates="share"))
     ref, _ = build_model(ds, covariance="exponential", _coordinates="share")
     assert "variance_coords_z" in model.named_vars and "variance_coords_z" in ref.named_vars
-    f, g = _logp(model), _logp(ref)
-    rng = np.random.default_rng(2)
-    ip = ref.initial_point()
-    for _ in range(5):
-        point = {k: v + rng.normal(0, 0.5, np.shape(v)) for k, v in ip.items()}
-        assert f(point) == pytest.approx(g(point), rel=1e-12, abs=1e-9)
+    _assert_same_logp(model, ref, np.random.default_rng(2))
 
 
 def test_model_is_mirror_symmetric_in_the_intercept():
