@@ -98,7 +98,7 @@ def _cores() -> int:
 
 
 def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int | None = None, chains: int = 4,
-             draws: int = 1000, tune: int = 1000, fits: int = 1) -> dict:
+             draws: int = 1000, tune: int = 1000, fits: int = 1, max_draws: int | None = None) -> dict:
     """What a fit of sites of ``sizes`` points will do and roughly how long it will take.
 
     Parameters
@@ -111,6 +111,9 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
     fits : int
         Model fits the command runs (2 for a pooled several-site fit: the pooled one and the
         independent one for the shrinkage table).
+    max_draws : int, optional
+        Longest chain when the chains continue while R-hat or ESS is too poor (default
+        ``4 * draws``, :func:`bayesgeo.looks.default_max_draws`; equal to ``draws``: never).
 
     Returns
     -------
@@ -118,21 +121,28 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
         ``points`` (total), ``largest_site``, ``likelihood`` (per site: "dense" or "nn"),
         ``estimated_seconds`` ([low, high], a factor 2 either side of the central value),
         ``dense_memory_bytes`` (rough memory of the dense likelihood terms, :func:`dense_memory_bytes`),
-        ``comfortable_points`` and ``message`` (None when the run is within the comfortable size).
+        ``comfortable_points``, ``longest_seconds`` (the central estimate if every chain runs to
+        ``max_draws``) and ``message`` (None when the run is within the comfortable size).
     """
+    from bayesgeo.looks import default_max_draws
     from bayesgeo.model import DENSE_LIMIT
     from bayesgeo.vecchia import DEFAULT_NEIGHBOURS
 
     m = DEFAULT_NEIGHBOURS if neighbours is None else int(neighbours)
     lik = {s: ("dense" if n <= DENSE_LIMIT else "nn") if approx == "auto" else approx for s, n in sizes.items()}
     grad = sum(gradient_seconds(n, lik[s], min(m, max(n - 1, 1))) for s, n in sizes.items())
-    per_fit = chains * (draws + tune) * _STEPS_PER_ITERATION * grad / min(chains, _cores()) + _COMPILE_SECONDS
-    central = fits * per_fit
+    longest = max(int(draws), default_max_draws(draws) if max_draws is None else int(max_draws))
+
+    def seconds(kept: int) -> float:
+        return fits * (chains * (kept + tune) * _STEPS_PER_ITERATION * grad / min(chains, _cores()) + _COMPILE_SECONDS)
+
+    central = seconds(draws)
     total, largest = int(sum(sizes.values())), int(max(sizes.values()))
     memory = sum(dense_memory_bytes(n, chains) for s, n in sizes.items() if lik[s] == "dense")
     plan = {"points": total, "largest_site": largest, "likelihood": dict(lik),
             "estimated_seconds": [round(central / 2, 1), round(central * 2, 1)], "dense_memory_bytes": memory,
-            "comfortable_points": FIT_COMFORTABLE_POINTS, "message": None}
+            "comfortable_points": FIT_COMFORTABLE_POINTS, "longest_seconds": round(seconds(longest), 1),
+            "message": None}
     notes = []
     dense_big = [s for s, n in sizes.items() if lik[s] == "dense" and n > DENSE_LIMIT]
     nn_sites = [s for s in sizes if lik[s] == "nn"]
@@ -153,7 +163,8 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
         runs = f"{fits} fits (pooled and independent) of " if fits > 1 else ""
         msg = (f"{total:,} points{f' at {len(sizes)} sites' if where else ''}: expect roughly {format_duration(lo)} "
                f"to {format_duration(hi)} on {_cores()} core(s) for {runs}{chains} chains x {draws + tune:,} "
-               "iterations")
+               "iterations" + (f", about {format_duration(plan['longest_seconds'])} if the chains must continue to "
+                               f"{longest:,} draws (R-hat or ESS too poor; --max-draws)" if longest > draws else ""))
         plan["message"] = "; ".join([msg, *notes]) + f"; {shorter} shorten it, at the cost of precision"
     elif notes:
         plan["message"] = "; ".join(notes)

@@ -39,6 +39,20 @@ def test_fit_messages():
     assert sites["likelihood"] == {"a": "dense", "b": "nn"} and "2 fits (pooled and independent)" in sites["message"]
 
 
+def test_fit_plan_names_the_longest_run_when_chains_continue():
+    """The chains may continue to max_draws (default 4 x draws, bayesgeo.looks): the plan gives the time
+    of that longest run, which grows with the draws as the estimate itself does (same formula), and the
+    message names --max-draws; with max_draws equal to draws it says nothing of it."""
+    base = wl.fit_plan({"": 50_000}, chains=4, draws=1000, tune=1000)
+    off = wl.fit_plan({"": 50_000}, chains=4, draws=1000, tune=1000, max_draws=1000)
+    central = sum(base["estimated_seconds"]) / 2.5  # lo = c / 2, hi = 2 c
+    assert base["longest_seconds"] > central and off["longest_seconds"] == pytest.approx(central, rel=0.01)
+    five = wl.fit_plan({"": 50_000}, chains=4, draws=1000, tune=1000, max_draws=5000)["longest_seconds"]
+    assert (five - central) == pytest.approx(4000 / 3000 * (base["longest_seconds"] - central), rel=0.01)
+    assert "continue to 4,000 draws" in base["message"] and "--max-draws" in base["message"]
+    assert "continue to" not in off["message"]
+
+
 def test_explore_pair_count_matches_the_benchmark():
     """With the default largest lag the plan's pair count for 20,000 uniform points is within 3% of
     the 149,666,921 pairs counted by the kernel in bench/RESULTS.md ("Exploratory pair statistics",

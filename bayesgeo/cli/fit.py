@@ -142,7 +142,7 @@ def _announce(args, ds) -> dict:
              else {"": int(ds.sizes["obs"])})
     pooled = len(labels) > 1 and getattr(args, "pooling", "hierarchical") != "independent"
     plan = fit_plan(sizes, approx=args.approx, neighbours=args.neighbours, chains=args.chains, draws=args.draws,
-                    tune=args.tune, fits=2 if pooled else 1)
+                    tune=args.tune, fits=2 if pooled else 1, max_draws=getattr(args, "max_draws", None))
     ram = physical_memory_bytes()
     if ram is not None and plan["dense_memory_bytes"] > ram:
         raise InputError(f"--approx {args.approx}: the dense likelihood of {plan['largest_site']:,} points with "
