@@ -264,7 +264,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         ``pooling`` and ``cautions``.
     """
     from bayesgeo.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.looks import convergence_look, default_max_draws
+    from bayesgeo.looks import convergence_look, longest_chain
     from bayesgeo.sampling import sample
 
     with warnings.catch_warnings(record=True) as caught:
@@ -288,7 +288,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     with pytensor.config.change_flags(on_opt_error="ignore"):
         raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
                      seed=seed, progressbar=progressbar, adaptation=adaptation,
-                     max_draws=default_max_draws(draws) if max_draws is None else max_draws, look=look)
+                     max_draws=longest_chain(draws, max_draws), look=look)
     post = add_derived(raw["posterior"].to_dataset(), spec)
     site_of = np.asarray(ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "all"), dtype=str)
     obs_coords = {"row": ("obs", np.asarray(ds["row"].values)), "site": ("obs", site_of)}

@@ -22,7 +22,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.diagnostics import Convergence, check_convergence
-from bayesgeo.looks import default_max_draws
+from bayesgeo.looks import longest_chain
 from bayesgeo.posterior import fit
 from bayesgeo.sampling import new_seed
 from bayesgeo.validate import InputError
@@ -75,8 +75,7 @@ def fit_until_converged(ds: xr.Dataset, *, budget_minutes: float, seed: int | No
     if not (np.isfinite(budget) and budget > 0):
         raise InputError(f"--keep-sampling: expected a positive number of minutes, got {budget_minutes!r}")
     seed = new_seed() if seed is None else int(seed)
-    longest = fit_kwargs.pop("max_draws", None)
-    longest = default_max_draws(draws) if longest is None else int(longest)
+    longest = longest_chain(draws, fit_kwargs.pop("max_draws", None))
     start = time.perf_counter()
     attempts: list[dict] = []
     k = 0

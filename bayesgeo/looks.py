@@ -25,7 +25,7 @@ from collections.abc import Callable
 import numpy as np
 import xarray as xr
 
-__all__ = ["EXTEND_CHECKS", "convergence_look", "default_max_draws", "looks_line", "report_fields"]
+__all__ = ["EXTEND_CHECKS", "convergence_look", "default_max_draws", "longest_chain", "looks_line", "report_fields"]
 
 #: Problems of the check that longer chains cure (any level): R-hat and the two ESS.
 EXTEND_CHECKS = ("rhat", "ess_bulk", "ess_tail")
@@ -34,6 +34,23 @@ EXTEND_CHECKS = ("rhat", "ess_bulk", "ess_tail")
 def default_max_draws(draws: int) -> int:
     """The default longest chain: four times the first look (4,000 draws for the default 1,000)."""
     return 4 * int(draws)
+
+
+def longest_chain(draws: int, max_draws: int | None, *, where: str = "--max-draws", draws_name: str = "--draws") -> int:
+    """The longest chain of a fit: ``max_draws``, or :func:`default_max_draws` when it is None.
+
+    Raises
+    ------
+    InputError
+        ``max_draws`` below ``draws`` (one line naming ``where`` and ``draws_name``).
+    """
+    from bayesgeo.validate import InputError
+
+    if max_draws is None:
+        return default_max_draws(draws)
+    if max_draws < draws:
+        raise InputError(f"{where}: expected at least {draws_name} ({draws}), got {max_draws}")
+    return int(max_draws)
 
 
 def convergence_look(prepare: Callable[[xr.DataTree], xr.DataTree], *, thresholds=None, var_names=None,

@@ -34,7 +34,7 @@ from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model
-from bayesgeo.looks import convergence_look, default_max_draws, looks_line, report_fields
+from bayesgeo.looks import convergence_look, longest_chain, looks_line, report_fields
 from bayesgeo.sampling import sample
 from bayesgeo.trend import design_matrix
 from bayesgeo.validate import InputError
@@ -241,7 +241,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
     raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
                  seed=seed, progressbar=progressbar, adaptation=adaptation,
-                 max_draws=default_max_draws(draws) if max_draws is None else max_draws, look=look)
+                 max_draws=longest_chain(draws, max_draws), look=look)
     post = derive(raw["posterior"].to_dataset(), spec)
     obs_coords = {"row": ("obs", ds["row"].values)} if "row" in ds.coords else {}
     observed = xr.Dataset({"value": ("obs", ds["value"].values, {"units": spec.value_units,

@@ -319,7 +319,7 @@ def _compiled(payload):
 def _replicate(unit) -> dict:
     """Fit one simulated data set and rank the truth (a work unit of :func:`bayesgeo.parallel.run_units`)."""
     from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.looks import convergence_look, default_max_draws
+    from bayesgeo.looks import convergence_look, longest_chain
     from bayesgeo.sampling import CompiledModel, sample
 
     p, cfg = unit.payload, unit.payload["config"]
@@ -331,7 +331,7 @@ def _replicate(unit) -> dict:
     look = convergence_look(lambda t: t, thresholds=dict(cfg.thresholds) or None, var_names=names, levels=("fail",))
     tree = sample(compiled, chains=cfg.chains, draws=cfg.draws, tune=cfg.tune, target_accept=cfg.target_accept,
                   seed=int(unit.seed % (2**31 - 1)), look=look,
-                  max_draws=default_max_draws(cfg.draws) if cfg.max_draws is None else cfg.max_draws)
+                  max_draws=longest_chain(cfg.draws, cfg.max_draws))
     post = tree["posterior"].to_dataset()
     conv = check_convergence(tree, var_names=[v for v in names if v in tree["posterior"]],
                              thresholds=dict(cfg.thresholds) or None)
@@ -547,8 +547,9 @@ def with_settings(config: SBCConfig, **changes) -> SBCConfig:
     if changes.get("max_draws") is not None:
         changes["max_draws"] = check_positive_int(changes["max_draws"], "--max-draws")
     out = replace(config, **changes)
-    if out.max_draws is not None and out.max_draws < out.draws:
-        raise InputError(f"--max-draws: expected at least --draws ({out.draws}), got {out.max_draws}")
+    from bayesgeo.looks import longest_chain
+
+    longest_chain(out.draws, out.max_draws)  # refuses max_draws below draws
     if out.chains * out.draws < out.ranks_of:
         need = -(-out.ranks_of // out.chains)
         raise InputError(f"--draws: {out.draws} draws per chain x {out.chains} chains is fewer than the {out.ranks_of} "

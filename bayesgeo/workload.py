@@ -113,7 +113,7 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
         independent one for the shrinkage table).
     max_draws : int, optional
         Longest chain when the chains continue while R-hat or ESS is too poor (default
-        ``4 * draws``, :func:`bayesgeo.looks.default_max_draws`; equal to ``draws``: never).
+        ``4 * draws``, :func:`bayesgeo.looks.longest_chain`; equal to ``draws``: never).
 
     Returns
     -------
@@ -124,14 +124,14 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
         ``comfortable_points``, ``longest_seconds`` (the central estimate if every chain runs to
         ``max_draws``) and ``message`` (None when the run is within the comfortable size).
     """
-    from bayesgeo.looks import default_max_draws
+    from bayesgeo.looks import longest_chain
     from bayesgeo.model import DENSE_LIMIT
     from bayesgeo.vecchia import DEFAULT_NEIGHBOURS
 
     m = DEFAULT_NEIGHBOURS if neighbours is None else int(neighbours)
     lik = {s: ("dense" if n <= DENSE_LIMIT else "nn") if approx == "auto" else approx for s, n in sizes.items()}
     grad = sum(gradient_seconds(n, lik[s], min(m, max(n - 1, 1))) for s, n in sizes.items())
-    longest = max(int(draws), default_max_draws(draws) if max_draws is None else int(max_draws))
+    longest = longest_chain(draws, max_draws)
 
     def seconds(kept: int) -> float:
         return fits * (chains * (kept + tune) * _STEPS_PER_ITERATION * grad / min(chains, _cores()) + _COMPILE_SECONDS)

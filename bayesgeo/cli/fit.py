@@ -117,13 +117,11 @@ def run(args) -> int:
 
 
 def _max_draws(args) -> int | None:
-    """--max-draws, refused below --draws (one line)."""
-    from bayesgeo.validate import InputError
+    """--max-draws, refused below --draws (one line) before any sampling; None keeps the default."""
+    from bayesgeo.looks import longest_chain
 
     value = getattr(args, "max_draws", None)
-    if value is not None and value < args.draws:
-        raise InputError(f"--max-draws: expected at least --draws ({args.draws}), got {value}")
-    return value
+    return None if value is None else longest_chain(args.draws, value)
 
 
 def _announce(args, ds) -> dict:
