@@ -345,6 +345,12 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
         if v is not None and v != "all":
             check_int(v, _where(src, text, table, key), minimum=max(lo, INT_LIMITS[limit][0]),
                       maximum=INT_LIMITS[limit][1])
+    smp = s["sampler"]
+    if smp["max_draws"] is not None:
+        from bayesgeo.looks import longest_chain
+
+        longest_chain(smp["draws"], smp["max_draws"], where=_where(src, text, "sampler", "max_draws"),
+                      draws_name="draws")
     for (table, key), limit in _FLOAT_KEYS.items():
         if s[table][key] is not None:
             check_float(s[table][key], _where(src, text, table, key), limit)

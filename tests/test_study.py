@@ -216,6 +216,15 @@ def test_numeric_settings_bounded(study_dir, extra, table, key, line, msg):
     assert "\n" not in s
 
 
+def test_max_draws_below_draws_refused_when_read(study_dir):
+    """[sampler] max_draws below draws is refused where the file is read (one line naming file, line,
+    table and key), not when the fit starts after the exploration."""
+    with pytest.raises(InputError, match=r"study.toml, line 13: \[sampler\] max_draws: expected at least draws "
+                                         r"\(1000\), got 500$"):
+        _parse(MINIMAL + "\n[sampler]\ndraws = 1000\nmax_draws = 500\n", study_dir)
+    assert _parse(MINIMAL + "\n[sampler]\ndraws = 1000\nmax_draws = 1000\n", study_dir) is not None
+
+
 def test_model_neighbours_and_nu_bounded(study_dir):
     """[model] neighbours and nu are bounded like --neighbours and --nu (nu in (0, 50], the
     registry's range for the general Matérn family)."""
