@@ -41,7 +41,6 @@ import argparse
 import datetime as dt
 import json
 import os
-import platform
 import sys
 import time
 from pathlib import Path
@@ -51,7 +50,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a script)
+from _common import publish, sampler_context  # noqa: E402  (bench/ is on sys.path when run as a script)
 
 FAMILIES = ("exponential", "matern32", "matern52", "gaussian", "spherical")
 SIDE = 1000.0  # m, side of the invented survey square
@@ -326,16 +325,9 @@ def main(argv=None) -> int:
     records = [r for r in done if r["set"] in wanted]
     for r in records:
         r.setdefault("target_accept", ARMS[r["coords"]][1])
-    import nutpie
-    import pymc
-
-    when = (f"summary of the fits recorded in {log.name} (run times there)" if args.summarise_only else
-            f"{started:%Y-%m-%d %H:%M} UTC, 1-minute load average {load0:.1f} at the start and "
-            f"{os.getloadavg()[0]:.1f} at the end")
-    header = (f"## Convergence with the default settings ({mode})\n\n"
-              f"{when}; {platform.system()} {platform.machine()}, {os.cpu_count()} CPUs, "
-              f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; pymc {pymc.__version__}, "
-              f"nutpie {nutpie.__version__}; `python bench/bench_convergence.py {' '.join(sys.argv[1:])}`. "
+    context = (f"summary of the fits recorded in {log.name} (run times there); {sampler_context()}"
+               if args.summarise_only else sampler_context(started, load0))
+    header = (f"## Convergence with the default settings ({mode})\n\n{context}. "
               f"Data sets: {len({r['set'] for r in records})} of {len(recipes)} recipes fitted; "
               "each fit 4 chains x (1000 + 1000), nutpie low-rank, target acceptance 0.8 (the `bayesgeo fit` "
               "defaults before chains were continued; 0.9 in the arm share_ta90; the arm looks continues the same "

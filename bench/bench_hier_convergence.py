@@ -21,7 +21,6 @@ import datetime as dt
 import json
 import math
 import os
-import platform
 import sys
 import time
 from pathlib import Path
@@ -31,7 +30,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from _common import publish  # noqa: E402
+from _common import publish, sampler_context  # noqa: E402
 
 
 def simulated(k: int, seed: int = 1616):
@@ -119,14 +118,8 @@ def main(argv=None) -> int:
         print(f"{rec['data']:14s} {rec['family']:11s} sites={rec['sites']} n={rec['n']:3d} "
               f"before={rec['before']['verdict']} after={rec['after']['verdict']} draws={rec['draws_kept']} "
               f"t={rec['sampling_seconds']:.0f}s", flush=True)
-    import nutpie
-    import pymc
-
     header = (f"## Several-site model: convergence with the default settings, chains continued\n\n"
-              f"{started:%Y-%m-%d %H:%M} UTC, 1-minute load average {load0:.1f} at the start and "
-              f"{os.getloadavg()[0]:.1f} at the end; {platform.system()} {platform.machine()}, {os.cpu_count()} CPUs; "
-              f"pymc {pymc.__version__}, nutpie {nutpie.__version__}; `python bench/bench_hier_convergence.py "
-              f"{' '.join(sys.argv[1:])}`. `fit_sites` defaults: 4 chains x (1000 + 1000), target acceptance 0.9, "
+              f"{sampler_context(started, load0)}. `fit_sites` defaults: 4 chains x (1000 + 1000), target acceptance 0.9, "
               "looks at 1000, 2000, 4000 draws; the first look is what a fit without continued chains keeps.")
     publish(table(records, header), write=not args.no_write)
     return 0

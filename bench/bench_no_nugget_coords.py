@@ -20,7 +20,6 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import os
-import platform
 import sys
 from pathlib import Path
 
@@ -30,7 +29,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "bench"))
 sys.path.insert(0, str(ROOT))
 
-from _common import publish  # noqa: E402
+from _common import publish, sampler_context  # noqa: E402
 from bench_convergence import data_sets, simulate  # noqa: E402
 
 
@@ -106,13 +105,8 @@ def main(argv=None) -> int:
                              for r in res.values()) + " |")
         print(line, flush=True)
         rows.append(line)
-    import nutpie
-    import pymc
-
-    out = [f"## No nugget: log sd or log microergodic parameter\n\n{started:%Y-%m-%d %H:%M} UTC; {platform.system()} "
-           f"{platform.machine()}, {os.cpu_count()} CPUs, load average {load0:.1f} at the start, "
-           f"{os.getloadavg()[0]:.1f} at the end; pymc {pymc.__version__}, nutpie {nutpie.__version__}; "
-           f"`python bench/bench_no_nugget_coords.py {' '.join(sys.argv[1:])}`. No-nugget data fitted without "
+    out = [f"## No nugget: log sd or log microergodic parameter\n\n{sampler_context(started, load0)}. "
+           "No-nugget data fitted without "
            "a nugget, 4 chains x (1000 + 1000), nutpie low rank, target acceptance 0.8; both arms sample log "
            "practical_range_z; checked: practical_range_z, sd_z, beta_z and the derived range, partial sill and "
            "microergodic parameter. ESS/s over sampling seconds.", "",

@@ -31,7 +31,6 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import os
-import platform
 import sys
 import time
 from pathlib import Path
@@ -42,7 +41,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "bench"))
 sys.path.insert(0, str(ROOT))
 
-from _common import publish  # noqa: E402
+from _common import publish, sampler_context  # noqa: E402
 from bench_convergence import data_sets, simulate  # noqa: E402
 
 
@@ -120,13 +119,8 @@ def main(argv=None) -> int:
                                  for r in res.values()) + " |")
             print(line, flush=True)
             rows.append(line)
-    import nutpie
-    import pymc
-
-    out = [f"## Trend coefficients: sampled or integrated out\n\n{started:%Y-%m-%d %H:%M} UTC; {platform.system()} "
-           f"{platform.machine()}, {os.cpu_count()} CPUs, load average {load0:.1f} at the start, "
-           f"{os.getloadavg()[0]:.1f} at the end; pymc {pymc.__version__}, nutpie {nutpie.__version__}; "
-           f"`python bench/bench_trend_integration.py {' '.join(sys.argv[1:])}`. Share coordinates, the reference "
+    out = [f"## Trend coefficients: sampled or integrated out\n\n{sampler_context(started, load0)}. "
+           "Share coordinates, the reference "
            "(autodiff) likelihood in both variants, 4 chains x (1000 + 1000), nutpie low rank. Checked: "
            "practical_range_z, sd_z, nugget_sd_z, nugget_ratio.", "",
            "| variant | fits | exit 0 | pass | median min bulk ESS | median ESS per 1,000 leapfrog steps | divergences (all) | fits with divergences | median steps/draw |",
