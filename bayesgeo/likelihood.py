@@ -49,7 +49,8 @@ from scipy import linalg
 from bayesgeo import _lapack
 from bayesgeo.covariance import Covariance
 
-__all__ = ["FAST_FAMILIES", "JITTER", "covariance_matrix", "loglik_and_grad", "loglik_numpy", "marginal_loglik"]
+__all__ = ["FAST_FAMILIES", "JITTER", "covariance_matrix", "loglik_and_grad", "loglik_numpy", "marginal_loglik",
+           "solve_covariance"]
 
 #: Relative jitter added to the diagonal (times the partial sill).
 JITTER = 1e-6
@@ -200,6 +201,53 @@ def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r, extra):
     g_s2 = s_r + 0.5 * (1.0 + JITTER) * s_d
     g_phi = s2 * inv_phi * s_g
     return logp, g_phi, g_s2, g_t2
+
+
+@numba.njit(nogil=True, cache=True)
+def _solve_kernel(code, dist, phi, s2, t2, rhs, work, addrs):
+    """Fill ``work`` with K (upper triangle, as :func:`_kernel`), factor it and overwrite each row of
+    ``rhs`` (k, n) with K^-1 times it. Returns LAPACK's ``info`` (0: success)."""
+    n = dist.shape[0]
+    inv_phi = 1.0 / phi
+    for ib in range(0, n, _TILE):
+        ie = min(ib + _TILE, n)
+        for jb in range(ib, n, _TILE):
+            je = min(jb + _TILE, n)
+            for i in range(ib, ie):
+                j0 = i + 1 if jb == ib else jb
+                for j in range(j0, je):
+                    work[i, j] = s2 * _rho(code, dist[i, j] * inv_phi)
+    diag = s2 * (1.0 + JITTER) + t2
+    for i in range(n):
+        work[i, i] = diag
+    info = _lapack.potrf_upper(work, addrs)
+    if info != 0:
+        return info
+    for c in range(rhs.shape[0]):
+        b = rhs[c].copy()
+        _lapack.potrs_upper(work, b, addrs)
+        rhs[c] = b
+    return 0
+
+
+def solve_covariance(dist: np.ndarray, covariance: Covariance, scale: float, partial_sill: float,
+                     nugget: float, rhs: np.ndarray) -> np.ndarray:
+    """K^-1 rhs for the K of :func:`covariance_matrix` (jitter included), ``rhs`` of shape (n, k).
+
+    Families of :data:`FAST_FAMILIES` use the Numba kernel (K built in place, LAPACK ``dpotrf``);
+    others go through SciPy. Raises ``numpy.linalg.LinAlgError`` when K is not positive definite.
+    """
+    rhs = np.asarray(rhs, dtype=float)
+    if covariance.name not in FAST_FAMILIES:
+        k = covariance_matrix(dist, covariance, scale, partial_sill, nugget)
+        return linalg.cho_solve(linalg.cho_factor(k, lower=True, check_finite=False), rhs, check_finite=False)
+    dist = np.ascontiguousarray(dist, dtype=float)
+    out = np.ascontiguousarray(rhs.T)
+    info = _solve_kernel(FAST_FAMILIES.index(covariance.name), dist, float(scale), float(partial_sill),
+                         float(nugget), out, _lapack.workspace(dist.shape[0]), _lapack.lapack_addresses())
+    if info != 0:
+        raise np.linalg.LinAlgError(f"covariance matrix not positive definite (LAPACK info {info})")
+    return out.T
 
 
 # PyTensor caches compiled Numba code on disk under a key made of the Op's properties and this
