@@ -12,13 +12,16 @@ is integrated out: the likelihood is the marginal Gaussian
 
 Internally the model works on a standardised scale: values ``y = (z - m) / s`` with ``m`` and
 ``s`` the sample mean and sd of ``z``, distances divided by ``D``, the largest distance between
-two data points. Its free variables are ``practical_range_z = r / D``, ``sd_z = sigma / s``,
-``nugget_sd_z = tau / s`` and ``beta_z``; PyMC samples the three positive ones on the log scale.
-A private option, ``_coordinates="share"``, samples the variances of a model with a nugget as
-``variance_coords_z`` = (log(sd_z^2 + nugget_sd_z^2), logit of the spatial share
-sd_z^2 / (sd_z^2 + nugget_sd_z^2)) instead, with the same PC priors carried over by the
-change-of-variables Jacobian and ``sd_z``, ``nugget_sd_z`` as Deterministics; measured against
-the default in bench/bench_convergence.py, it is not the default (docs/model.md, "Parametrisation").
+two data points. The parameters are ``practical_range_z = r / D``, ``sd_z = sigma / s``,
+``nugget_sd_z = tau / s`` and ``beta_z``. PyMC samples them in coordinates chosen for the geometry
+of the posterior (docs/model.md, "Parametrisation"; bench/bench_convergence.py): the log range;
+with a nugget ``variance_coords_z`` = (log(sd_z^2 + nugget_sd_z^2), logit of the spatial share
+sd_z^2 / (sd_z^2 + nugget_sd_z^2)), with the same PC priors carried over by the change-of-variables
+Jacobian and ``sd_z``, ``nugget_sd_z`` as Deterministics, without one log ``sd_z``. The dense
+likelihood integrates the Gaussian trend coefficients out and they are drawn after sampling from
+their exact conditional (:mod:`bayesgeo.trend_posterior`); the nearest-neighbour likelihood samples
+them. The private options ``_coordinates="legacy"`` and ``_trend="sampled"`` keep the earlier
+coordinates (log sds, sampled coefficients) for comparison: the same model and priors.
 :mod:`bayesgeo.posterior` converts draws back to data units. The full statement, priors and the
 reasons for this parametrisation are in ``docs/model.md``.
 """
@@ -42,7 +45,7 @@ from bayesgeo.validate import InputError
 from bayesgeo.io import to_jsonable
 
 __all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "model_inputs",
-           "transform_values", "variance_split_logp"]
+           "transform_values", "trend_integrated", "variance_split_logp"]
 
 #: Likelihood choices: exact dense, nearest-neighbour (Vecchia), or dense up to DENSE_LIMIT points.
 APPROX = ("auto", "dense", "nn")
@@ -264,7 +267,8 @@ def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) ->
 def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                 nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                 transform: str | None = None, priors: Priors | Mapping | None = None,
-                approx: str = "auto", neighbours: int | None = None, _coordinates: str = "legacy"):
+                approx: str = "auto", neighbours: int | None = None, _coordinates: str = "share",
+                _trend: str = "auto"):
     """Build the PyMC model of one site's point data.
 
     Parameters
@@ -294,12 +298,16 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     Returns
     -------
     model : pymc.Model
-        Free variables ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (when ``nugget``) and
-        ``beta_z`` (dim ``term``) on the standardised scale; the marginal log-likelihood is the
-        potential ``"loglik"``. (The private ``_coordinates="share"``, an alternative measured in
-        bench/bench_convergence.py, replaces ``sd_z`` and ``nugget_sd_z`` by the free variable
-        ``variance_coords_z`` (dim ``variance_coord``: :data:`VARIANCE_COORDS`) and keeps them as
-        Deterministics.)
+        Free variables on the standardised scale: ``practical_range_z``; with a nugget
+        ``variance_coords_z`` (dim ``variance_coord``: :data:`VARIANCE_COORDS`, the log total
+        variance and logit spatial share, with ``sd_z`` and ``nugget_sd_z`` as Deterministics),
+        without one ``sd_z``; and, for the nearest-neighbour likelihood only, ``beta_z`` (dim
+        ``term``). The dense likelihood integrates the trend coefficients out (the potential
+        ``"loglik"`` is log N(y | 0, K + b^2 F F^T), :mod:`bayesgeo.trend_posterior`), and
+        :func:`bayesgeo.posterior.fit` draws ``beta_z`` afterwards from its exact conditional.
+        The private ``_coordinates="legacy"`` samples ``sd_z`` and ``nugget_sd_z`` on the log
+        scale instead and ``_trend="sampled"`` samples ``beta_z`` with the dense likelihood too:
+        the alternatives measured in bench/bench_convergence.py (docs/model.md, "Parametrisation").
     spec : FitSpec
         Settings and standardisation constants.
 
@@ -319,6 +327,9 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     rates = spec.rates
     if _coordinates not in ("share", "legacy"):
         raise ValueError(f"_coordinates must be 'share' or 'legacy', got {_coordinates!r}")
+    if _trend not in ("auto", "integrated", "sampled"):
+        raise ValueError(f"_trend must be 'auto', 'integrated' or 'sampled', got {_trend!r}")
+    integrated = trend_integrated(spec, _trend)
     coords = {"term": list(spec.terms)}
     if spec.nugget and _coordinates == "share":
         coords["variance_coord"] = list(VARIANCE_COORDS)
@@ -332,18 +343,33 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
             sd2, tau2 = sd**2, pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
         else:
             sd2, tau2 = _variance_split(rates["sd"], rates["nugget"])
-        beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
-        resid = y - pm.math.dot(design.values, beta)
         if spec.approx == "nn":
             from bayesgeo.vecchia import nn_loglik
 
+            beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
+            resid = y - pm.math.dot(design.values, beta)
             xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
             loglik = nn_loglik(resid, xy, cov, prange / spec.range_factor, sd2, tau2, neighbours=spec.neighbours,
                                metric=spec.metric, distance_scale=spec.distance_scale)
+        elif integrated:
+            from bayesgeo.trend_posterior import trend_prior_covariance
+
+            loglik = marginal_loglik(y, dist, cov, prange / spec.range_factor, sd2, tau2,
+                                     extra=trend_prior_covariance(design.values, spec.priors.beta_sd))
         else:
+            beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
+            resid = y - pm.math.dot(design.values, beta)
             loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd2, tau2)
         pm.Potential("loglik", loglik)
     return model, spec
+
+
+def trend_integrated(spec: FitSpec, trend: str = "auto") -> bool:
+    """Whether :func:`build_model` integrates the trend coefficients out of the likelihood:
+    ``"auto"`` does so for the dense likelihood (the nearest-neighbour one samples them)."""
+    if trend == "integrated" and spec.approx == "nn":
+        raise ValueError("the trend coefficients can be integrated out of the dense likelihood only")
+    return spec.approx == "dense" and trend != "sampled"
 
 
 def variance_split_logp(value, rates):

@@ -33,10 +33,10 @@ from bayesgeo.covariance import get_covariance
 from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
-from bayesgeo.model import FitSpec, build_model
+from bayesgeo.model import FitSpec, build_model, model_inputs
 from bayesgeo.looks import convergence_look, longest_chain, looks_line, report_fields
 from bayesgeo.sampling import sample
-from bayesgeo.trend import design_matrix
+from bayesgeo.trend_posterior import draw_trend
 from bayesgeo.validate import InputError
 
 __all__ = [
@@ -169,10 +169,11 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
         p = cov.microergodic_power
         out["microergodic"] = (psill / scale**p).assign_attrs(
             units=f"({vu})^2 / ({du})^{p:g}", long_name=f"microergodic parameter sigma^2 / phi^{p:g} (Zhang 2004)")
-    beta = out["beta_z"] * s
-    intercept = xr.where(beta["term"] == "1", spec.value_mean, 0.0)
-    out["beta"] = (beta + intercept).assign_attrs(
-        units=vu, long_name="trend coefficients per unit of the centred and scaled design columns")
+    if "beta_z" in out:  # absent while the chains run when the trend is integrated out (bayesgeo.trend_posterior)
+        beta = out["beta_z"] * s
+        intercept = xr.where(beta["term"] == "1", spec.value_mean, 0.0)
+        out["beta"] = (beta + intercept).assign_attrs(
+            units=vu, long_name="trend coefficients per unit of the centred and scaled design columns")
     for name in ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio",
                  "microergodic", "beta"):
         if name in out:
@@ -236,13 +237,18 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(covariates),
                     transform=transform, priors=priors, approx=approx, neighbours=neighbours)
     model, spec = build_model(ds, **model_kw)
-    design = design_matrix(ds, spec.trend, spec.covariates)
+    _, y_z, design, dist = model_inputs(ds, **model_kw)
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
     raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
                  seed=seed, progressbar=progressbar, adaptation=adaptation,
                  max_draws=longest_chain(draws, max_draws), look=look)
-    post = derive(raw["posterior"].to_dataset(), spec)
+    post = raw["posterior"].to_dataset()
+    if "beta_z" not in post:  # integrated out of the dense likelihood: exact conditional draws
+        beta = draw_trend(post, spec, y_z, design.values, dist, seed=seed)
+        post["beta_z"] = beta.assign_attrs(drawn="after sampling, one draw per posterior draw from the exact "
+                                                 "conditional N(m, V) given the covariance parameters")
+    post = derive(post, spec)
     obs_coords = {"row": ("obs", ds["row"].values)} if "row" in ds.coords else {}
     observed = xr.Dataset({"value": ("obs", ds["value"].values, {"units": spec.value_units,
                                                                   "long_name": f"measured {spec.value_column}"})},

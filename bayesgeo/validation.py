@@ -59,6 +59,7 @@ __all__ = [
     "FULL",
     "generated_layout",
     "sbc_model",
+    "prior_draws",
     "simulate_data",
     "binomial_bounds",
     "rank_uniformity",
@@ -114,10 +115,14 @@ class SBCConfig:
         The chains continue while R-hat or ESS *fails* (relaxed thresholds above), looking at
         ``draws``, doubling, up to this many draws per chain (:mod:`bayesgeo.looks`); ``None``:
         ``4 * draws`` as in ``bayesgeo fit``; equal to ``draws``: off.
-    coordinates : {"legacy", "share"}
-        Sampling coordinates of the single-site model (``build_model``'s private ``_coordinates``:
-        the default log sds, or the measured alternative log total variance and logit spatial
-        share; docs/model.md). Same model and priors either way.
+    coordinates : {"share", "legacy"}
+        Sampling coordinates of the variances of the single-site model (``build_model``'s private
+        ``_coordinates``: the default log total variance and logit spatial share, or the earlier
+        log sds; docs/model.md). Same model and priors either way.
+    trend : {"auto", "sampled"}
+        ``"auto"``: as ``build_model`` (the dense likelihood integrates the trend coefficients out
+        and SBC draws them after sampling from their exact conditional, as ``bayesgeo fit`` does);
+        ``"sampled"``: they are sampled (the earlier model). The nn likelihood always samples them.
     """
 
     kind: str = "single"
@@ -132,7 +137,8 @@ class SBCConfig:
     target_accept: float = 0.9
     thresholds: tuple = ()
     max_draws: int | None = None
-    coordinates: str = "legacy"
+    coordinates: str = "share"
+    trend: str = "auto"
 
     @property
     def label(self) -> str:
@@ -231,7 +237,8 @@ def sbc_model(template: xr.Dataset, config: SBCConfig):
     from bayesgeo.model import build_model, model_inputs
 
     kw = dict(covariance=config.covariance, nu=config.nu, nugget=config.nugget)
-    model, spec = build_model(template, **kw, _coordinates=config.coordinates)
+    model, spec = build_model(template, **kw, _coordinates=config.coordinates,
+                              _trend="sampled" if config.kind == "nn" else config.trend)
     _, y, design, dist = model_inputs(template, **kw)
     blocks = [{"y": y, "design": np.asarray(design.values, dtype=float), "dist": dist}]
     nn = None
@@ -240,6 +247,24 @@ def sbc_model(template: xr.Dataset, config: SBCConfig):
               "covariance": spec.covariance, "neighbours": int(config.neighbours), "metric": spec.metric,
               "distance_scale": spec.distance_scale}
     return _swap_constants(model, [y], nn), blocks, spec
+
+
+def prior_draws(model, spec, replicates: int, seed: int) -> xr.Dataset:
+    """``replicates`` draws (chain 0) of every sampled and deterministic variable of the SBC model
+    from its prior (``pymc.sample_prior_predictive``), plus ``beta_z`` from its Normal(0, b^2) prior
+    when the model integrates the trend coefficients out (seeded by ``[seed, 2]``)."""
+    import pymc as pm
+
+    with warnings.catch_warnings():  # the likelihood potential is rightly ignored when drawing the prior
+        warnings.filterwarnings("ignore", message="The effect of Potentials", category=UserWarning)
+        prior = pm.sample_prior_predictive(draws=replicates, model=model, random_seed=int(seed),
+                                           var_names=_sampled_names(model))
+    prior = prior["prior"].to_dataset() if hasattr(prior, "children") else prior.prior
+    if "beta_z" not in prior:
+        b = np.random.default_rng(np.random.SeedSequence([int(seed), 2])).normal(
+            0.0, spec.priors.beta_sd, (1, replicates, len(spec.terms)))
+        prior["beta_z"] = (("chain", "draw", "term"), b)
+    return prior
 
 
 def _truth_block(prior: xr.Dataset, i: int, hier: bool) -> dict:
@@ -333,7 +358,17 @@ def _replicate(unit) -> dict:
                   seed=int(unit.seed % (2**31 - 1)), look=look,
                   max_draws=longest_chain(cfg.draws, cfg.max_draws))
     post = tree["posterior"].to_dataset()
-    conv = check_convergence(tree, var_names=[v for v in names if v in tree["posterior"]],
+    if p["trend"] is not None:  # integrated out: exact conditional draws, as bayesgeo.posterior.fit makes them
+        from bayesgeo.trend_posterior import draw_trend
+
+        t = p["trend"]
+        post["beta_z"] = draw_trend(post, t["spec"], p["ys"][0], t["design"], t["dist"],
+                                    seed=[int(unit.seed % (2**31 - 1)), 3])
+        names = [*names, "beta_z"]
+        attrs = dict(tree.attrs)
+        tree = xr.DataTree.from_dict({"/posterior": post, "/sample_stats": tree["sample_stats"].to_dataset()})
+        tree.attrs = attrs
+    conv = check_convergence(tree, var_names=[v for v in names if v in post],
                              thresholds=dict(cfg.thresholds) or None)
     ranks, cover = {}, {}
     for label, value in p["truth"].items():
@@ -434,26 +469,21 @@ def simulation_based_calibration(template: xr.Dataset, config: SBCConfig = QUICK
     """
     import json
 
-    import pymc as pm
-
     from bayesgeo.parallel import make_units, run_units
 
     replicates = check_positive_int(replicates, "--replicates")
     if config.kind == "nn" and config.covariance == "matern":
         raise InputError("--covariance: the nn likelihood has no general 'matern' family; pick a fixed-smoothness one")
     model, blocks, spec = sbc_model(template, config)
-    with warnings.catch_warnings():  # the likelihood potential is rightly ignored when drawing the prior
-        warnings.filterwarnings("ignore", message="The effect of Potentials", category=UserWarning)
-        prior = pm.sample_prior_predictive(draws=replicates, model=model, random_seed=int(seed),
-                                           var_names=_sampled_names(model))
-    prior = prior["prior"].to_dataset() if hasattr(prior, "children") else prior.prior
+    prior = prior_draws(model, spec, replicates, seed)
     noise = np.random.default_rng(np.random.SeedSequence([int(seed), 1]))
     payloads, truths = [], []
     key = (config, _layout_key(template))
     for r in range(replicates):
         items, tblocks = _truth_items(prior, r, spec, config.kind)
         ys = [simulate_data(t, b, spec, noise) for t, b in zip(tblocks, blocks)]
-        payloads.append({"key": key, "template": template, "config": config, "ys": ys, "truth": items})
+        payloads.append({"key": key, "template": template, "config": config, "ys": ys, "truth": items,
+                         "trend": None if "beta_z" in model.named_vars else {"spec": spec, **blocks[0]}})
         truths.append(items)
     units = make_units(payloads, seed)
     results = run_units(_replicate, units, scheduler=scheduler, workers=workers, progress=progress)

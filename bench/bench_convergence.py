@@ -18,6 +18,9 @@ side by side, same data and sampler seed:
   this arm was measured), against ``legacy``, the same chains stopped at 1000 draws; ``looks_ta90``: the
   same with target acceptance 0.9; ``share_looks``: the variance-split coordinates with chains continued; ``share_int_looks``: the same with
   the trend integrated out (dense; the looks judge the sampled parameters, beta is drawn afterwards);
+* ``default``: the package as it stands, through ``bayesgeo.posterior.fit`` with its defaults (since
+  issue 16: the variance-split coordinates, the trend integrated out of the dense likelihood and drawn
+  afterwards, chains continued; wall time includes those draws);
 * ``share_int``, ``legacy_int`` (only when asked, dense only): those coordinates with the trend coefficients
   integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
@@ -57,7 +60,8 @@ SIDE = 1000.0  # m, side of the invented survey square
 #: Arms compared: name -> (sampling coordinates, target acceptance rate).
 ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
         "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8), "looks": ("legacy", 0.8),
-        "looks_ta90": ("legacy", 0.9), "share_looks": ("share", 0.8), "share_int_looks": ("share", 0.8)}
+        "looks_ta90": ("legacy", 0.9), "share_looks": ("share", 0.8), "share_int_looks": ("share", 0.8),
+        "default": ("share", 0.8)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -108,7 +112,6 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     """Fit one data set with the command-line defaults in the coordinates of ``arm``; the record of it."""
     import xarray as xr
 
-    from bayesgeo.diagnostics import check_convergence
     from bayesgeo.model import build_model
     from bayesgeo.posterior import derive
     from bayesgeo.sampling import compile_model, sample
@@ -116,10 +119,11 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     ds = simulate(recipe)
     t0 = time.perf_counter()
     coords, target_accept = ARMS[arm]
-    if "_int" in arm:
-        model, spec, parts = _integrated_model(ds, recipe["family"], coords)
-    else:
-        model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords)
+    if arm == "default":
+        return _record(recipe, arm, *_fit_default(ds, recipe, approx), t0=t0)
+    # the coordinates of the arm; the trend coefficients integrated out (``_int``, dense) or sampled
+    model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords,
+                              _trend="integrated" if "_int" in arm else "sampled")
     compiled = compile_model(model)
     extra = {}
     if "looks" in arm:
@@ -134,10 +138,36 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept, **extra)
     post = raw["posterior"].to_dataset()
     if "_int" in arm:
-        post["beta_z"] = _draw_beta(post, spec, *parts, seed=recipe["seed"] % 100_000)
-    wall = time.perf_counter() - t0
+        from bayesgeo.model import model_inputs
+        from bayesgeo.trend_posterior import draw_trend
+
+        _, y, design, dist = model_inputs(ds, covariance=recipe["family"], approx="dense")
+        post["beta_z"] = draw_trend(post, spec, y, design.values, dist, seed=recipe["seed"] % 100_000)
     post = derive(post, spec)
     stats = raw["sample_stats"].to_dataset()
+    return _record(recipe, arm, spec, post, stats, float(raw.attrs["sampling_seconds"]), raw.attrs.get("looks", []),
+                   target_accept, t0=t0)
+
+
+def _fit_default(ds, recipe: dict, approx: str):
+    """``bayesgeo.posterior.fit`` with its defaults: (spec, posterior, sample stats, sampling s, looks, target accept)."""
+    import json as _json
+
+    from bayesgeo.posterior import fit, fit_spec
+
+    tree = fit(ds, covariance=recipe["family"], approx=approx, seed=recipe["seed"] % 100_000)
+    smp = _json.loads(tree.attrs["settings"])["sampler"]
+    return (fit_spec(tree), tree["posterior"].to_dataset(), tree["sample_stats"].to_dataset(),
+            float(smp["sampling_seconds"]), smp.get("looks", []), float(smp["target_accept"]))
+
+
+def _record(recipe, arm, spec, post, stats, sampling_seconds, looks, target_accept, *, t0):
+    """The JSON record of one fit (verdict, ESS, R-hat, divergences and where they sit, times)."""
+    import xarray as xr
+
+    from bayesgeo.diagnostics import check_convergence
+
+    wall = time.perf_counter() - t0
     tree = xr.DataTree.from_dict({"/posterior": post, "/sample_stats": stats})
     conv = check_convergence(tree)
     table = conv.parameters
@@ -161,59 +191,10 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     return {**recipe, "coords": arm, "approx": spec.approx, "verdict": conv.verdict,
             "exit": 3 if conv.verdict == "fail" else 0, "min_ess_bulk": float(np.nanmin(table["ess_bulk"].values)),
             "min_ess_tail": float(np.nanmin(table["ess_tail"].values)), "max_rhat": float(np.nanmax(table["rhat"].values)),
-            "divergences": int(conv.divergences), "sampling_seconds": float(raw.attrs["sampling_seconds"]),
+            "divergences": int(conv.divergences), "sampling_seconds": sampling_seconds,
             "target_accept": target_accept, "wall_seconds": float(wall), "steps_per_draw": float(np.mean(stats["n_steps"].values)),
             "divergence_location": where, "failed": worst[:6], "draws_kept": int(post.sizes["draw"]),
-            "looks": [{k: v for k, v in lk.items() if k != "short"} for lk in raw.attrs.get("looks", [])]}
-
-
-def _integrated_model(ds, family: str, coords: str):
-    """The package's model in the given coordinates with beta integrated out (dense likelihood)."""
-    import pymc as pm
-
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import marginal_loglik
-    from bayesgeo.model import VARIANCE_COORDS, _variance_split, model_inputs
-
-    spec, y, design, dist = model_inputs(ds, covariance=family, approx="dense")
-    f, b = np.asarray(design.values, dtype=float), spec.priors.beta_sd
-    with pm.Model(coords={"term": list(spec.terms), "variance_coord": list(VARIANCE_COORDS)}) as model:
-        prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=spec.rates["range"])
-        if coords == "share":
-            sd2, tau2 = _variance_split(spec.rates["sd"], spec.rates["nugget"])
-        else:
-            sd2 = pm.Exponential("sd_z", lam=spec.rates["sd"]) ** 2
-            tau2 = pm.Exponential("nugget_sd_z", lam=spec.rates["nugget"]) ** 2
-        pm.Potential("loglik", marginal_loglik(y, dist, get_covariance(family), prange / spec.range_factor, sd2,
-                                               tau2, extra=b**2 * f @ f.T))
-    return model, spec, (y, f, dist)
-
-
-def _draw_beta(post, spec, y, f, dist, *, seed: int):
-    """beta_z draws from N(m, V) given each posterior draw of the covariance parameters."""
-    import xarray as xr
-    from scipy import linalg
-
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import covariance_matrix
-
-    cov, b = get_covariance(spec.covariance), spec.priors.beta_sd
-    rng = np.random.default_rng(seed)
-    pr = post["practical_range_z"].values
-    s2, t2 = post["sd_z"].values ** 2, post["nugget_sd_z"].values ** 2
-    out = np.empty(pr.shape + (f.shape[1],))
-    for idx in np.ndindex(pr.shape):
-        k = covariance_matrix(dist, cov, pr[idx] / spec.range_factor, s2[idx], t2[idx])
-        c = linalg.cho_factor(k, lower=True, check_finite=False)
-        kf, ky = linalg.cho_solve(c, f, check_finite=False), linalg.cho_solve(c, y, check_finite=False)
-        a = f.T @ kf + np.eye(f.shape[1]) / b**2
-        ca = linalg.cho_factor(a, lower=True, check_finite=False)
-        m = linalg.cho_solve(ca, f.T @ ky, check_finite=False)
-        # V = A^-1: m + L^-T e with A = L L^T has covariance A^-1
-        out[idx] = m + linalg.solve_triangular(ca[0], rng.standard_normal(f.shape[1]), lower=True, trans="T",
-                                               check_finite=False)
-    return xr.DataArray(out, dims=("chain", "draw", "term"),
-                        coords={"chain": post["chain"], "draw": post["draw"], "term": list(spec.terms)})
+            "looks": [{k: v for k, v in lk.items() if k != "short"} for lk in looks]}
 
 
 def _rate(r: dict) -> float:
@@ -259,7 +240,7 @@ def summarise(records: list[dict], header: str, arms=COORDS) -> str:
         row = {r["coords"]: r for r in records if r["set"] == s}
         r0 = next(iter(row.values()))
         cells = [f"{row[c]['verdict']}, {row[c]['min_ess_bulk']:.0f}, {row[c]['max_rhat']:.3f}, {row[c]['divergences']}, "
-                 f"{row[c]['sampling_seconds']:.0f}" + (f", {row[c]['draws_kept']} draws" if "looks" in c else "")
+                 f"{row[c]['sampling_seconds']:.0f}" + (f", {row[c]['draws_kept']} draws" if "looks" in c or c == "default" else "")
                  if c in row else "" for c in arms]
         lines.append(f"| {s} | {r0['family']} | {r0['n']} | {r0['nugget_share']:.2f} | "
                      f"{r0['practical_range'] / r0['spacing']:.1f} | " + " | ".join(cells) + " |")

@@ -43,7 +43,7 @@ def build(ds, family: str, arm: str):
     from bayesgeo.model import build_model, model_inputs
 
     if arm == "log_sd":
-        return build_model(ds, covariance=family, nugget=False)
+        return build_model(ds, covariance=family, nugget=False, _trend="sampled")  # as when measured
     spec, y, design, dist = model_inputs(ds, covariance=family, nugget=False, approx="dense")
     cov = get_covariance(family)
     p, rf, lam = float(cov.microergodic_power), spec.range_factor, spec.rates["sd"]

@@ -29,9 +29,13 @@ def _data(n=35, seed=4, positive=False, site=None):
 
 @pytest.fixture(scope="module")
 def model_and_fns():
-    """One model (trend order 1) and its potential and joint logp, compiled without Numba (fast)."""
+    """One model (trend order 1) and its potential and joint logp, compiled without Numba (fast).
+
+    Built with the trend coefficients sampled and the sds on the log scale (the private
+    ``_coordinates="legacy", _trend="sampled"``): the model exactly as docs/model.md writes it down.
+    The default build is tested equal to it (change of variables, trend integrated out) below."""
     ds = _data()
-    model, spec = build_model(ds, covariance="matern32", trend=1)
+    model, spec = build_model(ds, covariance="matern32", trend=1, _coordinates="legacy", _trend="sampled")
     (pot,) = model.replace_rvs_by_values([model.potentials[0]])
     loglik = model.compile_fn(pot, inputs=model.value_vars, mode="FAST_COMPILE", point_fn=False)
     logp = model.compile_logp(mode="FAST_COMPILE")
@@ -175,7 +179,7 @@ def test_no_nugget_model_has_no_nugget_variable():
     """nugget=False drops the nugget variable; the likelihood keeps only the jitter (docs/model.md)."""
     model, spec = build_model(_data(n=20), covariance="exponential", nugget=False)
     assert "nugget_sd_z" not in model.named_vars and not spec.nugget
-    assert {"practical_range_z", "sd_z", "beta_z"} <= set(model.named_vars)
+    assert {v.name for v in model.free_RVs} == {"practical_range_z", "sd_z"}  # beta_z integrated out (dense)
 
 
 def test_log_transform_models_the_logarithm():
@@ -227,7 +231,7 @@ def test_nearest_neighbour_model_with_all_previous_points_equals_dense():
     z = simulate_field(xy, covariance="exponential", practical_range=40.0, partial_sill=1.0, nugget=0.1,
                        mean=2.0, rng=rng)
     ds = points_dataset(xy[:, 0], xy[:, 1], z, attrs={"source": "sim", "distance_units": "m"})
-    dense, dspec = build_model(ds, covariance="exponential", approx="dense")
+    dense, dspec = build_model(ds, covariance="exponential", approx="dense", _trend="sampled")
     nn, nspec = build_model(ds, covariance="exponential", approx="nn", neighbours=29)
     assert (dspec.approx, nspec.approx, nspec.neighbours) == ("dense", "nn", 29)
     point = dense.initial_point()
@@ -261,15 +265,15 @@ def _log_jacobian_numeric(u):
     ("gaussian", None, "nn"), ("spherical", None, "nn"),
 ])
 def test_new_coordinates_density_is_the_old_one_plus_the_log_jacobian(covariance, nu, approx):
-    """The model sampled in (log v, logit s, log r) (the private ``_coordinates="share"``) is the
-    documented model: at random points its log density equals the log density of the default model,
+    """The model sampled in (log v, logit s, log r) (the default ``_coordinates="share"``) is the
+    documented model: at random points its log density equals the log density of the earlier model,
     sampled in (log sd, log tau, log r) (same PC priors, same likelihood), plus
     log |det d(log sd, log tau) / d(log v, logit s)|, computed here by central differences
     (change of variables, standard calculus); analytically that determinant is -1/4 everywhere."""
     ds = _data(n=30, seed=9)
     kw = dict(covariance=covariance, nu=nu, trend=1, approx=approx, neighbours=8)
-    new, _ = build_model(ds, **kw, _coordinates="share")
-    old, _ = build_model(ds, **kw)
+    new, _ = build_model(ds, **kw, _coordinates="share", _trend="sampled")
+    old, _ = build_model(ds, **kw, _coordinates="legacy", _trend="sampled")
     assert "variance_coords_z" in new.named_vars and "sd_z_log__" in old.initial_point()
     f_new, f_old = new.compile_logp(mode="FAST_COMPILE"), old.compile_logp(mode="FAST_COMPILE")
     rng = np.random.default_rng(5)
@@ -285,8 +289,8 @@ def test_no_nugget_model_keeps_log_sd_and_log_range():
     """Without a nugget the coordinates are log sd_z and log practical_range_z, the old ones: the two
     builds have the same log density at random points (nothing to change of variables)."""
     ds = _data(n=25, seed=2)
-    new, _ = build_model(ds, covariance="matern32", nugget=False, _coordinates="share")
-    old, _ = build_model(ds, covariance="matern32", nugget=False)
+    new, _ = build_model(ds, covariance="matern32", nugget=False, _trend="sampled")
+    old, _ = build_model(ds, covariance="matern32", nugget=False, _coordinates="legacy", _trend="sampled")
     f_new, f_old = new.compile_logp(mode="FAST_COMPILE"), old.compile_logp(mode="FAST_COMPILE")
     rng = np.random.default_rng(1)
     for _ in range(3):
@@ -297,8 +301,9 @@ def test_no_nugget_model_keeps_log_sd_and_log_range():
 
 @pytest.mark.slow
 def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
-    """The posterior of the package's model (sampled in the share coordinates, the less tested path)
-    equals, within Monte
+    """The posterior of the package's model, as ``bayesgeo.posterior.fit`` computes it (sampled in the
+    variance-split coordinates with the trend integrated out, the coefficients drawn afterwards from
+    their exact conditional), equals, within Monte
     Carlo error, the posterior of an independent implementation of the model of docs/model.md:
     PyMC's own ``pm.gp.Marginal`` with a ``Matern12`` kernel (exp(-d / l), PyMC source; our
     exponential family exp(-d / phi)), a constant mean, noise sd tau and the same PC priors written
@@ -313,6 +318,7 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
     import pymc as pm
     import xarray as xr
 
+    from bayesgeo.posterior import fit
     from bayesgeo.sampling import sample
 
     rng = np.random.default_rng(21)
@@ -320,8 +326,7 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
     z = simulate_field(xy, covariance="exponential", practical_range=45.0, partial_sill=1.0, nugget=0.4,
                        mean=3.0, rng=rng)
     ds = points_dataset(xy[:, 0], xy[:, 1], z, attrs={"source": "sim", "distance_units": "m"})
-    ours, spec = build_model(ds, covariance="exponential", _coordinates="share")
-    _, y, _, _ = model_inputs(ds, covariance="exponential")
+    spec, y, _, _ = model_inputs(ds, covariance="exponential")
     rates = spec.rates
     x_std = (xy - xy.mean(axis=0)) / spec.distance_scale
     with pm.Model() as ref:
@@ -333,7 +338,7 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
                             cov_func=sd**2 * pm.gp.cov.Matern12(2, ls=prange / spec.range_factor))
         gp.marginal_likelihood("y", X=x_std, y=y, sigma=tau)
     kw = dict(chains=4, draws=1000, tune=1000, seed=11)
-    a = sample(ours, **kw)["posterior"].to_dataset()
+    a = fit(ds, covariance="exponential", max_draws=1000, **kw)["posterior"].to_dataset()
     b = sample(ref, **kw)["posterior"].to_dataset()
 
     def pick(post):
@@ -353,3 +358,56 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
                 va, vb = float(a[name].quantile(prob)), float(b[name].quantile(prob))
             zscore = (va - vb) / np.hypot(float(ma[name]), float(mb[name]))
             assert abs(zscore) < 4.5, (name, method, prob, va, vb, zscore)
+
+
+@pytest.mark.parametrize("covariance, nu, nugget", [
+    ("exponential", None, True), ("matern32", None, True), ("matern52", None, True), ("gaussian", None, True),
+    ("spherical", None, True), ("matern", 1.0, True), ("matern32", None, False),
+])
+def test_trend_integrated_out_is_the_sampled_model_by_bayes_rule(covariance, nu, nugget):
+    """The default dense model integrates the trend coefficients out. Its log density at theta must
+    equal, at any beta, the log density of the model that samples them minus the log density of their
+    exact conditional posterior N(m, V) at that beta: Bayes' rule, p(y | theta) = p(y | theta, beta)
+    p(beta) / p(beta | y, theta), with V = (F' K^-1 F + I / b^2)^-1, m = V F' K^-1 y (Rasmussen and
+    Williams 2006, sec. 2.7; Gelman et al., BDA3, sec. 14.2; published formulas). m and V come from
+    numpy.linalg.inv here, the conditional density from scipy.stats.multivariate_normal; K is the
+    package's covariance matrix, itself checked against scipy in
+    test_loglik_equals_scipy_multivariate_normal_in_data_units."""
+    from bayesgeo.covariance import get_covariance
+    from bayesgeo.likelihood import covariance_matrix
+
+    ds = _data(n=30, seed=9)
+    kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=1)
+    integ, spec = build_model(ds, **kw)
+    samp, _ = build_model(ds, **kw, _trend="sampled")
+    assert "beta_z" not in integ.named_vars and "beta_z" in samp.named_vars
+    _, y, design, dist = model_inputs(ds, **kw)
+    f, b = design.values, spec.priors.beta_sd
+    cov = get_covariance(covariance, nu)
+    f_int, f_samp = integ.compile_logp(mode="FAST_COMPILE"), samp.compile_logp(mode="FAST_COMPILE")
+    rng = np.random.default_rng(3)
+    for _ in range(4):
+        prange, sd, nsd = np.exp(rng.normal([-1.0, 0.0, -1.0], 0.7))
+        beta = rng.normal(0.0, 0.5, 3)
+        k = covariance_matrix(dist, cov, prange / spec.range_factor, sd**2, nsd**2 if nugget else 0.0)
+        ki = np.linalg.inv(k)
+        v = np.linalg.inv(f.T @ ki @ f + np.eye(3) / b**2)
+        m = v @ f.T @ ki @ y
+        point = _point(samp, prange, sd, nsd, beta)
+        reduced = {key: val for key, val in point.items() if key != "beta_z"}
+        expect = f_samp(point) - stats.multivariate_normal(mean=m, cov=v).logpdf(beta)
+        assert f_int(reduced) == pytest.approx(expect, rel=1e-8, abs=1e-7)
+
+
+def test_free_variables_of_the_default_builds():
+    """Dense: the log range and (with a nugget) the two variance coordinates are sampled, the trend is
+    not; nn: the trend coefficients are sampled. Asking to integrate the trend out of the nn
+    likelihood is refused."""
+    ds = _data(n=30, seed=9)
+    dense, _ = build_model(ds, covariance="matern32", trend=1)
+    nn, _ = build_model(ds, covariance="matern32", trend=1, approx="nn", neighbours=8)
+    assert [v.name for v in dense.free_RVs] == ["practical_range_z", "variance_coords_z"]
+    assert {"sd_z", "nugget_sd_z"} <= {v.name for v in dense.deterministics}
+    assert [v.name for v in nn.free_RVs] == ["practical_range_z", "variance_coords_z", "beta_z"]
+    with pytest.raises(ValueError, match="dense likelihood only"):
+        build_model(ds, covariance="matern32", approx="nn", neighbours=8, _trend="integrated")

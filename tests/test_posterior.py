@@ -75,6 +75,41 @@ def test_derived_variables_in_data_units(tree, simulated):
     assert post["partial_sill"].attrs["units"] == "(mg/kg)^2"
 
 
+def test_trend_coefficients_are_exact_conditional_draws(tree, simulated):
+    """The default fit integrates the trend out of the dense likelihood and draws beta_z afterwards,
+    one draw per posterior draw, from N(m, V), V = (F' K^-1 F + I / b^2)^-1, m = V F' K^-1 y
+    (Rasmussen and Williams 2006, sec. 2.7; published formula). Recomputed here independently for 200
+    draws (K from the exponential correlation exp(-d / phi) written out, numpy.linalg.inv), the
+    standardised deviations (beta_z - m) / sqrt(V) must look like N(0, 1): mean within 4.5 / sqrt(200)
+    and variance within 0.6-1.5 (chi-square(199) / 199 lies in 0.71-1.32 with probability > 0.999;
+    scipy.stats.chi2). A refit with the same seed gives identical coefficients."""
+    from scipy import stats
+    from scipy.spatial.distance import cdist
+
+    spec = fit_spec(tree)
+    post = tree["posterior"]
+    assert post["beta_z"].dims == ("chain", "draw", "term") and "drawn" in post["beta_z"].attrs
+    xy = np.column_stack([simulated["x"].values, simulated["y"].values])
+    d = cdist(xy, xy) / spec.distance_scale
+    y = (simulated["value"].values - spec.value_mean) / spec.value_sd
+    f = np.ones((len(y), 1))
+    flat = {k: post[k].values.ravel() for k in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z")}
+    zs = []
+    for i in np.linspace(0, len(flat["sd_z"]) - 1, 200).astype(int):
+        s2, t2 = flat["sd_z"][i] ** 2, flat["nugget_sd_z"][i] ** 2
+        k = s2 * np.exp(-d * spec.range_factor / flat["practical_range_z"][i]) + (t2 + 1e-6 * s2) * np.eye(len(y))
+        ki = np.linalg.inv(k)
+        v = 1.0 / (f.T @ ki @ f + 1.0 / spec.priors.beta_sd**2)
+        m = v @ f.T @ ki @ y
+        zs.append((flat["beta_z"][i] - m[0]) / np.sqrt(v[0, 0]))
+    zs = np.asarray(zs)
+    assert abs(zs.mean()) < 4.5 / np.sqrt(len(zs))
+    assert stats.chi2(len(zs) - 1).ppf(0.0005) / (len(zs) - 1) > 0.6
+    assert 0.6 < zs.var(ddof=1) < 1.5
+    again = fit(simulated, covariance="exponential", chains=2, draws=300, tune=300, seed=11)
+    np.testing.assert_array_equal(again["posterior"]["beta_z"].values, post["beta_z"].values)
+
+
 def test_summary_table_matches_numpy_and_arviz(tree):
     """Summary rows: mean, sd (ddof 1, as ArviZ), quantiles equal numpy over all draws, and the 90%
     HDI equals arviz.hdi (reference library)."""

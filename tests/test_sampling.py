@@ -29,7 +29,7 @@ def test_same_seed_same_draws_other_seed_other_draws(tiny_model):
     a = sample(tiny_model, seed=7, **kw)
     b = sample(tiny_model, seed=7, **kw)
     c = sample(tiny_model, seed=8, **kw)
-    for name in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z"):
+    for name in ("practical_range_z", "variance_coords_z", "sd_z", "nugget_sd_z"):
         np.testing.assert_array_equal(a["posterior"][name].values, b["posterior"][name].values)
     assert not np.array_equal(a["posterior"]["sd_z"].values, c["posterior"]["sd_z"].values)
     assert a.attrs["seed"] == 7 and a.attrs["sampler"] == "nutpie" and a.attrs["adaptation"] == "low_rank"

@@ -115,7 +115,8 @@ def test_sbc_model_is_the_package_model():
     """The SBC model has the same log density as build_model at random points (same priors, same
     likelihood; reference: the package's own model, compared at 5 points of the unconstrained
     space), and swapping the data changes it exactly as rebuilding with those data would:
-    compared with scipy.stats.multivariate_normal on the standardised scale."""
+    compared with scipy.stats.multivariate_normal on the standardised scale, with the trend
+    integrated out, y ~ N(0, K + b^2 F F^T) (Rasmussen and Williams 2006, sec. 2.7)."""
     from bayesgeo.model import build_model
 
     ds = generated_layout(12, seed=3)
@@ -140,23 +141,26 @@ def test_sbc_model_is_the_package_model():
     after = _logp(model)(point)
     var.set_value(old)
     prange = np.exp(point["practical_range_z_log__"])
-    sd, tau = np.exp(point["sd_z_log__"]), np.exp(point["nugget_sd_z_log__"])
-    k = covariance_matrix(blocks[0]["dist"], get_covariance("matern32"), prange / spec.range_factor, sd**2, tau**2)
-    mu = blocks[0]["design"] @ point["beta_z"]
-    expect = stats.multivariate_normal(mu, k).logpdf(y_new) - stats.multivariate_normal(mu, k).logpdf(blocks[0]["y"])
+    log_v, logit_s = point["variance_coords_z"]
+    share = 1.0 / (1.0 + np.exp(-logit_s))
+    k = covariance_matrix(blocks[0]["dist"], get_covariance("matern32"), prange / spec.range_factor,
+                          np.exp(log_v) * share, np.exp(log_v) * (1.0 - share))
+    f = blocks[0]["design"]
+    k = k + spec.priors.beta_sd**2 * f @ f.T
+    expect = stats.multivariate_normal(None, k).logpdf(y_new) - stats.multivariate_normal(None, k).logpdf(blocks[0]["y"])
     assert after - before == pytest.approx(expect, rel=1e-8, abs=1e-8)
 
 
-def test_sbc_model_in_share_coordinates_is_the_package_model_in_them():
-    """SBCConfig(coordinates="share") fits build_model(..., _coordinates="share"): the same log density
-    at 5 random unconstrained points (reference: the package's model in those coordinates, whose
-    density is the default model's plus the log-Jacobian, tests/test_model.py)."""
+def test_sbc_model_in_the_earlier_coordinates_is_the_package_model_in_them():
+    """SBCConfig(coordinates="legacy", trend="sampled") fits build_model(..., _coordinates="legacy",
+    _trend="sampled"): the same log density at 5 random unconstrained points (reference: the
+    package's model in those coordinates, whose density tests/test_model.py relates to the default's)."""
     from bayesgeo.model import build_model
 
     ds = generated_layout(12, seed=3)
-    model, _, _ = sbc_model(ds, SBCConfig(covariance="exponential", coordinates="share"))
-    ref, _ = build_model(ds, covariance="exponential", _coordinates="share")
-    assert "variance_coords_z" in model.named_vars and "variance_coords_z" in ref.named_vars
+    model, _, _ = sbc_model(ds, SBCConfig(covariance="exponential", coordinates="legacy", trend="sampled"))
+    ref, _ = build_model(ds, covariance="exponential", _coordinates="legacy", _trend="sampled")
+    assert {"sd_z", "nugget_sd_z", "beta_z"} <= {v.name for v in model.free_RVs}
     _assert_same_logp(model, ref, np.random.default_rng(2))
 
 
@@ -167,12 +171,14 @@ def test_model_is_mirror_symmetric_in_the_intercept():
     normal density; checked against scipy.stats.norm for the prior part). With the simulation
     also symmetric (e ~ N(0, I)), SBC ranks of the intercept have a distribution symmetric about
     L / 2 (Talts et al. 2018, Theorem 1 applied to the mirrored pairs), so a lean of the
-    intercept's ranks to one side can only be chance (docs/validation.md, "Intercept ranks")."""
+    intercept's ranks to one side can only be chance (docs/validation.md, "Intercept ranks"). Checked
+    with the coefficients sampled (as the nn likelihood does); integrated out, the likelihood depends
+    on y through a quadratic form alone and the conditional draws are mirrored with it."""
     from pytensor.compile.sharedvalue import SharedVariable
     from pytensor.graph.traversal import ancestors
 
     ds = generated_layout(12, seed=8)
-    model, blocks, spec = sbc_model(ds, SBCConfig(covariance="matern32"))
+    model, blocks, spec = sbc_model(ds, SBCConfig(covariance="matern32", trend="sampled"))
     var = next(v for v in ancestors(model.potentials) if isinstance(v, SharedVariable) and v.name == "sbc_y_0")
     rng = np.random.default_rng(3)
     y = rng.normal(size=12)
@@ -196,7 +202,7 @@ def test_nn_model_with_all_neighbours_equals_dense():
     """With m = n - 1 neighbours the Vecchia product is the exact chain rule (Vecchia 1988), so the
     nn SBC model has the dense model's log density."""
     ds = generated_layout(10, seed=5)
-    dense, _, _ = sbc_model(ds, SBCConfig(covariance="exponential"))
+    dense, _, _ = sbc_model(ds, SBCConfig(covariance="exponential", trend="sampled"))
     nn, _, _ = sbc_model(ds, SBCConfig(kind="nn", covariance="exponential", neighbours=9))
     nn3, _, _ = sbc_model(ds, SBCConfig(kind="nn", covariance="exponential", neighbours=2))
     ip = dense.initial_point()
@@ -252,17 +258,17 @@ def test_intercept_ranks_uniform_under_the_exact_conditional_posterior():
     Analysis, 3rd ed., sec. 14.2; Rasmussen and Williams 2006, sec. 2.7). Ranks must then be
     uniform (Talts et al. 2018, Theorem 1): this checks that the prior of beta_z, the simulation
     and the standardisation agree, independently of MCMC. Negative control: the same draws with a
-    wrong prior sd (1 instead of the model's 2.5) give ranks the chi-square test rejects."""
-    import pymc as pm
+    wrong prior sd (1 instead of the model's 2.5) give ranks the chi-square test rejects. The
+    package's model integrates beta out, so its prior draws come from prior_draws, tested here too."""
     from scipy.linalg import cho_factor, cho_solve
 
-    from bayesgeo.validation import _sampled_names, _truth_items
+    from bayesgeo.validation import _truth_items, prior_draws
 
     ds = generated_layout(12, seed=7)
     model, blocks, spec = sbc_model(ds, SBCConfig(covariance="matern32"))
+    assert "beta_z" not in model.named_vars
     reps, L = 1500, 99
-    prior = pm.sample_prior_predictive(draws=reps, model=model, random_seed=4,
-                                       var_names=_sampled_names(model))["prior"].to_dataset()
+    prior = prior_draws(model, spec, reps, 4)
     rng = np.random.default_rng(5)
     cov = get_covariance("matern32")
     F = blocks[0]["design"]

@@ -34,7 +34,7 @@ from bayesgeo.validation import FULL, generated_layout, sbc_summary, simulation_
 def _run(a) -> None:
     cfg = with_settings(FULL, kind=a.kind, covariance=a.covariance, nugget=bool(a.nugget),
                         nu=a.nu if a.covariance == "matern" else None, max_draws=a.max_draws,
-                        coordinates=a.coordinates)
+                        coordinates=a.coordinates, trend=a.trend)
     if a.kind == "hierarchical":
         tpl = generated_layout(max(12, a.points // 2), sites=3, seed=a.layout_seed)
     else:
@@ -43,8 +43,9 @@ def _run(a) -> None:
     out.mkdir(parents=True, exist_ok=True)
     family = f"matern{a.nu:g}".replace(".", "p") if a.covariance == "matern" else a.covariance
     stem = f"{a.kind}-{family}-{'nugget' if a.nugget else 'no-nugget'}"
-    if a.coordinates != "legacy":
-        stem = f"{a.coordinates}-{stem}"
+    prefix = {("legacy", "sampled"): "", ("share", "sampled"): "share-", ("share", "auto"): "default-",
+              ("legacy", "auto"): "legacy-int-"}[(a.coordinates, a.trend)]
+    stem = f"{prefix}{stem}"
     for c in range(a.chunks):
         path = out / f"{stem}-{c}.nc"
         if path.exists():
@@ -119,8 +120,12 @@ def main() -> None:
     r.add_argument("--seed", type=int, default=100)
     r.add_argument("--chunks", type=int, default=4)
     r.add_argument("--chunk-size", type=int, default=25)
-    r.add_argument("--coordinates", choices=("legacy", "share"), default="legacy",
-                   help="sampling coordinates of the single-site model (share: log total variance, logit spatial share)")
+    r.add_argument("--coordinates", choices=("legacy", "share"), default="share",
+                   help="sampling coordinates of the single-site model (share, the default: log total variance, "
+                        "logit spatial share; legacy: log sds)")
+    r.add_argument("--trend", choices=("auto", "sampled"), default="auto",
+                   help="auto (default): the dense likelihood integrates the trend out and draws it afterwards; "
+                        "sampled: the earlier model")
     r.add_argument("--max-draws", type=int, default=None,
                    help="continue a replicate's chains while R-hat or ESS fails, up to this many draws (default 4 x 500)")
     r.add_argument("--out", required=True)
