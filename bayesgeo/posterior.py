@@ -23,6 +23,7 @@ import csv
 import io
 import json
 import platform
+import time
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -34,8 +35,9 @@ from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model, model_inputs
-from bayesgeo.looks import convergence_look, longest_chain, looks_line, report_fields
-from bayesgeo.sampling import sample
+from bayesgeo.looks import (DEFAULT_ACCEPT, convergence_look, longest_chain, looks_line, report_fields,
+                            rerun_if_divergent)
+from bayesgeo.sampling import compile_model, new_seed, sample
 from bayesgeo.trend_posterior import draw_trend
 from bayesgeo.validate import InputError
 
@@ -211,7 +213,7 @@ def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Ma
 def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None, nugget: bool = True,
         trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None, priors=None,
         sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
-        target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
+        target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
         adaptation: str = "low_rank", approx: str = "auto", neighbours: int | None = None,
         max_draws: int | None = None) -> xr.DataTree:
     """Fit the single-site Bayesian GP model and return the self-describing result.
@@ -222,8 +224,12 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         Point data of one site (:func:`bayesgeo.read_points`).
     covariance, nu, nugget, trend, covariates, transform, priors, approx, neighbours
         Model settings, see :func:`bayesgeo.model.build_model`.
-    sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation
+    sampler, chains, draws, tune, seed, progressbar, adaptation
         Sampler settings, see :func:`bayesgeo.sampling.sample`.
+    target_accept : float, optional
+        Target acceptance rate. ``None`` (default): 0.8, and when the kept draws hold divergent
+        transitions the fit is sampled once more at 0.9 (:func:`bayesgeo.looks.rerun_if_divergent`;
+        recorded in ``settings["sampler"]["rerun"]``). A number: exactly that, no rerun.
     max_draws : int, optional
         While the convergence check finds R-hat or ESS too poor, the same chains continue, up to
         this many draws per chain (default ``4 * draws``; ``draws`` turns it off); see
@@ -240,9 +246,20 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     _, y_z, design, dist = model_inputs(ds, **model_kw)
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
-    raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
-                 seed=seed, progressbar=progressbar, adaptation=adaptation,
-                 max_draws=longest_chain(draws, max_draws), look=look)
+    t0 = time.perf_counter()
+    compiled = compile_model(model) if sampler == "nutpie" else model  # compiled once for a rerun too
+    compile_seconds = time.perf_counter() - t0
+    seed = new_seed() if seed is None else seed  # one seed for both runs and the trend draws, recorded
+
+    def run(accept: float) -> xr.DataTree:
+        return sample(compiled, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=accept,
+                      seed=seed, progressbar=progressbar, adaptation=adaptation,
+                      max_draws=longest_chain(draws, max_draws), look=look)
+
+    raw = run(DEFAULT_ACCEPT if target_accept is None else target_accept)
+    if target_accept is None:
+        raw = rerun_if_divergent(raw, run)
+    raw.attrs["seconds"] = float(raw.attrs["seconds"]) + compile_seconds
     post = raw["posterior"].to_dataset()
     if "beta_z" not in post:  # integrated out of the dense likelihood: exact conditional draws
         beta = draw_trend(post, spec, y_z, design.values, dist, seed=seed)
@@ -263,7 +280,8 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         coords={**obs_coords, "term": list(spec.terms)},
     )
     sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
-                                                  "adaptation", "seconds", "sampling_seconds", "max_draws", "looks")
+                                                  "adaptation", "seconds", "sampling_seconds", "max_draws", "looks",
+                                                  "rerun")
                         if k in raw.attrs}
     settings = {
         "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
@@ -385,7 +403,8 @@ def summary_text(report: dict) -> str:
                  f"trend order {m['trend']}, transform {m['transform'] or 'none'}, n = {m['n']}")
     s = report["sampler"]
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
-                 f"seed {s['seed']}, {s['seconds']:.1f} s ({s['sampling_seconds']:.1f} s sampling, the rest compiling)")
+                 f"seed {s['seed']}, {s['seconds']:.1f} s in all ({s['sampling_seconds']:.1f} s sampling the kept draws; the "
+                 f"rest compiling{', the first run' if s.get('rerun') else ''})")
     if looks_line(s):
         lines.append(looks_line(s))
     if s.get("attempts"):

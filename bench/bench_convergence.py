@@ -20,7 +20,9 @@ side by side, same data and sampler seed:
   the trend integrated out (dense; the looks judge the sampled parameters, beta is drawn afterwards);
 * ``default``: the package as it stands, through ``bayesgeo.posterior.fit`` with its defaults (since
   issue 16: the variance-split coordinates, the trend integrated out of the dense likelihood and drawn
-  afterwards, chains continued; wall time includes those draws);
+  afterwards, chains continued, a rerun at target acceptance 0.9 when the draws hold divergences; wall
+  time includes the trend draws and any rerun, sampling seconds are those of the kept run);
+  ``default_ta90``, ``default_ta95``: the same with target acceptance 0.9 or 0.95 from the start;
 * ``share_int``, ``legacy_int`` (only when asked, dense only): those coordinates with the trend coefficients
   integrated out of the likelihood, y | theta ~ N(0, K + b^2 F F^T), and drawn after sampling
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
@@ -61,7 +63,7 @@ SIDE = 1000.0  # m, side of the invented survey square
 ARMS = {"legacy": ("legacy", 0.8), "share": ("share", 0.8), "share_ta90": ("share", 0.9),
         "share_int": ("share", 0.8), "legacy_int": ("legacy", 0.8), "looks": ("legacy", 0.8),
         "looks_ta90": ("legacy", 0.9), "share_looks": ("share", 0.8), "share_int_looks": ("share", 0.8),
-        "default": ("share", 0.8)}
+        "default": ("share", 0.8), "default_ta90": ("share", 0.9), "default_ta95": ("share", 0.95)}
 COORDS = ("legacy", "share")  # the default side-by-side
 
 
@@ -119,8 +121,9 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     ds = simulate(recipe)
     t0 = time.perf_counter()
     coords, target_accept = ARMS[arm]
-    if arm == "default":
-        return _record(recipe, arm, *_fit_default(ds, recipe, approx), t0=t0)
+    if arm.startswith("default"):
+        return _record(recipe, arm, *_fit_default(ds, recipe, approx, None if arm == "default" else target_accept),
+                       t0=t0)
     # the coordinates of the arm; the trend coefficients integrated out (``_int``, dense) or sampled
     model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords,
                               _trend="integrated" if "_int" in arm else "sampled")
@@ -149,19 +152,22 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
                    target_accept, t0=t0)
 
 
-def _fit_default(ds, recipe: dict, approx: str):
-    """``bayesgeo.posterior.fit`` with its defaults: (spec, posterior, sample stats, sampling s, looks, target accept)."""
+def _fit_default(ds, recipe: dict, approx: str, target_accept: float | None):
+    """``bayesgeo.posterior.fit`` with its defaults but ``target_accept`` (None: the default, with its
+    rerun at 0.9 when the draws hold divergences): (spec, posterior, sample stats, sampling s, looks,
+    target accept)."""
     import json as _json
 
     from bayesgeo.posterior import fit, fit_spec
 
-    tree = fit(ds, covariance=recipe["family"], approx=approx, seed=recipe["seed"] % 100_000)
+    tree = fit(ds, covariance=recipe["family"], approx=approx, seed=recipe["seed"] % 100_000,
+               target_accept=target_accept)
     smp = _json.loads(tree.attrs["settings"])["sampler"]
     return (fit_spec(tree), tree["posterior"].to_dataset(), tree["sample_stats"].to_dataset(),
-            float(smp["sampling_seconds"]), smp.get("looks", []), float(smp["target_accept"]))
+            float(smp["sampling_seconds"]), smp.get("looks", []), float(smp["target_accept"]), smp.get("rerun"))
 
 
-def _record(recipe, arm, spec, post, stats, sampling_seconds, looks, target_accept, *, t0):
+def _record(recipe, arm, spec, post, stats, sampling_seconds, looks, target_accept, rerun=None, *, t0):
     """The JSON record of one fit (verdict, ESS, R-hat, divergences and where they sit, times)."""
     import xarray as xr
 
@@ -194,7 +200,7 @@ def _record(recipe, arm, spec, post, stats, sampling_seconds, looks, target_acce
             "divergences": int(conv.divergences), "sampling_seconds": sampling_seconds,
             "target_accept": target_accept, "wall_seconds": float(wall), "steps_per_draw": float(np.mean(stats["n_steps"].values)),
             "divergence_location": where, "failed": worst[:6], "draws_kept": int(post.sizes["draw"]),
-            "looks": [{k: v for k, v in lk.items() if k != "short"} for lk in looks]}
+            "looks": [{k: v for k, v in lk.items() if k != "short"} for lk in looks], "rerun": rerun}
 
 
 def _rate(r: dict) -> float:

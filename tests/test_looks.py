@@ -149,3 +149,61 @@ def test_fit_continues_short_chains_and_records_the_looks():
     assert smp1["draws"] == 50 and "looks" not in smp1
     np.testing.assert_array_equal(once["posterior"]["practical_range"].values,
                                   tree["posterior"]["practical_range"].values[:, :50])
+
+
+def test_divergent_default_fit_is_sampled_again_at_0_9(monkeypatch):
+    """A fit left at the default target acceptance whose kept draws hold divergent transitions is
+    sampled once more at 0.9 with the same seed (bayesgeo.looks.rerun_if_divergent); the first run is
+    recorded and the summary says so. With no divergences, or with a target acceptance the user chose,
+    there is no rerun. (Divergences are forced here by a stand-in sampler so that the decision rule
+    itself is tested; the effect of 0.9 on real fits is measured in bench/bench_convergence.py.)"""
+    import xarray as xr
+
+    import bayesgeo.posterior as posterior
+    from bayesgeo.looks import rerun_if_divergent
+
+    calls = []
+
+    def fake_run(accept, divergent):
+        calls.append(accept)
+        div = np.zeros((2, 10), dtype=bool)
+        div[0, :3] = divergent
+        tree = xr.DataTree.from_dict({"/posterior": xr.Dataset({"x": (("chain", "draw"), np.zeros((2, 10)))}),
+                                      "/sample_stats": xr.Dataset({"diverging": (("chain", "draw"), div)})})
+        tree.attrs.update(target_accept=accept, seconds=1.5)
+        return tree
+
+    out = rerun_if_divergent(fake_run(0.8, True), lambda a: fake_run(a, False))
+    assert calls == [0.8, 0.9] and out.attrs["target_accept"] == 0.9
+    assert out.attrs["rerun"] == {"target_accept": 0.8, "divergences": 3, "draws": 10, "seconds": 1.5}
+    assert out.attrs["seconds"] == 3.0
+    calls.clear()
+    assert "rerun" not in rerun_if_divergent(fake_run(0.8, False), lambda a: fake_run(a, False)).attrs
+    assert "rerun" not in rerun_if_divergent(fake_run(0.9, True), lambda a: fake_run(a, False)).attrs
+    assert calls == [0.8, 0.9]  # only the two first runs: no rerun asked
+
+    # through fit: the stand-in sampler diverges at 0.8 only
+    seen = []
+
+    def fake_sample(model, *, target_accept, seed, **kw):
+        seen.append((target_accept, seed))
+        tree = fake_run(target_accept, target_accept < 0.9)
+        tree.attrs.update(sampler="nutpie", seed=seed, chains=2, draws=10, tune=10, adaptation="low_rank",
+                          sampling_seconds=1.0)
+        post = tree["posterior"].to_dataset().drop_vars("x")
+        for name in ("practical_range_z", "sd_z", "nugget_sd_z"):
+            post[name] = (("chain", "draw"), np.full((2, 10), 0.5))
+        tree["posterior"] = xr.DataTree(post)
+        return tree
+
+    monkeypatch.setattr(posterior, "sample", fake_sample)
+    monkeypatch.setattr(posterior, "compile_model", lambda model: model)
+    ds = _data()
+    tree = posterior.fit(ds, covariance="exponential", seed=5)
+    smp = json.loads(tree.attrs["settings"])["sampler"]
+    assert seen == [(0.8, 5), (0.9, 5)] and smp["target_accept"] == 0.9 and smp["rerun"]["divergences"] == 3
+    assert "divergent transitions at target acceptance 0.8: sampled again at 0.9" in posterior.summary_text(
+        posterior.fit_report(tree))
+    seen.clear()
+    posterior.fit(ds, covariance="exponential", seed=5, target_accept=0.8)
+    assert seen == [(0.8, 5)]
