@@ -122,6 +122,26 @@ def _dlog(code, u, r):
     return 0.0
 
 
+@numba.njit(cache=True, inline="always")
+def _fill(code, dist, inv_phi, s2, diag, work, lower):
+    """K = s2 rho + diag on the diagonal into the upper triangle of ``work`` and, when ``lower``, the
+    correlation R into its strictly lower triangle; tile by tile so the mirrored writes stay in cache."""
+    n = dist.shape[0]
+    for ib in range(0, n, _TILE):
+        ie = min(ib + _TILE, n)
+        for jb in range(ib, n, _TILE):
+            je = min(jb + _TILE, n)
+            for i in range(ib, ie):
+                j0 = i + 1 if jb == ib else jb
+                for j in range(j0, je):
+                    r = _rho(code, dist[i, j] * inv_phi)
+                    work[i, j] = s2 * r
+                    if lower:
+                        work[j, i] = r
+    for i in range(n):
+        work[i, i] = diag
+
+
 @numba.njit(nogil=True, cache=True)
 def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r, extra):
     """Family ``code``: fill ``work``, factor, invert; return (logp, g_phi, g_s2, g_t2) and write -alpha to grad_r.
@@ -142,19 +162,7 @@ def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r, extra):
         return ninf, 0.0, 0.0, 0.0
     inv_phi = 1.0 / phi
     diag = s2 * (1.0 + JITTER) + t2
-    # K (upper, s2 * rho) and R (lower, rho), tile by tile so the mirrored writes stay in cache
-    for ib in range(0, n, _TILE):
-        ie = min(ib + _TILE, n)
-        for jb in range(ib, n, _TILE):
-            je = min(jb + _TILE, n)
-            for i in range(ib, ie):
-                j0 = i + 1 if jb == ib else jb
-                for j in range(j0, je):
-                    r = _rho(code, dist[i, j] * inv_phi)
-                    work[i, j] = s2 * r
-                    work[j, i] = r
-    for i in range(n):
-        work[i, i] = diag
+    _fill(code, dist, inv_phi, s2, diag, work, True)
     if extra.shape[0] > 0:
         for i in range(n):
             for j in range(i, n):
@@ -207,19 +215,7 @@ def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r, extra):
 def _solve_kernel(code, dist, phi, s2, t2, rhs, work, addrs):
     """Fill ``work`` with K (upper triangle, as :func:`_kernel`), factor it and overwrite each row of
     ``rhs`` (k, n) with K^-1 times it. Returns LAPACK's ``info`` (0: success)."""
-    n = dist.shape[0]
-    inv_phi = 1.0 / phi
-    for ib in range(0, n, _TILE):
-        ie = min(ib + _TILE, n)
-        for jb in range(ib, n, _TILE):
-            je = min(jb + _TILE, n)
-            for i in range(ib, ie):
-                j0 = i + 1 if jb == ib else jb
-                for j in range(j0, je):
-                    work[i, j] = s2 * _rho(code, dist[i, j] * inv_phi)
-    diag = s2 * (1.0 + JITTER) + t2
-    for i in range(n):
-        work[i, i] = diag
+    _fill(code, dist, 1.0 / phi, s2, s2 * (1.0 + JITTER) + t2, work, False)
     info = _lapack.potrf_upper(work, addrs)
     if info != 0:
         return info
