@@ -59,6 +59,7 @@ The full statement and the reasons are in ``docs/hierarchical.md``.
 from __future__ import annotations
 
 import json
+import time
 import warnings
 from collections.abc import Mapping, Sequence
 
@@ -86,8 +87,14 @@ __all__ = [
     "site_fit",
     "site_spec",
     "site_cautions",
+    "SITES_ACCEPT",
+    "SITES_RERUN_ACCEPT",
 ]
 
+#: Target acceptance of a several-site fit when the user gives none (funnels need smaller steps).
+SITES_ACCEPT = 0.9
+#: Target acceptance of the rerun of such a fit whose kept draws hold divergent transitions.
+SITES_RERUN_ACCEPT = 0.95
 
 
 def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
@@ -229,7 +236,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
               trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None,
               pooling: str = "hierarchical", priors: Priors | Mapping | None = None, min_points: str = "error",
               sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
-              target_accept: float = 0.9, seed: int | None = None, progressbar: bool = False,
+              target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
               adaptation: str = "low_rank", parametrisation: str = "noncentred", approx: str = "auto",
               neighbours: int | None = None, max_draws: int | None = None) -> xr.DataTree:
     """Fit the several-site model and return the explicit fit result.
@@ -240,9 +247,13 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         As in :func:`build_site_model`.
     parametrisation, approx, neighbours :
         As in :func:`build_site_model`.
-    sampler, chains, draws, tune, target_accept, seed, progressbar, adaptation :
-        As in :func:`bayesgeo.sampling.sample` (``target_accept`` defaults to 0.9 here: funnels
-        of hierarchical models need smaller steps, common practice).
+    sampler, chains, draws, tune, seed, progressbar, adaptation :
+        As in :func:`bayesgeo.sampling.sample`.
+    target_accept : float, optional
+        ``None`` (default): :data:`SITES_ACCEPT` (0.9: funnels of hierarchical models need smaller
+        steps, common practice), and when the kept draws hold divergent transitions the fit is
+        sampled once more at :data:`SITES_RERUN_ACCEPT` (:func:`bayesgeo.looks.rerun_if_divergent`,
+        recorded in ``settings["sampler"]["rerun"]``). A number: exactly that, no rerun.
     max_draws : int, optional
         While the convergence check (every site and the population) finds R-hat or ESS too poor,
         the same chains continue up to this many draws per chain (default ``4 * draws``;
@@ -264,8 +275,8 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         ``pooling`` and ``cautions``.
     """
     from bayesgeo.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.looks import convergence_look, longest_chain
-    from bayesgeo.sampling import sample
+    from bayesgeo.looks import convergence_look, longest_chain, rerun_if_divergent
+    from bayesgeo.sampling import compile_model, new_seed, sample
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UserWarning)
@@ -285,10 +296,21 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": add_derived(raw["posterior"].to_dataset(), spec),
         "/sample_stats": raw["sample_stats"].to_dataset()}))
+    seed = new_seed() if seed is None else seed  # one seed for both runs, recorded
     with pytensor.config.change_flags(on_opt_error="ignore"):
-        raw = sample(model, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
-                     seed=seed, progressbar=progressbar, adaptation=adaptation,
-                     max_draws=longest_chain(draws, max_draws), look=look)
+        t0 = time.perf_counter()
+        compiled = compile_model(model) if sampler == "nutpie" else model  # once, for a rerun too
+        compile_seconds = time.perf_counter() - t0
+
+        def run(accept: float) -> xr.DataTree:
+            return sample(compiled, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=accept,
+                          seed=seed, progressbar=progressbar, adaptation=adaptation,
+                          max_draws=longest_chain(draws, max_draws), look=look)
+
+        raw = run(SITES_ACCEPT if target_accept is None else target_accept)
+        if target_accept is None:
+            raw = rerun_if_divergent(raw, run, accept=SITES_RERUN_ACCEPT)
+    raw.attrs["seconds"] = float(raw.attrs["seconds"]) + compile_seconds
     post = add_derived(raw["posterior"].to_dataset(), spec)
     site_of = np.asarray(ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "all"), dtype=str)
     obs_coords = {"row": ("obs", np.asarray(ds["row"].values)), "site": ("obs", site_of)}
@@ -315,7 +337,8 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         groups["/new_site"] = new_site_draws(post, spec, seed=int(raw.attrs["seed"]))
     tree = xr.DataTree.from_dict(groups)
     sampler_settings = {k: raw.attrs[k] for k in ("sampler", "seed", "chains", "draws", "tune", "target_accept",
-                                                  "adaptation", "seconds", "sampling_seconds", "max_draws", "looks")
+                                                  "adaptation", "seconds", "sampling_seconds", "max_draws", "looks",
+                                                  "rerun")
                         if k in raw.attrs}
     settings = {
         "format": "bayesgeo several-site fit", "format_version": 1, "model": spec.to_dict(),

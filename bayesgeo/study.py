@@ -81,7 +81,9 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "max_draws": ("int", None, None, "continue the same chains up to this many draws per chain while R-hat or "
                                          "ESS is too poor (default 4 x draws; equal to draws: off)"),
         "tune": ("int", 1000, None, "tuning iterations per chain"),
-        "target_accept": ("float", None, None, "target acceptance rate, in (0, 1) (default 0.8; 0.9 for several-site models)"),
+        "target_accept": ("float", None, None, "target acceptance rate, in (0, 1) (default 0.8, 0.9 for several-site "
+                                               "models, and a fit whose draws hold divergent transitions is sampled "
+                                               "once more at 0.9, 0.95; a value given here is used as it is)"),
         "seed": ("int", 1, None, "seed of the sampler (same seed, same numbers)"),
     },
     "check": {

@@ -614,3 +614,32 @@ def test_site_report_carries_the_looks(fits):
     assert report["sampler"]["looks"] == smp["looks"] and report["sampler"]["max_draws"] == smp["max_draws"]
     text = summary_text_sites(report)
     assert ("chains continued while R-hat or ESS was too poor" in text) == (len(smp["looks"]) > 1)
+
+
+def test_default_several_site_fit_is_rerun_at_0_95_when_divergent(monkeypatch):
+    """fit_sites without a target acceptance samples at 0.9 and hands its run to
+    bayesgeo.looks.rerun_if_divergent with 0.95 (the rule itself is tested in tests/test_looks.py);
+    a rerun is recorded in the settings; a target acceptance the user gives is used as it is, with no
+    rerun asked. A stand-in for the rule forces the rerun so that the wiring is tested on a real fit."""
+    import bayesgeo.looks as looks
+    from bayesgeo.hierarchical import SITES_RERUN_ACCEPT, fit_sites
+
+    asked = []
+
+    def force(raw, run, *, accept):
+        asked.append((float(raw.attrs["target_accept"]), accept))
+        again = run(accept)
+        again.attrs["rerun"] = {"target_accept": float(raw.attrs["target_accept"]), "divergences": 1,
+                                "draws": int(raw["posterior"].sizes["draw"]), "seconds": 0.0}
+        return again
+
+    monkeypatch.setattr(looks, "rerun_if_divergent", force)
+    ds, _ = _sites([20, 20, 20], seed=3)
+    kw = dict(pooling="independent", chains=2, draws=100, tune=100, seed=4, max_draws=100)
+    tree = fit_sites(ds, **kw)
+    smp = json.loads(tree.attrs["settings"])["sampler"]
+    assert asked == [(0.9, SITES_RERUN_ACCEPT)] and SITES_RERUN_ACCEPT == 0.95
+    assert smp["target_accept"] == 0.95 and smp["rerun"]["target_accept"] == 0.9
+    asked.clear()
+    assert json.loads(fit_sites(ds, target_accept=0.85, **kw).attrs["settings"])["sampler"]["target_accept"] == 0.85
+    assert asked == []

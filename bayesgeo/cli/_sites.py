@@ -78,7 +78,7 @@ def run_sites(args, ds) -> int:
     stages = show or (not args.json and bool((getattr(args, "workload", None) or {}).get("message")))
     sample_kw = dict(sampler=_opt(args, "sampler", "nutpie"), chains=_opt(args, "chains", 4),
                      draws=_opt(args, "draws", 1000), tune=_opt(args, "tune", 1000),
-                     target_accept=_opt(args, "target_accept", 0.9), progressbar=show,
+                     target_accept=_opt(args, "target_accept", None), progressbar=show,
                      max_draws=_opt(args, "max_draws", None))
     if stages:
         print(f"fitting the {pooling} model ...", file=sys.stderr, flush=True)
