@@ -59,7 +59,6 @@ The full statement and the reasons are in ``docs/hierarchical.md``.
 from __future__ import annotations
 
 import json
-import time
 import warnings
 from collections.abc import Mapping, Sequence
 
@@ -275,8 +274,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         ``pooling`` and ``cautions``.
     """
     from bayesgeo.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.looks import convergence_look, longest_chain, rerun_if_divergent
-    from bayesgeo.sampling import compile_model, new_seed, sample
+    from bayesgeo.looks import convergence_look, sample_fit
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UserWarning)
@@ -296,21 +294,10 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": add_derived(raw["posterior"].to_dataset(), spec),
         "/sample_stats": raw["sample_stats"].to_dataset()}))
-    seed = new_seed() if seed is None else seed  # one seed for both runs, recorded
     with pytensor.config.change_flags(on_opt_error="ignore"):
-        t0 = time.perf_counter()
-        compiled = compile_model(model) if sampler == "nutpie" else model  # once, for a rerun too
-        compile_seconds = time.perf_counter() - t0
-
-        def run(accept: float) -> xr.DataTree:
-            return sample(compiled, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=accept,
-                          seed=seed, progressbar=progressbar, adaptation=adaptation,
-                          max_draws=longest_chain(draws, max_draws), look=look)
-
-        raw = run(SITES_ACCEPT if target_accept is None else target_accept)
-        if target_accept is None:
-            raw = rerun_if_divergent(raw, run, accept=SITES_RERUN_ACCEPT)
-    raw.attrs["seconds"] = float(raw.attrs["seconds"]) + compile_seconds
+        raw = sample_fit(model, target_accept=target_accept, default_accept=SITES_ACCEPT,
+                         rerun_accept=SITES_RERUN_ACCEPT, seed=seed, draws=draws, max_draws=max_draws, look=look,
+                         sampler=sampler, chains=chains, tune=tune, progressbar=progressbar, adaptation=adaptation)
     post = add_derived(raw["posterior"].to_dataset(), spec)
     site_of = np.asarray(ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "all"), dtype=str)
     obs_coords = {"row": ("obs", np.asarray(ds["row"].values)), "site": ("obs", site_of)}

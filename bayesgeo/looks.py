@@ -34,7 +34,7 @@ import numpy as np
 import xarray as xr
 
 __all__ = ["DEFAULT_ACCEPT", "EXTEND_CHECKS", "RERUN_ACCEPT", "convergence_look", "default_max_draws",
-           "longest_chain", "looks_line", "report_fields", "rerun_if_divergent"]
+           "longest_chain", "looks_line", "report_fields", "rerun_if_divergent", "sample_fit"]
 
 #: Problems of the check that longer chains cure (any level): R-hat and the two ESS.
 EXTEND_CHECKS = ("rhat", "ess_bulk", "ess_tail")
@@ -126,6 +126,36 @@ def rerun_if_divergent(raw: xr.DataTree, run: Callable[[float], xr.DataTree], *,
     again.attrs["rerun"] = first
     again.attrs["seconds"] = float(again.attrs["seconds"]) + first["seconds"]
     return again
+
+
+def sample_fit(model, *, target_accept: float | None, default_accept: float, rerun_accept: float,
+               seed: int | None, draws: int, max_draws: int | None, look, **sample_kw) -> xr.DataTree:
+    """Sample a fit's model as :func:`bayesgeo.posterior.fit` and :func:`bayesgeo.hierarchical.fit_sites` do.
+
+    The model is compiled once (nutpie); it is sampled with the ``look`` (chains continued up to
+    :func:`longest_chain` draws) at ``target_accept``, or at ``default_accept`` when that is None, and
+    then, only in that case, :func:`rerun_if_divergent` at ``rerun_accept``. A missing seed is drawn
+    once, so both runs use the same. ``sample_kw`` goes to :func:`bayesgeo.sampling.sample`. The
+    result's ``seconds`` include the compilation (and a first run).
+    """
+    import time
+
+    from bayesgeo.sampling import compile_model, new_seed, sample
+
+    seed = new_seed() if seed is None else seed
+    t0 = time.perf_counter()
+    compiled = compile_model(model) if sample_kw.get("sampler", "nutpie") == "nutpie" else model
+    compile_seconds = time.perf_counter() - t0
+
+    def run(accept: float) -> xr.DataTree:
+        return sample(compiled, target_accept=accept, seed=seed, draws=draws,
+                      max_draws=longest_chain(draws, max_draws), look=look, **sample_kw)
+
+    raw = run(default_accept if target_accept is None else target_accept)
+    if target_accept is None:
+        raw = rerun_if_divergent(raw, run, accept=rerun_accept)
+    raw.attrs["seconds"] = float(raw.attrs["seconds"]) + compile_seconds
+    return raw
 
 
 def report_fields(sampler: dict) -> dict:

@@ -23,7 +23,6 @@ import csv
 import io
 import json
 import platform
-import time
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -35,9 +34,8 @@ from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
 from bayesgeo.model import FitSpec, build_model, model_inputs
-from bayesgeo.looks import (DEFAULT_ACCEPT, convergence_look, longest_chain, looks_line, report_fields,
-                            rerun_if_divergent)
-from bayesgeo.sampling import compile_model, new_seed, sample
+from bayesgeo.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks_line, report_fields, sample_fit
+from bayesgeo.sampling import new_seed
 from bayesgeo.trend_posterior import draw_trend
 from bayesgeo.validate import InputError
 
@@ -246,20 +244,10 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     _, y_z, design, dist = model_inputs(ds, **model_kw)
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
-    t0 = time.perf_counter()
-    compiled = compile_model(model) if sampler == "nutpie" else model  # compiled once for a rerun too
-    compile_seconds = time.perf_counter() - t0
-    seed = new_seed() if seed is None else seed  # one seed for both runs and the trend draws, recorded
-
-    def run(accept: float) -> xr.DataTree:
-        return sample(compiled, sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=accept,
-                      seed=seed, progressbar=progressbar, adaptation=adaptation,
-                      max_draws=longest_chain(draws, max_draws), look=look)
-
-    raw = run(DEFAULT_ACCEPT if target_accept is None else target_accept)
-    if target_accept is None:
-        raw = rerun_if_divergent(raw, run)
-    raw.attrs["seconds"] = float(raw.attrs["seconds"]) + compile_seconds
+    seed = new_seed() if seed is None else seed  # one seed for the sampler (and a rerun) and the trend draws
+    raw = sample_fit(model, target_accept=target_accept, default_accept=DEFAULT_ACCEPT, rerun_accept=RERUN_ACCEPT,
+                     seed=seed, draws=draws, max_draws=max_draws, look=look, sampler=sampler, chains=chains,
+                     tune=tune, progressbar=progressbar, adaptation=adaptation)
     post = raw["posterior"].to_dataset()
     if "beta_z" not in post:  # integrated out of the dense likelihood: exact conditional draws
         beta = draw_trend(post, spec, y_z, design.values, dist, seed=seed)

@@ -196,8 +196,10 @@ def test_divergent_default_fit_is_sampled_again_at_0_9(monkeypatch):
         tree["posterior"] = xr.DataTree(post)
         return tree
 
-    monkeypatch.setattr(posterior, "sample", fake_sample)
-    monkeypatch.setattr(posterior, "compile_model", lambda model: model)
+    import bayesgeo.sampling as sampling
+
+    monkeypatch.setattr(sampling, "sample", fake_sample)
+    monkeypatch.setattr(sampling, "compile_model", lambda model: model)
     ds = _data()
     tree = posterior.fit(ds, covariance="exponential", seed=5)
     smp = json.loads(tree.attrs["settings"])["sampler"]
