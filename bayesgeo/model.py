@@ -45,7 +45,7 @@ from bayesgeo.validate import InputError
 from bayesgeo.io import to_jsonable
 
 __all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "model_inputs",
-           "transform_values", "trend_integrated", "variance_split_logp"]
+           "build_model_and_inputs", "transform_values", "variance_split_logp"]
 
 #: Likelihood choices: exact dense, nearest-neighbour (Vecchia), or dense up to DENSE_LIMIT points.
 APPROX = ("auto", "dense", "nn")
@@ -316,20 +316,32 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     InputError
         Several sites, unknown covariance, bad trend order, non-positive values under log, bad priors.
     """
+    model, spec, *_ = build_model_and_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend,
+                                             covariates=covariates, transform=transform, priors=priors,
+                                             approx=approx, neighbours=neighbours, _coordinates=_coordinates,
+                                             _trend=_trend)
+    return model, spec
+
+
+def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _trend: str = "auto", **settings):
+    """:func:`build_model` and the inputs it was built from, computed once.
+
+    ``settings`` are those of :func:`model_inputs`. Returns ``(model, spec, y, design, dist)``: the
+    model and spec of :func:`build_model` and the standardised values, design matrix and scaled
+    distances of :func:`model_inputs` (what a fit needs again to draw the trend coefficients).
+    """
     import pymc as pm
 
     from bayesgeo.likelihood import marginal_loglik
 
-    spec, y, design, dist = model_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend,
-                                         covariates=covariates, transform=transform, priors=priors,
-                                         approx=approx, neighbours=neighbours)
+    spec, y, design, dist = model_inputs(ds, **settings)
     cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
     rates = spec.rates
     if _coordinates not in ("share", "legacy"):
         raise ValueError(f"_coordinates must be 'share' or 'legacy', got {_coordinates!r}")
     if _trend not in ("auto", "integrated", "sampled"):
         raise ValueError(f"_trend must be 'auto', 'integrated' or 'sampled', got {_trend!r}")
-    integrated = trend_integrated(spec, _trend)
+    integrated = _trend_integrated(spec, _trend)
     coords = {"term": list(spec.terms)}
     if spec.nugget and _coordinates == "share":
         coords["variance_coord"] = list(VARIANCE_COORDS)
@@ -361,10 +373,10 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
             resid = y - pm.math.dot(design.values, beta)
             loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd2, tau2)
         pm.Potential("loglik", loglik)
-    return model, spec
+    return model, spec, y, design, dist
 
 
-def trend_integrated(spec: FitSpec, trend: str = "auto") -> bool:
+def _trend_integrated(spec: FitSpec, trend: str = "auto") -> bool:
     """Whether :func:`build_model` integrates the trend coefficients out of the likelihood:
     ``"auto"`` does so for the dense likelihood (the nearest-neighbour one samples them)."""
     if trend == "integrated" and spec.approx == "nn":

@@ -33,7 +33,7 @@ from bayesgeo.covariance import get_covariance
 from bayesgeo.data import sites_of
 from bayesgeo.io import plain_attr, read_datatree, to_jsonable
 from bayesgeo.outputs import new_folder
-from bayesgeo.model import FitSpec, build_model, model_inputs
+from bayesgeo.model import FitSpec, build_model_and_inputs
 from bayesgeo.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks_line, report_fields, sample_fit
 from bayesgeo.sampling import new_seed
 from bayesgeo.trend_posterior import draw_trend
@@ -240,8 +240,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     """
     model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(covariates),
                     transform=transform, priors=priors, approx=approx, neighbours=neighbours)
-    model, spec = build_model(ds, **model_kw)
-    _, y_z, design, dist = model_inputs(ds, **model_kw)
+    model, spec, y_z, design, dist = build_model_and_inputs(ds, **model_kw)
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
     seed = new_seed() if seed is None else seed  # one seed for the sampler (and a rerun) and the trend draws

@@ -234,12 +234,11 @@ def sbc_model(template: xr.Dataset, config: SBCConfig):
         _, data = site_inputs(template, **kw)
         blocks = [{"y": d.y, "design": d.design, "dist": d.dist} for d in data]
         return _swap_constants(model, [b["y"] for b in blocks], None), blocks, spec
-    from bayesgeo.model import build_model, model_inputs
+    from bayesgeo.model import build_model_and_inputs
 
-    kw = dict(covariance=config.covariance, nu=config.nu, nugget=config.nugget)
-    model, spec = build_model(template, **kw, _coordinates=config.coordinates,
-                              _trend="sampled" if config.kind == "nn" else config.trend)
-    _, y, design, dist = model_inputs(template, **kw)
+    model, spec, y, design, dist = build_model_and_inputs(
+        template, covariance=config.covariance, nu=config.nu, nugget=config.nugget,
+        _coordinates=config.coordinates, _trend="sampled" if config.kind == "nn" else config.trend)
     blocks = [{"y": y, "design": np.asarray(design.values, dtype=float), "dist": dist}]
     nn = None
     if config.kind == "nn":

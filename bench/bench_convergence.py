@@ -114,7 +114,7 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     """Fit one data set with the command-line defaults in the coordinates of ``arm``; the record of it."""
     import xarray as xr
 
-    from bayesgeo.model import build_model
+    from bayesgeo.model import build_model_and_inputs
     from bayesgeo.posterior import derive
     from bayesgeo.sampling import compile_model, sample
 
@@ -125,8 +125,9 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
         return _record(recipe, arm, *_fit_default(ds, recipe, approx, None if arm == "default" else target_accept),
                        t0=t0)
     # the coordinates of the arm; the trend coefficients integrated out (``_int``, dense) or sampled
-    model, spec = build_model(ds, covariance=recipe["family"], approx=approx, _coordinates=coords,
-                              _trend="integrated" if "_int" in arm else "sampled")
+    model, spec, y, design, dist = build_model_and_inputs(ds, covariance=recipe["family"], approx=approx,
+                                                          _coordinates=coords,
+                                                          _trend="integrated" if "_int" in arm else "sampled")
     compiled = compile_model(model)
     extra = {}
     if "looks" in arm:
@@ -141,10 +142,8 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept, **extra)
     post = raw["posterior"].to_dataset()
     if "_int" in arm:
-        from bayesgeo.model import model_inputs
         from bayesgeo.trend_posterior import draw_trend
 
-        _, y, design, dist = model_inputs(ds, covariance=recipe["family"], approx="dense")
         post["beta_z"] = draw_trend(post, spec, y, design.values, dist, seed=recipe["seed"] % 100_000)
     post = derive(post, spec)
     stats = raw["sample_stats"].to_dataset()
