@@ -100,7 +100,8 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
                      nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                      transform: str | None = None, pooling: str = "hierarchical",
                      priors: Priors | Mapping | None = None, min_points: str = "error",
-                     parametrisation: str = "noncentred", approx: str = "auto", neighbours: int | None = None):
+                     parametrisation: str = "noncentred", approx: str = "auto", neighbours: int | None = None,
+                     _variance: str = "sill"):
     """Build one PyMC model for the points of several sites.
 
     Parameters
@@ -130,6 +131,9 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
         :data:`bayesgeo.model.DENSE_LIMIT` points per site, nn beyond).
     neighbours : int, optional
         m of the nearest-neighbour likelihood (default :data:`bayesgeo.vecchia.DEFAULT_NEIGHBOURS`).
+    _variance : {"sill", "total", "total_c", "total_cb"}
+        Private, for ``bench/bench_hier_coordinates.py`` only: ``"sill"`` is the documented model;
+        the others put the population on the total sill (a different prior) and centre some effects.
 
     Returns
     -------
@@ -170,18 +174,28 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
             range_sd = pm.HalfNormal("range_site_sd", sigma=hp["range_site_sd_scale"])
             log_r = _site_effect("range_u", pt.log(pop_range), range_sd, w, "site")
             prange = pm.Deterministic("practical_range_z", pt.exp(log_r), dims="site")
-            pop_sd = pm.Exponential("population_sd_z", lam=rates["sd"])
-            sill_sd = pm.HalfNormal("sill_site_sd", sigma=hp["sill_site_sd_scale"])
-            log_v = _site_effect("sill_u", 2.0 * pt.log(pop_sd), sill_sd, w, "site")
-            sd = pm.Deterministic("sd_z", pt.exp(0.5 * log_v), dims="site")
+            if _variance in ("total", "total_c", "total_cb"):
+                pop_sd = pm.Exponential("population_total_sd_z", lam=rates["sd"])
+                sill_sd = pm.HalfNormal("total_site_sd", sigma=hp["sill_site_sd_scale"])
+                log_v = _site_effect("total_u", 2.0 * pt.log(pop_sd), sill_sd,
+                                     np.zeros_like(w) if _variance in ("total_c", "total_cb") else w, "site")
+            else:
+                pop_sd = pm.Exponential("population_sd_z", lam=rates["sd"])
+                sill_sd = pm.HalfNormal("sill_site_sd", sigma=hp["sill_site_sd_scale"])
+                log_v = _site_effect("sill_u", 2.0 * pt.log(pop_sd), sill_sd, w, "site")
             if spec.nugget:
                 mu_f = pm.Normal("nugget_logit_mu", hp["nugget_logit_loc"], hp["nugget_logit_sd"])
                 f_sd = pm.HalfNormal("nugget_site_sd", sigma=hp["nugget_site_sd_scale"])
                 logit_f = _site_effect("nugget_u", mu_f, f_sd, w, "site")
+            if _variance in ("total", "total_c", "total_cb") and spec.nugget:
+                sd = pm.Deterministic("sd_z", pt.exp(0.5 * (log_v - pt.softplus(logit_f))), dims="site")
+            else:
+                sd = pm.Deterministic("sd_z", pt.exp(0.5 * log_v), dims="site")
             beta_mu = pm.Normal("beta_mu_z", 0.0, beta_sd, dims="term")
             beta_site_sd = pm.HalfNormal("beta_site_sd_z", sigma=hp["beta_site_sd_scale"], dims="term")
             beta = pm.Deterministic("beta_z", _site_effect("beta_u", beta_mu[None, :], beta_site_sd[None, :],
-                                                           w[:, None], ("site", "term")), dims=("site", "term"))
+                                                           (0 * w if _variance == "total_cb" else w)[:, None],
+                                                           ("site", "term")), dims=("site", "term"))
         elif spec.pooling == "independent":
             prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"], dims="site")
             sd = pm.Exponential("sd_z", lam=rates["sd"], dims="site")
