@@ -131,9 +131,10 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
         :data:`bayesgeo.model.DENSE_LIMIT` points per site, nn beyond).
     neighbours : int, optional
         m of the nearest-neighbour likelihood (default :data:`bayesgeo.vecchia.DEFAULT_NEIGHBOURS`).
-    _variance : {"sill", "total", "total_c", "total_cb"}
-        Private, for ``bench/bench_hier_coordinates.py`` only: ``"sill"`` is the documented model;
-        the others put the population on the total sill (a different prior) and centre some effects.
+    _variance : {"sill", "total"}
+        Private, for ``bench/bench_hier_coordinates.py`` only: ``"sill"`` is the documented model,
+        ``"total"`` puts the population on the total sill (a different prior, measured and not
+        adopted: docs/hierarchical.md, "Site-level coordinates").
 
     Returns
     -------
@@ -163,6 +164,8 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
     spec, data = site_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
                              transform=transform, pooling=pooling, priors=priors, min_points=min_points,
                              parametrisation=parametrisation, approx=approx, neighbours=neighbours)
+    if _variance not in ("sill", "total"):
+        raise ValueError(f"_variance must be 'sill' or 'total', got {_variance!r}")
     cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
     rates, hp, beta_sd = spec.rates, spec.hyperpriors, spec.priors.beta_sd
     n_sites = len(spec.sites)
@@ -174,11 +177,10 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
             range_sd = pm.HalfNormal("range_site_sd", sigma=hp["range_site_sd_scale"])
             log_r = _site_effect("range_u", pt.log(pop_range), range_sd, w, "site")
             prange = pm.Deterministic("practical_range_z", pt.exp(log_r), dims="site")
-            if _variance in ("total", "total_c", "total_cb"):
+            if _variance == "total":
                 pop_sd = pm.Exponential("population_total_sd_z", lam=rates["sd"])
                 sill_sd = pm.HalfNormal("total_site_sd", sigma=hp["sill_site_sd_scale"])
-                log_v = _site_effect("total_u", 2.0 * pt.log(pop_sd), sill_sd,
-                                     np.zeros_like(w) if _variance in ("total_c", "total_cb") else w, "site")
+                log_v = _site_effect("total_u", 2.0 * pt.log(pop_sd), sill_sd, w, "site")
             else:
                 pop_sd = pm.Exponential("population_sd_z", lam=rates["sd"])
                 sill_sd = pm.HalfNormal("sill_site_sd", sigma=hp["sill_site_sd_scale"])
@@ -187,15 +189,14 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
                 mu_f = pm.Normal("nugget_logit_mu", hp["nugget_logit_loc"], hp["nugget_logit_sd"])
                 f_sd = pm.HalfNormal("nugget_site_sd", sigma=hp["nugget_site_sd_scale"])
                 logit_f = _site_effect("nugget_u", mu_f, f_sd, w, "site")
-            if _variance in ("total", "total_c", "total_cb") and spec.nugget:
+            if _variance == "total" and spec.nugget:
                 sd = pm.Deterministic("sd_z", pt.exp(0.5 * (log_v - pt.softplus(logit_f))), dims="site")
             else:
                 sd = pm.Deterministic("sd_z", pt.exp(0.5 * log_v), dims="site")
             beta_mu = pm.Normal("beta_mu_z", 0.0, beta_sd, dims="term")
             beta_site_sd = pm.HalfNormal("beta_site_sd_z", sigma=hp["beta_site_sd_scale"], dims="term")
             beta = pm.Deterministic("beta_z", _site_effect("beta_u", beta_mu[None, :], beta_site_sd[None, :],
-                                                           (0 * w if _variance == "total_cb" else w)[:, None],
-                                                           ("site", "term")), dims=("site", "term"))
+                                                           w[:, None], ("site", "term")), dims=("site", "term"))
         elif spec.pooling == "independent":
             prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"], dims="site")
             sd = pm.Exponential("sd_z", lam=rates["sd"], dims="site")

@@ -1,7 +1,7 @@
 """Site-level sampling coordinates of the several-site (hierarchical) model, side by side.
 
-Arms (private switch ``_variance`` of ``bayesgeo.hierarchical.build_site_model`` at the commit that
-added this script; later commits keep only the winner):
+Arms (private switch ``_variance`` of ``bayesgeo.hierarchical.build_site_model``; ``total_c`` and
+``total_cb`` exist only at commit afa4104, where they were measured, and were removed after):
 
 * ``sill`` (the model as documented): log partial sill of each site ~ Normal(2 log S, s_v), logit
   nugget fraction ~ Normal(mu_f, s_f), both non-centred.

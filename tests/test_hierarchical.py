@@ -485,6 +485,31 @@ def test_centred_and_noncentred_are_one_model(monkeypatch):
         site_inputs(ds, parametrisation="partial")
 
 
+def test_total_sill_population_arm_splits_the_total_variance():
+    """The private ``_variance="total"`` arm of build_site_model (bench/bench_hier_coordinates.py)
+    puts the population on the log total variance v = sigma2 + tau2 and keeps the nugget fraction
+    f = tau2 / v: at any point, sd_z^2 + nugget_sd_z^2 = exp(log v) and nugget_sd_z^2 / v = expit(logit f)
+    with log v = 2 log S + s_v u and logit f = mu_f + s_f u_f (non-centred; algebra of the definitions).
+    Its log density is the model's prior in those coordinates (the likelihood blocks equal
+    scipy's multivariate normal, test_likelihood_is_sum_of_site_blocks); an unknown arm is an error."""
+    from scipy.special import expit
+
+    from bayesgeo.hierarchical import build_site_model
+
+    ds, _ = _sites([15, 12, 11], seed=8)
+    model, _ = build_site_model(ds, _variance="total")
+    rng = np.random.default_rng(5)
+    point = {k: v + 0.4 * rng.standard_normal(np.shape(v)) for k, v in model.initial_point().items()}
+    _, (r, sd, tau, beta) = _logp_and_effects(model, point)
+    log_v = 2.0 * point["population_total_sd_z_log__"] + math.exp(point["total_site_sd_log__"]) * point["total_u"]
+    logit_f = point["nugget_logit_mu"] + math.exp(point["nugget_site_sd_log__"]) * point["nugget_u"]
+    np.testing.assert_allclose(sd**2 + tau**2, np.exp(log_v), rtol=1e-12)
+    np.testing.assert_allclose(tau**2 / np.exp(log_v), expit(logit_f), rtol=1e-12)
+    assert "sill_u" not in model.named_vars and "population_sd_z" not in model.named_vars
+    with pytest.raises(ValueError, match="_variance"):
+        build_site_model(ds, _variance="share")
+
+
 # --- nearest-neighbour likelihood in the site blocks ---------------------------------------------
 
 
