@@ -26,7 +26,7 @@ from bayesgeo.sampling import compile_model, sample
 from bayesgeo.modelcheck import compare_fits, loo_pit, store_log_likelihood
 from bayesgeo.ppcheck import variogram_check
 from bayesgeo.parallel import WorkUnit, make_units, run_units
-from bayesgeo.predict import area_average, basis_from_fit, krige, make_basis, posterior_parameters, predict_targets
+from bayesgeo.predict import area_average, basis_from_fit, kriging_moments, make_basis, posterior_parameters, predict_targets
 from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
 from bayesgeo.targets import discretise_area, grid_targets, hull_mask, read_target_points
 from bayesgeo.trend import design_at, design_matrix, fit_trend
@@ -88,7 +88,7 @@ __all__ = [
     "discretise_area",
     "grid_targets",
     "hull_mask",
-    "krige",
+    "kriging_moments",
     "make_basis",
     "posterior_parameters",
     "predict_targets",
@@ -107,7 +107,7 @@ __all__ = [
     "maximin_order",
     "nearest_previous",
     "nn_error_moments",
-    "nn_krige",
+    "nn_kriging_moments",
     "nn_loglik",
     "nn_loglik_and_grad",
     "build_site_model",
@@ -128,7 +128,7 @@ __all__ = [
 # Loaded on first use: the nearest-neighbour likelihood needs PyTensor and Numba, which
 # `import bayesgeo` (data intake, exploration) should not pay for.
 _LAZY = {name: "bayesgeo.vecchia" for name in
-         ("maximin_order", "nearest_previous", "nn_error_moments", "nn_krige", "nn_loglik",
+         ("maximin_order", "nearest_previous", "nn_error_moments", "nn_kriging_moments", "nn_loglik",
           "nn_loglik_and_grad")}
 
 

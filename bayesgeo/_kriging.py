@@ -49,7 +49,7 @@ __all__ = [
     "CAUTION",
     "KrigingBasis",
     "make_basis",
-    "krige",
+    "kriging_moments",
     "draw_moments",
     "mixture_summary",
     "mixture_quantiles",
@@ -99,7 +99,7 @@ class KrigingBasis:
         ``"log"``: results are back-transformed to data units per draw.
     neighbours : int
         0 for exact kriging with the factors above; m > 0 for nearest-neighbour kriging
-        (:func:`bayesgeo.vecchia.nn_krige`: each target conditioned on its m nearest data), where
+        (:func:`bayesgeo.vecchia.nn_kriging_moments`: each target conditioned on its m nearest data), where
         ``chol`` is empty and ``alpha`` unused, so memory stays O(n) for large data.
     """
 
@@ -257,9 +257,9 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     m = xy_new.shape[0]
     design_new = np.asarray(design_new, dtype=float).reshape(m, -1)
     if basis.neighbours:
-        from bayesgeo.vecchia import nn_krige
+        from bayesgeo.vecchia import nn_kriging_moments
 
-        return nn_krige(basis.xy, basis.values, basis.design, xy_new, design_new, covariance=basis.covariance,
+        return nn_kriging_moments(basis.xy, basis.values, basis.design, xy_new, design_new, covariance=basis.covariance,
                         scale=basis.scale, partial_sill=basis.partial_sill, nugget=basis.nugget, beta=basis.beta,
                         metric=basis.metric, neighbours=basis.neighbours, include_nugget=include_nugget)
     # Pad to a multiple of _PAD targets (repeating the last one): BLAS kernels treat a ragged
@@ -283,7 +283,7 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     return mean[:, :m], var[:, :m]
 
 
-def krige(xy_obs, y_obs, design_obs, xy_new, design_new, covariance: Covariance | str, scale: float,
+def kriging_moments(xy_obs, y_obs, design_obs, xy_new, design_new, covariance: Covariance | str, scale: float,
           partial_sill: float, nugget: float, beta, metric: str = "euclidean", *, include_nugget: bool = True,
           full_cov: bool = False, jitter: float = JITTER):
     """Simple kriging with a known trend: conditional mean and variance of one parameter set.

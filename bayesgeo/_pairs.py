@@ -29,7 +29,7 @@ WANT_CORR = 4  # sum z_i + z_j, sum z_i^2 + z_j^2, sum z_i z_j
 
 
 @njit(cache=True, nogil=True)
-def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_az, dir_tol, want, first, step, block):
+def _pair_kernel(a, b, z, group, width, nbins, lag_limit, greatcircle, omni, dir_az, dir_tol, want, first, step, block):
     """Pair sums over row blocks first, first + step, ... (each row with all later rows).
 
     ``a, b``: x, y (or lon, lat in radians); ``z``: (n, ncol) values. Pairs are visited tile by
@@ -66,7 +66,7 @@ def _pair_kernel(a, b, z, group, width, nbins, max_lag, greatcircle, omni, dir_a
                         d = 2.0 * EARTH_RADIUS_KM * math.asin(math.sqrt(min(h, 1.0)))
                     else:
                         d = math.hypot(a[j] - a[i], b[j] - b[i])
-                    if d > max_lag:
+                    if d > lag_limit:
                         continue
                     k = int(d / width)
                     if k >= nbins:

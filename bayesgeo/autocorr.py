@@ -42,7 +42,7 @@ __all__ = [
     "SOKAL_C",
     "acf_array",
     "autocorrelation",
-    "default_max_lag",
+    "default_lag_limit",
     "iat_array",
     "integrated_autocorrelation_time",
     "stack_parameters",
@@ -75,8 +75,8 @@ def _autocov(x: np.ndarray) -> np.ndarray:
     return np.fft.irfft(f * np.conjugate(f), n=m, axis=-1)[..., :n] / n
 
 
-def acf_array(x: np.ndarray, *, max_lag: int | None = None) -> np.ndarray:
-    """Autocorrelation of each chain along the last axis, lags 0..max_lag.
+def acf_array(x: np.ndarray, *, lag_limit: int | None = None) -> np.ndarray:
+    """Autocorrelation of each chain along the last axis, lags 0..lag_limit.
 
     A chain with zero variance (a stuck chain) gives NaN at every lag.
     """
@@ -86,8 +86,8 @@ def acf_array(x: np.ndarray, *, max_lag: int | None = None) -> np.ndarray:
         rho = cov / cov[..., :1]
     moving = (np.ptp(x, axis=-1, keepdims=True) > 0) & (cov[..., :1] > 0)
     rho = np.where(moving, rho, np.nan)
-    if max_lag is not None:
-        rho = rho[..., : max_lag + 1]
+    if lag_limit is not None:
+        rho = rho[..., : lag_limit + 1]
     return rho
 
 
@@ -157,7 +157,7 @@ def iat_array(x: np.ndarray, *, method: str = "geyer", per_chain: bool = False) 
     return np.array([kernel(row) for row in flat]).reshape(lead)
 
 
-def default_max_lag(x: np.ndarray) -> int:
+def default_lag_limit(x: np.ndarray) -> int:
     """Lags enough to show the decay: 3 x the largest per-chain IAT, at least 20, at most n - 1.
 
     For an AR(1) chain with coefficient phi the IAT is (1 + phi)/(1 - phi), so three IATs reach
@@ -258,7 +258,7 @@ def _as_draws(data, var_names) -> xr.DataArray:
     return stack_parameters(data, var_names=var_names)
 
 
-def autocorrelation(data, *, max_lag: int | None = None, var_names: Sequence[str] | None = None) -> xr.DataArray:
+def autocorrelation(data, *, lag_limit: int | None = None, var_names: Sequence[str] | None = None) -> xr.DataArray:
     """Autocorrelation of the draws of each parameter and chain.
 
     Parameters
@@ -266,8 +266,8 @@ def autocorrelation(data, *, max_lag: int | None = None, var_names: Sequence[str
     data : xarray.DataTree, xarray.Dataset or xarray.DataArray
         Posterior draws. A tree or dataset is flattened by :func:`stack_parameters`; a
         ``DataArray`` must have dims ``chain`` and ``draw`` (other dims are kept).
-    max_lag : int, optional
-        Largest lag. Default :func:`default_max_lag`: three times the largest per-chain IAT,
+    lag_limit : int, optional
+        Largest lag. Default :func:`default_lag_limit`: three times the largest per-chain IAT,
         at least 20 and at most ``draw - 1``, which covers the decay of the autocorrelation.
     var_names : sequence of str, optional
         Variables to keep (tree or dataset input only).
@@ -285,15 +285,15 @@ def autocorrelation(data, *, max_lag: int | None = None, var_names: Sequence[str
     da = _as_draws(data, var_names)
     da = da.transpose(..., "chain", "draw")
     n_draw = da.sizes["draw"]
-    if max_lag is None:
-        max_lag = default_max_lag(da.values)
-    elif isinstance(max_lag, bool) or not isinstance(max_lag, (int, np.integer)) or not 1 <= max_lag < n_draw:
-        raise InputError(f"max_lag: expected an integer from 1 to {n_draw - 1} (draws - 1), got {max_lag!r}")
+    if lag_limit is None:
+        lag_limit = default_lag_limit(da.values)
+    elif isinstance(lag_limit, bool) or not isinstance(lag_limit, (int, np.integer)) or not 1 <= lag_limit < n_draw:
+        raise InputError(f"lag_limit: expected an integer from 1 to {n_draw - 1} (draws - 1), got {lag_limit!r}")
     out = xr.apply_ufunc(
         acf_array, da, input_core_dims=[["draw"]], output_core_dims=[["lag"]],
-        kwargs={"max_lag": int(max_lag)},
+        kwargs={"lag_limit": int(lag_limit)},
     )
-    out = out.assign_coords(lag=np.arange(int(max_lag) + 1))
+    out = out.assign_coords(lag=np.arange(int(lag_limit) + 1))
     out.name = "autocorrelation"
     out.attrs.update(units="1", estimator="sample autocorrelation with divisor n (FFT)")
     return out

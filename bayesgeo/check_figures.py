@@ -80,7 +80,7 @@ def variogram_check_figure(vc: xr.Dataset, *, title: str | None = None):
     if out.any():
         ax.scatter(lag[out], obs[out], s=_sizes(vc["pairs"].values)[out] * 3.0, facecolors="none",
                    edgecolors=_FLAG, linewidths=1.2, zorder=4, label="outside the replicate band")
-    ax.set_xlim(0.0, float(vc.attrs.get("max_lag", np.nanmax(dist))) * 1.03)
+    ax.set_xlim(0.0, float(vc.attrs.get("lag_limit", np.nanmax(dist))) * 1.03)
     ax.set_ylim(bottom=0.0)
     du = vc.attrs.get("distance_units", "") or "distance units"
     mu = vc.attrs.get("model_units", "") or "value units"

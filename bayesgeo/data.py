@@ -125,7 +125,7 @@ def read_points(
     """
     check_choice(coords, COORDS, "--coords")
     check_choice(duplicates, DUPLICATES, "--duplicates")
-    check_choice(small_sites, SMALL_SITES, "--min-points")
+    check_choice(small_sites, SMALL_SITES, "--small-sites")
     path = Path(path)
     src = str(path)
     if not path.is_file():
@@ -355,7 +355,7 @@ def _finish(ds: xr.Dataset, src: str, duplicates: str, small_sites: str = "error
         where = "" if label == "" else f" at site {label!r}"
         need = _POOLED_MIN if keep_small else MIN_POINTS
         if part.sizes["obs"] < need:
-            hint = "" if keep_small or len(labels) == 1 else " (or --min-points pool to keep it in a hierarchical fit)"
+            hint = "" if keep_small or len(labels) == 1 else " (or --small-sites keep to keep it in a hierarchical fit)"
             raise InputError(
                 f"{src}: only {part.sizes['obs']} points{where} (rows {format_rows(part['row'].values)}); "
                 f"a spatial analysis needs at least {need} per site{hint}"

@@ -1,7 +1,7 @@
 """Diagnostic figures of a posterior sample: autocorrelation, trace, rank and pair plots.
 
 * ``acf.png`` (``acf_2.png``, ... beyond 12 parameters): our own matplotlib; one panel per scalar
-  parameter, one line per chain, lags up to :func:`bayesgeo.autocorr.default_max_lag` (three
+  parameter, one line per chain, lags up to :func:`bayesgeo.autocorr.default_lag_limit` (three
   times the largest per-chain IAT, so the decay is visible), with the per-parameter IAT in the
   title and the approximate 95% band +-1.96/sqrt(n) of white noise (Box, Jenkins and Reinsel
   2008, sec. 2.1.6).
@@ -40,10 +40,10 @@ def _save(fig, path: Path, *, overwrite: bool, dpi: int) -> Path:
     return path
 
 
-def _acf_pages(draws: xr.DataArray, outdir: Path, *, max_lag, overwrite: bool, dpi: int) -> list[Path]:
+def _acf_pages(draws: xr.DataArray, outdir: Path, *, lag_limit, overwrite: bool, dpi: int) -> list[Path]:
     import matplotlib.pyplot as plt
 
-    acf = autocorrelation(draws, max_lag=max_lag)
+    acf = autocorrelation(draws, lag_limit=lag_limit)
     iat = integrated_autocorrelation_time(draws)
     n = draws.sizes["draw"]
     band = 1.96 / math.sqrt(n)
@@ -110,7 +110,7 @@ def write_diagnostic_figures(
     outdir: str | Path,
     *,
     var_names: Sequence[str] | None = None,
-    max_lag: int | None = None,
+    lag_limit: int | None = None,
     overwrite: bool = False,
     dpi: int = 110,
 ) -> list[Path]:
@@ -127,9 +127,9 @@ def write_diagnostic_figures(
         30 scalar panels in all (so a latent field does not bury the covariance parameters;
         name it here to draw it anyway). The pair plot uses the
         covariance parameters in :data:`PAIR_DEFAULT` that are among them (at most 5 scalars).
-    max_lag : int, optional
+    lag_limit : int, optional
         Largest lag of the ACF panels; default covers the decay (see
-        :func:`bayesgeo.autocorr.default_max_lag`).
+        :func:`bayesgeo.autocorr.default_lag_limit`).
     overwrite : bool
         Replace existing files of the same names (refused otherwise).
     dpi : int
@@ -147,7 +147,7 @@ def write_diagnostic_figures(
     if var_names is None:
         draws = draws.isel(parameter=np.isin(draws["variable"].values, _default_figure_vars(draws)))
     names = list(dict.fromkeys(str(v) for v in draws["variable"].values))
-    paths = _acf_pages(draws, outdir, max_lag=max_lag, overwrite=overwrite, dpi=dpi)
+    paths = _acf_pages(draws, outdir, lag_limit=lag_limit, overwrite=overwrite, dpi=dpi)
     div = _has_divergences(tree)
     trace_kw = {"visuals": {"divergence": True}} if div else {"visuals": {"divergence": False}}
     paths.append(_arviz_figure("trace", tree, names, outdir / "trace.png", overwrite=overwrite, dpi=dpi, **trace_kw))

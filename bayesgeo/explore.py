@@ -6,9 +6,9 @@ the variable named by ``variable=``. Pairs are formed only between points of the
 ``ds`` has a ``site`` coordinate (a pooled within-site statistic); permutations then shuffle the
 values within each site.
 
-Lag bins are uniform from 0 to ``max_lag`` (default: half the largest inter-point distance, a rule
+Lag bins are uniform from 0 to ``lag_limit`` (default: half the largest inter-point distance, a rule
 of thumb usually credited to Journel and Huijbregts 1978, *Mining Geostatistics*). A pair at
-distance d falls in bin floor(d / width); pairs beyond ``max_lag`` are left out. Distances are
+distance d falls in bin floor(d / width); pairs beyond ``lag_limit`` are left out. Distances are
 Euclidean in coordinate units, or great-circle (haversine) km for lon/lat data.
 
 Directions are azimuths in degrees clockwise from north (+y), folded to [0, 180) since a pair has
@@ -97,10 +97,10 @@ class FewPairsWarning(UserWarning):
 def _values(ds: xr.Dataset, variable: str | None) -> tuple[str, np.ndarray]:
     name = variable or ("residual" if "residual" in ds.data_vars else "value")
     if name not in ds.variables:
-        raise InputError(f"--variable: {name!r} is not a variable of the data (have: {', '.join(map(str, ds.data_vars))})")
+        raise InputError(f"variable: {name!r} is not a variable of the data (have: {', '.join(map(str, ds.data_vars))})")
     z = np.asarray(ds[name].values, dtype=float)
     if z.ndim != 1 or z.size != ds.sizes.get("obs", -1):
-        raise InputError(f"--variable: {name!r} is not a variable along 'obs'")
+        raise InputError(f"variable: {name!r} is not a variable along 'obs'")
     bad = ~np.isfinite(z)
     if bad.any():
         rows = ds["row"].values[bad] if "row" in ds.coords else np.flatnonzero(bad)
@@ -115,25 +115,25 @@ def _groups(ds: xr.Dataset) -> np.ndarray:
     return codes.astype(np.int64)
 
 
-def _check_common(bins, max_lag, permutations, seed):
+def _check_common(bins, lag_limit, permutations, seed):
     bins = check_positive_int(bins, "--bins")
-    if max_lag is not None:
-        max_lag = check_positive(max_lag, "--max-lag")
+    if lag_limit is not None:
+        lag_limit = check_positive(lag_limit, "--lag-limit")
     permutations = check_positive_int(permutations, "--permutations", minimum=0)
     if seed is not None:
         seed = check_int(seed, "--seed", limit="seed")
-    return bins, max_lag, permutations, seed
+    return bins, lag_limit, permutations, seed
 
 
 def _check_tolerance(tolerance) -> float:
-    tol = check_positive(tolerance, "--tolerance")
+    tol = check_positive(tolerance, "tolerance")
     if tol > 90.0:
-        raise InputError(f"--tolerance: {tolerance!r} degrees is over 90 (90 already takes every direction)")
+        raise InputError(f"tolerance: {tolerance!r} degrees is over 90 (90 already takes every direction)")
     return tol
 
 
-def lag_bins(ds: xr.Dataset, *, bins: int = 15, max_lag: float | None = None) -> np.ndarray:
-    """Uniform lag-bin edges from 0 to ``max_lag``.
+def lag_bins(ds: xr.Dataset, *, bins: int = 15, lag_limit: float | None = None) -> np.ndarray:
+    """Uniform lag-bin edges from 0 to ``lag_limit``.
 
     Parameters
     ----------
@@ -141,7 +141,7 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, max_lag: float | None = None) ->
         Point data along ``obs``.
     bins : int
         Number of bins.
-    max_lag : float, optional
+    lag_limit : float, optional
         Largest lag (distance units of the data: coordinate units, or km for lon/lat). Default:
         half the largest distance between two points (of the same site when ``ds`` has a
         ``site`` coordinate), common practice.
@@ -153,26 +153,26 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, max_lag: float | None = None) ->
     from bayesgeo import _pairs
 
     bins = check_positive_int(bins, "--bins")
-    if max_lag is None:
+    if lag_limit is None:
         greatcircle = metric_of(ds) == "greatcircle"
         far = _pairs.max_pair_distance(ds["x"].values, ds["y"].values, group=_groups(ds), greatcircle=greatcircle)
         if not far > 0.0:
             raise InputError("no two points (of one site) at distinct locations: no lag to bin")
-        max_lag = 0.5 * far
+        lag_limit = 0.5 * far
     else:
-        max_lag = check_positive(max_lag, "--max-lag")
-    return np.linspace(0.0, float(max_lag), bins + 1)
+        lag_limit = check_positive(lag_limit, "--lag-limit")
+    return np.linspace(0.0, float(lag_limit), bins + 1)
 
 
 # --- shared computation -------------------------------------------------------------------------
 
 
-def _compute(ds, *, bins, max_lag, permutations, seed, directions, tolerance, variable, want):
+def _compute(ds, *, bins, lag_limit, permutations, seed, directions, tolerance, variable, want):
     from bayesgeo import _pairs  # numba loads on first use, not on `import bayesgeo`
 
-    bins, max_lag, permutations, seed = _check_common(bins, max_lag, permutations, seed)
+    bins, lag_limit, permutations, seed = _check_common(bins, lag_limit, permutations, seed)
     name, z = _values(ds, variable)
-    edges = lag_bins(ds, bins=bins, max_lag=max_lag)
+    edges = lag_bins(ds, bins=bins, lag_limit=lag_limit)
     group = _groups(ds)
     rng = np.random.default_rng(seed) if permutations else None
     # Correlation and semivariance do not change with a shift of the values: centring keeps the
@@ -214,7 +214,7 @@ def _few_pairs(count: np.ndarray, kind: str, first_bin: int = 0) -> list[int]:
     if few.size:
         warnings.warn(
             f"{kind}: lag bins {', '.join(map(str, few))} have fewer than {MIN_PAIRS} pairs; "
-            "estimates there are unreliable (widen the bins or lower --max-lag)",
+            "estimates there are unreliable (widen the bins or lower --lag-limit)",
             FewPairsWarning, stacklevel=3,
         )
     return [int(b) for b in few]
@@ -226,7 +226,7 @@ def _attrs(ds, name, edges, permutations, seed, azimuth, tolerance, extra) -> di
         "variable": name,
         "n_points": int(ds.sizes["obs"]),
         "bins": int(edges.size - 1),
-        "max_lag": float(edges[-1]),
+        "lag_limit": float(edges[-1]),
         "permutations": int(permutations),
         "seed": "none" if seed is None else int(seed),
         "distance_units": ds.attrs.get("distance_units", ""),
@@ -282,11 +282,11 @@ def _semivariances(sums, estimator):
         return 0.5 * mean_root**4 / (_CH_A + _CH_B / count)
 
 
-def _semivariogram(ds, *, bins, max_lag, estimator, permutations, seed, directions, tolerance, variable):
+def _semivariogram(ds, *, bins, lag_limit, estimator, permutations, seed, directions, tolerance, variable):
     check_choice(estimator, ESTIMATORS, "--estimator")
     want = _WANT_SQ if estimator == "classical" else _WANT_ROOT
     name, _, edges, sums, permutations, seed = _compute(
-        ds, bins=bins, max_lag=max_lag, permutations=permutations, seed=seed, directions=directions,
+        ds, bins=bins, lag_limit=lag_limit, permutations=permutations, seed=seed, directions=directions,
         tolerance=tolerance, variable=variable, want=want,
     )
     gamma = _semivariances(sums, estimator)
@@ -301,7 +301,7 @@ def semivariogram(
     ds: xr.Dataset,
     *,
     bins: int = 15,
-    max_lag: float | None = None,
+    lag_limit: float | None = None,
     estimator: str = "classical",
     permutations: int = 0,
     seed: int | None = None,
@@ -316,8 +316,8 @@ def semivariogram(
     ds : xarray.Dataset
         Point data along ``obs``.
     bins : int
-        Number of uniform lag bins from 0 to ``max_lag``.
-    max_lag : float, optional
+        Number of uniform lag bins from 0 to ``lag_limit``.
+    lag_limit : float, optional
         Largest lag in distance units (default half the largest inter-point distance).
     estimator : {"classical", "cressie-hawkins"}
         Matheron's method-of-moments estimator or the robust Cressie-Hawkins one (module docstring).
@@ -340,7 +340,7 @@ def semivariogram(
         ``bin_lower``, ``bin_upper``; variables ``semivariance`` (value units squared, NaN in
         empty bins), ``pairs``, ``few_pairs`` and, with permutations, ``envelope_low``,
         ``envelope_high``, ``p_value``. Attributes record how it was made (estimator, bins,
-        max_lag, permutations, seed, units, azimuth, tolerance, few_pairs_bins, ...).
+        lag_limit, permutations, seed, units, azimuth, tolerance, few_pairs_bins, ...).
 
     Warns
     -----
@@ -352,7 +352,7 @@ def semivariogram(
         tolerance = _check_tolerance(tolerance)
         directions = [float(azimuth)]
     name, edges, count, lags, obs, env, permutations, seed, extra = _semivariogram(
-        ds, bins=bins, max_lag=max_lag, estimator=estimator, permutations=permutations, seed=seed,
+        ds, bins=bins, lag_limit=lag_limit, estimator=estimator, permutations=permutations, seed=seed,
         directions=directions, tolerance=tolerance, variable=variable,
     )
     attrs = _attrs(ds, name, edges, permutations, seed, None if azimuth is None else float(azimuth), tolerance, extra)
@@ -379,7 +379,7 @@ def directional_semivariograms(
     tolerance : float
         Half-width of each direction sector in degrees (0-90].
     **kw
-        ``bins``, ``max_lag``, ``estimator``, ``permutations``, ``seed``, ``variable`` as in
+        ``bins``, ``lag_limit``, ``estimator``, ``permutations``, ``seed``, ``variable`` as in
         :func:`semivariogram` (the same permutations serve every direction).
 
     Returns
@@ -388,14 +388,14 @@ def directional_semivariograms(
         As :func:`semivariogram` with an extra leading dimension ``azimuth``; ``lag`` has dims
         ``(azimuth, bin)``. ``few_pairs_bins`` lists bins short of pairs in any direction.
     """
-    unknown = set(kw) - {"bins", "max_lag", "estimator", "permutations", "seed", "variable"}
+    unknown = set(kw) - {"bins", "lag_limit", "estimator", "permutations", "seed", "variable"}
     if unknown:
         raise TypeError(f"unexpected keyword arguments: {', '.join(sorted(unknown))}")
     tolerance = _check_tolerance(tolerance)
     azimuths = [float(a) for a in azimuths]
     if not azimuths:
-        raise InputError("--azimuth: give at least one direction")
-    opts = {"bins": 15, "max_lag": None, "estimator": "classical", "permutations": 0, "seed": None, "variable": None}
+        raise InputError("azimuths: give at least one direction")
+    opts = {"bins": 15, "lag_limit": None, "estimator": "classical", "permutations": 0, "seed": None, "variable": None}
     opts.update(kw)
     name, edges, count, lags, obs, env, permutations, seed, extra = _semivariogram(
         ds, directions=azimuths, tolerance=tolerance, **opts,
@@ -410,7 +410,7 @@ def correlogram(
     ds: xr.Dataset,
     *,
     bins: int = 15,
-    max_lag: float | None = None,
+    lag_limit: float | None = None,
     permutations: int = 0,
     seed: int | None = None,
     azimuth: float | None = None,
@@ -441,7 +441,7 @@ def correlogram(
         tolerance = _check_tolerance(tolerance)
         directions = [float(azimuth)]
     name, z, edges, sums, permutations, seed = _compute(
-        ds, bins=bins, max_lag=max_lag, permutations=permutations, seed=seed, directions=directions,
+        ds, bins=bins, lag_limit=lag_limit, permutations=permutations, seed=seed, directions=directions,
         tolerance=tolerance, variable=variable, want=_WANT_CORR,
     )
     count = sums["count"][..., None].astype(float)

@@ -68,13 +68,13 @@ import xarray as xr
 from bayesgeo.covariance import get_covariance
 from bayesgeo.io import plain_attr, to_jsonable
 from bayesgeo.priors import Priors
-from bayesgeo.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, MIN_POINTS_POLICIES, PARAMETRISATIONS,
+from bayesgeo.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, SMALL_SITE_POLICIES, PARAMETRISATIONS,
                                   POOLINGS, SiteData, SiteSpec, site_inputs)
 from bayesgeo.validate import InputError
 
 __all__ = [
     "POOLINGS",
-    "MIN_POINTS_POLICIES",
+    "SMALL_SITE_POLICIES",
     "PARAMETRISATIONS",
     "CENTRED_MIN_POINTS",
     "HYPERPRIORS",
@@ -99,7 +99,7 @@ SITES_RERUN_ACCEPT = 0.95
 def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                      nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                      transform: str | None = None, pooling: str = "hierarchical",
-                     priors: Priors | Mapping | None = None, min_points: str = "error",
+                     priors: Priors | Mapping | None = None, small_sites: str = "error",
                      parametrisation: str = "noncentred", approx: str = "auto", neighbours: int | None = None,
                      _variance: str = "sill"):
     """Build one PyMC model for the points of several sites.
@@ -117,9 +117,9 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
         Overrides of the population-location priors (data units): ``range`` (r0, a1) and ``sd``
         (s0, a2) as in :mod:`bayesgeo.priors`, ``beta_sd``. The ``nugget`` pair is not used: the
         nugget enters as a fraction of the sill (:data:`HYPERPRIORS`).
-    min_points : {"error", "pool"}
+    small_sites : {"error", "keep"}
         A site with fewer than :data:`bayesgeo.data.MIN_POINTS` points raises an InputError naming
-        the site and its rows, or (``"pool"``) is kept with a warning.
+        the site and its rows, or (``"keep"``) is kept with a warning.
     parametrisation : {"noncentred", "centred", "auto"}
         Form of the site effects of the hierarchical model (module docstring): non-centred for
         every site (default, the faster one measured), centred for every site, or ``auto``
@@ -162,7 +162,7 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
     from bayesgeo.likelihood import marginal_loglik
 
     spec, data = site_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
-                             transform=transform, pooling=pooling, priors=priors, min_points=min_points,
+                             transform=transform, pooling=pooling, priors=priors, small_sites=small_sites,
                              parametrisation=parametrisation, approx=approx, neighbours=neighbours)
     if _variance not in ("sill", "total"):
         raise ValueError(f"_variance must be 'sill' or 'total', got {_variance!r}")
@@ -248,7 +248,7 @@ def _site_effect(name: str, mu, spread, w: np.ndarray, dims):
 
 def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None, nugget: bool = True,
               trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None,
-              pooling: str = "hierarchical", priors: Priors | Mapping | None = None, min_points: str = "error",
+              pooling: str = "hierarchical", priors: Priors | Mapping | None = None, small_sites: str = "error",
               sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
               target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
               adaptation: str = "low_rank", parametrisation: str = "noncentred", approx: str = "auto",
@@ -257,7 +257,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
 
     Parameters
     ----------
-    ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, min_points :
+    ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, small_sites :
         As in :func:`build_site_model`.
     parametrisation, approx, neighbours :
         As in :func:`build_site_model`.
@@ -294,7 +294,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UserWarning)
         model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
-                        transform=transform, pooling=pooling, priors=priors, min_points=min_points,
+                        transform=transform, pooling=pooling, priors=priors, small_sites=small_sites,
                         parametrisation=parametrisation, approx=approx, neighbours=neighbours)
         model, spec = build_site_model(ds, **model_kw)
     with warnings.catch_warnings():

@@ -220,8 +220,8 @@ def _explore_command(study: Study, root: Path, data: list[str]) -> list[str]:
     ex = ["explore", *data, "--trend", str(e["trend"]), "--transform", e["transform"], "--bins", str(e["bins"]),
           "--permutations", str(e["permutations"]), "--estimator", e["estimator"], "--seed", str(e["seed"]),
           "--out", str(root / "explore")]
-    if e["max_lag"] is not None:
-        ex += ["--max-lag", repr(e["max_lag"])]
+    if e["lag_limit"] is not None:
+        ex += ["--lag-limit", repr(e["lag_limit"])]
     return ex
 
 
@@ -239,7 +239,7 @@ def _fit_options(study: Study, fam: str) -> list[str]:
         fit += ["--nu", repr(m["nu"])]
     if not m["nugget"]:
         fit += ["--no-nugget"]
-    for key, opt in (("range", "--prior-range"), ("sd", "--prior-sd"), ("nugget", "--prior-nugget")):
+    for key, opt in (("range_below", "--range-below"), ("sd_above", "--sd-above"), ("nugget_above", "--nugget-above")):
         pair = s["model.priors"][key]
         if pair is not None:
             fit += [opt, repr(pair[0]), repr(pair[1])]

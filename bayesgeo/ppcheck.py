@@ -105,7 +105,7 @@ def _pick_draws(total: int, replicates: int) -> np.ndarray:
     return np.arange(replicates) % total
 
 
-def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15, max_lag: float | None = None,
+def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15, lag_limit: float | None = None,
                     seed: int | None = None, prob: float = 0.9, curve_points: int = 120, progress=None) -> xr.Dataset:
     """Posterior predictive check of a fit against the empirical semivariogram.
 
@@ -120,7 +120,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         draws are reused with new noise when there are fewer draws than replicates).
     bins : int
         Number of lag bins (:func:`bayesgeo.explore.lag_bins`).
-    max_lag : float, optional
+    lag_limit : float, optional
         Largest lag in distance units (default half the largest inter-point distance).
     seed : int, optional
         Seed of the replicate noise; a fresh one is drawn and recorded when omitted. The same
@@ -150,7 +150,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
     Raises
     ------
     InputError
-        Bad ``replicates``, ``bins``, ``max_lag``, ``seed`` or ``prob``.
+        Bad ``replicates``, ``bins``, ``lag_limit``, ``seed`` or ``prob``.
     """
     replicates = check_positive_int(replicates, "--replicates")
     curve_points = check_positive_int(curve_points, "curve_points", minimum=2)
@@ -165,7 +165,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
     spec = fa.spec
     ds = points_dataset(fa.xy[:, 0], fa.xy[:, 1], fa.z,
                         attrs={"coords": "lonlat" if spec.metric == "greatcircle" else "xy"})
-    edges = lag_bins(ds, bins=bins, max_lag=max_lag)
+    edges = lag_bins(ds, bins=bins, lag_limit=lag_limit)
     nb = edges.size - 1
     total = fa.draws["sd_z"].size
     picks = _pick_draws(total, replicates)
@@ -192,8 +192,8 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
             rep = _classical(_ols_residuals(fa.design, spec.value_mean + spec.value_sd * ys), i, j, k, nb)
         bar.update(1)
     if not np.any(count > 0):
-        raise InputError(f"--max-lag: no pair of points lies within {edges[-1]:.4g} {spec.distance_units or 'distance units'}, "
-                         "so no lag bin can be checked; use a larger --max-lag (default: half the largest distance)")
+        raise InputError(f"--lag-limit: no pair of points lies within {edges[-1]:.4g} {spec.distance_units or 'distance units'}, "
+                         "so no lag bin can be checked; use a larger --lag-limit (default: half the largest distance)")
     with np.errstate(invalid="ignore", divide="ignore"):
         lag = np.where(count > 0, dsum / np.maximum(count, 1), 0.5 * (edges[:-1] + edges[1:]))
 
@@ -249,14 +249,14 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         "method": "posterior predictive replicates at the data locations; trend removed by OLS from observed and "
                   "replicated values alike; classical (Matheron) estimator on shared lag bins",
         "model_band": "sigma^2 (1 - rho(h)) + tau^2 per posterior draw (all draws)",
-        "simulation": (f"nearest-neighbour (Vecchia) model of the fit, m = {spec.neighbours}; all pairs within max_lag"
+        "simulation": (f"nearest-neighbour (Vecchia) model of the fit, m = {spec.neighbours}; all pairs within lag_limit"
                        if spec.approx == "nn" else "exact multivariate normal (Cholesky of K)"),
         "replicates": int(picks.size),
         "draws_total": int(total),
         "seed": int(seed),
         "prob": float(prob),
         "bins": int(nb),
-        "max_lag": float(edges[-1]),
+        "lag_limit": float(edges[-1]),
         "covariance": _family_label(fa),
         "site": str(tree.attrs.get("site", "")),
         "transform": spec.transform or "none",

@@ -161,7 +161,7 @@ def resolve_priors(priors: Priors | Mapping | None, *, extent: float, value_sd: 
     Raises
     ------
     InputError
-        Naming the option (``--prior-range``, ``--prior-sd``, ``--prior-nugget``) of a bad value.
+        Naming the argument (``priors["range"]``, ``priors["sd"]``, ``priors["nugget"]``) of a bad value.
     """
     if priors is None:
         priors = Priors()
@@ -172,9 +172,9 @@ def resolve_priors(priors: Priors | Mapping | None, *, extent: float, value_sd: 
     base = default_priors(extent=extent, value_sd=value_sd)
     out = replace(
         base,
-        range=base.range if priors.range is None else _check_pair(priors.range, "R0 (distance)", "--prior-range"),
-        sd=base.sd if priors.sd is None else _check_pair(priors.sd, "S0 (sd)", "--prior-sd"),
-        nugget=base.nugget if priors.nugget is None else _check_pair(priors.nugget, "T0 (sd)", "--prior-nugget"),
+        range=base.range if priors.range is None else _check_pair(priors.range, "R0 (distance)", 'priors["range"]'),
+        sd=base.sd if priors.sd is None else _check_pair(priors.sd, "S0 (sd)", 'priors["sd"]'),
+        nugget=base.nugget if priors.nugget is None else _check_pair(priors.nugget, "T0 (sd)", 'priors["nugget"]'),
     )
     if priors.beta_sd is not None:
         try:

@@ -2,7 +2,7 @@
 
 BLAS is limited to one thread per chain while sampling (threadpoolctl): dense GP likelihoods
 factorise n x n matrices, and several BLAS threads per chain on a small machine oversubscribe the
-cores (see ``/work/shared`` facts and ``docs/model.md``). With an integer ``seed`` the same model
+cores (measured in ``bench/RESULTS.md``; ``docs/numerics.md``). With an integer ``seed`` the same model
 and settings give identical draws.
 """
 

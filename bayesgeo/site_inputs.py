@@ -22,7 +22,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.covariance import get_covariance
-from bayesgeo.data import MIN_POINTS, sites_of
+from bayesgeo.data import MIN_POINTS, SMALL_SITES, sites_of
 from bayesgeo.geometry import distance_matrix, metric_of
 from bayesgeo.io import to_jsonable
 from bayesgeo.model import FitSpec, transform_values
@@ -32,7 +32,7 @@ from bayesgeo.validate import InputError, check_choice, format_rows
 
 __all__ = [
     "POOLINGS",
-    "MIN_POINTS_POLICIES",
+    "SMALL_SITE_POLICIES",
     "PARAMETRISATIONS",
     "CENTRED_MIN_POINTS",
     "HYPERPRIORS",
@@ -44,7 +44,7 @@ __all__ = [
 #: Pooling of the covariance parameters across sites.
 POOLINGS = ("hierarchical", "independent", "complete")
 #: What to do with a site of fewer than :data:`bayesgeo.data.MIN_POINTS` points.
-MIN_POINTS_POLICIES = ("error", "pool")
+SMALL_SITE_POLICIES = SMALL_SITES  # one vocabulary with read_points(small_sites=)
 #: Fewest points a site may have even when pooled.
 ABSOLUTE_MIN_POINTS = 3
 #: Parametrisation of the site effects of the hierarchical model (docs/hierarchical.md, "Sampling efficiency").
@@ -80,7 +80,7 @@ class SiteSpec:
     n : tuple of int
         Points per site.
     small_sites : tuple of str
-        Sites with fewer than :data:`bayesgeo.data.MIN_POINTS` points kept under ``min_points="pool"``.
+        Sites with fewer than :data:`bayesgeo.data.MIN_POINTS` points kept under ``small_sites="keep"``.
     covariance, nu, nugget, trend, covariates, transform, terms :
         As in :class:`bayesgeo.model.FitSpec` (shared by all sites).
     design_attrs : dict
@@ -242,13 +242,13 @@ def _split_sites(ds: xr.Dataset) -> list[tuple[str, xr.Dataset]]:
 def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None, nugget: bool = True,
                 trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None,
                 pooling: str = "hierarchical", priors: Priors | Mapping | None = None,
-                min_points: str = "error", parametrisation: str = "noncentred", approx: str = "auto",
+                small_sites: str = "error", parametrisation: str = "noncentred", approx: str = "auto",
                 neighbours: int | None = None) -> tuple[SiteSpec, list[SiteData]]:
     """Check the data and settings and compute the common standardisation and per-site inputs.
 
     Parameters
     ----------
-    ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, min_points :
+    ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, small_sites :
         As in :func:`bayesgeo.hierarchical.build_site_model`.
     parametrisation : {"noncentred", "centred", "auto"}
         Site effects of the hierarchical model: non-centred for every site (default), centred for
@@ -271,10 +271,10 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     ------
     InputError
         Unknown pooling or policy, a site with fewer than ``MIN_POINTS`` points (unless
-        ``min_points="pool"``), unknown covariance, bad trend, non-positive values under log.
+        ``small_sites="keep"``), unknown covariance, bad trend, non-positive values under log.
     """
     check_choice(pooling, POOLINGS, "--pooling")
-    check_choice(min_points, MIN_POINTS_POLICIES, "--min-points")
+    check_choice(small_sites, SMALL_SITE_POLICIES, "--small-sites")
     check_choice(parametrisation, PARAMETRISATIONS, "--parametrisation")
     for key in ("x", "y", "value"):
         if key not in ds.variables:
@@ -295,17 +295,17 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         n = part.sizes["obs"]
         rows = np.asarray(part["row"].values)
         if n < MIN_POINTS:
-            if min_points == "error" or n < ABSOLUTE_MIN_POINTS:
-                hint = ("; pass --min-points pool (min_points='pool') to keep it in the hierarchical model"
-                        if min_points == "error" and n >= ABSOLUTE_MIN_POINTS else "")
-                need = MIN_POINTS if min_points == "error" else ABSOLUTE_MIN_POINTS
+            if small_sites == "error" or n < ABSOLUTE_MIN_POINTS:
+                hint = ("; pass --small-sites keep (small_sites='keep') to keep it in the hierarchical model"
+                        if small_sites == "error" and n >= ABSOLUTE_MIN_POINTS else "")
+                need = MIN_POINTS if small_sites == "error" else ABSOLUTE_MIN_POINTS
                 raise InputError(f"{_source(ds)}: site {label!r} has only {n} points (rows {format_rows(rows)}); "
                                  f"a site needs at least {need}{hint}")
             small.append(label)
             borrow = ("it borrows strength from the other sites through the population distribution"
                       if pooling != "independent" else "under independent pooling its parameters rest mostly on the prior")
             notes.append(f"site {label!r} has only {n} points (fewer than {MIN_POINTS}), kept with "
-                         f"--min-points pool: {borrow}; treat its estimates with extra caution")
+                         f"--small-sites keep: {borrow}; treat its estimates with extra caution")
         design = design_matrix(part, trend, tuple(covariates))
         p = design.shape[1]
         if n < p + 1 or np.linalg.matrix_rank(design.values) < p:

@@ -48,7 +48,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "explore": {
         "bins": ("int", 15, None, "number of lag bins"),
-        "max_lag": ("float", None, None, "largest lag (distance units); default half the largest distance"),
+        "lag_limit": ("float", None, None, "largest lag (distance units); default half the largest distance"),
         "permutations": ("int", 99, None, "random permutations for envelopes (0 for none)"),
         "estimator": ("str", "classical", ("classical", "cressie-hawkins"), "semivariogram estimator"),
         "trend": ("int", None, None, "polynomial trend order 0-3 (default: the model's)"),
@@ -70,9 +70,9 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "neighbours": ("int", None, None, "neighbours of a nearest-neighbour likelihood (with approx = 'nn')"),
     },
     "model.priors": {
-        "range": ("float_pair", None, None, "[R0, A1]: P(practical range < R0) = A1"),
-        "sd": ("float_pair", None, None, "[S0, A2]: P(sd of the field > S0) = A2"),
-        "nugget": ("float_pair", None, None, "[T0, A3]: P(nugget sd > T0) = A3"),
+        "range_below": ("float_pair", None, None, "[R0, A1]: P(practical range < R0) = A1"),
+        "sd_above": ("float_pair", None, None, "[S0, A2]: P(sd of the field > S0) = A2"),
+        "nugget_above": ("float_pair", None, None, "[T0, A3]: P(nugget sd > T0) = A3"),
     },
     "sampler": {
         "name": ("str", "nutpie", ("nutpie", "pymc"), "NUTS implementation"),
@@ -118,6 +118,14 @@ _KIND_TEXT = {
 
 # --- locating keys in the text ------------------------------------------------------------------
 _HEADER = re.compile(r"^\s*\[\s*([^\]\[]+?)\s*\]\s*(#.*)?$")
+
+#: Keys of earlier versions and their new names: a study file using one gets a one-line error naming the new key.
+RENAMED: dict[tuple[str, str], str] = {
+    ("explore", "max_lag"): "lag_limit",
+    ("model.priors", "range"): "range_below",
+    ("model.priors", "sd"): "sd_above",
+    ("model.priors", "nugget"): "nugget_above",
+}
 
 
 def _key_pattern(key: str) -> re.Pattern:
@@ -331,7 +339,7 @@ _INT_KEYS = {
 }
 #: Real-valued keys -> range name in :data:`bayesgeo.validate.FLOAT_LIMITS` (every value finite).
 _FLOAT_KEYS = {
-    ("explore", "max_lag"): "positive", ("model", "nu"): "nu", ("sampler", "target_accept"): "probability",
+    ("explore", "lag_limit"): "positive", ("model", "nu"): "nu", ("sampler", "target_accept"): "probability",
     ("prediction", "cell"): "positive", ("prediction", "margin"): "nonnegative",
 }
 
@@ -390,8 +398,8 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
     if pooling == "single" and (isinstance(area, dict) or len(areas_of(area)) > 1):
         fail("prediction", "area", "a single-site study averages over one area; several areas (a list or a "
                                    "table {site = area}) need a several-site study")
-    if pooling != "single" and s["model.priors"]["nugget"] is not None:
-        fail("model.priors", "nugget", "the several-site model puts its prior on the nugget fraction of the sill "
+    if pooling != "single" and s["model.priors"]["nugget_above"] is not None:
+        fail("model.priors", "nugget_above", "the several-site model puts its prior on the nugget fraction of the sill "
                                        "(docs/hierarchical.md); drop the nugget prior")
     if pts is not None and area is not None:
         pass  # both allowed: point predictions plus an area average
@@ -428,6 +436,8 @@ def parse_study(text: str, *, path: str | Path = "study.toml") -> Study:
                     raise InputError(f"{_where(src, text, table, key)}: expected a table, got {value!r}")
                 walk(sub, value)
                 continue
+            if (table, key) in RENAMED:
+                raise InputError(f"{_where(src, text, table, key)}: renamed; write {RENAMED[table, key]} instead")
             if key not in known:
                 accepted = sorted([*known, *_subtables(table)])
                 what = "table" if isinstance(value, Mapping) else "key"

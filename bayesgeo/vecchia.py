@@ -75,7 +75,7 @@ __all__ = [
     "maximin_order",
     "nearest_previous",
     "nn_error_moments",
-    "nn_krige",
+    "nn_kriging_moments",
     "nn_loglik",
     "nn_loglik_and_grad",
 ]
@@ -516,7 +516,7 @@ def _cho_solve_lower(chol_lower: np.ndarray, b: np.ndarray) -> np.ndarray:
 # --- prediction ---------------------------------------------------------------------------------
 
 
-def nn_krige(xy_obs, values, design_obs, xy_new, design_new, *, covariance: Covariance | str, scale,
+def nn_kriging_moments(xy_obs, values, design_obs, xy_new, design_new, *, covariance: Covariance | str, scale,
              partial_sill, nugget, beta, metric: str = "euclidean", neighbours: int = 30,
              include_nugget: bool = True, jitter: float = JITTER):
     """Nearest-neighbour simple kriging per posterior draw: each target uses its m nearest data.

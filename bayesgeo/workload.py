@@ -171,20 +171,20 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
     return plan
 
 
-def _pair_share(xy: np.ndarray, max_lag: float | None, metric: str, rng: np.random.Generator) -> float:
-    """Share of the n² / 2 pairs within ``max_lag`` (default: half the largest distance), from a subsample."""
+def _pair_share(xy: np.ndarray, lag_limit: float | None, metric: str, rng: np.random.Generator) -> float:
+    """Share of the n² / 2 pairs within ``lag_limit`` (default: half the largest distance), from a subsample."""
     from bayesgeo.geometry import distance_matrix
 
-    if max_lag is None:
+    if lag_limit is None:
         return _PAIR_SHARE * 2.0
     k = min(len(xy), 1500)
     sub = xy[rng.choice(len(xy), size=k, replace=False)] if k < len(xy) else xy
     d = distance_matrix(sub, metric)
     iu = np.triu_indices(k, 1)
-    return float(np.mean(d[iu] <= max_lag)) if iu[0].size else 0.0
+    return float(np.mean(d[iu] <= lag_limit)) if iu[0].size else 0.0
 
 
-def explore_plan(ds, *, permutations: int = 99, max_lag: float | None = None, families: int = 4) -> dict:
+def explore_plan(ds, *, permutations: int = 99, lag_limit: float | None = None, families: int = 4) -> dict:
     """What exploring ``ds`` will cost, per site and in total.
 
     Returns
@@ -208,7 +208,7 @@ def explore_plan(ds, *, permutations: int = 99, max_lag: float | None = None, fa
         n = len(xy)
         sizes[label] = n
         visited += n * (n - 1) / 2.0
-        pairs += _pair_share(xy, max_lag, metric, rng) * n * (n - 1) / 2.0
+        pairs += _pair_share(xy, lag_limit, metric, rng) * n * (n - 1) / 2.0
     columns = pairs * (2 * (permutations + 1) + 4)
     central = 3 * visited * _SECONDS_PER_PAIR_PASS + columns / _PAIR_COLUMNS_PER_SECOND
     total, largest = int(sum(sizes.values())), int(max(sizes.values()))

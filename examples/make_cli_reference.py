@@ -28,7 +28,7 @@ Numeric options are checked where they enter, with the same ranges as in study f
 (`bayesgeo.validate.INT_LIMITS`): seeds 0 to 2^63 - 1, `--chains` 1 to 64, `--draws` 1 to 1,000,000,
 `--tune` 0 to 1,000,000, `--neighbours` 1 to 200, `--trend` 0 to 3, `--bins` 2 to 1,000,
 `--permutations` 0 to 100,000, `variogram-check --replicates` 1 to 100,000; real numbers must be finite, `--target-accept`
-and prior probabilities lie in (0, 1), prior values and `--cell`, `--max-lag` are positive. A saved fit
+and prior probabilities lie in (0, 1), prior values and `--cell`, `--lag-limit` are positive. A saved fit
 that is damaged or foreign (settings cut short, an unknown covariance family, a missing group,
 sizes that disagree, NaN or infinite draws) is refused with one line naming the file; a NaN or
 infinite result (a map band, an elpd) stops the command with exit 2 instead of reaching a table.
@@ -75,7 +75,7 @@ def cli_reference() -> str:
         out.append(f"\n## bayesgeo {name}\n\n{p.description}\n")
         out.append("| argument or option | meaning |\n| --- | --- |")
         for action in p._actions:
-            if isinstance(action, argparse._HelpAction):
+            if isinstance(action, argparse._HelpAction) or action.help == argparse.SUPPRESS:
                 continue
             usage, helptext = _option_text(action)
             out.append(f"| {usage} | {helptext} |")

@@ -519,14 +519,14 @@ def _cases() -> list[Case]:
     add(Case("usage-fit-bad-family", "usage", "fit --covariance with an unknown family", ("fit", "data.csv", "--covariance", "wavelet", "--out", "fo"), (DATA,), places=(opt("--covariance"),), usage_ok=True))
     add(Case("usage-explore-bad-coords", "usage", "--coords with an unknown choice", (*EXPLORE, "--coords", "utm"), (DATA,), places=(opt("--coords"),), usage_ok=True))
     add(Case("usage-explore-bad-estimator", "usage", "--estimator with an unknown choice", (*EXPLORE, "--estimator", "median"), (DATA,), places=(opt("--estimator"),), usage_ok=True))
-    add(Case("usage-prior-one-number", "usage", "fit --prior-range with one number of two", (*FIT, "--prior-range", "30"), (DATA,), places=(opt("--prior-range"),), usage_ok=True))
+    add(Case("usage-prior-one-number", "usage", "fit --range-below with one number of two", (*FIT, "--range-below", "30"), (DATA,), places=(opt("--range-below"),), usage_ok=True))
     add(Case("usage-compare-nothing", "usage", "compare without fit folders", ("compare",), places=(r"DIR|dirs",), usage_ok=True))
 
     # explore options
     ex_opts = [
         ("bins", [("zero", "0"), ("negative", "-3"), ("huge", HUGE), ("text", "abc"), ("empty", "")]),
         ("permutations", [("negative", "-1"), ("huge", HUGE), ("text", "ten")]),
-        ("max-lag", [("zero", "0"), ("negative", "-5"), ("nan", "nan"), ("inf", "inf"), ("text", "far"), ("empty", "")]),
+        ("lag-limit", [("zero", "0"), ("negative", "-5"), ("nan", "nan"), ("inf", "inf"), ("text", "far"), ("empty", "")]),
         ("seed", [("negative", "-1"), ("2pow70", SEED70), ("text", "abc")]),
         ("trend", [("negative", "-1"), ("four", "4"), ("huge", HUGE)]),
     ]
@@ -570,9 +570,11 @@ def _cases() -> list[Case]:
     priors = [("range", "zero-r0", ("0", "0.05")), ("range", "negative-r0", ("-1", "0.05")), ("range", "zero-prob", ("30", "0")),
               ("range", "one-prob", ("30", "1")), ("range", "nan-prob", ("30", "nan")), ("range", "inf-r0", ("inf", "0.05")),
               ("sd", "zero-s0", ("0", "0.05")), ("sd", "prob-above-one", ("2", "1.5")), ("nugget", "negative-t0", ("-1", "0.05"))]
+    prior_option = {"range": "--range-below", "sd": "--sd-above", "nugget": "--nugget-above"}
     for which, tag, vals in priors:
-        add(Case(f"fit-prior-{which}-{tag}", "option", f"fit --prior-{which} {' '.join(vals)}", (*FIT, f"--prior-{which}", *vals), (DATA,),
-                 places=(opt(f"--prior-{which}"),), usage_ok=True))
+        o = prior_option[which]
+        add(Case(f"fit-prior-{which}-{tag}", "option", f"fit {o} {' '.join(vals)}", (*FIT, o, *vals), (DATA,),
+                 places=(opt(o) + r": the (value|probability)",), usage_ok=True))
     add(Case("fit-data-missing", "option", "fit on a DATA file that does not exist", ("fit", "nothere.csv", *FIT[2:]), places=(r"nothere\.csv",)))
     add(Case("fit-data-directory", "option", "fit on a folder given as DATA", ("fit", "adir", *FIT[2:]), (mkdir("adir"),), places=(r"adir",)))
     add(Case("fit-out-is-data", "output", "fit --out naming the input CSV", ("fit", "data.csv", "--covariance", "exponential", "--out", "data.csv"), (DATA,), places=(r"data\.csv",)))
@@ -584,7 +586,7 @@ def _cases() -> list[Case]:
     add(Case("check-dir-is-file", "option", "check on a file instead of a fit folder", ("check", "data.csv"), (DATA,), places=(r"data\.csv",)))
     add(Case("check-dir-empty", "option", "check on an empty folder", ("check", "empty"), (mkdir("empty"),), places=(r"empty",)))
     for tag, v in [("zero", "0"), ("negative", "-1"), ("huge", HUGE), ("text", "abc")]:
-        add(Case(f"check-max-lag-{tag}", "option", f"check --max-lag {v}", (*CHECK, "--max-lag", v), (FIT_COPY,), places=(opt("--max-lag"),), usage_ok=True, needs_fit=True))
+        add(Case(f"check-lag-limit-{tag}", "option", f"check --lag-limit {v}", (*CHECK, "--lag-limit", v), (FIT_COPY,), places=(opt("--lag-limit"),), usage_ok=True, needs_fit=True))
     add(Case("check-var-unknown", "option", "check --var naming no posterior variable", (*CHECK, "--var", "nope"), (FIT_COPY,), places=(col("nope"),), needs_fit=True))
     add(Case("check-unconverged", "damaged", "check on a posterior whose chains disagree (R-hat >> 1.01)", CHECK, (FIT_COPY, SPLIT_CHAINS), status=3,
              writes=("fit/diagnostics", f"fit/{MARKER}", "fit/.diagnostics.*"), needs_fit=True, source=UNCONVERGED))
@@ -630,7 +632,7 @@ def _cases() -> list[Case]:
     vg_opts = [
         ("replicates", [("zero", "0"), ("negative", "-1"), ("huge", HUGE), ("text", "abc")]),
         ("bins", [("zero", "0"), ("negative", "-1"), ("huge", HUGE)]),
-        ("max-lag", [("zero", "0"), ("negative", "-1"), ("nan", "nan"), ("inf", "inf")]),
+        ("lag-limit", [("zero", "0"), ("negative", "-1"), ("nan", "nan"), ("inf", "inf")]),
         ("seed", [("negative", "-1"), ("2pow70", SEED70)]),
     ]
     for name, vals in vg_opts:

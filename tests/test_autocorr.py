@@ -9,7 +9,7 @@ import xarray as xr
 from bayesgeo.autocorr import (
     acf_array,
     autocorrelation,
-    default_max_lag,
+    default_lag_limit,
     iat_array,
     integrated_autocorrelation_time,
     stack_parameters,
@@ -39,7 +39,7 @@ def test_acf_of_ar1_is_phi_to_the_k(ar09):
     Tolerance from Bartlett's formula (from memory): sd(r_k) <= sqrt((1 + phi^2) / ((1 - phi^2) n)),
     about 0.022 for the 4-chain average at phi = 0.9, n = 5,000 per chain; we allow 0.08.
     """
-    rho = acf_array(ar09, max_lag=30)
+    rho = acf_array(ar09, lag_limit=30)
     assert rho.shape == (4, 31)
     assert np.all(rho[:, 0] == 1.0)
     k = np.arange(31)
@@ -107,13 +107,13 @@ def test_stuck_chain_gives_nan():
     assert np.isnan(per_chain[1]) and np.isfinite(per_chain[[0, 2]]).all()
 
 
-def test_default_max_lag_covers_the_decay(ar09):
-    """Default lag axis reaches past the decay: phi^K < 0.01 at K = default_max_lag (AR(1) ACF phi^k)."""
-    k = default_max_lag(ar09)
+def test_default_lag_limit_covers_the_decay(ar09):
+    """Default lag axis reaches past the decay: phi^K < 0.01 at K = default_lag_limit (AR(1) ACF phi^k)."""
+    k = default_lag_limit(ar09)
     assert 0.9**k < 0.01
     assert k < ar09.shape[1] - 1
     iid = np.random.default_rng(1).normal(size=(2, 100))
-    assert default_max_lag(iid) == 20
+    assert default_lag_limit(iid) == 20
 
 
 def _tree(rng, chains=4, draws=300):
@@ -130,7 +130,7 @@ def test_tree_input_flattens_vector_elements():
     assert list(draws["parameter"].values) == ["nugget", "beta[intercept]", "beta[x]"]
     np.testing.assert_array_equal(draws.sel(parameter="beta[x]").values,
                                   tree["posterior"]["beta"].sel(term="x").values)
-    acf = autocorrelation(tree, max_lag=10)
+    acf = autocorrelation(tree, lag_limit=10)
     assert acf.dims == ("parameter", "chain", "lag") and acf.sizes["lag"] == 11
     tau = integrated_autocorrelation_time(tree, var_names=["beta"])
     assert list(tau["parameter"].values) == ["beta[intercept]", "beta[x]"]
@@ -140,7 +140,7 @@ def test_tree_input_flattens_vector_elements():
 def test_dataarray_input_keeps_other_dims(ar09):
     """DataArray input: extra dims survive; per_chain values equal the NumPy kernel."""
     da = xr.DataArray(np.stack([ar09, ar09[::-1]]), dims=("site", "chain", "draw"), coords={"site": ["A", "B"]})
-    acf = autocorrelation(da, max_lag=5)
+    acf = autocorrelation(da, lag_limit=5)
     assert acf.dims == ("site", "chain", "lag")
     tau = integrated_autocorrelation_time(da, per_chain=True, method="sokal")
     assert tau.dims == ("site", "chain")
@@ -150,8 +150,8 @@ def test_dataarray_input_keeps_other_dims(ar09):
 def test_bad_inputs_raise_input_error():
     """Bad options name the option and the accepted values (common practice, bayesgeo.validate)."""
     tree = _tree(np.random.default_rng(0))
-    with pytest.raises(InputError, match="max_lag"):
-        autocorrelation(tree, max_lag=300)
+    with pytest.raises(InputError, match="lag_limit"):
+        autocorrelation(tree, lag_limit=300)
     with pytest.raises(InputError, match="not one of geyer, sokal"):
         integrated_autocorrelation_time(tree, method="magic")
     with pytest.raises(InputError, match="'range' not found"):

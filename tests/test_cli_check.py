@@ -108,7 +108,7 @@ def test_figures_written_and_earlier_check_kept(tmp_path, capsys):
     --overwrite, which replaces only what bayesgeo wrote: a figure the user put there stops it
     (output rules, docs/outputs.md)."""
     fit = write_fit(tmp_path / "fit", draws=200)
-    code, out = run_json(capsys, ["check", str(fit), "--json", "--max-lag", "30"])
+    code, out = run_json(capsys, ["check", str(fit), "--json", "--lag-limit", "30"])
     assert code == 0 and out["figure_error"] is None
     names = sorted(p.name for p in (fit / "diagnostics").iterdir())
     assert names == ["acf.png", "diagnostics.json", "pair.png", "rank.png", "trace.png"]
@@ -222,12 +222,12 @@ def test_independent_fit_has_no_population_block(tmp_path, capsys):
     assert set(res["sites"]) == {"s0", "s1", "s2"}
 
 
-def test_max_lag_bounded(tmp_path, capsys):
-    """--max-lag of the autocorrelation figure is an integer from 1 to 1,000,000: a huge value is
+def test_lag_limit_bounded(tmp_path, capsys):
+    """--lag-limit of the autocorrelation figure is an integer from 1 to 1,000,000: a huge value is
     refused where it enters with one line (exit 2), the folder untouched."""
     from _cli_helpers import assert_refused
 
     (tmp_path / "fit").mkdir()
-    assert_refused(capsys, ["check", tmp_path / "fit", "--max-lag", "99999999999999999999"], "check",
-                   r"argument --max-lag: expected an integer from 1 to 1000000", inputs=[tmp_path / "fit"],
+    assert_refused(capsys, ["check", tmp_path / "fit", "--lag-limit", "99999999999999999999"], "check",
+                   r"argument --lag-limit: expected an integer from 1 to 1000000", inputs=[tmp_path / "fit"],
                    absent=[tmp_path / "fit" / "diagnostics"])

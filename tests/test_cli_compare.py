@@ -258,7 +258,7 @@ def test_compare_single_site_fit_beside_site_fit(site_fits, capsys):
 @pytest.mark.parametrize("option, value, pattern", [
     ("--replicates", "99999999999999999999", r"argument --replicates: expected an integer from 1 to 100000"),
     ("--bins", "1", r"argument --bins: expected an integer from 2 to 1000, got 1"),
-    ("--max-lag", "nan", r"argument --max-lag: expected a finite number > 0, got 'nan'"),
+    ("--lag-limit", "nan", r"argument --lag-limit: expected a finite number > 0, got 'nan'"),
     ("--seed", "-3", r"argument --seed: expected an integer from 0 to"),
 ])
 def test_variogram_check_options_bounded(tmp_path, capsys, option, value, pattern):
@@ -318,14 +318,14 @@ def test_non_finite_replicate_band_stops_variogram_check(fits, tmp_path, capsys,
 
 
 def test_variogram_check_without_pairs_refused(fits, tmp_path, capsys):
-    """A --max-lag below the smallest distance between points leaves every lag bin empty: refused with
-    exit 2 and one line naming --max-lag, instead of a table of NaN with exit 0; nothing written."""
+    """A --lag-limit below the smallest distance between points leaves every lag bin empty: refused with
+    exit 2 and one line naming --lag-limit, instead of a table of NaN with exit 0; nothing written."""
     import shutil
 
     from _cli_helpers import assert_refused
 
     folder = tmp_path / "fit"
     shutil.copytree(fits["exp"], folder)
-    assert_refused(capsys, ["variogram-check", folder, "--max-lag", "1e-9", "--replicates", "5"], "variogram-check",
-                   r"--max-lag: no pair of points lies within 1e-09 .*use a larger --max-lag", inputs=[folder],
+    assert_refused(capsys, ["variogram-check", folder, "--lag-limit", "1e-9", "--replicates", "5"], "variogram-check",
+                   r"--lag-limit: no pair of points lies within 1e-09 .*use a larger --lag-limit", inputs=[folder],
                    absent=[folder / "variogram_check.png", folder / "variogram_check.csv"])

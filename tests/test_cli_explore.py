@@ -215,8 +215,8 @@ def test_cli_log_transform_equals_api_on_log_values(tmp_path, capsys):
 @pytest.mark.parametrize("option, value, pattern", [
     ("--bins", "0", r"argument --bins: expected an integer from 2 to 1000, got 0"),
     ("--bins", "99999999999999999999", r"argument --bins: expected an integer from 2 to 1000"),
-    ("--max-lag", "-5", r"argument --max-lag: expected a finite number > 0, got '-5'"),
-    ("--max-lag", "inf", r"argument --max-lag: expected a finite number > 0, got 'inf'"),
+    ("--lag-limit", "-5", r"argument --lag-limit: expected a finite number > 0, got '-5'"),
+    ("--lag-limit", "inf", r"argument --lag-limit: expected a finite number > 0, got 'inf'"),
     ("--permutations", "-1", r"argument --permutations: expected an integer from 0 to 100000, got -1"),
     ("--seed", str(2**70), r"argument --seed: expected an integer from 0 to 9223372036854775807"),
     ("--trend", "5", r"argument --trend: expected an integer from 0 to 3, got 5"),

@@ -34,7 +34,7 @@ def cli_run(tmp_path_factory):
     out = tmp / "fit-out"
     argv = [str(data), "--value", "arsenic_mg_kg", "--site", "parcel", "--covariance", "matern32",
             "--transform", "log", "--draws", "150", "--tune", "150", "--chains", "2", "--seed", "4",
-            "--prior-range", "30", "0.05", "--out", str(out), "--json"]
+            "--range-below", "30", "0.05", "--out", str(out), "--json"]
     return data, out, argv
 
 
@@ -87,14 +87,14 @@ def test_log_transform_refuses_zeros(tmp_path, capsys):
 
 def test_several_sites_go_to_the_several_site_model(tmp_path, capsys):
     """Data with several sites go to the several-site model (docs/hierarchical.md); options it does
-    not take are refused there with exit 2 before any sampling: --prior-nugget, and bad values of the
+    not take are refused there with exit 2 before any sampling: --nugget-above, and bad values of the
     per-site nearest-neighbour likelihood (--approx nn --neighbours 0)."""
     data = _csv(tmp_path / "s.csv", n=40, site=["p1"] * 20 + ["p2"] * 20)
     base = ["fit", str(data), "--value", "arsenic_mg_kg", "--site", "parcel", "--covariance", "matern32"]
     code = main([*base, "--approx", "nn", "--neighbours", "0", "--out", str(tmp_path / "o")])
     assert code == EXIT_INPUT and "--neighbours" in capsys.readouterr().err
-    code = main([*base, "--prior-nugget", "0.5", "0.05", "--out", str(tmp_path / "o2")])
-    assert code == EXIT_INPUT and "--prior-nugget" in capsys.readouterr().err
+    code = main([*base, "--nugget-above", "0.5", "0.05", "--out", str(tmp_path / "o2")])
+    assert code == EXIT_INPUT and "--nugget-above" in capsys.readouterr().err
     assert not (tmp_path / "o").exists() and not (tmp_path / "o2").exists()
 
 
@@ -102,8 +102,8 @@ def test_bad_prior_is_refused(tmp_path, capsys):
     """A prior probability outside (0, 1) is refused with exit 2, naming the option."""
     data = _csv(tmp_path / "p.csv")
     code = main(["fit", str(data), "--value", "arsenic_mg_kg", "--covariance", "matern32",
-                 "--prior-sd", "1.0", "1.5", "--out", str(tmp_path / "o")])
-    assert code == EXIT_INPUT and "--prior-sd" in capsys.readouterr().err
+                 "--sd-above", "1.0", "1.5", "--out", str(tmp_path / "o")])
+    assert code == EXIT_INPUT and "--sd-above" in capsys.readouterr().err
 
 
 @pytest.mark.slow
@@ -161,11 +161,11 @@ def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
 
 
 @pytest.mark.parametrize("option, values, pattern", [
-    ("--prior-range", ("100", "1"), r"argument --prior-range: the probability \(second number\): expected a number in \(0, 1\), got '1'"),
-    ("--prior-range", ("-5", "0.05"), r"argument --prior-range: the value \(first number\): expected a finite number > 0, got '-5'"),
-    ("--prior-sd", ("inf", "0.05"), r"argument --prior-sd: the value \(first number\): expected a finite number > 0, got 'inf'"),
-    ("--prior-nugget", ("1", "nan"), r"argument --prior-nugget: the probability \(second number\)"),
-    ("--prior-sd", ("x", "0.05"), r"argument --prior-sd: the value \(first number\): expected a finite number > 0, got 'x'"),
+    ("--range-below", ("100", "1"), r"argument --range-below: the probability \(second number\): expected a number in \(0, 1\), got '1'"),
+    ("--range-below", ("-5", "0.05"), r"argument --range-below: the value \(first number\): expected a finite number > 0, got '-5'"),
+    ("--sd-above", ("inf", "0.05"), r"argument --sd-above: the value \(first number\): expected a finite number > 0, got 'inf'"),
+    ("--nugget-above", ("1", "nan"), r"argument --nugget-above: the probability \(second number\)"),
+    ("--sd-above", ("x", "0.05"), r"argument --sd-above: the value \(first number\): expected a finite number > 0, got 'x'"),
 ])
 def test_prior_pairs_checked(tmp_path, capsys, option, values, pattern):
     """PC-prior statements P(value < or > V) = A need V > 0 finite and A in (0, 1) (Fuglstad et al. 2019,
@@ -175,6 +175,23 @@ def test_prior_pairs_checked(tmp_path, capsys, option, values, pattern):
     data = _csv(tmp_path / "d.csv")
     argv = ["fit", data, "--covariance", "matern32", "--value", "arsenic_mg_kg", option, *values, "--out", tmp_path / "o"]
     assert_refused(capsys, argv, "fit", pattern, inputs=[data], absent=[tmp_path / "o"])
+
+
+@pytest.mark.parametrize("command, old, new, extra", [
+    ("fit", "--prior-range", "--range-below", ("30", "0.05")),
+    ("fit", "--prior-sd", "--sd-above", ("1", "0.05")),
+    ("fit", "--prior-nugget", "--nugget-above", ("1", "0.05")),
+    ("fit", "--min-points", "--small-sites", ("pool",)),
+    ("explore", "--max-lag", "--lag-limit", ("100",)),
+])
+def test_renamed_option_names_the_new_one(tmp_path, capsys, command, old, new, extra):
+    """An option of an earlier version stops with a usage error (exit 2, one line after the usage)
+    naming the new option, before anything is read or written (common practice for renamed options)."""
+    from _cli_helpers import assert_refused
+
+    data = _csv(tmp_path / "d.csv")
+    argv = [command, data, "--value", "arsenic_mg_kg", old, *extra, "--out", tmp_path / "o"]
+    assert_refused(capsys, argv, command, rf"{old} was renamed {new}", inputs=[data], absent=[tmp_path / "o"])
 
 
 def test_large_input_announced_before_sampling(tmp_path, capsys, monkeypatch):

@@ -161,11 +161,11 @@ def test_only_site_keeps_one_site(write_csv, grid_rows):
 
 
 def test_small_sites_kept_only_on_request(write_csv, grid_rows):
-    """A site under 10 points is an error naming --min-points pool; kept with small_sites='keep'
+    """A site under 10 points is an error naming --small-sites keep; kept with small_sites='keep'
     (it still needs 3 points, and some site must have 10)."""
     rows = [grid_rows[0] + ["site"]] + [r + (["A"] if i < 20 else ["B"]) for i, r in enumerate(grid_rows[1:])]
     path = write_csv(rows)
-    with pytest.raises(InputError, match=r"only 5 points at site 'B' .*--min-points pool"):
+    with pytest.raises(InputError, match=r"only 5 points at site 'B' .*--small-sites keep"):
         read_points(path, value="conc", site="site")
     ds = read_points(path, value="conc", site="site", small_sites="keep")
     assert int((ds["site"].values == "B").sum()) == 5

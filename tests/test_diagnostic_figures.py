@@ -29,12 +29,12 @@ def test_figures_written_and_not_overwritten(tmp_path):
     """ACF, trace, rank and pair PNGs are written; a second call refuses to overwrite them
     (bayesgeo rule: outputs are never silently overwritten)."""
     tree = small_tree()
-    paths = write_diagnostic_figures(tree, tmp_path, max_lag=25)
+    paths = write_diagnostic_figures(tree, tmp_path, lag_limit=25)
     assert [p.name for p in paths] == ["acf.png", "trace.png", "rank.png", "pair.png"]
     for p in paths:
         assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     with pytest.raises(InputError, match="already exists"):
-        write_diagnostic_figures(tree, tmp_path, max_lag=25)
+        write_diagnostic_figures(tree, tmp_path, lag_limit=25)
 
 
 def test_default_variables_skip_a_latent_field():

@@ -64,7 +64,7 @@ def test_linear_trend_transect_gives_a2h2_over_2():
     lag each, strictly inside the bin."""
     a, n = 0.7, 30
     x = np.arange(n, dtype=float)
-    sv = semivariogram(_ds(x, np.zeros(n), a * x), bins=10, max_lag=10.5)
+    sv = semivariogram(_ds(x, np.zeros(n), a * x), bins=10, lag_limit=10.5)
     h = np.arange(1, 11, dtype=float)
     np.testing.assert_allclose(sv["lag"].values, h, rtol=1e-12)
     np.testing.assert_allclose(sv["semivariance"].values, a**2 * h**2 / 2, rtol=1e-10)
@@ -77,7 +77,7 @@ def test_all_pairs_in_one_bin_equals_sample_variance():
     identity)."""
     ds = _random(n=45, seed=1)
     far = pdist(np.column_stack([ds["x"].values, ds["y"].values])).max()
-    sv = semivariogram(ds, bins=1, max_lag=far)
+    sv = semivariogram(ds, bins=1, lag_limit=far)
     assert int(sv["pairs"][0]) == 45 * 44 // 2
     assert float(sv["semivariance"][0]) == pytest.approx(np.var(ds["value"].values, ddof=1), rel=1e-12)
 
@@ -87,10 +87,10 @@ def test_classical_and_cressie_hawkins_equal_brute_force():
     2 gamma = [mean |dz|^(1/2)]^4 / (0.457 + 0.494 / N) (constants from memory, 0.457 checked as
     (E|Z|^(1/2))^4 for Z ~ N(0, 1)); both computed by brute force over scipy pdist pairs."""
     ds = _random(n=70, seed=2)
-    edges = lag_bins(ds, bins=6, max_lag=55.0)
+    edges = lag_bins(ds, bins=6, lag_limit=55.0)
     d, adz, k, _, _ = _brute_pairs(ds, edges)
-    classical = semivariogram(ds, bins=6, max_lag=55.0)
-    robust = semivariogram(ds, bins=6, max_lag=55.0, estimator="cressie-hawkins")
+    classical = semivariogram(ds, bins=6, lag_limit=55.0)
+    robust = semivariogram(ds, bins=6, lag_limit=55.0, estimator="cressie-hawkins")
     for b in range(6):
         sel = k == b
         nb = sel.sum()
@@ -115,9 +115,9 @@ def test_correlogram_equals_numpy_corrcoef_of_symmetric_pairs():
     """Each bin is numpy.corrcoef of head and tail values with every pair in both orders (reference:
     numpy); the lag-0 bin holds n self-pairs with correlation exactly 1."""
     ds = _field(80, seed=3, practical_range=0.4)
-    cg = correlogram(ds, bins=5, max_lag=0.5)
+    cg = correlogram(ds, bins=5, lag_limit=0.5)
     assert float(cg["correlation"][0]) == 1.0 and int(cg["pairs"][0]) == 80 and float(cg["lag"][0]) == 0.0
-    edges = lag_bins(ds, bins=5, max_lag=0.5)
+    edges = lag_bins(ds, bins=5, lag_limit=0.5)
     _, _, k, i, j = _brute_pairs(ds, edges)
     z = ds["value"].values
     for b in range(5):
@@ -136,8 +136,8 @@ def test_correlogram_unaffected_by_large_offset():
     ds = _field(60, seed=4, practical_range=0.4)
     shifted = ds.copy()
     shifted["value"] = ds["value"] + 1e6
-    a = correlogram(ds, bins=4, max_lag=0.5)["correlation"].values
-    b = correlogram(shifted, bins=4, max_lag=0.5)["correlation"].values
+    a = correlogram(ds, bins=4, lag_limit=0.5)["correlation"].values
+    b = correlogram(shifted, bins=4, lag_limit=0.5)["correlation"].values
     np.testing.assert_allclose(a, b, atol=1e-8)
 
 
@@ -147,7 +147,7 @@ def test_plateau_approaches_sample_variance_beyond_range():
     range 0.05 in a unit square: bins beyond 0.15 within 10% of the sample variance, and short lags
     well below it."""
     ds = _field(2000, seed=5, practical_range=0.05)
-    sv = semivariogram(ds, bins=20, max_lag=0.6)
+    sv = semivariogram(ds, bins=20, lag_limit=0.6)
     s2 = np.var(ds["value"].values, ddof=1)
     far = sv["semivariance"].where(sv["lag"] > 0.15, drop=True).values
     np.testing.assert_allclose(far, s2, rtol=0.10)
@@ -177,8 +177,8 @@ def test_envelope_and_p_value_match_brute_force_definition():
     value, Davison and Hinkley 1997, sec. 4.3). Permutation k is z[rng.permutation(n)] for a
     numpy Generator seeded with `seed`, as documented; statistics recomputed with scipy pdist."""
     ds = _random(n=40, seed=7)
-    sv = semivariogram(ds, bins=4, max_lag=50.0, permutations=29, seed=3)
-    edges = lag_bins(ds, bins=4, max_lag=50.0)
+    sv = semivariogram(ds, bins=4, lag_limit=50.0, permutations=29, seed=3)
+    edges = lag_bins(ds, bins=4, lag_limit=50.0)
     _, _, k, i, j = _brute_pairs(ds, edges)
     z = ds["value"].values - ds["value"].values.mean()
     rng = np.random.default_rng(3)
@@ -233,7 +233,7 @@ def test_directional_trend_z_equals_x_on_grid():
     tolerance holds only the exact axis pairs on this grid (tan 5 deg < 1/11)."""
     gx, gy = np.meshgrid(np.arange(12.0), np.arange(12.0))
     ds = _ds(gx.ravel(), gy.ravel(), gx.ravel())
-    dv = directional_semivariograms(ds, azimuths=(0, 90), tolerance=5.0, bins=6, max_lag=6.3)
+    dv = directional_semivariograms(ds, azimuths=(0, 90), tolerance=5.0, bins=6, lag_limit=6.3)
     h = np.arange(1, 7, dtype=float)
     ew = dv.sel(azimuth=90.0)
     ns = dv.sel(azimuth=0.0)
@@ -242,7 +242,7 @@ def test_directional_trend_z_equals_x_on_grid():
     np.testing.assert_allclose(ns["semivariance"].values, 0.0, atol=1e-12)
     np.testing.assert_array_equal(ew["pairs"].values, 12 * (12 - h.astype(int)))
     # the default 22.5 degree sector: north-south stays far below east-west
-    wide = directional_semivariograms(ds, bins=6, max_lag=6.3)
+    wide = directional_semivariograms(ds, bins=6, lag_limit=6.3)
     assert list(wide["azimuth"].values) == [0.0, 45.0, 90.0, 135.0]
     assert np.all(wide["semivariance"].sel(azimuth=0.0) < 0.2 * wide["semivariance"].sel(azimuth=90.0))
 
@@ -339,21 +339,21 @@ def test_no_warning_when_bins_are_full():
     ds = _random(n=120, seed=15)
     with warnings.catch_warnings():
         warnings.simplefilter("error", FewPairsWarning)
-        sv = semivariogram(ds, bins=4, max_lag=40.0)
+        sv = semivariogram(ds, bins=4, lag_limit=40.0)
     assert sv.attrs["few_pairs_bins"] == []
 
 
 def test_layout_and_attributes():
     """The documented layout: dimension bin, coordinates lag/bin_lower/bin_upper, units and settings."""
     ds = _random(n=60, seed=16)
-    sv = semivariogram(ds, bins=5, max_lag=50.0, permutations=4, seed=2)
+    sv = semivariogram(ds, bins=5, lag_limit=50.0, permutations=4, seed=2)
     assert set(sv.dims) == {"bin"}
     assert {"lag", "bin_lower", "bin_upper"} <= set(sv.coords)
     assert {"semivariance", "pairs", "envelope_low", "envelope_high", "p_value"} <= set(sv.data_vars)
     np.testing.assert_allclose(sv["bin_lower"].values, np.arange(5) * 10.0)
     np.testing.assert_allclose(sv["bin_upper"].values, np.arange(1, 6) * 10.0)
     a = sv.attrs
-    assert (a["estimator"], a["bins"], a["max_lag"], a["distance_units"], a["value_units"]) == (
+    assert (a["estimator"], a["bins"], a["lag_limit"], a["distance_units"], a["value_units"]) == (
         "classical", 5, 50.0, "m", "mg/kg")
     assert a["azimuth"] == "omnidirectional" and "caution" in a
     assert sv["semivariance"].attrs["units"] == "(mg/kg)^2"
@@ -364,7 +364,7 @@ def test_layout_and_attributes():
 def test_empty_bins_are_nan_with_centre_lag():
     """An empty bin reports NaN and its bin centre as lag."""
     x = np.array([0.0, 1.0, 2.0, 10.0, 11.0, 12.0, 20.0, 21.0, 22.0, 23.0])
-    sv = semivariogram(_ds(x, np.zeros(10), np.arange(10.0)), bins=8, max_lag=8.0)
+    sv = semivariogram(_ds(x, np.zeros(10), np.arange(10.0)), bins=8, lag_limit=8.0)
     empty = sv["pairs"].values == 0
     assert empty.any()
     assert np.all(np.isnan(sv["semivariance"].values[empty]))
@@ -376,12 +376,12 @@ def test_empty_bins_are_nan_with_centre_lag():
     [
         ({"estimator": "median"}, r"--estimator: 'median' is not one of classical, cressie-hawkins"),
         ({"bins": 0}, r"--bins: expected an integer >= 1"),
-        ({"max_lag": -1.0}, r"--max-lag: expected a positive number"),
+        ({"lag_limit": -1.0}, r"--lag-limit: expected a positive number"),
         ({"permutations": -5}, r"--permutations: expected an integer >= 0"),
         ({"seed": "abc"}, r"--seed: expected an integer from 0 to 9223372036854775807"),
         ({"seed": 2**70}, r"--seed: expected an integer from 0 to 9223372036854775807"),
-        ({"azimuth": 30, "tolerance": 120}, r"--tolerance: 120 degrees is over 90"),
-        ({"variable": "lead"}, r"--variable: 'lead' is not a variable"),
+        ({"azimuth": 30, "tolerance": 120}, r"tolerance: 120 degrees is over 90"),
+        ({"variable": "lead"}, r"variable: 'lead' is not a variable"),
     ],
 )
 def test_bad_options(kwargs, match):
@@ -453,7 +453,7 @@ def test_directional_geometric_anisotropy():
     z = simulate_field(xy * np.array([1.0, 4.0]), covariance="exponential", practical_range=1.2,
                        partial_sill=1.0, nugget=0.0, rng=rng)
     ds = _ds(xy[:, 0], xy[:, 1], z)
-    dv = directional_semivariograms(ds, azimuths=(0, 90), bins=5, max_lag=0.3)
+    dv = directional_semivariograms(ds, azimuths=(0, 90), bins=5, lag_limit=0.3)
     ns = dv["semivariance"].sel(azimuth=0.0).values
     ew = dv["semivariance"].sel(azimuth=90.0).values
     # theory at lags 0.03 and 0.09: ratio about 3.6 and 2.9; one realisation scatters, so ask for 1.5

@@ -75,19 +75,19 @@ def _simple_kriging_mean(data, new, params):
 
 def test_small_site_is_an_error_naming_site_and_rows():
     """A site with fewer than MIN_POINTS = 10 points: InputError naming the site and its rows (the
-    input-check rule of this project); with min_points="pool" it is kept with a warning."""
+    input-check rule of this project); with small_sites="keep" it is kept with a warning."""
     from bayesgeo.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([20, 6], seed=3)
-    with pytest.raises(InputError, match=r"site 'P2' has only 6 points \(rows 22, 23, 24, 25, 26, 27\).*--min-points pool"):
+    with pytest.raises(InputError, match=r"site 'P2' has only 6 points \(rows 22, 23, 24, 25, 26, 27\).*--small-sites keep"):
         build_site_model(ds)
     with pytest.warns(UserWarning, match="site 'P2' has only 6 points.*borrows strength"):
-        spec, data = site_inputs(ds, min_points="pool")
+        spec, data = site_inputs(ds, small_sites="keep")
     assert spec.small_sites == ("P2",) and spec.n == (20, 6)
     assert any("P2" in w for w in spec.warnings)
     tiny, _ = _sites([20, 2], seed=3)
     with pytest.raises(InputError, match="site 'P2' has only 2 points.*at least 3"):
-        site_inputs(tiny, min_points="pool")
+        site_inputs(tiny, small_sites="keep")
     with pytest.raises(InputError, match="--pooling"):
         site_inputs(ds, pooling="partial")
 

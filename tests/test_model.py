@@ -215,7 +215,7 @@ def test_several_sites_are_refused_one_site_is_accepted():
     ({"covariance": "matern"}, "needs its smoothness"),
     ({"trend": 5}, "--trend"),
     ({"transform": "sqrt"}, "--transform"),
-    ({"priors": {"range": (10.0, 2.0)}}, "--prior-range"),
+    ({"priors": {"range": (10.0, 2.0)}}, r"priors\[.range.\]"),
 ])
 def test_bad_settings_are_refused(kw, match):
     """Bad settings raise InputError naming the option (common practice)."""

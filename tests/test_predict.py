@@ -10,7 +10,7 @@ import xarray as xr
 from scipy import integrate, optimize, stats
 
 from bayesgeo import predict as P
-from bayesgeo._kriging import block_moments, conditional_simulations, draw_moments, krige, make_basis
+from bayesgeo._kriging import block_moments, conditional_simulations, draw_moments, kriging_moments, make_basis
 from bayesgeo.covariance import get_covariance
 from bayesgeo.demo import simulate_field
 from bayesgeo.targets import grid_targets
@@ -30,11 +30,11 @@ def test_no_nugget_reproduces_data_with_zero_variance():
     y = RNG.standard_normal(40) + 3.0
     f = np.column_stack([np.ones(40), xy[:, 0] / 100])
     for cov in ("exponential", "matern32", "spherical"):
-        mean, var = krige(xy, y, f, xy, f, cov, 25.0, 2.0, 0.0, [3.0, 0.5], include_nugget=False, jitter=1e-10)
+        mean, var = kriging_moments(xy, y, f, xy, f, cov, 25.0, 2.0, 0.0, [3.0, 0.5], include_nugget=False, jitter=1e-10)
         np.testing.assert_allclose(mean, y, atol=1e-5)
         assert np.all(var < 1e-6 * 2.0)
     # away from the data the variance is positive and below the sill
-    mean, var = krige(xy, y, f, xy + 0.5, f, "matern32", 25.0, 2.0, 0.0, [3.0, 0.5], include_nugget=False)
+    mean, var = kriging_moments(xy, y, f, xy + 0.5, f, "matern32", 25.0, 2.0, 0.0, [3.0, 0.5], include_nugget=False)
     assert np.all(var > 0) and np.all(var < 2.0)
 
 
@@ -56,7 +56,7 @@ def test_matches_scikit_learn_gaussian_process(family, nu, include_nugget):
     sill, phi, tau2, c = 1.7, 18.0, 0.3, 4.0
     y = simulate_field(xy, covariance=family, practical_range=phi * 3.0, partial_sill=sill, nugget=tau2,
                        mean=c, rng=rng)
-    mean, var = krige(xy, y, np.ones((60, 1)), xy_new, np.ones((25, 1)), family, phi, sill, tau2, [c],
+    mean, var = kriging_moments(xy, y, np.ones((60, 1)), xy_new, np.ones((25, 1)), family, phi, sill, tau2, [c],
                       include_nugget=include_nugget)
     kern = ConstantKernel(sill, "fixed") * Matern(length_scale=math.sqrt(2 * nu) * phi, nu=nu,
                                                   length_scale_bounds="fixed")
@@ -212,7 +212,7 @@ def test_posterior_parameters_converts_units_and_thins_evenly():
 
 
 def test_joint_covariance_matches_scikit_learn_and_simulations_follow_it():
-    """The joint conditional covariance (krige full_cov) equals scikit-learn's
+    """The joint conditional covariance (kriging_moments full_cov) equals scikit-learn's
     GaussianProcessRegressor.predict(return_cov=True) for the field; joint conditional simulations
     (simulate_targets, one draw) have that mean and covariance up to Monte Carlo error."""
     from sklearn.gaussian_process import GaussianProcessRegressor
@@ -223,7 +223,7 @@ def test_joint_covariance_matches_scikit_learn_and_simulations_follow_it():
     rng = np.random.default_rng(8)
     xy, xy_new = _sites(40, rng), _sites(6, rng)
     y = rng.standard_normal(40)
-    mean, cov = krige(xy, y, np.ones((40, 1)), xy_new, np.ones((6, 1)), "matern52", 15.0, 1.3, 0.2, [0.0],
+    mean, cov = kriging_moments(xy, y, np.ones((40, 1)), xy_new, np.ones((6, 1)), "matern52", 15.0, 1.3, 0.2, [0.0],
                       include_nugget=False, full_cov=True)
     kern = ConstantKernel(1.3, "fixed") * Matern(length_scale=math.sqrt(5.0) * 15.0, nu=2.5, length_scale_bounds="fixed")
     gpr = GaussianProcessRegressor(kern, optimizer=None, alpha=0.2 + JITTER * 1.3).fit(xy, y)

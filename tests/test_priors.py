@@ -79,10 +79,10 @@ def test_defaults_and_overrides():
 
 
 @pytest.mark.parametrize("priors, match", [
-    ({"range": (-1.0, 0.05)}, "--prior-range: R0"),
-    ({"range": (10.0, 1.0)}, "--prior-range: the probability"),
-    ({"sd": (1.0, 0.0)}, "--prior-sd: the probability"),
-    ({"nugget": ("a", 0.1)}, "--prior-nugget"),
+    ({"range": (-1.0, 0.05)}, r"priors\[.range.\]: R0"),
+    ({"range": (10.0, 1.0)}, r"priors\[.range.\]: the probability"),
+    ({"sd": (1.0, 0.0)}, r"priors\[.sd.\]: the probability"),
+    ({"nugget": ("a", 0.1)}, r"priors\[.nugget.\]"),
     ({"ranges": (1, 0.1)}, "unknown key"),
 ])
 def test_bad_priors_are_refused(priors, match):

@@ -193,7 +193,7 @@ def fit_folder(tmp_path_factory):
     out = root / "fit"
     with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()) as err:
         code = main(["fit", str(root / "data.csv"), "--value", "conc", "--covariance", "exponential", "--chains", "2",
-                     "--draws", "300", "--tune", "300", "--seed", "1", "--prior-range", "50", "0.05", "--out", str(out)])
+                     "--draws", "300", "--tune", "300", "--seed", "1", "--range-below", "50", "0.05", "--out", str(out)])
     assert code in (0, 3), err.getvalue()
     assert (out / "posterior.nc").is_file()
     return out
@@ -439,7 +439,7 @@ _small_or_bad = st.one_of(st.integers(min_value=-3, max_value=20).map(str),
 
 @st.composite
 def explore_options(draw):
-    names = draw(st.lists(st.sampled_from(["--bins", "--max-lag", "--permutations", "--seed", "--trend"]),
+    names = draw(st.lists(st.sampled_from(["--bins", "--lag-limit", "--permutations", "--seed", "--trend"]),
                           min_size=1, max_size=3, unique=True))
     argv = []
     for n in names:

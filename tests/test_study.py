@@ -52,8 +52,8 @@ def test_single_family_string(study_dir):
 @pytest.mark.parametrize("extra, table, key, line, msg", [
     ("[sampler]\ndraws = \"many\"\n", "sampler", "draws", 12, "expected an integer"),
     ("[sampler]\nchains = 2\nbogus = 1\n", "sampler", "bogus", 13, "unknown key"),
-    ("[model.priors]\nrange = [10.0]\n", "model.priors", "range", 12, "two numbers"),
-    ("[model.priors]\nrange = [10.0, 1.5]\n", "model.priors", "range", 12, "probability"),
+    ("[model.priors]\nrange_below = [10.0]\n", "model.priors", "range_below", 12, "two numbers"),
+    ("[model.priors]\nrange_below = [10.0, 1.5]\n", "model.priors", "range_below", 12, "probability"),
     ("[prediction]\nthresholds = [\"high\"]\n", "prediction", "thresholds", 12, "list of numbers"),
     ("[explore]\nestimator = \"median\"\n", "explore", "estimator", 12, "not one of"),
     ("[sampler]\ntarget_accept = 1.2\n", "sampler", "target_accept", 12, "in (0, 1)"),
@@ -79,10 +79,22 @@ def test_unknown_table_and_top_level_key(study_dir):
         _parse("colour = 1\n" + MINIMAL, study_dir)
 
 
+@pytest.mark.parametrize("table, old, new", [("explore", "max_lag", "lag_limit"),
+                                              ("model.priors", "range", "range_below"),
+                                              ("model.priors", "sd", "sd_above"),
+                                              ("model.priors", "nugget", "nugget_above")])
+def test_renamed_key_names_the_new_key(study_dir, table, old, new):
+    """A study file written with a key of an earlier version gets one line naming the file, line, the
+    old key and the new one (common practice for renamed settings: fail loudly, say the new name)."""
+    value = "100.0" if old == "max_lag" else "[1.0, 0.05]"
+    with pytest.raises(InputError, match=rf"line 12: \[{table}\] {old}: renamed; write {new} instead$"):
+        _parse(MINIMAL + f"\n[{table}]\n{old} = {value}\n", study_dir)
+
+
 def test_inline_table_line(study_dir):
     """A key of an inline sub-table is located at its parent key's line."""
-    text = MINIMAL + "nugget = true\npriors = {range = [1.0, 0.05], sd = \"x\"}\n"
-    with pytest.raises(InputError, match=r"line 11: \[model.priors\] sd"):
+    text = MINIMAL + "nugget = true\npriors = {range_below = [1.0, 0.05], sd_above = \"x\"}\n"
+    with pytest.raises(InputError, match=r"line 11: \[model.priors\] sd_above"):
         _parse(text, study_dir)
 
 
@@ -115,10 +127,10 @@ def test_read_study_file(study_dir):
 
 def test_study_line_headers():
     """study_line finds table headers and keys (with spaces around dots and quotes)."""
-    text = 'a = 1\n[ model ]\n"trend" = 2\n[model.priors]\nrange = [1, 0.1]\n'
+    text = 'a = 1\n[ model ]\n"trend" = 2\n[model.priors]\nrange_below = [1, 0.1]\n'
     assert study_line(text, "model") == 2
     assert study_line(text, "model", "trend") == 3
-    assert study_line(text, "model.priors", "range") == 5
+    assert study_line(text, "model.priors", "range_below") == 5
     assert study_line(text, "model", "nope") is None
 
 
@@ -158,8 +170,8 @@ def test_several_site_pooling_defaults_and_errors(study_dir):
     fit = stage_commands(st, study_dir / "run", sites=["A", "B"])["fit:matern32"]
     assert fit[fit.index("--approx") + 1] == "nn" and fit[fit.index("--neighbours") + 1] == "15"
     assert fit[fit.index("--pooling") + 1] == "hierarchical"
-    with pytest.raises(InputError, match=r"line 13: \[model.priors\] nugget: .*nugget fraction"):
-        _parse(SITES + '\n[model.priors]\nnugget = [0.5, 0.05]\n', study_dir)
+    with pytest.raises(InputError, match=r"line 13: \[model.priors\] nugget_above: .*nugget fraction"):
+        _parse(SITES + '\n[model.priors]\nnugget_above = [0.5, 0.05]\n', study_dir)
 
 
 def test_areas_list_and_table(study_dir):
@@ -190,7 +202,7 @@ def test_areas_list_and_table(study_dir):
     ("[sampler]\ntarget_accept = nan\n", "sampler", "target_accept", 12, r"in \(0, 1\)"),
     ("[explore]\nbins = 0\n", "explore", "bins", 12, "expected an integer from 2 to"),
     ("[explore]\npermutations = 10000000000\n", "explore", "permutations", 12, "from 0 to 100000"),
-    ("[explore]\nmax_lag = inf\n", "explore", "max_lag", 12, "expected a finite number > 0, got inf"),
+    ("[explore]\nlag_limit = inf\n", "explore", "lag_limit", 12, "expected a finite number > 0, got inf"),
     ("[explore]\ntrend = 7\n", "explore", "trend", 12, "expected an integer from 0 to 3"),
     ("[check]\nreplicates = 100000000000\n", "check", "replicates", 12, "from 10 to 100000"),
     ("[prediction]\ndraws = 0\n", "prediction", "draws", 12, "positive integer or \"all\""),
@@ -199,9 +211,9 @@ def test_areas_list_and_table(study_dir):
     ("[prediction]\nmargin = nan\n", "prediction", "margin", 12, "expected a finite number >= 0"),
     ("[prediction]\nthresholds = [1.0, inf]\n", "prediction", "thresholds", 12, "expected a finite number, got inf"),
     ("[prediction]\narea = [0, 0, inf, 5]\n", "prediction", "area", 12, "expected a finite number, got inf"),
-    ("[model.priors]\nrange = [-1.0, 0.05]\n", "model.priors", "range", 12, "value .first number.: expected a finite"),
-    ("[model.priors]\nsd = [1.0, nan]\n", "model.priors", "sd", 12, r"probability .second number.: .*\(0, 1\)"),
-    ("[model.priors]\nrange = [1e400, 0.05]\n", "model.priors", "range", 12, "got inf"),
+    ("[model.priors]\nrange_below = [-1.0, 0.05]\n", "model.priors", "range_below", 12, "value .first number.: expected a finite"),
+    ("[model.priors]\nsd_above = [1.0, nan]\n", "model.priors", "sd_above", 12, r"probability .second number.: .*\(0, 1\)"),
+    ("[model.priors]\nrange_below = [1e400, 0.05]\n", "model.priors", "range_below", 12, "got inf"),
 ])
 def test_numeric_settings_bounded(study_dir, extra, table, key, line, msg):
     """Every number in a study file is checked where the file is read, with the bounds the command

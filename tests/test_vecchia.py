@@ -22,7 +22,7 @@ from bayesgeo.vecchia import (
     maximin_order,
     nearest_previous,
     nn_error_moments,
-    nn_krige,
+    nn_kriging_moments,
     nn_loglik,
     nn_loglik_and_grad,
 )
@@ -469,7 +469,7 @@ def _sk_reference(xy, z, design, xy_new, design_new, family, phi, s2, t2, beta, 
 
 
 @pytest.mark.parametrize("include_nugget", [True, False])
-def test_nn_krige_with_all_data_equals_simple_kriging(include_nugget):
+def test_nn_kriging_moments_with_all_data_equals_simple_kriging(include_nugget):
     """neighbours >= n: each target uses every datum, so the per-draw moments equal simple kriging
     written out with scipy.linalg (Rasmussen and Williams 2006, eqs. 2.23-2.24) for each of 3 draws,
     including a linear trend."""
@@ -480,7 +480,7 @@ def test_nn_krige_with_all_data_equals_simple_kriging(include_nugget):
     design_new = np.column_stack([np.ones(25), xy_new[:, 0]])
     phis, s2s, t2s = np.array([0.05, 0.07, 0.1]), np.array([0.8, 1.0, 1.3]), np.array([0.05, 0.1, 0.0])
     betas = np.array([[0.1, 0.5], [0.0, 0.0], [-0.2, 1.0]])
-    mean, var = nn_krige(xy, z, design, xy_new, design_new, covariance="matern52", scale=phis,
+    mean, var = nn_kriging_moments(xy, z, design, xy_new, design_new, covariance="matern52", scale=phis,
                          partial_sill=s2s, nugget=t2s, beta=betas, neighbours=100, include_nugget=include_nugget)
     for d in range(3):
         m_ref, v_ref = _sk_reference(xy, z, design, xy_new, design_new, "matern52", phis[d], s2s[d], t2s[d],
@@ -489,7 +489,7 @@ def test_nn_krige_with_all_data_equals_simple_kriging(include_nugget):
         np.testing.assert_allclose(var[d], v_ref, rtol=1e-7, atol=1e-9)
 
 
-def test_nn_krige_close_to_full_kriging_with_few_neighbours():
+def test_nn_kriging_moments_close_to_full_kriging_with_few_neighbours():
     """With 30 of 600 data points per target (exponential, practical range 0.3), predictions stay
     close to full simple kriging (scipy reference): mean error < 5% of the predictive sd and
     variances at most 10% larger, never smaller by more than rounding (conditioning on less data
@@ -498,7 +498,7 @@ def test_nn_krige_close_to_full_kriging_with_few_neighbours():
     xy, z = _field(600, 12, "exponential", 0.1, 1.0, 0.1)
     xy_new = rng.random((40, 2))
     ones, ones_new = np.ones((600, 1)), np.ones((40, 1))
-    mean, var = nn_krige(xy, z, ones, xy_new, ones_new, covariance="exponential", scale=0.1, partial_sill=1.0,
+    mean, var = nn_kriging_moments(xy, z, ones, xy_new, ones_new, covariance="exponential", scale=0.1, partial_sill=1.0,
                          nugget=0.1, beta=[0.0], neighbours=30)
     m_ref, v_ref = _sk_reference(xy, z, ones, xy_new, ones_new, "exponential", 0.1, 1.0, 0.1, np.zeros(1), True)
     assert np.max(np.abs(mean[0] - m_ref) / np.sqrt(v_ref)) < 0.05
@@ -548,19 +548,19 @@ def test_drop_in_for_the_model_likelihood():
     assert nn.compile_logp()(point) == pytest.approx(dense.compile_logp()(point), rel=1e-10)
 
 
-def test_nn_krige_great_circle_equals_dense_prediction():
-    """lon/lat data (haversine km): with every datum as neighbour, nn_krige equals the dense per-draw
-    prediction bayesgeo.predict.krige (itself tested against scikit-learn and scipy in
+def test_nn_kriging_moments_great_circle_equals_dense_prediction():
+    """lon/lat data (haversine km): with every datum as neighbour, nn_kriging_moments equals the dense per-draw
+    prediction bayesgeo.predict.kriging_moments (itself tested against scikit-learn and scipy in
     tests/test_predict.py) for the same parameters."""
-    from bayesgeo.predict import krige
+    from bayesgeo.predict import kriging_moments
 
     rng = np.random.default_rng(8)
     lonlat = np.column_stack([-3.0 + 0.2 * rng.random(50), 54.0 + 0.1 * rng.random(50)])
     z = rng.normal(size=50)
     new = np.column_stack([-3.0 + 0.2 * rng.random(10), 54.0 + 0.1 * rng.random(10)])
     ones, ones_new = np.ones((50, 1)), np.ones((10, 1))
-    m_ref, v_ref = krige(lonlat, z, ones, new, ones_new, "matern32", 2.0, 0.8, 0.1, [0.2], metric="greatcircle")
-    mean, var = nn_krige(lonlat, z, ones, new, ones_new, covariance="matern32", scale=2.0, partial_sill=0.8,
+    m_ref, v_ref = kriging_moments(lonlat, z, ones, new, ones_new, "matern32", 2.0, 0.8, 0.1, [0.2], metric="greatcircle")
+    mean, var = nn_kriging_moments(lonlat, z, ones, new, ones_new, covariance="matern32", scale=2.0, partial_sill=0.8,
                          nugget=0.1, beta=[0.2], metric="greatcircle", neighbours=50)
     np.testing.assert_allclose(mean[0], m_ref, rtol=1e-8, atol=1e-10)
     np.testing.assert_allclose(var[0], v_ref, rtol=1e-8, atol=1e-10)

@@ -68,7 +68,7 @@ def test_explore_pair_count_matches_the_benchmark():
     assert "--permutations 0 (no envelopes or p-values; saves about" in over["message"]
 
 
-def test_explore_max_lag_and_small_data():
+def test_explore_lag_limit_and_small_data():
     """A largest lag covering a quarter of a unit square's side keeps about pi/16 - ... of the pairs
     (for points uniform on the unit square, P(d < r) = pi r^2 - 8 r^3 / 3 + r^4 / 2, Ghosh 1951 /
     common geometric-probability result), and small data are not announced."""
@@ -77,7 +77,7 @@ def test_explore_max_lag_and_small_data():
     ds = points_dataset(xy[:, 0], xy[:, 1], np.zeros(4_000))
     r = 0.25
     share = np.pi * r**2 - 8 * r**3 / 3 + r**4 / 2
-    plan = wl.explore_plan(ds, permutations=0, max_lag=r)
+    plan = wl.explore_plan(ds, permutations=0, lag_limit=r)
     assert plan["pairs"] / (4_000 * 3_999 / 2) == pytest.approx(share, rel=0.05)
     small = points_dataset(xy[:500, 0], xy[:500, 1], np.zeros(500))
     assert wl.explore_plan(small)["message"] is None

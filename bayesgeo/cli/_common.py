@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 import sys
 from collections.abc import Iterable
@@ -9,7 +10,29 @@ from collections.abc import Iterable
 import numpy as np
 from bayesgeo.io import to_jsonable
 
-__all__ = ["load_fit_folder", "add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table"]
+__all__ = ["load_fit_folder", "add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table",
+           "refuse_renamed"]
+
+#: Options of earlier versions and their new names (a command given one stops with a one-line usage error).
+RENAMED_OPTIONS = {
+    "--max-lag": "--lag-limit",
+    "--prior-range": "--range-below",
+    "--prior-sd": "--sd-above",
+    "--prior-nugget": "--nugget-above",
+    "--min-points": "--small-sites",
+}
+
+
+class _Renamed(argparse.Action):
+    def __call__(self, parser, namespace, values, option_string=None):
+        parser.error(f"{option_string} was renamed {RENAMED_OPTIONS[option_string]}")
+
+
+def refuse_renamed(p, *old: str) -> None:
+    """Hidden options ``old`` (keys of :data:`RENAMED_OPTIONS`) that stop with a usage error (exit 2)
+    naming the new option."""
+    for name in old:
+        p.add_argument(name, nargs="*", action=_Renamed, help=argparse.SUPPRESS, dest=f"_renamed_{name[2:]}")
 
 
 def add_data_options(p) -> None:
@@ -38,7 +61,7 @@ def read_data(args):
         args.data, x=args.x, y=args.y, value=args.value, site=args.site, covariates=args.covariate,
         coords=args.coords, duplicates=args.duplicates, units=args.units,
         distance_units=args.distance_units, only_site=args.only_site,
-        small_sites="keep" if getattr(args, "min_points", "error") == "pool" else "error",
+        small_sites=getattr(args, "small_sites", "error"),
     )
 
 

@@ -2,7 +2,7 @@
 
 ``bayesgeo.cli.fit`` calls :func:`run_sites` with its parsed arguments and the data it has read
 when the data hold a site column; :func:`add_site_arguments` adds ``--pooling`` and
-``--min-points`` to its parser. Outputs as for one site (``posterior.nc``, ``summary.csv``,
+``--small-sites`` to its parser. Outputs as for one site (``posterior.nc``, ``summary.csv``,
 ``summary.txt``, ``fit.json``) plus ``shrinkage.csv``/``shrinkage.png`` (pooled against
 independent fits per site; not for ``--pooling independent``) and ``design.csv``/``design.png``
 (grid spacing against predictive sd for a new site; not for ``--pooling independent``).
@@ -14,16 +14,18 @@ __all__ = ["add_site_arguments", "run_sites"]
 
 
 def add_site_arguments(p) -> None:
-    """``--pooling``, ``--min-points``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
-    from bayesgeo.hierarchical import CENTRED_MIN_POINTS, MIN_POINTS_POLICIES, PARAMETRISATIONS, POOLINGS
+    """``--pooling``, ``--small-sites``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
+    from bayesgeo.hierarchical import CENTRED_MIN_POINTS, PARAMETRISATIONS, POOLINGS, SMALL_SITE_POLICIES
+    from bayesgeo.cli._common import refuse_renamed
     from bayesgeo.validate import int_option
 
     p.add_argument("--pooling", choices=POOLINGS, default="hierarchical",
                    help="with --site: share covariance parameters through a population (hierarchical, default), "
                         "not at all (independent) or fully (complete)")
-    p.add_argument("--min-points", choices=MIN_POINTS_POLICIES, default="error",
+    refuse_renamed(p, "--min-points")
+    p.add_argument("--small-sites", choices=SMALL_SITE_POLICIES, default="error",
                    help="with --site: a site with fewer than 10 points is an error (default) or is kept in the "
-                        "model with a warning (pool)")
+                        "model with a warning (keep)")
     p.add_argument("--parametrisation", choices=PARAMETRISATIONS, default="noncentred",
                    help="with --site and hierarchical pooling: sample the site effects non-centred (default), "
                         f"centred, or auto (centred for sites of at least {CENTRED_MIN_POINTS} points); the "
@@ -56,9 +58,9 @@ def run_sites(args, ds) -> int:
     from bayesgeo.validate import InputError, check_positive_int
 
     claim(args.out, overwrite=args.overwrite, inputs=[args.data])
-    if _opt(args, "prior_nugget", None):
-        raise InputError("--prior-nugget: the several-site model puts its prior on the nugget fraction of the sill "
-                         "(see docs/hierarchical.md); drop --prior-nugget")
+    if _opt(args, "nugget_above", None):
+        raise InputError("--nugget-above: the several-site model puts its prior on the nugget fraction of the sill "
+                         "(see docs/hierarchical.md); drop --nugget-above")
     neighbours = check_positive_int(_opt(args, "design_neighbours", 6), "--design-neighbours", minimum=2)
     if neighbours % 2:
         raise InputError(f"--design-neighbours: expected an even number, got {neighbours}")
@@ -68,9 +70,9 @@ def run_sites(args, ds) -> int:
         covariance=_opt(args, "covariance", "matern32"), nu=_opt(args, "nu", None),
         nugget=not _opt(args, "no_nugget", False), trend=_opt(args, "trend", 0),
         covariates=tuple(_opt(args, "covariate", ())), transform=None if transform == "none" else transform,
-        priors=Priors(range=tuple(args.prior_range) if _opt(args, "prior_range", None) else None,
-                      sd=tuple(args.prior_sd) if _opt(args, "prior_sd", None) else None),
-        min_points=_opt(args, "min_points", "error"), approx=_opt(args, "approx", "auto"),
+        priors=Priors(range=tuple(args.range_below) if _opt(args, "range_below", None) else None,
+                      sd=tuple(args.sd_above) if _opt(args, "sd_above", None) else None),
+        small_sites=_opt(args, "small_sites", "error"), approx=_opt(args, "approx", "auto"),
         neighbours=_opt(args, "neighbours", None),
     )
     show = not args.json and sys.stderr.isatty()

@@ -20,12 +20,14 @@ POSTERIOR_FILE = "posterior.nc"
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.cli._common import refuse_renamed
     from bayesgeo.validate import int_option
 
     p.add_argument("dir", metavar="DIR", help=f"fit folder holding {POSTERIOR_FILE}")
     p.add_argument("--var", metavar="NAME", action="append", default=[],
                    help="posterior variable to check (repeatable; default all)")
-    p.add_argument("--max-lag", type=int_option("autocorr_lag"), default=None, metavar="K",
+    refuse_renamed(p, "--max-lag")
+    p.add_argument("--lag-limit", type=int_option("autocorr_lag"), default=None, metavar="K",
                    help="largest lag of the autocorrelation figure (default: 3 x the largest IAT, at least 20)")
     p.add_argument("--no-figures", action="store_true", help="skip the figures (diagnostics.json only)")
     p.add_argument("--overwrite", action="store_true",
@@ -63,8 +65,8 @@ def run(args) -> int:
 
     folder = Path(args.dir)
     tree = read_posterior(folder)
-    if args.max_lag is not None and args.max_lag < 1:
-        raise InputError(f"--max-lag: expected an integer >= 1, got {args.max_lag}")
+    if args.lag_limit is not None and args.lag_limit < 1:
+        raise InputError(f"--lag-limit: expected an integer >= 1, got {args.lag_limit}")
     outdir = folder / DIAGNOSTICS_DIR
     keep = (outdir.exists() or outdir.is_symlink()) and not args.overwrite
     if not keep:
@@ -113,7 +115,7 @@ def _write(folder, args, tree, result: dict, bar) -> None:
             from bayesgeo.diagnostic_figures import write_diagnostic_figures
 
             try:
-                written = write_diagnostic_figures(tree, tmp, var_names=args.var or None, max_lag=args.max_lag)
+                written = write_diagnostic_figures(tree, tmp, var_names=args.var or None, lag_limit=args.lag_limit)
                 figures = [str(outdir / p.name) for p in written]
             except InputError:
                 raise

@@ -45,7 +45,7 @@ _TOLERANCE = 22.5
 
 
 def add_arguments(p) -> None:
-    from bayesgeo.cli._common import add_data_options
+    from bayesgeo.cli._common import add_data_options, refuse_renamed
     from bayesgeo.quickfit import QUICK_FAMILIES
     from bayesgeo.validate import float_option, int_option
 
@@ -56,7 +56,8 @@ def add_arguments(p) -> None:
     p.add_argument("--transform", choices=("none", "log"), default="none",
                    help="analyse the values as they are (none) or their natural logarithm (log; positive values only)")
     p.add_argument("--bins", type=int_option("bins"), default=15, metavar="N", help="number of lag bins (default 15)")
-    p.add_argument("--max-lag", type=float_option("positive"), default=None, metavar="D",
+    refuse_renamed(p, "--max-lag")
+    p.add_argument("--lag-limit", type=float_option("positive"), default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
     p.add_argument("--permutations", type=int_option("permutations"), default=99, metavar="N",
                    help="random permutations for the envelopes and p-values (default 99; 0 for none)")
@@ -118,7 +119,7 @@ def _analyse_site(part, args, families, bar, log=None) -> tuple[dict, dict]:
         if args.trend > 0 or args.covariate:
             part = fit_trend(part, args.trend, args.covariate)
             trend_info["r_squared"] = float(part.attrs["trend_r_squared"])
-        common = {"bins": args.bins, "max_lag": args.max_lag}
+        common = {"bins": args.bins, "lag_limit": args.lag_limit}
         log(f"semivariogram ({args.permutations} permutations)")
         vg = explore.semivariogram(part, estimator=args.estimator, permutations=args.permutations,
                                    seed=args.seed, **common)
@@ -214,7 +215,7 @@ def run(args) -> int:
     families = list(dict.fromkeys(args.covariance or QUICK_FAMILIES))
     labels = sites_of(ds)
     multi = labels != [""]
-    plan = explore_plan(ds, permutations=args.permutations, max_lag=args.max_lag, families=len(families))
+    plan = explore_plan(ds, permutations=args.permutations, lag_limit=args.lag_limit, families=len(families))
     if plan["message"] and not args.json:
         print(f"bayesgeo explore: note: {plan['message']}", file=sys.stderr, flush=True)
     bar = progress(total=len(labels) * (3 + len(families)), desc="explore", enabled=not args.json)
@@ -231,7 +232,7 @@ def run(args) -> int:
 
     first = labels[0]
     settings = {"transform": args.transform, "trend": args.trend, "covariates": list(args.covariate), "bins": args.bins,
-                "max_lag": args.max_lag, "permutations": args.permutations, "estimator": args.estimator,
+                "lag_limit": args.lag_limit, "permutations": args.permutations, "estimator": args.estimator,
                 "covariance": families, "seed": args.seed, "azimuths": list(_AZIMUTHS), "tolerance": _TOLERANCE}
     obj = {"data": str(args.data), "out": str(out), "site": first if multi else None,
            "n_total": int(ds.sizes["obs"]), **objects[first], "settings": settings, "workload": plan}

@@ -7,7 +7,7 @@ HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one s
 
 
 def add_arguments(p) -> None:
-    from bayesgeo.cli._common import add_data_options
+    from bayesgeo.cli._common import add_data_options, refuse_renamed
     from bayesgeo.covariance import FAMILIES
     from bayesgeo.validate import PriorPairAction, float_option, int_option
 
@@ -22,12 +22,13 @@ def add_arguments(p) -> None:
     p.add_argument("--trend", type=int_option("trend"), default=0, metavar="ORDER",
                    help="polynomial order of the trend in the coordinates, 0-3 (default 0: constant mean)")
     p.add_argument("--transform", choices=("none", "log"), default="none", help="model log(values) (positive values only)")
-    p.add_argument("--prior-range", nargs=2, action=PriorPairAction, metavar=("R0", "A1"),
+    refuse_renamed(p, "--prior-range", "--prior-sd", "--prior-nugget")
+    p.add_argument("--range-below", nargs=2, action=PriorPairAction, metavar=("R0", "A1"),
                    help="PC prior: P(practical range < R0) = A1 (default: R0 = 5%% of the largest distance, A1 = 0.05)")
-    p.add_argument("--prior-sd", nargs=2, action=PriorPairAction, metavar=("S0", "A2"),
+    p.add_argument("--sd-above", nargs=2, action=PriorPairAction, metavar=("S0", "A2"),
                    help="PC prior: P(sd of the field > S0) = A2 (default: S0 = 2 x sd of the detrended values, A2 = 0.05)")
-    p.add_argument("--prior-nugget", nargs=2, action=PriorPairAction, metavar=("T0", "A3"),
-                   help="PC prior: P(nugget sd > T0) = A3 (default as --prior-sd)")
+    p.add_argument("--nugget-above", nargs=2, action=PriorPairAction, metavar=("T0", "A3"),
+                   help="PC prior: P(nugget sd > T0) = A3 (default as --sd-above)")
     p.add_argument("--approx", choices=("auto", "dense", "nn"), default="auto",
                    help="likelihood: exact dense, nearest-neighbour (Vecchia) approximation, or auto "
                         "(dense up to 2,000 points per site, nn beyond; with --site chosen per site; "
@@ -87,9 +88,9 @@ def run(args) -> int:
         return run_sites(args, ds)
     stage = _stage_logger(args)
     stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal)")
-    priors = Priors(range=tuple(args.prior_range) if args.prior_range else None,
-                    sd=tuple(args.prior_sd) if args.prior_sd else None,
-                    nugget=tuple(args.prior_nugget) if args.prior_nugget else None)
+    priors = Priors(range=tuple(args.range_below) if args.range_below else None,
+                    sd=tuple(args.sd_above) if args.sd_above else None,
+                    nugget=tuple(args.nugget_above) if args.nugget_above else None)
     show = not args.json and sys.stderr.isatty()
     kw = dict(covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
               covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,

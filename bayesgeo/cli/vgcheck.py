@@ -20,6 +20,7 @@ TABLE_COLUMNS = ("bin", "lag", "bin_lower", "bin_upper", "pairs", "observed", "r
 
 
 def add_arguments(p) -> None:
+    from bayesgeo.cli._common import refuse_renamed
     from bayesgeo.validate import float_option, int_option
 
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
@@ -28,7 +29,8 @@ def add_arguments(p) -> None:
     p.add_argument("--replicates", type=int_option("replicates"), default=200, metavar="N",
                    help="replicate data sets, one posterior draw each (default 200)")
     p.add_argument("--bins", type=int_option("bins"), default=15, metavar="N", help="number of lag bins (default 15)")
-    p.add_argument("--max-lag", type=float_option("positive"), default=None, metavar="D",
+    refuse_renamed(p, "--max-lag")
+    p.add_argument("--lag-limit", type=float_option("positive"), default=None, metavar="D",
                    help="largest lag in distance units (default: half the largest distance between points)")
     p.add_argument("--seed", type=int_option("seed"), default=1, metavar="S", help="seed of the replicates (default 1)")
     p.add_argument("--overwrite", action="store_true", help=f"replace existing {FIGURE} and {TABLE}")
@@ -84,7 +86,7 @@ def run(args) -> int:
         check_addable(folder, fig_name, overwrite=args.overwrite)
         check_addable(folder, csv_name, overwrite=args.overwrite)
         bar.update(1)
-        vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, max_lag=args.max_lag, seed=args.seed,
+        vc = variogram_check(tree, replicates=args.replicates, bins=args.bins, lag_limit=args.lag_limit, seed=args.seed,
                              progress=functools.partial(progress, enabled=not args.json))
         bar.update(1)
         _refuse_non_finite(vc, folder)
@@ -124,7 +126,7 @@ def run(args) -> int:
         "outside_band": int(vc.attrs["outside_band"]),
         "replicates": int(vc.attrs["replicates"]),
         "bins": int(vc.attrs["bins"]),
-        "max_lag": float(vc.attrs["max_lag"]),
+        "lag_limit": float(vc.attrs["lag_limit"]),
         "seed": int(vc.attrs["seed"]),
         "covariance": vc.attrs["covariance"],
         "site": args.site,
