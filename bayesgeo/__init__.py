@@ -13,14 +13,15 @@ from bayesgeo.autocorr import autocorrelation, integrated_autocorrelation_time
 from bayesgeo.diagnostic_figures import write_diagnostic_figures
 from bayesgeo.diagnostics import Convergence, Thresholds, check_convergence
 from bayesgeo.design import design_table, kriging_variance
-from bayesgeo.hier_outputs import load_site_fit, save_site_fit, shrinkage_table
+from bayesgeo.hier_outputs import save_site_fit, shrinkage_table
 from bayesgeo.hierarchical import build_site_model, fit_sites, site_fit
 from bayesgeo.explore import correlogram, directional_semivariograms, lag_bins, semivariogram
 from bayesgeo.figures import correlogram_figure, directional_figure, semivariogram_figure
 from bayesgeo.check_figures import loo_pit_figure, variogram_check_figure
 from bayesgeo.loo import add_log_likelihood, pointwise_loo_loglik
 from bayesgeo.model import FitSpec, build_model
-from bayesgeo.posterior import fit, fit_report, fit_spec, load_fit, prior_check_figure, save_fit, summary_table
+from bayesgeo.fitted import Fit, NotConvergedError
+from bayesgeo.posterior import fit, fit_report, fit_spec, prior_check_figure, save_fit, summary_table
 from bayesgeo.priors import Priors, plot_prior_semivariogram, prior_semivariogram
 from bayesgeo.sampling import compile_model, sample
 from bayesgeo.modelcheck import compare_fits, loo_pit, store_log_likelihood
@@ -76,7 +77,8 @@ __all__ = [
     "fit",
     "fit_report",
     "fit_spec",
-    "load_fit",
+    "Fit",
+    "NotConvergedError",
     "plot_prior_semivariogram",
     "prior_check_figure",
     "prior_semivariogram",
@@ -114,7 +116,6 @@ __all__ = [
     "design_table",
     "fit_sites",
     "kriging_variance",
-    "load_site_fit",
     "save_site_fit",
     "shrinkage_table",
     "site_fit",

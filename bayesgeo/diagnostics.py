@@ -211,6 +211,27 @@ class Convergence:
     n_draws: int = 0
     sampler: str = "unknown"
 
+    def table(self):
+        """Per-parameter diagnostics (mean, sd, R-hat, bulk and tail ESS, MCSE, IAT) as a pandas DataFrame."""
+        return self.parameters.to_dataframe()
+
+    def __repr__(self) -> str:
+        worst = ", ".join(p["message"] for p in self.problems[:3])
+        more = f" (+{len(self.problems) - 3} more)" if len(self.problems) > 3 else ""
+        return (f"<Convergence {self.verdict.upper()}: {self.n_chains} chains x {self.n_draws} draws, "
+                f"{self.divergences} divergences{'; ' + worst + more if worst else ''}>")
+
+    def _repr_html_(self) -> str:
+        import html
+
+        colour = {"pass": "#1b7837", "warn": "#b35806", "fail": "#b2182b"}.get(self.verdict, "#444444")
+        items = "".join(f"<li>{html.escape(p['message'])}</li>" for p in self.problems)
+        table = self.table()[["mean", "sd", "rhat", "ess_bulk", "ess_tail"]].to_html(
+            float_format=lambda v: f"{v:.4g}", border=0)
+        return (f"<div><strong style='color:{colour}'>convergence: {self.verdict.upper()}</strong> "
+                f"({self.n_chains} chains x {self.n_draws} draws, {self.divergences} divergent transitions)"
+                f"<ul>{items}</ul>{table}<p style='font-size:smaller'>{html.escape(CAUTION)}</p></div>")
+
     def to_json(self) -> dict:
         """A JSON-ready dict (NaN as ``None``) with the keys listed in the module docstring."""
         ps = self.parameters

@@ -1,7 +1,7 @@
 """Saved fits: read once, decoded once, checked once, before any stage uses them.
 
 Every command that opens a fit folder (``map``, ``variogram-check``, ``compare``, ``check``) and
-:func:`bayesgeo.load_fit` go through :func:`read_fit`, so a damaged or foreign file is refused with
+:meth:`bayesgeo.Fit.read` go through :func:`read_fit`, so a damaged or foreign file is refused with
 one line naming the file and what is wrong, instead of a traceback or, worse, numbers computed from
 it. :func:`check_fit` verifies, for single-site fits (:mod:`bayesgeo.posterior`) and several-site
 fits (:mod:`bayesgeo.hierarchical`) alike:

@@ -40,7 +40,6 @@ __all__ = [
     "site_report",
     "summary_text_sites",
     "save_site_fit",
-    "load_site_fit",
     "with_site_diagnostics",
 ]
 
@@ -515,13 +514,3 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
             fig.savefig(tmp / "design.png", dpi=120)
             plt.close(fig)
     return Path(directory)
-
-
-def load_site_fit(directory) -> xr.DataTree:
-    """Read a several-site fit written by :func:`save_site_fit` (folder or its ``posterior.nc``)."""
-    from bayesgeo.fitfile import read_fit
-    from bayesgeo.hierarchical import site_spec
-
-    tree = read_fit(directory, written_by="bayesgeo fit --site")
-    site_spec(tree)
-    return tree

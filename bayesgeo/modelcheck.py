@@ -56,12 +56,9 @@ CAUTION = (
 # --- fits ---------------------------------------------------------------------------------------
 
 
-def open_fit(path: str | Path, *, sites: bool = False) -> xr.DataTree:
-    """Read a fit folder (or its ``posterior.nc``) into memory and close the file.
-
-    The file is opened in a ``with`` block and loaded, so no NetCDF handle stays open (handles
-    left to the garbage collector were seen to crash the HDF5 library when the same file was
-    opened again).
+def open_fit(path: str | Path, *, sites: bool = False):
+    """:meth:`bayesgeo.fitted.Fit.read` of a fit folder (or its ``posterior.nc``), refused early when the
+    model checks cannot use it. Returns the :class:`~bayesgeo.fitted.Fit`.
 
     With ``sites=True`` a several-site fit (:mod:`bayesgeo.hierarchical`) is accepted too, for
     the leave-one-out comparison.
@@ -72,13 +69,13 @@ def open_fit(path: str | Path, *, sites: bool = False) -> xr.DataTree:
         Missing folder or file, or a file that is not a readable single-site fit (or several-site
         fit with ``sites=True``).
     """
-    from bayesgeo.fitfile import read_fit
+    from bayesgeo.fitted import Fit
 
-    tree = read_fit(path)  # settings, groups, sizes and finite draws, checked once (one line naming the file)
-    if is_site_fit(tree) and not sites:
+    fit = Fit.read(path)  # settings, groups, sizes and finite draws, checked once (one line naming the file)
+    if fit.several and not sites:
         raise InputError(f"{path}: a several-site fit; this check takes one site at a time")
-    any_fit_arrays(tree)  # refuse early what the checks cannot use
-    return tree
+    any_fit_arrays(fit.tree)  # refuse early what the checks cannot use
+    return fit
 
 
 def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
@@ -109,7 +106,7 @@ def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
     from bayesgeo.outputs import add_to_folder
     from bayesgeo.posterior import FIT_FILE
 
-    tree = open_fit(path, sites=True)
+    tree = open_fit(path, sites=True).tree
     file = Path(path) / FIT_FILE if Path(path).is_dir() else Path(path)
     if "log_likelihood" in tree.children and not overwrite:
         raise InputError(f"{file}: already holds a log_likelihood group; pass --overwrite to replace it")

@@ -53,7 +53,6 @@ __all__ = [
     "with_diagnostics",
     "prior_check_figure",
     "save_fit",
-    "load_fit",
 ]
 
 #: Name of the NetCDF file of a saved fit.
@@ -487,11 +486,3 @@ def read_fit_file(directory: str | Path, *, written_by: str = "bayesgeo fit") ->
     if not path.is_file():
         raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by '{written_by}')")
     return read_datatree(path, what="NetCDF fit")
-
-
-def load_fit(directory: str | Path) -> xr.DataTree:
-    """Read a fit written by :func:`save_fit` (``directory`` or the ``posterior.nc`` inside it), checked
-    by :func:`bayesgeo.fitfile.check_fit` (settings, groups, sizes, finite draws)."""
-    from bayesgeo.fitfile import read_fit  # the checks need the several-site format too
-
-    return read_fit(directory)

@@ -57,6 +57,7 @@ __all__ = [
     "mixture_quantiles",
     "mixture_summary",
     "posterior_parameters",
+    "prediction_cautions",
     "predict_targets",
     "simulate_targets",
     "target_design",
@@ -148,13 +149,13 @@ def fit_data(tree: xr.DataTree, spec) -> tuple[np.ndarray, np.ndarray, np.ndarra
     return xy, z, design
 
 
-def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
+def basis_from_fit(fit, *, draws: int | None = None):
     """Everything prediction needs from a fit, with each draw's data covariance factorised once.
 
     Parameters
     ----------
-    tree : xarray.DataTree
-        A single-site fit (:func:`bayesgeo.posterior.fit` or :func:`bayesgeo.posterior.load_fit`).
+    fit : bayesgeo.fitted.Fit or xarray.DataTree
+        A single-site fit (or one site's view, :meth:`bayesgeo.fitted.Fit.site`).
     draws : int, optional
         Use this many evenly spaced posterior draws (all by default).
 
@@ -166,11 +167,14 @@ def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
         The draws used, in data units (:func:`posterior_parameters`).
     """
     from bayesgeo.covariance import get_covariance
-    from bayesgeo.posterior import fit_spec
+    from bayesgeo.fitted import Fit
 
-    spec = fit_spec(tree)
-    xy, z, design = fit_data(tree, spec)
-    params = posterior_parameters(tree["posterior"].to_dataset(), spec, draws=draws)
+    fit = fit if isinstance(fit, Fit) else Fit(fit)
+    if fit.several:
+        raise InputError(f"fit: a several-site fit; take one site first (fit.site(name); sites: {', '.join(fit.sites)})")
+    spec = fit.spec
+    xy, z, design = fit_data(fit.tree, spec)
+    params = posterior_parameters(fit.posterior, spec, draws=draws)
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
     # A fit with the nearest-neighbour likelihood (large n) predicts by nearest-neighbour kriging too.
     neighbours = NN_PREDICT_NEIGHBOURS if getattr(spec, "approx", "dense") == "nn" else 0
@@ -178,12 +182,22 @@ def basis_from_fit(tree: xr.DataTree, *, draws: int | None = None):
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,
                        neighbours=neighbours)
-    import json
-
-    site = json.loads(tree.attrs.get("settings", "{}")).get("extracted_from", {}).get("site")
-    if site is not None:
-        basis = dataclasses.replace(basis, site=str(site))
+    if fit.extracted_site is not None:
+        basis = dataclasses.replace(basis, site=str(fit.extracted_site))
     return basis, spec, params
+
+
+def prediction_cautions(transform: str | None, verdict: str) -> list[str]:
+    """Cautions carried by every prediction: :data:`CAUTION`, the log-scale note under
+    ``transform="log"``, and first a NOT CONVERGED line when the fit failed its convergence check."""
+    out = [CAUTION]
+    if transform == "log":
+        out.append("Values were modelled on the log scale; means and sds are of the back-transformed "
+                   "(log-normal) predictive distribution in data units.")
+    if verdict == "fail":
+        out.insert(0, "NOT CONVERGED: the posterior failed the convergence check; these results are not "
+                      "fit for any decision.")
+    return out
 
 
 def target_design(targets: xr.Dataset, design_attrs: dict | None, p: int) -> np.ndarray:

@@ -74,17 +74,17 @@ def _read_json(path: Path) -> dict | None:
 
 
 def _load_tree(path: Path):
-    """(tree, None) or (None, reason): read into memory inside a ``with`` block so no NetCDF handle stays open."""
+    """(tree, None) or (None, reason): the fit read and checked by :meth:`bayesgeo.fitted.Fit.read`."""
     import gc
 
-    import xarray as xr
+    from bayesgeo.fitted import Fit
+    from bayesgeo.validate import InputError
 
     gc.collect()  # close handles other stages left to the garbage collector before HDF5 sees the file again
     try:
-        with xr.open_datatree(path, engine="netcdf4") as t:
-            return t.load(), None
-    except Exception as err:  # noqa: BLE001 - shown in the report as the reason
-        return None, f"{type(err).__name__}: {' '.join(str(err).split())[:200]}"
+        return Fit.read(path).tree, None
+    except InputError as err:  # shown in the report as the reason
+        return None, " ".join(str(err).split())[:300]
 
 
 def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:

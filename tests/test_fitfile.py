@@ -18,7 +18,7 @@ from _cli_helpers import assert_refused, snapshot
 from test_loo import make_fit, make_site_fit, simulated, simulated_sites
 
 from bayesgeo.fitfile import check_fit, read_fit
-from bayesgeo.posterior import load_fit
+from bayesgeo.fitted import Fit
 from bayesgeo.validate import InputError
 
 
@@ -120,7 +120,7 @@ DAMAGE = ["settings cut short", "settings not a table", "no settings", "unknown 
 def test_good_fits_pass(tmp_path, good, good_sites):
     """The undamaged fits pass the check and load (the check refuses only what is wrong)."""
     assert check_fit(good) is good and check_fit(good_sites) is good_sites
-    assert load_fit(_save(good, tmp_path / "a"))["posterior"]["sd_z"].shape == (2, 40)
+    assert Fit.read(_save(good, tmp_path / "a")).tree["posterior"]["sd_z"].shape == (2, 40)
 
 
 @pytest.mark.parametrize("damage", DAMAGE)

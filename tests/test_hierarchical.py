@@ -266,12 +266,37 @@ def test_site_fit_has_single_site_layout(fits):
         site_fit(hier, "P9")
 
 
+def test_fit_object_gives_a_view_per_site(fits):
+    """bayesgeo.Fit over a several-site fit: several, its sites, and .site(name) is the single-site view of
+    site_fit (same draws), marked with the site it came from; without a name, with an unknown one, or
+    predicting the whole fit, one InputError naming the argument and the sites (internal contract)."""
+    from bayesgeo.fitted import Fit
+    from bayesgeo.hierarchical import site_fit
+
+    _, _, hier, _ = fits
+    fit = Fit(hier)
+    assert fit.several and fit.sites == ("P1", "P2", "P3") and fit.spec.pooling == "hierarchical"
+    one = fit.site("P3")
+    assert not one.several and one.extracted_site == "P3" and one.spec.n == 12
+    np.testing.assert_array_equal(one.posterior["partial_sill"].values,
+                                  site_fit(hier, "P3")["posterior"]["partial_sill"].values)
+    assert one.site("P3") is one
+    with pytest.raises(InputError, match=r"^site: a several-site fit; choose a site \(P1, P2, P3\)"):
+        fit.site(None)
+    with pytest.raises(InputError, match="site 'P9' is not in this fit"):
+        fit.site("P9")
+    with pytest.raises(InputError, match=r"^predict: a several-site fit"):
+        fit.predict(cell=50.0)
+    assert set(fit.summary()["site"]) >= {"P1", "P2", "P3"}
+
+
 def test_save_report_and_load(fits, tmp_path):
     """Outputs: posterior.nc, summary.csv, summary.txt, fit.json, shrinkage.csv/png, design.csv/png
     written atomically, refused when present (project rule), loaded back unchanged; the report carries
     sites, population, new_site and cautions that defer to local regulation."""
     from bayesgeo.design import design_table
-    from bayesgeo.hier_outputs import load_site_fit, save_site_fit, shrinkage_table, site_report
+    from bayesgeo.fitted import Fit
+    from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report
 
     _, _, hier, indep = fits
     shrink = shrinkage_table(hier, indep)
@@ -283,7 +308,7 @@ def test_save_report_and_load(fits, tmp_path):
         assert (out / f).stat().st_size > 0, f
     with pytest.raises(InputError, match="already exists"):
         save_site_fit(hier, out)
-    back = load_site_fit(out)
+    back = Fit.read(out).tree
     np.testing.assert_array_equal(back["posterior"]["practical_range"].values, hier["posterior"]["practical_range"].values)
     rep = json.loads((out / "fit.json").read_text())
     assert set(rep["sites"]) == {"P1", "P2", "P3"}
@@ -551,7 +576,8 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     with numpy (jitter 1e-6 x partial sill as in likelihood.py); the CLI's file equals the prediction
     stage run directly (thin shell)."""
     from bayesgeo.cli import main
-    from bayesgeo.hier_outputs import load_site_fit, save_site_fit
+    from bayesgeo.fitted import Fit
+    from bayesgeo.hier_outputs import save_site_fit
     from bayesgeo.hierarchical import fit_sites, site_fit, site_spec
     from bayesgeo.posterior import fit_spec
     from bayesgeo.predict import basis_from_fit, predict_targets
@@ -561,7 +587,7 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     tree = fit_sites(ds, approx="nn", neighbours=10, chains=2, draws=120, tune=150, seed=2)
     out = tmp_path / "fit"
     save_site_fit(tree, out)
-    back = load_site_fit(out)
+    back = Fit.read(out).tree
     assert site_spec(back).site_approx == ("nn", "nn") and site_spec(back).site_neighbours == (10, 10)
     one = site_fit(back, "P1")
     assert fit_spec(one).approx == "nn" and fit_spec(one).neighbours == 10

@@ -11,7 +11,8 @@ import xarray as xr
 
 from bayesgeo.data import points_dataset
 from bayesgeo.demo import simulate_field
-from bayesgeo.posterior import fit, fit_report, fit_spec, load_fit, save_fit, summary_table, with_diagnostics
+from bayesgeo.fitted import Fit
+from bayesgeo.posterior import fit, fit_report, fit_spec, save_fit, summary_table, with_diagnostics
 from bayesgeo.validate import InputError
 
 #: Exponential field whose practical range (900 m) is three times the side of the sampled square
@@ -138,11 +139,11 @@ def test_settings_describe_the_fit(tree):
 
 def test_save_and_load_round_trip(tree, tmp_path):
     """save_fit writes posterior.nc readable by xarray.open_datatree (netCDF4) with every group and
-    attribute, summary.csv with the stated columns, fit.json and summary.txt; load_fit reads it back."""
+    attribute, summary.csv with the stated columns, fit.json and summary.txt; Fit.read reads it back."""
     out = save_fit(tree, tmp_path / "fit1")
     assert sorted(p.name for p in out.iterdir()) == [".bayesgeo-output.json", "fit.json", "posterior.nc", "prior_check.png",
                                                      "summary.csv", "summary.txt"]
-    back = load_fit(out)
+    back = Fit.read(out).tree
     xr.testing.assert_identical(back["posterior"].to_dataset(), tree["posterior"].to_dataset())
     assert back.attrs["settings"] == tree.attrs["settings"]
     header = (out / "summary.csv").read_text().splitlines()[0].split(",")
@@ -180,9 +181,9 @@ def test_not_converged_is_marked(tree, tmp_path):
 
 
 def test_load_refuses_a_missing_fit(tmp_path):
-    """load_fit on a folder without posterior.nc: one-line InputError."""
+    """Fit.read on a folder without posterior.nc: one-line InputError."""
     with pytest.raises(InputError, match="no fit found"):
-        load_fit(tmp_path)
+        Fit.read(tmp_path).tree
 
 
 @pytest.mark.parametrize("settings, pattern", [

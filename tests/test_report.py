@@ -91,12 +91,13 @@ def test_log_prior_and_likelihood_against_scipy(run):
     from bayesgeo.covariance import get_covariance
     from bayesgeo.geometry import distance_matrix
     from bayesgeo.likelihood import JITTER
-    from bayesgeo.posterior import fit_spec, load_fit
+    from bayesgeo.fitted import Fit
+    from bayesgeo.posterior import fit_spec
     from bayesgeo.priors import pc_range_rate, pc_sd_rate
     from bayesgeo.report_priors import _log_lik, _log_prior
 
     root, _ = run
-    tree = load_fit(root / "fits" / "exponential")
+    tree = Fit.read(root / "fits" / "exponential").tree
     spec = fit_spec(tree)
     post = tree["posterior"].to_dataset().isel(draw=slice(0, 3))
     small = tree.copy()

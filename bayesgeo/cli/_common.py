@@ -101,7 +101,7 @@ def print_table(rows: list[dict], columns: list[str], *, file=None, floatfmt: st
 
 
 def load_fit_folder(folder, site: str | None = None):
-    """The fit in ``folder`` as a single-site DataTree; from a several-site fit, the site ``site``.
+    """The fit in ``folder`` as a :class:`bayesgeo.fitted.Fit` of one site; from a several-site fit, the site ``site``.
 
     Raises
     ------
@@ -109,18 +109,12 @@ def load_fit_folder(folder, site: str | None = None):
         No readable fit; a several-site fit without ``--site``; ``--site`` on a single-site fit;
         an unknown site (the message lists the known ones).
     """
-    from bayesgeo.fitfile import read_fit
-    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings
+    from bayesgeo.fitted import Fit
     from bayesgeo.validate import InputError
 
-    tree = read_fit(folder)  # settings, groups, sizes and finite draws checked once, naming the file
-    if fit_settings(tree).get("format") == SEVERAL_SITE_FORMAT:
-        from bayesgeo.hierarchical import site_fit, site_spec
-
-        if site is None:
-            raise InputError(f"{folder}: a several-site fit; choose one site with --site NAME "
-                             f"(sites: {', '.join(site_spec(tree).sites)})")
-        return site_fit(tree, site)
-    if site is not None:
+    fit = Fit.read(folder)  # settings, groups, sizes and finite draws checked once, naming the file
+    if fit.several and site is None:
+        raise InputError(f"{folder}: a several-site fit; choose one site with --site NAME (sites: {', '.join(fit.sites)})")
+    if not fit.several and site is not None:
         raise InputError(f"--site: {folder} holds a single-site fit; drop --site")
-    return tree
+    return fit.site(site)

@@ -44,12 +44,12 @@ def run_sites(args, ds) -> int:
 
     Returns the exit status: 0, or 3 when the convergence check fails (as for one site).
     """
-    import json
     import sys
 
     from bayesgeo.cli import EXIT_NOT_CONVERGED
     from bayesgeo.cli._common import emit_json
     from bayesgeo.design import design_table
+    from bayesgeo.fitted import Fit
     from bayesgeo.diagnostics import check_convergence
     from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, summary_text_sites, with_site_diagnostics
     from bayesgeo.hierarchical import fit_sites, site_spec
@@ -86,7 +86,7 @@ def run_sites(args, ds) -> int:
         print(f"fitting the {pooling} model ...", file=sys.stderr, flush=True)
     tree = fit_sites(ds, pooling=pooling, seed=_opt(args, "seed", None),
                      parametrisation=_opt(args, "parametrisation", "noncentred"), **model_kw, **sample_kw)
-    seed = int(json.loads(tree.attrs["settings"])["sampler"]["seed"])  # the independent fit reuses it
+    seed = int(Fit(tree).settings["sampler"]["seed"])  # the independent fit reuses it
     conv = check_convergence(tree)
     tree = with_site_diagnostics(tree, conv.to_json())
     shrink = design = None

@@ -48,13 +48,8 @@ def _names(dirs) -> list[str]:
     return names
 
 
-def _verdicts(name, tree) -> list[str]:
-    import json
-
-    try:
-        verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
-    except (TypeError, ValueError, AttributeError):
-        verdict = None
+def _verdicts(name, fit) -> list[str]:
+    verdict = fit.stored_verdict
     if verdict == "fail":
         return [f"NOT CONVERGED: {name} failed its convergence check; its elpd is not to be trusted"]
     if verdict is None:
@@ -95,8 +90,9 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
     trees = {}
     cautions = []
     for name, d in zip(names, dirs):
-        trees[name] = open_fit(d, sites=True)
-        cautions += _verdicts(name, trees[name])
+        fit = open_fit(d, sites=True)
+        trees[name] = fit.tree
+        cautions += _verdicts(name, fit)
         if bar is not None:
             bar.update(1)
     res = compare_fits(trees, site=site, progress=progress)

@@ -108,13 +108,10 @@ def run(args) -> int:
         check_addable(folder, out_maps.name, overwrite=args.overwrite)
 
     from bayesgeo.cli._common import load_fit_folder
-    from bayesgeo.diagnostics import check_convergence
 
-    tree = load_fit_folder(folder, args.site)
-    verdict = check_convergence(tree).verdict
-    stored = json.loads(tree.attrs["diagnostics"]).get("verdict") if "diagnostics" in tree.attrs else None
-    if stored == "fail":
-        verdict = "fail"
+    fit = load_fit_folder(folder, args.site)
+    tree = fit.tree
+    verdict = fit.gate_verdict()
     not_converged = verdict == "fail"
     if not_converged and not args.allow_unconverged:
         msg = (f"{folder}: the posterior failed the convergence check (run 'bayesgeo check {folder}' for the "
@@ -127,10 +124,10 @@ def run(args) -> int:
             print(f"bayesgeo map: {msg}", file=sys.stderr)
         return EXIT_NOT_CONVERGED
 
-    from bayesgeo.predict import CAUTION, area_average, basis_from_fit, predict_targets
+    from bayesgeo.predict import area_average, basis_from_fit, prediction_cautions, predict_targets
     from bayesgeo.trend import design_at
 
-    basis, spec, params = basis_from_fit(tree, draws=draws)
+    basis, spec, params = basis_from_fit(fit, draws=draws)
     xy = basis.xy
     if args.points:
         targets = tg.read_target_points(args.points, columns=tuple(spec.covariates))
@@ -157,13 +154,7 @@ def run(args) -> int:
     bar.close()
     _refuse_non_finite(pred, targets["inside"], folder)
 
-    cautions = [CAUTION]
-    if spec.transform == "log":
-        cautions.append("Values were modelled on the log scale; means and sds are of the back-transformed "
-                        "(log-normal) predictive distribution in data units.")
-    if not_converged:
-        cautions.insert(0, "NOT CONVERGED: the posterior failed the convergence check; these results are not "
-                           "fit for any decision.")
+    cautions = prediction_cautions(spec.transform, verdict)
     area = None
     if area_vertices is not None:
         vertices, label = area_vertices

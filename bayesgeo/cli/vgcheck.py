@@ -67,7 +67,6 @@ def _refuse_non_finite(vc, folder) -> None:
 
 def run(args) -> int:
     import functools
-    import json
     from pathlib import Path
 
     from bayesgeo.check_figures import variogram_check_figure
@@ -80,7 +79,8 @@ def run(args) -> int:
     folder = Path(args.dir)
     bar = progress(total=3, desc="variogram-check", enabled=not args.json)
     with bar:
-        tree = load_fit_folder(folder, args.site)
+        fit = load_fit_folder(folder, args.site)
+        tree = fit.tree
         fig_name, csv_name = output_names(args.site)
         fig_path, csv_path = folder / fig_name, folder / csv_name
         check_addable(folder, fig_name, overwrite=args.overwrite)
@@ -91,10 +91,7 @@ def run(args) -> int:
         bar.update(1)
         _refuse_non_finite(vc, folder)
         cautions = list(vc.attrs["cautions"])
-        try:
-            verdict = json.loads(tree.attrs.get("diagnostics", "{}")).get("verdict")
-        except (TypeError, ValueError, AttributeError):
-            verdict = None
+        verdict = fit.stored_verdict
         title = None
         where = f", site {args.site}" if args.site is not None else ""
         if args.site is not None:
