@@ -27,7 +27,7 @@ import xarray as xr
 
 from bayesgeo.validate import InputError
 
-__all__ = ["Fit", "NotConvergedError"]
+__all__ = ["Fit", "NotConvergedError", "as_fit"]
 
 
 class NotConvergedError(RuntimeError):
@@ -134,6 +134,13 @@ class Fit:
     @cached_property
     def cautions(self) -> list[str]:
         return list(json.loads(self.tree.attrs.get("cautions", "[]")))
+
+    @cached_property
+    def approximation(self) -> dict | None:
+        """What the nearest-neighbour likelihood approximated (``approximation`` attribute), or None."""
+        from bayesgeo.posterior import approximation_of
+
+        return approximation_of(self.tree)
 
     @property
     def stored_verdict(self) -> str | None:
@@ -296,3 +303,7 @@ class Fit:
         return (f"<div><strong>bayesgeo.Fit</strong> {html.escape(self._label())}{table}"
                 f"<ul style='font-size:smaller'>{cautions}</ul></div>")
 
+
+def as_fit(fit: Fit | xr.DataTree) -> Fit:
+    """``fit`` itself, or a fit ``DataTree`` wrapped (its settings decoded here, once)."""
+    return fit if isinstance(fit, Fit) else Fit(fit)

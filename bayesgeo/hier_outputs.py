@@ -206,10 +206,10 @@ def parameter_block(ds: xr.Dataset, names=PARAMETERS, *, prob: float = 0.9) -> d
 
 def site_blocks(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
     """Per site: the parameter blocks of :data:`PARAMETERS` plus ``n``."""
-    post = tree["posterior"].to_dataset()
-    import json
+    from bayesgeo.fitted import as_fit
 
-    n = json.loads(tree.attrs["settings"])["model"]["n"]
+    post = tree["posterior"].to_dataset()
+    n = as_fit(tree).spec.n
     out = {}
     for i, site in enumerate(post["site"].values):
         one = post[[p for p in PARAMETERS if p in post]].sel(site=site)
@@ -286,9 +286,9 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
             q = post[p].quantile(qs, dim=("chain", "draw")).transpose("site", "quantile").values
             vals[f"{tag}_low"][:, j], vals[f"{tag}_median"][:, j], vals[f"{tag}_high"][:, j] = q.T
             res[tag][:, j] = np.log(q[:, 2]) - np.log(q[:, 0])
-    import json
+    from bayesgeo.fitted import as_fit
 
-    n = json.loads(pooled.attrs["settings"])["model"]["n"]
+    n = as_fit(pooled).spec.n
     units = {p: a[p].attrs.get("units", "") for p in parameters}
     ds = xr.Dataset({k: (("site", "parameter"), v) for k, v in vals.items()},
                     coords={"site": sites, "parameter": list(parameters), "n": ("site", np.asarray(n, dtype=int)),
@@ -374,13 +374,11 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
     population medians under the single-site names (hierarchical pooling), the shared values
     (complete pooling), or nothing (independent pooling); ``parameters_note`` says which.
     """
-    import json
+    from bayesgeo.fitted import as_fit
 
-    from bayesgeo.hierarchical import site_spec
-
-    settings = json.loads(tree.attrs["settings"])
-    spec = site_spec(tree)
-    post = tree["posterior"].to_dataset()
+    fit = as_fit(tree)
+    tree, settings, spec = fit.tree, fit.settings, fit.spec
+    post = fit.posterior
     params, note = {}, "independent pooling: no population; see 'sites'"
     if spec.pooling != "independent":
         names = {"practical_range": "population_practical_range_median", "partial_sill": "population_partial_sill_median",
@@ -391,7 +389,7 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
         note = ("population medians (total_sill: population mean) of the hierarchical model"
                 if spec.pooling == "hierarchical" else "values shared by all sites (complete pooling)")
     smp = settings["sampler"]
-    diag = json.loads(tree.attrs["diagnostics"]) if "diagnostics" in tree.attrs else None
+    diag = fit.diagnostics
     out = {
         "parameters": params,
         "parameters_note": note,
@@ -413,8 +411,8 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
         "sites": site_blocks(tree, prob=prob),
         "population": population_block(tree, prob=prob),
         "new_site": new_site_block(tree, prob=prob),
-        "cautions": json.loads(tree.attrs.get("cautions", "[]")),
-        "approximation": json.loads(tree.attrs["approximation"]) if "approximation" in tree.attrs else None,
+        "cautions": fit.cautions,
+        "approximation": fit.approximation,
     }
     if shrinkage is not None:
         out["shrinkage"] = table_rows(shrinkage)

@@ -40,7 +40,6 @@ inform it. Each site is therefore computed as a single-site fit with that site's
 
 from __future__ import annotations
 
-import json
 import math
 from dataclasses import dataclass
 from functools import cached_property
@@ -238,9 +237,11 @@ def _locations(tree: xr.DataTree, obs: xr.Dataset, name: str) -> np.ndarray:
 
 def is_site_fit(tree: xr.DataTree) -> bool:
     """True when ``tree`` is a several-site fit (settings format of :mod:`bayesgeo.hierarchical`)."""
+    from bayesgeo.fitted import Fit
+
     try:
-        return json.loads(tree.attrs.get("settings", "{}")).get("format") == "bayesgeo several-site fit"
-    except (TypeError, ValueError, AttributeError):
+        return Fit(tree).several
+    except InputError:  # no bayesgeo settings: a bare posterior
         return False
 
 
@@ -287,9 +288,11 @@ class SiteFitArrays:
 
 def _source_sha256(tree) -> str:
     """SHA-256 of the fitted data file recorded in the fit's settings ('' when not recorded)."""
+    from bayesgeo.fitted import Fit
+
     try:
-        return str(json.loads(tree.attrs["settings"]).get("data", {}).get("source_sha256", "") or "")
-    except (KeyError, TypeError, ValueError, AttributeError):
+        return str(Fit(tree).settings.get("data", {}).get("source_sha256", "") or "")
+    except InputError:
         return ""
 
 

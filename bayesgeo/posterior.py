@@ -347,10 +347,13 @@ def summary_table(tree: xr.DataTree, *, var_names: Sequence[str] | None = None, 
     return rows
 
 
-def fit_report(tree: xr.DataTree) -> dict:
-    """The fit as one JSON-able dict: parameters (data units), sampler, diagnostics, cautions, settings."""
-    settings = json.loads(tree.attrs["settings"])
-    spec = fit_spec(tree)
+def fit_report(fit) -> dict:
+    """The fit (:class:`bayesgeo.fitted.Fit` or its tree) as one JSON-able dict: parameters (data units),
+    sampler, diagnostics, cautions, settings."""
+    from bayesgeo.fitted import as_fit
+
+    fit = as_fit(fit)
+    tree, settings, spec = fit.tree, fit.settings, fit.spec
     rows = summary_table(tree)
     params = {r["parameter"]: {k: v for k, v in r.items() if k != "parameter"} for r in rows}
     if not spec.nugget:
@@ -358,7 +361,7 @@ def fit_report(tree: xr.DataTree) -> dict:
         params["nugget"] = {**zero, "units": f"({spec.model_units})^2", "fixed": True}
         params["nugget_ratio"] = {**zero, "units": "1", "fixed": True}
     smp = settings["sampler"]
-    diag = json.loads(tree.attrs["diagnostics"]) if "diagnostics" in tree.attrs else None
+    diag = fit.diagnostics
     return to_jsonable({
         "parameters": params,
         "sampler": {"name": smp["sampler"], "chains": smp["chains"], "draws": smp["draws"], "tune": smp["tune"],
@@ -369,12 +372,12 @@ def fit_report(tree: xr.DataTree) -> dict:
                     **report_fields(smp)},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
-        "approximation": approximation_of(tree),
+        "approximation": fit.approximation,
         "model": {"covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget, "trend": spec.trend,
                   "covariates": list(spec.covariates), "transform": spec.transform, "n": spec.n,
                   "value_units": spec.model_units, "distance_units": spec.distance_units,
                   "priors": spec.priors.to_dict()},
-        "cautions": json.loads(tree.attrs.get("cautions", "[]")),
+        "cautions": fit.cautions,
     })
 
 
