@@ -347,12 +347,13 @@ def with_site_diagnostics(tree: xr.DataTree, diagnostics) -> xr.DataTree:
     import json
 
     from bayesgeo.hierarchical import site_cautions, site_spec
+    from bayesgeo.posterior import approximation_of
 
     out = tree.copy()
     diag = to_jsonable(dict(diagnostics))
     out.attrs["diagnostics"] = json.dumps(diag)
     out.attrs["cautions"] = json.dumps(site_cautions(site_spec(tree), tree["posterior"].to_dataset(), diag,
-                                                     json.loads(tree.attrs.get("approximation", "{}"))))
+                                                     approximation_of(tree) or {}))
     return out
 
 

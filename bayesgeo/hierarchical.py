@@ -447,9 +447,9 @@ def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
            "sampler": settings.get("sampler", {}), "versions": settings.get("versions", {}),
            "data": settings.get("data", {}),
            "extracted_from": {"format": settings.get("format"), "pooling": spec.pooling, "site": site}}
-    from bayesgeo.posterior import cautions
+    from bayesgeo.posterior import approximation_of, cautions
 
-    appr = json.loads(tree.attrs.get("approximation", "{}")).get(site)
+    appr = (approximation_of(tree) or {}).get(site)
     cav = cautions(fs, groups["/posterior"], approximation=appr)
     cav.append(f"Site {site!r} extracted from a {spec.pooling} several-site fit: its parameters borrow strength "
                "from the other sites." if spec.pooling != "independent"
