@@ -44,6 +44,7 @@ from scipy.linalg import blas
 from bayesgeo.covariance import Covariance, get_covariance
 from bayesgeo.geometry import cross_distance, distance_matrix
 from bayesgeo.validate import InputError
+from bayesgeo.defaults import JITTER
 
 __all__ = [
     "CAUTION",
@@ -66,8 +67,6 @@ CAUTION = (
     "reviewed by a licensed professional."
 )
 
-#: Relative jitter on the data-covariance diagonal (same policy as the model's likelihood).
-JITTER = 1e-6
 _FAMILY_CODE = {"exponential": 0, "matern32": 1, "matern52": 2, "gaussian": 3, "spherical": 4}
 _TINY = 1e-300
 _PAD = 16

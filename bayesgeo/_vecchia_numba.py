@@ -28,10 +28,11 @@ import math
 import numba
 import numpy as np
 
-from bayesgeo.likelihood import JITTER, _dlog, _rho
+from bayesgeo.likelihood import _dlog, _rho
 
-_LOG2PI = 1.8378770664093453
-_EARTH_RADIUS_KM = 6371.0088  # same as bayesgeo.geometry.EARTH_RADIUS_KM
+from bayesgeo.defaults import JITTER
+from bayesgeo.defaults import EARTH_RADIUS_KM as _EARTH_RADIUS_KM, LOG_2PI as _LOG2PI
+
 _DEG = math.pi / 180.0
 
 

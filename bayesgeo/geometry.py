@@ -8,11 +8,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from bayesgeo.defaults import EARTH_RADIUS_KM
+
 __all__ = ["EARTH_RADIUS_KM", "METRICS", "distance_matrix", "cross_distance", "metric_of", "continuous_longitudes",
            "wrap_longitudes_near"]
 
-#: Mean Earth radius in km (IUGG value, Moritz 2000, Geodetic Reference System 1980).
-EARTH_RADIUS_KM = 6371.0088
 
 METRICS = ("euclidean", "greatcircle")
 

@@ -71,6 +71,7 @@ from bayesgeo.priors import Priors
 from bayesgeo.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, SMALL_SITE_POLICIES, PARAMETRISATIONS,
                                   POOLINGS, SiteData, SiteSpec, site_inputs)
 from bayesgeo.validate import InputError
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
 __all__ = [
     "POOLINGS",
@@ -249,7 +250,7 @@ def _site_effect(name: str, mu, spread, w: np.ndarray, dims):
 def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None, nugget: bool = True,
               trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None,
               pooling: str = "hierarchical", priors: Priors | Mapping | None = None, small_sites: str = "error",
-              sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
+              sampler: str = "nutpie", chains: int = CHAINS, draws: int = DRAWS, tune: int = TUNE,
               target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
               adaptation: str = "low_rank", parametrisation: str = "noncentred", approx: str = "auto",
               neighbours: int | None = None, max_draws: int | None = None) -> xr.DataTree:

@@ -26,6 +26,7 @@ from bayesgeo.looks import longest_chain
 from bayesgeo.posterior import fit
 from bayesgeo.sampling import new_seed
 from bayesgeo.validate import InputError
+from bayesgeo.defaults import DRAWS, TUNE
 
 __all__ = ["fit_until_converged"]
 
@@ -37,8 +38,8 @@ def _attempt_seed(seed: int, attempt: int) -> int:
     return int(np.random.SeedSequence([int(seed), attempt]).generate_state(1)[0] % (2**31 - 1))
 
 
-def fit_until_converged(ds: xr.Dataset, *, budget_minutes: float, seed: int | None = None, draws: int = 1000,
-                        tune: int = 1000, max_attempts: int = 5, thresholds=None,
+def fit_until_converged(ds: xr.Dataset, *, budget_minutes: float, seed: int | None = None, draws: int = DRAWS,
+                        tune: int = TUNE, max_attempts: int = 5, thresholds=None,
                         **fit_kwargs) -> tuple[xr.DataTree, Convergence]:
     """Fit, check, and fit again with fresh chains and doubled tuning and draws while the check fails.
 

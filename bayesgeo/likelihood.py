@@ -48,17 +48,15 @@ from scipy import linalg
 
 from bayesgeo import _lapack
 from bayesgeo.covariance import Covariance
+from bayesgeo.defaults import JITTER, LOG_2PI as _LOG2PI
 
 __all__ = ["FAST_FAMILIES", "JITTER", "covariance_matrix", "loglik_and_grad", "loglik_numpy", "marginal_loglik",
            "solve_covariance"]
 
-#: Relative jitter added to the diagonal (times the partial sill).
-JITTER = 1e-6
 
 #: Families with a closed-form Numba kernel; the general ``matern`` uses the reference graph.
 FAST_FAMILIES: tuple[str, ...] = ("exponential", "matern32", "matern52", "gaussian", "spherical")
 
-_LOG2PI = math.log(2.0 * math.pi)
 _TILE = 32  # tile edge for the mirrored (row/column) passes over the matrix: 2 x 8 kB in L1
 
 

@@ -54,6 +54,7 @@ from bayesgeo.model import FitSpec
 from bayesgeo.posterior import fit_spec
 from bayesgeo.trend import design_at
 from bayesgeo.validate import InputError
+from bayesgeo.defaults import LOG_2PI as _LOG2PI
 
 __all__ = [
     "FitArrays",
@@ -68,7 +69,6 @@ __all__ = [
     "add_log_likelihood",
 ]
 
-_LOG2PI = math.log(2.0 * math.pi)
 _PARAMS = ("practical_range_z", "sd_z", "beta_z")
 
 

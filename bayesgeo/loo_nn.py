@@ -65,7 +65,6 @@ as :func:`bayesgeo.loo.loo_predictive`, so PSIS-LOO (:func:`bayesgeo.modelcheck.
 
 from __future__ import annotations
 
-import math
 from concurrent.futures import ThreadPoolExecutor
 
 import numba
@@ -74,9 +73,10 @@ import xarray as xr
 from scipy.spatial import cKDTree
 
 from bayesgeo import _vecchia_numba as _nb
-from bayesgeo.likelihood import JITTER
+from bayesgeo.defaults import JITTER
 from bayesgeo.loo import FitArrays, _predictive_dataset
 from bayesgeo.vecchia import _METRICS, _as_xy, _check_m, _family, _search_points
+from bayesgeo.defaults import LOG_2PI as _LOG2PI
 
 __all__ = [
     "DEFAULT_LOO_NEIGHBOURS",
@@ -89,7 +89,6 @@ __all__ = [
 #: Smallest number of neighbours of the nearest-neighbour leave-one-out (module docstring).
 DEFAULT_LOO_NEIGHBOURS = 30
 
-_LOG2PI = math.log(2.0 * math.pi)
 _PAIRS_PER_CHUNK = 200_000  # (point, draw) pairs per chunk: progress updates a few times a second
 
 

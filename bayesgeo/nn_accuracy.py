@@ -57,12 +57,12 @@ from scipy import optimize
 
 from bayesgeo.covariance import Covariance
 from bayesgeo.geometry import _haversine
-from bayesgeo.likelihood import JITTER
+from bayesgeo.defaults import JITTER
 from bayesgeo.vecchia import _as_xy, _family, _ordering, maximin_order, nearest_previous
+from bayesgeo.defaults import LOG_2PI as _LOG2PI
 
 __all__ = ["NNBlocks", "expected_nn_loglik", "nn_blocks", "nn_information", "nn_pseudo_true", "window"]
 
-_LOG2PI = float(np.log(2.0 * np.pi))
 
 
 class NNBlocks:

@@ -38,6 +38,7 @@ from bayesgeo.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks
 from bayesgeo.sampling import new_seed
 from bayesgeo.trend_posterior import draw_trend
 from bayesgeo.validate import InputError
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
 __all__ = [
     "FIT_FILE",
@@ -209,7 +210,7 @@ def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Ma
 
 def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None, nugget: bool = True,
         trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None, priors=None,
-        sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
+        sampler: str = "nutpie", chains: int = CHAINS, draws: int = DRAWS, tune: int = TUNE,
         target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
         adaptation: str = "low_rank", approx: str = "auto", neighbours: int | None = None,
         max_draws: int | None = None) -> xr.DataTree:

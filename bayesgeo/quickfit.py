@@ -40,6 +40,7 @@ from scipy import linalg, optimize
 from bayesgeo.covariance import FAMILIES, Covariance, get_covariance
 from bayesgeo.geometry import distance_matrix, metric_of
 from bayesgeo.validate import InputError
+from bayesgeo.defaults import LOG_2PI as _LOG2PI
 
 __all__ = ["MAX_DENSE_POINTS", "QUICK_FAMILIES", "fit_wls", "fit_ml", "quick_fits"]
 
@@ -51,7 +52,6 @@ MAX_DENSE_POINTS = 3000
 QUICK_FAMILIES: tuple[str, ...] = tuple(f for f in FAMILIES if f != "matern")
 
 _PARAMS = ("nugget", "partial_sill", "scale")
-_LOG2PI = math.log(2.0 * math.pi)
 
 
 def _resolve(covariance: str | Covariance, nu: float | None) -> Covariance:
@@ -250,7 +250,7 @@ class _ProfileLik:
         self.n = len(z)
         # bayesgeo.likelihood imports PyTensor (about 1 s); import it only when a fit runs, so
         # `import bayesgeo` and the exploratory command stay quick.
-        from bayesgeo.likelihood import JITTER
+        from bayesgeo.defaults import JITTER
 
         self.jitter = JITTER
 

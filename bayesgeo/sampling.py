@@ -15,6 +15,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.validate import check_choice, check_float, check_int
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
 __all__ = ["SAMPLERS", "ADAPTATIONS", "CompiledModel", "chain_lengths", "compile_model", "first_draws", "sample",
            "new_seed"]
@@ -77,7 +78,7 @@ def new_seed() -> int:
     return int(np.random.SeedSequence().entropy % (2**31 - 1))
 
 
-def sample(model, *, sampler: str = "nutpie", chains: int = 4, draws: int = 1000, tune: int = 1000,
+def sample(model, *, sampler: str = "nutpie", chains: int = CHAINS, draws: int = DRAWS, tune: int = TUNE,
            target_accept: float = 0.8, seed: int | None = None, progressbar: bool = False,
            adaptation: str = "low_rank", cores: int | None = None, max_draws: int | None = None,
            look=None):

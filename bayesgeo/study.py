@@ -19,6 +19,7 @@ from typing import Any
 
 from bayesgeo.covariance import FAMILIES
 from bayesgeo.validate import INT_LIMITS, InputError, check_float, check_int, check_prior_pair
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
 #: Poolings a study may name: one site, or the several-site models of :mod:`bayesgeo.hierarchical`.
 POOLINGS = ("single", "hierarchical", "independent", "complete")
@@ -76,11 +77,11 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     },
     "sampler": {
         "name": ("str", "nutpie", ("nutpie", "pymc"), "NUTS implementation"),
-        "chains": ("int", 4, None, "chains"),
-        "draws": ("int", 1000, None, "kept draws per chain"),
+        "chains": ("int", CHAINS, None, "chains"),
+        "draws": ("int", DRAWS, None, "kept draws per chain"),
         "max_draws": ("int", None, None, "continue the same chains up to this many draws per chain while R-hat or "
                                          "ESS is too poor (default 4 x draws; equal to draws: off)"),
-        "tune": ("int", 1000, None, "tuning iterations per chain"),
+        "tune": ("int", TUNE, None, "tuning iterations per chain"),
         "target_accept": ("float", None, None, "target acceptance rate, in (0, 1) (default 0.8, 0.9 for several-site "
                                                "models, and a fit whose draws hold divergent transitions is sampled "
                                                "once more at 0.9, 0.95; a value given here is used as it is)"),

@@ -67,7 +67,8 @@ from scipy.spatial import cKDTree
 
 from bayesgeo import _vecchia_numba as _nb
 from bayesgeo.covariance import Covariance, get_covariance
-from bayesgeo.likelihood import FAST_FAMILIES, JITTER
+from bayesgeo.likelihood import FAST_FAMILIES
+from bayesgeo.defaults import JITTER
 
 __all__ = [
     "DEFAULT_NEIGHBOURS",

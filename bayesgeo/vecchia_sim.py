@@ -58,7 +58,8 @@ import numpy as np
 
 from bayesgeo import _vecchia_numba as _nb
 from bayesgeo.covariance import Covariance, get_covariance
-from bayesgeo.likelihood import JITTER, _rho
+from bayesgeo.likelihood import _rho
+from bayesgeo.defaults import JITTER
 from bayesgeo.vecchia import DEFAULT_NEIGHBOURS, _METRICS, _as_xy, _check_order, _family, _ordering, nearest_previous
 
 if TYPE_CHECKING:

@@ -33,6 +33,7 @@ import os
 from collections.abc import Mapping
 
 import numpy as np
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
 __all__ = ["FIT_COMFORTABLE_POINTS", "EXPLORE_COMFORTABLE_POINTS", "NOTICE_SECONDS", "fit_plan", "explore_plan",
            "gradient_seconds", "dense_memory_bytes", "physical_memory_bytes", "format_duration", "format_bytes"]
@@ -97,8 +98,8 @@ def _cores() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int | None = None, chains: int = 4,
-             draws: int = 1000, tune: int = 1000, fits: int = 1, max_draws: int | None = None) -> dict:
+def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int | None = None, chains: int = CHAINS,
+             draws: int = DRAWS, tune: int = TUNE, fits: int = 1, max_draws: int | None = None) -> dict:
     """What a fit of sites of ``sizes`` points will do and roughly how long it will take.
 
     Parameters

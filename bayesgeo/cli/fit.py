@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
+
 HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one site's data, or to several "
         "sites at once with --site (hierarchical by default)")
 
@@ -35,13 +37,13 @@ def add_arguments(p) -> None:
                         "docs/large_data.md)")
     p.add_argument("--neighbours", type=int_option("neighbours"), default=None, metavar="M",
                    help="neighbours per point of the nn likelihood (default 20)")
-    p.add_argument("--draws", type=int_option("draws"), default=1000, help="kept draws per chain (default 1000)")
+    p.add_argument("--draws", type=int_option("draws"), default=DRAWS, help=f"kept draws per chain (default {DRAWS})")
     p.add_argument("--max-draws", type=int_option("draws"), default=None, metavar="N",
                    help="while the convergence check finds R-hat or ESS too poor, the same chains continue, looking "
                         "again at twice the draws, up to N draws per chain (default 4 x --draws; equal to --draws: "
                         "off; nutpie only); every look is recorded in fit.json")
-    p.add_argument("--tune", type=int_option("tune"), default=1000, help="tuning iterations per chain (default 1000)")
-    p.add_argument("--chains", type=int_option("chains"), default=4, help="chains (default 4)")
+    p.add_argument("--tune", type=int_option("tune"), default=TUNE, help=f"tuning iterations per chain (default {TUNE})")
+    p.add_argument("--chains", type=int_option("chains"), default=CHAINS, help=f"chains (default {CHAINS})")
     p.add_argument("--target-accept", type=float_option("probability"), default=None,
                    help="target acceptance rate (default 0.8, and a fit whose draws hold divergent transitions is sampled "
                         "once more at 0.9, recorded in fit.json; 0.9 with --site, whose population layer needs smaller "

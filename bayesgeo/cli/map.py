@@ -110,7 +110,6 @@ def run(args) -> int:
     from bayesgeo.cli._common import load_fit_folder
 
     fit = load_fit_folder(folder, args.site)
-    tree = fit.tree
     verdict = fit.gate_verdict()
     not_converged = verdict == "fail"
     if not_converged and not args.allow_unconverged:
