@@ -167,18 +167,53 @@ def site_areas(study: Study, sites: dict) -> dict[str, object]:
     return out
 
 
-def _map_options(pr: dict) -> list[str]:
-    mp = ["--margin", repr(pr["margin"]), "--draws", str(pr["draws"]), "--nugget", pr["nugget"],
-          "--seed", str(pr["seed"]), "--scheduler", "synchronous"]
-    if pr["cell"] is not None:
-        mp += ["--cell", repr(pr["cell"])]
-    if pr["points"] is not None:
-        mp += ["--points", str(pr["points"])]
-    for t in pr["thresholds"]:
-        mp += ["--threshold", repr(t)]
-    if pr["hull_mask"]:
-        mp += ["--hull-mask"]
-    return mp
+def _map_call(study: Study, fdir: Path, site: str | None = None, area=None) -> dict:
+    """Keyword arguments of :func:`bayesgeo.stages.maps.map_fit` for one map stage of ``study``."""
+    pr = study.settings["prediction"]
+    return {"folder": fdir, "site": site, "cell": pr["cell"], "margin": pr["margin"], "points": pr["points"],
+            "thresholds": list(pr["thresholds"]), "area": None if area is None else _area_arg(area),
+            "draws": pr["draws"], "nugget": pr["nugget"], "hull_mask": pr["hull_mask"], "scheduler": "synchronous",
+            "seed": pr["seed"]}
+
+
+def _map_argv(kw: dict) -> list[str]:
+    """The ``bayesgeo map`` command line of the call ``kw`` (what the manifest records)."""
+    argv = ["map", str(kw["folder"])]
+    if kw["site"] is not None:
+        argv += ["--site", kw["site"]]
+    argv += ["--margin", repr(kw["margin"]), "--draws", str(kw["draws"]), "--nugget", kw["nugget"],
+             "--seed", str(kw["seed"]), "--scheduler", kw["scheduler"]]
+    if kw["cell"] is not None:
+        argv += ["--cell", repr(kw["cell"])]
+    if kw["points"] is not None:
+        argv += ["--points", str(kw["points"])]
+    for t in kw["thresholds"]:
+        argv += ["--threshold", repr(t)]
+    if kw["hull_mask"]:
+        argv += ["--hull-mask"]
+    if kw["area"] is not None:
+        argv += ["--area", kw["area"]]
+    return argv
+
+
+def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, tuple[Callable, dict]]:
+    """The stages of ``study`` run through a stage function (:mod:`bayesgeo.stages`), keyed as in
+    :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
+    from bayesgeo.stages.maps import map_fit
+
+    root = Path(root)
+    calls: dict[str, tuple[Callable, dict]] = {}
+    if study.several_sites:
+        sites = study_sites(study) if sites is None else sites
+        areas = site_areas(study, sites)
+        for fam in study.families:
+            for site in sites:
+                calls[f"map:{fam}:{site}"] = (map_fit, _map_call(study, root / "fits" / fam, site, areas.get(site)))
+    else:
+        areas = areas_of(study.settings["prediction"]["area"])
+        for fam in study.families:
+            calls[f"map:{fam}"] = (map_fit, _map_call(study, root / "fits" / fam, None, areas[0] if areas else None))
+    return calls
 
 
 def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, list[str]]:
@@ -206,10 +241,7 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         cmds[f"variogram-check:{fam}"] = ["variogram-check", str(fdir), "--replicates", str(ck["replicates"]),
                                           "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
-        mp = ["map", str(fdir), *_map_options(pr)]
-        if areas:
-            mp += ["--area", _area_arg(areas[0])]
-        cmds[f"map:{fam}"] = mp
+        cmds[f"map:{fam}"] = _map_argv(_map_call(study, fdir, None, areas[0] if areas else None))
     if len(study.families) > 1:
         cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
     return cmds
@@ -249,7 +281,7 @@ def _fit_options(study: Study, fam: str) -> list[str]:
 def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]]:
     """Stage commands of a several-site study (see :func:`stage_commands`)."""
     s = study.settings
-    ck, pr, e = s["check"], s["prediction"], s["explore"]
+    ck, e = s["check"], s["explore"]
     data = _data_options(s)
     areas = site_areas(study, sites)
     cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
@@ -265,10 +297,7 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
                 "variogram-check", str(fdir), "--site", site, "--replicates", str(ck["replicates"]),
                 "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
         for site in sites:
-            mp = ["map", str(fdir), "--site", site, *_map_options(pr)]
-            if site in areas:
-                mp += ["--area", _area_arg(areas[site])]
-            cmds[f"map:{fam}:{site}"] = mp
+            cmds[f"map:{fam}:{site}"] = _map_argv(_map_call(study, fdir, site, areas.get(site)))
     if len(study.families) > 1:
         # several-site fits compare on all points, each conditioning on its own site (bayesgeo compare)
         cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
@@ -345,6 +374,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             if not (tmp / "inputs" / name).exists():
                 shutil.copy2(p, tmp / "inputs" / name)
         cmds = stage_commands(study, tmp, sites=sites or None)
+        calls = stage_calls(study, tmp, sites=sites or None)
         order = list(cmds)  # explore, then per family: fit, check, variogram checks, maps; compare last
         n_stages = len(order) + 1
         stop = False
@@ -358,7 +388,12 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             say(f"[{k}/{n_stages}] {name.replace(':', ' ')}")
             t0 = time.perf_counter()
             try:
-                rc, obj = _command(cmds[name])
+                if name in calls:  # a stage function, called directly
+                    fn, kw = calls[name]
+                    with outputs.scope():
+                        rc, obj = fn(**kw)
+                else:
+                    rc, obj = _command(cmds[name])
             except InputError:
                 if name == "explore" or name.startswith("fit:"):
                     raise  # bad data or settings: nothing is written

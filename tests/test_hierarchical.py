@@ -447,7 +447,7 @@ def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
     xy = hier["constant_data"]["x"].values[:3], hier["constant_data"]["y"].values[:3]
     pts.write_text("x,y\n" + "".join(f"{a + 1.5},{b - 2.5}\n" for a, b in zip(*xy)))
     assert main(["map", str(out), "--points", str(pts), "--json"]) == 2
-    assert "--site NAME (sites: P1, P2, P3)" in capsys.readouterr().err
+    assert "holds a several-site fit; choose one site (sites: P1, P2, P3)" in capsys.readouterr().err
     code = main(["map", str(out), "--site", "P2", "--points", str(pts), "--draws", "40", "--no-figures",
                  "--allow-unconverged", "--json"])
     assert code == 0

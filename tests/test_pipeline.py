@@ -36,6 +36,27 @@ def test_stage_commands_parse(tmp_path):
     assert "compare" not in stage_commands(single, tmp_path / "r2")
 
 
+def test_map_stage_call_is_the_recorded_command(tmp_path):
+    """A study runs its map stages through the stage function bayesgeo.stages.maps.map_fit; the command the
+    manifest records for each (stage_commands) parses (argparse is the reference) to the same settings as the
+    keyword arguments of the call, so re-running the recorded command redoes the stage."""
+    from bayesgeo.cli.map import _draws
+    from bayesgeo.pipeline import stage_calls
+    from bayesgeo.stages.maps import map_fit
+
+    study = read_study(write_tiny_study(tmp_path, families=("exponential", "matern32")))
+    cmds, calls = stage_commands(study, tmp_path / "run"), stage_calls(study, tmp_path / "run")
+    assert sorted(calls) == ["map:exponential", "map:matern32"]
+    parser = _build_parser()
+    for name, (fn, kw) in calls.items():
+        assert fn is map_fit
+        a = parser.parse_args(cmds[name])
+        assert (a.dir, a.site, a.cell, a.margin, a.threshold, a.area, _draws(a.draws), a.nugget, a.hull_mask,
+                a.seed, a.scheduler) == (str(kw["folder"]), kw["site"], kw["cell"], kw["margin"], kw["thresholds"],
+                                         kw["area"], _draws(kw["draws"]), kw["nugget"], kw["hull_mask"], kw["seed"],
+                                         kw["scheduler"])
+
+
 def test_bad_study_and_existing_output_exit_2(tmp_path, capsys):
     """Bad input exits 2 with one line naming the study file's line (issue 8 requirement); an existing run
     folder is refused before any work."""
@@ -104,11 +125,13 @@ def test_stage_error_is_recorded(tmp_path, monkeypatch):
     import bayesgeo.pipeline as pl
 
     def fake(argv):
-        if argv[0] == "map":
-            raise RuntimeError("boom")
         return (0, {"verdict": "pass"}) if argv[0] == "check" else (0, {})
 
+    def boom(folder, **kw):  # the map stage is a stage function the run calls directly
+        raise RuntimeError("boom")
+
     monkeypatch.setattr(pl, "_command", fake)
+    monkeypatch.setattr("bayesgeo.stages.maps.map_fit", boom)
     res = run_study(write_tiny_study(tmp_path), out=tmp_path / "run")
     assert res["status"] == 1 and res["verdicts"]["map:exponential"] == "failed"
     manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
@@ -227,7 +250,12 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
         calls.append([a for a in argv if a in ("explore", "fit", "check", "variogram-check", "map", "a-yard", "b-pit")])
         return (0, {"verdict": "warn"}) if argv[0] == "check" else (0, {})
 
+    def ok_map(folder, *, site=None, **kw):
+        calls.append(["map", site])
+        return 0, {}
+
     monkeypatch.setattr(pl, "_command", ok)
+    monkeypatch.setattr("bayesgeo.stages.maps.map_fit", ok_map)
     res = run_study(write_sites_study(tmp_path), out=tmp_path / "run")
     assert calls == [["explore"], ["fit"], ["check"], ["variogram-check", "a-yard"], ["variogram-check", "b-pit"],
                      ["map", "a-yard"], ["map", "b-pit"]]

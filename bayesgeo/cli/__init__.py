@@ -124,6 +124,22 @@ def _empty_option(parser, args) -> str | None:
     return None
 
 
+def _option_words(parser, args, message: str) -> str:
+    """A library message that starts with an argument name (``margin: ...``) starts with the command's
+    option instead (``--margin: ...``): the option of the same dest, or the command module's
+    ``ARGUMENT_OPTIONS`` where the names differ (library errors speak in argument names)."""
+    import re
+
+    m = re.match(r"([a-z][a-z0-9_]*):", message)
+    if not m:
+        return message
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices[args.command]
+    options = {a.dest: max(a.option_strings, key=len) for a in sub._actions if a.option_strings}
+    options.update(getattr(args._module, "ARGUMENT_OPTIONS", {}))
+    name = m.group(1)
+    return options[name] + message[len(name):] if name in options else message
+
+
 def _main(argv: list[str] | None) -> int:
     from bayesgeo.validate import InputError
 
@@ -149,7 +165,8 @@ def _main(argv: list[str] | None) -> int:
         sys.stdout.flush()  # a closed pipe shows here, inside the handler, not at interpreter exit
         return status
     except InputError as err:
-        print(f"bayesgeo {args.command}: error: {' '.join(str(err).split())}", file=sys.stderr)
+        message = _option_words(parser, args, " ".join(str(err).split()))
+        print(f"bayesgeo {args.command}: error: {message}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
         print(f"bayesgeo {args.command}: interrupted", file=sys.stderr)

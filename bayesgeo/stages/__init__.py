@@ -1,0 +1,20 @@
+"""Stage functions: the work of each command, shared by the command line and study runs.
+
+Each function takes keyword arguments (library names; errors name them, and the command line maps
+them to its options), writes its outputs into the fit or run folder atomically, and returns
+``(status, result)``: the exit status (0, or 3 when a fit failed its convergence check) and the
+JSON-able result that ``--json`` prints. The command modules in :mod:`bayesgeo.cli` parse, call one
+of these and print; :func:`bayesgeo.pipeline.run_study` calls them directly.
+"""
+
+from __future__ import annotations
+
+__all__ = ["map_fit"]
+
+
+def __getattr__(name):
+    if name == "map_fit":
+        from bayesgeo.stages.maps import map_fit
+
+        return map_fit
+    raise AttributeError(f"module 'bayesgeo.stages' has no attribute {name!r}")

@@ -1,0 +1,223 @@
+"""The map stage: predictive maps, exceedance probabilities and area averages from a saved fit.
+
+Reads the fit folder (``posterior.nc``), writes ``predictions.nc`` and ``maps/*.png`` into it (with
+a site: ``predictions_<site>.nc`` and ``maps_<site>/``). A fit that failed its convergence check is
+not mapped (status 3) unless ``allow_unconverged``; then every title and attribute says NOT CONVERGED.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+import numpy as np
+
+from bayesgeo.validate import INT_LIMITS, InputError, check_positive, check_positive_int
+
+__all__ = ["PREDICTIONS_FILE", "MAPS_DIR", "DEFAULT_DRAWS", "map_fit", "map_draws", "output_names"]
+
+PREDICTIONS_FILE = "predictions.nc"
+MAPS_DIR = "maps"
+DEFAULT_DRAWS = 500
+AREA_POINTS = 400
+MAX_SIM_TARGETS = 2000
+EXIT_NOT_CONVERGED = 3
+
+
+def map_draws(value) -> int | None:
+    """Posterior draws used for prediction: an integer within the limits, or ``"all"`` / None (every draw)."""
+    if value is None or str(value).strip().lower() == "all":
+        return None
+    lo, hi = INT_LIMITS["prediction_draws"]
+    try:
+        n = int(str(value).strip(), 10)
+    except ValueError:
+        n = 0
+    if not lo <= n <= hi:
+        raise InputError(f"draws: expected an integer from {lo} to {hi} or 'all', got {value!r}")
+    return n
+
+
+def output_names(site: str | None) -> tuple[str, str]:
+    """File names of the predictions and the maps folder (per site: a safe, distinct suffix)."""
+    if site is None:
+        return PREDICTIONS_FILE, MAPS_DIR
+    from bayesgeo.sitenames import site_file_name
+
+    slug = site_file_name(site)
+    return f"{Path(PREDICTIONS_FILE).stem}_{slug}.nc", f"{MAPS_DIR}_{slug}"
+
+
+def map_fit(folder, *, site: str | None = None, cell: float | None = None, margin: float = 0.0,
+            points: str | Path | None = None, thresholds: Sequence[float] = (), area: str | None = None,
+            draws=DEFAULT_DRAWS, nugget: str = "include", hull_mask: bool = False, scheduler: str = "threads",
+            chunk_cells: int = 4096, simulate: int = 0, seed: int = 0, overwrite: bool = False,
+            allow_unconverged: bool = False, figures: bool = True,
+            progress: Callable | None = None) -> tuple[int, dict]:
+    """Predict on a grid (or at ``points``) from the fit in ``folder`` and write predictions and maps.
+
+    Parameters
+    ----------
+    folder : path
+        Fit folder holding ``posterior.nc``.
+    site : str, optional
+        The site of a several-site fit to map (required for one, refused for a single-site fit).
+    cell, margin, hull_mask :
+        Grid cell side and widening (distance units); leave out cells outside the convex hull.
+    points : path, optional
+        CSV of target points instead of a grid (:func:`bayesgeo.targets.read_target_points`).
+    thresholds : sequence of float
+        Levels (data units) whose exceedance probabilities are mapped.
+    area : str, optional
+        A polygon CSV path or ``"xmin,ymin,xmax,ymax"``: the block average over it is reported.
+    draws : int, "all" or None
+        Posterior draws used (evenly spaced).
+    nugget : {"include", "exclude"}
+        Predict a new measurement (field + nugget) or the field.
+    scheduler, chunk_cells :
+        :func:`bayesgeo.predict.predict_targets` settings.
+    simulate, seed :
+        Joint conditional simulations per draw at the targets (at most 2,000 targets), and their seed
+        (also that of the area average).
+    overwrite, allow_unconverged, figures :
+        Replace earlier outputs; map a fit that failed its check (marked NOT CONVERGED); draw the maps.
+    progress : callable, optional
+        Bar factory ``progress(total=, desc=)`` (:func:`bayesgeo.cli._common.progress`); None for none.
+
+    Returns
+    -------
+    (status, result)
+        0 and the result (files written, cells, draws, ranges of mean and sd, share of cells with
+        P(exceed) > 0.5 per threshold, area average, cautions), or 3 and ``{"error", "convergence",
+        "exit_status"}`` for a fit that failed its convergence check.
+    """
+    from bayesgeo import targets as tg
+    from bayesgeo.fitted import Fit
+    from bayesgeo.outputs import add_to_folder, check_addable
+    from bayesgeo.predict import (area_average, basis_from_fit, check_scheduler, prediction_cautions,
+                                  predict_targets)
+    from bayesgeo.trend import design_at
+
+    folder = Path(folder)
+    draws = map_draws(draws)
+    check_scheduler(scheduler)
+    chunk = check_positive_int(chunk_cells, "chunk_cells")
+    if cell is not None:
+        check_positive(cell, "cell")
+    if not (np.isfinite(margin) and margin >= 0):
+        raise InputError(f"margin: expected a number >= 0, got {margin!r}")
+    if nugget not in ("include", "exclude"):
+        raise InputError(f"nugget: expected 'include' or 'exclude', got {nugget!r}")
+    area_vertices = tg.area_from_option(str(area)) if area else None
+    if simulate < 0:
+        raise InputError(f"simulate: expected an integer >= 0, got {simulate}")
+    nc_name, maps_name = output_names(site)
+    out_nc, out_maps = folder / nc_name, folder / maps_name
+    check_addable(folder, nc_name, overwrite=overwrite)
+    if figures:
+        check_addable(folder, maps_name, overwrite=overwrite)
+
+    fit = Fit.read(folder)
+    if fit.several and site is None:
+        raise InputError(f"site: {folder} holds a several-site fit; choose one site (sites: {', '.join(fit.sites)})")
+    if not fit.several and site is not None:
+        raise InputError(f"site: {folder} holds a single-site fit; drop the site")
+    fit = fit.site(site)
+    verdict = fit.gate_verdict()
+    not_converged = verdict == "fail"
+    if not_converged and not allow_unconverged:
+        msg = (f"{folder}: the posterior failed the convergence check (run 'bayesgeo check {folder}' for the "
+               "reasons); refit, or pass --allow-unconverged to map it anyway, marked NOT CONVERGED")
+        return EXIT_NOT_CONVERGED, {"error": msg, "convergence": verdict, "exit_status": EXIT_NOT_CONVERGED}
+
+    basis, spec, params = basis_from_fit(fit, draws=draws)
+    xy = basis.xy
+    if points:
+        targets = tg.read_target_points(points, columns=tuple(spec.covariates))
+        if hull_mask:
+            targets["inside"] = ("target", tg.hull_mask(xy, np.column_stack([targets["x"], targets["y"]])))
+    else:
+        targets = tg.grid_targets(xy, cell=cell, margin=margin, hull=hull_mask)
+    units = spec.value_units
+    n_cells = int(np.count_nonzero(targets["inside"].values))
+    area_pts = None  # refuse a bad area or simulation before the long prediction, not after it
+    if area_vertices is not None:
+        if spec.covariates:
+            raise InputError(f"area: the trend uses covariates ({', '.join(spec.covariates)}) that are unknown "
+                             "inside the area; area averages need a trend in the coordinates only")
+        area_pts = tg.discretise_area(area_vertices[0], points=AREA_POINTS)
+        tg.check_area_near_data(xy, area_pts, basis.metric)
+    if simulate and n_cells > MAX_SIM_TARGETS:
+        raise InputError(f"simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
+                         "(give target points or a coarser cell)")
+    bar = progress(total=max(1, -(-n_cells // chunk)), desc="map") if progress else None
+    pred = predict_targets(basis, targets, thresholds=thresholds, include_nugget=nugget == "include",
+                           design_attrs=spec.design_attrs, chunk_cells=chunk, scheduler=scheduler, units=units,
+                           progress=bar)
+    if bar is not None:
+        bar.close()
+    _refuse_non_finite(pred, targets["inside"], folder)
+
+    cautions = prediction_cautions(spec.transform, verdict)
+    block = None
+    if area_vertices is not None:
+        vertices, label = area_vertices
+        block = area_average(basis, area_pts, design_at(area_pts, spec.design_attrs), thresholds=thresholds,
+                             n_sim=200, seed=seed)
+        block.update(area=label, area_size=tg.polygon_area(vertices), units=units)
+    if simulate:
+        from bayesgeo.predict import simulate_targets
+
+        pred["simulation"] = simulate_targets(basis, targets, n_sim=simulate, seed=seed,
+                                              include_nugget=nugget == "include",
+                                              design_attrs=spec.design_attrs, units=units)
+        pred = pred.assign_coords(sample=np.arange(basis.n_draws))
+    pred.attrs.update({
+        "fit_folder": str(folder), "convergence_verdict": verdict, "draws_total": int(params.attrs["draws_total"]),
+        "value_units": units, "distance_units": spec.distance_units, "scheduler": str(scheduler),
+        "seed": int(seed), "cautions": json.dumps(cautions),
+    })
+    if not_converged:
+        pred.attrs["title"] = "NOT CONVERGED: " + pred.attrs["title"]
+        pred.attrs["convergence_status"] = "NOT CONVERGED"
+    if block is not None:
+        pred.attrs["area_average"] = json.dumps(block)
+    with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
+        pred.to_netcdf(tmp, engine="netcdf4")
+    maps = []
+    if figures:
+        from bayesgeo.map_figures import write_map_figures
+
+        with add_to_folder(folder, out_maps.name, overwrite=overwrite, kind="dir") as tmp:
+            written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),
+                                        not_converged=not_converged)
+        maps = [str(out_maps / p.name) for p in written]
+
+    result = {
+        "predictions": str(out_nc), "maps": maps, "targets": targets.attrs["kind"], "cells": n_cells,
+        "draws": basis.n_draws, "draws_total": int(params.attrs["draws_total"]),
+        "threshold": [float(t) for t in thresholds], "nugget": nugget, "units": units,
+        "simulations_per_draw": int(simulate),
+        "transform": spec.transform or "none", "convergence": verdict,
+        "summary": {k: {"min": float(np.nanmin(pred[k].values)), "max": float(np.nanmax(pred[k].values))}
+                    for k in ("mean", "sd")} if n_cells else {},
+        "share_p_exceed_over_half": [float(np.nanmean(pred["p_exceed"].values[j] > 0.5))
+                                     for j in range(len(thresholds))] if n_cells else [],
+        "cautions": cautions,
+    }
+    if block is not None:
+        result["area"] = block
+    return 0, result
+
+
+def _refuse_non_finite(pred, inside, folder) -> None:
+    """A NaN or infinite prediction at a predicted cell stops the map instead of an all-NaN band."""
+    for name in ("mean", "sd", "q05", "q50", "q95", "p_exceed"):
+        if name not in pred:
+            continue
+        bad = int((~np.isfinite(pred[name]) & inside).sum())
+        if bad:
+            raise InputError(f"{folder}: the prediction {name} is NaN or infinite at {bad} target(s) although the "
+                             "posterior draws are finite (a numerically singular kriging system?); no map written: "
+                             "check the fit ('bayesgeo check') and the targets")
