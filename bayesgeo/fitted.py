@@ -27,7 +27,7 @@ import xarray as xr
 
 from bayesgeo.validate import InputError
 
-__all__ = ["Fit", "NotConvergedError", "as_fit"]
+__all__ = ["Fit", "NotConvergedError", "as_fit", "read_site"]
 
 
 class NotConvergedError(RuntimeError):
@@ -307,3 +307,20 @@ class Fit:
 def as_fit(fit: Fit | xr.DataTree) -> Fit:
     """``fit`` itself, or a fit ``DataTree`` wrapped (its settings decoded here, once)."""
     return fit if isinstance(fit, Fit) else Fit(fit)
+
+
+def read_site(folder, site: str | None = None) -> Fit:
+    """The fit in ``folder`` (:meth:`Fit.read`) as one site: a single-site fit itself, or site ``site`` of a
+    several-site fit (:meth:`Fit.site`).
+
+    Raises
+    ------
+    InputError
+        No readable fit; a several-site fit without ``site``; a ``site`` for a single-site fit; an unknown site.
+    """
+    fit = Fit.read(folder)
+    if fit.several and site is None:
+        raise InputError(f"site: {folder} holds a several-site fit; choose one site (sites: {', '.join(fit.sites)})")
+    if not fit.several and site is not None:
+        raise InputError(f"site: {folder} holds a single-site fit; drop the site")
+    return fit.site(site)

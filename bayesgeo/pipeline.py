@@ -196,10 +196,26 @@ def _map_argv(kw: dict) -> list[str]:
     return argv
 
 
+def _vgcheck_call(study: Study, fdir: Path, site: str | None = None) -> dict:
+    """Keyword arguments of :func:`bayesgeo.stages.vgcheck.check_variogram` for one stage of ``study``."""
+    s = study.settings
+    return {"folder": fdir, "site": site, "replicates": s["check"]["replicates"], "bins": s["explore"]["bins"],
+            "seed": s["check"]["seed"]}
+
+
+def _vgcheck_argv(kw: dict) -> list[str]:
+    """The ``bayesgeo variogram-check`` command line of the call ``kw``."""
+    argv = ["variogram-check", str(kw["folder"])]
+    if kw["site"] is not None:
+        argv += ["--site", kw["site"]]
+    return argv + ["--replicates", str(kw["replicates"]), "--bins", str(kw["bins"]), "--seed", str(kw["seed"])]
+
+
 def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, tuple[Callable, dict]]:
     """The stages of ``study`` run through a stage function (:mod:`bayesgeo.stages`), keyed as in
     :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
     from bayesgeo.stages.maps import map_fit
+    from bayesgeo.stages.vgcheck import check_variogram
 
     root = Path(root)
     calls: dict[str, tuple[Callable, dict]] = {}
@@ -208,10 +224,13 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
         areas = site_areas(study, sites)
         for fam in study.families:
             for site in sites:
+                calls[f"variogram-check:{fam}:{site}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam, site))
+            for site in sites:
                 calls[f"map:{fam}:{site}"] = (map_fit, _map_call(study, root / "fits" / fam, site, areas.get(site)))
     else:
         areas = areas_of(study.settings["prediction"]["area"])
         for fam in study.families:
+            calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam))
             calls[f"map:{fam}"] = (map_fit, _map_call(study, root / "fits" / fam, None, areas[0] if areas else None))
     return calls
 
@@ -228,7 +247,7 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
     if study.several_sites:
         return _site_commands(study, Path(root), study_sites(study) if sites is None else sites)
     s, root = study.settings, Path(root)
-    m, pr, ck, e = s["model"], s["prediction"], s["check"], s["explore"]
+    m, pr = s["model"], s["prediction"]
     data = _data_options(s)
     cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
     areas = areas_of(pr["area"])
@@ -239,8 +258,7 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
             fit += ["--neighbours", str(m["neighbours"])]
         cmds[f"fit:{fam}"] = fit
         cmds[f"check:{fam}"] = ["check", str(fdir)]
-        cmds[f"variogram-check:{fam}"] = ["variogram-check", str(fdir), "--replicates", str(ck["replicates"]),
-                                          "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
+        cmds[f"variogram-check:{fam}"] = _vgcheck_argv(_vgcheck_call(study, fdir))
         cmds[f"map:{fam}"] = _map_argv(_map_call(study, fdir, None, areas[0] if areas else None))
     if len(study.families) > 1:
         cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
@@ -281,7 +299,6 @@ def _fit_options(study: Study, fam: str) -> list[str]:
 def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]]:
     """Stage commands of a several-site study (see :func:`stage_commands`)."""
     s = study.settings
-    ck, e = s["check"], s["explore"]
     data = _data_options(s)
     areas = site_areas(study, sites)
     cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
@@ -293,9 +310,7 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
             cmds[f"fit:{fam}"] += ["--neighbours", str(s["model"]["neighbours"])]
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         for site in sites:
-            cmds[f"variogram-check:{fam}:{site}"] = [
-                "variogram-check", str(fdir), "--site", site, "--replicates", str(ck["replicates"]),
-                "--bins", str(e["bins"]), "--seed", str(ck["seed"])]
+            cmds[f"variogram-check:{fam}:{site}"] = _vgcheck_argv(_vgcheck_call(study, fdir, site))
         for site in sites:
             cmds[f"map:{fam}:{site}"] = _map_argv(_map_call(study, fdir, site, areas.get(site)))
     if len(study.families) > 1:

@@ -318,7 +318,7 @@ def test_variogram_check_cli_site_option(tmp_path, capsys):
     import pandas as pd
 
     from bayesgeo.cli import main
-    from bayesgeo.cli.vgcheck import output_names
+    from bayesgeo.stages.vgcheck import output_names
     assert output_names(None) == ("variogram_check.png", "variogram_check.csv")
     png, csv = output_names("rail siding/2")  # an unsafe label: safe part + hash (bayesgeo.sitenames)
     assert png.startswith("variogram_check_rail_siding_2+") and png.endswith(".png") and csv == png[:-4] + ".csv"
@@ -328,7 +328,7 @@ def test_variogram_check_cli_site_option(tmp_path, capsys):
     tree.to_netcdf(tmp_path / "fit" / "posterior.nc", engine="netcdf4")
     assert main(["variogram-check", str(tmp_path / "fit"), "--site", "a-yard", "--json"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "holds a single-site fit; drop --site" in err[0]
+    assert len(err) == 1 and "--site: " in err[0] and "holds a single-site fit; drop the site" in err[0]
     assert main(["variogram-check", str(tmp_path / "fit"), "--replicates", "12", "--bins", "6", "--seed", "4",
                  "--json"]) == 0
     capsys.readouterr()

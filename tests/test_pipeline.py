@@ -37,18 +37,26 @@ def test_stage_commands_parse(tmp_path):
 
 
 def test_map_stage_call_is_the_recorded_command(tmp_path):
-    """A study runs its map stages through the stage function bayesgeo.stages.maps.map_fit; the command the
+    """A study runs its map and variogram-check stages through stage functions (bayesgeo.stages); the command the
     manifest records for each (stage_commands) parses (argparse is the reference) to the same settings as the
     keyword arguments of the call, so re-running the recorded command redoes the stage."""
     from bayesgeo.cli.map import _draws
     from bayesgeo.pipeline import stage_calls
     from bayesgeo.stages.maps import map_fit
+    from bayesgeo.stages.vgcheck import check_variogram
 
     study = read_study(write_tiny_study(tmp_path, families=("exponential", "matern32")))
     cmds, calls = stage_commands(study, tmp_path / "run"), stage_calls(study, tmp_path / "run")
-    assert sorted(calls) == ["map:exponential", "map:matern32"]
+    assert sorted(calls) == ["map:exponential", "map:matern32", "variogram-check:exponential",
+                             "variogram-check:matern32"]
     parser = _build_parser()
     for name, (fn, kw) in calls.items():
+        if name.startswith("variogram-check:"):
+            assert fn is check_variogram
+            a = parser.parse_args(cmds[name])
+            assert (a.dir, a.site, a.replicates, a.bins, a.seed) == (str(kw["folder"]), kw["site"], kw["replicates"],
+                                                                     kw["bins"], kw["seed"])
+            continue
         assert fn is map_fit
         a = parser.parse_args(cmds[name])
         assert (a.dir, a.site, a.cell, a.margin, a.threshold, a.area, _draws(a.draws), a.nugget, a.hull_mask,
@@ -254,8 +262,13 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
         calls.append(["map", site])
         return 0, {}
 
+    def ok_vgcheck(folder, *, site=None, **kw):
+        calls.append(["variogram-check", site])
+        return 0, {}
+
     monkeypatch.setattr(pl, "_command", ok)
     monkeypatch.setattr("bayesgeo.stages.maps.map_fit", ok_map)
+    monkeypatch.setattr("bayesgeo.stages.vgcheck.check_variogram", ok_vgcheck)
     res = run_study(write_sites_study(tmp_path), out=tmp_path / "run")
     assert calls == [["explore"], ["fit"], ["check"], ["variogram-check", "a-yard"], ["variogram-check", "b-pit"],
                      ["map", "a-yard"], ["map", "b-pit"]]

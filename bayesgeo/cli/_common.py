@@ -10,7 +10,7 @@ from collections.abc import Iterable
 import numpy as np
 from bayesgeo.io import to_jsonable
 
-__all__ = ["load_fit_folder", "add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table",
+__all__ = ["add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table",
            "refuse_renamed"]
 
 #: Options of earlier versions and their new names (a command given one stops with a one-line usage error).
@@ -100,21 +100,3 @@ def print_table(rows: list[dict], columns: list[str], *, file=None, floatfmt: st
             print("  ".join("-" * w for w in widths), file=file)
 
 
-def load_fit_folder(folder, site: str | None = None):
-    """The fit in ``folder`` as a :class:`bayesgeo.fitted.Fit` of one site; from a several-site fit, the site ``site``.
-
-    Raises
-    ------
-    InputError
-        No readable fit; a several-site fit without ``--site``; ``--site`` on a single-site fit;
-        an unknown site (the message lists the known ones).
-    """
-    from bayesgeo.fitted import Fit
-    from bayesgeo.validate import InputError
-
-    fit = Fit.read(folder)  # settings, groups, sizes and finite draws checked once, naming the file
-    if fit.several and site is None:
-        raise InputError(f"{folder}: a several-site fit; choose one site with --site NAME (sites: {', '.join(fit.sites)})")
-    if not fit.several and site is not None:
-        raise InputError(f"--site: {folder} holds a single-site fit; drop --site")
-    return fit.site(site)

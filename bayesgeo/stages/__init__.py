@@ -9,12 +9,14 @@ of these and print; :func:`bayesgeo.pipeline.run_study` calls them directly.
 
 from __future__ import annotations
 
-__all__ = ["map_fit"]
+__all__ = ["map_fit", "check_variogram"]
+
+_WHERE = {"map_fit": "bayesgeo.stages.maps", "check_variogram": "bayesgeo.stages.vgcheck"}
 
 
-def __getattr__(name):
-    if name == "map_fit":
-        from bayesgeo.stages.maps import map_fit
+def __getattr__(name):  # loaded on first use: a command imports only its own stage
+    if name in _WHERE:
+        import importlib
 
-        return map_fit
+        return getattr(importlib.import_module(_WHERE[name]), name)
     raise AttributeError(f"module 'bayesgeo.stages' has no attribute {name!r}")

@@ -93,7 +93,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         "exit_status"}`` for a fit that failed its convergence check.
     """
     from bayesgeo import targets as tg
-    from bayesgeo.fitted import Fit
+    from bayesgeo.fitted import read_site
     from bayesgeo.outputs import add_to_folder, check_addable
     from bayesgeo.predict import (area_average, basis_from_fit, check_scheduler, prediction_cautions,
                                   predict_targets)
@@ -118,12 +118,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     if figures:
         check_addable(folder, maps_name, overwrite=overwrite)
 
-    fit = Fit.read(folder)
-    if fit.several and site is None:
-        raise InputError(f"site: {folder} holds a several-site fit; choose one site (sites: {', '.join(fit.sites)})")
-    if not fit.several and site is not None:
-        raise InputError(f"site: {folder} holds a single-site fit; drop the site")
-    fit = fit.site(site)
+    fit = read_site(folder, site)
     verdict = fit.gate_verdict()
     not_converged = verdict == "fail"
     if not_converged and not allow_unconverged:
