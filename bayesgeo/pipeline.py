@@ -88,6 +88,16 @@ def _command(argv: Sequence[str]) -> tuple[int, dict]:
     return status, obj
 
 
+def _run_stage(argv: Sequence[str], call: tuple[Callable, dict] | None) -> tuple[int, dict]:
+    """Run one stage: its stage function with keyword arguments when it has one (:func:`stage_calls`),
+    else its command in-process; returns (status, result)."""
+    if call is None:
+        return _command(argv)
+    fn, kw = call
+    with outputs.scope():
+        return fn(**kw)
+
+
 def _data_options(s: dict) -> list[str]:
     d = s["data"]
     out = [str(d["path"])]
@@ -214,6 +224,7 @@ def _vgcheck_argv(kw: dict) -> list[str]:
 def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, tuple[Callable, dict]]:
     """The stages of ``study`` run through a stage function (:mod:`bayesgeo.stages`), keyed as in
     :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
+    from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
@@ -223,6 +234,7 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
         sites = study_sites(study) if sites is None else sites
         areas = site_areas(study, sites)
         for fam in study.families:
+            calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
             for site in sites:
                 calls[f"variogram-check:{fam}:{site}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam, site))
             for site in sites:
@@ -230,6 +242,7 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
     else:
         areas = areas_of(study.settings["prediction"]["area"])
         for fam in study.families:
+            calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
             calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam))
             calls[f"map:{fam}"] = (map_fit, _map_call(study, root / "fits" / fam, None, areas[0] if areas else None))
     return calls
@@ -403,12 +416,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             say(f"[{k}/{n_stages}] {name.replace(':', ' ')}")
             t0 = time.perf_counter()
             try:
-                if name in calls:  # a stage function, called directly
-                    fn, kw = calls[name]
-                    with outputs.scope():
-                        rc, obj = fn(**kw)
-                else:
-                    rc, obj = _command(cmds[name])
+                rc, obj = _run_stage(cmds[name], calls.get(name))
             except InputError:
                 if name == "explore" or name.startswith("fit:"):
                     raise  # bad data or settings: nothing is written

@@ -37,20 +37,24 @@ def test_stage_commands_parse(tmp_path):
 
 
 def test_map_stage_call_is_the_recorded_command(tmp_path):
-    """A study runs its map and variogram-check stages through stage functions (bayesgeo.stages); the command the
+    """A study runs its check, variogram-check and map stages through stage functions (bayesgeo.stages); the command the
     manifest records for each (stage_commands) parses (argparse is the reference) to the same settings as the
     keyword arguments of the call, so re-running the recorded command redoes the stage."""
     from bayesgeo.cli.map import _draws
     from bayesgeo.pipeline import stage_calls
+    from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
     study = read_study(write_tiny_study(tmp_path, families=("exponential", "matern32")))
     cmds, calls = stage_commands(study, tmp_path / "run"), stage_calls(study, tmp_path / "run")
-    assert sorted(calls) == ["map:exponential", "map:matern32", "variogram-check:exponential",
-                             "variogram-check:matern32"]
+    assert sorted(calls) == ["check:exponential", "check:matern32", "map:exponential", "map:matern32",
+                             "variogram-check:exponential", "variogram-check:matern32"]
     parser = _build_parser()
     for name, (fn, kw) in calls.items():
+        if name.startswith("check:"):
+            assert fn is check_fit and parser.parse_args(cmds[name]).dir == str(kw["folder"])
+            continue
         if name.startswith("variogram-check:"):
             assert fn is check_variogram
             a = parser.parse_args(cmds[name])
@@ -113,7 +117,7 @@ def test_failed_check_control_flow(tmp_path, monkeypatch):
             return 3, {"verdict": "fail"}
         raise AssertionError(f"stage {argv[0]} should have been skipped")
 
-    monkeypatch.setattr(pl, "_command", fake)
+    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: fake(argv))
     path = write_tiny_study(tmp_path, families=("exponential", "matern32"))
     res = run_study(path, out=tmp_path / "run")
     assert calls == ["explore", "fit", "check"]
@@ -133,13 +137,11 @@ def test_stage_error_is_recorded(tmp_path, monkeypatch):
     import bayesgeo.pipeline as pl
 
     def fake(argv):
+        if argv[0] == "map":
+            raise RuntimeError("boom")
         return (0, {"verdict": "pass"}) if argv[0] == "check" else (0, {})
 
-    def boom(folder, **kw):  # the map stage is a stage function the run calls directly
-        raise RuntimeError("boom")
-
-    monkeypatch.setattr(pl, "_command", fake)
-    monkeypatch.setattr("bayesgeo.stages.maps.map_fit", boom)
+    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: fake(argv))
     res = run_study(write_tiny_study(tmp_path), out=tmp_path / "run")
     assert res["status"] == 1 and res["verdicts"]["map:exponential"] == "failed"
     manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
@@ -258,17 +260,7 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
         calls.append([a for a in argv if a in ("explore", "fit", "check", "variogram-check", "map", "a-yard", "b-pit")])
         return (0, {"verdict": "warn"}) if argv[0] == "check" else (0, {})
 
-    def ok_map(folder, *, site=None, **kw):
-        calls.append(["map", site])
-        return 0, {}
-
-    def ok_vgcheck(folder, *, site=None, **kw):
-        calls.append(["variogram-check", site])
-        return 0, {}
-
-    monkeypatch.setattr(pl, "_command", ok)
-    monkeypatch.setattr("bayesgeo.stages.maps.map_fit", ok_map)
-    monkeypatch.setattr("bayesgeo.stages.vgcheck.check_variogram", ok_vgcheck)
+    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: ok(argv))
     res = run_study(write_sites_study(tmp_path), out=tmp_path / "run")
     assert calls == [["explore"], ["fit"], ["check"], ["variogram-check", "a-yard"], ["variogram-check", "b-pit"],
                      ["map", "a-yard"], ["map", "b-pit"]]
@@ -280,7 +272,7 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
     def fail(argv):
         return {"explore": (0, {}), "fit": (3, {}), "check": (3, {"verdict": "fail"})}[argv[0]]
 
-    monkeypatch.setattr(pl, "_command", fail)
+    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: fail(argv))
     res = run_study(write_sites_study(tmp_path), out=tmp_path / "run2")
     assert res["status"] == 3
     manifest = json.loads((tmp_path / "run2" / "manifest.json").read_text())
