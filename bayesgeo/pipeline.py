@@ -225,6 +225,7 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
     """The stages of ``study`` run through a stage function (:mod:`bayesgeo.stages`), keyed as in
     :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
     from bayesgeo.stages.check import check_fit
+    from bayesgeo.stages.compare import compare_folders
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
@@ -245,6 +246,9 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
             calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
             calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam))
             calls[f"map:{fam}"] = (map_fit, _map_call(study, root / "fits" / fam, None, areas[0] if areas else None))
+    if len(study.families) > 1:
+        calls["compare"] = (compare_folders, {"dirs": [root / "fits" / f for f in study.families],
+                                              "out": root / "compare"})
     return calls
 
 
@@ -433,6 +437,8 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             if "error" in obj:
                 rec["error"] = obj["error"]
             rec["verdict"] = verdict
+            if name == "compare" and rc == 0 and obj.get("ranking"):
+                selected = obj["ranking"][0]["fit"]  # the best-ranked family's predictions go to the top
             manifest["stages"].append(rec)
             manifest["verdicts"][name] = verdict
             if name.startswith(("fit:", "check:")) and rc == EXIT_NOT_CONVERGED:
@@ -447,9 +453,6 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
                     status = EXIT_STAGE_FAILED
                 message = f"stage {name} failed: {obj.get('error', 'see the report')}" if status != EXIT_NOT_CONVERGED \
                     else message
-        if "compare" in manifest["verdicts"] and manifest["verdicts"]["compare"] == "done":
-            comp = json.loads((tmp / "compare" / "comparison.json").read_text())
-            selected = comp["ranking"][0]["fit"]
         _copy_outputs(tmp, selected)
         manifest["selected"] = selected
         manifest["status"] = status

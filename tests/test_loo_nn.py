@@ -214,7 +214,7 @@ def test_compare_shows_progress_of_the_nn_leave_one_out(tmp_path, recording_prog
     """The compare command passes its bar factory down to the nearest-neighbour leave-one-out:
     one bar per nn fit over its n points, advanced to n (common practice: long work shows a
     progress bar)."""
-    from bayesgeo.cli.compare import build_result
+    from bayesgeo.stages.compare import build_result
 
     ds = simulated(50, seed=45)
     dirs = []

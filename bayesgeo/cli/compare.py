@@ -21,6 +21,9 @@ from __future__ import annotations
 
 HELP = "rank fits of the same data by leave-one-out predictive accuracy (PSIS-LOO)"
 
+#: Library argument -> what the command line calls it.
+ARGUMENT_OPTIONS = {"dirs": "DIR"}
+
 COLUMNS = ("fit", "covariance", "pooling", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "pareto_k_high")
 
 
@@ -37,138 +40,13 @@ def add_arguments(p) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout and nothing else there")
 
 
-def _names(dirs) -> list[str]:
-    """Fit names: the folder names, made unique with their parent when two share a name."""
-    from pathlib import Path
-
-    paths = [Path(d) for d in dirs]
-    names = [p.name or str(p) for p in paths]
-    if len(set(names)) < len(names):
-        names = [str(p) for p in paths]
-    return names
-
-
-def _verdicts(name, fit) -> list[str]:
-    verdict = fit.stored_verdict
-    if verdict == "fail":
-        return [f"NOT CONVERGED: {name} failed its convergence check; its elpd is not to be trusted"]
-    if verdict is None:
-        return [f"{name}: convergence not checked (run 'bayesgeo check' on it)"]
-    return []
-
-
-def _refuse_non_finite(res, folders: dict) -> None:
-    """A fit whose elpd, its se or p_loo is NaN or infinite is never ranked: exit 2 naming the fit folder."""
-    import math
-
-    from bayesgeo.validate import InputError
-
-    for k, name in enumerate(res["fit"].values):
-        for var in ("elpd_loo", "se", "p_loo"):
-            value = float(res[var].values[k])
-            if not math.isfinite(value):
-                raise InputError(f"{folders.get(str(name), name)}: {var} = {value} (leave-one-out densities not "
-                                 "finite for some points); the fits cannot be ranked: check this fit ('bayesgeo "
-                                 "check') and its data")
-
-
-def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None,
-                 progress=None) -> tuple[dict, object, dict]:
-    """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs).
-
-    ``progress`` is a bar factory for the long nearest-neighbour leave-one-out of nn fits
-    (:func:`bayesgeo.modelcheck.compare_fits`); ``None`` shows none.
-    """
-    from bayesgeo.modelcheck import compare_fits, open_fit
-    from bayesgeo.validate import InputError
-
-    if len(dirs) < 2:
-        raise InputError(f"compare: give at least two fit folders (got {len(dirs)})")
-    names = _names(dirs)
-    if len(set(names)) < len(names):
-        raise InputError("compare: the same fit folder is given twice")
-    trees = {}
-    cautions = []
-    for name, d in zip(names, dirs):
-        fit = open_fit(d, sites=True)
-        trees[name] = fit.tree
-        cautions += _verdicts(name, fit)
-        if bar is not None:
-            bar.update(1)
-    res = compare_fits(trees, site=site, progress=progress)
-    _refuse_non_finite(res, dict(zip(names, dirs)))
-    if store:
-        from bayesgeo.modelcheck import store_log_likelihood
-
-        for name, d in zip(names, dirs):
-            if "log_likelihood" not in trees[name].children:
-                store_log_likelihood(d)
-    if bar is not None:
-        bar.update(len(trees))
-    pits = {str(name): res["loo_pit"].sel(fit=name) for name in res["fit"].values}
-    ranking = []
-    for k, name in enumerate(res["fit"].values):
-        row = res.isel(fit=k)
-        ranking.append({
-            "fit": str(name), "path": str(dirs[names.index(str(name))]), "covariance": str(row["covariance"].values),
-            "transform": str(row["transform"].values), "pooling": str(row["pooling"].values), "elpd_loo": float(row["elpd_loo"]), "se": float(row["se"]),
-            "elpd_diff": float(row["elpd_diff"]), "dse": float(row["dse"]), "p_loo": float(row["p_loo"]),
-            "weight": float(row["weight"]), "pareto_k_high": int(row["pareto_k_high"]),
-            "pareto_k_max": float(row["pareto_k_max"]),
-        })
-    obj = {
-        "ranking": ranking,
-        "n": int(res.attrs["n"]),
-        "k_threshold": res.attrs["k_threshold"],
-        "k_threshold_source": res.attrs["k_threshold_source"],
-        "site": site,
-        "method": res.attrs["method"],
-        "units": res.attrs["units"],
-        "cautions": cautions + list(res.attrs["cautions"]),
-    }
-    if "elpd_site" in res:
-        obj["by_site"] = {
-            str(s): {"n": int(res["n_site"].sel(site=s)),
-                     "elpd": {str(f): float(res["elpd_site"].sel(fit=f, site=s)) for f in res["fit"].values},
-                     "se": {str(f): float(res["se_site"].sel(fit=f, site=s)) for f in res["fit"].values}}
-            for s in res["site"].values}
-    return obj, res, pits
-
-
 def run(args) -> int:
-    import functools
-    from pathlib import Path
+    """Parse, call :func:`bayesgeo.stages.compare.compare_folders`, print."""
+    from bayesgeo.cli._common import emit_json, print_table, progress
+    from bayesgeo.stages.compare import compare_folders
 
-    from bayesgeo.cli._common import emit_json, print_table, progress, to_jsonable
-    from bayesgeo.io import write_json
-    from bayesgeo.outputs import claim, new_folder
-
-    out = Path(args.out) if args.out else None
-    if out is not None:
-        claim(out, overwrite=args.overwrite, inputs=args.dirs)
-    bar = progress(total=2 * len(args.dirs), desc="compare", enabled=not args.json)
-    with bar:
-        obj, res, pits = build_result(args.dirs, bar=bar, store=args.store, site=args.site,
-                                      progress=functools.partial(progress, enabled=not args.json))
-    files = []
-    if out is not None:
-        from bayesgeo.check_figures import loo_pit_figure
-        from bayesgeo.figures import save_figure
-
-        with new_folder(out, overwrite=args.overwrite) as tmp:
-            table = res[["rank", "covariance", "pooling", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo", "weight",
-                         "pareto_k_high", "pareto_k_max"]].to_dataframe()
-            table.to_csv(tmp / "comparison.csv", float_format="%.10g")
-            point = res[["elpd_i", "pareto_k"]].to_dataframe()
-            point.to_csv(tmp / "pointwise.csv", float_format="%.10g")
-            save_figure(loo_pit_figure(pits), tmp / "loo_pit.png")
-            files = ["comparison.csv", "pointwise.csv", "loo_pit.png", "comparison.json"]
-            if "elpd_site" in res:
-                res[["elpd_site", "se_site", "n_site"]].to_dataframe().to_csv(tmp / "by_site.csv", float_format="%.10g")
-                files.insert(2, "by_site.csv")
-            obj["out"] = str(out)
-            obj["files"] = files
-            write_json(tmp / "comparison.json", to_jsonable(obj))
+    _, obj = compare_folders(args.dirs, site=args.site, out=args.out, overwrite=args.overwrite, store=args.store,
+                             progress=None if args.json else progress)
     if args.json:
         emit_json(obj)
         return 0
@@ -185,8 +63,8 @@ def run(args) -> int:
                      for s, b in obj["by_site"].items()]
         print_table(site_rows, ["site", "n", *fits])
     print(f"pareto_k_high: points with Pareto k > {obj['k_threshold']:g} ({obj['k_threshold_source']})")
-    if files:
-        print(f"wrote {len(files)} files to {out}/")
+    if obj.get("files"):
+        print(f"wrote {len(obj['files'])} files to {obj['out']}/")
     for c in obj["cautions"]:
         print(f"caution: {c}")
     return 0

@@ -9,9 +9,10 @@ of these and print; :func:`bayesgeo.pipeline.run_study` calls them directly.
 
 from __future__ import annotations
 
-__all__ = ["map_fit", "check_variogram"]
+__all__ = ["check_fit", "check_variogram", "map_fit", "compare_folders"]
 
-_WHERE = {"map_fit": "bayesgeo.stages.maps", "check_variogram": "bayesgeo.stages.vgcheck"}
+_WHERE = {"check_fit": "bayesgeo.stages.check", "check_variogram": "bayesgeo.stages.vgcheck",
+          "map_fit": "bayesgeo.stages.maps", "compare_folders": "bayesgeo.stages.compare"}
 
 
 def __getattr__(name):  # loaded on first use: a command imports only its own stage
