@@ -206,6 +206,56 @@ def _map_argv(kw: dict) -> list[str]:
     return argv
 
 
+def _fit_call(study: Study, fam: str, fdir: Path) -> dict:
+    """Keyword arguments of :func:`bayesgeo.stages.fit.fit_folder` for the fit of family ``fam``."""
+    s = study.settings
+    d, m, smp, pri = s["data"], s["model"], s["sampler"], s["model.priors"]
+    kw = {"data": d["path"], "out": fdir, "x": d["x"], "y": d["y"], "value": d["value"], "site": d["site"],
+          "units": d["units"], "distance_units": d["distance_units"], "coords": d["coords"],
+          "duplicates": d["duplicates"], "covariates": list(m["covariates"]), "covariance": fam, "trend": m["trend"],
+          "transform": None if m["transform"] == "none" else m["transform"], "draws": smp["draws"],
+          "tune": smp["tune"], "chains": smp["chains"], "seed": smp["seed"], "sampler": smp["name"],
+          "target_accept": smp["target_accept"], "max_draws": smp.get("max_draws"),
+          "nu": m["nu"] if fam == "matern" else None, "nugget": m["nugget"], "range_below": pri["range_below"],
+          "sd_above": pri["sd_above"], "nugget_above": pri["nugget_above"], "approx": m["approx"],
+          "neighbours": m["neighbours"]}
+    if study.several_sites:
+        kw["pooling"] = m["pooling"]
+    return kw
+
+
+def _fit_argv(kw: dict) -> list[str]:
+    """The ``bayesgeo fit`` command line of the call ``kw`` (what the manifest records)."""
+    argv = ["fit", str(kw["data"])]
+    for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("site", "--site"), ("units", "--units"),
+                     ("distance_units", "--distance-units")):
+        if kw[key]:
+            argv += [opt, kw[key]]
+    argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
+    for c in kw["covariates"]:
+        argv += ["--covariate", c]
+    argv += ["--covariance", kw["covariance"], "--trend", str(kw["trend"]), "--transform", kw["transform"] or "none",
+             "--draws", str(kw["draws"]), "--tune", str(kw["tune"]), "--chains", str(kw["chains"]),
+             "--seed", str(kw["seed"]), "--sampler", kw["sampler"]]
+    if kw["target_accept"] is not None:
+        argv += ["--target-accept", repr(kw["target_accept"])]
+    if kw["max_draws"] is not None:
+        argv += ["--max-draws", str(kw["max_draws"])]
+    if kw["nu"] is not None:
+        argv += ["--nu", repr(kw["nu"])]
+    if not kw["nugget"]:
+        argv += ["--no-nugget"]
+    for key, opt in (("range_below", "--range-below"), ("sd_above", "--sd-above"), ("nugget_above", "--nugget-above")):
+        if kw[key] is not None:
+            argv += [opt, repr(kw[key][0]), repr(kw[key][1])]
+    if "pooling" in kw:
+        argv += ["--pooling", kw["pooling"]]
+    argv += ["--out", str(kw["out"]), "--approx", kw["approx"]]
+    if kw["neighbours"] is not None:
+        argv += ["--neighbours", str(kw["neighbours"])]
+    return argv
+
+
 def _vgcheck_call(study: Study, fdir: Path, site: str | None = None) -> dict:
     """Keyword arguments of :func:`bayesgeo.stages.vgcheck.check_variogram` for one stage of ``study``."""
     s = study.settings
@@ -226,6 +276,7 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
     :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
     from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.compare import compare_folders
+    from bayesgeo.stages.fit import fit_folder
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
@@ -235,6 +286,7 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
         sites = study_sites(study) if sites is None else sites
         areas = site_areas(study, sites)
         for fam in study.families:
+            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, root / "fits" / fam))
             calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
             for site in sites:
                 calls[f"variogram-check:{fam}:{site}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam, site))
@@ -243,6 +295,7 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
     else:
         areas = areas_of(study.settings["prediction"]["area"])
         for fam in study.families:
+            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, root / "fits" / fam))
             calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
             calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam))
             calls[f"map:{fam}"] = (map_fit, _map_call(study, root / "fits" / fam, None, areas[0] if areas else None))
@@ -264,16 +317,13 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
     if study.several_sites:
         return _site_commands(study, Path(root), study_sites(study) if sites is None else sites)
     s, root = study.settings, Path(root)
-    m, pr = s["model"], s["prediction"]
+    pr = s["prediction"]
     data = _data_options(s)
     cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
     areas = areas_of(pr["area"])
     for fam in study.families:
         fdir = root / "fits" / fam
-        fit = ["fit", *data, *_fit_options(study, fam), "--out", str(fdir), "--approx", m["approx"]]
-        if m["neighbours"] is not None:
-            fit += ["--neighbours", str(m["neighbours"])]
-        cmds[f"fit:{fam}"] = fit
+        cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         cmds[f"variogram-check:{fam}"] = _vgcheck_argv(_vgcheck_call(study, fdir))
         cmds[f"map:{fam}"] = _map_argv(_map_call(study, fdir, None, areas[0] if areas else None))
@@ -292,27 +342,6 @@ def _explore_command(study: Study, root: Path, data: list[str]) -> list[str]:
     return ex
 
 
-def _fit_options(study: Study, fam: str) -> list[str]:
-    s = study.settings
-    m, smp = s["model"], s["sampler"]
-    fit = ["--covariance", fam, "--trend", str(m["trend"]), "--transform", m["transform"],
-           "--draws", str(smp["draws"]), "--tune", str(smp["tune"]), "--chains", str(smp["chains"]),
-           "--seed", str(smp["seed"]), "--sampler", smp["name"]]
-    if smp["target_accept"] is not None:
-        fit += ["--target-accept", repr(smp["target_accept"])]
-    if smp.get("max_draws") is not None:
-        fit += ["--max-draws", str(smp["max_draws"])]
-    if fam == "matern":
-        fit += ["--nu", repr(m["nu"])]
-    if not m["nugget"]:
-        fit += ["--no-nugget"]
-    for key, opt in (("range_below", "--range-below"), ("sd_above", "--sd-above"), ("nugget_above", "--nugget-above")):
-        pair = s["model.priors"][key]
-        if pair is not None:
-            fit += [opt, repr(pair[0]), repr(pair[1])]
-    return fit
-
-
 def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]]:
     """Stage commands of a several-site study (see :func:`stage_commands`)."""
     s = study.settings
@@ -321,10 +350,7 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
     cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
     for fam in study.families:
         fdir = root / "fits" / fam
-        cmds[f"fit:{fam}"] = ["fit", *data, *_fit_options(study, fam), "--pooling", s["model"]["pooling"],
-                              "--out", str(fdir), "--approx", s["model"]["approx"]]
-        if s["model"]["neighbours"] is not None:
-            cmds[f"fit:{fam}"] += ["--neighbours", str(s["model"]["neighbours"])]
+        cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         for site in sites:
             cmds[f"variogram-check:{fam}:{site}"] = _vgcheck_argv(_vgcheck_call(study, fdir, site))

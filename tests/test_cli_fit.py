@@ -232,8 +232,9 @@ def test_dense_fit_beyond_memory_refused(tmp_path, capsys, monkeypatch):
     data = _csv(tmp_path / "d.csv", n=300)
     argv = ["fit", data, "--value", "arsenic_mg_kg", "--covariance", "exponential", "--approx", "dense",
             "--duplicates", "mean", "--out", tmp_path / "o"]
-    assert_refused(capsys, argv, "fit", r"--approx dense: the dense likelihood of \d+ points with 4 chains needs "
-                   r"about \d MB of memory; this machine has 1 MB: use --approx nn \(or auto\)",
+    assert_refused(capsys, argv, "fit", r"--approx: the dense likelihood of \d+ points with 4 chains needs "
+                   r"about \d MB of memory; this machine has 1 MB: use the nearest-neighbour likelihood, 'nn' "
+                   r"\(or 'auto'\)",
                    inputs=[data], absent=[tmp_path / "o"])
 
 

@@ -37,22 +37,33 @@ def test_stage_commands_parse(tmp_path):
 
 
 def test_map_stage_call_is_the_recorded_command(tmp_path):
-    """A study runs its check, variogram-check, map and compare stages through stage functions (bayesgeo.stages); the command the
+    """A study runs its fit, check, variogram-check, map and compare stages through stage functions (bayesgeo.stages); the command the
     manifest records for each (stage_commands) parses (argparse is the reference) to the same settings as the
     keyword arguments of the call, so re-running the recorded command redoes the stage."""
     from bayesgeo.cli.map import _draws
     from bayesgeo.pipeline import stage_calls
     from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.compare import compare_folders
+    from bayesgeo.stages.fit import fit_folder
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
     study = read_study(write_tiny_study(tmp_path, families=("exponential", "matern32")))
     cmds, calls = stage_commands(study, tmp_path / "run"), stage_calls(study, tmp_path / "run")
-    assert sorted(calls) == ["check:exponential", "check:matern32", "compare", "map:exponential", "map:matern32",
-                             "variogram-check:exponential", "variogram-check:matern32"]
+    assert sorted(calls) == ["check:exponential", "check:matern32", "compare", "fit:exponential", "fit:matern32",
+                             "map:exponential", "map:matern32", "variogram-check:exponential",
+                             "variogram-check:matern32"]
     parser = _build_parser()
     for name, (fn, kw) in calls.items():
+        if name.startswith("fit:"):
+            a = parser.parse_args(cmds[name])
+            assert fn is fit_folder
+            assert (a.data, a.out, a.covariance, a.seed, a.draws, a.chains, a.tune, a.no_nugget, a.approx) == (
+                str(kw["data"]), str(kw["out"]), kw["covariance"], kw["seed"], kw["draws"], kw["chains"], kw["tune"],
+                not kw["nugget"], kw["approx"])
+            assert (None if a.transform == "none" else a.transform) == kw["transform"]
+            assert a.covariate == kw["covariates"] and a.value == kw["value"]
+            continue
         if name == "compare":
             a = parser.parse_args(cmds[name])
             assert fn is compare_folders and a.dirs == [str(d) for d in kw["dirs"]] and a.out == str(kw["out"])

@@ -10,7 +10,7 @@ from collections.abc import Iterable
 import numpy as np
 from bayesgeo.io import to_jsonable
 
-__all__ = ["add_data_options", "read_data", "emit_json", "to_jsonable", "progress", "print_table",
+__all__ = ["add_data_options", "data_kwargs", "read_data", "emit_json", "to_jsonable", "progress", "print_table",
            "refuse_renamed"]
 
 #: Options of earlier versions and their new names (a command given one stops with a one-line usage error).
@@ -53,18 +53,20 @@ def add_data_options(p) -> None:
     p.add_argument("--distance-units", metavar="TEXT", help="units of planar coordinates, e.g. m (lon/lat: km)")
 
 
+def data_kwargs(args) -> dict:
+    """The data settings named by :func:`add_data_options` arguments, as keyword arguments of the stages
+    (:func:`bayesgeo.stages.fit.read_kwargs`)."""
+    return dict(x=args.x, y=args.y, value=args.value, site=args.site, only_site=args.only_site,
+                covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
+                distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"))
+
+
 def read_data(args):
     """Read the data named by :func:`add_data_options` arguments."""
     from bayesgeo.data import read_points
+    from bayesgeo.stages.fit import read_kwargs
 
-    return read_points(
-        args.data, x=args.x, y=args.y, value=args.value, site=args.site, covariates=args.covariate,
-        coords=args.coords, duplicates=args.duplicates, units=args.units,
-        distance_units=args.distance_units, only_site=args.only_site,
-        small_sites=getattr(args, "small_sites", "error"),
-    )
-
-
+    return read_points(args.data, **read_kwargs(**data_kwargs(args)))
 
 
 #: Input warnings printed during this command (see ``bayesgeo.cli._one_line_warnings``); added to --json output.

@@ -4,6 +4,9 @@ from __future__ import annotations
 
 from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
+#: Library argument -> option, where the names differ.
+ARGUMENT_OPTIONS = {"covariates": "--covariate", "nugget": "--no-nugget"}
+
 HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one site's data, or to several "
         "sites at once with --site (hierarchical by default)")
 
@@ -60,110 +63,33 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
+    """Parse, call :func:`bayesgeo.stages.fit.fit_folder`, print."""
     import sys
 
-    from bayesgeo.cli import EXIT_NOT_CONVERGED
-    from bayesgeo.cli._common import emit_json, read_data
-    from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.outputs import claim
-    from bayesgeo.posterior import summary_text, fit, fit_report, save_fit, with_diagnostics
-    from bayesgeo.priors import Priors
+    from bayesgeo.cli._common import data_kwargs, emit_json
+    from bayesgeo.stages.fit import fit_folder
 
-    if args.approx == "dense" and args.neighbours is not None:
-        from bayesgeo.validate import InputError
+    def log(text: str) -> None:
+        print(f"bayesgeo fit: {text}", file=sys.stderr, flush=True)
 
-        raise InputError("--neighbours: applies to the nearest-neighbour likelihood (--approx nn, or auto above "
-                         "2,000 points per site); drop it with --approx dense")
-    max_draws = _max_draws(args)
-    claim(args.out, overwrite=args.overwrite, inputs=[args.data])  # refuse before minutes of sampling, not after
-    ds = read_data(args)
-    from bayesgeo.data import sites_of
-
-    args.workload = _announce(args, ds)
-    if len(sites_of(ds)) > 1:
-        if args.keep_sampling is not None:
-            from bayesgeo.validate import InputError
-
-            raise InputError("--keep-sampling: single-site fits only for now; run without it and check each site")
-        from bayesgeo.cli._sites import run_sites
-
-        return run_sites(args, ds)
-    stage = _stage_logger(args)
-    stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal)")
-    priors = Priors(range=tuple(args.range_below) if args.range_below else None,
-                    sd=tuple(args.sd_above) if args.sd_above else None,
-                    nugget=tuple(args.nugget_above) if args.nugget_above else None)
-    show = not args.json and sys.stderr.isatty()
-    kw = dict(covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
-              covariates=tuple(args.covariate), transform=None if args.transform == "none" else args.transform,
-              priors=priors, sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune,
-              target_accept=args.target_accept, seed=args.seed,
-              progressbar=show, approx=args.approx, neighbours=args.neighbours, max_draws=max_draws)
-    if args.keep_sampling is not None:
-        from bayesgeo.keep_sampling import fit_until_converged
-
-        tree, conv = fit_until_converged(ds, budget_minutes=args.keep_sampling, **kw)
-    else:
-        tree = fit(ds, **kw)
-        stage("checking convergence")
-        conv = check_convergence(tree)
-    tree = with_diagnostics(tree, conv.to_json())
-    stage(f"writing {args.out}")
-    save_fit(tree, args.out, overwrite=args.overwrite)
-    report = fit_report(tree)
-    report["out"] = str(args.out)
-    report["workload"] = args.workload
+    status, report = fit_folder(
+        args.data, out=args.out, covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
+        transform=None if args.transform == "none" else args.transform, range_below=args.range_below,
+        sd_above=args.sd_above, nugget_above=args.nugget_above, approx=args.approx, neighbours=args.neighbours,
+        sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune, target_accept=args.target_accept,
+        seed=args.seed, max_draws=args.max_draws, keep_sampling=args.keep_sampling, pooling=args.pooling,
+        parametrisation=args.parametrisation, design_neighbours=args.design_neighbours, overwrite=args.overwrite,
+        progressbar=not args.json and sys.stderr.isatty(), log=None if args.json else log, **data_kwargs(args))
     if args.json:
         emit_json(report)
+        return status
+    if "sites" in report:
+        from bayesgeo.hier_outputs import summary_text_sites
+
+        print(summary_text_sites(report), end="")
     else:
+        from bayesgeo.posterior import summary_text
+
         print(summary_text(report), end="")
-        print(f"wrote {args.out}/ (posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png)")
-    return EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0
-
-
-def _max_draws(args) -> int | None:
-    """--max-draws, refused below --draws (one line) before any sampling; None keeps the default."""
-    from bayesgeo.looks import longest_chain
-
-    value = getattr(args, "max_draws", None)
-    return None if value is None else longest_chain(args.draws, value)
-
-
-def _announce(args, ds) -> dict:
-    """Say on stderr what a large fit will do and roughly how long it takes (bayesgeo.workload); the plan
-    goes into the JSON object as ``workload`` instead when --json is given."""
-    import sys
-
-    import numpy as np
-
-    from bayesgeo.data import sites_of
-    from bayesgeo.validate import InputError
-    from bayesgeo.workload import fit_plan, format_bytes, physical_memory_bytes
-
-    labels = sites_of(ds)
-    sizes = ({lab: int(np.count_nonzero(ds["site"].values == lab)) for lab in labels} if len(labels) > 1
-             else {"": int(ds.sizes["obs"])})
-    pooled = len(labels) > 1 and getattr(args, "pooling", "hierarchical") != "independent"
-    plan = fit_plan(sizes, approx=args.approx, neighbours=args.neighbours, chains=args.chains, draws=args.draws,
-                    tune=args.tune, fits=2 if pooled else 1, max_draws=getattr(args, "max_draws", None))
-    ram = physical_memory_bytes()
-    if ram is not None and plan["dense_memory_bytes"] > ram:
-        raise InputError(f"--approx {args.approx}: the dense likelihood of {plan['largest_site']:,} points with "
-                         f"{args.chains} chains needs about {format_bytes(plan['dense_memory_bytes'])} of memory; this "
-                         f"machine has {format_bytes(ram)}: use --approx nn (or auto), docs/large_data.md")
-    if plan["message"] and not args.json:
-        print(f"bayesgeo fit: note: {plan['message']}", file=sys.stderr, flush=True)
-    return plan
-
-
-def _stage_logger(args):
-    """One stderr line per long step, for runs the workload plan announced (silent otherwise and with --json)."""
-    import sys
-
-    enabled = bool(getattr(args, "workload", None) and args.workload.get("message")) and not args.json
-
-    def stage(text: str) -> None:
-        if enabled:
-            print(f"bayesgeo fit: {text} ...", file=sys.stderr, flush=True)
-
-    return stage
+    print(f"wrote {args.out}/ ({', '.join(report['files'])})")
+    return status

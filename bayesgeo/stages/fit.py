@@ -1,0 +1,194 @@
+"""The fit stage: read point data, fit the Bayesian GP model, check it and write the fit folder.
+
+One site: :func:`bayesgeo.posterior.fit` (or, with ``keep_sampling``, :func:`bayesgeo.keep_sampling.fit_until_converged`),
+then the convergence check, written by :func:`bayesgeo.posterior.save_fit`. Data with a site column of
+several sites: :func:`bayesgeo.hierarchical.fit_sites`, plus (unless ``pooling="independent"``) the
+independent fit for the shrinkage table and the sampling-design table of a new site, written by
+:func:`bayesgeo.hier_outputs.save_site_fit`. Large fits are announced first (:mod:`bayesgeo.workload`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+import numpy as np
+
+from bayesgeo.defaults import CHAINS, DRAWS, TUNE
+from bayesgeo.validate import InputError
+
+__all__ = ["fit_folder", "read_kwargs", "workload_plan"]
+
+EXIT_NOT_CONVERGED = 3
+SINGLE_FILES = "posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png"
+
+
+def read_kwargs(*, x=None, y=None, value=None, site=None, only_site=None, covariates: Sequence[str] = (),
+                coords: str = "auto", duplicates: str = "error", units=None, distance_units=None,
+                small_sites: str = "error") -> dict:
+    """Keyword arguments of :func:`bayesgeo.data.read_points` from the data settings of a stage."""
+    return dict(x=x, y=y, value=value, site=site, covariates=list(covariates), coords=coords, duplicates=duplicates,
+                units=units, distance_units=distance_units, only_site=only_site, small_sites=small_sites)
+
+
+def workload_plan(ds, *, approx: str, neighbours, chains: int, draws: int, tune: int, pooling: str,
+                  max_draws, log: Callable[[str], None] | None) -> dict:
+    """The :func:`bayesgeo.workload.fit_plan` of this fit; its message goes to ``log`` (a large fit is announced
+    before it starts). Refuses a dense likelihood that would not fit in this machine's memory."""
+    from bayesgeo.data import sites_of
+    from bayesgeo.workload import fit_plan, format_bytes, physical_memory_bytes
+
+    labels = sites_of(ds)
+    sizes = ({lab: int(np.count_nonzero(ds["site"].values == lab)) for lab in labels} if len(labels) > 1
+             else {"": int(ds.sizes["obs"])})
+    pooled = len(labels) > 1 and pooling != "independent"
+    plan = fit_plan(sizes, approx=approx, neighbours=neighbours, chains=chains, draws=draws, tune=tune,
+                    fits=2 if pooled else 1, max_draws=max_draws)
+    ram = physical_memory_bytes()
+    if ram is not None and plan["dense_memory_bytes"] > ram:
+        raise InputError(f"approx: the dense likelihood of {plan['largest_site']:,} points with {chains} chains needs "
+                         f"about {format_bytes(plan['dense_memory_bytes'])} of memory; this machine has "
+                         f"{format_bytes(ram)}: use the nearest-neighbour likelihood, 'nn' (or 'auto'), docs/large_data.md")
+    if plan["message"] and log is not None:
+        log(f"note: {plan['message']}")
+    return plan
+
+
+def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: bool = True, trend: int = 0,
+               transform: str | None = None, range_below=None, sd_above=None, nugget_above=None,
+               approx: str = "auto", neighbours: int | None = None, sampler: str = "nutpie", chains: int = CHAINS,
+               draws: int = DRAWS, tune: int = TUNE, target_accept: float | None = None, seed: int | None = None,
+               max_draws: int | None = None, keep_sampling: float | None = None, pooling: str = "hierarchical",
+               parametrisation: str = "noncentred", design_neighbours: int = 6, overwrite: bool = False,
+               progressbar: bool = False, log: Callable[[str], None] | None = None, **data_settings) -> tuple[int, dict]:
+    """Fit the model to the points in ``data`` and write the fit folder ``out``.
+
+    Parameters
+    ----------
+    data : path
+        CSV of point measurements (or a bayesgeo point file); ``data_settings`` are those of
+        :func:`read_kwargs` (columns, site column, coordinates, duplicates, units, small sites).
+    out : path
+        Output folder, written atomically; refused if present unless ``overwrite``.
+    covariance, nu, nugget, trend, transform, approx, neighbours :
+        The model (:func:`bayesgeo.posterior.fit`); ``transform`` None or "log".
+    range_below, sd_above, nugget_above : (float, float), optional
+        PC-prior statements P(practical range < R0) = A1, P(sd > S0) = A2, P(nugget sd > T0) = A3 (data
+        units); the several-site model puts its nugget prior on the fraction of the sill and refuses
+        ``nugget_above``.
+    sampler, chains, draws, tune, target_accept, seed, max_draws :
+        The sampler (:func:`bayesgeo.sampling.sample`, :mod:`bayesgeo.looks`).
+    keep_sampling : float, optional
+        Minutes for fresh attempts while the check fails (single-site fits).
+    pooling, parametrisation, design_neighbours :
+        The several-site model (:func:`bayesgeo.hierarchical.fit_sites`) and the design table.
+    progressbar : bool
+        Show the sampler's progress bar.
+    log : callable, optional
+        Receives one line per long step (announced large fits only) and the workload note.
+
+    Returns
+    -------
+    (status, report)
+        3 when the convergence check fails, else 0; the fit report (:func:`bayesgeo.posterior.fit_report`
+        or :func:`bayesgeo.hier_outputs.site_report`) with ``out``, ``workload`` and ``files``.
+    """
+    from bayesgeo.data import read_points, sites_of
+    from bayesgeo.looks import longest_chain
+    from bayesgeo.outputs import claim
+    from bayesgeo.priors import Priors
+
+    if approx == "dense" and neighbours is not None:
+        raise InputError("neighbours: applies to the nearest-neighbour likelihood ('nn', or 'auto' above 2,000 "
+                         "points per site); drop it with the dense likelihood")
+    max_draws = None if max_draws is None else longest_chain(draws, max_draws)
+    claim(out, overwrite=overwrite, inputs=[data])  # refuse before minutes of sampling, not after
+    ds = read_points(data, **read_kwargs(**data_settings))
+    plan = workload_plan(ds, approx=approx, neighbours=neighbours, chains=chains, draws=draws, tune=tune,
+                         pooling=pooling, max_draws=max_draws, log=log)
+    quiet = (lambda _text: None)
+    stage = log if (log is not None and plan["message"]) else quiet  # long steps, of announced fits
+    model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(data_settings.get(
+        "covariates", ())), transform=transform, approx=approx, neighbours=neighbours)
+    sample_kw = dict(sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
+                     progressbar=progressbar, max_draws=max_draws)
+    if len(sites_of(ds)) > 1:
+        if keep_sampling is not None:
+            raise InputError("keep_sampling: single-site fits only for now; run without it and check each site")
+        if nugget_above is not None:
+            raise InputError("nugget_above: the several-site model puts its prior on the nugget fraction of the sill "
+                             "(see docs/hierarchical.md); drop the nugget prior")
+        priors = Priors(range=tuple(range_below) if range_below else None, sd=tuple(sd_above) if sd_above else None)
+        status, report = _fit_sites(ds, out, priors=priors, pooling=pooling, parametrisation=parametrisation,
+                                    design_neighbours=design_neighbours, small_sites=data_settings.get(
+                                        "small_sites", "error"), seed=seed, overwrite=overwrite,
+                                    model_kw=model_kw, sample_kw=sample_kw,
+                                    say=log if (log is not None and (plan["message"] or progressbar)) else quiet)
+    else:
+        priors = Priors(range=tuple(range_below) if range_below else None, sd=tuple(sd_above) if sd_above else None,
+                        nugget=tuple(nugget_above) if nugget_above else None)
+        status, report = _fit_one(ds, out, priors=priors, seed=seed, keep_sampling=keep_sampling,
+                                  overwrite=overwrite, stage=stage, model_kw=model_kw, sample_kw=sample_kw)
+    report["out"] = str(out)
+    report["workload"] = plan
+    return status, report
+
+
+def _fit_one(ds, out, *, priors, seed, keep_sampling, overwrite, stage, model_kw, sample_kw) -> tuple[int, dict]:
+    from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.posterior import fit, fit_report, save_fit, with_diagnostics
+
+    stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal) ...")
+    kw = dict(model_kw, priors=priors, seed=seed, **sample_kw)
+    if keep_sampling is not None:
+        from bayesgeo.keep_sampling import fit_until_converged
+
+        tree, conv = fit_until_converged(ds, budget_minutes=keep_sampling, **kw)
+    else:
+        tree = fit(ds, **kw)
+        stage("checking convergence ...")
+        conv = check_convergence(tree)
+    tree = with_diagnostics(tree, conv.to_json())
+    stage(f"writing {out} ...")
+    save_fit(tree, out, overwrite=overwrite)
+    report = fit_report(tree)
+    report["files"] = SINGLE_FILES.split(", ")
+    return (EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0), report
+
+
+def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, small_sites, seed, overwrite, say,
+               model_kw, sample_kw) -> tuple[int, dict]:
+    from bayesgeo.design import design_table
+    from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.fitted import Fit
+    from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, with_site_diagnostics
+    from bayesgeo.hierarchical import fit_sites, site_spec
+    from bayesgeo.validate import check_positive_int
+
+    neighbours = check_positive_int(design_neighbours, "design_neighbours", minimum=2)
+    if neighbours % 2:
+        raise InputError(f"design_neighbours: expected an even number, got {neighbours}")
+    kw = dict(model_kw, priors=priors, small_sites=small_sites)
+    say(f"fitting the {pooling} model ...")
+    tree = fit_sites(ds, pooling=pooling, seed=seed, parametrisation=parametrisation, **kw, **sample_kw)
+    seed = int(Fit(tree).settings["sampler"]["seed"])  # the independent fit reuses it
+    conv = check_convergence(tree)
+    tree = with_site_diagnostics(tree, conv.to_json())
+    shrink = design = None
+    extra = {}
+    if pooling != "independent":
+        say("fitting each site independently for the shrinkage table ...")
+        indep = fit_sites(ds, pooling="independent", seed=seed, **kw, **sample_kw)
+        shrink = shrinkage_table(tree, indep)
+        extra["independent_fit_verdict"] = check_convergence(indep).verdict
+        spec = site_spec(tree)
+        design = design_table(tree["new_site"].to_dataset(), covariance=spec.covariance,
+                              nu=spec.nu if spec.covariance == "matern" else None, neighbours=neighbours,
+                              distance_units=spec.distance_units, value_units=spec.model_units)
+    save_site_fit(tree, out, overwrite=overwrite, shrinkage=shrink, design=design)
+    report = site_report(tree, shrinkage=shrink, design=design)
+    report.update(extra)
+    files = ["posterior.nc", "summary.csv", "summary.txt", "fit.json"]
+    if shrink is not None:
+        files += ["shrinkage.csv", "shrinkage.png", "design.csv", "design.png"]
+    report["files"] = files
+    return (EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0), report
