@@ -1,10 +1,11 @@
 """Run a whole study: explore, fit (per family), check, variogram check, map, compare, report.
 
-:func:`run_study` drives the stage commands in order, in-process, with the settings of a
-:class:`~bayesgeo.study.Study`; each stage is exactly the code behind its own command
-(``bayesgeo explore``, ``fit``, ``check``, ``variogram-check``, ``map``, ``compare``), so a run
-and a sequence of commands give the same files and numbers (:func:`stage_commands` lists them).
-The pipeline therefore sits beside the command line, at the end of the stage order.
+:func:`run_study` calls the stage functions of :mod:`bayesgeo.stages` in order, with keyword
+arguments built from the settings of a :class:`~bayesgeo.study.Study` (:func:`stage_calls`); the
+commands ``bayesgeo explore``, ``fit``, ``check``, ``variogram-check``, ``map`` and ``compare`` call
+the same functions, so a run and a sequence of commands give the same files and numbers. The
+manifest records, for every stage, the equivalent command line, rendered from the same arguments
+(:func:`stage_commands`). No argument parsing or printed output is involved in a run.
 
 Run folder (assembled under a temporary name and renamed at the end, :func:`bayesgeo.outputs.new_folder`)::
 
@@ -37,11 +38,8 @@ manifest and the report).
 
 from __future__ import annotations
 
-import contextlib
 import gc
 import html
-import io
-import json
 import shutil
 import sys
 import time
@@ -55,60 +53,57 @@ from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
 from bayesgeo.study import Study, areas_of, read_study, study_line
 from bayesgeo.validate import InputError
 
-__all__ = ["run_study", "stage_commands", "study_sites", "site_areas", "site_slug", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
+__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "site_areas", "site_slug", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
 
 EXIT_OK = 0
 EXIT_STAGE_FAILED = 1
 EXIT_NOT_CONVERGED = 3
 REPORT_FILE = "report.html"
 
-_PARSER = None
-
-
-def _parser():
-    global _PARSER
-    if _PARSER is None:
-        from bayesgeo.cli import _build_parser
-
-        _PARSER = _build_parser()
-    return _PARSER
-
-
-def _command(argv: Sequence[str]) -> tuple[int, dict]:
-    """Run one ``bayesgeo`` command in-process with ``--json``; return (status, its JSON object)."""
-    args = _parser().parse_args([str(a) for a in argv] + ["--json"])
-    buf = io.StringIO()
-    with contextlib.redirect_stdout(buf), outputs.scope():
-        status = int(args._module.run(args) or 0)
-    lines = [ln for ln in buf.getvalue().splitlines() if ln.strip()]
-    try:
-        obj = json.loads(lines[-1]) if lines else {}
-    except ValueError:
-        obj = {"stdout": buf.getvalue()[-2000:]}
-    return status, obj
-
-
-def _run_stage(argv: Sequence[str], call: tuple[Callable, dict] | None) -> tuple[int, dict]:
-    """Run one stage: its stage function with keyword arguments when it has one (:func:`stage_calls`),
-    else its command in-process; returns (status, result)."""
-    if call is None:
-        return _command(argv)
+def _run_stage(argv: Sequence[str], call: tuple[Callable, dict]) -> tuple[int, dict]:
+    """Run one stage: its stage function with its keyword arguments (:func:`stage_calls`); ``argv`` is the
+    equivalent command line, recorded in the manifest. Returns (status, result)."""
     fn, kw = call
     with outputs.scope():
         return fn(**kw)
 
 
-def _data_options(s: dict) -> list[str]:
-    d = s["data"]
-    out = [str(d["path"])]
+def _data_call(study: Study) -> dict:
+    """The data keyword arguments every reading stage takes (:func:`bayesgeo.stages.fit.read_kwargs`)."""
+    d = study.settings["data"]
+    return {"data": d["path"], "x": d["x"], "y": d["y"], "value": d["value"], "site": d["site"], "units": d["units"],
+            "distance_units": d["distance_units"], "coords": d["coords"], "duplicates": d["duplicates"],
+            "covariates": list(study.settings["model"]["covariates"])}
+
+
+def _data_argv(kw: dict) -> list[str]:
+    """The data options of the call ``kw`` on a command line."""
+    argv = [str(kw["data"])]
     for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("site", "--site"), ("units", "--units"),
                      ("distance_units", "--distance-units")):
-        if d[key]:
-            out += [opt, d[key]]
-    out += ["--coords", d["coords"], "--duplicates", d["duplicates"]]
-    for c in s["model"]["covariates"]:
-        out += ["--covariate", c]
-    return out
+        if kw[key]:
+            argv += [opt, kw[key]]
+    argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
+    for c in kw["covariates"]:
+        argv += ["--covariate", c]
+    return argv
+
+
+def _explore_call(study: Study, root: Path) -> dict:
+    """Keyword arguments of :func:`bayesgeo.stages.explore.explore_folder` for the study's explore stage."""
+    e = study.settings["explore"]
+    return {**_data_call(study), "trend": e["trend"], "transform": e["transform"], "bins": e["bins"],
+            "permutations": e["permutations"], "estimator": e["estimator"], "seed": e["seed"],
+            "out": root / "explore", "lag_limit": e["lag_limit"]}
+
+
+def _explore_argv(kw: dict) -> list[str]:
+    argv = ["explore", *_data_argv(kw), "--trend", str(kw["trend"]), "--transform", kw["transform"],
+            "--bins", str(kw["bins"]), "--permutations", str(kw["permutations"]), "--estimator", kw["estimator"],
+            "--seed", str(kw["seed"]), "--out", str(kw["out"])]
+    if kw["lag_limit"] is not None:
+        argv += ["--lag-limit", repr(kw["lag_limit"])]
+    return argv
 
 
 def site_slug(site: str) -> str:
@@ -209,10 +204,8 @@ def _map_argv(kw: dict) -> list[str]:
 def _fit_call(study: Study, fam: str, fdir: Path) -> dict:
     """Keyword arguments of :func:`bayesgeo.stages.fit.fit_folder` for the fit of family ``fam``."""
     s = study.settings
-    d, m, smp, pri = s["data"], s["model"], s["sampler"], s["model.priors"]
-    kw = {"data": d["path"], "out": fdir, "x": d["x"], "y": d["y"], "value": d["value"], "site": d["site"],
-          "units": d["units"], "distance_units": d["distance_units"], "coords": d["coords"],
-          "duplicates": d["duplicates"], "covariates": list(m["covariates"]), "covariance": fam, "trend": m["trend"],
+    m, smp, pri = s["model"], s["sampler"], s["model.priors"]
+    kw = {**_data_call(study), "out": fdir, "covariance": fam, "trend": m["trend"],
           "transform": None if m["transform"] == "none" else m["transform"], "draws": smp["draws"],
           "tune": smp["tune"], "chains": smp["chains"], "seed": smp["seed"], "sampler": smp["name"],
           "target_accept": smp["target_accept"], "max_draws": smp.get("max_draws"),
@@ -226,14 +219,7 @@ def _fit_call(study: Study, fam: str, fdir: Path) -> dict:
 
 def _fit_argv(kw: dict) -> list[str]:
     """The ``bayesgeo fit`` command line of the call ``kw`` (what the manifest records)."""
-    argv = ["fit", str(kw["data"])]
-    for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("site", "--site"), ("units", "--units"),
-                     ("distance_units", "--distance-units")):
-        if kw[key]:
-            argv += [opt, kw[key]]
-    argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
-    for c in kw["covariates"]:
-        argv += ["--covariate", c]
+    argv = ["fit", *_data_argv(kw)]
     argv += ["--covariance", kw["covariance"], "--trend", str(kw["trend"]), "--transform", kw["transform"] or "none",
              "--draws", str(kw["draws"]), "--tune", str(kw["tune"]), "--chains", str(kw["chains"]),
              "--seed", str(kw["seed"]), "--sampler", kw["sampler"]]
@@ -276,12 +262,13 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
     :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
     from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.compare import compare_folders
+    from bayesgeo.stages.explore import explore_folder
     from bayesgeo.stages.fit import fit_folder
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
     root = Path(root)
-    calls: dict[str, tuple[Callable, dict]] = {}
+    calls: dict[str, tuple[Callable, dict]] = {"explore": (explore_folder, _explore_call(study, root))}
     if study.several_sites:
         sites = study_sites(study) if sites is None else sites
         areas = site_areas(study, sites)
@@ -318,8 +305,7 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
         return _site_commands(study, Path(root), study_sites(study) if sites is None else sites)
     s, root = study.settings, Path(root)
     pr = s["prediction"]
-    data = _data_options(s)
-    cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
+    cmds: dict[str, list[str]] = {"explore": _explore_argv(_explore_call(study, root))}
     areas = areas_of(pr["area"])
     for fam in study.families:
         fdir = root / "fits" / fam
@@ -332,22 +318,10 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
     return cmds
 
 
-def _explore_command(study: Study, root: Path, data: list[str]) -> list[str]:
-    e = study.settings["explore"]
-    ex = ["explore", *data, "--trend", str(e["trend"]), "--transform", e["transform"], "--bins", str(e["bins"]),
-          "--permutations", str(e["permutations"]), "--estimator", e["estimator"], "--seed", str(e["seed"]),
-          "--out", str(root / "explore")]
-    if e["lag_limit"] is not None:
-        ex += ["--lag-limit", repr(e["lag_limit"])]
-    return ex
-
-
 def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]]:
     """Stage commands of a several-site study (see :func:`stage_commands`)."""
-    s = study.settings
-    data = _data_options(s)
     areas = site_areas(study, sites)
-    cmds: dict[str, list[str]] = {"explore": _explore_command(study, root, data)}
+    cmds: dict[str, list[str]] = {"explore": _explore_argv(_explore_call(study, root))}
     for fam in study.families:
         fdir = root / "fits" / fam
         cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
@@ -446,13 +420,11 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             say(f"[{k}/{n_stages}] {name.replace(':', ' ')}")
             t0 = time.perf_counter()
             try:
-                rc, obj = _run_stage(cmds[name], calls.get(name))
+                rc, obj = _run_stage(cmds[name], calls[name])
             except InputError:
                 if name == "explore" or name.startswith("fit:"):
                     raise  # bad data or settings: nothing is written
                 rc, obj = EXIT_STAGE_FAILED, {"error": f"{sys.exc_info()[1]}"}
-            except SystemExit as err:  # argparse refused an option built from the study: a bug, recorded
-                rc, obj = EXIT_STAGE_FAILED, {"error": f"the {name} command refused its options (status {err.code})"}
             except Exception as err:  # noqa: BLE001 - a failing stage is recorded, the report still written
                 rc, obj = EXIT_STAGE_FAILED, {"error": " ".join(f"{type(err).__name__}: {err}".split())}
             gc.collect()  # close NetCDF handles a stage left to the garbage collector before the next opens the file
