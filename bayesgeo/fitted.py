@@ -35,7 +35,7 @@ class NotConvergedError(RuntimeError):
 
 
 def _file(path) -> Path:
-    from bayesgeo.posterior import FIT_FILE
+    from bayesgeo.layout import FIT_FILE
 
     path = Path(path)
     return path / FIT_FILE if path.is_dir() else path

@@ -22,6 +22,7 @@ import xarray as xr
 
 from bayesgeo.covariance import get_covariance
 from bayesgeo.io import to_jsonable
+from bayesgeo.layout import DESIGN, FIT_FILE, FIT_REPORT, SHRINKAGE, SUMMARY_CSV, SUMMARY_TXT
 from bayesgeo.looks import looks_line, report_fields
 
 __all__ = [
@@ -339,7 +340,6 @@ def plot_shrinkage(table: xr.Dataset, *, population: xr.Dataset | None = None, t
 # --- the fit as a report and on disk -------------------------------------------------------------
 
 #: Name of the NetCDF file of a saved several-site fit (as for a single-site fit).
-FIT_FILE = "posterior.nc"
 
 
 def with_site_diagnostics(tree: xr.DataTree, diagnostics) -> xr.DataTree:
@@ -496,20 +496,20 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
     flag = "NOT CONVERGED" if verdict == "fail" else verdict
     with new_folder(directory, overwrite=overwrite) as tmp:
         tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
-        _write_csv(tmp / "summary.csv", summary_table(tree), {"diagnostics": flag})
-        (tmp / "summary.txt").write_text(summary_text_sites(report), encoding="utf-8")
-        (tmp / "fit.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+        _write_csv(tmp / SUMMARY_CSV, summary_table(tree), {"diagnostics": flag})
+        (tmp / SUMMARY_TXT).write_text(summary_text_sites(report), encoding="utf-8")
+        (tmp / FIT_REPORT).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
         suffix = " (NOT CONVERGED)" if verdict == "fail" else ""
         if shrinkage is not None:
-            _write_csv(tmp / "shrinkage.csv", table_rows(shrinkage))
+            _write_csv(tmp / SHRINKAGE[0], table_rows(shrinkage))
             pop = tree["new_site"].to_dataset() if "new_site" in tree.children else None
             fig = plot_shrinkage(shrinkage, population=pop,
                                  title=f"Shrinkage: independent vs {shrinkage.attrs.get('pooling')}{suffix}")
-            fig.savefig(tmp / "shrinkage.png", dpi=120)
+            fig.savefig(tmp / SHRINKAGE[1], dpi=120)
             plt.close(fig)
         if design is not None:
-            _write_csv(tmp / "design.csv", table_rows(design))
+            _write_csv(tmp / DESIGN[0], table_rows(design))
             fig = plot_design(design, title=f"Sampling design for a new site{suffix}")
-            fig.savefig(tmp / "design.png", dpi=120)
+            fig.savefig(tmp / DESIGN[1], dpi=120)
             plt.close(fig)
     return Path(directory)

@@ -104,7 +104,7 @@ def store_log_likelihood(path: str | Path, *, overwrite: bool = False) -> Path:
         No readable fit, or a ``log_likelihood`` group present without ``overwrite``.
     """
     from bayesgeo.outputs import add_to_folder
-    from bayesgeo.posterior import FIT_FILE
+    from bayesgeo.layout import FIT_FILE
 
     tree = open_fit(path, sites=True).tree
     file = Path(path) / FIT_FILE if Path(path).is_dir() else Path(path)

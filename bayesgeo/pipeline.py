@@ -47,18 +47,19 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from bayesgeo.io import write_json
+from bayesgeo.layout import (REPORT_FILE, RUN_COMPARE, RUN_EXPLORE, RUN_FIGURES, RUN_INPUTS, RUN_TABLES,
+                             fit_folder_of)
 from bayesgeo import outputs
 from bayesgeo.outputs import claim, new_folder
 from bayesgeo.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
 from bayesgeo.study import Study, areas_of, read_study, study_line
 from bayesgeo.validate import InputError
 
-__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "site_areas", "site_slug", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
+__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "site_areas", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
 
 EXIT_OK = 0
 EXIT_STAGE_FAILED = 1
 EXIT_NOT_CONVERGED = 3
-REPORT_FILE = "report.html"
 
 def _run_stage(argv: Sequence[str], call: tuple[Callable, dict]) -> tuple[int, dict]:
     """Run one stage: its stage function with its keyword arguments (:func:`stage_calls`); ``argv`` is the
@@ -94,7 +95,7 @@ def _explore_call(study: Study, root: Path) -> dict:
     e = study.settings["explore"]
     return {**_data_call(study), "trend": e["trend"], "transform": e["transform"], "bins": e["bins"],
             "permutations": e["permutations"], "estimator": e["estimator"], "seed": e["seed"],
-            "out": root / "explore", "lag_limit": e["lag_limit"]}
+            "out": root / RUN_EXPLORE, "lag_limit": e["lag_limit"]}
 
 
 def _explore_argv(kw: dict) -> list[str]:
@@ -104,14 +105,6 @@ def _explore_argv(kw: dict) -> list[str]:
     if kw["lag_limit"] is not None:
         argv += ["--lag-limit", repr(kw["lag_limit"])]
     return argv
-
-
-def site_slug(site: str) -> str:
-    """The file-name form of a site label used by ``map --site`` and ``variogram-check --site``
-    (:func:`bayesgeo.sitenames.site_file_name`: safe and distinct for distinct labels)."""
-    from bayesgeo.sitenames import site_file_name
-
-    return site_file_name(site)
 
 
 def study_sites(study: Study) -> dict[str, "object"]:
@@ -273,22 +266,22 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
         sites = study_sites(study) if sites is None else sites
         areas = site_areas(study, sites)
         for fam in study.families:
-            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, root / "fits" / fam))
-            calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
+            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, fit_folder_of(root, fam)))
+            calls[f"check:{fam}"] = (check_fit, {"folder": fit_folder_of(root, fam)})
             for site in sites:
-                calls[f"variogram-check:{fam}:{site}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam, site))
+                calls[f"variogram-check:{fam}:{site}"] = (check_variogram, _vgcheck_call(study, fit_folder_of(root, fam), site))
             for site in sites:
-                calls[f"map:{fam}:{site}"] = (map_fit, _map_call(study, root / "fits" / fam, site, areas.get(site)))
+                calls[f"map:{fam}:{site}"] = (map_fit, _map_call(study, fit_folder_of(root, fam), site, areas.get(site)))
     else:
         areas = areas_of(study.settings["prediction"]["area"])
         for fam in study.families:
-            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, root / "fits" / fam))
-            calls[f"check:{fam}"] = (check_fit, {"folder": root / "fits" / fam})
-            calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, root / "fits" / fam))
-            calls[f"map:{fam}"] = (map_fit, _map_call(study, root / "fits" / fam, None, areas[0] if areas else None))
+            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, fit_folder_of(root, fam)))
+            calls[f"check:{fam}"] = (check_fit, {"folder": fit_folder_of(root, fam)})
+            calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, fit_folder_of(root, fam)))
+            calls[f"map:{fam}"] = (map_fit, _map_call(study, fit_folder_of(root, fam), None, areas[0] if areas else None))
     if len(study.families) > 1:
-        calls["compare"] = (compare_folders, {"dirs": [root / "fits" / f for f in study.families],
-                                              "out": root / "compare"})
+        calls["compare"] = (compare_folders, {"dirs": [fit_folder_of(root, f) for f in study.families],
+                                              "out": root / RUN_COMPARE})
     return calls
 
 
@@ -308,13 +301,13 @@ def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None)
     cmds: dict[str, list[str]] = {"explore": _explore_argv(_explore_call(study, root))}
     areas = areas_of(pr["area"])
     for fam in study.families:
-        fdir = root / "fits" / fam
+        fdir = fit_folder_of(root, fam)
         cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         cmds[f"variogram-check:{fam}"] = _vgcheck_argv(_vgcheck_call(study, fdir))
         cmds[f"map:{fam}"] = _map_argv(_map_call(study, fdir, None, areas[0] if areas else None))
     if len(study.families) > 1:
-        cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
+        cmds["compare"] = ["compare", *(str(fit_folder_of(root, f)) for f in study.families), "--out", str(root / RUN_COMPARE)]
     return cmds
 
 
@@ -323,7 +316,7 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
     areas = site_areas(study, sites)
     cmds: dict[str, list[str]] = {"explore": _explore_argv(_explore_call(study, root))}
     for fam in study.families:
-        fdir = root / "fits" / fam
+        fdir = fit_folder_of(root, fam)
         cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
         cmds[f"check:{fam}"] = ["check", str(fdir)]
         for site in sites:
@@ -332,21 +325,21 @@ def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]
             cmds[f"map:{fam}:{site}"] = _map_argv(_map_call(study, fdir, site, areas.get(site)))
     if len(study.families) > 1:
         # several-site fits compare on all points, each conditioning on its own site (bayesgeo compare)
-        cmds["compare"] = ["compare", *(str(root / "fits" / f) for f in study.families), "--out", str(root / "compare")]
+        cmds["compare"] = ["compare", *(str(fit_folder_of(root, f)) for f in study.families), "--out", str(root / RUN_COMPARE)]
     return cmds
 
 
 def _copy_outputs(root: Path, selected: str | None) -> None:
     """Top-level predictions (selected fit), figures/ and tables/ gathering every PNG and CSV."""
     if selected:
-        for p in sorted((root / "fits" / selected).glob("predictions*.nc")):
+        for p in sorted(fit_folder_of(root, selected).glob("predictions*.nc")):
             shutil.copy2(p, root / p.name)
-    (root / "figures").mkdir(exist_ok=True)
-    (root / "tables").mkdir(exist_ok=True)
-    for ext, dest in (("png", "figures"), ("csv", "tables")):
+    (root / RUN_FIGURES).mkdir(exist_ok=True)
+    (root / RUN_TABLES).mkdir(exist_ok=True)
+    for ext, dest in (("png", RUN_FIGURES), ("csv", RUN_TABLES)):
         for p in sorted(root.rglob(f"*.{ext}")):
             rel = p.relative_to(root)
-            if rel.parts[0] in ("figures", "tables", "inputs"):
+            if rel.parts[0] in (RUN_FIGURES, RUN_TABLES, RUN_INPUTS):
                 continue
             shutil.copy2(p, root / dest / "__".join(rel.parts))
 
@@ -400,11 +393,11 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     fams = study.families
     status, message, selected = EXIT_OK, "done", fams[0]
     with new_folder(out, overwrite=overwrite) as tmp:
-        (tmp / "inputs").mkdir()
+        (tmp / RUN_INPUTS).mkdir()
         for k, p in enumerate(inputs):
             name = "study.toml" if k == 0 else p.name
-            if not (tmp / "inputs" / name).exists():
-                shutil.copy2(p, tmp / "inputs" / name)
+            if not (tmp / RUN_INPUTS / name).exists():
+                shutil.copy2(p, tmp / RUN_INPUTS / name)
         cmds = stage_commands(study, tmp, sites=sites or None)
         calls = stage_calls(study, tmp, sites=sites or None)
         order = list(cmds)  # explore, then per family: fit, check, variogram checks, maps; compare last

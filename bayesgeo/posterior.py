@@ -39,6 +39,7 @@ from bayesgeo.sampling import new_seed
 from bayesgeo.trend_posterior import draw_trend
 from bayesgeo.validate import InputError
 from bayesgeo.defaults import CHAINS, DRAWS, TUNE
+from bayesgeo.layout import FIT_FILE, FIT_REPORT, PRIOR_CHECK, SUMMARY_CSV, SUMMARY_TXT
 
 __all__ = [
     "FIT_FILE",
@@ -57,7 +58,6 @@ __all__ = [
 ]
 
 #: Name of the NetCDF file of a saved fit.
-FIT_FILE = "posterior.nc"
 #: Scalar derived parameters reported for every fit (those that apply).
 PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
 _FORMAT_VERSION = 1
@@ -465,13 +465,13 @@ def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = Fals
         for r in rows:
             w.writerow({**{k: (f"{v:.10g}" if isinstance(v, float) else v) for k, v in r.items()},
                         "diagnostics": "NOT CONVERGED" if verdict == "fail" else verdict})
-        (tmp / "summary.csv").write_text(buf.getvalue(), encoding="utf-8")
-        (tmp / "summary.txt").write_text(summary_text(report), encoding="utf-8")
-        (tmp / "fit.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+        (tmp / SUMMARY_CSV).write_text(buf.getvalue(), encoding="utf-8")
+        (tmp / SUMMARY_TXT).write_text(summary_text(report), encoding="utf-8")
+        (tmp / FIT_REPORT).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
         import matplotlib.pyplot as plt
 
         fig = prior_check_figure(tree)
-        fig.savefig(tmp / "prior_check.png", dpi=120, bbox_inches="tight")
+        fig.savefig(tmp / PRIOR_CHECK, dpi=120, bbox_inches="tight")
         plt.close(fig)
     return Path(directory)
 

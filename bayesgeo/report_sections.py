@@ -19,6 +19,8 @@ from pathlib import Path
 import numpy as np
 
 from bayesgeo.report_priors import prior_posterior_figure, prior_sensitivity
+from bayesgeo.layout import (COMPARISON_FILE, DIAGNOSTICS_DIR, DIAGNOSTICS_FILE, EXPLORE_FILE, FIT_FILE, FIT_REPORT,
+                             RUN_COMPARE, RUN_EXPLORE, fit_folder_of, prediction_names, vgcheck_names)
 
 __all__ = ["context", "SECTIONS", "img_tag", "html_table", "prior_sensitivity", "prior_posterior_figure"]
 
@@ -93,11 +95,11 @@ def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:
     title = settings.get("", {}).get("title") or "bayesgeo study report"
     ctx = Ctx(root=root, manifest=manifest, out_name=out_name, title=title, settings=settings)
     for fam in settings.get("model", {}).get("covariance", []):
-        folder = root / "fits" / fam
-        f = Fam(name=fam, folder=folder, report=_read_json(folder / "fit.json"),
-                diagnostics=_read_json(folder / "diagnostics" / "diagnostics.json"))
-        if (folder / "posterior.nc").is_file():
-            f.tree, f.error = _load_tree(folder / "posterior.nc")
+        folder = fit_folder_of(root, fam)
+        f = Fam(name=fam, folder=folder, report=_read_json(folder / FIT_REPORT),
+                diagnostics=_read_json(folder / DIAGNOSTICS_DIR / DIAGNOSTICS_FILE))
+        if (folder / FIT_FILE).is_file():
+            f.tree, f.error = _load_tree(folder / FIT_FILE)
         ctx.fams.append(f)
     verdicts = manifest.get("verdicts", {})
     ctx.not_converged = any(v == "NOT CONVERGED" or v == "fail" for k, v in verdicts.items()
@@ -276,8 +278,8 @@ def job(ctx: Ctx) -> str:
 
 
 def explore(ctx: Ctx) -> str:
-    folder = ctx.root / "explore"
-    obj = _read_json(folder / "explore.json")
+    folder = ctx.root / RUN_EXPLORE
+    obj = _read_json(folder / EXPLORE_FILE)
     if obj is None:
         return _section("explore", "Exploratory analysis", gap("not available: the explore stage did not complete"))
     out = [f"<p>{obj['n_total']} points; semivariogram estimator {esc(obj['semivariogram']['estimator'])}; "
@@ -407,7 +409,7 @@ def diagnostics(ctx: Ctx) -> str:
         for p in d.get("problems", []):
             out.append(f"<p>[{esc(p.get('level', '').upper())}] {esc(p.get('message'))} <span class=\"small\">"
                        f"(source: {esc(p.get('source'))}; advice: {esc(p.get('advice'))})</span></p>")
-        figs = sorted((f.folder / "diagnostics").glob("*.png"))
+        figs = sorted((f.folder / DIAGNOSTICS_DIR).glob("*.png"))
         for fig in figs:
             if fig.name.startswith(("acf", "trace")):
                 out.append(img_tag(fig, fig.name, f"{f.name}: {fig.stem.replace('_', ' ')}"))
@@ -497,7 +499,7 @@ def vgcheck(ctx: Ctx) -> str:
 
             out.append(site_vgcheck(ctx, f))
             continue
-        png, csv = f.folder / "variogram_check.png", f.folder / "variogram_check.csv"
+        png, csv = (f.folder / name for name in vgcheck_names())
         if not png.is_file():
             out.append(gap("not available: the variogram check did not run for this family (skipped or failed)"))
             continue
@@ -521,7 +523,7 @@ def maps(ctx: Ctx) -> str:
         if ctx.several:
             out.append(site_maps(ctx, f))
         else:
-            out += map_block(f.name, f.folder / "predictions.nc", f.folder / "maps")
+            out += map_block(f.name, *(f.folder / name for name in prediction_names()))
     return _section("maps", "Predictive and exceedance maps", "\n".join(out))
 
 
@@ -539,7 +541,7 @@ def compare(ctx: Ctx) -> str:
     if len(fams) < 2:
         return _section("compare", "Model comparison", "<p>One covariance family was fitted; list several in "
                         "[model] covariance to compare them by PSIS-LOO.</p>")
-    obj = _read_json(ctx.root / "compare" / "comparison.json")
+    obj = _read_json(ctx.root / RUN_COMPARE / COMPARISON_FILE)
     if obj is None:
         return _section("compare", "Model comparison", gap("not available: the comparison stage did not run "
                                                             "(skipped or failed)"))

@@ -17,8 +17,9 @@ from collections.abc import Mapping
 from pathlib import Path
 
 from bayesgeo.report_sections import Ctx, Fam, _read_json, _section, esc, fmt, gap, html_table, img_tag
+from bayesgeo.layout import EXPLORE_FILE, RUN_EXPLORE, prediction_names, vgcheck_names
 
-__all__ = ["slug", "site_posterior", "sites_section", "site_vgcheck", "site_maps", "site_priors", "map_block",
+__all__ = ["site_posterior", "sites_section", "site_vgcheck", "site_maps", "site_priors", "map_block",
            "SITE_CAUTION"]
 
 SITE_CAUTION = (
@@ -30,13 +31,6 @@ SITE_CAUTION = (
 _PARAMS = ("practical_range", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
 _COLS = ["q50", "mean", "sd", "q05", "q95", "hdi90_low", "hdi90_high", "units"]
 _HEADS = ["median", "mean", "sd", "5%", "95%", "90% HDI low", "90% HDI high", "units"]
-
-
-def slug(site: str) -> str:
-    """File-name form of a site label (as ``map --site`` and ``variogram-check --site`` write it)."""
-    from bayesgeo.pipeline import site_slug
-
-    return site_slug(site)
 
 
 def _rows(block: Mapping, names=_PARAMS, **extra) -> list[dict]:
@@ -133,8 +127,7 @@ def site_vgcheck(ctx: Ctx, f: Fam) -> str:
     out = []
     for site in ctx.sites:
         out.append(f"<h4>Site {esc(site)}</h4>")
-        png = f.folder / f"variogram_check_{slug(site)}.png"
-        csv = f.folder / f"variogram_check_{slug(site)}.csv"
+        png, csv = (f.folder / name for name in vgcheck_names(site))
         if not png.is_file():
             out.append(gap("not available: the variogram check did not run for this site (skipped or failed)"))
             continue
@@ -183,8 +176,8 @@ def site_maps(ctx: Ctx, f: Fam) -> str:
     out = []
     for site in ctx.sites:
         out.append(f"<h4>Site {esc(site)}</h4>")
-        out += map_block(f"{f.name}, site {site}", f.folder / f"predictions_{slug(site)}.nc",
-                         f.folder / f"maps_{slug(site)}")
+        nc, maps = prediction_names(site)
+        out += map_block(f"{f.name}, site {site}", f.folder / nc, f.folder / maps)
     return "\n".join(out)
 
 
@@ -209,7 +202,7 @@ def read_sites(ctx: Ctx) -> list[str]:
     for f in ctx.fams:
         if f.report and f.report.get("sites"):
             return list(f.report["sites"])
-    obj = _read_json(ctx.root / "explore" / "explore.json")
+    obj = _read_json(ctx.root / RUN_EXPLORE / EXPLORE_FILE)
     if obj and obj.get("sites"):
         return list(obj["sites"])
     from bayesgeo.data import sites_of

@@ -318,7 +318,7 @@ def test_variogram_check_cli_site_option(tmp_path, capsys):
     import pandas as pd
 
     from bayesgeo.cli import main
-    from bayesgeo.stages.vgcheck import output_names
+    from bayesgeo.layout import vgcheck_names as output_names
     assert output_names(None) == ("variogram_check.png", "variogram_check.csv")
     png, csv = output_names("rail siding/2")  # an unsafe label: safe part + hash (bayesgeo.sitenames)
     assert png.startswith("variogram_check_rail_siding_2+") and png.endswith(".png") and csv == png[:-4] + ".csv"

@@ -7,7 +7,7 @@ import re
 import pytest
 
 from bayesgeo.data import read_points
-from bayesgeo.pipeline import site_slug
+from bayesgeo.layout import prediction_names, site_part, vgcheck_names
 from bayesgeo.sitenames import site_file_name
 from bayesgeo.validate import InputError
 
@@ -26,7 +26,11 @@ def test_labels_that_collided_get_distinct_safe_names():
         assert _PORTABLE.fullmatch(n) and not n.startswith(".") and not n.endswith(".") and "/" not in n
     assert site_file_name("a_b") == "a_b" and site_file_name("north-yard") == "north-yard"
     assert site_file_name("a/b").startswith("a_b+")
-    assert site_slug("a/b") == site_file_name("a/b")  # the pipeline and the report use the same helper
+    # every stage, the pipeline and the report name per-site files through bayesgeo.layout
+    assert site_part("a/b") == site_file_name("a/b")
+    assert prediction_names("a/b") == (f"predictions_{site_file_name('a/b')}.nc", f"maps_{site_file_name('a/b')}")
+    assert vgcheck_names("a/b") == tuple(f"variogram_check_{site_file_name('a/b')}.{e}" for e in ("png", "csv"))
+    assert prediction_names() == ("predictions.nc", "maps") and vgcheck_names()[0] == "variogram_check.png"
 
 
 def test_long_labels_are_shortened_but_stay_distinct():

@@ -13,7 +13,8 @@ the parameters without a site index) to ``diagnostics.json`` and to the printed 
 
 from __future__ import annotations
 
-from bayesgeo.stages.check import DIAGNOSTICS_DIR, POSTERIOR_FILE  # noqa: F401 - output names
+from bayesgeo.layout import DIAGNOSTICS_DIR
+from bayesgeo.layout import FIT_FILE as POSTERIOR_FILE
 
 HELP = "check convergence of a fitted posterior (R-hat, ESS, MCSE, divergences, E-BFMI, tree depth)"
 

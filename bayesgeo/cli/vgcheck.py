@@ -11,7 +11,8 @@ several-site fit, ``--site NAME`` checks one site (its draws and points,
 
 from __future__ import annotations
 
-from bayesgeo.stages.vgcheck import FIGURE, TABLE
+from bayesgeo.layout import VGCHECK_FIGURE as FIGURE
+from bayesgeo.layout import VGCHECK_TABLE as TABLE
 
 HELP = "posterior predictive check of a fit against the empirical semivariogram"
 

@@ -12,12 +12,12 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+from bayesgeo.layout import DIAGNOSTICS_DIR, DIAGNOSTICS_FILE
+from bayesgeo.layout import FIT_FILE as POSTERIOR_FILE
 from bayesgeo.validate import InputError
 
-__all__ = ["DIAGNOSTICS_DIR", "POSTERIOR_FILE", "check_fit", "read_posterior"]
+__all__ = ["check_fit", "read_posterior"]
 
-DIAGNOSTICS_DIR = "diagnostics"
-POSTERIOR_FILE = "posterior.nc"
 EXIT_NOT_CONVERGED = 3
 
 
@@ -120,8 +120,8 @@ def _write(folder: Path, tree, result: dict, *, var_names, lag_limit, figures: b
                 figure_error = " ".join(f"{type(err).__name__}: {err}".split())
             if bar is not None:
                 bar.update()
-        result.update(posterior=str(folder / POSTERIOR_FILE), diagnostics=str(outdir / "diagnostics.json"),
+        result.update(posterior=str(folder / POSTERIOR_FILE), diagnostics=str(outdir / DIAGNOSTICS_FILE),
                       figures=written_figures, figure_error=figure_error)
-        write_json(tmp / "diagnostics.json", result)
+        write_json(tmp / DIAGNOSTICS_FILE, result)
         if bar is not None:
             bar.update()

@@ -13,11 +13,10 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+from bayesgeo.layout import COMPARISON_FILE
 from bayesgeo.validate import InputError
 
-__all__ = ["COMPARISON_FILE", "compare_folders", "build_result"]
-
-COMPARISON_FILE = "comparison.json"
+__all__ = ["compare_folders", "build_result"]
 
 
 def _names(dirs) -> list[str]:

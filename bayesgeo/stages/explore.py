@@ -13,6 +13,8 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+from bayesgeo.layout import EXPLORE_FILE, site_part
+
 __all__ = ["CAUTIONS", "AZIMUTHS", "TOLERANCE", "explore_folder"]
 
 CAUTIONS = (
@@ -32,12 +34,6 @@ TOLERANCE = 22.5
 #: Directions (degrees clockwise from north) and half-width of the directional semivariograms.
 AZIMUTHS = (0.0, 45.0, 90.0, 135.0)
 TOLERANCE = 22.5
-
-
-def _slug(label: str) -> str:
-    from bayesgeo.sitenames import site_file_name
-
-    return site_file_name(label)
 
 
 def _vals(da) -> list:
@@ -239,7 +235,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
     files: list[str] = []
     with new_folder(out, overwrite=overwrite) as tmp:
         for label in labels:
-            sub = _slug(label) if multi else ""
+            sub = site_part(label) if multi else ""
             files += [f"{sub}/{f}" if sub else f for f in _write_site(tmp / sub if sub else tmp, results[label], label)]
         if multi:
             import pandas as pd
@@ -248,8 +244,8 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
                       for lb in labels]
             pd.concat(frames).to_csv(tmp / "fits.csv", float_format="%.10g")
             files.append("fits.csv")
-        files.append("explore.json")
+        files.append(EXPLORE_FILE)
         obj["files"] = files
         obj["cautions"] = list(CAUTIONS)
-        write_json(tmp / "explore.json", to_jsonable(obj))
+        write_json(tmp / EXPLORE_FILE, to_jsonable(obj))
     return 0, obj

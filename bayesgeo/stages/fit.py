@@ -14,12 +14,12 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from bayesgeo.defaults import CHAINS, DRAWS, TUNE
+from bayesgeo.layout import DESIGN, FIT_FILE, FIT_REPORT, PRIOR_CHECK, SHRINKAGE, SUMMARY_CSV, SUMMARY_TXT
 from bayesgeo.validate import InputError
 
 __all__ = ["fit_folder", "read_kwargs", "workload_plan"]
 
 EXIT_NOT_CONVERGED = 3
-SINGLE_FILES = "posterior.nc, summary.csv, summary.txt, fit.json, prior_check.png"
 
 
 def read_kwargs(*, x=None, y=None, value=None, site=None, only_site=None, covariates: Sequence[str] = (),
@@ -151,7 +151,7 @@ def _fit_one(ds, out, *, priors, seed, keep_sampling, overwrite, stage, model_kw
     stage(f"writing {out} ...")
     save_fit(tree, out, overwrite=overwrite)
     report = fit_report(tree)
-    report["files"] = SINGLE_FILES.split(", ")
+    report["files"] = [FIT_FILE, SUMMARY_CSV, SUMMARY_TXT, FIT_REPORT, PRIOR_CHECK]
     return (EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0), report
 
 
@@ -187,8 +187,8 @@ def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, 
     save_site_fit(tree, out, overwrite=overwrite, shrinkage=shrink, design=design)
     report = site_report(tree, shrinkage=shrink, design=design)
     report.update(extra)
-    files = ["posterior.nc", "summary.csv", "summary.txt", "fit.json"]
+    files = [FIT_FILE, SUMMARY_CSV, SUMMARY_TXT, FIT_REPORT]
     if shrink is not None:
-        files += ["shrinkage.csv", "shrinkage.png", "design.csv", "design.png"]
+        files += [*SHRINKAGE, *DESIGN]
     report["files"] = files
     return (EXIT_NOT_CONVERGED if conv.verdict == "fail" else 0), report

@@ -13,12 +13,11 @@ from pathlib import Path
 
 import numpy as np
 
+from bayesgeo.layout import prediction_names
 from bayesgeo.validate import INT_LIMITS, InputError, check_positive, check_positive_int
 
-__all__ = ["PREDICTIONS_FILE", "MAPS_DIR", "DEFAULT_DRAWS", "map_fit", "map_draws", "output_names"]
+__all__ = ["DEFAULT_DRAWS", "map_fit", "map_draws"]
 
-PREDICTIONS_FILE = "predictions.nc"
-MAPS_DIR = "maps"
 DEFAULT_DRAWS = 500
 AREA_POINTS = 400
 MAX_SIM_TARGETS = 2000
@@ -37,16 +36,6 @@ def map_draws(value) -> int | None:
     if not lo <= n <= hi:
         raise InputError(f"draws: expected an integer from {lo} to {hi} or 'all', got {value!r}")
     return n
-
-
-def output_names(site: str | None) -> tuple[str, str]:
-    """File names of the predictions and the maps folder (per site: a safe, distinct suffix)."""
-    if site is None:
-        return PREDICTIONS_FILE, MAPS_DIR
-    from bayesgeo.sitenames import site_file_name
-
-    slug = site_file_name(site)
-    return f"{Path(PREDICTIONS_FILE).stem}_{slug}.nc", f"{MAPS_DIR}_{slug}"
 
 
 def map_fit(folder, *, site: str | None = None, cell: float | None = None, margin: float = 0.0,
@@ -112,7 +101,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     area_vertices = tg.area_from_option(str(area)) if area else None
     if simulate < 0:
         raise InputError(f"simulate: expected an integer >= 0, got {simulate}")
-    nc_name, maps_name = output_names(site)
+    nc_name, maps_name = prediction_names(site)
     out_nc, out_maps = folder / nc_name, folder / maps_name
     check_addable(folder, nc_name, overwrite=overwrite)
     if figures:

@@ -12,24 +12,13 @@ from pathlib import Path
 
 import numpy as np
 
+from bayesgeo.layout import vgcheck_names
 from bayesgeo.validate import InputError
 
-__all__ = ["FIGURE", "TABLE", "TABLE_COLUMNS", "check_variogram", "output_names"]
+__all__ = ["TABLE_COLUMNS", "check_variogram"]
 
-FIGURE = "variogram_check.png"
-TABLE = "variogram_check.csv"
 TABLE_COLUMNS = ("bin", "lag", "bin_lower", "bin_upper", "pairs", "observed", "replicate_q05", "replicate_q50",
                  "replicate_q95", "model_q05", "model_q50", "model_q95", "p_value", "outside")
-
-
-def output_names(site: str | None) -> tuple[str, str]:
-    """File names of the figure and the table (``variogram_check_<site>.*`` for one site of a several-site fit)."""
-    if site is None:
-        return FIGURE, TABLE
-    from bayesgeo.sitenames import site_file_name
-
-    slug = site_file_name(site)
-    return f"variogram_check_{slug}.png", f"variogram_check_{slug}.csv"
 
 
 def _list(da) -> list:
@@ -79,7 +68,7 @@ def check_variogram(folder, *, site: str | None = None, replicates: int = 200, b
     folder = Path(folder)
     bar = progress(total=3, desc="variogram-check") if progress else None
     fit = read_site(folder, site)
-    fig_name, csv_name = output_names(site)
+    fig_name, csv_name = vgcheck_names(site)
     fig_path, csv_path = folder / fig_name, folder / csv_name
     check_addable(folder, fig_name, overwrite=overwrite)
     check_addable(folder, csv_name, overwrite=overwrite)
