@@ -41,7 +41,7 @@ import numpy as np
 from scipy import linalg, special
 from scipy.linalg import blas
 
-from bayesgeo.covariance import Covariance, get_covariance
+from bayesgeo.covariance import Covariance, get_covariance, kernel_code
 from bayesgeo.geometry import cross_distance, distance_matrix
 from bayesgeo.validate import InputError
 from bayesgeo.defaults import JITTER
@@ -67,7 +67,6 @@ CAUTION = (
     "reviewed by a licensed professional."
 )
 
-_FAMILY_CODE = {"exponential": 0, "matern32": 1, "matern52": 2, "gaussian": 3, "spherical": 4}
 _TINY = 1e-300
 _PAD = 16
 _KERNEL = None
@@ -223,7 +222,7 @@ def _kernel():
 
 def _cross_cov(basis: KrigingBasis, dist_f: np.ndarray, k: int, out: np.ndarray) -> np.ndarray:
     """sigma2_k rho(dist / phi_k) written into ``out`` (n, m, Fortran order)."""
-    code = _FAMILY_CODE.get(basis.covariance.name)
+    code = kernel_code(basis.covariance.name)
     if code is None:
         out[...] = basis.partial_sill[k] * basis.covariance.correlation(dist_f, basis.scale[k])
     else:

@@ -35,6 +35,8 @@ from scipy import optimize, special
 
 __all__ = [
     "FAMILIES",
+    "KERNEL_FAMILIES",
+    "kernel_code",
     "PRACTICAL_RANGE_CORRELATION",
     "Covariance",
     "get_covariance",
@@ -245,6 +247,15 @@ _CLOSED = {
 
 #: Names accepted by :func:`get_covariance`.
 FAMILIES: tuple[str, ...] = (*_CLOSED, "matern")
+
+#: The one family-code table of the Numba kernels (likelihood, kriging, nearest-neighbour): family
+#: ``KERNEL_FAMILIES[c]`` is code ``c``. The general ``matern`` (Bessel function) has no code.
+KERNEL_FAMILIES: tuple[str, ...] = ("exponential", "matern32", "matern52", "gaussian", "spherical")
+
+
+def kernel_code(name: str) -> int | None:
+    """The Numba kernel code of family ``name`` (:data:`KERNEL_FAMILIES`), or None for the general Matérn."""
+    return KERNEL_FAMILIES.index(name) if name in KERNEL_FAMILIES else None
 
 
 @functools.lru_cache(maxsize=64)

@@ -47,15 +47,16 @@ from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache
 from scipy import linalg
 
 from bayesgeo import _lapack
-from bayesgeo.covariance import Covariance
+from bayesgeo.covariance import KERNEL_FAMILIES, Covariance
 from bayesgeo.defaults import JITTER, LOG_2PI as _LOG2PI
 
 __all__ = ["FAST_FAMILIES", "JITTER", "covariance_matrix", "loglik_and_grad", "loglik_numpy", "marginal_loglik",
            "solve_covariance"]
 
 
-#: Families with a closed-form Numba kernel; the general ``matern`` uses the reference graph.
-FAST_FAMILIES: tuple[str, ...] = ("exponential", "matern32", "matern52", "gaussian", "spherical")
+#: Families with a closed-form Numba kernel (the code table of :mod:`bayesgeo.covariance`); the general
+#: ``matern`` uses the reference graph.
+FAST_FAMILIES = KERNEL_FAMILIES
 
 _TILE = 32  # tile edge for the mirrored (row/column) passes over the matrix: 2 x 8 kB in L1
 
