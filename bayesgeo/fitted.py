@@ -128,12 +128,15 @@ class Fit:
     @cached_property
     def diagnostics(self) -> dict | None:
         """The stored convergence check (``Convergence.to_json()``), or None before :meth:`with_check`."""
-        raw = self.tree.attrs.get("diagnostics")
-        return None if raw is None else json.loads(raw)
+        from bayesgeo.posterior import stored
+
+        return stored(self.tree, "diagnostics")
 
     @cached_property
     def cautions(self) -> list[str]:
-        return list(json.loads(self.tree.attrs.get("cautions", "[]")))
+        from bayesgeo.posterior import stored
+
+        return list(stored(self.tree, "cautions", []))
 
     @cached_property
     def approximation(self) -> dict | None:

@@ -207,10 +207,10 @@ def parameter_block(ds: xr.Dataset, names=PARAMETERS, *, prob: float = 0.9) -> d
 
 def site_blocks(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
     """Per site: the parameter blocks of :data:`PARAMETERS` plus ``n``."""
-    from bayesgeo.fitted import as_fit
+    from bayesgeo.hierarchical import site_spec
 
     post = tree["posterior"].to_dataset()
-    n = as_fit(tree).spec.n
+    n = site_spec(tree).n
     out = {}
     for i, site in enumerate(post["site"].values):
         one = post[[p for p in PARAMETERS if p in post]].sel(site=site)
@@ -287,9 +287,9 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
             q = post[p].quantile(qs, dim=("chain", "draw")).transpose("site", "quantile").values
             vals[f"{tag}_low"][:, j], vals[f"{tag}_median"][:, j], vals[f"{tag}_high"][:, j] = q.T
             res[tag][:, j] = np.log(q[:, 2]) - np.log(q[:, 0])
-    from bayesgeo.fitted import as_fit
+    from bayesgeo.hierarchical import site_spec
 
-    n = as_fit(pooled).spec.n
+    n = site_spec(pooled).n
     units = {p: a[p].attrs.get("units", "") for p in parameters}
     ds = xr.Dataset({k: (("site", "parameter"), v) for k, v in vals.items()},
                     coords={"site": sites, "parameter": list(parameters), "n": ("site", np.asarray(n, dtype=int)),
@@ -375,11 +375,12 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
     population medians under the single-site names (hierarchical pooling), the shared values
     (complete pooling), or nothing (independent pooling); ``parameters_note`` says which.
     """
-    from bayesgeo.fitted import as_fit
+    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.posterior import approximation_of, fit_settings, stored
 
-    fit = as_fit(tree)
-    tree, settings, spec = fit.tree, fit.settings, fit.spec
-    post = fit.posterior
+    tree = getattr(tree, "tree", tree)  # a Fit or its tree
+    settings, spec = fit_settings(tree), site_spec(tree)
+    post = tree["posterior"].to_dataset()
     params, note = {}, "independent pooling: no population; see 'sites'"
     if spec.pooling != "independent":
         names = {"practical_range": "population_practical_range_median", "partial_sill": "population_partial_sill_median",
@@ -390,7 +391,7 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
         note = ("population medians (total_sill: population mean) of the hierarchical model"
                 if spec.pooling == "hierarchical" else "values shared by all sites (complete pooling)")
     smp = settings["sampler"]
-    diag = fit.diagnostics
+    diag = stored(tree, "diagnostics")
     out = {
         "parameters": params,
         "parameters_note": note,
@@ -412,8 +413,8 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
         "sites": site_blocks(tree, prob=prob),
         "population": population_block(tree, prob=prob),
         "new_site": new_site_block(tree, prob=prob),
-        "cautions": fit.cautions,
-        "approximation": fit.approximation,
+        "cautions": stored(tree, "cautions", []),
+        "approximation": approximation_of(tree),
     }
     if shrinkage is not None:
         out["shrinkage"] = table_rows(shrinkage)

@@ -295,10 +295,16 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     return tree
 
 
+def stored(tree: xr.DataTree, name: str, default=None):
+    """The decoded JSON attribute ``name`` of a fit (``diagnostics``, ``cautions``, ``approximation``), or
+    ``default`` when absent: the one decoder of these attributes (:func:`fit_settings` decodes ``settings``)."""
+    raw = tree.attrs.get(name)
+    return json.loads(raw) if raw else default
+
+
 def approximation_of(tree: xr.DataTree) -> dict | None:
     """The stored nearest-neighbour approximation check of a fit (None for dense fits)."""
-    raw = tree.attrs.get("approximation")
-    return json.loads(raw) if raw else None
+    return stored(tree, "approximation")
 
 
 
@@ -351,10 +357,8 @@ def summary_table(tree: xr.DataTree, *, var_names: Sequence[str] | None = None, 
 def fit_report(fit) -> dict:
     """The fit (:class:`bayesgeo.fitted.Fit` or its tree) as one JSON-able dict: parameters (data units),
     sampler, diagnostics, cautions, settings."""
-    from bayesgeo.fitted import as_fit
-
-    fit = as_fit(fit)
-    tree, settings, spec = fit.tree, fit.settings, fit.spec
+    tree = getattr(fit, "tree", fit)  # a Fit or its tree
+    settings, spec = fit_settings(tree), fit_spec(tree)
     rows = summary_table(tree)
     params = {r["parameter"]: {k: v for k, v in r.items() if k != "parameter"} for r in rows}
     if not spec.nugget:
@@ -362,7 +366,7 @@ def fit_report(fit) -> dict:
         params["nugget"] = {**zero, "units": f"({spec.model_units})^2", "fixed": True}
         params["nugget_ratio"] = {**zero, "units": "1", "fixed": True}
     smp = settings["sampler"]
-    diag = fit.diagnostics
+    diag = stored(tree, "diagnostics")
     return to_jsonable({
         "parameters": params,
         "sampler": {"name": smp["sampler"], "chains": smp["chains"], "draws": smp["draws"], "tune": smp["tune"],
@@ -373,12 +377,12 @@ def fit_report(fit) -> dict:
                     **report_fields(smp)},
         "diagnostics": diag,
         "converged": None if diag is None else diag.get("verdict") != "fail",
-        "approximation": fit.approximation,
+        "approximation": approximation_of(tree),
         "model": {"covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget, "trend": spec.trend,
                   "covariates": list(spec.covariates), "transform": spec.transform, "n": spec.n,
                   "value_units": spec.model_units, "distance_units": spec.distance_units,
                   "priors": spec.priors.to_dict()},
-        "cautions": fit.cautions,
+        "cautions": stored(tree, "cautions", []),
     })
 
 
