@@ -42,6 +42,7 @@ __all__ = [
     "summary_text_sites",
     "save_site_fit",
     "with_site_diagnostics",
+    "site_cautions",
 ]
 
 #: Cautions carried by every several-site output (they may feed contamination decisions).
@@ -207,7 +208,7 @@ def parameter_block(ds: xr.Dataset, names=PARAMETERS, *, prob: float = 0.9) -> d
 
 def site_blocks(tree: xr.DataTree, *, prob: float = 0.9) -> dict:
     """Per site: the parameter blocks of :data:`PARAMETERS` plus ``n``."""
-    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.site_inputs import site_spec
 
     post = tree["posterior"].to_dataset()
     n = site_spec(tree).n
@@ -287,7 +288,7 @@ def shrinkage_table(pooled: xr.DataTree, independent: xr.DataTree, *, prob: floa
             q = post[p].quantile(qs, dim=("chain", "draw")).transpose("site", "quantile").values
             vals[f"{tag}_low"][:, j], vals[f"{tag}_median"][:, j], vals[f"{tag}_high"][:, j] = q.T
             res[tag][:, j] = np.log(q[:, 2]) - np.log(q[:, 0])
-    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.site_inputs import site_spec
 
     n = site_spec(pooled).n
     units = {p: a[p].attrs.get("units", "") for p in parameters}
@@ -346,7 +347,7 @@ def with_site_diagnostics(tree: xr.DataTree, diagnostics) -> xr.DataTree:
     """A copy of ``tree`` carrying the diagnostics JSON, with cautions updated for its verdict."""
     import json
 
-    from bayesgeo.hierarchical import site_cautions, site_spec
+    from bayesgeo.site_inputs import site_spec
     from bayesgeo.posterior import approximation_of
 
     out = tree.copy()
@@ -375,7 +376,7 @@ def site_report(tree: xr.DataTree, *, shrinkage: xr.Dataset | None = None, desig
     population medians under the single-site names (hierarchical pooling), the shared values
     (complete pooling), or nothing (independent pooling); ``parameters_note`` says which.
     """
-    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.site_inputs import site_spec
     from bayesgeo.posterior import approximation_of, fit_settings, stored
 
     tree = getattr(tree, "tree", tree)  # a Fit or its tree
@@ -514,3 +515,23 @@ def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shri
             fig.savefig(tmp / DESIGN[1], dpi=120)
             plt.close(fig)
     return Path(directory)
+
+
+def site_cautions(spec, posterior: xr.Dataset | None = None, diagnostics: dict | None = None,
+                  approximation: dict | None = None) -> list[str]:
+    """Cautions of a several-site fit (``spec``: its :class:`bayesgeo.site_inputs.SiteSpec`): the single-site ones, the pooling ones, small-site warnings and
+    the nearest-neighbour approximation check of each nn site."""
+    from bayesgeo.posterior import cautions
+
+    out = cautions(spec.fit_spec(spec.sites[0]), None, diagnostics)
+    if posterior is not None and "practical_range" in posterior:
+        med = posterior["practical_range"].median(dim=("chain", "draw")).values
+        far = [s for s, m, e in zip(spec.sites, med, spec.site_extents) if m > 0.5 * e]
+        if far:
+            out.append(f"At site(s) {', '.join(far)} the posterior median practical range exceeds half the largest "
+                       "distance between that site's samples; the data say little about the range beyond that, so "
+                       "its upper interval reflects the prior and the population (common practice).")
+    out += list(CAUTIONS) if spec.pooling != "independent" else list(CAUTIONS[:2])
+    out += list(spec.warnings)
+    out += [f"Site {site}: {check['message']}" for site, check in (approximation or {}).items()]
+    return out

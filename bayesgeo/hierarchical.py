@@ -68,9 +68,9 @@ import xarray as xr
 from bayesgeo.covariance import get_covariance
 from bayesgeo.io import plain_attr, to_jsonable
 from bayesgeo.priors import Priors
+from bayesgeo.hier_outputs import site_cautions
 from bayesgeo.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, SMALL_SITE_POLICIES, PARAMETRISATIONS,
-                                  POOLINGS, SiteData, SiteSpec, site_inputs)
-from bayesgeo.validate import InputError
+                                  POOLINGS, SiteData, SiteSpec, site_inputs, site_spec)
 from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 
 __all__ = [
@@ -378,44 +378,6 @@ def _versions() -> dict:
     from bayesgeo.posterior import _versions as single_site_versions
 
     return single_site_versions()
-
-
-def site_spec(tree: xr.DataTree, source: str | None = None) -> SiteSpec:
-    """The :class:`SiteSpec` recorded in a several-site fit's ``settings`` attribute
-    (decoded by :func:`bayesgeo.posterior.fit_settings`; ``source`` names the file in messages)."""
-    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings
-
-    where = f"{source}: " if source else ""
-    settings = fit_settings(tree, source)
-    if settings.get("format") != SEVERAL_SITE_FORMAT:
-        raise InputError(f"{where}not a bayesgeo several-site fit (settings format {settings.get('format')!r})")
-    try:
-        return SiteSpec.from_dict(settings["model"])
-    except (KeyError, TypeError, ValueError, AttributeError) as err:
-        what = f"missing {err}" if isinstance(err, KeyError) else " ".join(str(err).split())
-        raise InputError(f"{where}the model settings cannot be decoded ({what}): not a bayesgeo several-site fit, "
-                         "or a damaged one") from None
-
-
-def site_cautions(spec: SiteSpec, posterior: xr.Dataset | None = None, diagnostics: Mapping | None = None,
-                  approximation: Mapping | None = None) -> list[str]:
-    """Cautions of a several-site fit: the single-site ones, the pooling ones, small-site warnings and
-    the nearest-neighbour approximation check of each nn site."""
-    from bayesgeo.hier_outputs import CAUTIONS
-    from bayesgeo.posterior import cautions
-
-    out = cautions(spec.fit_spec(spec.sites[0]), None, diagnostics)
-    if posterior is not None and "practical_range" in posterior:
-        med = posterior["practical_range"].median(dim=("chain", "draw")).values
-        far = [s for s, m, e in zip(spec.sites, med, spec.site_extents) if m > 0.5 * e]
-        if far:
-            out.append(f"At site(s) {', '.join(far)} the posterior median practical range exceeds half the largest "
-                       "distance between that site's samples; the data say little about the range beyond that, so "
-                       "its upper interval reflects the prior and the population (common practice).")
-    out += list(CAUTIONS) if spec.pooling != "independent" else list(CAUTIONS[:2])
-    out += list(spec.warnings)
-    out += [f"Site {site}: {check['message']}" for site, check in (approximation or {}).items()]
-    return out
 
 
 def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
