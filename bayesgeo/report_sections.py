@@ -7,17 +7,16 @@ failed) says so in a visible box instead of showing anything made up.
 
 from __future__ import annotations
 
-import base64
-import html
-import io
-import json
-import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from bayesgeo.report_html import Ctx, Fam, esc, fmt, gap, html_table, img_tag
+from bayesgeo.report_html import fig_png as _fig_png
+from bayesgeo.report_html import read_json as _read_json
+from bayesgeo.report_html import run_data as _data
+from bayesgeo.report_html import section as _section
 from bayesgeo.report_priors import prior_posterior_figure, prior_sensitivity
 from bayesgeo.layout import (COMPARISON_FILE, DIAGNOSTICS_DIR, DIAGNOSTICS_FILE, EXPLORE_FILE, FIT_FILE, FIT_REPORT,
                              RUN_COMPARE, RUN_EXPLORE, fit_folder_of, prediction_names, vgcheck_names)
@@ -40,39 +39,6 @@ LIMITATIONS = (
     "contamination, exposure or remediation must follow the rules of the local regulator, including any "
     "required sampling densities, statistics and action levels.",
 )
-
-
-@dataclass
-class Fam:
-    """What one fitted family left in the run folder."""
-
-    name: str
-    folder: Path
-    report: dict | None = None
-    diagnostics: dict | None = None
-    tree: object | None = None
-    error: str | None = None
-
-
-@dataclass
-class Ctx:
-    root: Path
-    manifest: Mapping
-    out_name: str
-    title: str
-    settings: Mapping
-    fams: list[Fam] = field(default_factory=list)
-    not_converged: bool = False
-    failed: list[str] = field(default_factory=list)
-    several: bool = False
-    sites: list[str] = field(default_factory=list)
-
-
-def _read_json(path: Path) -> dict | None:
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
 
 
 def _load_tree(path: Path):
@@ -113,62 +79,6 @@ def context(root: Path, manifest: Mapping, *, out_name: str) -> Ctx:
     return ctx
 
 
-# --- small HTML helpers -------------------------------------------------------------------------
-def esc(x) -> str:
-    return html.escape(str(x))
-
-
-def fmt(v, digits: int = 4) -> str:
-    if v is None:
-        return "–"
-    if isinstance(v, (bool, np.bool_)):
-        return "yes" if v else "no"
-    if isinstance(v, (int, np.integer)):
-        return str(int(v))
-    if isinstance(v, (float, np.floating)):
-        return "–" if not math.isfinite(v) else f"{v:.{digits}g}"
-    return esc(v)
-
-
-def html_table(rows: Sequence[Mapping], columns: Sequence[str], *, headers: Sequence[str] | None = None,
-               left: Sequence[str] = ()) -> str:
-    """An HTML table of ``rows`` (dicts) with the given columns; ``left`` columns left-aligned."""
-    heads = headers or columns
-    out = ["<table><thead><tr>"]
-    out += [f"<th class=\"{'l' if c in left else ''}\">{esc(h)}</th>" for c, h in zip(columns, heads)]
-    out.append("</tr></thead><tbody>")
-    for r in rows:
-        out.append("<tr>" + "".join(f"<td class=\"{'l' if c in left else ''}\">{fmt(r.get(c))}</td>"
-                                    for c in columns) + "</tr>")
-    out.append("</tbody></table>")
-    return "".join(out)
-
-
-def img_tag(png: bytes | Path, alt: str, caption: str = "") -> str:
-    """A figure with the PNG embedded as a base64 data URI."""
-    data = png.read_bytes() if isinstance(png, Path) else png
-    b64 = base64.b64encode(data).decode("ascii")
-    cap = f"<figcaption>{esc(caption)}</figcaption>" if caption else ""
-    return f"<figure><img alt=\"{esc(alt)}\" src=\"data:image/png;base64,{b64}\">{cap}</figure>"
-
-
-def _fig_png(fig) -> bytes:
-    import matplotlib.pyplot as plt
-
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=100)
-    plt.close(fig)
-    return buf.getvalue()
-
-
-def gap(text: str) -> str:
-    return f"<p class=\"gap\">{esc(text)}</p>"
-
-
-def _section(anchor: str, title: str, body: str) -> str:
-    return f"<section id=\"{anchor}\"><h2>{esc(title)}</h2>\n{body}\n</section>"
-
-
 TOC = (("job", "Job and data"), ("explore", "Exploratory analysis"), ("model", "Model and priors"),
        ("diagnostics", "Convergence diagnostics"), ("posterior", "Posterior: range, sills, nugget"),
        ("sites", "Sites: shrinkage and sampling design"),
@@ -198,19 +108,6 @@ def header(ctx: Ctx) -> str:
 def contents(ctx: Ctx) -> str:
     items = "".join(f"<li><a href=\"#{a}\">{esc(t)}</a></li>" for a, t in TOC if a != "sites" or ctx.several)
     return f"<nav><ol>{items}</ol></nav>"
-
-
-def _data(ctx: Ctx):
-    from bayesgeo.data import read_points
-
-    d = ctx.settings.get("data", {})
-    path = Path(d["path"])
-    if not path.is_file() and (ctx.root / "inputs" / path.name).is_file():
-        path = ctx.root / "inputs" / path.name  # the run's copy (the original may have been a scratch file)
-    return read_points(path, x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
-                       covariates=d.get("covariates") or [], coords=d.get("coords", "auto"),
-                       duplicates=d.get("duplicates", "error"), units=d.get("units"),
-                       distance_units=d.get("distance_units"))
 
 
 def samples_figure(ds, thresholds: Sequence[float] = ()):

@@ -16,7 +16,9 @@ import json
 from collections.abc import Mapping
 from pathlib import Path
 
-from bayesgeo.report_sections import Ctx, Fam, _read_json, _section, esc, fmt, gap, html_table, img_tag
+from bayesgeo.report_html import Ctx, Fam, esc, fmt, gap, html_table, img_tag
+from bayesgeo.report_html import read_json as _read_json
+from bayesgeo.report_html import section as _section
 from bayesgeo.layout import EXPLORE_FILE, RUN_EXPLORE, prediction_names, vgcheck_names
 
 __all__ = ["site_posterior", "sites_section", "site_vgcheck", "site_maps", "site_priors", "map_block",
@@ -206,7 +208,7 @@ def read_sites(ctx: Ctx) -> list[str]:
     if obj and obj.get("sites"):
         return list(obj["sites"])
     from bayesgeo.data import sites_of
-    from bayesgeo.report_sections import _data
+    from bayesgeo.report_html import run_data as _data
 
     try:
         return [s for s in sites_of(_data(ctx)) if s]
