@@ -113,16 +113,22 @@ def fit_settings(tree: xr.DataTree, source: str | None = None) -> dict:
     return settings
 
 
-def fit_spec(tree: xr.DataTree, source: str | None = None) -> FitSpec:
-    """The :class:`~bayesgeo.model.FitSpec` recorded in a fit's ``settings`` attribute."""
-    where = f"{source}: " if source else ""
-    settings = fit_settings(tree, source)
+def decode_spec(settings: dict, cls, kind: str, source: str | None = None):
+    """``cls.from_dict(settings["model"])`` (:class:`~bayesgeo.model.FitSpec` or
+    :class:`~bayesgeo.site_inputs.SiteSpec`), or one InputError line naming ``source`` and the ``kind``
+    of fit expected ("single-site", "several-site") when the model settings cannot be decoded."""
     try:
-        return FitSpec.from_dict(settings["model"])
+        return cls.from_dict(settings["model"])
     except (KeyError, TypeError, ValueError, AttributeError) as err:
         what = f"missing {err}" if isinstance(err, KeyError) else " ".join(str(err).split())
-        raise InputError(f"{where}the model settings cannot be decoded ({what}): not a bayesgeo single-site fit, "
+        where = f"{source}: " if source else ""
+        raise InputError(f"{where}the model settings cannot be decoded ({what}): not a bayesgeo {kind} fit, "
                          "or a damaged one") from None
+
+
+def fit_spec(tree: xr.DataTree, source: str | None = None) -> FitSpec:
+    """The :class:`~bayesgeo.model.FitSpec` recorded in a fit's ``settings`` attribute."""
+    return decode_spec(fit_settings(tree, source), FitSpec, "single-site", source)
 
 
 def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:

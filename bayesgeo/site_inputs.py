@@ -378,15 +378,10 @@ def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) ->
 def site_spec(tree: xr.DataTree, source: str | None = None) -> SiteSpec:
     """The :class:`SiteSpec` recorded in a several-site fit's ``settings`` attribute
     (decoded by :func:`bayesgeo.posterior.fit_settings`; ``source`` names the file in messages)."""
-    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, fit_settings
+    from bayesgeo.posterior import SEVERAL_SITE_FORMAT, decode_spec, fit_settings
 
-    where = f"{source}: " if source else ""
     settings = fit_settings(tree, source)
     if settings.get("format") != SEVERAL_SITE_FORMAT:
+        where = f"{source}: " if source else ""
         raise InputError(f"{where}not a bayesgeo several-site fit (settings format {settings.get('format')!r})")
-    try:
-        return SiteSpec.from_dict(settings["model"])
-    except (KeyError, TypeError, ValueError, AttributeError) as err:
-        what = f"missing {err}" if isinstance(err, KeyError) else " ".join(str(err).split())
-        raise InputError(f"{where}the model settings cannot be decoded ({what}): not a bayesgeo several-site fit, "
-                         "or a damaged one") from None
+    return decode_spec(settings, SiteSpec, "several-site", source)

@@ -349,14 +349,10 @@ def test_single_site_reduces_to_single_site_fit():
 
 @pytest.mark.slow
 def test_cli_run_sites_json(tmp_path, capsys):
-    """`bayesgeo fit DATA --site COL` branch: exactly one JSON object on stdout with the single-site keys
-    plus sites, population, new_site, shrinkage, design and cautions; the folder holds the promised
-    files (project contract with cli/fit.py)."""
-    import argparse
-
-    from bayesgeo.cli import fit as fit_cli
-    from bayesgeo.cli._sites import add_site_arguments, run_sites
-    from bayesgeo.cli._common import read_data
+    """`bayesgeo fit DATA --site COL` (the several-site branch of bayesgeo.stages.fit.fit_folder): exactly one
+    JSON object on stdout with the single-site keys plus sites, population, new_site, shrinkage, design and
+    cautions; the folder holds the promised files (project contract with cli/fit.py)."""
+    from bayesgeo.cli import main
 
     ds, _ = _sites([25, 20], seed=6)
     csv = tmp_path / "pts.csv"
@@ -364,14 +360,9 @@ def test_cli_run_sites_json(tmp_path, capsys):
         fh.write("parcel,x,y,arsenic\n")
         for s, x, y, v in zip(ds["site"].values, ds["x"].values, ds["y"].values, ds["value"].values):
             fh.write(f"{s},{x},{y},{v}\n")
-    p = argparse.ArgumentParser()
-    fit_cli.add_arguments(p)
-    if not any(a.dest == "pooling" for a in p._actions):
-        add_site_arguments(p)
-    args = p.parse_args([str(csv), "--site", "parcel", "--value", "arsenic", "--covariance", "matern32",
-                         "--draws", "150", "--tune", "150", "--chains", "2", "--seed", "4", "--out",
-                         str(tmp_path / "out"), "--json"])
-    status = run_sites(args, read_data(args))
+    status = main(["fit", str(csv), "--site", "parcel", "--value", "arsenic", "--covariance", "matern32",
+                   "--draws", "150", "--tune", "150", "--chains", "2", "--seed", "4", "--out", str(tmp_path / "out"),
+                   "--json"])
     out = capsys.readouterr().out.strip().splitlines()
     assert len(out) == 1
     rep = json.loads(out[0])
