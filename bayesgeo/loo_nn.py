@@ -74,7 +74,8 @@ from scipy.spatial import cKDTree
 
 from bayesgeo import _vecchia_numba as _nb
 from bayesgeo.defaults import JITTER
-from bayesgeo.loo import FitArrays, _predictive_dataset
+from bayesgeo.loo_arrays import FitArrays
+from bayesgeo.loo_arrays import predictive_dataset as _predictive_dataset
 from bayesgeo.vecchia import _METRICS, _as_xy, _check_m, _family, _search_points
 from bayesgeo.defaults import LOG_2PI as _LOG2PI
 
