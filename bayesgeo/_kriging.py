@@ -176,7 +176,7 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
                             transform, int(neighbours))
     need = 8.0 * d_count * n * n
     if need > max_bytes:
-        raise InputError(f"--draws: {d_count} draws x {n} points need {need / 2**30:.1f} GiB of Cholesky factors "
+        raise InputError(f"draws: {d_count} draws x {n} points need {need / 2**30:.1f} GiB of Cholesky factors "
                          f"(limit {max_bytes / 2**30:.1f} GiB); use at most {int(max_bytes // (8.0 * n * n))} draws")
     dist = distance_matrix(xy, metric)
     chol, alpha = [], np.empty((d_count, n))
@@ -411,7 +411,7 @@ def mixture_summary(mean, var, *, thresholds: Sequence[float] = (), transform: s
     thr = np.asarray(thresholds, dtype=float).reshape(-1)
     if transform == "log":
         if np.any(thr <= 0):
-            raise InputError(f"--threshold: under the log transform thresholds must be positive, got {thr.tolist()}")
+            raise InputError(f"thresholds: under the log transform thresholds must be positive, got {thr.tolist()}")
         m1 = np.exp(mu + 0.5 * var)
         pm = m1.mean(axis=0)
         second = (np.exp(var) * m1 * m1).mean(axis=0)

@@ -75,7 +75,7 @@ NN_PREDICT_NEIGHBOURS = 30
 def _pick(total: int, draws: int | None) -> np.ndarray:
     if draws is None or draws >= total:
         return np.arange(total)
-    draws = check_positive_int(draws, "--draws")
+    draws = check_positive_int(draws, "draws")
     return np.unique(np.round(np.linspace(0, total - 1, draws)).astype(int))
 
 
@@ -242,7 +242,7 @@ def check_scheduler(scheduler) -> str:
 
     if scheduler in SCHEDULERS or (isinstance(scheduler, str) and re.fullmatch(r"[a-z][a-z0-9+.-]*://\S+", scheduler)):
         return scheduler
-    raise InputError(f"--scheduler: expected {', '.join(SCHEDULERS)} or an address such as tcp://host:8786, "
+    raise InputError(f"scheduler: expected {', '.join(SCHEDULERS)} or an address such as tcp://host:8786, "
                      f"got {scheduler!r}")
 
 
@@ -273,7 +273,7 @@ def _run_chunks(basis, xy, design, *, thresholds, include_nugget, chunk_cells, s
     try:
         client = Client(scheduler, timeout="20s")
     except (OSError, ValueError, TypeError) as err:
-        raise InputError(f"--scheduler: cannot connect to {scheduler!r} ({' '.join(str(err).split())})") from None
+        raise InputError(f"scheduler: cannot connect to {scheduler!r} ({' '.join(str(err).split())})") from None
     with client:
         futures = client.compute(tasks)
         for _ in as_completed(futures):
@@ -324,7 +324,7 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     chunk_cells = check_positive_int(chunk_cells, "chunk_cells")
     thr = np.asarray(thresholds, dtype=float).reshape(-1)
     if not np.all(np.isfinite(thr)):
-        raise InputError(f"--threshold: expected finite numbers, got {thr.tolist()}")
+        raise InputError(f"thresholds: expected finite numbers, got {thr.tolist()}")
     kind = targets.attrs.get("kind")
     if kind not in ("grid", "points"):
         raise ValueError("targets must come from bayesgeo.targets (attrs['kind'] is 'grid' or 'points')")
@@ -403,7 +403,7 @@ def simulate_targets(basis: KrigingBasis, targets: xr.Dataset, *, n_sim: int, se
     design = target_design(targets, design_attrs, basis.design.shape[1])
     inside = np.asarray(targets["inside"].values, bool).ravel()
     idx = np.flatnonzero(inside)
-    sims = conditional_simulations(basis, xy[idx], design[idx], n_sim=check_positive_int(n_sim, "--simulate"),
+    sims = conditional_simulations(basis, xy[idx], design[idx], n_sim=check_positive_int(n_sim, "simulate"),
                                    seed=seed, include_nugget=include_nugget)
     if basis.transform == "log":
         sims = np.exp(sims)

@@ -69,17 +69,17 @@ def grid_targets(xy_obs, *, cell: float | None = None, margin: float = 0.0, cell
     """
     xy = np.asarray(xy_obs, dtype=float)
     if not (np.isfinite(margin) and margin >= 0):
-        raise InputError(f"--margin: expected a number >= 0, got {margin!r}")
+        raise InputError(f"margin: expected a number >= 0, got {margin!r}")
     x0, y0 = xy.min(axis=0) - margin
     x1, y1 = xy.max(axis=0) + margin
     width, height = x1 - x0, y1 - y0
     side = max(width, height)
     if not side > 0:
         raise InputError("grid: the data span no area; give --cell and --margin, or target --points")
-    cell = side / cells if cell is None else check_positive(cell, "--cell")
+    cell = side / cells if cell is None else check_positive(cell, "cell")
     nx, ny = max(1, math.ceil(width / cell - 1e-9)), max(1, math.ceil(height / cell - 1e-9))
     if nx * ny > _MAX_CELLS:
-        raise InputError(f"--cell: {cell:g} gives {nx} x {ny} = {nx * ny} cells (limit {_MAX_CELLS}); use a larger cell")
+        raise InputError(f"cell: {cell:g} gives {nx} x {ny} = {nx * ny} cells (limit {_MAX_CELLS}); use a larger cell")
     # centre the grid on the box so that the extra part of the last cell is shared by both sides
     gx = x0 + (width - nx * cell) / 2.0 + cell * (np.arange(nx) + 0.5)
     gy = y0 + (height - ny * cell) / 2.0 + cell * (np.arange(ny) + 0.5)
@@ -101,7 +101,7 @@ def hull_mask(xy_obs, xy_new) -> np.ndarray:
     try:
         tri = Delaunay(np.asarray(xy_obs, dtype=float))
     except QhullError:
-        raise InputError("--hull-mask: the data points are collinear and have no convex hull with an area") from None
+        raise InputError("hull_mask: the data points are collinear and have no convex hull with an area") from None
     return tri.find_simplex(np.asarray(xy_new, dtype=float), tol=1e-9) >= 0
 
 
@@ -203,11 +203,11 @@ def parse_rectangle(text: str) -> np.ndarray:
     try:
         x0, y0, x1, y1 = (float(p) for p in parts)
     except ValueError:
-        raise InputError(f"--area: expected a CSV file or xmin,ymin,xmax,ymax, got {text!r}") from None
+        raise InputError(f"area: expected a CSV file or xmin,ymin,xmax,ymax, got {text!r}") from None
     if not all(map(math.isfinite, (x0, y0, x1, y1))):
-        raise InputError(f"--area: xmin,ymin,xmax,ymax must be four finite numbers, got {text!r}")
+        raise InputError(f"area: xmin,ymin,xmax,ymax must be four finite numbers, got {text!r}")
     if not (x1 > x0 and y1 > y0):
-        raise InputError(f"--area: need xmin < xmax and ymin < ymax, got {text!r}")
+        raise InputError(f"area: need xmin < xmax and ymin < ymax, got {text!r}")
     return np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]])
 
 
@@ -243,7 +243,7 @@ def discretise_area(vertices, *, points: int = 400) -> np.ndarray:
         if len(pts) >= 16:
             return pts
         h /= 2.0
-    raise InputError("--area: the polygon is too thin to place points inside it")
+    raise InputError("area: the polygon is too thin to place points inside it")
 
 
 def _unit_vectors(xy) -> np.ndarray:
@@ -301,7 +301,7 @@ def check_area_near_data(xy_obs, xy_area, metric: str = "euclidean") -> None:
     if near > 0.5 * extent:
         u = _units(metric)
         raise InputError(
-            f"--area: the area lies outside the data: its nearest point is {near:,.4g} {u} from the nearest data "
+            f"area: the area lies outside the data: its nearest point is {near:,.4g} {u} from the nearest data "
             f"point, more than half the data's extent ({extent:,.4g} {u}); an average there is the fitted mean with "
             "prior uncertainty, not an estimate from the data; choose an area over or next to the data")
 

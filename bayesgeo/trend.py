@@ -37,7 +37,7 @@ MAX_ORDER = 3
 
 def _check_order(order) -> int:
     if isinstance(order, bool) or not isinstance(order, (int, np.integer)) or not 0 <= order <= MAX_ORDER:
-        raise InputError(f"--trend: order {order!r} is not one of 0, 1, 2, 3 (0 = constant mean, 1 = plane, ...)")
+        raise InputError(f"trend: order {order!r} is not one of 0, 1, 2, 3 (0 = constant mean, 1 = plane, ...)")
     return int(order)
 
 
@@ -96,7 +96,7 @@ def design_matrix(ds: xr.Dataset, order: int = 0, covariates: Sequence[str] = ()
     for c in covariates:
         if c not in ds.data_vars:
             have = [str(v) for v in ds.data_vars if v not in ("value", "residual", "trend")]
-            raise InputError(f"--covariate: {c!r} is not a column of the data (covariates read: {', '.join(have) or 'none'})")
+            raise InputError(f"covariates: {c!r} is not a column of the data (covariates read: {', '.join(have) or 'none'})")
     x = np.asarray(ds["x"].values, dtype=float)
     y = np.asarray(ds["y"].values, dtype=float)
     cov = np.column_stack([np.asarray(ds[c].values, dtype=float) for c in covariates]) if covariates else np.empty((x.size, 0))
@@ -191,14 +191,14 @@ def fit_trend(ds: xr.Dataset, order: int = 0, covariates: Sequence[str] = ()) ->
     n, p = mat.shape
     if n < p:
         raise InputError(
-            f"--trend: order {design.attrs['order']} with {len(design.attrs['covariates'])} covariates has {p} terms "
+            f"trend: order {design.attrs['order']} with {len(design.attrs['covariates'])} covariates has {p} terms "
             f"but there are only {n} points; use a lower order or more points"
         )
     z = np.asarray(ds["value"].values, dtype=float)
     coef, _, rank, _ = np.linalg.lstsq(mat, z, rcond=None)
     if rank < p:
         raise InputError(
-            f"--trend: the {p} trend terms ({', '.join(design.attrs['terms'])}) are not all identifiable from these "
+            f"trend: the {p} trend terms ({', '.join(design.attrs['terms'])}) are not all identifiable from these "
             f"locations and covariates (rank {rank}); use a lower order or drop a covariate"
         )
     fitted = mat @ coef

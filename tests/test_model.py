@@ -213,7 +213,7 @@ def test_several_sites_are_refused_one_site_is_accepted():
 @pytest.mark.parametrize("kw, match", [
     ({"covariance": "cubic"}, "unknown covariance"),
     ({"covariance": "matern"}, "needs its smoothness"),
-    ({"trend": 5}, "--trend"),
+    ({"trend": 5}, "trend: order 5"),
     ({"transform": "sqrt"}, "--transform"),
     ({"priors": {"range": (10.0, 2.0)}}, r"priors\[.range.\]"),
 ])

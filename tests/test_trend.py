@@ -124,13 +124,13 @@ def test_design_at_rebuilds_terms_at_new_locations():
 @pytest.mark.parametrize("order", [-1, 4, 1.5, True])
 def test_bad_order(order):
     """Orders outside 0-3 are refused naming --trend."""
-    with pytest.raises(InputError, match=r"--trend: order .* is not one of 0, 1, 2, 3"):
+    with pytest.raises(InputError, match=r"^trend: order .* is not one of 0, 1, 2, 3"):
         fit_trend(_points(), order)
 
 
 def test_cubic_needs_ten_points():
     """A full cubic in two variables has 10 coefficients (algebra), so it needs >= 10 points."""
-    with pytest.raises(InputError, match=r"--trend: order 3 .* 10 terms but there are only 9 points"):
+    with pytest.raises(InputError, match=r"^trend: order 3 .* 10 terms but there are only 9 points"):
         fit_trend(_points(n=9), 3)
     out = fit_trend(_points(n=10, seed=1), 3)
     np.testing.assert_allclose(out["residual"].values, 0.0, atol=1e-7)  # interpolates
@@ -140,13 +140,13 @@ def test_collinear_points_cannot_fit_plane():
     """Points on one straight line cannot identify the y term of a plane (rank deficiency)."""
     x = np.arange(12.0)
     ds = points_dataset(x, np.zeros(12), np.sin(x), attrs={"coords": "xy"})
-    with pytest.raises(InputError, match=r"--trend: the 3 trend terms .* \(rank 2\)"):
+    with pytest.raises(InputError, match=r"^trend: the 3 trend terms .* \(rank 2\)"):
         fit_trend(ds, 1)
 
 
 def test_unknown_covariate():
-    """A covariate that is not a data variable is refused naming --covariate."""
-    with pytest.raises(InputError, match=r"--covariate: 'ph' is not a column"):
+    """A covariate that is not a data variable is refused naming the argument (the CLI says --covariate)."""
+    with pytest.raises(InputError, match=r"^covariates: 'ph' is not a column"):
         fit_trend(_points(covariate=True), 1, covariates=["ph"])
 
 
