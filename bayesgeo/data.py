@@ -123,9 +123,9 @@ def read_points(
     InputWarning
         Site labels stripped of surrounding spaces (naming the rows).
     """
-    check_choice(coords, COORDS, "--coords")
-    check_choice(duplicates, DUPLICATES, "--duplicates")
-    check_choice(small_sites, SMALL_SITES, "--small-sites")
+    check_choice(coords, COORDS, "coords")
+    check_choice(duplicates, DUPLICATES, "duplicates")
+    check_choice(small_sites, SMALL_SITES, "small_sites")
     path = Path(path)
     src = str(path)
     if not path.is_file():
@@ -148,7 +148,7 @@ def read_points(
     file_rows = np.array([r for r, _ in body])
     lonlat = coords == "lonlat"
     if lonlat and distance_units not in (None, "km"):
-        raise InputError(f"--distance-units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
+        raise InputError(f"distance_units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
     if coords == "auto":  # on every row of the file: degrees or not is a property of the file, not of a site
         _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
     frame = ""
@@ -239,7 +239,7 @@ def apply_transform(ds: xr.Dataset, transform: str | None) -> xr.Dataset:
     if transform in ("none", ""):
         transform = None
     if transform not in TRANSFORMS:
-        raise InputError(f"--transform: {transform!r} is not one of: none, log")
+        raise InputError(f"transform: {transform!r} is not one of: none, log")
     out = ds.copy()
     out.attrs["transform"] = transform or "none"
     if transform is None:

@@ -116,10 +116,10 @@ def _groups(ds: xr.Dataset) -> np.ndarray:
 
 
 def _check_common(bins, lag_limit, permutations, seed):
-    bins = check_positive_int(bins, "--bins")
+    bins = check_positive_int(bins, "bins")
     if lag_limit is not None:
-        lag_limit = check_positive(lag_limit, "--lag-limit")
-    permutations = check_positive_int(permutations, "--permutations", minimum=0)
+        lag_limit = check_positive(lag_limit, "lag_limit")
+    permutations = check_positive_int(permutations, "permutations", minimum=0)
     if seed is not None:
         seed = check_int(seed, "--seed", limit="seed")
     return bins, lag_limit, permutations, seed
@@ -152,7 +152,7 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, lag_limit: float | None = None) 
     """
     from bayesgeo import _pairs
 
-    bins = check_positive_int(bins, "--bins")
+    bins = check_positive_int(bins, "bins")
     if lag_limit is None:
         greatcircle = metric_of(ds) == "greatcircle"
         far = _pairs.max_pair_distance(ds["x"].values, ds["y"].values, group=_groups(ds), greatcircle=greatcircle)
@@ -160,7 +160,7 @@ def lag_bins(ds: xr.Dataset, *, bins: int = 15, lag_limit: float | None = None) 
             raise InputError("no two points (of one site) at distinct locations: no lag to bin")
         lag_limit = 0.5 * far
     else:
-        lag_limit = check_positive(lag_limit, "--lag-limit")
+        lag_limit = check_positive(lag_limit, "lag_limit")
     return np.linspace(0.0, float(lag_limit), bins + 1)
 
 
@@ -283,7 +283,7 @@ def _semivariances(sums, estimator):
 
 
 def _semivariogram(ds, *, bins, lag_limit, estimator, permutations, seed, directions, tolerance, variable):
-    check_choice(estimator, ESTIMATORS, "--estimator")
+    check_choice(estimator, ESTIMATORS, "estimator")
     want = _WANT_SQ if estimator == "classical" else _WANT_ROOT
     name, _, edges, sums, permutations, seed = _compute(
         ds, bins=bins, lag_limit=lag_limit, permutations=permutations, seed=seed, directions=directions,

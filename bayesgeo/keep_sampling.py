@@ -74,7 +74,7 @@ def fit_until_converged(ds: xr.Dataset, *, budget_minutes: float, seed: int | No
     except (TypeError, ValueError):
         budget = float("nan")
     if not (np.isfinite(budget) and budget > 0):
-        raise InputError(f"--keep-sampling: expected a positive number of minutes, got {budget_minutes!r}")
+        raise InputError(f"keep_sampling: expected a positive number of minutes, got {budget_minutes!r}")
     seed = new_seed() if seed is None else int(seed)
     longest = longest_chain(draws, fit_kwargs.pop("max_draws", None))
     start = time.perf_counter()

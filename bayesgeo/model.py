@@ -209,9 +209,9 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
     design = design_matrix(ds, trend, tuple(covariates))
     n, p = design.shape
     if n < p + 3:
-        raise InputError(f"--trend: {p} trend terms and 3 covariance parameters need more than {n} points")
+        raise InputError(f"trend: {p} trend terms and 3 covariance parameters need more than {n} points")
     if np.linalg.matrix_rank(design.values) < p:
-        raise InputError(f"--trend: the trend terms ({', '.join(design.attrs['terms'])}) are not identifiable "
+        raise InputError(f"trend: the trend terms ({', '.join(design.attrs['terms'])}) are not identifiable "
                          "from these locations and covariates; use a lower order or drop a covariate")
     approx, neighbours = _resolve_approx(approx, neighbours, n, cov.name)
     metric = metric_of(ds)
@@ -250,7 +250,7 @@ def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) ->
     """Pick the likelihood: ``auto`` is dense up to :data:`DENSE_LIMIT` points, else nearest-neighbour."""
     from bayesgeo.validate import check_choice, check_positive_int
 
-    check_choice(approx, APPROX, "--approx")
+    check_choice(approx, APPROX, "approx")
     if approx == "auto":
         approx = "dense" if n <= DENSE_LIMIT else "nn"
     if approx == "dense":
@@ -260,7 +260,7 @@ def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) ->
                          "use exponential, matern32, matern52, gaussian or spherical")
     from bayesgeo.vecchia import DEFAULT_NEIGHBOURS
 
-    m = DEFAULT_NEIGHBOURS if neighbours is None else check_positive_int(neighbours, "--neighbours")
+    m = DEFAULT_NEIGHBOURS if neighbours is None else check_positive_int(neighbours, "neighbours")
     return "nn", min(m, n - 1)
 
 

@@ -69,7 +69,7 @@ def make_units(payloads: Iterable, seed: int) -> list[WorkUnit]:
         ``units[i].seed`` is the first 64-bit word of ``SeedSequence(seed).spawn(n)[i]``, masked
         to 63 bits (a non-negative int accepted by NumPy and PyMC).
     """
-    seed = check_positive_int(seed, "--seed", minimum=0)
+    seed = check_positive_int(seed, "seed", minimum=0)
     payloads = list(payloads)
     children = np.random.SeedSequence(seed).spawn(len(payloads))
     return [WorkUnit(i, p, int(c.generate_state(1, dtype=np.uint64)[0]) & (2**63 - 1))
@@ -80,11 +80,11 @@ def _connect(scheduler: str, timeout: float):
     from distributed import Client
 
     if not isinstance(scheduler, str) or "://" not in scheduler:
-        raise InputError(f"--scheduler: expected an address such as tcp://host:8786, got {scheduler!r}")
+        raise InputError(f"scheduler: expected an address such as tcp://host:8786, got {scheduler!r}")
     try:
         return Client(scheduler, timeout=f"{float(timeout)}s")
     except (OSError, TimeoutError) as err:
-        raise InputError(f"--scheduler: cannot reach a dask scheduler at {scheduler!r} "
+        raise InputError(f"scheduler: cannot reach a dask scheduler at {scheduler!r} "
                          f"({type(err).__name__}: {str(err).splitlines()[0] if str(err) else 'no answer'})") from None
 
 
@@ -121,7 +121,7 @@ def run_units(func: Callable[[WorkUnit], Any], units: Sequence[WorkUnit], *, sch
     units = list(units)
     if any(not isinstance(u, WorkUnit) for u in units):
         raise TypeError("units must be WorkUnit objects (see make_units)")
-    workers = check_positive_int(workers, "--workers")
+    workers = check_positive_int(workers, "workers")
     tick = progress.update if progress is not None else (lambda k: None)
     if scheduler is not None:
         return _run_cluster(func, units, scheduler, tick, timeout)

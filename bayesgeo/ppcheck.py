@@ -152,7 +152,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
     InputError
         Bad ``replicates``, ``bins``, ``lag_limit``, ``seed`` or ``prob``.
     """
-    replicates = check_positive_int(replicates, "--replicates")
+    replicates = check_positive_int(replicates, "replicates")
     curve_points = check_positive_int(curve_points, "curve_points", minimum=2)
     if seed is None:
         from bayesgeo.sampling import new_seed
@@ -192,7 +192,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
             rep = _classical(_ols_residuals(fa.design, spec.value_mean + spec.value_sd * ys), i, j, k, nb)
         bar.update(1)
     if not np.any(count > 0):
-        raise InputError(f"--lag-limit: no pair of points lies within {edges[-1]:.4g} {spec.distance_units or 'distance units'}, "
+        raise InputError(f"lag_limit: no pair of points lies within {edges[-1]:.4g} {spec.distance_units or 'distance units'}, "
                          "so no lag bin can be checked; use a larger --lag-limit (default: half the largest distance)")
     with np.errstate(invalid="ignore", divide="ignore"):
         lag = np.where(count > 0, dsum / np.maximum(count, 1), 0.5 * (edges[:-1] + edges[1:]))

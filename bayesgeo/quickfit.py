@@ -477,7 +477,7 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
         raise InputError("no covariance family given")
     for fam in families:
         if fam not in QUICK_FAMILIES:
-            raise InputError(f"--covariance: {fam!r} is not one of {', '.join(QUICK_FAMILIES)}")
+            raise InputError(f"covariance: {fam!r} is not one of {', '.join(QUICK_FAMILIES)}")
     n = int(ds.sizes["obs"])
     run_ml = n <= MAX_DENSE_POINTS if ml is None else bool(ml)
     skipped = {"converged": False, "at_bound": []}

@@ -124,7 +124,7 @@ def sample(model, *, sampler: str = "nutpie", chains: int = CHAINS, draws: int =
     """
     from threadpoolctl import threadpool_limits
 
-    check_choice(sampler, SAMPLERS, "--sampler")
+    check_choice(sampler, SAMPLERS, "sampler")
     check_choice(adaptation, ADAPTATIONS, "adaptation")
     chains = check_int(chains, "--chains", limit="chains")
     draws = check_int(draws, "--draws", limit="draws")

@@ -274,9 +274,9 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         Unknown pooling or policy, a site with fewer than ``MIN_POINTS`` points (unless
         ``small_sites="keep"``), unknown covariance, bad trend, non-positive values under log.
     """
-    check_choice(pooling, POOLINGS, "--pooling")
-    check_choice(small_sites, SMALL_SITE_POLICIES, "--small-sites")
-    check_choice(parametrisation, PARAMETRISATIONS, "--parametrisation")
+    check_choice(pooling, POOLINGS, "pooling")
+    check_choice(small_sites, SMALL_SITE_POLICIES, "small_sites")
+    check_choice(parametrisation, PARAMETRISATIONS, "parametrisation")
     for key in ("x", "y", "value"):
         if key not in ds.variables:
             raise InputError(f"{_source(ds)}: not point data (variable {key!r} missing)")
@@ -310,7 +310,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         design = design_matrix(part, trend, tuple(covariates))
         p = design.shape[1]
         if n < p + 1 or np.linalg.matrix_rank(design.values) < p:
-            raise InputError(f"--trend: site {label!r} ({n} points, rows {format_rows(rows)}) cannot pin down the "
+            raise InputError(f"trend: site {label!r} ({n} points, rows {format_rows(rows)}) cannot pin down the "
                              f"{p} trend terms ({', '.join(design.attrs['terms'])}); use a lower order")
         xy = np.column_stack([part["x"].values, part["y"].values]).astype(float)
         how, m = _resolve_approx(approx, neighbours, n, cov.name)

@@ -169,7 +169,7 @@ def generated_layout(n: int = 28, *, sites: int = 1, side: float = 100.0, seed: 
     """
     from bayesgeo.data import points_dataset
 
-    n = check_positive_int(n, "--points", minimum=6)
+    n = check_positive_int(n, "points", minimum=6)
     sites = check_positive_int(sites, "sites")
     rng = np.random.default_rng(seed)
     xy = rng.uniform(0.0, side, (n * sites, 2))
@@ -225,7 +225,7 @@ def sbc_model(template: xr.Dataset, config: SBCConfig):
         divided by D).
     spec : FitSpec or SiteSpec
     """
-    check_choice(config.kind, KINDS, "--kind")
+    check_choice(config.kind, KINDS, "kind")
     if config.kind == "hierarchical":
         from bayesgeo.hierarchical import build_site_model, site_inputs
 
@@ -470,9 +470,9 @@ def simulation_based_calibration(template: xr.Dataset, config: SBCConfig = QUICK
 
     from bayesgeo.parallel import make_units, run_units
 
-    replicates = check_positive_int(replicates, "--replicates")
+    replicates = check_positive_int(replicates, "replicates")
     if config.kind == "nn" and config.covariance == "matern":
-        raise InputError("--covariance: the nn likelihood has no general 'matern' family; pick a fixed-smoothness one")
+        raise InputError("covariance: the nn likelihood has no general 'matern' family; pick a fixed-smoothness one")
     model, blocks, spec = sbc_model(template, config)
     prior = prior_draws(model, spec, replicates, seed)
     noise = np.random.default_rng(np.random.SeedSequence([int(seed), 1]))
@@ -574,13 +574,13 @@ def with_settings(config: SBCConfig, **changes) -> SBCConfig:
         if key in changes:
             changes[key] = check_positive_int(changes[key], f"--{key.replace('_', '-')}")
     if changes.get("max_draws") is not None:
-        changes["max_draws"] = check_positive_int(changes["max_draws"], "--max-draws")
+        changes["max_draws"] = check_positive_int(changes["max_draws"], "max_draws")
     out = replace(config, **changes)
     from bayesgeo.looks import longest_chain
 
     longest_chain(out.draws, out.max_draws)  # refuses max_draws below draws
     if out.chains * out.draws < out.ranks_of:
         need = -(-out.ranks_of // out.chains)
-        raise InputError(f"--draws: {out.draws} draws per chain x {out.chains} chains is fewer than the {out.ranks_of} "
+        raise InputError(f"draws: {out.draws} draws per chain x {out.chains} chains is fewer than the {out.ranks_of} "
                          f"posterior draws each rank is taken among (Talts et al. 2018); use --draws {need} or more")
     return out

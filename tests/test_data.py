@@ -142,7 +142,7 @@ def test_log_transform(write_csv, grid_rows):
     grid_rows[3][2] = 0
     with pytest.raises(InputError, match=r"--transform log needs positive values; column 'conc' .* rows 4"):
         apply_transform(read_points(write_csv(grid_rows), value="conc"), "log")
-    with pytest.raises(InputError, match="--transform: 'sqrt' is not one of"):
+    with pytest.raises(InputError, match="^transform: 'sqrt' is not one of"):
         apply_transform(ds, "sqrt")
 
 

@@ -374,10 +374,10 @@ def test_empty_bins_are_nan_with_centre_lag():
 @pytest.mark.parametrize(
     ("kwargs", "match"),
     [
-        ({"estimator": "median"}, r"--estimator: 'median' is not one of classical, cressie-hawkins"),
-        ({"bins": 0}, r"--bins: expected an integer >= 1"),
-        ({"lag_limit": -1.0}, r"--lag-limit: expected a positive number"),
-        ({"permutations": -5}, r"--permutations: expected an integer >= 0"),
+        ({"estimator": "median"}, r"^estimator: 'median' is not one of classical, cressie-hawkins"),
+        ({"bins": 0}, r"^bins: expected an integer >= 1"),
+        ({"lag_limit": -1.0}, r"^lag_limit: expected a positive number"),
+        ({"permutations": -5}, r"^permutations: expected an integer >= 0"),
         ({"seed": "abc"}, r"--seed: expected an integer from 0 to 9223372036854775807"),
         ({"seed": 2**70}, r"--seed: expected an integer from 0 to 9223372036854775807"),
         ({"azimuth": 30, "tolerance": 120}, r"tolerance: 120 degrees is over 90"),

@@ -88,7 +88,7 @@ def test_small_site_is_an_error_naming_site_and_rows():
     tiny, _ = _sites([20, 2], seed=3)
     with pytest.raises(InputError, match="site 'P2' has only 2 points.*at least 3"):
         site_inputs(tiny, small_sites="keep")
-    with pytest.raises(InputError, match="--pooling"):
+    with pytest.raises(InputError, match="^pooling"):
         site_inputs(ds, pooling="partial")
 
 
@@ -497,7 +497,7 @@ def test_centred_and_noncentred_are_one_model(monkeypatch):
     for a, b in zip((r, sd, tau, beta), effects):
         np.testing.assert_allclose(b, a, rtol=1e-10)
     assert lp_mx == pytest.approx(lp_nc - jac_site, abs=1e-8)
-    with pytest.raises(InputError, match="--parametrisation"):
+    with pytest.raises(InputError, match="^parametrisation"):
         site_inputs(ds, parametrisation="partial")
 
 

@@ -71,5 +71,5 @@ def test_a_converged_first_attempt_is_kept():
 @pytest.mark.parametrize("minutes", [0, -1, "soon"])
 def test_bad_budget_is_refused(minutes):
     """A budget that is not a positive number is refused naming the option."""
-    with pytest.raises(InputError, match="--keep-sampling"):
+    with pytest.raises(InputError, match="^keep_sampling"):
         fit_until_converged(_data(n=10), budget_minutes=minutes)

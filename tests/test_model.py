@@ -214,7 +214,7 @@ def test_several_sites_are_refused_one_site_is_accepted():
     ({"covariance": "cubic"}, "unknown covariance"),
     ({"covariance": "matern"}, "needs its smoothness"),
     ({"trend": 5}, "trend: order 5"),
-    ({"transform": "sqrt"}, "--transform"),
+    ({"transform": "sqrt"}, "^transform"),
     ({"priors": {"range": (10.0, 2.0)}}, r"priors\[.range.\]"),
 ])
 def test_bad_settings_are_refused(kw, match):
@@ -237,7 +237,7 @@ def test_nearest_neighbour_model_with_all_previous_points_equals_dense():
     point = dense.initial_point()
     np.testing.assert_allclose(nn.compile_logp()(point), dense.compile_logp()(point), rtol=1e-9)
     assert build_model(ds, covariance="exponential")[1].approx == "dense"  # auto: small n is dense
-    with pytest.raises(InputError, match="--approx"):
+    with pytest.raises(InputError, match="^approx"):
         build_model(ds, covariance="exponential", approx="fast")
 
 

@@ -154,13 +154,13 @@ def test_log_transform_checks_on_the_log_scale():
 def test_bad_options_are_input_errors():
     """Replicates, seed and prob are checked where they enter (InputError naming the option)."""
     tree = make_fit(simulated(15, seed=16), ndraw=2)
-    with pytest.raises(InputError, match="--replicates"):
+    with pytest.raises(InputError, match="^replicates"):
         variogram_check(tree, replicates=0)
     with pytest.raises(InputError, match="--seed"):
         variogram_check(tree, seed=-1)
     with pytest.raises(InputError, match="prob"):
         variogram_check(tree, prob=1.5)
-    with pytest.raises(InputError, match="--bins"):
+    with pytest.raises(InputError, match="^bins"):
         variogram_check(tree, bins=0)
 
 

@@ -86,9 +86,9 @@ def test_unreachable_scheduler_is_an_input_error():
     """No scheduler listens on port 1 of loopback: InputError naming --scheduler and the address;
     a malformed address is refused before connecting."""
     units = make_units([0.0], seed=1)
-    with pytest.raises(InputError, match=r"--scheduler: cannot reach .*tcp://127\.0\.0\.1:1"):
+    with pytest.raises(InputError, match=r"^scheduler: cannot reach .*tcp://127\.0\.0\.1:1"):
         run_units(_work, units, scheduler="tcp://127.0.0.1:1", timeout=2.0)
-    with pytest.raises(InputError, match="--scheduler: expected an address"):
+    with pytest.raises(InputError, match="^scheduler: expected an address"):
         run_units(_work, units, scheduler="127.0.0.1")
 
 
@@ -96,5 +96,5 @@ def test_bad_units_and_workers():
     """Plain payloads instead of WorkUnit objects: TypeError; workers < 1: InputError naming --workers."""
     with pytest.raises(TypeError, match="WorkUnit"):
         run_units(_work, [0.0])
-    with pytest.raises(InputError, match="--workers"):
+    with pytest.raises(InputError, match="^workers"):
         run_units(_work, make_units([0.0], seed=1), workers=0)

@@ -44,7 +44,7 @@ def test_missing_seed_is_drawn_and_recorded(tiny_model):
 
 
 @pytest.mark.parametrize("kw, match", [
-    ({"sampler": "gibbs"}, "--sampler"),
+    ({"sampler": "gibbs"}, "^sampler"),
     ({"target_accept": 1.0}, "--target-accept"),
     ({"chains": 0}, "--chains"),
     ({"draws": 2.5}, "--draws"),

@@ -295,7 +295,7 @@ def test_too_few_draws_for_the_ranks_refused():
     from bayesgeo.validate import InputError
     from bayesgeo.validation import QUICK, with_settings
 
-    with pytest.raises(InputError, match=r"--draws: 20 draws per chain x 2 chains is fewer than the 49 .* --draws 25"):
+    with pytest.raises(InputError, match=r"^draws: 20 draws per chain x 2 chains is fewer than the 49 .* --draws 25"):
         with_settings(QUICK, draws=20)
     assert with_settings(QUICK, draws=25).draws == 25
     with pytest.raises(InputError, match=r"--max-draws: expected at least --draws \(200\), got 100"):
