@@ -17,7 +17,6 @@ A notebook session in a handful of calls::
 
 from __future__ import annotations
 
-import json
 from collections.abc import Sequence
 from functools import cached_property
 from pathlib import Path
@@ -261,7 +260,7 @@ class Fit:
             A several-site fit (predict one site: ``fit.site(name).predict(...)``).
         """
         from bayesgeo import targets as tg
-        from bayesgeo.predict import basis_from_fit, prediction_cautions, predict_targets
+        from bayesgeo.predict import basis_from_fit, label_prediction, predict_targets
 
         if self.several:
             raise InputError(f"predict: a several-site fit; predict one site, fit.site(name).predict(...) "
@@ -276,11 +275,7 @@ class Fit:
         pred = predict_targets(basis, targets, thresholds=thresholds, include_nugget=include_nugget,
                                design_attrs=spec.design_attrs, scheduler=scheduler, units=spec.value_units,
                                progress=progress)
-        cautions = prediction_cautions(spec.transform, verdict)
-        if verdict == "fail":
-            pred.attrs["title"] = "NOT CONVERGED: " + pred.attrs.get("title", "")
-            pred.attrs["convergence_status"] = "NOT CONVERGED"
-        pred.attrs.update(convergence_verdict=verdict, cautions=json.dumps(cautions))
+        label_prediction(pred, spec.transform, verdict)
         return pred
 
     # --- display --------------------------------------------------------------------------------

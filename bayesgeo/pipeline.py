@@ -61,9 +61,9 @@ EXIT_OK = 0
 EXIT_STAGE_FAILED = 1
 EXIT_NOT_CONVERGED = 3
 
-def _run_stage(argv: Sequence[str], call: tuple[Callable, dict]) -> tuple[int, dict]:
-    """Run one stage: its stage function with its keyword arguments (:func:`stage_calls`); ``argv`` is the
-    equivalent command line, recorded in the manifest. Returns (status, result)."""
+def _run_stage(call: tuple[Callable, dict]) -> tuple[int, dict]:
+    """Run one stage of :func:`stage_calls`: its stage function with its keyword arguments. Returns
+    (status, result)."""
     fn, kw = call
     with outputs.scope():
         return fn(**kw)
@@ -250,9 +250,15 @@ def _vgcheck_argv(kw: dict) -> list[str]:
     return argv + ["--replicates", str(kw["replicates"]), "--bins", str(kw["bins"]), "--seed", str(kw["seed"])]
 
 
-def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, tuple[Callable, dict]]:
-    """The stages of ``study`` run through a stage function (:mod:`bayesgeo.stages`), keyed as in
-    :func:`stage_commands`: ``name -> (function, keyword arguments)``. The others run their command."""
+def stage_calls(study: Study, root: str | Path, *, sites=None) -> dict[str, tuple[Callable, dict]]:
+    """Every stage of ``study`` writing under ``root``, in run order: ``name -> (stage function, keyword
+    arguments)`` (:mod:`bayesgeo.stages`).
+
+    Names: ``explore``, ``fit:<family>``, ``check:<family>``, ``variogram-check:<family>``,
+    ``map:<family>``, and ``compare`` (several families). In a several-site study the variogram
+    check and the map run once per site: ``variogram-check:<family>:<site>`` and
+    ``map:<family>:<site>``. ``sites`` (from :func:`study_sites`) is read from the data when omitted.
+    """
     from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.compare import compare_folders
     from bayesgeo.stages.explore import explore_folder
@@ -261,72 +267,48 @@ def stage_calls(study: Study, root: str | Path, *, sites: dict | None = None) ->
     from bayesgeo.stages.vgcheck import check_variogram
 
     root = Path(root)
-    calls: dict[str, tuple[Callable, dict]] = {"explore": (explore_folder, _explore_call(study, root))}
     if study.several_sites:
         sites = study_sites(study) if sites is None else sites
         areas = site_areas(study, sites)
-        for fam in study.families:
-            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, fit_folder_of(root, fam)))
-            calls[f"check:{fam}"] = (check_fit, {"folder": fit_folder_of(root, fam)})
-            for site in sites:
-                calls[f"variogram-check:{fam}:{site}"] = (check_variogram, _vgcheck_call(study, fit_folder_of(root, fam), site))
-            for site in sites:
-                calls[f"map:{fam}:{site}"] = (map_fit, _map_call(study, fit_folder_of(root, fam), site, areas.get(site)))
+        per_site = [(site, f":{site}") for site in sites]
     else:
-        areas = areas_of(study.settings["prediction"]["area"])
-        for fam in study.families:
-            calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, fit_folder_of(root, fam)))
-            calls[f"check:{fam}"] = (check_fit, {"folder": fit_folder_of(root, fam)})
-            calls[f"variogram-check:{fam}"] = (check_variogram, _vgcheck_call(study, fit_folder_of(root, fam)))
-            calls[f"map:{fam}"] = (map_fit, _map_call(study, fit_folder_of(root, fam), None, areas[0] if areas else None))
+        found = areas_of(study.settings["prediction"]["area"])
+        areas = {None: found[0]} if found else {}
+        per_site = [(None, "")]
+    calls: dict[str, tuple[Callable, dict]] = {"explore": (explore_folder, _explore_call(study, root))}
+    for fam in study.families:
+        fdir = fit_folder_of(root, fam)
+        calls[f"fit:{fam}"] = (fit_folder, _fit_call(study, fam, fdir))
+        calls[f"check:{fam}"] = (check_fit, {"folder": fdir})
+        for site, tag in per_site:
+            calls[f"variogram-check:{fam}{tag}"] = (check_variogram, _vgcheck_call(study, fdir, site))
+        for site, tag in per_site:
+            calls[f"map:{fam}{tag}"] = (map_fit, _map_call(study, fdir, site, areas.get(site)))
     if len(study.families) > 1:
+        # several-site fits compare on all points, each conditioning on its own site (bayesgeo compare)
         calls["compare"] = (compare_folders, {"dirs": [fit_folder_of(root, f) for f in study.families],
                                               "out": root / RUN_COMPARE})
     return calls
 
 
-def stage_commands(study: Study, root: str | Path, *, sites: dict | None = None) -> dict[str, list[str]]:
-    """The command line of every stage of ``study`` writing under ``root``, keyed by stage name.
-
-    Keys: ``explore``, ``fit:<family>``, ``check:<family>``, ``variogram-check:<family>``,
-    ``map:<family>``, and ``compare`` (several families). In a several-site study the variogram
-    check and the map run once per site: ``variogram-check:<family>:<site>`` and
-    ``map:<family>:<site>``. ``sites`` (from :func:`study_sites`) is read from the data when
-    omitted. Useful to re-run one stage by hand.
-    """
-    if study.several_sites:
-        return _site_commands(study, Path(root), study_sites(study) if sites is None else sites)
-    s, root = study.settings, Path(root)
-    pr = s["prediction"]
-    cmds: dict[str, list[str]] = {"explore": _explore_argv(_explore_call(study, root))}
-    areas = areas_of(pr["area"])
-    for fam in study.families:
-        fdir = fit_folder_of(root, fam)
-        cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
-        cmds[f"check:{fam}"] = ["check", str(fdir)]
-        cmds[f"variogram-check:{fam}"] = _vgcheck_argv(_vgcheck_call(study, fdir))
-        cmds[f"map:{fam}"] = _map_argv(_map_call(study, fdir, None, areas[0] if areas else None))
-    if len(study.families) > 1:
-        cmds["compare"] = ["compare", *(str(fit_folder_of(root, f)) for f in study.families), "--out", str(root / RUN_COMPARE)]
-    return cmds
+def command_line(call: tuple[Callable, dict]) -> list[str]:
+    """The ``bayesgeo`` command line (without ``bayesgeo``) equivalent to a stage call of :func:`stage_calls`."""
+    fn, kw = call
+    render = {
+        "explore_folder": _explore_argv,
+        "fit_folder": _fit_argv,
+        "check_fit": lambda k: ["check", str(k["folder"])],
+        "check_variogram": _vgcheck_argv,
+        "map_fit": _map_argv,
+        "compare_folders": lambda k: ["compare", *(str(d) for d in k["dirs"]), "--out", str(k["out"])],
+    }
+    return render[fn.__name__](kw)
 
 
-def _site_commands(study: Study, root: Path, sites: dict) -> dict[str, list[str]]:
-    """Stage commands of a several-site study (see :func:`stage_commands`)."""
-    areas = site_areas(study, sites)
-    cmds: dict[str, list[str]] = {"explore": _explore_argv(_explore_call(study, root))}
-    for fam in study.families:
-        fdir = fit_folder_of(root, fam)
-        cmds[f"fit:{fam}"] = _fit_argv(_fit_call(study, fam, fdir))
-        cmds[f"check:{fam}"] = ["check", str(fdir)]
-        for site in sites:
-            cmds[f"variogram-check:{fam}:{site}"] = _vgcheck_argv(_vgcheck_call(study, fdir, site))
-        for site in sites:
-            cmds[f"map:{fam}:{site}"] = _map_argv(_map_call(study, fdir, site, areas.get(site)))
-    if len(study.families) > 1:
-        # several-site fits compare on all points, each conditioning on its own site (bayesgeo compare)
-        cmds["compare"] = ["compare", *(str(fit_folder_of(root, f)) for f in study.families), "--out", str(root / RUN_COMPARE)]
-    return cmds
+def stage_commands(study: Study, root: str | Path, *, sites=None) -> dict[str, list[str]]:
+    """The command line of every stage of ``study`` (:func:`stage_calls`, same names and order), rendered
+    from the same keyword arguments the run passes. Useful to re-run one stage by hand."""
+    return {name: command_line(call) for name, call in stage_calls(study, root, sites=sites).items()}
 
 
 def _copy_outputs(root: Path, selected: str | None) -> None:
@@ -398,8 +380,8 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             name = "study.toml" if k == 0 else p.name
             if not (tmp / RUN_INPUTS / name).exists():
                 shutil.copy2(p, tmp / RUN_INPUTS / name)
-        cmds = stage_commands(study, tmp, sites=sites or None)
         calls = stage_calls(study, tmp, sites=sites or None)
+        cmds = {name: command_line(call) for name, call in calls.items()}
         order = list(cmds)  # explore, then per family: fit, check, variogram checks, maps; compare last
         n_stages = len(order) + 1
         stop = False
@@ -413,7 +395,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
             say(f"[{k}/{n_stages}] {name.replace(':', ' ')}")
             t0 = time.perf_counter()
             try:
-                rc, obj = _run_stage(cmds[name], calls[name])
+                rc, obj = _run_stage(calls[name])
             except InputError:
                 if name == "explore" or name.startswith("fit:"):
                     raise  # bad data or settings: nothing is written

@@ -20,6 +20,7 @@ scheduler ``"threads"`` (dask's local thread pool, one BLAS thread per task).
 from __future__ import annotations
 
 import dataclasses
+import json
 import warnings
 from collections.abc import Sequence
 
@@ -58,6 +59,7 @@ __all__ = [
     "mixture_summary",
     "posterior_parameters",
     "prediction_cautions",
+    "label_prediction",
     "predict_targets",
     "simulate_targets",
     "target_design",
@@ -198,6 +200,17 @@ def prediction_cautions(transform: str | None, verdict: str) -> list[str]:
         out.insert(0, "NOT CONVERGED: the posterior failed the convergence check; these results are not "
                       "fit for any decision.")
     return out
+
+
+def label_prediction(pred: xr.Dataset, transform: str | None, verdict: str) -> list[str]:
+    """Mark ``pred`` with its fit's convergence verdict and cautions (:func:`prediction_cautions`, as JSON);
+    a failed fit's title and ``convergence_status`` say NOT CONVERGED. Returns the cautions."""
+    cautions = prediction_cautions(transform, verdict)
+    pred.attrs.update(convergence_verdict=verdict, cautions=json.dumps(cautions))
+    if verdict == "fail":
+        pred.attrs["title"] = "NOT CONVERGED: " + pred.attrs.get("title", "")
+        pred.attrs["convergence_status"] = "NOT CONVERGED"
+    return cautions
 
 
 def target_design(targets: xr.Dataset, design_attrs: dict | None, p: int) -> np.ndarray:

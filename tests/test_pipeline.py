@@ -40,12 +40,12 @@ def test_stage_calls_are_the_recorded_commands(tmp_path):
     """A study runs every stage through a stage function (bayesgeo.stages); the command the
     manifest records for each (stage_commands) parses (argparse is the reference) to the same settings as the
     keyword arguments of the call, so re-running the recorded command redoes the stage."""
-    from bayesgeo.cli.map import _draws
     from bayesgeo.pipeline import stage_calls
     from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.compare import compare_folders
     from bayesgeo.stages.explore import explore_folder
     from bayesgeo.stages.fit import fit_folder
+    from bayesgeo.stages.maps import map_draws as _draws
     from bayesgeo.stages.maps import map_fit
     from bayesgeo.stages.vgcheck import check_variogram
 
@@ -139,7 +139,7 @@ def test_failed_check_control_flow(tmp_path, monkeypatch):
             return 3, {"verdict": "fail"}
         raise AssertionError(f"stage {argv[0]} should have been skipped")
 
-    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: fake(argv))
+    monkeypatch.setattr(pl, "_run_stage", lambda call: fake(pl.command_line(call)))
     path = write_tiny_study(tmp_path, families=("exponential", "matern32"))
     res = run_study(path, out=tmp_path / "run")
     assert calls == ["explore", "fit", "check"]
@@ -163,7 +163,7 @@ def test_stage_error_is_recorded(tmp_path, monkeypatch):
             raise RuntimeError("boom")
         return (0, {"verdict": "pass"}) if argv[0] == "check" else (0, {})
 
-    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: fake(argv))
+    monkeypatch.setattr(pl, "_run_stage", lambda call: fake(pl.command_line(call)))
     res = run_study(write_tiny_study(tmp_path), out=tmp_path / "run")
     assert res["status"] == 1 and res["verdicts"]["map:exponential"] == "failed"
     manifest = json.loads((tmp_path / "run" / "manifest.json").read_text())
@@ -282,7 +282,7 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
         calls.append([a for a in argv if a in ("explore", "fit", "check", "variogram-check", "map", "a-yard", "b-pit")])
         return (0, {"verdict": "warn"}) if argv[0] == "check" else (0, {})
 
-    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: ok(argv))
+    monkeypatch.setattr(pl, "_run_stage", lambda call: ok(pl.command_line(call)))
     res = run_study(write_sites_study(tmp_path), out=tmp_path / "run")
     assert calls == [["explore"], ["fit"], ["check"], ["variogram-check", "a-yard"], ["variogram-check", "b-pit"],
                      ["map", "a-yard"], ["map", "b-pit"]]
@@ -294,7 +294,7 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
     def fail(argv):
         return {"explore": (0, {}), "fit": (3, {}), "check": (3, {"verdict": "fail"})}[argv[0]]
 
-    monkeypatch.setattr(pl, "_run_stage", lambda argv, call: fail(argv))
+    monkeypatch.setattr(pl, "_run_stage", lambda call: fail(pl.command_line(call)))
     res = run_study(write_sites_study(tmp_path), out=tmp_path / "run2")
     assert res["status"] == 3
     manifest = json.loads((tmp_path / "run2" / "manifest.json").read_text())

@@ -55,7 +55,7 @@ def add_data_options(p) -> None:
 
 def data_kwargs(args) -> dict:
     """The data settings named by :func:`add_data_options` arguments, as keyword arguments of the stages
-    (:func:`bayesgeo.stages.fit.read_kwargs`)."""
+    (keyword arguments of :func:`bayesgeo.data.read_points`)."""
     return dict(x=args.x, y=args.y, value=args.value, site=args.site, only_site=args.only_site,
                 covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
                 distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"))
@@ -64,9 +64,7 @@ def data_kwargs(args) -> dict:
 def read_data(args):
     """Read the data named by :func:`add_data_options` arguments."""
     from bayesgeo.data import read_points
-    from bayesgeo.stages.fit import read_kwargs
-
-    return read_points(args.data, **read_kwargs(**data_kwargs(args)))
+    return read_points(args.data, **data_kwargs(args))
 
 
 #: Input warnings printed during this command (see ``bayesgeo.cli._one_line_warnings``); added to --json output.

@@ -19,12 +19,6 @@ ARGUMENT_OPTIONS = {"thresholds": "--threshold", "figures": "--no-figures", "chu
                     "hull_mask": "--hull-mask"}
 
 
-def _draws(text: str):
-    from bayesgeo.stages.maps import map_draws
-
-    return map_draws(text)
-
-
 def add_arguments(p) -> None:
     from bayesgeo.validate import float_option, int_option
 
@@ -69,7 +63,7 @@ def run(args) -> int:
 
     status, result = map_fit(
         args.dir, site=args.site, cell=args.cell, margin=args.margin, points=args.points, thresholds=args.threshold,
-        area=args.area, draws=_draws(args.draws), nugget=args.nugget, hull_mask=args.hull_mask,
+        area=args.area, draws=args.draws, nugget=args.nugget, hull_mask=args.hull_mask,
         scheduler=args.scheduler, chunk_cells=args.chunk_cells, simulate=args.simulate, seed=args.seed,
         overwrite=args.overwrite, allow_unconverged=args.allow_unconverged, figures=not args.no_figures,
         progress=None if args.json else progress)

@@ -170,7 +170,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
     ----------
     data : path
         CSV of point measurements (or a bayesgeo point file); ``data_settings`` are those of
-        :func:`bayesgeo.stages.fit.read_kwargs`.
+        :func:`bayesgeo.data.read_points`.
     out : path, optional
         Output folder (default ``<data stem>-explore`` beside the data).
     trend, transform :
@@ -196,7 +196,6 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
     from bayesgeo.io import to_jsonable, write_json
     from bayesgeo.outputs import claim, new_folder
     from bayesgeo.quickfit import QUICK_FAMILIES
-    from bayesgeo.stages.fit import read_kwargs
     from bayesgeo.trend import MAX_ORDER
     from bayesgeo.validate import InputError
     from bayesgeo.workload import explore_plan
@@ -204,7 +203,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
     if not 0 <= trend <= MAX_ORDER:
         raise InputError(f"trend: order {trend} is not one of 0, 1, 2, 3")
     out = Path(out) if out else Path(data).with_name(Path(data).stem + "-explore")
-    ds = apply_transform(read_points(data, **read_kwargs(**data_settings)), transform)
+    ds = apply_transform(read_points(data, **data_settings), transform)
     claim(out, overwrite=overwrite, inputs=[data])
     covariates = list(data_settings.get("covariates", ()))
     families = list(dict.fromkeys(covariance or QUICK_FAMILIES))

@@ -9,7 +9,7 @@ independent fit for the shrinkage table and the sampling-design table of a new s
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 
 import numpy as np
 
@@ -17,17 +17,9 @@ from bayesgeo.defaults import CHAINS, DRAWS, TUNE
 from bayesgeo.layout import DESIGN, FIT_FILE, FIT_REPORT, PRIOR_CHECK, SHRINKAGE, SUMMARY_CSV, SUMMARY_TXT
 from bayesgeo.validate import InputError
 
-__all__ = ["fit_folder", "read_kwargs", "workload_plan"]
+__all__ = ["fit_folder", "workload_plan"]
 
 EXIT_NOT_CONVERGED = 3
-
-
-def read_kwargs(*, x=None, y=None, value=None, site=None, only_site=None, covariates: Sequence[str] = (),
-                coords: str = "auto", duplicates: str = "error", units=None, distance_units=None,
-                small_sites: str = "error") -> dict:
-    """Keyword arguments of :func:`bayesgeo.data.read_points` from the data settings of a stage."""
-    return dict(x=x, y=y, value=value, site=site, covariates=list(covariates), coords=coords, duplicates=duplicates,
-                units=units, distance_units=distance_units, only_site=only_site, small_sites=small_sites)
 
 
 def workload_plan(ds, *, approx: str, neighbours, chains: int, draws: int, tune: int, pooling: str,
@@ -66,7 +58,7 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
     ----------
     data : path
         CSV of point measurements (or a bayesgeo point file); ``data_settings`` are those of
-        :func:`read_kwargs` (columns, site column, coordinates, duplicates, units, small sites).
+        :func:`bayesgeo.data.read_points` (columns, site column, coordinates, duplicates, units, small sites).
     out : path
         Output folder, written atomically; refused if present unless ``overwrite``.
     covariance, nu, nugget, trend, transform, approx, neighbours :
@@ -102,7 +94,7 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
                          "points per site); drop it with the dense likelihood")
     max_draws = None if max_draws is None else longest_chain(draws, max_draws)
     claim(out, overwrite=overwrite, inputs=[data])  # refuse before minutes of sampling, not after
-    ds = read_points(data, **read_kwargs(**data_settings))
+    ds = read_points(data, **data_settings)
     plan = workload_plan(ds, approx=approx, neighbours=neighbours, chains=chains, draws=draws, tune=tune,
                          pooling=pooling, max_draws=max_draws, log=log)
     quiet = (lambda _text: None)
@@ -111,26 +103,28 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
         "covariates", ())), transform=transform, approx=approx, neighbours=neighbours)
     sample_kw = dict(sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
                      progressbar=progressbar, max_draws=max_draws)
+    priors = Priors(range=_pair(range_below), sd=_pair(sd_above), nugget=_pair(nugget_above))
     if len(sites_of(ds)) > 1:
         if keep_sampling is not None:
             raise InputError("keep_sampling: single-site fits only for now; run without it and check each site")
         if nugget_above is not None:
             raise InputError("nugget_above: the several-site model puts its prior on the nugget fraction of the sill "
                              "(see docs/hierarchical.md); drop the nugget prior")
-        priors = Priors(range=tuple(range_below) if range_below else None, sd=tuple(sd_above) if sd_above else None)
         status, report = _fit_sites(ds, out, priors=priors, pooling=pooling, parametrisation=parametrisation,
                                     design_neighbours=design_neighbours, small_sites=data_settings.get(
                                         "small_sites", "error"), seed=seed, overwrite=overwrite,
                                     model_kw=model_kw, sample_kw=sample_kw,
                                     say=log if (log is not None and (plan["message"] or progressbar)) else quiet)
     else:
-        priors = Priors(range=tuple(range_below) if range_below else None, sd=tuple(sd_above) if sd_above else None,
-                        nugget=tuple(nugget_above) if nugget_above else None)
         status, report = _fit_one(ds, out, priors=priors, seed=seed, keep_sampling=keep_sampling,
                                   overwrite=overwrite, stage=stage, model_kw=model_kw, sample_kw=sample_kw)
     report["out"] = str(out)
     report["workload"] = plan
     return status, report
+
+
+def _pair(value) -> tuple | None:
+    return tuple(value) if value else None
 
 
 def _fit_one(ds, out, *, priors, seed, keep_sampling, overwrite, stage, model_kw, sample_kw) -> tuple[int, dict]:
@@ -159,9 +153,9 @@ def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, 
                model_kw, sample_kw) -> tuple[int, dict]:
     from bayesgeo.design import design_table
     from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.fitted import Fit
     from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, with_site_diagnostics
     from bayesgeo.hierarchical import fit_sites, site_spec
+    from bayesgeo.posterior import fit_settings
     from bayesgeo.validate import check_positive_int
 
     neighbours = check_positive_int(design_neighbours, "design_neighbours", minimum=2)
@@ -170,7 +164,7 @@ def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, 
     kw = dict(model_kw, priors=priors, small_sites=small_sites)
     say(f"fitting the {pooling} model ...")
     tree = fit_sites(ds, pooling=pooling, seed=seed, parametrisation=parametrisation, **kw, **sample_kw)
-    seed = int(Fit(tree).settings["sampler"]["seed"])  # the independent fit reuses it
+    seed = int(fit_settings(tree)["sampler"]["seed"])  # the independent fit reuses it
     conv = check_convergence(tree)
     tree = with_site_diagnostics(tree, conv.to_json())
     shrink = design = None

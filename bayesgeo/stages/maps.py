@@ -84,8 +84,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     from bayesgeo import targets as tg
     from bayesgeo.fitted import read_site
     from bayesgeo.outputs import add_to_folder, check_addable
-    from bayesgeo.predict import (area_average, basis_from_fit, check_scheduler, prediction_cautions,
-                                  predict_targets)
+    from bayesgeo.predict import area_average, basis_from_fit, check_scheduler, label_prediction, predict_targets
     from bayesgeo.trend import design_at
 
     folder = Path(folder)
@@ -143,7 +142,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         bar.close()
     _refuse_non_finite(pred, targets["inside"], folder)
 
-    cautions = prediction_cautions(spec.transform, verdict)
+    cautions = label_prediction(pred, spec.transform, verdict)
     block = None
     if area_vertices is not None:
         vertices, label = area_vertices
@@ -158,13 +157,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
                                               design_attrs=spec.design_attrs, units=units)
         pred = pred.assign_coords(sample=np.arange(basis.n_draws))
     pred.attrs.update({
-        "fit_folder": str(folder), "convergence_verdict": verdict, "draws_total": int(params.attrs["draws_total"]),
-        "value_units": units, "distance_units": spec.distance_units, "scheduler": str(scheduler),
-        "seed": int(seed), "cautions": json.dumps(cautions),
+        "fit_folder": str(folder), "draws_total": int(params.attrs["draws_total"]), "value_units": units,
+        "distance_units": spec.distance_units, "scheduler": str(scheduler), "seed": int(seed),
     })
-    if not_converged:
-        pred.attrs["title"] = "NOT CONVERGED: " + pred.attrs["title"]
-        pred.attrs["convergence_status"] = "NOT CONVERGED"
     if block is not None:
         pred.attrs["area_average"] = json.dumps(block)
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
