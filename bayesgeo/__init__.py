@@ -2,36 +2,37 @@
 
 The names here are the curated public API, in the order of the stages:
 data -> exploration -> model -> fit -> checks -> prediction -> study runs. Everything else is
-reachable through its module (``bayesgeo.explore``, ``bayesgeo.predict``, ``bayesgeo.loo``, ...),
-documented there. The short path from points to a map::
+reachable through its stage package (``bayesgeo.explore``, ``bayesgeo.fitting``, ``bayesgeo.checks``,
+``bayesgeo.predict``, ...), documented there. The short path from points to a map::
 
     fit = bayesgeo.Fit.sample(bayesgeo.read_points("samples.csv", value="lead_mg_kg"), seed=1)
     fit.convergence
-    maps = fit.predict(cell=10.0, thresholds=[400.0])
+    maps = bayesgeo.predict_map(fit, cell=10.0, thresholds=[400.0])
 """
 
 from __future__ import annotations
 
-from bayesgeo.covariance import FAMILIES, get_covariance
-from bayesgeo.data import read_points
-from bayesgeo.demo import demo_data
-from bayesgeo.diagnostic_figures import write_diagnostic_figures
-from bayesgeo.diagnostics import Convergence, check_convergence
-from bayesgeo.explore import correlogram, semivariogram
-from bayesgeo.figures import correlogram_figure, semivariogram_figure
-from bayesgeo.fitted import Fit, NotConvergedError
-from bayesgeo.hierarchical import fit_sites
-from bayesgeo.modelcheck import compare_fits
-from bayesgeo.pipeline import run_study
-from bayesgeo.posterior import fit
-from bayesgeo.ppcheck import variogram_check
-from bayesgeo.predict import area_average, basis_from_fit, predict_targets
-from bayesgeo.priors import Priors
-from bayesgeo.quickfit import quick_fits
-from bayesgeo.report import write_report
-from bayesgeo.study import read_study
-from bayesgeo.targets import grid_targets, read_target_points
-from bayesgeo.validate import InputError
+from bayesgeo.common.validate import InputError
+from bayesgeo.gp.covariance import FAMILIES, get_covariance
+from bayesgeo.data.points import read_points
+from bayesgeo.data.demo import demo_data
+from bayesgeo.data.targets import grid_targets, read_target_points
+from bayesgeo.explore.variogram import correlogram, semivariogram
+from bayesgeo.explore.figures import correlogram_figure, semivariogram_figure
+from bayesgeo.explore.quickfit import quick_fits
+from bayesgeo.convergence.diagnostics import Convergence, check_convergence
+from bayesgeo.convergence.figures import write_diagnostic_figures
+from bayesgeo.fitting.priors import Priors
+from bayesgeo.fitting.fitted import Fit, NotConvergedError
+from bayesgeo.fitting.posterior import fit
+from bayesgeo.fitting.hierarchical import fit_sites
+from bayesgeo.checks.modelcheck import compare_fits
+from bayesgeo.checks.ppcheck import variogram_check
+from bayesgeo.predict.maps import predict_map
+from bayesgeo.predict.prediction import area_average, basis_from_fit, predict_targets
+from bayesgeo.report.writer import write_report
+from bayesgeo.study.settings import read_study
+from bayesgeo.study.runner import run_study
 
 __version__ = "0.1.0"
 
@@ -62,6 +63,7 @@ __all__ = [
     # prediction
     "grid_targets",
     "read_target_points",
+    "predict_map",
     "basis_from_fit",
     "predict_targets",
     "area_average",

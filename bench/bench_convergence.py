@@ -14,11 +14,11 @@ side by side, same data and sampler seed:
   measured here, not the default);
 * ``share_ta90`` (only when asked): the same with target acceptance 0.9 instead of 0.8;
 * ``looks`` (only when asked): the package's coordinates with chains that continue while R-hat or ESS is
-  too poor (bayesgeo.looks: looks at 1000, 2000 and 4000 draws per chain; the `bayesgeo fit` defaults since
+  too poor (bayesgeo.fitting.looks: looks at 1000, 2000 and 4000 draws per chain; the `bayesgeo fit` defaults since
   this arm was measured), against ``legacy``, the same chains stopped at 1000 draws; ``looks_ta90``: the
   same with target acceptance 0.9; ``share_looks``: the variance-split coordinates with chains continued; ``share_int_looks``: the same with
   the trend integrated out (dense; the looks judge the sampled parameters, beta is drawn afterwards);
-* ``default``: the package as it stands, through ``bayesgeo.posterior.fit`` with its defaults (since
+* ``default``: the package as it stands, through ``bayesgeo.fitting.posterior.fit`` with its defaults (since
   issue 16: the variance-split coordinates, the trend integrated out of the dense likelihood and drawn
   afterwards, chains continued, a rerun at target acceptance 0.9 when the draws hold divergences; wall
   time includes the trend draws and any rerun, sampling seconds are those of the kept run);
@@ -28,7 +28,7 @@ side by side, same data and sampler seed:
   from their exact conditional N(m, V), V = (F^T K^-1 F + I / b^2)^-1, m = V F^T K^-1 y
   (Rasmussen and Williams 2006, sec. 2.7): a measurement, not the package's model.
 
-Per fit it records the convergence verdict of `bayesgeo.diagnostics.check_convergence` as the
+Per fit it records the convergence verdict of `bayesgeo.convergence.diagnostics.check_convergence` as the
 command line computes it (exit 0 = pass or warn, exit 3 = fail), the minimum bulk ESS over every
 checked parameter, the largest R-hat, divergences, sampling and wall seconds (wall includes the
 compilation), and where the divergent draws sit (posterior nugget ratio and practical range /
@@ -97,8 +97,8 @@ def data_sets(count: int, seed: int = 16, *, n_max: int = 500) -> list[dict]:
 
 def simulate(recipe: dict):
     """Point data of one recipe (total sill 4, mean 10: values in invented mg/kg)."""
-    from bayesgeo.data import points_dataset
-    from bayesgeo.demo import simulate_field
+    from bayesgeo.data.points import points_dataset
+    from bayesgeo.data.demo import simulate_field
 
     rng = np.random.default_rng(recipe["seed"])
     xy = SIDE * rng.random((recipe["n"], 2))
@@ -114,9 +114,9 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     """Fit one data set with the command-line defaults in the coordinates of ``arm``; the record of it."""
     import xarray as xr
 
-    from bayesgeo.model import build_model_and_inputs
-    from bayesgeo.posterior import derive
-    from bayesgeo.sampling import compile_model, sample
+    from bayesgeo.fitting.model import build_model_and_inputs
+    from bayesgeo.fitting.posterior import derive
+    from bayesgeo.fitting.sampling import compile_model, sample
 
     ds = simulate(recipe)
     t0 = time.perf_counter()
@@ -131,7 +131,7 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     compiled = compile_model(model)
     extra = {}
     if "looks" in arm:
-        from bayesgeo.looks import convergence_look, default_max_draws
+        from bayesgeo.fitting.looks import convergence_look, default_max_draws
 
         if "_int" in arm:  # beta is drawn after sampling: the looks judge the sampled parameters alone
             prepare = lambda r: r  # noqa: E731
@@ -142,7 +142,7 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
     raw = sample(compiled, seed=recipe["seed"] % 100_000, target_accept=target_accept, **extra)
     post = raw["posterior"].to_dataset()
     if "_int" in arm:
-        from bayesgeo.trend_posterior import draw_trend
+        from bayesgeo.gp.trend_posterior import draw_trend
 
         post["beta_z"] = draw_trend(post, spec, y, design.values, dist, seed=recipe["seed"] % 100_000)
     post = derive(post, spec)
@@ -152,12 +152,12 @@ def fit_one(recipe: dict, arm: str, approx: str) -> dict:
 
 
 def _fit_default(ds, recipe: dict, approx: str, target_accept: float | None):
-    """``bayesgeo.posterior.fit`` with its defaults but ``target_accept`` (None: the default, with its
+    """``bayesgeo.fitting.posterior.fit`` with its defaults but ``target_accept`` (None: the default, with its
     rerun at 0.9 when the draws hold divergences): (spec, posterior, sample stats, sampling s, looks,
     target accept)."""
     import json as _json
 
-    from bayesgeo.posterior import fit, fit_spec
+    from bayesgeo.fitting.posterior import fit, fit_spec
 
     tree = fit(ds, covariance=recipe["family"], approx=approx, seed=recipe["seed"] % 100_000,
                target_accept=target_accept)
@@ -170,7 +170,7 @@ def _record(recipe, arm, spec, post, stats, sampling_seconds, looks, target_acce
     """The JSON record of one fit (verdict, ESS, R-hat, divergences and where they sit, times)."""
     import xarray as xr
 
-    from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.convergence.diagnostics import check_convergence
 
     wall = time.perf_counter() - t0
     tree = xr.DataTree.from_dict({"/posterior": post, "/sample_stats": stats})

@@ -28,8 +28,8 @@ from scipy.spatial.distance import pdist  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from bayesgeo.data import points_dataset  # noqa: E402
-from bayesgeo.explore import FewPairsWarning, lag_bins, semivariogram  # noqa: E402
+from bayesgeo.data.points import points_dataset  # noqa: E402
+from bayesgeo.explore.variogram import FewPairsWarning, lag_bins, semivariogram  # noqa: E402
 
 PERMUTATIONS = 199
 BINS = 15

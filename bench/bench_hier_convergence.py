@@ -1,13 +1,13 @@
 """Convergence of the several-site (hierarchical) model with the default settings, before and after
-chains that continue while R-hat or ESS is too poor (bayesgeo.looks).
+chains that continue while R-hat or ESS is too poor (bayesgeo.fitting.looks).
 
-Data: the demo parcels (bayesgeo.demo.demo_data, the three parcels of the demo study, log values) and
+Data: the demo parcels (bayesgeo.data.demo.demo_data, the three parcels of the demo study, log values) and
 simulated several-site data sets on invented sites: 3-5 sites of 30-80 points each, Matérn 3/2 or
 exponential with a nugget share of 0.1-0.5, site ranges and sills drawn around a population value
-(as in bench_hierarchical.py). Each is fitted once with `bayesgeo.hierarchical.fit_sites` defaults
+(as in bench_hierarchical.py). Each is fitted once with `bayesgeo.fitting.hierarchical.fit_sites` defaults
 (4 chains x (1000 tuning + 1000 draws), nutpie low-rank, target acceptance 0.9 with a rerun at 0.95 when
 the kept draws hold divergences, looks at 1000, 2000 and 4000 draws). "Before" is the first look: the very draws a fit without continued chains keeps (same
-seed, same chains, bayesgeo.looks), so before and after come from one run. Reported per fit: verdict,
+seed, same chains, bayesgeo.fitting.looks), so before and after come from one run. Reported per fit: verdict,
 largest R-hat, smallest bulk ESS and divergences at the first and the last look, draws kept, sampling
 seconds.
 
@@ -35,8 +35,8 @@ from _common import publish, sampler_context  # noqa: E402
 
 def simulated(k: int, seed: int = 1616):
     """Recipe ``k``: a several-site data set on invented sites (values in invented log mg/kg)."""
-    from bayesgeo.data import points_dataset
-    from bayesgeo.demo import simulate_field
+    from bayesgeo.data.points import points_dataset
+    from bayesgeo.data.demo import simulate_field
 
     rng = np.random.default_rng([seed, k])
     sites = int(rng.integers(3, 6))
@@ -61,7 +61,7 @@ def simulated(k: int, seed: int = 1616):
 def demo():
     """The three parcels of the demo study (log of the invented arsenic values)."""
     from bayesgeo.cli.demo import DEMO_PARCELS
-    from bayesgeo.demo import demo_data
+    from bayesgeo.data.demo import demo_data
 
     ds = demo_data()
     keep = np.isin(ds["site"].values.astype(str), DEMO_PARCELS)
@@ -71,7 +71,7 @@ def demo():
 
 
 def fit_one(ds, recipe: dict) -> dict:
-    from bayesgeo.hierarchical import fit_sites
+    from bayesgeo.fitting.hierarchical import fit_sites
 
     t0 = time.perf_counter()
     tree = fit_sites(ds, covariance=recipe["family"], transform=recipe.get("transform"), seed=recipe["seed"])

@@ -1,6 +1,6 @@
 """Site-level sampling coordinates of the several-site (hierarchical) model, side by side.
 
-Arms (private switch ``_variance`` of ``bayesgeo.hierarchical.build_site_model``; ``total_c`` and
+Arms (private switch ``_variance`` of ``bayesgeo.fitting.hierarchical.build_site_model``; ``total_c`` and
 ``total_cb`` exist only at commit afa4104, where they were measured, and were removed after):
 
 * ``sill`` (the model as documented): log partial sill of each site ~ Normal(2 log S, s_v), logit
@@ -12,7 +12,7 @@ Arms (private switch ``_variance`` of ``bayesgeo.hierarchical.build_site_model``
   Roberts and Sköld 2007: centre what the data identify), the rest non-centred.
 * ``total_cb``: as ``total_c`` with the trend coefficients centred too.
 
-Each arm builds the model, samples it with ``bayesgeo.sampling.sample`` at one fixed target acceptance
+Each arm builds the model, samples it with ``bayesgeo.fitting.sampling.sample`` at one fixed target acceptance
 (0.9, no rerun, 4 chains x (1000 + 1000), nutpie low-rank, the recipe's seed) and reports divergences,
 the smallest bulk ESS over the site-level variables (practical range, sd, nugget sd, total variance,
 spatial share) and over the population variables, the largest R-hat, sampling seconds, and where the
@@ -48,8 +48,8 @@ HYPER = ("range_site_sd", "sill_site_sd", "total_site_sd", "nugget_site_sd", "po
 def run(ds, recipe: dict, arm: str, target_accept: float = 0.9) -> dict:
     import arviz as az
 
-    from bayesgeo.hierarchical import build_site_model
-    from bayesgeo.sampling import sample
+    from bayesgeo.fitting.hierarchical import build_site_model
+    from bayesgeo.fitting.sampling import sample
 
     model, _ = build_site_model(ds, covariance=recipe["family"], transform=recipe.get("transform"), _variance=arm)
     t0 = time.perf_counter()

@@ -1,12 +1,12 @@
 """Benchmark: the hierarchical model (several parametrisations and adaptations) against single-site fits.
 
-Sites x points simulated (bayesgeo.demo.simulate_field, Matérn 3/2 with nugget) from a known
+Sites x points simulated (bayesgeo.data.demo.simulate_field, Matérn 3/2 with nugget) from a known
 population of sites. Side by side in one run, same data, seed and sampler settings:
 
-* the hierarchical model (bayesgeo.hierarchical.fit_sites, one compile, one sampling run) in each
+* the hierarchical model (bayesgeo.fitting.hierarchical.fit_sites, one compile, one sampling run) in each
   variant given by ``--variants`` as ``PARAMETRISATION:ADAPTATION[:TUNE]`` (for example
   ``noncentred:low_rank centred:low_rank auto:diag:1000``);
-* (unless ``--no-single``) one single-site fit per site (bayesgeo.posterior.fit), one after another.
+* (unless ``--no-single``) one single-site fit per site (bayesgeo.fitting.posterior.fit), one after another.
 
 Reported per fit: wall time (with compilation), sampling time alone, mean leapfrog steps per draw and
 mean step size after tuning (nutpie's ``n_steps`` and ``step_size``), divergences, the minimum bulk
@@ -44,8 +44,8 @@ def _machine() -> str:
 
 
 def simulate(sites: int, points: int, seed: int = 20261202):
-    from bayesgeo.data import points_dataset
-    from bayesgeo.demo import simulate_field
+    from bayesgeo.data.points import points_dataset
+    from bayesgeo.data.demo import simulate_field
 
     rng = np.random.default_rng(seed)
     xs, ys, vs, ss = [], [], [], []
@@ -104,8 +104,8 @@ def main() -> None:
     ap.add_argument("--no-append", action="store_true")
     args = ap.parse_args()
 
-    from bayesgeo.hierarchical import fit_sites
-    from bayesgeo.posterior import fit
+    from bayesgeo.fitting.hierarchical import fit_sites
+    from bayesgeo.fitting.posterior import fit
 
     ds = simulate(args.sites, args.points)
     load_start = os.getloadavg()[0]

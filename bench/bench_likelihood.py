@@ -2,10 +2,10 @@
 
 Part 1, one log-density + gradient, side by side in one run (interleaved rounds, median):
   (a) ours:    PyTensor function (Numba linker, as nutpie uses) of a model log-density and its
-               gradient, the likelihood being bayesgeo.likelihood.marginal_loglik (Matérn 3/2);
+               gradient, the likelihood being bayesgeo.gp.dense.marginal_loglik (Matérn 3/2);
   (b) builtin: the same statistical model written with pm.gp.Marginal(Matern32).marginal_likelihood;
   (c) floor:   LAPACK dpotrf + dpotri alone (scipy.linalg.lapack) at the same n, buffer reused.
-Part 2, full fits with nutpie (2 chains, tune + draws as below; compiled once, sampling timed): our model (bayesgeo.model.build_model)
+Part 2, full fits with nutpie (2 chains, tune + draws as below; compiled once, sampling timed): our model (bayesgeo.fitting.model.build_model)
   with nutpie's default diagonal adaptation and with adaptation="low_rank", against the
   pm.gp.Marginal model with the same priors; wall time, minimum bulk ESS (ArviZ), ESS/s.
 
@@ -40,8 +40,8 @@ import pytensor.tensor as pt  # noqa: E402
 import xarray as xr  # noqa: E402
 from scipy.linalg import lapack  # noqa: E402
 
-from bayesgeo.demo import simulate_field  # noqa: E402
-from bayesgeo.model import build_model  # noqa: E402
+from bayesgeo.data.demo import simulate_field  # noqa: E402
+from bayesgeo.fitting.model import build_model  # noqa: E402
 
 FREE = ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z")
 SIDE = 1000.0  # m, square study area of an invented survey
@@ -222,7 +222,7 @@ def report(grad_rows, fit_rows, args, step_rows=()) -> str:
              f"pytensor {pytensor.__version__}; `python bench/bench_likelihood.py "
              f"{' '.join(sys.argv[1:])}`.", "",
              "One log-density + gradient (median of interleaved rounds; Matérn 3/2 with nugget, model of "
-             "bayesgeo.model.build_model; builtin = the same model with pm.gp.Marginal; floor = LAPACK "
+             "bayesgeo.fitting.model.build_model; builtin = the same model with pm.gp.Marginal; floor = LAPACK "
              "dpotrf + dpotri alone):", "",
              "| n | ours (ms) | pm.gp.Marginal (ms) | LAPACK floor (ms) | ours / builtin | ours / floor |",
              "| --- | --- | --- | --- | --- | --- |"]

@@ -30,7 +30,7 @@ sys.path.insert(0, str(ROOT))
 
 from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a script)
 
-from bayesgeo.demo import simulate_field  # noqa: E402
+from bayesgeo.data.demo import simulate_field  # noqa: E402
 
 SIDE = 1000.0  # m, invented survey square
 TRUTH = {"practical_range": 300.0, "partial_sill": 1.0, "nugget": 0.25, "mean": 5.0}

@@ -1,12 +1,12 @@
 """What the nearest-neighbour likelihood costs in information, and whether its intervals are honest.
 
 For points uniform on a 1 km square at several densities (practical range 300 m, partial sill 1,
-nugget 0.25 or 0), per family and m, bayesgeo.nn_accuracy.nn_information on its default window
+nugget 0.25 or 0), per family and m, bayesgeo.gp.nn_accuracy.nn_information on its default window
 (exact closed forms, no simulation): the sd of log(scale), log(partial sill), log(nugget) that an
 nn posterior reports (curvature H), the actual spread of the nn estimate (sandwich H^-1 J H^-1)
 and the exact likelihood's (Fisher information); width ratio = sandwich / nn (> 1: nn intervals
 too narrow), efficiency = (exact / sandwich)^2. Also: the pseudo-true parameters of the nn
-likelihood (bayesgeo.nn_accuracy.nn_pseudo_true) on the full data at n = 2,000, which the theory
+likelihood (bayesgeo.gp.nn_accuracy.nn_pseudo_true) on the full data at n = 2,000, which the theory
 says equal the truth; how the width ratio grows with the window at 20,000 points per km²; and the
 time of the check at n = 20,000.
 
@@ -33,8 +33,8 @@ sys.path.insert(0, str(ROOT))
 
 from _common import publish  # noqa: E402  (bench/ is on sys.path when run as a script)
 
-from bayesgeo.covariance import get_covariance  # noqa: E402
-from bayesgeo.nn_accuracy import WINDOW_POINTS, nn_blocks, nn_information, nn_pseudo_true  # noqa: E402
+from bayesgeo.gp.covariance import get_covariance  # noqa: E402
+from bayesgeo.gp.nn_accuracy import WINDOW_POINTS, nn_blocks, nn_information, nn_pseudo_true  # noqa: E402
 
 SIDE = 1000.0
 RANGE = 300.0
@@ -103,7 +103,7 @@ def report(rows, pt_rows, win_rows, secs, load0) -> str:
              f"{now}; {platform.system()} {platform.machine()}, {os.cpu_count()} CPUs, 1-minute load average "
              f"{load0:.1f} at the start and {os.getloadavg()[0]:.1f} at the end; `python bench/bench_nn_information.py`.", "",
              f"Points uniform on a {SIDE:.0f} m square (density = n per km²), practical range {RANGE:.0f} m, partial sill 1; "
-             f"bayesgeo.nn_accuracy.nn_information on the {WINDOW_POINTS:,} points nearest the centre (exact closed forms, no "
+             f"bayesgeo.gp.nn_accuracy.nn_information on the {WINDOW_POINTS:,} points nearest the centre (exact closed forms, no "
              "simulation), maximin ordering. sd = of the log parameter; 'nn' = what an nn posterior reports "
              "(curvature), 'sampling' = actual spread of the nn estimate over data sets (sandwich), 'exact' = the "
              "exact likelihood's (Fisher information). Width ratio = sampling / nn (> 1: nn intervals too narrow; "

@@ -38,9 +38,9 @@ def build(ds, family: str, arm: str):
     import pymc as pm
     import pytensor.tensor as pt
 
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import marginal_loglik
-    from bayesgeo.model import build_model, model_inputs
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.gp.dense import marginal_loglik
+    from bayesgeo.fitting.model import build_model, model_inputs
 
     if arm == "log_sd":
         return build_model(ds, covariance=family, nugget=False, _trend="sampled")  # as when measured
@@ -68,9 +68,9 @@ def build(ds, family: str, arm: str):
 def fit(recipe: dict, arm: str) -> dict:
     import xarray as xr
 
-    from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.posterior import derive
-    from bayesgeo.sampling import compile_model, sample
+    from bayesgeo.convergence.diagnostics import check_convergence
+    from bayesgeo.fitting.posterior import derive
+    from bayesgeo.fitting.sampling import compile_model, sample
 
     ds = simulate(recipe)
     model, spec = build(ds, recipe["family"], arm)

@@ -1,4 +1,4 @@
-"""Benchmark of Bayesian kriging maps: time, scaling and peak memory (bayesgeo.predict).
+"""Benchmark of Bayesian kriging maps: time, scaling and peak memory (bayesgeo.predict.prediction).
 
 The posterior draws are synthetic (stated in the output): 200 parameter sets scattered around the
 truth of a simulated Matérn 3/2 field at n = 500 points (range, sills and mean jittered by about
@@ -43,9 +43,9 @@ SIDE = 1000.0
 
 
 def _problem(draws: int, seed: int = 1):
-    from bayesgeo._kriging import make_basis
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.demo import simulate_field
+    from bayesgeo.gp.kriging import make_basis
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.data.demo import simulate_field
 
     rng = np.random.default_rng(seed)
     xy = rng.random((N_OBS, 2)) * SIDE
@@ -61,7 +61,7 @@ def _problem(draws: int, seed: int = 1):
 
 
 def _grid(cells_side: int):
-    from bayesgeo.targets import grid_targets
+    from bayesgeo.data.targets import grid_targets
 
     return grid_targets(np.array([[0.0, 0.0], [SIDE, SIDE]]), cells=cells_side)
 
@@ -83,7 +83,7 @@ class _Log:
 
 def child(cells_side: int, draws: int, scheduler: str, log: str | None = None) -> None:
     """Run one prediction and print a JSON line with times and peak memory."""
-    from bayesgeo.predict import predict_targets
+    from bayesgeo.predict.prediction import predict_targets
 
     basis, t_basis = _problem(draws)
     grid = _grid(cells_side)
@@ -116,8 +116,8 @@ def _sklearn_vs_ours(draws: int = 20, cells_side: int = 100) -> tuple[float, flo
     from sklearn.gaussian_process import GaussianProcessRegressor
     from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
-    from bayesgeo._kriging import JITTER, draw_moments
-    from bayesgeo.predict import _flat_xy
+    from bayesgeo.gp.kriging import JITTER, draw_moments
+    from bayesgeo.predict.prediction import _flat_xy
 
     basis, _ = _problem(draws)
     xy = _flat_xy(_grid(cells_side))

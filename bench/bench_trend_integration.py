@@ -50,9 +50,9 @@ def build(ds, family: str, trend: int, variant: str):
     import pymc as pm
     import pytensor.tensor as pt
 
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import JITTER, marginal_loglik
-    from bayesgeo.model import _variance_split, model_inputs
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.gp.dense import JITTER, marginal_loglik
+    from bayesgeo.fitting.model import _variance_split, model_inputs
 
     spec, y, design, dist = model_inputs(ds, covariance=family, trend=trend, approx="dense")
     cov = get_covariance(family)
@@ -79,8 +79,8 @@ def build(ds, family: str, trend: int, variant: str):
 def fit(recipe: dict, trend: int, variant: str) -> dict:
     import xarray as xr
 
-    from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.sampling import compile_model, sample
+    from bayesgeo.convergence.diagnostics import check_convergence
+    from bayesgeo.fitting.sampling import compile_model, sample
 
     ds = simulate(recipe)
     model, spec = build(ds, recipe["family"], trend, variant)

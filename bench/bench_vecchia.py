@@ -4,13 +4,13 @@ Part 1 (accuracy): log-likelihood error nn - dense at n = 2,000 for m = 5, 10, 1
   ordering), exponential and Matérn 3/2 fields simulated exactly, 3 data sets each, at the true
   parameters; also the error of a log-likelihood *difference* (true range against 1.5 x the true
   range), which is what moves a posterior. Part 1b: the exact mean and sd of both errors over data
-  sets drawn from the model (bayesgeo.vecchia.nn_error_moments, closed forms) at n = 1,000, with and
+  sets drawn from the model (bayesgeo.gp.nn.nn_error_moments, closed forms) at n = 1,000, with and
   without a nugget, maximin / random / coordinate orderings.
-Part 2 (speed): one log-density + gradient of the product's model (bayesgeo.model.build_model,
+Part 2 (speed): one log-density + gradient of the product's model (bayesgeo.fitting.model.build_model,
   Matérn 3/2, PyTensor function with the Numba linker, as nutpie uses) with the nn likelihood
   (approx="nn", m = 20) at n = 1,000 / 5,000 / 20,000 / 50,000 and with the dense likelihood at
   n <= 2,000, interleaved, median; plus the one-off set-up (maximin ordering and neighbour search),
-  with the maximin ordering timed both compiled (bayesgeo.vecchia.maximin_order) and with the
+  with the maximin ordering timed both compiled (bayesgeo.gp.nn.maximin_order) and with the
   earlier pure-Python version (kept below as maximin_order_python) in the same run.
 Part 3 (fit, --fit): one n = 1,000 data set simulated exactly from the family under test
   (--fit-family, default matern32), fitted with the product's two models,
@@ -54,13 +54,13 @@ import pytensor  # noqa: E402
 import pytensor.tensor as pt  # noqa: E402
 import xarray as xr  # noqa: E402
 
-from bayesgeo.covariance import get_covariance  # noqa: E402
-from bayesgeo.demo import simulate_field  # noqa: E402
-from bayesgeo.likelihood import loglik_numpy  # noqa: E402
-from bayesgeo.geometry import distance_matrix  # noqa: E402
-from bayesgeo.likelihood import FAST_FAMILIES  # noqa: E402
-from bayesgeo.model import build_model  # noqa: E402
-from bayesgeo.vecchia import maximin_order, nearest_previous, nn_error_moments, nn_loglik_and_grad  # noqa: E402
+from bayesgeo.gp.covariance import get_covariance  # noqa: E402
+from bayesgeo.data.demo import simulate_field  # noqa: E402
+from bayesgeo.gp.dense import loglik_numpy  # noqa: E402
+from bayesgeo.common.geometry import distance_matrix  # noqa: E402
+from bayesgeo.gp.dense import FAST_FAMILIES  # noqa: E402
+from bayesgeo.fitting.model import build_model  # noqa: E402
+from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_error_moments, nn_loglik_and_grad  # noqa: E402
 
 SIDE = 1000.0  # m, square study area of an invented survey
 M_FIT = 20
@@ -277,7 +277,7 @@ def _fit_one(model, spec, *, tune: int, draws: int, chains: int, seed: int) -> d
 def expected_spread(ds: xr.Dataset, family: str, m: int) -> dict:
     """Expected sd of nn - dense estimates in exact posterior sds: nn_information's ``shift_sd``
     (Hausman 1978) for each parameter, at the true values on the data's own layout."""
-    from bayesgeo.nn_accuracy import nn_information
+    from bayesgeo.gp.nn_accuracy import nn_information
 
     xy = np.column_stack([ds["x"].values, ds["y"].values])
     info = nn_information(xy, family, get_covariance(family).scale_from_range(300.0), 1.0, 0.25, neighbours=m)
@@ -372,7 +372,7 @@ def fit_report(fit) -> list[str]:
               "sd of the parameter: how far the approximation moves the posterior compared with its width. "
               "'Expected spread' = sd of the nn - dense difference over data sets predicted before any fit, "
               "sqrt(sampling sd^2 - exact sd^2) / exact sd of the log parameter from "
-              "bayesgeo.nn_accuracy.nn_information on this layout at the true values (Hausman 1978: for an "
+              "bayesgeo.gp.nn_accuracy.nn_information on this layout at the true values (Hausman 1978: for an "
               "efficient and a consistent estimator, var(difference) = difference of variances); a shift of "
               "about that size is the approximation's information loss, not a bias.", "",
               "'Familywise' = every |difference| <= 2.77 x combined MCSE, the Bonferroni bound that keeps the "
@@ -433,7 +433,7 @@ def report(acc, mom, spd, fit, args, load0) -> str:
         lines.append("")
     if mom:
         lines += [f"Exact mean and sd of the errors over data sets drawn from the model (closed forms, "
-                  f"bayesgeo.vecchia.nn_error_moments; no simulation noise) at n = {args.moments_n}, same setting as "
+                  f"bayesgeo.gp.nn.nn_error_moments; no simulation noise) at n = {args.moments_n}, same setting as "
                   "above, nugget 0 or 0.25. 'error' = nn - dense log-likelihood at the true parameters; 'difference' = "
                   "error of logL(1.5 x range) - logL(range); 'share' = difference mean / |exact difference mean|:", "",
                   "| family | nugget | ordering | m | error mean | error sd | difference mean | difference sd | "

@@ -11,8 +11,8 @@ import sys
 from pathlib import Path
 
 import bayesgeo
-from bayesgeo.data import apply_transform
-from bayesgeo.figures import save_figure
+from bayesgeo.data.points import apply_transform
+from bayesgeo.explore.figures import save_figure
 
 QUICK = os.environ.get("BAYESGEO_EXAMPLE_QUICK") == "1"
 

@@ -14,8 +14,8 @@ from pathlib import Path
 import numpy as np
 
 import bayesgeo
-from bayesgeo.demo import DEMO_ACTION_LEVEL
-from bayesgeo.map_figures import write_map_figures
+from bayesgeo.data.demo import DEMO_ACTION_LEVEL
+from bayesgeo.predict.figures import write_map_figures
 
 QUICK = os.environ.get("BAYESGEO_EXAMPLE_QUICK") == "1"
 
@@ -30,7 +30,7 @@ def main(out: Path) -> dict:
     print(fit.convergence)
     print(fit.summary()[["parameter", "q05", "q50", "q95", "units"]].to_string(index=False))
     bayesgeo.write_diagnostic_figures(fit.tree, out / "diagnostics")
-    pred = fit.predict(cell=15.0 if QUICK else 6.0, thresholds=[DEMO_ACTION_LEVEL], draws=50 if QUICK else 300,
+    pred = bayesgeo.predict_map(fit, cell=15.0 if QUICK else 6.0, thresholds=[DEMO_ACTION_LEVEL], draws=50 if QUICK else 300,
                        allow_unconverged=True)  # a failed check still maps here, marked NOT CONVERGED
     xy = np.column_stack([parcel["x"].values, parcel["y"].values])
     not_converged = pred.attrs["convergence_verdict"] == "fail"

@@ -8,9 +8,9 @@ parcels end to end"):
 
 1. fit three parcels of the invented Marrowby Works demo together (hierarchical pooling);
 2. check convergence: one verdict for the whole posterior and one block per parcel and for the
-   population (:func:`bayesgeo.diagnostics.site_convergence`);
+   population (:func:`bayesgeo.convergence.diagnostics.site_convergence`);
 3. map each parcel: kriging predictions and the probability of exceeding the demo's invented
-   action level, from that parcel's draws (:func:`bayesgeo.hierarchical.site_fit`);
+   action level, from that parcel's draws (:func:`bayesgeo.fitting.hierarchical.site_fit`);
 4. the new-parcel predictive: what range and sill to expect at a parcel of the same kind not yet
    sampled.
 
@@ -28,12 +28,12 @@ from pathlib import Path
 import numpy as np
 
 import bayesgeo
-from bayesgeo.demo import DEMO_ACTION_LEVEL
-from bayesgeo.diagnostics import check_convergence, site_convergence
-from bayesgeo.hier_outputs import save_site_fit, site_report, with_site_diagnostics
-from bayesgeo.hierarchical import fit_sites, site_fit
-from bayesgeo.predict import basis_from_fit, predict_targets
-from bayesgeo.targets import grid_targets
+from bayesgeo.data.demo import DEMO_ACTION_LEVEL
+from bayesgeo.convergence.diagnostics import check_convergence, site_convergence
+from bayesgeo.fitting.hier_outputs import save_site_fit, site_report, with_site_diagnostics
+from bayesgeo.fitting.hierarchical import fit_sites, site_fit
+from bayesgeo.predict.prediction import basis_from_fit, predict_targets
+from bayesgeo.data.targets import grid_targets
 
 QUICK = os.environ.get("BAYESGEO_EXAMPLE_QUICK") == "1"
 PARCELS = ["rail-siding", "mill-pond", "east-lot"]

@@ -25,7 +25,7 @@ or a doubt gives one stderr line `bayesgeo <command>: warning: ...`, also listed
 the `--json` object. What a data file must look like, and what is refused: [data_files.md](data_files.md).
 
 Numeric options are checked where they enter, with the same ranges as in study files
-(`bayesgeo.validate.INT_LIMITS`): seeds 0 to 2^63 - 1, `--chains` 1 to 64, `--draws` 1 to 1,000,000,
+(`bayesgeo.common.validate.INT_LIMITS`): seeds 0 to 2^63 - 1, `--chains` 1 to 64, `--draws` 1 to 1,000,000,
 `--tune` 0 to 1,000,000, `--neighbours` 1 to 200, `--trend` 0 to 3, `--bins` 2 to 1,000,
 `--permutations` 0 to 100,000, `variogram-check --replicates` 1 to 100,000; real numbers must be finite, `--target-accept`
 and prior probabilities lie in (0, 1), prior values and `--cell`, `--lag-limit` are positive. A saved fit

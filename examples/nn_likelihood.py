@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 
 import bayesgeo
-from bayesgeo.geometry import distance_matrix
-from bayesgeo.likelihood import loglik_numpy
-from bayesgeo.vecchia import nn_loglik_and_grad
+from bayesgeo.common.geometry import distance_matrix
+from bayesgeo.gp.dense import loglik_numpy
+from bayesgeo.gp.nn import nn_loglik_and_grad
 
 
 def main() -> dict[int, float]:

@@ -12,8 +12,8 @@ import tempfile
 from pathlib import Path
 
 from bayesgeo.cli.demo import write_demo_inputs
-from bayesgeo.pipeline import run_study
-from bayesgeo.study import read_study
+from bayesgeo.study.runner import run_study
+from bayesgeo.study.settings import read_study
 
 QUICK = os.environ.get("BAYESGEO_EXAMPLE_QUICK") == "1"
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from bayesgeo.demo import simulate_field
+from bayesgeo.data.demo import simulate_field
 
 TINY_STUDY = """\
 title = "Tiny synthetic study (test)"
@@ -126,7 +126,7 @@ def sites_run(folder_factory, *, draws: int = SITE_RUN["draws"], tune: int = SIT
     stage runs (2 x 400 draws failed it; the hierarchical model's between-site sds need still more draws
     with two sites; the demo runs that model).
     """
-    from bayesgeo.pipeline import run_study
+    from bayesgeo.study.runner import run_study
 
     key = (draws, tune, pooling)
     if key not in _SITE_RUNS:

@@ -63,8 +63,8 @@ def recording_progress():
 
 def write_fit_folder(tree, folder):
     """Write ``tree`` as ``folder/posterior.nc`` the way bayesgeo writes fit folders (with the output
-    marker of bayesgeo.outputs), for tests that build posteriors by hand."""
-    from bayesgeo.outputs import new_folder
+    marker of bayesgeo.common.outputs), for tests that build posteriors by hand."""
+    from bayesgeo.common.outputs import new_folder
 
     with new_folder(folder) as tmp:
         tree.to_netcdf(tmp / "posterior.nc", engine="netcdf4")

@@ -1,4 +1,4 @@
-"""Trace autocorrelation and integrated autocorrelation time (bayesgeo.autocorr)."""
+"""Trace autocorrelation and integrated autocorrelation time (bayesgeo.convergence.autocorr)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from bayesgeo.autocorr import (
+from bayesgeo.convergence.autocorr import (
     acf_array,
     autocorrelation,
     default_lag_limit,
@@ -14,7 +14,7 @@ from bayesgeo.autocorr import (
     integrated_autocorrelation_time,
     stack_parameters,
 )
-from bayesgeo.validate import InputError
+from bayesgeo.common.validate import InputError
 
 
 def ar1(phi: float, chains: int = 4, draws: int = 5000, seed: int = 0) -> np.ndarray:
@@ -148,7 +148,7 @@ def test_dataarray_input_keeps_other_dims(ar09):
 
 
 def test_bad_inputs_raise_input_error():
-    """Bad options name the option and the accepted values (common practice, bayesgeo.validate)."""
+    """Bad options name the option and the accepted values (common practice, bayesgeo.common.validate)."""
     tree = _tree(np.random.default_rng(0))
     with pytest.raises(InputError, match="lag_limit"):
         autocorrelation(tree, lag_limit=300)

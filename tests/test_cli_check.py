@@ -170,7 +170,7 @@ def test_several_site_fit_has_site_and_population_blocks(tmp_path, capsys):
     """A several-site fit: diagnostics.json keeps the whole-posterior verdict and adds one block per
     site and one for the population. Each site's worst R-hat and smallest bulk / tail ESS equal the
     extremes of arviz.rhat / arviz.ess (method "bulk", and "tail" with the 5% and 95% quantiles as
-    bayesgeo.diagnostics documents) over that site's elements alone,
+    bayesgeo.convergence.diagnostics documents) over that site's elements alone,
     computed here independently (reference: ArviZ 1.x, Vehtari et al. 2021 rank-normalised R-hat
     and ESS). A converged fit passes everywhere."""
     folder = write_site_fit(tmp_path / "fit")

@@ -1,6 +1,6 @@
 """Tests of the `bayesgeo compare` and `bayesgeo variogram-check` commands.
 
-Fit folders hold a posterior.nc built from chosen draws in the layout of bayesgeo.posterior.fit
+Fit folders hold a posterior.nc built from chosen draws in the layout of bayesgeo.fitting.posterior.fit
 (tests/test_loo.py: make_fit), so no sampling is needed.
 """
 
@@ -126,7 +126,7 @@ def test_variogram_check_human_output_and_bad_option(fits, tmp_path, capsys):
 
 
 def test_unconverged_fits_are_flagged(tmp_path, capsys):
-    """A stored convergence verdict "fail" (bayesgeo.posterior.with_diagnostics layout) puts a
+    """A stored convergence verdict "fail" (bayesgeo.fitting.posterior.with_diagnostics layout) puts a
     NOT CONVERGED caution first in both commands' JSON."""
     ds = simulated(30, seed=33)
     bad = make_fit(ds, ndraw=60, seed=4)
@@ -146,8 +146,8 @@ def test_store_writes_the_group_once(tmp_path, capsys):
     store_log_likelihood refuses to replace an existing group without overwrite."""
     import xarray as xr
 
-    from bayesgeo.modelcheck import store_log_likelihood
-    from bayesgeo.validate import InputError
+    from bayesgeo.checks.modelcheck import store_log_likelihood
+    from bayesgeo.common.validate import InputError
 
     ds = simulated(30, seed=34)
     a = _save(make_fit(ds, ndraw=60, seed=6), tmp_path / "a")
@@ -194,7 +194,7 @@ def test_compare_site_fits_by_site_and_one_site(site_fits, tmp_path, capsys):
     Gabry 2017, eq. 4) with se_site = sqrt(n_s var(elpd_i)) (the ArviZ formula of se). With
     --site s1 each fit's elpd_loo equals its s1 entry of by_site: sites are independent given the
     parameters, so a point's exact leave-one-out density does not depend on the other sites
-    (bayesgeo.loo module docstring). Equal up to 1e-3, not bit for bit: arviz.loo sets the Pareto
+    (bayesgeo.checks.loo module docstring). Equal up to 1e-3, not bit for bit: arviz.loo sets the Pareto
     tail length from a relative efficiency r_eff averaged over the posterior variables present,
     and the one-site fit holds fewer of them (differences seen: about 3e-5)."""
     dirs = [str(site_fits[k]) for k in ("hier", "indep", "complete")]
@@ -274,7 +274,7 @@ def test_non_finite_elpd_is_never_ranked(fits, tmp_path, capsys, monkeypatch):
     """A NaN elpd (leave-one-out densities that overflowed although the draws are finite; simulated
     here by patching the comparison) stops compare with exit 2 and a line naming the fit folder and
     the variable, instead of a ranking with elpd = nan and exit 0; nothing is written to --out."""
-    import bayesgeo.modelcheck as mc
+    import bayesgeo.checks.modelcheck as mc
 
     real = mc.compare_fits
 
@@ -297,7 +297,7 @@ def test_non_finite_replicate_band_stops_variogram_check(fits, tmp_path, capsys,
     folder and the variable; no figure or table is written."""
     import shutil
 
-    import bayesgeo.ppcheck as pp
+    import bayesgeo.checks.ppcheck as pp
 
     real = pp.variogram_check
 

@@ -11,10 +11,10 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
-from bayesgeo.data import read_points
-from bayesgeo.demo import simulate_field
-from bayesgeo.explore import correlogram, semivariogram
-from bayesgeo.quickfit import fit_wls
+from bayesgeo.data.points import read_points
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.explore.variogram import correlogram, semivariogram
+from bayesgeo.explore.quickfit import fit_wls
 
 FILES = ("semivariogram.png", "correlogram.png", "directional.png", "semivariogram.csv", "correlogram.csv",
          "directional.csv", "fits.csv")
@@ -134,7 +134,7 @@ def test_cli_several_sites_get_sub_folders(tmp_path, capsys):
     assert set(obj["sites"]) == {"north yard", "mill/pond"}
     assert obj["sites"]["mill/pond"]["n"] == 35
     assert obj["semivariogram"] == obj["sites"]["north yard"]["semivariogram"]
-    from bayesgeo.sitenames import site_file_name
+    from bayesgeo.common.sitenames import site_file_name
 
     for sub in (site_file_name("north yard"), site_file_name("mill/pond")):  # safe part + hash of the label
         assert sub.startswith(("north_yard+", "mill_pond+"))
@@ -176,8 +176,8 @@ def test_semivariogram_figure_draws_the_fitted_curves(one_site):
     """The figure's fitted curve is the exponential semivariogram written out here,
     gamma(h) = tau2 + sigma2 (1 - exp(-h / phi)) (Diggle and Ribeiro 2007, sec. 3.4), with the
     fitted WLS numbers; one curve per family; axes name their units; the envelope is drawn."""
-    from bayesgeo.figures import correlogram_figure, semivariogram_figure
-    from bayesgeo.quickfit import quick_fits
+    from bayesgeo.explore.figures import correlogram_figure, semivariogram_figure
+    from bayesgeo.explore.quickfit import quick_fits
 
     ds = read_points(one_site["data"], value="conc", units="mg/kg")
     vg = semivariogram(ds, bins=10, permutations=19, seed=1)
@@ -197,7 +197,7 @@ def test_semivariogram_figure_draws_the_fitted_curves(one_site):
 def test_cli_log_transform_equals_api_on_log_values(tmp_path, capsys):
     """--transform log analyses log(values): the semivariogram equals the API's on
     data.apply_transform(ds, "log") (concentrations are modelled on the log scale: common practice)."""
-    from bayesgeo.data import apply_transform
+    from bayesgeo.data.points import apply_transform
 
     rows = _rows(60, 5)
     for r in rows[1:]:
@@ -222,7 +222,7 @@ def test_cli_log_transform_equals_api_on_log_values(tmp_path, capsys):
     ("--trend", "5", r"argument --trend: expected an integer from 0 to 3, got 5"),
 ])
 def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
-    """Numeric options are checked where they enter (bayesgeo.validate): exit 2, one line naming the
+    """Numeric options are checked where they enter (bayesgeo.common.validate): exit 2, one line naming the
     option, the data untouched, no output folder."""
     from _cli_helpers import assert_refused
 

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import EXIT_INPUT, EXIT_NOT_CONVERGED, main
-from bayesgeo.demo import simulate_field
+from bayesgeo.data.demo import simulate_field
 
 
 def _csv(path, n=40, seed=5, site=None, zero_rows=()):
@@ -110,8 +110,8 @@ def test_bad_prior_is_refused(tmp_path, capsys):
 def test_human_output_and_overwrite(cli_run, tmp_path, capsys):
     """Without --json: a table with the parameters and the verdict on stdout; --overwrite replaces an
     earlier bayesgeo output in one piece, and refuses, before sampling, a folder holding a file
-    bayesgeo did not write (bayesgeo.outputs, docs/outputs.md)."""
-    from bayesgeo.outputs import new_folder
+    bayesgeo did not write (bayesgeo.common.outputs, docs/outputs.md)."""
+    from bayesgeo.common.outputs import new_folder
 
     data, _, argv = cli_run
     out = tmp_path / "o"
@@ -147,7 +147,7 @@ def test_human_output_and_overwrite(cli_run, tmp_path, capsys):
     ("--nu", "-2", r"argument --nu: expected a number in \(0, 50\], got '-2'"),
 ])
 def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
-    """Every numeric option is checked where it enters (argparse type, bayesgeo.validate): a value
+    """Every numeric option is checked where it enters (argparse type, bayesgeo.common.validate): a value
     that overflowed (OverflowError) or failed mid-run is refused with exit 2, one line naming the
     option, the value and the accepted range; the data file is untouched and no output appears.
     Bounds: seeds are stored as signed 64-bit integers (numpy.random.default_rng takes any
@@ -195,11 +195,11 @@ def test_renamed_option_names_the_new_one(tmp_path, capsys, command, old, new, e
 
 
 def test_large_input_announced_before_sampling(tmp_path, capsys, monkeypatch):
-    """Above the comfortable size (bayesgeo.workload: 1,000 points per site; above 2,000 the
+    """Above the comfortable size (bayesgeo.fitting.workload: 1,000 points per site; above 2,000 the
     nearest-neighbour likelihood) the fit says on stderr, before any sampling, what will happen and
     the expected scale of time; with --json nothing extra reaches stdout or stderr. Sampling is
     replaced by an interruption here so the test takes seconds."""
-    import bayesgeo.posterior as post
+    import bayesgeo.fitting.posterior as post
 
     def interrupted(*a, **kw):
         raise KeyboardInterrupt
@@ -222,10 +222,10 @@ def test_large_input_announced_before_sampling(tmp_path, capsys, monkeypatch):
 
 def test_dense_fit_beyond_memory_refused(tmp_path, capsys, monkeypatch):
     """A dense likelihood whose n x n matrices (8 bytes per entry, one work matrix per chain plus the
-    distances; bayesgeo.workload.dense_memory_bytes) exceed the machine's memory is refused before
+    distances; bayesgeo.fitting.workload.dense_memory_bytes) exceed the machine's memory is refused before
     anything starts, with one line naming --approx and the way out (nn), instead of a MemoryError
     traceback after minutes. The machine's memory is set to 1 MB here so the test stays small."""
-    import bayesgeo.workload as wl
+    import bayesgeo.fitting.workload as wl
     from _cli_helpers import assert_refused
 
     monkeypatch.setattr(wl, "physical_memory_bytes", lambda: 1e6)

@@ -1,9 +1,9 @@
 """Tests of ``bayesgeo map`` on small fit folders.
 
 The fit folders are built here without sampling: posterior draws are generated around the true
-parameters of a demo parcel (bayesgeo.demo, an invented scenario) in the layout a fit stores
+parameters of a demo parcel (bayesgeo.data.demo, an invented scenario) in the layout a fit stores
 (``posterior``, ``observed_data``, ``constant_data``, ``sample_stats`` groups, settings as JSON
-in the root attributes, as bayesgeo.posterior.fit writes them), so the command is tested in seconds. Independent draws in every chain pass the
+in the root attributes, as bayesgeo.fitting.posterior.fit writes them), so the command is tested in seconds. Independent draws in every chain pass the
 convergence check; chains centred apart fail it.
 """
 
@@ -17,10 +17,10 @@ import xarray as xr
 
 from bayesgeo.cli import main
 from conftest import write_fit_folder
-from bayesgeo.demo import demo_data
-from bayesgeo.map_figures import map_figure
-from bayesgeo.model import model_inputs
-from bayesgeo.posterior import derive
+from bayesgeo.data.demo import demo_data
+from bayesgeo.predict.figures import map_figure
+from bayesgeo.fitting.model import model_inputs
+from bayesgeo.fitting.posterior import derive
 
 
 def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=250, seed=1):
@@ -132,7 +132,7 @@ def test_bad_points_file_names_row_and_column(tmp_path, capsys):
 
 def test_unconverged_posterior_is_refused_then_marked(tmp_path, capsys):
     """Chains centred apart fail the R-hat check (Vehtari et al. 2021 threshold 1.01, via
-    bayesgeo.diagnostics): map exits 3 (the status of a failed check) unless --allow-unconverged,
+    bayesgeo.convergence.diagnostics): map exits 3 (the status of a failed check) unless --allow-unconverged,
     which marks the file attributes and titles NOT CONVERGED."""
     folder, _ = _fit_folder(tmp_path / "fit", spread_chains=True)
     code, out = _run_json(capsys, ["map", str(folder), "--draws", "10", "--json"])
@@ -158,12 +158,12 @@ def test_bad_options_exit_2(tmp_path, capsys, bad):
 
 @pytest.mark.slow
 def test_real_fit_then_map_covers_held_out_samples(tmp_path, capsys):
-    """End to end with a real fit (bayesgeo.posterior.fit, nutpie): fit 50 of the 60 'mill-pond'
+    """End to end with a real fit (bayesgeo.fitting.posterior.fit, nutpie): fit 50 of the 60 'mill-pond'
     samples of the invented demo (log transform, Matérn 3/2 with nugget, the true model of the demo),
     then map the 10 held-out sample locations. Their 90% predictive intervals (new measurement,
     nugget included) should cover most of them: with 10 points, 7 or more covered has probability
     0.99 under nominal coverage (scipy.stats.binom.sf(6, 10, 0.9) = 0.987)."""
-    from bayesgeo.posterior import fit, save_fit
+    from bayesgeo.fitting.posterior import fit, save_fit
 
     ds = demo_data()
     ds = ds.isel(obs=np.flatnonzero(ds["site"].values == "mill-pond")).drop_vars("site")
@@ -192,7 +192,7 @@ def test_real_fit_then_map_covers_held_out_samples(tmp_path, capsys):
     ("--draws", "99999999999999999999", r"--draws: expected an integer from 1 to 64000000 or 'all'"),
 ])
 def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
-    """Numeric options are checked before the fit is read (bayesgeo.validate): exit 2, one line
+    """Numeric options are checked before the fit is read (bayesgeo.common.validate): exit 2, one line
     naming the option; the fit folder is untouched and no predictions appear."""
     from _cli_helpers import assert_refused
 
@@ -205,7 +205,7 @@ def test_non_finite_prediction_stops_the_map(tmp_path, capsys, monkeypatch):
     """A NaN predictive sd at a predicted cell (a numerically singular kriging system, simulated here by
     patching the prediction) stops map with exit 2 and a line naming the fit folder and the variable,
     instead of maps with all-NaN bands and exit 0; no predictions.nc or maps/ are written."""
-    import bayesgeo.predict as pr
+    import bayesgeo.predict.prediction as pr
     from _cli_helpers import assert_refused
 
     real = pr.predict_targets
@@ -245,7 +245,7 @@ def test_bad_area_or_simulation_refused_before_predicting(tmp_path, capsys, monk
     """An area far from the data, a non-finite rectangle and a too-large joint simulation are refused
     before the grid is predicted (the prediction is replaced by a function that fails if called),
     with one line and nothing written (behaviour check)."""
-    import bayesgeo.predict as pr
+    import bayesgeo.predict.prediction as pr
     from _cli_helpers import assert_refused
 
     def never(*a, **kw):

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
-from bayesgeo.validation import binomial_bounds
+from bayesgeo.calibration.validation import binomial_bounds
 
 
 def _run(capsys, argv):
@@ -51,7 +51,7 @@ def test_validate_machinery_small(tmp_path, capsys):
     assert all(d >= 0 for d in diag["divergences"])
     for verdict, failed in zip(run["verdicts"], diag["failed_checks"]):
         assert (verdict == "fail") == bool(failed), (verdict, failed)
-    # chains continue while R-hat or ESS fails: looks at 60, 120, 240 draws (4 x --draws, bayesgeo.looks)
+    # chains continue while R-hat or ESS fails: looks at 60, 120, 240 draws (4 x --draws, bayesgeo.fitting.looks)
     assert set(diag["draws"]) <= {60, 120, 240}
     assert sum(run["draws_kept"].values()) == 3
     assert sum(run["failed_checks"].values()) >= run["verdicts"].count("fail")
@@ -98,7 +98,7 @@ def test_quick_mode_coverage_within_binomial_bounds(tmp_path, capsys):
 
 
 def test_validate_reads_the_layout_from_a_study_file(tmp_path):
-    """--study reads the data through the study loader (bayesgeo.study.read_study): the layout is
+    """--study reads the data through the study loader (bayesgeo.study.settings.read_study): the layout is
     the study's data and its covariance family and nugget choice are used (behaviour check)."""
     from types import SimpleNamespace
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import special
 
-from bayesgeo.covariance import FAMILIES, get_covariance
+from bayesgeo.gp.covariance import FAMILIES, get_covariance
 
 D = np.linspace(0.0, 12.0, 241)
 

@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
-from bayesgeo.csvtable import MAX_MAGNITUDE, InputWarning
-from bayesgeo.data import read_points
-from bayesgeo.validate import InputError
+from bayesgeo.common.csvtable import MAX_MAGNITUDE, InputWarning
+from bayesgeo.data.points import read_points
+from bayesgeo.common.validate import InputError
 
 
 def _text(rows) -> str:

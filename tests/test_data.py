@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from bayesgeo.data import read_points
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import read_points
+from bayesgeo.common.validate import InputError
 
 
 def test_reads_and_keeps_attributes(write_csv, grid_rows):
@@ -118,7 +118,7 @@ def test_netcdf_roundtrip(tmp_path, write_csv, grid_rows):
 
 def test_demo_data_recorded_truth(tmp_path):
     """The invented demo set has every recorded parcel, 60-300 points each, a truth file, and refuses to overwrite (behaviour check)."""
-    from bayesgeo.demo import write_demo_data
+    from bayesgeo.data.demo import write_demo_data
 
     truth = write_demo_data(tmp_path / "demo.csv")
     ds = read_points(tmp_path / "demo.csv", site="parcel", value="arsenic_mg_kg")
@@ -131,7 +131,7 @@ def test_demo_data_recorded_truth(tmp_path):
 
 def test_log_transform(write_csv, grid_rows):
     """log transform of positive concentrations (common practice); zeros refused with rows named."""
-    from bayesgeo.data import apply_transform
+    from bayesgeo.data.points import apply_transform
 
     ds = read_points(write_csv(grid_rows), value="conc", units="mg/kg", distance_units="m")
     assert ds.attrs["distance_units"] == "m"
@@ -218,7 +218,7 @@ def test_longitudes_0_360_accepted_under_lonlat(write_csv):
     ds = read_points(write_csv(_degree_rows(lon, lat)), coords="lonlat")
     np.testing.assert_allclose(ds["x"].values, np.round(lon, 4))
     assert ds.attrs["longitude_convention"] == "0..360"
-    from bayesgeo.geometry import EARTH_RADIUS_KM, cross_distance
+    from bayesgeo.common.geometry import EARTH_RADIUS_KM, cross_distance
 
     xy = np.column_stack([ds["x"].values, ds["y"].values])
     d = cross_distance(xy[[0]], xy[[22]], "greatcircle")[0, 0]
@@ -228,7 +228,7 @@ def test_longitudes_0_360_accepted_under_lonlat(write_csv):
 def test_longitudes_across_180_become_continuous(write_csv):
     """The same Pacific points written -180..180 (170..180 and -180..-172) read as one continuous range
     170..188, so their bounding box, grid and hull do not span the globe (longitude is periodic in 360)."""
-    from bayesgeo.targets import grid_targets, hull_mask
+    from bayesgeo.data.targets import grid_targets, hull_mask
 
     rng = np.random.default_rng(6)
     lon = rng.uniform(170.0, 188.0, 40)

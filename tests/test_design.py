@@ -1,4 +1,4 @@
-"""Tests of the sampling design aid (bayesgeo.design) against kriging facts and scikit-learn."""
+"""Tests of the sampling design aid (bayesgeo.data.design) against kriging facts and scikit-learn."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from bayesgeo.design import design_table, grid_nodes, kriging_variance, plot_design
-from bayesgeo.validate import InputError
+from bayesgeo.data.design import design_table, grid_nodes, kriging_variance, plot_design
+from bayesgeo.common.validate import InputError
 
 
 def test_grid_nodes_surround_cell_centre():
@@ -83,7 +83,7 @@ def _draws(m=200, seed=1):
     prange = np.exp(rng.normal(np.log(150), 0.3, m))
     psill = np.exp(rng.normal(np.log(0.45), 0.25, m))
     nug = 0.15 / 0.85 * psill
-    from bayesgeo.covariance import get_covariance
+    from bayesgeo.gp.covariance import get_covariance
 
     scale = get_covariance("matern32").scale_from_range(prange)
     shape = (2, m // 2)

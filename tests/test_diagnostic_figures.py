@@ -1,13 +1,13 @@
-"""Diagnostic figures (bayesgeo.diagnostic_figures)."""
+"""Diagnostic figures (bayesgeo.convergence.figures)."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from bayesgeo.autocorr import stack_parameters
-from bayesgeo.diagnostic_figures import _default_figure_vars, _pair_vars, write_diagnostic_figures
-from bayesgeo.validate import InputError
+from bayesgeo.convergence.autocorr import stack_parameters
+from bayesgeo.convergence.figures import _default_figure_vars, _pair_vars, write_diagnostic_figures
+from bayesgeo.common.validate import InputError
 
 az = pytest.importorskip("arviz")
 

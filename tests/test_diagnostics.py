@@ -1,4 +1,4 @@
-"""Convergence diagnostics and verdict (bayesgeo.diagnostics)."""
+"""Convergence diagnostics and verdict (bayesgeo.convergence.diagnostics)."""
 
 from __future__ import annotations
 
@@ -7,8 +7,8 @@ import json
 import numpy as np
 import pytest
 
-from bayesgeo.diagnostics import Thresholds, check_convergence
-from bayesgeo.validate import InputError
+from bayesgeo.convergence.diagnostics import Thresholds, check_convergence
+from bayesgeo.common.validate import InputError
 
 az = pytest.importorskip("arviz")
 
@@ -214,8 +214,8 @@ def test_json_keys_and_strict_json():
 
 
 def test_iat_column_is_geyer_iat():
-    """The table's IAT is Geyer's initial monotone sequence estimate (see bayesgeo.autocorr)."""
-    from bayesgeo.autocorr import integrated_autocorrelation_time
+    """The table's IAT is Geyer's initial monotone sequence estimate (see bayesgeo.convergence.autocorr)."""
+    from bayesgeo.convergence.autocorr import integrated_autocorrelation_time
 
     tree = iid_tree(seed=11, draws=300)
     conv = check_convergence(tree, var_names=["nugget", "beta"])

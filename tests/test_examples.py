@@ -31,7 +31,7 @@ def test_nn_example_error_shrinks():
 
 def test_explore_example(tmp_path):
     """The exploration example writes its figures; its WLS practical ranges fall inside the demo's
-    population of ranges (log-normal around 150 m with sd 0.3 on the log scale, bayesgeo/demo.py truth):
+    population of ranges (log-normal around 150 m with sd 0.3 on the log scale, bayesgeo/data/demo.py truth):
     within 3 population sds, a loose check because one parcel's estimate is noisy."""
     import math
 
@@ -68,7 +68,7 @@ def test_cli_reference_names_every_option():
 
 def test_study_reference_names_every_key():
     """docs/study_file.md documents every table and key of the schema."""
-    from bayesgeo.study import SCHEMA
+    from bayesgeo.study.settings import SCHEMA
 
     text = (ROOT / "docs" / "study_file.md").read_text(encoding="utf-8")
     for table, keys in SCHEMA.items():

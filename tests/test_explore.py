@@ -9,20 +9,20 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import pdist
 
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.explore import (
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.explore.variogram import (
     FewPairsWarning,
     correlogram,
     directional_semivariograms,
     lag_bins,
     semivariogram,
 )
-from bayesgeo.geometry import cross_distance
-from bayesgeo.trend import fit_trend
-from bayesgeo.validate import InputError
+from bayesgeo.common.geometry import cross_distance
+from bayesgeo.explore.trend import fit_trend
+from bayesgeo.common.validate import InputError
 
-pytestmark = pytest.mark.filterwarnings("ignore::bayesgeo.explore.FewPairsWarning")
+pytestmark = pytest.mark.filterwarnings("ignore::bayesgeo.explore.variogram.FewPairsWarning")
 
 
 def _ds(x, y, z, site=None, coords="xy"):

@@ -1,7 +1,7 @@
 """Damaged or foreign saved fits: one line naming the file and what is wrong, from every command.
 
 The fits are built without sampling (tests/test_loo.py: make_fit, make_site_fit, draws scattered
-around known values in the layout bayesgeo.posterior.fit and bayesgeo.hierarchical.fit_sites save)
+around known values in the layout bayesgeo.fitting.posterior.fit and bayesgeo.fitting.hierarchical.fit_sites save)
 and then damaged the ways a user's files get damaged: an attribute cut short, an edited setting,
 a group or variable lost, a file truncated by a full disk, a NetCDF from another program, NaN or
 infinite draws.
@@ -17,9 +17,9 @@ import xarray as xr
 from _cli_helpers import assert_refused, snapshot
 from test_loo import make_fit, make_site_fit, simulated, simulated_sites
 
-from bayesgeo.fitfile import check_fit, read_fit
-from bayesgeo.fitted import Fit
-from bayesgeo.validate import InputError
+from bayesgeo.fitting.fitfile import check_fit, read_fit
+from bayesgeo.fitting.fitted import Fit
+from bayesgeo.common.validate import InputError
 
 
 def _save(tree, folder):

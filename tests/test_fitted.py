@@ -1,4 +1,4 @@
-"""The fit object (bayesgeo.fitted.Fit): read once, the same numbers as the commands, the prediction gate.
+"""The fit object (bayesgeo.fitting.fitted.Fit): read once, the same numbers as the commands, the prediction gate.
 
 These are checks of the package's own consistency (the Python path and the command line must give the
 same numbers; the saved file must read back bit for bit); the statistics underneath are checked
@@ -13,10 +13,11 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.fitted import Fit, NotConvergedError
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.fitting.fitted import Fit, NotConvergedError
+from bayesgeo.predict.maps import predict_map
+from bayesgeo.common.validate import InputError
 
 
 def _points(n=40, seed=3):
@@ -55,7 +56,7 @@ def test_sample_checks_saves_and_reads_back(saved):
 
 def test_summary_is_the_summary_table(saved):
     """fit.summary() is posterior.summary_table as a pandas DataFrame (one row per parameter)."""
-    from bayesgeo.posterior import summary_table
+    from bayesgeo.fitting.posterior import summary_table
 
     fit, _ = saved
     df = fit.summary()
@@ -81,7 +82,7 @@ def test_predict_equals_the_map_command(saved, tmp_path, capsys):
     assert code == 0
     with xr.open_dataset(work / "predictions.nc") as ds:
         cli = ds.load()
-    api = Fit.read(work).predict(cell=25.0, thresholds=[25.0], draws=40, allow_unconverged=True)
+    api = predict_map(Fit.read(work), cell=25.0, thresholds=[25.0], draws=40, allow_unconverged=True)
     for name in ("mean", "sd", "q05", "q95", "p_exceed"):
         np.testing.assert_allclose(api[name].values, cli[name].values, rtol=1e-12, equal_nan=True)
     assert api.attrs["convergence_verdict"] == cli.attrs["convergence_verdict"]
@@ -98,8 +99,8 @@ def test_predict_refuses_a_failed_fit_unless_allowed(saved):
     failed = Fit(tree)
     assert failed.gate_verdict() == "fail"
     with pytest.raises(NotConvergedError, match="allow_unconverged=True"):
-        failed.predict(cell=50.0, draws=10)
-    pred = failed.predict(cell=50.0, draws=10, allow_unconverged=True)
+        predict_map(failed, cell=50.0, draws=10)
+    pred = predict_map(failed, cell=50.0, draws=10, allow_unconverged=True)
     assert pred.attrs["convergence_status"] == "NOT CONVERGED"
     assert json.loads(pred.attrs["cautions"])[0].startswith("NOT CONVERGED")
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from bayesgeo.geometry import EARTH_RADIUS_KM, continuous_longitudes, cross_distance, wrap_longitudes_near
+from bayesgeo.common.geometry import EARTH_RADIUS_KM, continuous_longitudes, cross_distance, wrap_longitudes_near
 
 
 def _law_of_cosines_km(lon1, lat1, lon2, lat2):

@@ -1,4 +1,4 @@
-"""Tests of the several-site model (bayesgeo.hierarchical, bayesgeo.hier_outputs, bayesgeo.cli._sites).
+"""Tests of the several-site model (bayesgeo.fitting.hierarchical, bayesgeo.fitting.hier_outputs, bayesgeo.cli._sites).
 
 The sampled fits are small (3 sites, 40 + 40 + 12 points, 2 chains x 300 draws) and shared by the
 tests through a module-scoped fixture; larger runs are marked slow.
@@ -14,10 +14,11 @@ import pytest
 import xarray as xr
 from scipy import stats
 
-from bayesgeo.covariance import get_covariance
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.validate import InputError
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.common.validate import InputError
+from bayesgeo.predict.maps import predict_map
 
 #: Known population (log scale of the values; practical range in m) the test sites are drawn from.
 TRUTH = {"range_median": 60.0, "range_sd": 0.3, "sill_median": 1.0, "sill_sd": 0.25, "nugget_ratio": 0.15,
@@ -49,7 +50,7 @@ SAMPLE = dict(chains=2, draws=300, tune=300, seed=5)
 
 @pytest.fixture(scope="module")
 def fits():
-    from bayesgeo.hierarchical import fit_sites
+    from bayesgeo.fitting.hierarchical import fit_sites
 
     ds, truth = _sites([40, 40, 12])
     hier = fit_sites(ds, pooling="hierarchical", **SAMPLE)
@@ -76,7 +77,7 @@ def _simple_kriging_mean(data, new, params):
 def test_small_site_is_an_error_naming_site_and_rows():
     """A site with fewer than MIN_POINTS = 10 points: InputError naming the site and its rows (the
     input-check rule of this project); with small_sites="keep" it is kept with a warning."""
-    from bayesgeo.hierarchical import build_site_model, site_inputs
+    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([20, 6], seed=3)
     with pytest.raises(InputError, match=r"site 'P2' has only 6 points \(rows 22, 23, 24, 25, 26, 27\).*--small-sites keep"):
@@ -96,11 +97,11 @@ def test_common_standardisation():
     """Common scale (docs/hierarchical.md): m = mean of all values, s^2 = pooled within-site residual
     variance sum RSS_s / sum (n_s - p), D = median of the per-site largest distances (checked with
     numpy and scipy.spatial.distance.pdist); with one site these are the single-site constants of
-    bayesgeo.model.model_inputs."""
+    bayesgeo.fitting.model.model_inputs."""
     from scipy.spatial.distance import pdist
 
-    from bayesgeo.hierarchical import site_inputs
-    from bayesgeo.model import model_inputs
+    from bayesgeo.fitting.hierarchical import site_inputs
+    from bayesgeo.fitting.model import model_inputs
 
     ds, _ = _sites([30, 25, 15], seed=4)
     spec, data = site_inputs(ds)
@@ -129,7 +130,7 @@ def test_likelihood_is_sum_of_site_blocks(pooling):
     jitter policy). Under complete pooling the covariance parameters are equal across sites."""
     import pymc as pm
 
-    from bayesgeo.hierarchical import build_site_model, site_inputs
+    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([15, 12, 11], seed=8)
     model, spec = build_site_model(ds, pooling=pooling, trend=1)
@@ -156,7 +157,7 @@ def test_likelihood_is_sum_of_site_blocks(pooling):
 
 def test_spec_round_trip():
     """SiteSpec.to_dict/from_dict invert each other through JSON (internal consistency)."""
-    from bayesgeo.hierarchical import SiteSpec, site_inputs
+    from bayesgeo.fitting.hierarchical import SiteSpec, site_inputs
 
     ds, _ = _sites([15, 12], seed=2)
     spec, _ = site_inputs(ds, trend=1)
@@ -169,7 +170,7 @@ def test_spec_round_trip():
 
 
 def test_population_intervals_cover_truth(fits):
-    """Sites simulated from a known population (bayesgeo.demo.simulate_field): the 98% posterior
+    """Sites simulated from a known population (bayesgeo.data.demo.simulate_field): the 98% posterior
     intervals of the population median practical range, median partial sill and median nugget ratio
     cover the true values (a calibrated posterior covers the truth with the stated probability; with
     three checks at 98% a correct model fails about 6% of seeds; the seed here is fixed)."""
@@ -188,7 +189,7 @@ def test_small_site_borrows_strength(fits):
     """Partial pooling narrows the interval of a data-poor group (Gelman et al. 2013, Bayesian Data
     Analysis, 3rd ed., ch. 5): the 12-point site's 90% interval of the practical range and of the
     partial sill is narrower in the hierarchical fit than in the independent one."""
-    from bayesgeo.hier_outputs import shrinkage_table
+    from bayesgeo.fitting.hier_outputs import shrinkage_table
 
     _, _, hier, indep = fits
     tab = shrinkage_table(hier, indep)
@@ -201,9 +202,9 @@ def test_small_site_borrows_strength(fits):
 
 
 def test_convergence_check_covers_every_site_parameter(fits):
-    """bayesgeo.diagnostics.check_convergence reports R-hat and ESS (Vehtari et al. 2021) for every
+    """bayesgeo.convergence.diagnostics.check_convergence reports R-hat and ESS (Vehtari et al. 2021) for every
     element of every site-level variable and every hyperparameter of the hierarchical fit."""
-    from bayesgeo.diagnostics import check_convergence
+    from bayesgeo.convergence.diagnostics import check_convergence
 
     _, _, hier, _ = fits
     conv = check_convergence(hier)
@@ -224,8 +225,8 @@ def test_derived_and_population_algebra(fits):
     log-normal is median exp(s^2 / 2) (standard result, checked here by Monte Carlo per draw); the
     new-site draws are reproducible from the seed and their mean matches the population mean (law of
     total expectation, Monte Carlo tolerance 15%)."""
-    from bayesgeo.hier_outputs import new_site_draws
-    from bayesgeo.hierarchical import site_spec
+    from bayesgeo.fitting.hier_outputs import new_site_draws
+    from bayesgeo.fitting.hierarchical import site_spec
 
     _, _, hier, _ = fits
     spec = site_spec(hier)
@@ -246,10 +247,10 @@ def test_derived_and_population_algebra(fits):
 
 
 def test_site_fit_has_single_site_layout(fits):
-    """site_fit gives one site's draws in the layout of bayesgeo.posterior (same variable names, no
-    site dim, single-site settings readable by bayesgeo.posterior.fit_spec) (internal contract)."""
-    from bayesgeo.hierarchical import site_fit
-    from bayesgeo.posterior import fit_spec
+    """site_fit gives one site's draws in the layout of bayesgeo.fitting.posterior (same variable names, no
+    site dim, single-site settings readable by bayesgeo.fitting.posterior.fit_spec) (internal contract)."""
+    from bayesgeo.fitting.hierarchical import site_fit
+    from bayesgeo.fitting.posterior import fit_spec
 
     _, _, hier, _ = fits
     one = site_fit(hier, "P3")
@@ -270,8 +271,8 @@ def test_fit_object_gives_a_view_per_site(fits):
     """bayesgeo.Fit over a several-site fit: several, its sites, and .site(name) is the single-site view of
     site_fit (same draws), marked with the site it came from; without a name, with an unknown one, or
     predicting the whole fit, one InputError naming the argument and the sites (internal contract)."""
-    from bayesgeo.fitted import Fit
-    from bayesgeo.hierarchical import site_fit
+    from bayesgeo.fitting.fitted import Fit
+    from bayesgeo.fitting.hierarchical import site_fit
 
     _, _, hier, _ = fits
     fit = Fit(hier)
@@ -285,8 +286,8 @@ def test_fit_object_gives_a_view_per_site(fits):
         fit.site(None)
     with pytest.raises(InputError, match="site 'P9' is not in this fit"):
         fit.site("P9")
-    with pytest.raises(InputError, match=r"^predict: a several-site fit"):
-        fit.predict(cell=50.0)
+    with pytest.raises(InputError, match=r"^fit: a several-site fit"):
+        predict_map(fit, cell=50.0)
     assert set(fit.summary()["site"]) >= {"P1", "P2", "P3"}
 
 
@@ -294,9 +295,9 @@ def test_save_report_and_load(fits, tmp_path):
     """Outputs: posterior.nc, summary.csv, summary.txt, fit.json, shrinkage.csv/png, design.csv/png
     written atomically, refused when present (project rule), loaded back unchanged; the report carries
     sites, population, new_site and cautions that defer to local regulation."""
-    from bayesgeo.design import design_table
-    from bayesgeo.fitted import Fit
-    from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report
+    from bayesgeo.data.design import design_table
+    from bayesgeo.fitting.fitted import Fit
+    from bayesgeo.fitting.hier_outputs import save_site_fit, shrinkage_table, site_report
 
     _, _, hier, indep = fits
     shrink = shrinkage_table(hier, indep)
@@ -332,10 +333,10 @@ def test_single_site_reduces_to_single_site_fit():
     """With one site the hierarchical model's population-location priors are the single-site PC priors
     (Fuglstad et al. 2019) and only the between-site spreads (HalfNormal(0.5) on log scales) and the
     nugget parametrisation differ, so on 120 points its practical range and partial sill quantiles
-    (5%, 50%, 95%) agree with bayesgeo.posterior.fit within 25% (Monte Carlo error of ~1,000 draws plus
+    (5%, 50%, 95%) agree with bayesgeo.fitting.posterior.fit within 25% (Monte Carlo error of ~1,000 draws plus
     that small prior difference; tolerance chosen, not published)."""
-    from bayesgeo.hierarchical import fit_sites
-    from bayesgeo.posterior import fit
+    from bayesgeo.fitting.hierarchical import fit_sites
+    from bayesgeo.fitting.posterior import fit
 
     ds, _ = _sites([120], seed=21)
     kw = dict(chains=2, draws=600, tune=600, seed=3)
@@ -379,9 +380,9 @@ def test_site_fit_runs_through_prediction(fits, tmp_path):
     site P3 the predictive mean of the field at new points is the simple-kriging predictor
     beta0 + c0^T K^-1 (z - beta0) (Cressie 1993, Statistics for Spatial Data, eq. 3.4.57), computed here
     with numpy (jitter 1e-6 x partial sill as in likelihood.py; tolerance 1e-4)."""
-    from bayesgeo.hierarchical import site_fit
-    from bayesgeo.predict import basis_from_fit, predict_targets
-    from bayesgeo.targets import read_target_points
+    from bayesgeo.fitting.hierarchical import site_fit
+    from bayesgeo.predict.prediction import basis_from_fit, predict_targets
+    from bayesgeo.data.targets import read_target_points
 
     ds, _, hier, _ = fits
     basis, spec, params = basis_from_fit(site_fit(hier, "P3"), draws=1)
@@ -399,8 +400,8 @@ def test_complete_pooling_outputs_from_synthetic_draws():
     """Under complete pooling the population and the new site are the shared parameters themselves
     (definition of complete pooling, Gelman et al. 2013, BDA3 sec. 5.5), in data units: practical range
     = D r, partial sill = s^2 sd_z^2, nugget ratio = tau2 / (sigma2 + tau2). Synthetic draws, no sampling."""
-    from bayesgeo.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.hierarchical import site_inputs
+    from bayesgeo.fitting.hier_outputs import add_derived, new_site_draws
+    from bayesgeo.fitting.hierarchical import site_inputs
 
     ds, _ = _sites([15, 12], seed=9)
     spec, _ = site_inputs(ds, pooling="complete")
@@ -426,10 +427,10 @@ def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
     equal the prediction stage run on `site_fit(tree, NAME)` directly (the CLI is a thin shell);
     without --site the command says which sites there are (exit 2, one line)."""
     from bayesgeo.cli import main
-    from bayesgeo.hier_outputs import save_site_fit
-    from bayesgeo.hierarchical import site_fit
-    from bayesgeo.predict import basis_from_fit, predict_targets
-    from bayesgeo.targets import read_target_points
+    from bayesgeo.fitting.hier_outputs import save_site_fit
+    from bayesgeo.fitting.hierarchical import site_fit
+    from bayesgeo.predict.prediction import basis_from_fit, predict_targets
+    from bayesgeo.data.targets import read_target_points
 
     _, _, hier, _ = fits
     out = tmp_path / "fit"
@@ -469,8 +470,8 @@ def test_centred_and_noncentred_are_one_model(monkeypatch):
     density by the sum over its effects of log s (change of variables, N(x | mu, s) = N(eta | 0, 1) / s;
     exact to rounding). "auto" centres exactly the sites with at least CENTRED_MIN_POINTS points
     (lowered to 13 here, so that the mixed model of centred and non-centred sites is checked too)."""
-    import bayesgeo.site_inputs as site_inputs_module
-    from bayesgeo.hierarchical import build_site_model, site_inputs
+    import bayesgeo.fitting.site_inputs as site_inputs_module
+    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([15, 12, 11], seed=8)
     nc, spec_nc = build_site_model(ds, trend=1)
@@ -510,7 +511,7 @@ def test_total_sill_population_arm_splits_the_total_variance():
     scipy's multivariate normal, test_likelihood_is_sum_of_site_blocks); an unknown arm is an error."""
     from scipy.special import expit
 
-    from bayesgeo.hierarchical import build_site_model
+    from bayesgeo.fitting.hierarchical import build_site_model
 
     ds, _ = _sites([15, 12, 11], seed=8)
     model, _ = build_site_model(ds, _variance="total")
@@ -530,13 +531,13 @@ def test_total_sill_population_arm_splits_the_total_variance():
 
 
 def test_nn_site_blocks_equal_dense_with_all_neighbours(monkeypatch):
-    """Each site block may use the Vecchia likelihood (bayesgeo.vecchia): with m = n_s - 1 neighbours
+    """Each site block may use the Vecchia likelihood (bayesgeo.gp.nn): with m = n_s - 1 neighbours
     the product of conditionals is the chain rule, hence exactly the dense Gaussian density (Vecchia
     1988; Katzfuss and Guinness 2021, sec. 2), so the several-site model's log density equals the
     dense model's to rounding at the same point; with m = 3 it differs (the approximation is in
     use). Under approx="auto" only a site above DENSE_LIMIT points gets the nn block."""
-    import bayesgeo.model as model_module
-    from bayesgeo.hierarchical import build_site_model, site_inputs
+    import bayesgeo.fitting.model as model_module
+    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([25, 18, 14], seed=12)
     dense, spec_d = build_site_model(ds, trend=1, approx="dense")
@@ -561,18 +562,18 @@ def test_nn_site_blocks_equal_dense_with_all_neighbours(monkeypatch):
 def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     """A small several-site fit with the nn likelihood runs; its saved settings record approx and
     neighbours per site, so `bayesgeo map DIR --site NAME` predicts by nearest-neighbour kriging
-    (bayesgeo.predict.basis_from_fit through site_fit). With 25 data points and 30 prediction
+    (bayesgeo.predict.prediction.basis_from_fit through site_fit). With 25 data points and 30 prediction
     neighbours that is simple kriging on all the site's data: for one draw the mean equals
     beta0 + c0^T K^-1 (z - beta0) (Cressie 1993, Statistics for Spatial Data, eq. 3.4.57), computed
     with numpy (jitter 1e-6 x partial sill as in likelihood.py); the CLI's file equals the prediction
     stage run directly (thin shell)."""
     from bayesgeo.cli import main
-    from bayesgeo.fitted import Fit
-    from bayesgeo.hier_outputs import save_site_fit
-    from bayesgeo.hierarchical import fit_sites, site_fit, site_spec
-    from bayesgeo.posterior import fit_spec
-    from bayesgeo.predict import basis_from_fit, predict_targets
-    from bayesgeo.targets import read_target_points
+    from bayesgeo.fitting.fitted import Fit
+    from bayesgeo.fitting.hier_outputs import save_site_fit
+    from bayesgeo.fitting.hierarchical import fit_sites, site_fit, site_spec
+    from bayesgeo.fitting.posterior import fit_spec
+    from bayesgeo.predict.prediction import basis_from_fit, predict_targets
+    from bayesgeo.data.targets import read_target_points
 
     ds, _ = _sites([25, 22], seed=14)
     tree = fit_sites(ds, approx="nn", neighbours=10, chains=2, draws=120, tune=150, seed=2)
@@ -582,7 +583,7 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     assert site_spec(back).site_approx == ("nn", "nn") and site_spec(back).site_neighbours == (10, 10)
     one = site_fit(back, "P1")
     assert fit_spec(one).approx == "nn" and fit_spec(one).neighbours == 10
-    # each nn site carries its approximation check at that site's posterior medians (bayesgeo.nn_accuracy)
+    # each nn site carries its approximation check at that site's posterior medians (bayesgeo.gp.nn_accuracy)
     checks = json.loads(back.attrs["approximation"])
     assert set(checks) == {"P1", "P2"} and checks["P1"]["window_points"] == 25
     assert checks["P2"]["at"]["scale"] == pytest.approx(float(np.median(back["posterior"]["scale"].sel(site="P2").values)))
@@ -610,14 +611,14 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
 
 
 def test_site_spec_names_the_source():
-    """site_spec decodes through bayesgeo.posterior.fit_settings: a single-site settings attribute or a
+    """site_spec decodes through bayesgeo.fitting.posterior.fit_settings: a single-site settings attribute or a
     cut one is one InputError line naming the source, not a JSONDecodeError."""
     import json as _json
 
     import xarray as _xr
 
-    from bayesgeo.hierarchical import site_spec
-    from bayesgeo.validate import InputError
+    from bayesgeo.fitting.hierarchical import site_spec
+    from bayesgeo.common.validate import InputError
 
     tree = _xr.DataTree()
     tree.attrs["settings"] = _json.dumps({"format": "bayesgeo single-site fit", "model": {}})
@@ -630,7 +631,7 @@ def test_site_spec_names_the_source():
 
 def test_chains_continue_in_the_several_site_model(fits):
     """fit_sites looks at the convergence check of every site and the population while sampling
-    (bayesgeo.looks): looks at 300, 600, 1200 draws per chain (4 x draws by default); the draws kept
+    (bayesgeo.fitting.looks): looks at 300, 600, 1200 draws per chain (4 x draws by default); the draws kept
     are those of the last look, which is the first without an R-hat or ESS problem (Vehtari et al.
     2021: R-hat < 1.01, ESS >= 400) or the longest chain."""
     import json
@@ -648,7 +649,7 @@ def test_site_report_carries_the_looks(fits):
     """The several-site fit.json report and summary.txt carry the looks like the single-site ones."""
     import json
 
-    from bayesgeo.hier_outputs import site_report, summary_text_sites
+    from bayesgeo.fitting.hier_outputs import site_report, summary_text_sites
 
     tree = fits[2]
     smp = json.loads(tree.attrs["settings"])["sampler"]
@@ -660,11 +661,11 @@ def test_site_report_carries_the_looks(fits):
 
 def test_default_several_site_fit_is_rerun_at_0_95_when_divergent(monkeypatch):
     """fit_sites without a target acceptance samples at 0.9 and hands its run to
-    bayesgeo.looks.rerun_if_divergent with 0.95 (the rule itself is tested in tests/test_looks.py);
+    bayesgeo.fitting.looks.rerun_if_divergent with 0.95 (the rule itself is tested in tests/test_looks.py);
     a rerun is recorded in the settings; a target acceptance the user gives is used as it is, with no
     rerun asked. A stand-in for the rule forces the rerun so that the wiring is tested on a real fit."""
-    import bayesgeo.looks as looks
-    from bayesgeo.hierarchical import SITES_RERUN_ACCEPT, fit_sites
+    import bayesgeo.fitting.looks as looks
+    from bayesgeo.fitting.hierarchical import SITES_RERUN_ACCEPT, fit_sites
 
     asked = []
 

@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.keep_sampling: refitting with longer chains until the check passes."""
+"""Tests of bayesgeo.fitting.keep_sampling: refitting with longer chains until the check passes."""
 
 from __future__ import annotations
 
@@ -7,11 +7,11 @@ import json
 import numpy as np
 import pytest
 
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.keep_sampling import fit_until_converged
-from bayesgeo.posterior import fit_report
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.fitting.keep_sampling import fit_until_converged
+from bayesgeo.fitting.posterior import fit_report
+from bayesgeo.common.validate import InputError
 
 
 def _data(n=30, seed=3):

@@ -2,7 +2,7 @@
 
 Sources are named in each test's docstring. The covariance matrices below are written out from the
 closed forms (Diggle and Ribeiro 2007, *Model-based Geostatistics*, sec. 3.4) independently of
-bayesgeo.covariance.
+bayesgeo.gp.covariance.
 """
 
 from __future__ import annotations
@@ -17,8 +17,8 @@ import pytensor.tensor as pt
 import pytest
 from scipy import stats
 
-from bayesgeo.covariance import get_covariance
-from bayesgeo.likelihood import (
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.gp.dense import (
     FAST_FAMILIES,
     JITTER,
     GPLogpGrad,
@@ -27,7 +27,7 @@ from bayesgeo.likelihood import (
     marginal_loglik,
 )
 
-# closed forms of rho(u), u = d / phi, written out here (not taken from bayesgeo.covariance)
+# closed forms of rho(u), u = d / phi, written out here (not taken from bayesgeo.gp.covariance)
 RHO = {
     "exponential": lambda u: np.exp(-u),
     "matern32": lambda u: (1 + u) * np.exp(-u),
@@ -322,8 +322,8 @@ def test_trend_integrated_out_with_an_extra_matrix(method):
     import pytensor
     import pytensor.tensor as pt
 
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import covariance_matrix, loglik_and_grad, marginal_loglik
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.gp.dense import covariance_matrix, loglik_and_grad, marginal_loglik
 
     rng = np.random.default_rng(12)
     n, b = 35, 2.5

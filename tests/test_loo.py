@@ -1,6 +1,6 @@
-"""Tests of bayesgeo.loo: exact Gaussian-process leave-one-out densities.
+"""Tests of bayesgeo.checks.loo: exact Gaussian-process leave-one-out densities.
 
-Fits are built here from chosen parameter draws in the layout of bayesgeo.posterior.fit (no
+Fits are built here from chosen parameter draws in the layout of bayesgeo.fitting.posterior.fit (no
 sampling), so every check runs in well under a second; the references are brute-force Gaussian
 conditioning with numpy, scipy.stats densities and published formulas.
 """
@@ -15,18 +15,18 @@ import pytest
 import xarray as xr
 from scipy import stats
 
-from bayesgeo.covariance import get_covariance
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.likelihood import covariance_matrix
-from bayesgeo.loo import add_log_likelihood, fit_arrays, gp_loo, loo_predictive, pointwise_loo_loglik
-from bayesgeo.model import model_inputs
-from bayesgeo.validate import InputError
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.gp.dense import covariance_matrix
+from bayesgeo.checks.loo import add_log_likelihood, fit_arrays, gp_loo, loo_predictive, pointwise_loo_loglik
+from bayesgeo.fitting.model import model_inputs
+from bayesgeo.common.validate import InputError
 
 
 def make_fit(ds, *, covariance="matern32", transform=None, nugget=True, trend=0, draws=None, chains=2,
              ndraw=100, seed=0, spread=0.1, truth=None):
-    """A fit tree in the layout of bayesgeo.posterior.fit, with draws scattered around ``truth``.
+    """A fit tree in the layout of bayesgeo.fitting.posterior.fit, with draws scattered around ``truth``.
 
     ``truth`` (data units): practical_range, partial_sill, nugget, mean. ``draws`` overrides
     the standardised draws (dict of arrays shaped (chains, ndraw[, term])).
@@ -185,7 +185,7 @@ def test_predictive_mean_and_sd_in_model_units():
 
 
 def test_no_nugget_fit():
-    """A fit without nugget: the covariance is sigma^2 R + jitter I (bayesgeo.likelihood.JITTER),
+    """A fit without nugget: the covariance is sigma^2 R + jitter I (bayesgeo.gp.dense.JITTER),
     checked against scipy.stats.multivariate_normal's conditional density ratio."""
     ds = simulated(20, seed=6, nugget=0.0)
     tree = make_fit(ds, nugget=False, ndraw=2)
@@ -264,15 +264,15 @@ def simulated_sites(sizes=(12, 14, 10), *, seed=11, log=False, offsets=(0.0, 1.0
 
 def make_site_fit(ds, *, pooling="hierarchical", covariance="matern32", transform=None, nugget=True, chains=2,
                   ndraw=50, seed=0, spread=0.1, beta_draws=None):
-    """A several-site fit tree in the layout of bayesgeo.hierarchical.fit_sites, from chosen draws.
+    """A several-site fit tree in the layout of bayesgeo.fitting.hierarchical.fit_sites, from chosen draws.
 
     Per-site draws scatter (log-normally, ``spread``) around a practical range of 0.4 D, a
     partial sill of 1 and a nugget of 0.2 (standardised scale); ``beta_draws`` (chain, draw, site,
     term) overrides the trend coefficients. Population variables are drawn around the same values
-    so that bayesgeo.hier_outputs.add_derived and new_site_draws run as after sampling.
+    so that bayesgeo.fitting.hier_outputs.add_derived and new_site_draws run as after sampling.
     """
-    from bayesgeo.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.hierarchical import site_inputs
+    from bayesgeo.fitting.hier_outputs import add_derived, new_site_draws
+    from bayesgeo.fitting.hierarchical import site_inputs
 
     spec, data = site_inputs(ds, covariance=covariance, nugget=nugget, transform=transform, pooling=pooling)
     rng = np.random.default_rng(seed)
@@ -327,11 +327,11 @@ def _matern32_block(xy, practical_range_z, sd_z, nugget_sd_z, distance_scale, ra
 
     bayesgeo writes Matérn 3/2 as (1 + d/phi) exp(-d/phi); scikit-learn as
     (1 + sqrt(3) d/l) exp(-sqrt(3) d/l), so l = sqrt(3) phi, with phi = practical range / range_factor.
-    The diagonal carries the nugget and bayesgeo.likelihood.JITTER (1e-6 of the partial sill).
+    The diagonal carries the nugget and bayesgeo.gp.dense.JITTER (1e-6 of the partial sill).
     """
     from sklearn.gaussian_process.kernels import Matern
 
-    from bayesgeo.likelihood import JITTER
+    from bayesgeo.gp.dense import JITTER
 
     phi = practical_range_z / range_factor
     k = sd_z**2 * Matern(length_scale=math.sqrt(3.0) * phi, nu=1.5)(xy / distance_scale)
@@ -348,7 +348,7 @@ def test_site_loo_equals_block_diagonal_conditioning():
     form reaches correlation 0.05 at 4.744 phi)."""
     from scipy.linalg import block_diag
 
-    from bayesgeo.loo import site_fit_arrays
+    from bayesgeo.checks.loo import site_fit_arrays
 
     ds = simulated_sites((11, 13, 10), log=True, seed=21)
     tree = make_site_fit(ds, pooling="hierarchical", transform="log", ndraw=4, spread=0.3)
@@ -387,11 +387,11 @@ def test_site_psis_loo_equals_exact_refits():
     here (no MCMC). Refitting without point i and predicting it has a closed form: with the level
     integrated out, y_s ~ N(0, C_s + b^2 1 1^T), so log p(y_i | y_-i) is the scipy.stats
     multivariate-normal ratio over the site's points alone. The PSIS estimate (arviz.loo through
-    bayesgeo.modelcheck.fit_loo; Vehtari, Gelman and Gabry 2017) must agree with the sum of the
+    bayesgeo.checks.modelcheck.fit_loo; Vehtari, Gelman and Gabry 2017) must agree with the sum of the
     refits within Monte Carlo error, in total and per site (over seeds 3-7 of the level draws the
     total differed by -0.035 to +0.019 and each site by at most 0.018: tolerances 0.08 and 0.05)."""
-    from bayesgeo.loo import site_fit_arrays
-    from bayesgeo.modelcheck import fit_loo
+    from bayesgeo.checks.loo import site_fit_arrays
+    from bayesgeo.checks.modelcheck import fit_loo
 
     ds = simulated_sites((12, 10, 14), seed=5)
     base = make_site_fit(ds, pooling="independent", ndraw=2, spread=0.0)
@@ -429,7 +429,7 @@ def test_site_psis_loo_equals_exact_refits():
 def test_site_fit_arrays_refuses_what_is_not_a_site_fit():
     """A single-site fit is not a several-site fit; a several-site fit whose observed data lost
     the site labels is refused with a one-line InputError."""
-    from bayesgeo.loo import any_fit_arrays, is_site_fit, site_fit_arrays
+    from bayesgeo.checks.loo import any_fit_arrays, is_site_fit, site_fit_arrays
 
     single = make_fit(simulated(15, seed=7), ndraw=2)
     assert not is_site_fit(single)

@@ -1,9 +1,9 @@
-"""Tests of bayesgeo.loo_nn: leave-one-out densities of nearest-neighbour (Vecchia) fits.
+"""Tests of bayesgeo.checks.loo_nn: leave-one-out densities of nearest-neighbour (Vecchia) fits.
 
-Fits are built from chosen draws in the layout of bayesgeo.posterior.fit (tests/test_loo.py:
+Fits are built from chosen draws in the layout of bayesgeo.fitting.posterior.fit (tests/test_loo.py:
 make_fit, make_site_fit) and then marked as nearest-neighbour fits in their settings, so each
 nearest-neighbour fit has a dense twin with identical draws. References: the exact Gaussian
-leave-one-out (Rasmussen and Williams 2006, eq. 5.12) computed by bayesgeo.loo.gp_loo, explicit
+leave-one-out (Rasmussen and Williams 2006, eq. 5.12) computed by bayesgeo.checks.loo.gp_loo, explicit
 Gaussian conditioning with numpy.linalg.solve, densities from scipy.stats.norm, covariances from
 scikit-learn's Matern kernel, neighbour sets from scipy.spatial.distance.cdist and
 sklearn.metrics.pairwise.haversine_distances.
@@ -21,8 +21,8 @@ import pytest
 from scipy import stats
 from scipy.spatial.distance import cdist
 
-from bayesgeo.loo import fit_arrays, loo_predictive
-from bayesgeo.loo_nn import loo_neighbours, nn_loo, nn_loo_predictive
+from bayesgeo.checks.loo import fit_arrays, loo_predictive
+from bayesgeo.checks.loo_nn import loo_neighbours, nn_loo, nn_loo_predictive
 from test_loo import make_fit, make_site_fit, simulated, simulated_sites
 
 
@@ -45,7 +45,7 @@ def _sk_cov(xy, family, phi, sd2, tau2):
 
     bayesgeo writes the exponential as exp(-d/phi) (scikit-learn Matern nu = 0.5, l = phi) and
     Matérn 3/2 as (1 + d/phi) exp(-d/phi) (nu = 1.5, l = sqrt(3) phi); the diagonal carries the
-    nugget and bayesgeo.likelihood.JITTER = 1e-6 of the partial sill.
+    nugget and bayesgeo.gp.dense.JITTER = 1e-6 of the partial sill.
     """
     from sklearn.gaussian_process.kernels import Matern
 
@@ -62,7 +62,7 @@ def _conditional(k, r, i, others):
 def test_all_other_points_give_the_exact_loo():
     """With m = n - 1 every point is conditioned on all the others, which is the exact Gaussian
     leave-one-out: loo_predictive of the nearest-neighbour fit equals that of its dense twin
-    (bayesgeo.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12) to rounding, under a log
+    (bayesgeo.checks.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12) to rounding, under a log
     transform with a linear trend; and for a few points and draws it equals explicit conditioning
     (numpy.linalg.solve on scikit-learn's Matern 3/2 covariance) with the density from
     scipy.stats.norm, moved to data units by the change of variables log p(v) = log p(y) - log s - log v.
@@ -101,7 +101,7 @@ def test_all_other_points_give_the_exact_loo():
 def test_thirty_neighbours_close_to_exact_on_exponential_field():
     """m = 30 on 300 points of a simulated exponential field (practical range 40 m in a 100 m
     square, nugget 0.2 of the sill), plug-in parameters at the truth, against the exact
-    leave-one-out (bayesgeo.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12). An approximation,
+    leave-one-out (bayesgeo.checks.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12). An approximation,
     not an identity. Exact facts: conditioning on a subset never lowers the variance, so every
     nearest-neighbour sd is at least the exact one (Gaussian conditioning, Rasmussen and Williams
     2006, eq. A.6: Var[y_i | y_A] >= Var[y_i | y_B] for A within B). Tolerances: for the
@@ -180,7 +180,7 @@ def test_compare_two_nn_fits_end_to_end(tmp_path, capsys):
     import arviz as az
 
     from bayesgeo.cli import main
-    from bayesgeo.loo import add_log_likelihood
+    from bayesgeo.checks.loo import add_log_likelihood
 
     ds = simulated(60, seed=44)
     trees = {"exp": as_nn(make_fit(ds, covariance="exponential", ndraw=40, seed=1)),
@@ -233,12 +233,12 @@ def test_compare_shows_progress_of_the_nn_leave_one_out(tmp_path, recording_prog
 def test_several_site_fit_dispatches_per_site_block():
     """A several-site fit whose site blocks s0 and s2 are nearest-neighbour blocks and s1 dense:
     points of s1 get the exact leave-one-out of their site (equal to the loo of the site alone,
-    bayesgeo.hierarchical.site_fit, Rasmussen and Williams 2006, eq. 5.12), points of s0 and s2 the
+    bayesgeo.fitting.hierarchical.site_fit, Rasmussen and Williams 2006, eq. 5.12), points of s0 and s2 the
     conditional on their 30 nearest points of the same site: brute force with numpy.linalg.solve on
     scikit-learn's Matern 3/2 covariance, density from scipy.stats.norm (sites are independent
     given the parameters, so other sites' points never enter)."""
-    from bayesgeo.hierarchical import site_fit
-    from bayesgeo.loo import site_fit_arrays
+    from bayesgeo.fitting.hierarchical import site_fit
+    from bayesgeo.checks.loo import site_fit_arrays
 
     ds = simulated_sites((40, 14, 36), seed=45)
     tree = make_site_fit(ds, pooling="independent", ndraw=3, spread=0.2)

@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.looks: chains that continue while R-hat or ESS is too poor.
+"""Tests of bayesgeo.fitting.looks: chains that continue while R-hat or ESS is too poor.
 
 Check values come from outside the project: nutpie's per-chain random streams (the first k draws of
 a longer run are the draws of a run of k, checked here by running nutpie itself), ArviZ's R-hat and
@@ -15,13 +15,13 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.looks import convergence_look, default_max_draws
-from bayesgeo.model import build_model
-from bayesgeo.posterior import fit
-from bayesgeo.sampling import chain_lengths, compile_model, first_draws, sample
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.fitting.looks import convergence_look, default_max_draws
+from bayesgeo.fitting.model import build_model
+from bayesgeo.fitting.posterior import fit
+from bayesgeo.fitting.sampling import chain_lengths, compile_model, first_draws, sample
+from bayesgeo.common.validate import InputError
 
 
 def _data(n=30, seed=21):
@@ -153,14 +153,14 @@ def test_fit_continues_short_chains_and_records_the_looks():
 
 def test_divergent_default_fit_is_sampled_again_at_0_9(monkeypatch):
     """A fit left at the default target acceptance whose kept draws hold divergent transitions is
-    sampled once more at 0.9 with the same seed (bayesgeo.looks.rerun_if_divergent); the first run is
+    sampled once more at 0.9 with the same seed (bayesgeo.fitting.looks.rerun_if_divergent); the first run is
     recorded and the summary says so. With no divergences, or with a target acceptance the user chose,
     there is no rerun. (Divergences are forced here by a stand-in sampler so that the decision rule
     itself is tested; the effect of 0.9 on real fits is measured in bench/bench_convergence.py.)"""
     import xarray as xr
 
-    import bayesgeo.posterior as posterior
-    from bayesgeo.looks import rerun_if_divergent
+    import bayesgeo.fitting.posterior as posterior
+    from bayesgeo.fitting.looks import rerun_if_divergent
 
     calls = []
 
@@ -196,7 +196,7 @@ def test_divergent_default_fit_is_sampled_again_at_0_9(monkeypatch):
         tree["posterior"] = xr.DataTree(post)
         return tree
 
-    import bayesgeo.sampling as sampling
+    import bayesgeo.fitting.sampling as sampling
 
     monkeypatch.setattr(sampling, "sample", fake_sample)
     monkeypatch.setattr(sampling, "compile_model", lambda model: model)

@@ -7,7 +7,7 @@ import importlib.metadata as md
 import json
 import re
 
-from bayesgeo.manifest import file_table, new_manifest, sha256_file, utc_now, versions
+from bayesgeo.study.manifest import file_table, new_manifest, sha256_file, utc_now, versions
 
 
 def test_sha256_published_vectors(tmp_path):

@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.model: the log-likelihood, the trend coefficients' conditional posterior, the
+"""Tests of bayesgeo.fitting.model: the log-likelihood, the trend coefficients' conditional posterior, the
 priors as PyMC sees them, standardisation and input checks. No sampling here (see test_sampling)."""
 
 from __future__ import annotations
@@ -8,12 +8,12 @@ import pytest
 from scipy import stats
 from scipy.spatial.distance import cdist
 
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.likelihood import JITTER
-from bayesgeo.model import FitSpec, build_model, model_inputs
-from bayesgeo.priors import pc_range_rate, pc_sd_rate
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.gp.dense import JITTER
+from bayesgeo.fitting.model import FitSpec, build_model, model_inputs
+from bayesgeo.fitting.priors import pc_range_rate, pc_sd_rate
+from bayesgeo.common.validate import InputError
 
 
 def _data(n=35, seed=4, positive=False, site=None):
@@ -70,7 +70,7 @@ def test_loglik_equals_scipy_multivariate_normal_in_data_units(model_and_fns):
     z = ds["value"].values
     xy = np.column_stack([ds["x"].values, ds["y"].values])
     d = cdist(xy, xy)
-    from bayesgeo.trend import design_matrix
+    from bayesgeo.explore.trend import design_matrix
 
     x = design_matrix(ds, 1).values
     s, dmax = spec.value_sd, spec.distance_scale
@@ -93,7 +93,7 @@ def test_beta_conditional_posterior_is_the_gls_normal(model_and_fns):
     posterior N(m, V), V = (X' K^-1 X + I / b^2)^-1, m = V X' K^-1 y (Gelman et al., BDA3, sec. 14.2;
     Rasmussen and Williams 2006, sec. 2.7; published formula). Checked exactly at random coefficients."""
     ds, model, spec, _, logp = model_and_fns
-    from bayesgeo.trend import design_matrix
+    from bayesgeo.explore.trend import design_matrix
 
     x = design_matrix(ds, 1).values
     y = (ds["value"].values - spec.value_mean) / spec.value_sd
@@ -301,7 +301,7 @@ def test_no_nugget_model_keeps_log_sd_and_log_range():
 
 @pytest.mark.slow
 def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
-    """The posterior of the package's model, as ``bayesgeo.posterior.fit`` computes it (sampled in the
+    """The posterior of the package's model, as ``bayesgeo.fitting.posterior.fit`` computes it (sampled in the
     variance-split coordinates with the trend integrated out, the coefficients drawn afterwards from
     their exact conditional), equals, within Monte
     Carlo error, the posterior of an independent implementation of the model of docs/model.md:
@@ -318,8 +318,8 @@ def test_posterior_equals_pymc_gp_marginal_with_the_same_priors():
     import pymc as pm
     import xarray as xr
 
-    from bayesgeo.posterior import fit
-    from bayesgeo.sampling import sample
+    from bayesgeo.fitting.posterior import fit
+    from bayesgeo.fitting.sampling import sample
 
     rng = np.random.default_rng(21)
     xy = rng.random((100, 2)) * 100.0
@@ -373,8 +373,8 @@ def test_trend_integrated_out_is_the_sampled_model_by_bayes_rule(covariance, nu,
     numpy.linalg.inv here, the conditional density from scipy.stats.multivariate_normal; K is the
     package's covariance matrix, itself checked against scipy in
     test_loglik_equals_scipy_multivariate_normal_in_data_units."""
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import covariance_matrix
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.gp.dense import covariance_matrix
 
     ds = _data(n=30, seed=9)
     kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=1)

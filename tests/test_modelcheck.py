@@ -1,7 +1,7 @@
-"""Tests of bayesgeo.modelcheck: posterior predictive semivariogram check, LOO comparison, LOO-PIT.
+"""Tests of bayesgeo.checks.modelcheck: posterior predictive semivariogram check, LOO comparison, LOO-PIT.
 
 Fast tests use fits built from chosen draws (tests/test_loo.py: make_fit, layout of
-bayesgeo.posterior.fit); the slow ones sample real posteriors with bayesgeo.posterior.fit.
+bayesgeo.fitting.posterior.fit); the slow ones sample real posteriors with bayesgeo.fitting.posterior.fit.
 """
 
 from __future__ import annotations
@@ -14,12 +14,12 @@ import pytest
 from scipy import optimize, stats
 from scipy.spatial.distance import pdist
 
-from bayesgeo.data import points_dataset
-from bayesgeo.explore import lag_bins, semivariogram
-from bayesgeo.loo import add_log_likelihood, fit_arrays, loo_predictive
-from bayesgeo.modelcheck import compare_fits, fit_loo, loo_pit
-from bayesgeo.ppcheck import variogram_check
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.explore.variogram import lag_bins, semivariogram
+from bayesgeo.checks.loo import add_log_likelihood, fit_arrays, loo_predictive
+from bayesgeo.checks.modelcheck import compare_fits, fit_loo, loo_pit
+from bayesgeo.checks.ppcheck import variogram_check
+from bayesgeo.common.validate import InputError
 from test_loo import make_fit, simulated
 
 
@@ -38,7 +38,7 @@ def _matern32_gamma(h, practical_range, partial_sill, nugget):
 
 def test_observed_semivariogram_is_matheron_on_ols_residuals():
     """The observed semivariogram equals Matheron's estimator sum (r_i - r_j)^2 / (2 N(h)) of the OLS
-    residuals (numpy lstsq) over pairs binned by distance (scipy pdist), and bayesgeo.explore's
+    residuals (numpy lstsq) over pairs binned by distance (scipy pdist), and bayesgeo.explore.variogram's
     semivariogram of the same residuals with the same bins."""
     ds = simulated(45, seed=11)
     tree = make_fit(ds, trend=1, ndraw=3)
@@ -95,7 +95,7 @@ def test_replicates_reproduce_quadratic_form_expectation():
     tree = make_fit(ds, ndraw=10, spread=0.0)
     vc = variogram_check(tree, replicates=1500, bins=5, seed=3)
     fa = fit_arrays(tree)
-    from bayesgeo.loo import draw_covariances
+    from bayesgeo.checks.loo import draw_covariances
 
     _, mu, k = next(draw_covariances(fa, [0]))
     s, m0 = fa.spec.value_sd, fa.spec.value_mean
@@ -221,10 +221,10 @@ def test_compare_refuses_different_data_and_orders_by_elpd():
 def test_compare_ranks_true_smoothness_first_plug_in():
     """On a smooth field (Matérn 5/2, tiny nugget) the Matérn 5/2 fit beats the exponential one by a
     clear elpd margin (> 2 dse): plug-in posteriors at each family's maximum-likelihood estimate
-    (bayesgeo.quickfit.fit_ml), so no sampling; the smoother family predicts held-out points of a
+    (bayesgeo.explore.quickfit.fit_ml), so no sampling; the smoother family predicts held-out points of a
     smooth field better (Stein 1999, Interpolation of Spatial Data, ch. 3: misspecified smoothness
     hurts prediction)."""
-    from bayesgeo.quickfit import fit_ml
+    from bayesgeo.explore.quickfit import fit_ml
 
     ds = simulated(90, seed=20, covariance="matern52", practical_range=60.0, partial_sill=1.0, nugget=0.002)
     fits = {}
@@ -240,9 +240,9 @@ def test_compare_ranks_true_smoothness_first_plug_in():
 
 @pytest.fixture(scope="module")
 def sampled():
-    """Real posteriors (bayesgeo.posterior.fit, nutpie, 2 chains x 300 draws) of a smooth simulated
+    """Real posteriors (bayesgeo.fitting.posterior.fit, nutpie, 2 chains x 300 draws) of a smooth simulated
     field for two families."""
-    from bayesgeo.posterior import fit
+    from bayesgeo.fitting.posterior import fit
 
     truth = {"practical_range": 60.0, "partial_sill": 1.0, "nugget": 0.01, "mean": 2.0}
     ds = simulated(80, seed=21, covariance="matern52", **truth)
@@ -285,7 +285,7 @@ def test_sampled_model_band_contains_the_maximum_likelihood_semivariogram(sample
 @pytest.mark.slow
 def test_sampled_compare_ranks_true_family_first(sampled):
     """With real posteriors, PSIS-LOO ranks the true (Matérn 5/2) family above the exponential one on a
-    smooth field, and fit_loo runs on bayesgeo.posterior.fit output."""
+    smooth field, and fit_loo runs on bayesgeo.fitting.posterior.fit output."""
     _, _, trees = sampled
     res = compare_fits(trees)
     assert str(res["fit"].values[0]) == "matern52"
@@ -297,7 +297,7 @@ def test_dkw_band_halfwidth():
     constant: eps = sqrt(log(2 / alpha) / (2 n)); at n = 100, alpha = 0.05 that is 0.1358 (computed by
     hand), and the ECDF of n = 400 uniform values (numpy) stays inside it in at least 93 of 100 seeded
     repetitions (the band covers at least 95%; 93 leaves room for Monte Carlo scatter)."""
-    from bayesgeo.check_figures import dkw_halfwidth
+    from bayesgeo.checks.figures import dkw_halfwidth
 
     assert dkw_halfwidth(100) == pytest.approx(0.13581, abs=1e-5)
     rng = np.random.default_rng(0)
@@ -318,9 +318,9 @@ def test_variogram_check_cli_site_option(tmp_path, capsys):
     import pandas as pd
 
     from bayesgeo.cli import main
-    from bayesgeo.layout import vgcheck_names as output_names
+    from bayesgeo.common.layout import vgcheck_names as output_names
     assert output_names(None) == ("variogram_check.png", "variogram_check.csv")
-    png, csv = output_names("rail siding/2")  # an unsafe label: safe part + hash (bayesgeo.sitenames)
+    png, csv = output_names("rail siding/2")  # an unsafe label: safe part + hash (bayesgeo.common.sitenames)
     assert png.startswith("variogram_check_rail_siding_2+") and png.endswith(".png") and csv == png[:-4] + ".csv"
     assert output_names("rail_siding_2") == ("variogram_check_rail_siding_2.png", "variogram_check_rail_siding_2.csv")
     tree = make_fit(simulated(30, seed=13), ndraw=6)

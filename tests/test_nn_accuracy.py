@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.nn_accuracy: pseudo-true values and information of the nearest-neighbour likelihood."""
+"""Tests of bayesgeo.gp.nn_accuracy: pseudo-true values and information of the nearest-neighbour likelihood."""
 
 from __future__ import annotations
 
@@ -7,9 +7,9 @@ import pytest
 from scipy import stats
 from sklearn.gaussian_process.kernels import Matern
 
-from bayesgeo.nn_accuracy import (approximation_check, expected_nn_loglik, nn_blocks, nn_information,
+from bayesgeo.gp.nn_accuracy import (approximation_check, expected_nn_loglik, nn_blocks, nn_information,
                                   nn_pseudo_true, window)
-from bayesgeo.vecchia import maximin_order, nearest_previous, nn_loglik_and_grad
+from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik_and_grad
 
 
 def _points(n, seed):
@@ -21,7 +21,7 @@ def _sk_cov(xy, scale, psill, nugget, nu=1.5):
     scale phi is sklearn's length_scale / sqrt(2 nu) (the 3/2 kernel (1 + d/phi) exp(-d/phi))."""
     import math
 
-    from bayesgeo.likelihood import JITTER
+    from bayesgeo.gp.dense import JITTER
 
     k = psill * Matern(length_scale=math.sqrt(2 * nu) * scale, nu=nu)(xy)
     k[np.diag_indices_from(k)] += nugget + JITTER * psill
@@ -209,7 +209,7 @@ def test_cli_fit_and_check_report_the_approximation_check(tmp_path, capsys):
     import xarray as xr
 
     from bayesgeo.cli import main
-    from bayesgeo.demo import simulate_field
+    from bayesgeo.data.demo import simulate_field
 
     rng = np.random.default_rng(11)
     xy = 500.0 * rng.random((50, 2))

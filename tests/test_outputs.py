@@ -18,10 +18,10 @@ from pathlib import Path
 
 import pytest
 
-from bayesgeo import outputs
-from bayesgeo.io import write_json, write_text
-from bayesgeo.outputs import MARKER, add_to_folder, check_addable, claim, new_files, new_folder, read_marker
-from bayesgeo.validate import InputError
+from bayesgeo.common import outputs
+from bayesgeo.common.io import write_json, write_text
+from bayesgeo.common.outputs import MARKER, add_to_folder, check_addable, claim, new_files, new_folder, read_marker
+from bayesgeo.common.validate import InputError
 
 
 @pytest.fixture(autouse=True)
@@ -165,7 +165,7 @@ def test_symlink_is_never_replaced(tmp_path):
 
 _HOLDER = textwrap.dedent("""
     import sys, time
-    from bayesgeo.outputs import new_folder
+    from bayesgeo.common.outputs import new_folder
     with new_folder(sys.argv[1]) as tmp:
         (tmp / "half").write_text("half")
         print("holding", flush=True)
@@ -203,8 +203,8 @@ def test_racing_runs_one_wins(tmp_path):
     """Two processes started together for one output: exactly one writes it, the other is refused (behaviour check)."""
     code = textwrap.dedent("""
         import sys, time
-        from bayesgeo.outputs import new_folder
-        from bayesgeo.validate import InputError
+        from bayesgeo.common.outputs import new_folder
+        from bayesgeo.common.validate import InputError
         try:
             with new_folder(sys.argv[1]) as tmp:
                 time.sleep(1.5)

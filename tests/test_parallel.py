@@ -11,8 +11,8 @@ import sys
 import numpy as np
 import pytest
 
-from bayesgeo.parallel import WorkUnit, make_units, run_units
-from bayesgeo.validate import InputError
+from bayesgeo.calibration.parallel import WorkUnit, make_units, run_units
+from bayesgeo.common.validate import InputError
 
 
 def _work(unit: WorkUnit):

@@ -9,9 +9,9 @@ import pytest
 import xarray as xr
 
 from bayesgeo.cli import _build_parser, main
-from bayesgeo.pipeline import run_study, stage_commands
-from bayesgeo.study import read_study
-from bayesgeo.validate import InputError
+from bayesgeo.study.runner import run_study, stage_commands
+from bayesgeo.study.settings import read_study
+from bayesgeo.common.validate import InputError
 
 from _study_helpers import write_tiny_study
 
@@ -40,7 +40,7 @@ def test_stage_calls_are_the_recorded_commands(tmp_path):
     """A study runs every stage through a stage function (bayesgeo.stages); the command the
     manifest records for each (stage_commands) parses (argparse is the reference) to the same settings as the
     keyword arguments of the call, so re-running the recorded command redoes the stage."""
-    from bayesgeo.pipeline import stage_calls
+    from bayesgeo.study.runner import stage_calls
     from bayesgeo.stages.check import check_fit
     from bayesgeo.stages.compare import compare_folders
     from bayesgeo.stages.explore import explore_folder
@@ -125,7 +125,7 @@ def test_failed_check_control_flow(tmp_path, monkeypatch):
     """With the stage commands replaced by stand-ins (a fit and check that report non-convergence, exit 3 as
     documented for `bayesgeo check`), the run stops: exit 3, later stages and families skipped, the report
     and manifest still written, the report marked NOT CONVERGED. No sampling: the real path is the slow test below."""
-    import bayesgeo.pipeline as pl
+    import bayesgeo.study.runner as pl
 
     calls = []
 
@@ -156,7 +156,7 @@ def test_failed_check_control_flow(tmp_path, monkeypatch):
 
 def test_stage_error_is_recorded(tmp_path, monkeypatch):
     """An unexpected error in a later stage is recorded (exit 1, verdict failed, error text) and the run goes on."""
-    import bayesgeo.pipeline as pl
+    import bayesgeo.study.runner as pl
 
     def fake(argv):
         if argv[0] == "map":
@@ -224,7 +224,7 @@ def test_site_stage_commands(tmp_path):
     --site COL (fit with the study's pooling), one check of the whole fit, then variogram-check and map with
     --site NAME per site; each command is accepted by its own parser (argparse is the reference) and an area
     goes to the site whose sampled bounding box holds its centre."""
-    from bayesgeo.pipeline import site_areas, study_sites
+    from bayesgeo.study.runner import site_areas, study_sites
 
     from _study_helpers import write_sites_study
 
@@ -272,7 +272,7 @@ def test_site_run_control_flow(tmp_path, monkeypatch):
     """With stand-in stage commands (no sampling), a several-site run calls the stages in order, records one
     verdict per site stage, and a failed convergence check stops it with exit 3 (as for one site); the report
     is still written with the several-site section and marked NOT CONVERGED."""
-    import bayesgeo.pipeline as pl
+    import bayesgeo.study.runner as pl
 
     from _study_helpers import write_sites_study
 

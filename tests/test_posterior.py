@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.posterior: recovery of known parameters, derived quantities, summary table,
+"""Tests of bayesgeo.fitting.posterior: recovery of known parameters, derived quantities, summary table,
 saving and loading a fit. One fit to simulated data is shared by the whole module."""
 
 from __future__ import annotations
@@ -9,11 +9,11 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.fitted import Fit
-from bayesgeo.posterior import fit, fit_report, fit_spec, save_fit, summary_table, with_diagnostics
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.fitting.fitted import Fit
+from bayesgeo.fitting.posterior import fit, fit_report, fit_spec, save_fit, summary_table, with_diagnostics
+from bayesgeo.common.validate import InputError
 
 #: Exponential field whose practical range (900 m) is three times the side of the sampled square
 #: (300 m): the regime of fixed-domain asymptotics, where Zhang (2004) applies.
@@ -22,7 +22,7 @@ TRUTH = {"practical_range": 900.0, "partial_sill": 1.0, "nugget": 0.05}
 
 @pytest.fixture(scope="module")
 def simulated():
-    """n = 80 points in a 300 m square, exponential field plus nugget (bayesgeo.demo.simulate_field)."""
+    """n = 80 points in a 300 m square, exponential field plus nugget (bayesgeo.data.demo.simulate_field)."""
     rng = np.random.default_rng(2026)
     xy = np.column_stack([431_000 + 300 * rng.random(80), 5_622_000 + 300 * rng.random(80)])
     z = simulate_field(xy, covariance="exponential", rng=rng, mean=5.0, **TRUTH)
@@ -153,8 +153,8 @@ def test_save_and_load_round_trip(tree, tmp_path):
 
 def test_save_refuses_existing_and_is_atomic(tree, tmp_path, monkeypatch):
     """An existing folder is refused without overwrite; a crash while writing leaves no folder and no
-    temporary debris (atomic rename, bayesgeo.outputs.new_folder)."""
-    import bayesgeo.posterior as post_mod
+    temporary debris (atomic rename, bayesgeo.common.outputs.new_folder)."""
+    import bayesgeo.fitting.posterior as post_mod
 
     save_fit(tree, tmp_path / "a")
     with pytest.raises(InputError, match="already exists"):
@@ -196,7 +196,7 @@ def test_load_refuses_a_missing_fit(tmp_path):
 def test_settings_decoded_in_one_place(settings, pattern):
     """fit_settings is the one place the settings attribute is parsed; fit_spec builds on it, and every
     failure is one InputError line naming the source (JSON syntax per RFC 8259: a cut string is invalid)."""
-    from bayesgeo.posterior import fit_settings
+    from bayesgeo.fitting.posterior import fit_settings
 
     tree = xr.DataTree()
     if settings is not None:

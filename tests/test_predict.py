@@ -1,4 +1,4 @@
-"""Tests of Bayesian kriging (bayesgeo.predict, bayesgeo._kriging) against outside references."""
+"""Tests of Bayesian kriging (bayesgeo.predict.prediction, bayesgeo.gp.kriging) against outside references."""
 
 from __future__ import annotations
 
@@ -9,11 +9,11 @@ import pytest
 import xarray as xr
 from scipy import integrate, optimize, stats
 
-from bayesgeo import predict as P
-from bayesgeo._kriging import block_moments, conditional_simulations, draw_moments, kriging_moments, make_basis
-from bayesgeo.covariance import get_covariance
-from bayesgeo.demo import simulate_field
-from bayesgeo.targets import grid_targets
+from bayesgeo.predict import prediction as P
+from bayesgeo.gp.kriging import block_moments, conditional_simulations, draw_moments, kriging_moments, make_basis
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.data.targets import grid_targets
 
 RNG = np.random.default_rng(20261202)
 
@@ -49,7 +49,7 @@ def test_matches_scikit_learn_gaussian_process(family, nu, include_nugget):
     from sklearn.gaussian_process import GaussianProcessRegressor
     from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 
-    from bayesgeo._kriging import JITTER
+    from bayesgeo.gp.kriging import JITTER
 
     rng = np.random.default_rng(5)
     xy, xy_new = _sites(60, rng), _sites(25, rng)
@@ -111,7 +111,7 @@ def test_mixture_quantiles_invert_the_mixture_cdf():
 
 
 def test_ninety_percent_intervals_cover_about_ninety_percent():
-    """On fields simulated from known parameters (bayesgeo.demo.simulate_field, Matérn 3/2 with
+    """On fields simulated from known parameters (bayesgeo.data.demo.simulate_field, Matérn 3/2 with
     nugget), 90% predictive intervals of a new measurement at held-out points, predicted with the
     true parameters as a single draw, cover about 90%. 12 independent fields x 25 held-out points;
     bound: binomial 0.1% / 99.9% quantiles for 300 trials (scipy.stats.binom), which is generous
@@ -188,7 +188,7 @@ def test_results_do_not_depend_on_chunking_or_scheduler():
 
 
 def test_posterior_parameters_converts_units_and_thins_evenly():
-    """Unit conversion follows the model's standardisation (bayesgeo.model docstring): range times
+    """Unit conversion follows the model's standardisation (bayesgeo.fitting.model docstring): range times
     the distance scale, sd times value_sd, intercept shifted by value_mean; thinning keeps the first
     and last of the chains concatenated."""
     from types import SimpleNamespace
@@ -218,7 +218,7 @@ def test_joint_covariance_matches_scikit_learn_and_simulations_follow_it():
     from sklearn.gaussian_process import GaussianProcessRegressor
     from sklearn.gaussian_process.kernels import ConstantKernel, Matern
 
-    from bayesgeo._kriging import JITTER
+    from bayesgeo.gp.kriging import JITTER
 
     rng = np.random.default_rng(8)
     xy, xy_new = _sites(40, rng), _sites(6, rng)
@@ -235,7 +235,7 @@ def test_joint_covariance_matches_scikit_learn_and_simulations_follow_it():
                        beta=[0.0])
     targets = xr.Dataset(coords={"x": ("target", xy_new[:, 0]), "y": ("target", xy_new[:, 1])})
     targets["inside"] = ("target", np.ones(6, bool))
-    targets.attrs["kind"] = "points"  # the layout of bayesgeo.targets.read_target_points
+    targets.attrs["kind"] = "points"  # the layout of bayesgeo.data.targets.read_target_points
     sims = P.simulate_targets(basis, targets, n_sim=20000, seed=3, include_nugget=False).values[0]
     se = np.sqrt(np.diag(cov) / 20000)
     assert np.all(np.abs(sims.mean(axis=0) - mean) < 4.5 * se)
@@ -259,8 +259,8 @@ def test_nn_basis_equals_exact_kriging_with_all_neighbours():
     """Nearest-neighbour kriging with every data point as a neighbour is simple kriging
     (Rasmussen and Williams 2006, eqs. 2.23-2.24): the nn basis of a large-data fit reproduces
     the exact basis; joint quantities are refused on it with a one-line InputError."""
-    from bayesgeo._kriging import block_moments, draw_moments, make_basis
-    from bayesgeo.validate import InputError
+    from bayesgeo.gp.kriging import block_moments, draw_moments, make_basis
+    from bayesgeo.common.validate import InputError
 
     rng = np.random.default_rng(4)
     xy = rng.random((40, 2)) * 100.0

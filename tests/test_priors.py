@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.priors: the PC priors, their defaults and the prior predictive semivariogram."""
+"""Tests of bayesgeo.fitting.priors: the PC priors, their defaults and the prior predictive semivariogram."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from bayesgeo.priors import (
+from bayesgeo.fitting.priors import (
     Priors,
     default_priors,
     pc_range_logpdf,
@@ -20,7 +20,7 @@ from bayesgeo.priors import (
     prior_semivariogram,
     resolve_priors,
 )
-from bayesgeo.validate import InputError
+from bayesgeo.common.validate import InputError
 
 
 @pytest.mark.parametrize("r0, a1", [(50.0, 0.05), (3.0, 0.5), (1200.0, 0.01)])

@@ -9,16 +9,16 @@ import pytest
 import xarray as xr
 from scipy import optimize, stats
 
-from bayesgeo import quickfit
-from bayesgeo.covariance import get_covariance
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.explore import semivariogram
-from bayesgeo.geometry import distance_matrix
-from bayesgeo.likelihood import covariance_matrix, loglik_numpy
-from bayesgeo.quickfit import fit_ml, fit_wls, quick_fits
-from bayesgeo.trend import design_matrix
-from bayesgeo.validate import InputError
+from bayesgeo.explore import quickfit
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.explore.variogram import semivariogram
+from bayesgeo.common.geometry import distance_matrix
+from bayesgeo.gp.dense import covariance_matrix, loglik_numpy
+from bayesgeo.explore.quickfit import fit_ml, fit_wls, quick_fits
+from bayesgeo.explore.trend import design_matrix
+from bayesgeo.common.validate import InputError
 
 # Truth of the simulated field: exponential, practical range 1/3 of a 1,000 m square, nugget 0.2,
 # total sill 1 (partial sill 0.8), mean 5; 350 random points on an invented local grid.
@@ -287,7 +287,7 @@ def test_ml_on_lonlat_matches_a_local_planar_projection():
     equirectangular projection (x = R cos(lat0) dlon, y = R dlat; common practice for small
     extents) to far better than 1e-3, so ML fits on lon/lat and on the projected km
     coordinates agree within 0.5 % and report the practical range in km."""
-    from bayesgeo.geometry import EARTH_RADIUS_KM
+    from bayesgeo.common.geometry import EARTH_RADIUS_KM
 
     rng = np.random.default_rng(4)
     lon = 10.0 + 0.05 * rng.random(90)

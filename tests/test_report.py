@@ -12,8 +12,8 @@ import subprocess
 import numpy as np
 import pytest
 
-from bayesgeo.pipeline import run_study
-from bayesgeo.report import build_report
+from bayesgeo.study.runner import run_study
+from bayesgeo.report.writer import build_report
 
 from _study_helpers import write_tiny_study
 
@@ -85,16 +85,16 @@ def test_log_prior_and_likelihood_against_scipy(run):
     """The per-draw log prior and log likelihood fed to the sensitivity analysis: PC range prior as
     InverseGamma(1, lambda1) and sd priors as exponentials (Fuglstad et al. 2019; scipy.stats.invgamma/expon),
     the likelihood as scipy.stats.multivariate_normal on the log values (covariance with the model's
-    documented diagonal jitter, bayesgeo.likelihood.JITTER)."""
+    documented diagonal jitter, bayesgeo.gp.dense.JITTER)."""
     from scipy import stats
 
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.geometry import distance_matrix
-    from bayesgeo.likelihood import JITTER
-    from bayesgeo.fitted import Fit
-    from bayesgeo.posterior import fit_spec
-    from bayesgeo.priors import pc_range_rate, pc_sd_rate
-    from bayesgeo.report_priors import _log_lik, _log_prior
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.common.geometry import distance_matrix
+    from bayesgeo.gp.dense import JITTER
+    from bayesgeo.fitting.fitted import Fit
+    from bayesgeo.fitting.posterior import fit_spec
+    from bayesgeo.fitting.priors import pc_range_rate, pc_sd_rate
+    from bayesgeo.report.priors import _log_lik, _log_prior
 
     root, _ = run
     tree = Fit.read(root / "fits" / "exponential").tree
@@ -143,7 +143,7 @@ def test_sensitivity_table_on_conjugate_normal():
     Bürkner and Vehtari 2024, Statistics and Computing 34: a weak prior gives prior sensitivity < 0.05 and
     likelihood sensitivity > 0.05; a prior much stronger than the data the reverse; a prior as strong as the
     data and far from it both above, "prior-data conflict"), with exact conjugate-normal posteriors."""
-    from bayesgeo.report_priors import sensitivity_table
+    from bayesgeo.report.priors import sensitivity_table
 
     weak = sensitivity_table(*_normal_posterior(0.0, 100.0, 0.3, 50), ["mu"])[0]
     assert weak["prior"] < 0.05 < weak["likelihood"] and weak["diagnosis"] == "✓"
@@ -162,7 +162,7 @@ def test_range_prior_tail_makes_a_wide_range_sensitive():
     Exact draws; log likelihood chosen so that likelihood x prior is the stated normal."""
     import xarray as xr
 
-    from bayesgeo.report_priors import sensitivity_table
+    from bayesgeo.report.priors import sensitivity_table
 
     out = {}
     for s in (0.05, 0.5):

@@ -1,15 +1,15 @@
-"""Tests of bayesgeo.sampling: reproducibility with a seed, option checks, both samplers."""
+"""Tests of bayesgeo.fitting.sampling: reproducibility with a seed, option checks, both samplers."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.model import build_model
-from bayesgeo.sampling import compile_model, sample
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.fitting.model import build_model
+from bayesgeo.fitting.sampling import compile_model, sample
+from bayesgeo.common.validate import InputError
 
 
 @pytest.fixture(scope="module")

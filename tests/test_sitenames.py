@@ -6,10 +6,10 @@ import re
 
 import pytest
 
-from bayesgeo.data import read_points
-from bayesgeo.layout import prediction_names, site_part, vgcheck_names
-from bayesgeo.sitenames import site_file_name
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import read_points
+from bayesgeo.common.layout import prediction_names, site_part, vgcheck_names
+from bayesgeo.common.sitenames import site_file_name
+from bayesgeo.common.validate import InputError
 
 # Characters portable in file names on Windows, macOS and Linux (the POSIX portable file name
 # character set, IEEE Std 1003.1 sec. 3.282, plus '+'; from memory).
@@ -26,7 +26,7 @@ def test_labels_that_collided_get_distinct_safe_names():
         assert _PORTABLE.fullmatch(n) and not n.startswith(".") and not n.endswith(".") and "/" not in n
     assert site_file_name("a_b") == "a_b" and site_file_name("north-yard") == "north-yard"
     assert site_file_name("a/b").startswith("a_b+")
-    # every stage, the pipeline and the report name per-site files through bayesgeo.layout
+    # every stage, the pipeline and the report name per-site files through bayesgeo.common.layout
     assert site_part("a/b") == site_file_name("a/b")
     assert prediction_names("a/b") == (f"predictions_{site_file_name('a/b')}.nc", f"maps_{site_file_name('a/b')}")
     assert vgcheck_names("a/b") == tuple(f"variogram_check_{site_file_name('a/b')}.{e}" for e in ("png", "csv"))

@@ -2,7 +2,7 @@
 pooling), check, map --site for every site, compare.
 
 Three small simulated sites (22, 18 and 16 points; Matérn 3/2 fields with a nugget, log-normal
-values in mg/kg, bayesgeo.demo.simulate_field), sampled with 2 chains x 150 draws (tune 150), so the
+values in mg/kg, bayesgeo.data.demo.simulate_field), sampled with 2 chains x 150 draws (tune 150), so the
 whole module is one short real run of every command; the numbers themselves are checked elsewhere
 (tests/test_loo.py, tests/test_cli_check.py, tests/test_cli_compare.py, tests/test_hierarchical.py).
 Here the checks are that the commands chain, exit as documented and write what they promise.
@@ -21,7 +21,7 @@ import pytest
 import xarray as xr
 
 from bayesgeo.cli import main
-from bayesgeo.demo import simulate_field
+from bayesgeo.data.demo import simulate_field
 
 SITES = {"upper-field": 22, "spoil-heap": 18, "ditch-bank": 16}
 THRESHOLD = 25.0  # mg/kg, an invented level for the exceedance maps

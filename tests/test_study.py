@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from bayesgeo.study import SCHEMA, parse_study, read_study, study_line
-from bayesgeo.validate import InputError
+from bayesgeo.study.settings import SCHEMA, parse_study, read_study, study_line
+from bayesgeo.common.validate import InputError
 
 MINIMAL = """\
 title = "t"
@@ -137,7 +137,7 @@ def test_study_line_headers():
 def test_approx_reaches_the_fit_command(study_dir):
     """[model] approx / neighbours become the fit stage's --approx / --neighbours; neighbours with
     the dense likelihood is refused, naming the key."""
-    from bayesgeo.pipeline import stage_commands
+    from bayesgeo.study.runner import stage_commands
 
     st = _parse(MINIMAL + 'approx = "nn"\nneighbours = 25\n', study_dir)
     fit = stage_commands(st, study_dir / "run")["fit:matern32"]
@@ -164,7 +164,7 @@ def test_several_site_pooling_defaults_and_errors(study_dir):
         _parse(MINIMAL + 'pooling = "complete"\n', study_dir)
     with pytest.raises(InputError, match=r"line 11: \[model\] pooling: pooling 'single' fits one site"):
         _parse(SITES + 'pooling = "single"\n', study_dir)
-    from bayesgeo.pipeline import stage_commands
+    from bayesgeo.study.runner import stage_commands
 
     st = _parse(SITES + 'approx = "nn"\nneighbours = 15\n', study_dir)
     fit = stage_commands(st, study_dir / "run", sites=["A", "B"])["fit:matern32"]
@@ -217,7 +217,7 @@ def test_areas_list_and_table(study_dir):
 ])
 def test_numeric_settings_bounded(study_dir, extra, table, key, line, msg):
     """Every number in a study file is checked where the file is read, with the bounds the command
-    line uses (bayesgeo.validate.INT_LIMITS/FLOAT_LIMITS), so none fails mid-run: huge integers (which
+    line uses (bayesgeo.common.validate.INT_LIMITS/FLOAT_LIMITS), so none fails mid-run: huge integers (which
     TOML 1.0 limits to 64 bits but Python's tomllib accepts), negatives, zero, and the TOML float
     values nan and inf (toml.io v1.0.0, "Float"). The message names file, line, table and key."""
     text = MINIMAL + "\n" + extra

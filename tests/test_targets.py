@@ -1,4 +1,4 @@
-"""Tests of prediction targets (bayesgeo.targets): grids, point files, hull mask, areas."""
+"""Tests of prediction targets (bayesgeo.data.targets): grids, point files, hull mask, areas."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy.spatial import ConvexHull
 
-from bayesgeo import targets as tg
-from bayesgeo.validate import InputError
+from bayesgeo.data import targets as tg
+from bayesgeo.common.validate import InputError
 
 RNG = np.random.default_rng(7)
 
@@ -107,7 +107,7 @@ def test_area_option_rectangle_or_file(tmp_path):
 
 
 def _basis(xy, metric="euclidean"):
-    from bayesgeo._kriging import make_basis
+    from bayesgeo.gp.kriging import make_basis
 
     n = len(xy)
     z = np.sin(np.asarray(xy)[:, 0] / 50.0)
@@ -120,7 +120,7 @@ def test_nearest_data_distance_and_extent_match_brute_force():
     scipy.spatial.distance.cdist (planar) and of a haversine matrix (great-circle, across 180 degrees)."""
     from scipy.spatial.distance import cdist
 
-    from bayesgeo.geometry import cross_distance
+    from bayesgeo.common.geometry import cross_distance
 
     rng = np.random.default_rng(11)
     xy = rng.uniform(0, 100, (60, 2))
@@ -137,7 +137,7 @@ def test_nearest_data_distance_and_extent_match_brute_force():
 def test_area_far_from_the_data_is_refused_and_near_area_accepted():
     """An area 4,000 units from data spanning 100 is refused naming both distances; an area over the data
     is averaged (behaviour check)."""
-    from bayesgeo.predict import area_average
+    from bayesgeo.predict.prediction import area_average
 
     rng = np.random.default_rng(12)
     xy = rng.uniform(0, 100, (40, 2))
@@ -155,7 +155,7 @@ def test_far_lonlat_area_refused_in_km():
     """A lon/lat area about 4,000 km from Pacific data (written 0..360) is refused in km; distance check:
     the nearest points are on the equator 36+ degrees of longitude apart, about R * 0.63 = 4,000 km
     (arc-length formula)."""
-    from bayesgeo.predict import area_average
+    from bayesgeo.predict.prediction import area_average
 
     rng = np.random.default_rng(13)
     xy = np.column_stack([rng.uniform(170, 190, 40), rng.uniform(-5, 5, 40)])
@@ -170,8 +170,8 @@ def test_far_lonlat_area_refused_in_km():
 def test_far_target_points_warn_with_rows_and_distances(tmp_path):
     """--points farther from the data than the data's extent are predicted with a one-line warning naming
     their rows and distance, recorded in the predictions' attributes (behaviour check)."""
-    from bayesgeo.csvtable import InputWarning
-    from bayesgeo.predict import predict_targets
+    from bayesgeo.common.csvtable import InputWarning
+    from bayesgeo.predict.prediction import predict_targets
 
     rng = np.random.default_rng(14)
     xy = rng.uniform(0, 100, (40, 2))

@@ -7,9 +7,9 @@ import pytest
 from sklearn.linear_model import LinearRegression
 from sklearn.metrics import r2_score
 
-from bayesgeo.data import points_dataset
-from bayesgeo.trend import design_at, design_matrix, fit_trend, trend_terms
-from bayesgeo.validate import InputError
+from bayesgeo.data.points import points_dataset
+from bayesgeo.explore.trend import design_at, design_matrix, fit_trend, trend_terms
+from bayesgeo.common.validate import InputError
 
 
 def _raw_poly(x, y, order):

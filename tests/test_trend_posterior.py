@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.trend_posterior: the trend coefficients drawn from their exact conditional
+"""Tests of bayesgeo.gp.trend_posterior: the trend coefficients drawn from their exact conditional
 posterior after the covariance parameters were sampled with the coefficients integrated out."""
 
 from __future__ import annotations
@@ -8,12 +8,12 @@ import pytest
 import xarray as xr
 from scipy import stats
 
-from bayesgeo.covariance import get_covariance
-from bayesgeo.data import points_dataset
-from bayesgeo.demo import simulate_field
-from bayesgeo.likelihood import covariance_matrix, solve_covariance
-from bayesgeo.model import model_inputs
-from bayesgeo.trend_posterior import draw_trend, trend_prior_covariance
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.data.points import points_dataset
+from bayesgeo.data.demo import simulate_field
+from bayesgeo.gp.dense import covariance_matrix, solve_covariance
+from bayesgeo.fitting.model import model_inputs
+from bayesgeo.gp.trend_posterior import draw_trend, trend_prior_covariance
 
 
 def _inputs(n=40, seed=2, trend=1, covariance="matern32"):

@@ -1,4 +1,4 @@
-"""Tests of the shared option checks (bayesgeo.validate): bounds, finiteness, one-line messages."""
+"""Tests of the shared option checks (bayesgeo.common.validate): bounds, finiteness, one-line messages."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import argparse
 import numpy as np
 import pytest
 
-from bayesgeo.validate import (INT_LIMITS, SEED_MAX, InputError, check_float, check_int, check_prior_pair,
+from bayesgeo.common.validate import (INT_LIMITS, SEED_MAX, InputError, check_float, check_int, check_prior_pair,
                                float_option, int_option)
 
 

@@ -1,4 +1,4 @@
-"""Tests of the simulation-based calibration engine (bayesgeo.validation).
+"""Tests of the simulation-based calibration engine (bayesgeo.calibration.validation).
 
 No test here runs the sampler (that is in tests/test_cli_validate.py); model log densities are
 compiled with PyTensor's FAST_COMPILE mode, which is quick.
@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from bayesgeo.covariance import get_covariance
-from bayesgeo.likelihood import covariance_matrix
-from bayesgeo.validation import (
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.gp.dense import covariance_matrix
+from bayesgeo.calibration.validation import (
     SBCConfig,
     binomial_bounds,
     generated_layout,
@@ -117,7 +117,7 @@ def test_sbc_model_is_the_package_model():
     space), and swapping the data changes it exactly as rebuilding with those data would:
     compared with scipy.stats.multivariate_normal on the standardised scale, with the trend
     integrated out, y ~ N(0, K + b^2 F F^T) (Rasmussen and Williams 2006, sec. 2.7)."""
-    from bayesgeo.model import build_model
+    from bayesgeo.fitting.model import build_model
 
     ds = generated_layout(12, seed=3)
     cfg = SBCConfig(covariance="matern32")
@@ -155,7 +155,7 @@ def test_sbc_model_in_the_earlier_coordinates_is_the_package_model_in_them():
     """SBCConfig(coordinates="legacy", trend="sampled") fits build_model(..., _coordinates="legacy",
     _trend="sampled"): the same log density at 5 random unconstrained points (reference: the
     package's model in those coordinates, whose density tests/test_model.py relates to the default's)."""
-    from bayesgeo.model import build_model
+    from bayesgeo.fitting.model import build_model
 
     ds = generated_layout(12, seed=3)
     model, _, _ = sbc_model(ds, SBCConfig(covariance="exponential", coordinates="legacy", trend="sampled"))
@@ -212,7 +212,7 @@ def test_nn_model_with_all_neighbours_equals_dense():
 
 @pytest.mark.filterwarnings("ignore:The effect of Potentials")
 def test_prior_draws_are_the_model_prior():
-    """Prior draws of the SBC model follow the PC priors of bayesgeo.priors: the practical range
+    """Prior draws of the SBC model follow the PC priors of bayesgeo.fitting.priors: the practical range
     InverseGamma(1, lambda1) and the field sd Exponential(lambda2) (Fuglstad et al. 2019), checked
     with scipy.stats.kstest against scipy's distributions with the spec's rates."""
     import pymc as pm
@@ -262,7 +262,7 @@ def test_intercept_ranks_uniform_under_the_exact_conditional_posterior():
     package's model integrates beta out, so its prior draws come from prior_draws, tested here too."""
     from scipy.linalg import cho_factor, cho_solve
 
-    from bayesgeo.validation import _truth_items, prior_draws
+    from bayesgeo.calibration.validation import _truth_items, prior_draws
 
     ds = generated_layout(12, seed=7)
     model, blocks, spec = sbc_model(ds, SBCConfig(covariance="matern32"))
@@ -284,7 +284,7 @@ def test_intercept_ranks_uniform_under_the_exact_conditional_posterior():
             v = np.linalg.inv(F.T @ kif + np.eye(F.shape[1]) / b**2)
             m = v @ (F.T @ kiy)
             out.append(rank_of(t["beta_z"][0], m[0] + np.sqrt(v[0, 0]) * rng.standard_normal((1, L)), L))
-    assert spec.priors.beta_sd == 2.5  # the documented default (bayesgeo.priors.DEFAULT_BETA_SD)
+    assert spec.priors.beta_sd == 2.5  # the documented default (bayesgeo.fitting.priors.DEFAULT_BETA_SD)
     assert rank_uniformity(good, L, bins=10)["pvalue"] > 0.001
     assert rank_uniformity(bad, L, bins=10)["pvalue"] < 1e-6
 
@@ -292,8 +292,8 @@ def test_intercept_ranks_uniform_under_the_exact_conditional_posterior():
 def test_too_few_draws_for_the_ranks_refused():
     """Each SBC rank is taken among L thinned draws (Talts et al. 2018, Algorithm 1), so chains x draws
     below L is bad input named by option, not an error deep inside the run."""
-    from bayesgeo.validate import InputError
-    from bayesgeo.validation import QUICK, with_settings
+    from bayesgeo.common.validate import InputError
+    from bayesgeo.calibration.validation import QUICK, with_settings
 
     with pytest.raises(InputError, match=r"^draws: 20 draws per chain x 2 chains is fewer than the 49 .* --draws 25"):
         with_settings(QUICK, draws=20)

@@ -2,7 +2,7 @@
 
 References named in each docstring. The covariance matrices are written out from the closed forms
 (Diggle and Ribeiro 2007, *Model-based Geostatistics*, sec. 3.4) in this file, independently of
-bayesgeo.covariance; the dense likelihood reference is scipy.stats.multivariate_normal.
+bayesgeo.gp.covariance; the dense likelihood reference is scipy.stats.multivariate_normal.
 """
 
 from __future__ import annotations
@@ -17,8 +17,8 @@ from scipy import linalg, stats
 from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
-from bayesgeo.likelihood import JITTER
-from bayesgeo.vecchia import (
+from bayesgeo.gp.dense import JITTER
+from bayesgeo.gp.nn import (
     maximin_order,
     nearest_previous,
     nn_error_moments,
@@ -305,9 +305,9 @@ def test_kernel_equals_plain_numpy_for_every_ordering(family, nugget):
     """The compiled kernel equals an independent plain-NumPy product of conditionals (above;
     Vecchia 1988, eq. 2) to rounding, with and without a nugget, for maximin, random and
     coordinate orderings (n = 150, m = 10); and the dense value the accuracy figures compare
-    against (bayesgeo.likelihood.loglik_numpy) equals scipy.stats.multivariate_normal."""
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import loglik_numpy
+    against (bayesgeo.gp.dense.loglik_numpy) equals scipy.stats.multivariate_normal."""
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.gp.dense import loglik_numpy
 
     phi = SCALE[family]
     xy, z = _field(150, 31, family, phi, 1.0, nugget)
@@ -357,7 +357,7 @@ def test_accuracy_figures_on_a_small_layout():
     noise screens less well (Katzfuss and Guinness 2021, sec. on noisy data; their statement from
     memory, our numbers: 4.0% against 0.55% at m = 20). Tolerances are ours, about twice the
     computed values (listed), so a regression in accuracy fails while rounding does not."""
-    from bayesgeo.covariance import get_covariance
+    from bayesgeo.gp.covariance import get_covariance
 
     xy = np.random.default_rng(4).random((400, 2))
     rnd = np.random.default_rng(0).permutation(400)
@@ -390,7 +390,7 @@ def test_invalid_input_and_the_general_matern():
     """The general Matérn (Bessel form) has no nearest-neighbour kernel and is refused with a clear
     ValueError; invalid parameters give -inf like the dense likelihood (common practice: a sampler
     rejects the point)."""
-    from bayesgeo.covariance import get_covariance
+    from bayesgeo.gp.covariance import get_covariance
 
     xy, z = _field(30, 1)
     with pytest.raises(ValueError, match="no nearest-neighbour kernel"):
@@ -507,7 +507,7 @@ def test_nn_kriging_moments_close_to_full_kriging_with_few_neighbours():
 
 
 def test_drop_in_for_the_model_likelihood():
-    """The call the model uses (bayesgeo.model.build_model's Potential, with locations and
+    """The call the model uses (bayesgeo.fitting.model.build_model's Potential, with locations and
     distance_scale=spec.distance_scale in place of the scaled distance matrix) gives, with m = n - 1,
     the same model log-density as the exact dense likelihood build_model uses (marginal_loglik on the
     scaled distance matrix, same priors), whose value is tested against
@@ -515,9 +515,9 @@ def test_drop_in_for_the_model_likelihood():
     import pymc as pm
     import xarray as xr
 
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.likelihood import marginal_loglik
-    from bayesgeo.model import model_inputs
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.gp.dense import marginal_loglik
+    from bayesgeo.fitting.model import model_inputs
 
     xy, z = _field(40, 21, "matern32", 0.08, 1.0, 0.1)
     xy = 500.0 * xy + np.array([431_000.0, 5_622_000.0])  # projected-looking coordinates, metres
@@ -550,9 +550,9 @@ def test_drop_in_for_the_model_likelihood():
 
 def test_nn_kriging_moments_great_circle_equals_dense_prediction():
     """lon/lat data (haversine km): with every datum as neighbour, nn_kriging_moments equals the dense per-draw
-    prediction bayesgeo.predict.kriging_moments (itself tested against scikit-learn and scipy in
+    prediction bayesgeo.predict.prediction.kriging_moments (itself tested against scikit-learn and scipy in
     tests/test_predict.py) for the same parameters."""
-    from bayesgeo.predict import kriging_moments
+    from bayesgeo.predict.prediction import kriging_moments
 
     rng = np.random.default_rng(8)
     lonlat = np.column_stack([-3.0 + 0.2 * rng.random(50), 54.0 + 0.1 * rng.random(50)])

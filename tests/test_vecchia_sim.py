@@ -1,4 +1,4 @@
-"""Tests of bayesgeo.vecchia_sim: simulation from the nearest-neighbour (Vecchia) model and the
+"""Tests of bayesgeo.gp.nn_simulate: simulation from the nearest-neighbour (Vecchia) model and the
 posterior predictive semivariogram check of nearest-neighbour fits.
 
 Small n throughout; each check names its outside reference.
@@ -15,13 +15,13 @@ from scipy import linalg, stats
 from scipy.spatial.distance import pdist
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern, WhiteKernel
 
-from bayesgeo.covariance import get_covariance
-from bayesgeo.geometry import distance_matrix
-from bayesgeo.likelihood import JITTER, covariance_matrix
-from bayesgeo.loo import fit_arrays
-from bayesgeo.ppcheck import variogram_check
-from bayesgeo.vecchia import maximin_order, nearest_previous, nn_loglik_and_grad
-from bayesgeo.vecchia_sim import nn_factors, nn_simulate
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.common.geometry import distance_matrix
+from bayesgeo.gp.dense import JITTER, covariance_matrix
+from bayesgeo.checks.loo import fit_arrays
+from bayesgeo.checks.ppcheck import variogram_check
+from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik_and_grad
+from bayesgeo.gp.nn_simulate import nn_factors, nn_simulate
 from test_loo import make_fit, simulated
 from test_modelcheck import assert_replicate_means_match
 
@@ -51,7 +51,7 @@ def _sklearn_kernel(family, scale, s2, t2):
 def test_full_neighbours_give_exactly_K(family):
     """With m = n - 1 the recursion is the chain rule of the joint Gaussian, so the implied covariance
     (I - B)^-1 F (I - B)^-T equals K (Vecchia 1988; Katzfuss and Guinness 2021, sec. 2) to rounding:
-    checked against bayesgeo.likelihood.covariance_matrix and scikit-learn's Matern / RBF kernels
+    checked against bayesgeo.gp.dense.covariance_matrix and scikit-learn's Matern / RBF kernels
     (plus WhiteKernel for nugget and jitter)."""
     xy = _points(40, 1)
     scale, s2, t2 = 12.0, 1.7, 0.3 if family != "gaussian" else 0.5
@@ -64,7 +64,7 @@ def test_full_neighbours_give_exactly_K(family):
 
 def test_full_neighbours_great_circle_and_distance_scale():
     """Lon/lat points, distances in km divided by a distance scale: with m = n - 1 the implied
-    covariance equals covariance_matrix on bayesgeo.geometry's haversine distances (chain rule of a
+    covariance equals covariance_matrix on bayesgeo.common.geometry's haversine distances (chain rule of a
     Gaussian), so the metric and the scaling are those of the likelihood."""
     rng = np.random.default_rng(4)
     xy = np.column_stack([10.0 + rng.random(30) * 0.2, 50.0 + rng.random(30) * 0.2])
@@ -116,7 +116,7 @@ def test_factors_are_the_likelihoods_conditionals():
 
 def test_simulated_model_has_the_nn_likelihood_as_its_density():
     """m = 10 at n = 60: the log density of N(0, A A^T), A the linear map of nn_simulate (scipy.stats
-    multivariate_normal), equals the nearest-neighbour log-likelihood bayesgeo.vecchia.nn_loglik_and_grad
+    multivariate_normal), equals the nearest-neighbour log-likelihood bayesgeo.gp.nn.nn_loglik_and_grad
     at several vectors: the draws come from the very model a nearest-neighbour fit evaluates (product
     of Gaussian conditionals, Vecchia 1988)."""
     xy = _points(60, 5)
@@ -249,8 +249,7 @@ def test_variogram_check_progress_and_chunking_do_not_change_the_numbers(monkeyp
     practice: long work shows progress), for nn and dense fits alike; simulating the nn replicates
     in chunks draws the same noise as one call (numpy Generators stream normals without a buffer),
     so the chunked and the one-piece results are identical."""
-    from bayesgeo import ppcheck
-
+    from bayesgeo.checks import ppcheck
     factory, bars = recording_progress
 
     ds = simulated(50, seed=23)

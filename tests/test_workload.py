@@ -1,12 +1,12 @@
-"""Tests of the workload plans (bayesgeo.workload): estimates against measured runs, messages."""
+"""Tests of the workload plans (bayesgeo.fitting.workload): estimates against measured runs, messages."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-import bayesgeo.workload as wl
-from bayesgeo.data import points_dataset
+import bayesgeo.fitting.workload as wl
+from bayesgeo.data.points import points_dataset
 
 
 @pytest.fixture(autouse=True)
@@ -27,7 +27,7 @@ def test_fit_estimates_bracket_measured_runs():
 
 def test_fit_messages():
     """Small fits say nothing; above the comfortable size the time is announced; above 2,000 points the
-    nn likelihood is named (bayesgeo.model.DENSE_LIMIT); a forced dense fit there is told nn is made for it."""
+    nn likelihood is named (bayesgeo.fitting.model.DENSE_LIMIT); a forced dense fit there is told nn is made for it."""
     assert wl.fit_plan({"": 300})["message"] is None
     assert wl.fit_plan({"": 300})["likelihood"] == {"": "dense"}
     big = wl.fit_plan({"": 50_000})
@@ -40,7 +40,7 @@ def test_fit_messages():
 
 
 def test_fit_plan_names_the_longest_run_when_chains_continue():
-    """The chains may continue to max_draws (default 4 x draws, bayesgeo.looks): the plan gives the time
+    """The chains may continue to max_draws (default 4 x draws, bayesgeo.fitting.looks): the plan gives the time
     of that longest run, which grows with the draws as the estimate itself does (same formula), and the
     message names --max-draws; with max_draws equal to draws it says nothing of it."""
     base = wl.fit_plan({"": 50_000}, chains=4, draws=1000, tune=1000)

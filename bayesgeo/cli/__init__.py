@@ -64,9 +64,9 @@ def _build_parser() -> argparse.ArgumentParser:
 
 @contextlib.contextmanager
 def _one_line_warnings(command: str):
-    """Print each :class:`bayesgeo.csvtable.InputWarning` as one stderr line and keep it for ``--json``."""
+    """Print each :class:`bayesgeo.common.csvtable.InputWarning` as one stderr line and keep it for ``--json``."""
     from bayesgeo.cli import _common
-    from bayesgeo.csvtable import InputWarning
+    from bayesgeo.common.csvtable import InputWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, InputWarning):
@@ -141,7 +141,7 @@ def _option_words(parser, args, message: str) -> str:
 
 
 def _main(argv: list[str] | None) -> int:
-    from bayesgeo.validate import InputError
+    from bayesgeo.common.validate import InputError
 
     parser = _build_parser()
     try:
@@ -156,8 +156,7 @@ def _main(argv: list[str] | None) -> int:
         print(f"bayesgeo {args.command}: error: {empty}: an empty value; give a value or leave the option out",
               file=sys.stderr)
         return EXIT_INPUT
-    from bayesgeo import outputs
-
+    from bayesgeo.common import outputs
     outputs.set_command(sys.argv[1:] if argv is None else argv)
     try:
         with outputs.scope(), _one_line_warnings(args.command):

@@ -8,7 +8,7 @@ import sys
 from collections.abc import Iterable
 
 import numpy as np
-from bayesgeo.io import to_jsonable
+from bayesgeo.common.io import to_jsonable
 
 __all__ = ["add_data_options", "data_kwargs", "read_data", "emit_json", "to_jsonable", "progress", "print_table",
            "refuse_renamed"]
@@ -55,7 +55,7 @@ def add_data_options(p) -> None:
 
 def data_kwargs(args) -> dict:
     """The data settings named by :func:`add_data_options` arguments, as keyword arguments of the stages
-    (keyword arguments of :func:`bayesgeo.data.read_points`)."""
+    (keyword arguments of :func:`bayesgeo.data.points.read_points`)."""
     return dict(x=args.x, y=args.y, value=args.value, site=args.site, only_site=args.only_site,
                 covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
                 distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"))
@@ -63,7 +63,7 @@ def data_kwargs(args) -> dict:
 
 def read_data(args):
     """Read the data named by :func:`add_data_options` arguments."""
-    from bayesgeo.data import read_points
+    from bayesgeo.data.points import read_points
     return read_points(args.data, **data_kwargs(args))
 
 

@@ -14,9 +14,9 @@ __all__ = ["add_site_arguments"]
 
 def add_site_arguments(p) -> None:
     """``--pooling``, ``--small-sites``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
-    from bayesgeo.hierarchical import CENTRED_MIN_POINTS, PARAMETRISATIONS, POOLINGS, SMALL_SITE_POLICIES
+    from bayesgeo.fitting.hierarchical import CENTRED_MIN_POINTS, PARAMETRISATIONS, POOLINGS, SMALL_SITE_POLICIES
     from bayesgeo.cli._common import refuse_renamed
-    from bayesgeo.validate import int_option
+    from bayesgeo.common.validate import int_option
 
     p.add_argument("--pooling", choices=POOLINGS, default="hierarchical",
                    help="with --site: share covariance parameters through a population (hierarchical, default), "

@@ -8,13 +8,13 @@ A several-site fit (``bayesgeo fit --site``) keeps one verdict for the whole pos
 site's parameters and every hyperparameter) and adds ``sites`` (one block per site: worst R-hat,
 smallest bulk and tail ESS, the site's own verdict and problems) and ``population`` (the same for
 the parameters without a site index) to ``diagnostics.json`` and to the printed report
-(:func:`bayesgeo.diagnostics.site_convergence`).
+(:func:`bayesgeo.convergence.diagnostics.site_convergence`).
 """
 
 from __future__ import annotations
 
-from bayesgeo.layout import DIAGNOSTICS_DIR
-from bayesgeo.layout import FIT_FILE as POSTERIOR_FILE
+from bayesgeo.common.layout import DIAGNOSTICS_DIR
+from bayesgeo.common.layout import FIT_FILE as POSTERIOR_FILE
 
 HELP = "check convergence of a fitted posterior (R-hat, ESS, MCSE, divergences, E-BFMI, tree depth)"
 
@@ -24,7 +24,7 @@ ARGUMENT_OPTIONS = {"var_names": "--var", "figures": "--no-figures"}
 
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import refuse_renamed
-    from bayesgeo.validate import int_option
+    from bayesgeo.common.validate import int_option
 
     p.add_argument("dir", metavar="DIR", help=f"fit folder holding {POSTERIOR_FILE}")
     p.add_argument("--var", metavar="NAME", action="append", default=[],
@@ -43,7 +43,7 @@ def run(args) -> int:
     import sys
 
     from bayesgeo.cli._common import emit_json, print_table, progress
-    from bayesgeo.diagnostics import CAUTION
+    from bayesgeo.convergence.diagnostics import CAUTION
     from bayesgeo.stages.check import check_fit
 
     status, result = check_fit(args.dir, var_names=args.var or None, lag_limit=args.lag_limit,

@@ -1,7 +1,7 @@
 """``bayesgeo demo``: the whole product on the invented demo scenario, from one command.
 
-Writes three parcels of the invented *Marrowby Works* data (:mod:`bayesgeo.demo`) and a study
-file into a scratch folder, then runs that study (:func:`bayesgeo.pipeline.run_study`) into
+Writes three parcels of the invented *Marrowby Works* data (:mod:`bayesgeo.data.demo`) and a study
+file into a scratch folder, then runs that study (:func:`bayesgeo.study.runner.run_study`) into
 ``--out``: exploration per parcel, the hierarchical several-site model (Matérn 3/2, log
 transform), its convergence check, a posterior predictive variogram check and maps against the
 illustrative action level for every parcel, an area average on one parcel, the shrinkage table
@@ -36,7 +36,7 @@ def add_arguments(p) -> None:
 
 def demo_study_text(data_file: str, *, quick: bool = False) -> str:
     """The TOML text of the demo study (data file relative to the study file)."""
-    from bayesgeo.demo import DEMO_ACTION_LEVEL
+    from bayesgeo.data.demo import DEMO_ACTION_LEVEL
 
     chains, draws, tune, reps, perms, pdraws, cell = DEMO_SETTINGS["quick" if quick else "full"]
     a = DEMO_AREA
@@ -93,7 +93,7 @@ def write_demo_inputs(folder, *, quick: bool = False) -> Path:
 
     import numpy as np
 
-    from bayesgeo.demo import demo_data
+    from bayesgeo.data.demo import demo_data
 
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
@@ -117,8 +117,8 @@ def run(args) -> int:
 
     from bayesgeo.cli._common import emit_json
     from bayesgeo.cli.run import print_result, stage_logger
-    from bayesgeo.outputs import claim
-    from bayesgeo.pipeline import run_study
+    from bayesgeo.common.outputs import claim
+    from bayesgeo.study.runner import run_study
 
     claim(args.out, overwrite=args.overwrite)
     log = stage_logger(not args.json)

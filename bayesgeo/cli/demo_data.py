@@ -6,7 +6,7 @@ HELP = "write the demo data set (invented scenario, simulated from known paramet
 
 
 def add_arguments(p) -> None:
-    from bayesgeo.validate import int_option
+    from bayesgeo.common.validate import int_option
 
     p.add_argument("--out", required=True, metavar="FILE", help="CSV to write; true parameters go beside it as <stem>.truth.json")
     p.add_argument("--seed", type=int_option("seed"), default=None, help="seed (default: the demo's own)")
@@ -18,7 +18,7 @@ def run(args) -> int:
     from pathlib import Path
 
     from bayesgeo.cli._common import emit_json
-    from bayesgeo.demo import DEMO_SEED, write_demo_data
+    from bayesgeo.data.demo import DEMO_SEED, write_demo_data
 
     seed = DEMO_SEED if args.seed is None else args.seed
     truth = write_demo_data(args.out, seed=seed, overwrite=args.overwrite)

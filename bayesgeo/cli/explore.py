@@ -7,7 +7,7 @@ Output folder (default ``<data stem>-explore``; an existing folder is refused un
   ``semivariogram.csv``, ``correlogram.csv``, ``directional.csv``, ``fits.csv`` and
   ``explore.json`` directly in the folder;
 * several sites (``--site COL``): the same figures and tables in one sub-folder per site (named
-  by :func:`bayesgeo.sitenames.site_file_name`; each CSV has a ``site`` column with the label),
+  by :func:`bayesgeo.common.sitenames.site_file_name`; each CSV has a ``site`` column with the label),
   ``explore.json`` and a ``fits.csv`` of every site (with a ``site`` column) at the top.
 
 ``explore.json`` holds the same object ``--json`` prints. Its top-level statistics (``n``,
@@ -33,8 +33,8 @@ ARGUMENT_OPTIONS = {"covariates": "--covariate"}
 
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import add_data_options, refuse_renamed
-    from bayesgeo.quickfit import QUICK_FAMILIES
-    from bayesgeo.validate import float_option, int_option
+    from bayesgeo.explore.quickfit import QUICK_FAMILIES
+    from bayesgeo.common.validate import float_option, int_option
 
     p.description = DESCRIPTION
     add_data_options(p)

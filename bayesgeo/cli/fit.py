@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from bayesgeo.defaults import CHAINS, DRAWS, TUNE
+from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 
 #: Library argument -> option, where the names differ.
 ARGUMENT_OPTIONS = {"covariates": "--covariate", "nugget": "--no-nugget"}
@@ -13,8 +13,8 @@ HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one s
 
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import add_data_options, refuse_renamed
-    from bayesgeo.covariance import FAMILIES
-    from bayesgeo.validate import PriorPairAction, float_option, int_option
+    from bayesgeo.gp.covariance import FAMILIES
+    from bayesgeo.common.validate import PriorPairAction, float_option, int_option
 
     add_data_options(p)
     from bayesgeo.cli._sites import add_site_arguments
@@ -84,11 +84,11 @@ def run(args) -> int:
         emit_json(report)
         return status
     if "sites" in report:
-        from bayesgeo.hier_outputs import summary_text_sites
+        from bayesgeo.fitting.hier_outputs import summary_text_sites
 
         print(summary_text_sites(report), end="")
     else:
-        from bayesgeo.posterior import summary_text
+        from bayesgeo.fitting.posterior import summary_text
 
         print(summary_text(report), end="")
     print(f"wrote {args.out}/ ({', '.join(report['files'])})")

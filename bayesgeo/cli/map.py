@@ -3,7 +3,7 @@
 Reads the fit folder ``DIR`` (``posterior.nc``), writes ``DIR/predictions.nc`` and
 ``DIR/maps/*.png``. Exit status: 0 done; 2 bad input (including existing outputs without
 ``--overwrite``); 3 the posterior failed the convergence check
-(:func:`bayesgeo.diagnostics.check_convergence` verdict ``fail``) and ``--allow-unconverged``
+(:func:`bayesgeo.convergence.diagnostics.check_convergence` verdict ``fail``) and ``--allow-unconverged``
 was not given -- the same status as a failed ``bayesgeo check``. With ``--allow-unconverged``
 every figure title and the file attributes say ``NOT CONVERGED``.
 """
@@ -20,7 +20,7 @@ ARGUMENT_OPTIONS = {"thresholds": "--threshold", "figures": "--no-figures", "chu
 
 
 def add_arguments(p) -> None:
-    from bayesgeo.validate import float_option, int_option
+    from bayesgeo.common.validate import float_option, int_option
 
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
     p.add_argument("--cell", type=float_option("positive"), metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "

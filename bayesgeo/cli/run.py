@@ -1,6 +1,6 @@
 """``bayesgeo run STUDY.toml``: every stage of a study in order, a report and a manifest.
 
-See :mod:`bayesgeo.pipeline` for the run folder and ``docs/study_file.md`` for the study file.
+See :mod:`bayesgeo.study.runner` for the run folder and ``docs/study_file.md`` for the study file.
 Exit status: 0 done; 2 bad input (the study, the data, an existing run folder); 3 a fit failed its
 convergence check (the report is written, marked NOT CONVERGED); 1 a stage failed unexpectedly.
 """
@@ -32,7 +32,7 @@ def stage_logger(enabled: bool):
 
 
 def print_result(res: dict, command: str = "run") -> None:
-    """Human summary of a :func:`bayesgeo.pipeline.run_study` result."""
+    """Human summary of a :func:`bayesgeo.study.runner.run_study` result."""
     head = {0: "done", 1: "INCOMPLETE", 3: "NOT CONVERGED"}.get(res["status"], str(res["status"]))
     print(f"bayesgeo {command}: {head}: {res['message']}")
     for stage, verdict in res["verdicts"].items():
@@ -45,8 +45,8 @@ def print_result(res: dict, command: str = "run") -> None:
 
 def run(args) -> int:
     from bayesgeo.cli._common import emit_json
-    from bayesgeo.pipeline import run_study
-    from bayesgeo.study import read_study
+    from bayesgeo.study.runner import run_study
+    from bayesgeo.study.settings import read_study
 
     import sys
 

@@ -11,9 +11,9 @@ EXIT_MISCALIBRATED = 1
 
 
 def add_arguments(p) -> None:
-    from bayesgeo.covariance import FAMILIES
-    from bayesgeo.validation import KINDS
-    from bayesgeo.validate import float_option, int_option
+    from bayesgeo.gp.covariance import FAMILIES
+    from bayesgeo.calibration.validation import KINDS
+    from bayesgeo.common.validate import float_option, int_option
 
     p.add_argument("--study", metavar="STUDY.toml", help="study file: its data locations, covariance and nugget")
     p.add_argument("--data", metavar="CSV", help="point data whose locations form the layout (default: a generated one)")
@@ -50,14 +50,14 @@ def add_arguments(p) -> None:
 def _template(args):
     """Layout data set and where it came from."""
     from bayesgeo.cli._common import read_data
-    from bayesgeo.validate import InputError
+    from bayesgeo.common.validate import InputError
 
     if args.study and args.data:
         raise InputError("--study and --data: give one of them, not both")
     if args.study:
         from types import SimpleNamespace
 
-        from bayesgeo.study import read_study
+        from bayesgeo.study.settings import read_study
 
         st = read_study(args.study)
         d = st["data"]
@@ -72,7 +72,7 @@ def _template(args):
 
 
 def _single_site(ds):
-    from bayesgeo.data import sites_of
+    from bayesgeo.data.points import sites_of
 
     labels = sites_of(ds)
     if len(labels) <= 1:
@@ -88,11 +88,11 @@ def run(args) -> int:
     import time
 
     from bayesgeo.cli._common import emit_json, progress
-    from bayesgeo.data import sites_of
-    from bayesgeo.outputs import claim, new_folder
-    from bayesgeo.validate import InputError, check_positive_int
-    from bayesgeo.validation import FULL, QUICK, generated_layout, sbc_summary, simulation_based_calibration, with_settings
-    from bayesgeo.validation_report import CAUTIONS, validation_html
+    from bayesgeo.data.points import sites_of
+    from bayesgeo.common.outputs import claim, new_folder
+    from bayesgeo.common.validate import InputError, check_positive_int
+    from bayesgeo.calibration.validation import FULL, QUICK, generated_layout, sbc_summary, simulation_based_calibration, with_settings
+    from bayesgeo.calibration.report import CAUTIONS, validation_html
 
     claim(args.out, overwrite=args.overwrite, inputs=[args.study, args.data])
     data, study = _template(args)

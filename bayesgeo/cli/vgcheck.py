@@ -6,20 +6,20 @@ modelled scale: log values under a log transform) and draws the observed semivar
 replicate band and the model's posterior semivariogram band. Writes ``DIR/variogram_check.png``
 and ``DIR/variogram_check.csv`` (each refused if present, unless ``--overwrite``). For a
 several-site fit, ``--site NAME`` checks one site (its draws and points,
-:func:`bayesgeo.hierarchical.site_fit`) and writes ``DIR/variogram_check_<NAME>.png`` and ``.csv``.
+:func:`bayesgeo.fitting.hierarchical.site_fit`) and writes ``DIR/variogram_check_<NAME>.png`` and ``.csv``.
 """
 
 from __future__ import annotations
 
-from bayesgeo.layout import VGCHECK_FIGURE as FIGURE
-from bayesgeo.layout import VGCHECK_TABLE as TABLE
+from bayesgeo.common.layout import VGCHECK_FIGURE as FIGURE
+from bayesgeo.common.layout import VGCHECK_TABLE as TABLE
 
 HELP = "posterior predictive check of a fit against the empirical semivariogram"
 
 
 def add_arguments(p) -> None:
     from bayesgeo.cli._common import refuse_renamed
-    from bayesgeo.validate import float_option, int_option
+    from bayesgeo.common.validate import float_option, int_option
 
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
     p.add_argument("--site", metavar="NAME", default=None,

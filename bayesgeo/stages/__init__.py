@@ -4,7 +4,7 @@ Each function takes keyword arguments (library names; errors name them, and the 
 them to its options), writes its outputs into the fit or run folder atomically, and returns
 ``(status, result)``: the exit status (0, or 3 when a fit failed its convergence check) and the
 JSON-able result that ``--json`` prints. The command modules in :mod:`bayesgeo.cli` parse, call one
-of these and print; :func:`bayesgeo.pipeline.run_study` calls them directly.
+of these and print; :func:`bayesgeo.study.runner.run_study` calls them directly.
 """
 
 from __future__ import annotations

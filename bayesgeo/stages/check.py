@@ -4,7 +4,7 @@ Reads ``posterior.nc`` (a bayesgeo fit, or a bare posterior from another program
 ``diagnostics/`` (atomically) with ``diagnostics.json`` and the figures. An earlier ``diagnostics/`` is
 left as it is (the verdict is still computed and returned) unless ``overwrite`` replaces it. A
 several-site fit keeps one verdict for the whole posterior and adds per-site blocks
-(:func:`bayesgeo.diagnostics.site_convergence`).
+(:func:`bayesgeo.convergence.diagnostics.site_convergence`).
 """
 
 from __future__ import annotations
@@ -12,9 +12,9 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from bayesgeo.layout import DIAGNOSTICS_DIR, DIAGNOSTICS_FILE
-from bayesgeo.layout import FIT_FILE as POSTERIOR_FILE
-from bayesgeo.validate import InputError
+from bayesgeo.common.layout import DIAGNOSTICS_DIR, DIAGNOSTICS_FILE
+from bayesgeo.common.layout import FIT_FILE as POSTERIOR_FILE
+from bayesgeo.common.validate import InputError
 
 __all__ = ["check_fit", "read_posterior"]
 
@@ -25,9 +25,9 @@ def read_posterior(folder):
     """Open ``folder/posterior.nc`` as a DataTree (loaded into memory); InputError if impossible.
 
     A bare posterior from another program is accepted; a bayesgeo fit (settings present) is checked in
-    full (:func:`bayesgeo.fitfile.read_fit`).
+    full (:func:`bayesgeo.fitting.fitfile.read_fit`).
     """
-    from bayesgeo.fitfile import read_fit
+    from bayesgeo.fitting.fitfile import read_fit
 
     folder = Path(folder)
     if not folder.is_dir():
@@ -47,7 +47,7 @@ def check_fit(folder, *, var_names: Sequence[str] | None = None, lag_limit: int 
     folder : path
         Fit folder holding ``posterior.nc``.
     var_names : sequence of str, optional
-        Variables to check (default: the model parameters, :func:`bayesgeo.diagnostics.check_convergence`).
+        Variables to check (default: the model parameters, :func:`bayesgeo.convergence.diagnostics.check_convergence`).
     lag_limit : int, optional
         Largest lag (draws) of the autocorrelation figure (default: 3 x the largest IAT, at least 20).
     figures, overwrite :
@@ -62,9 +62,9 @@ def check_fit(folder, *, var_names: Sequence[str] | None = None, lag_limit: int 
         approximation check, per-site blocks of a several-site fit, the files written (or ``kept``)
         and ``figure_error`` (a figure that failed does not hide the verdict).
     """
-    from bayesgeo.diagnostics import check_convergence, site_convergence
-    from bayesgeo.outputs import check_addable
-    from bayesgeo.posterior import approximation_of
+    from bayesgeo.convergence.diagnostics import check_convergence, site_convergence
+    from bayesgeo.common.outputs import check_addable
+    from bayesgeo.fitting.posterior import approximation_of
 
     folder = Path(folder)
     tree = read_posterior(folder)
@@ -102,14 +102,14 @@ def check_fit(folder, *, var_names: Sequence[str] | None = None, lag_limit: int 
 def _write(folder: Path, tree, result: dict, *, var_names, lag_limit, figures: bool, overwrite: bool, bar) -> None:
     """Write ``DIAGNOSTICS_DIR`` (diagnostics.json and the figures) into the fit folder; adds the file names
     to ``result``."""
-    from bayesgeo.io import write_json
-    from bayesgeo.outputs import add_to_folder
+    from bayesgeo.common.io import write_json
+    from bayesgeo.common.outputs import add_to_folder
 
     outdir = folder / DIAGNOSTICS_DIR
     written_figures, figure_error = [], None
     with add_to_folder(folder, DIAGNOSTICS_DIR, overwrite=overwrite, kind="dir") as tmp:
         if figures:
-            from bayesgeo.diagnostic_figures import write_diagnostic_figures
+            from bayesgeo.convergence.figures import write_diagnostic_figures
 
             try:
                 written = write_diagnostic_figures(tree, tmp, var_names=var_names or None, lag_limit=lag_limit)

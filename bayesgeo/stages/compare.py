@@ -13,8 +13,8 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from bayesgeo.layout import COMPARISON_FILE
-from bayesgeo.validate import InputError
+from bayesgeo.common.layout import COMPARISON_FILE
+from bayesgeo.common.validate import InputError
 
 __all__ = ["compare_folders", "build_result"]
 
@@ -55,9 +55,9 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
     """Open the fits, compare them and compute their LOO-PIT: (JSON object, ranking Dataset, PITs).
 
     ``progress`` is a bar factory for the long nearest-neighbour leave-one-out of nn fits
-    (:func:`bayesgeo.modelcheck.compare_fits`); ``None`` shows none.
+    (:func:`bayesgeo.checks.modelcheck.compare_fits`); ``None`` shows none.
     """
-    from bayesgeo.modelcheck import compare_fits, open_fit
+    from bayesgeo.checks.modelcheck import compare_fits, open_fit
 
     if len(dirs) < 2:
         raise InputError(f"dirs: give at least two fit folders (got {len(dirs)})")
@@ -75,7 +75,7 @@ def build_result(dirs, *, bar=None, store: bool = False, site: str | None = None
     res = compare_fits(trees, site=site, progress=progress)
     _refuse_non_finite(res, dict(zip(names, dirs)))
     if store:
-        from bayesgeo.modelcheck import store_log_likelihood
+        from bayesgeo.checks.modelcheck import store_log_likelihood
 
         for name, d in zip(names, dirs):
             if "log_likelihood" not in trees[name].children:
@@ -136,8 +136,8 @@ def compare_folders(dirs: Sequence, *, site: str | None = None, out=None, overwr
         ``ranking`` (one row per fit, best first), ``n``, the Pareto-k threshold and its source,
         ``method``, ``units``, ``by_site`` (several-site fits), ``cautions``, and with ``out`` the files.
     """
-    from bayesgeo.io import to_jsonable, write_json
-    from bayesgeo.outputs import claim, new_folder
+    from bayesgeo.common.io import to_jsonable, write_json
+    from bayesgeo.common.outputs import claim, new_folder
 
     out = Path(out) if out else None
     if out is not None:
@@ -147,8 +147,8 @@ def compare_folders(dirs: Sequence, *, site: str | None = None, out=None, overwr
     if bar is not None:
         bar.close()
     if out is not None:
-        from bayesgeo.check_figures import loo_pit_figure
-        from bayesgeo.figures import save_figure
+        from bayesgeo.checks.figures import loo_pit_figure
+        from bayesgeo.explore.figures import save_figure
 
         with new_folder(out, overwrite=overwrite) as tmp:
             table = res[["rank", "covariance", "pooling", "transform", "elpd_loo", "se", "elpd_diff", "dse", "p_loo",

@@ -3,7 +3,7 @@
 Output folder (written atomically; an existing one is refused unless ``overwrite``): for one site the
 figures (``semivariogram.png``, ``correlogram.png``, ``directional.png``), the tables
 (``semivariogram.csv``, ``correlogram.csv``, ``directional.csv``, ``fits.csv``) and ``explore.json``;
-for several sites the same per site in one sub-folder each (:func:`bayesgeo.sitenames.site_file_name`),
+for several sites the same per site in one sub-folder each (:func:`bayesgeo.common.sitenames.site_file_name`),
 with ``explore.json`` and a ``fits.csv`` of every site at the top.
 """
 
@@ -13,7 +13,7 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from bayesgeo.layout import EXPLORE_FILE, site_part
+from bayesgeo.common.layout import EXPLORE_FILE, site_part
 
 __all__ = ["CAUTIONS", "AZIMUTHS", "TOLERANCE", "explore_folder"]
 
@@ -68,9 +68,9 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
     """Statistics and fits of one site: (JSON object, xarray results for files); ``log(text)`` announces
     each long step (large inputs)."""
     log = log or (lambda text: None)
-    from bayesgeo import explore
-    from bayesgeo.quickfit import quick_fits
-    from bayesgeo.trend import fit_trend
+    from bayesgeo.explore import variogram as explore
+    from bayesgeo.explore.quickfit import quick_fits
+    from bayesgeo.explore.trend import fit_trend
 
     notes: list[str] = []
     with warnings.catch_warnings(record=True) as caught:
@@ -134,8 +134,7 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
 
 
 def _write_site(folder, res: dict, label: str) -> list[str]:
-    from bayesgeo import figures
-
+    from bayesgeo.explore import figures
     folder.mkdir(parents=True, exist_ok=True)
     suffix = f" - site {label}" if label else ""
     figs = {
@@ -170,7 +169,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
     ----------
     data : path
         CSV of point measurements (or a bayesgeo point file); ``data_settings`` are those of
-        :func:`bayesgeo.data.read_points`.
+        :func:`bayesgeo.data.points.read_points`.
     out : path, optional
         Output folder (default ``<data stem>-explore`` beside the data).
     trend, transform :
@@ -180,7 +179,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
         Lag bins, largest lag (distance units), permutations for envelopes and p-values, semivariogram
         estimator ("classical" or "cressie-hawkins") and the permutations' seed.
     covariance : sequence of str, optional
-        Families of the quick fits (default all of :data:`bayesgeo.quickfit.QUICK_FAMILIES`).
+        Families of the quick fits (default all of :data:`bayesgeo.explore.quickfit.QUICK_FAMILIES`).
     progress : callable, optional
         Bar factory ``progress(total=, desc=)``; None for none.
     log : callable, optional
@@ -192,13 +191,13 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
         The statistics of the only (or first) site, ``sites`` (several sites), the settings, the
         workload plan, the files written and the cautions: the object written to ``explore.json``.
     """
-    from bayesgeo.data import apply_transform, read_points, sites_of
-    from bayesgeo.io import to_jsonable, write_json
-    from bayesgeo.outputs import claim, new_folder
-    from bayesgeo.quickfit import QUICK_FAMILIES
-    from bayesgeo.trend import MAX_ORDER
-    from bayesgeo.validate import InputError
-    from bayesgeo.workload import explore_plan
+    from bayesgeo.data.points import apply_transform, read_points, sites_of
+    from bayesgeo.common.io import to_jsonable, write_json
+    from bayesgeo.common.outputs import claim, new_folder
+    from bayesgeo.explore.quickfit import QUICK_FAMILIES
+    from bayesgeo.explore.trend import MAX_ORDER
+    from bayesgeo.common.validate import InputError
+    from bayesgeo.fitting.workload import explore_plan
 
     if not 0 <= trend <= MAX_ORDER:
         raise InputError(f"trend: order {trend} is not one of 0, 1, 2, 3")

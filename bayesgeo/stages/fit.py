@@ -1,10 +1,10 @@
 """The fit stage: read point data, fit the Bayesian GP model, check it and write the fit folder.
 
-One site: :func:`bayesgeo.posterior.fit` (or, with ``keep_sampling``, :func:`bayesgeo.keep_sampling.fit_until_converged`),
-then the convergence check, written by :func:`bayesgeo.posterior.save_fit`. Data with a site column of
-several sites: :func:`bayesgeo.hierarchical.fit_sites`, plus (unless ``pooling="independent"``) the
+One site: :func:`bayesgeo.fitting.posterior.fit` (or, with ``keep_sampling``, :func:`bayesgeo.fitting.keep_sampling.fit_until_converged`),
+then the convergence check, written by :func:`bayesgeo.fitting.posterior.save_fit`. Data with a site column of
+several sites: :func:`bayesgeo.fitting.hierarchical.fit_sites`, plus (unless ``pooling="independent"``) the
 independent fit for the shrinkage table and the sampling-design table of a new site, written by
-:func:`bayesgeo.hier_outputs.save_site_fit`. Large fits are announced first (:mod:`bayesgeo.workload`).
+:func:`bayesgeo.fitting.hier_outputs.save_site_fit`. Large fits are announced first (:mod:`bayesgeo.fitting.workload`).
 """
 
 from __future__ import annotations
@@ -13,9 +13,9 @@ from collections.abc import Callable
 
 import numpy as np
 
-from bayesgeo.defaults import CHAINS, DRAWS, TUNE
-from bayesgeo.layout import DESIGN, FIT_FILE, FIT_REPORT, PRIOR_CHECK, SHRINKAGE, SUMMARY_CSV, SUMMARY_TXT
-from bayesgeo.validate import InputError
+from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
+from bayesgeo.common.layout import DESIGN, FIT_FILE, FIT_REPORT, PRIOR_CHECK, SHRINKAGE, SUMMARY_CSV, SUMMARY_TXT
+from bayesgeo.common.validate import InputError
 
 __all__ = ["fit_folder", "workload_plan"]
 
@@ -24,10 +24,10 @@ EXIT_NOT_CONVERGED = 3
 
 def workload_plan(ds, *, approx: str, neighbours, chains: int, draws: int, tune: int, pooling: str,
                   max_draws, log: Callable[[str], None] | None) -> dict:
-    """The :func:`bayesgeo.workload.fit_plan` of this fit; its message goes to ``log`` (a large fit is announced
+    """The :func:`bayesgeo.fitting.workload.fit_plan` of this fit; its message goes to ``log`` (a large fit is announced
     before it starts). Refuses a dense likelihood that would not fit in this machine's memory."""
-    from bayesgeo.data import sites_of
-    from bayesgeo.workload import fit_plan, format_bytes, physical_memory_bytes
+    from bayesgeo.data.points import sites_of
+    from bayesgeo.fitting.workload import fit_plan, format_bytes, physical_memory_bytes
 
     labels = sites_of(ds)
     sizes = ({lab: int(np.count_nonzero(ds["site"].values == lab)) for lab in labels} if len(labels) > 1
@@ -58,21 +58,21 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
     ----------
     data : path
         CSV of point measurements (or a bayesgeo point file); ``data_settings`` are those of
-        :func:`bayesgeo.data.read_points` (columns, site column, coordinates, duplicates, units, small sites).
+        :func:`bayesgeo.data.points.read_points` (columns, site column, coordinates, duplicates, units, small sites).
     out : path
         Output folder, written atomically; refused if present unless ``overwrite``.
     covariance, nu, nugget, trend, transform, approx, neighbours :
-        The model (:func:`bayesgeo.posterior.fit`); ``transform`` None or "log".
+        The model (:func:`bayesgeo.fitting.posterior.fit`); ``transform`` None or "log".
     range_below, sd_above, nugget_above : (float, float), optional
         PC-prior statements P(practical range < R0) = A1, P(sd > S0) = A2, P(nugget sd > T0) = A3 (data
         units); the several-site model puts its nugget prior on the fraction of the sill and refuses
         ``nugget_above``.
     sampler, chains, draws, tune, target_accept, seed, max_draws :
-        The sampler (:func:`bayesgeo.sampling.sample`, :mod:`bayesgeo.looks`).
+        The sampler (:func:`bayesgeo.fitting.sampling.sample`, :mod:`bayesgeo.fitting.looks`).
     keep_sampling : float, optional
         Minutes for fresh attempts while the check fails (single-site fits).
     pooling, parametrisation, design_neighbours :
-        The several-site model (:func:`bayesgeo.hierarchical.fit_sites`) and the design table.
+        The several-site model (:func:`bayesgeo.fitting.hierarchical.fit_sites`) and the design table.
     progressbar : bool
         Show the sampler's progress bar.
     log : callable, optional
@@ -81,13 +81,13 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
     Returns
     -------
     (status, report)
-        3 when the convergence check fails, else 0; the fit report (:func:`bayesgeo.posterior.fit_report`
-        or :func:`bayesgeo.hier_outputs.site_report`) with ``out``, ``workload`` and ``files``.
+        3 when the convergence check fails, else 0; the fit report (:func:`bayesgeo.fitting.posterior.fit_report`
+        or :func:`bayesgeo.fitting.hier_outputs.site_report`) with ``out``, ``workload`` and ``files``.
     """
-    from bayesgeo.data import read_points, sites_of
-    from bayesgeo.looks import longest_chain
-    from bayesgeo.outputs import claim
-    from bayesgeo.priors import Priors
+    from bayesgeo.data.points import read_points, sites_of
+    from bayesgeo.fitting.looks import longest_chain
+    from bayesgeo.common.outputs import claim
+    from bayesgeo.fitting.priors import Priors
 
     if approx == "dense" and neighbours is not None:
         raise InputError("neighbours: applies to the nearest-neighbour likelihood ('nn', or 'auto' above 2,000 "
@@ -128,13 +128,13 @@ def _pair(value) -> tuple | None:
 
 
 def _fit_one(ds, out, *, priors, seed, keep_sampling, overwrite, stage, model_kw, sample_kw) -> tuple[int, dict]:
-    from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.posterior import fit, fit_report, save_fit, with_diagnostics
+    from bayesgeo.convergence.diagnostics import check_convergence
+    from bayesgeo.fitting.posterior import fit, fit_report, save_fit, with_diagnostics
 
     stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal) ...")
     kw = dict(model_kw, priors=priors, seed=seed, **sample_kw)
     if keep_sampling is not None:
-        from bayesgeo.keep_sampling import fit_until_converged
+        from bayesgeo.fitting.keep_sampling import fit_until_converged
 
         tree, conv = fit_until_converged(ds, budget_minutes=keep_sampling, **kw)
     else:
@@ -151,12 +151,12 @@ def _fit_one(ds, out, *, priors, seed, keep_sampling, overwrite, stage, model_kw
 
 def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, small_sites, seed, overwrite, say,
                model_kw, sample_kw) -> tuple[int, dict]:
-    from bayesgeo.design import design_table
-    from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.hier_outputs import save_site_fit, shrinkage_table, site_report, with_site_diagnostics
-    from bayesgeo.hierarchical import fit_sites, site_spec
-    from bayesgeo.posterior import fit_settings
-    from bayesgeo.validate import check_positive_int
+    from bayesgeo.data.design import design_table
+    from bayesgeo.convergence.diagnostics import check_convergence
+    from bayesgeo.fitting.hier_outputs import save_site_fit, shrinkage_table, site_report, with_site_diagnostics
+    from bayesgeo.fitting.hierarchical import fit_sites, site_spec
+    from bayesgeo.fitting.posterior import fit_settings
+    from bayesgeo.common.validate import check_positive_int
 
     neighbours = check_positive_int(design_neighbours, "design_neighbours", minimum=2)
     if neighbours % 2:

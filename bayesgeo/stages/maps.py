@@ -13,8 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from bayesgeo.layout import prediction_names
-from bayesgeo.validate import INT_LIMITS, InputError, check_positive, check_positive_int
+from bayesgeo.common.layout import prediction_names
+from bayesgeo.common.validate import INT_LIMITS, InputError, check_positive, check_positive_int
 
 __all__ = ["DEFAULT_DRAWS", "map_fit", "map_draws"]
 
@@ -55,7 +55,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     cell, margin, hull_mask :
         Grid cell side and widening (distance units); leave out cells outside the convex hull.
     points : path, optional
-        CSV of target points instead of a grid (:func:`bayesgeo.targets.read_target_points`).
+        CSV of target points instead of a grid (:func:`bayesgeo.data.targets.read_target_points`).
     thresholds : sequence of float
         Levels (data units) whose exceedance probabilities are mapped.
     area : str, optional
@@ -65,7 +65,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     nugget : {"include", "exclude"}
         Predict a new measurement (field + nugget) or the field.
     scheduler, chunk_cells :
-        :func:`bayesgeo.predict.predict_targets` settings.
+        :func:`bayesgeo.predict.prediction.predict_targets` settings.
     simulate, seed :
         Joint conditional simulations per draw at the targets (at most 2,000 targets), and their seed
         (also that of the area average).
@@ -81,11 +81,11 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         P(exceed) > 0.5 per threshold, area average, cautions), or 3 and ``{"error", "convergence",
         "exit_status"}`` for a fit that failed its convergence check.
     """
-    from bayesgeo import targets as tg
-    from bayesgeo.fitted import read_site
-    from bayesgeo.outputs import add_to_folder, check_addable
-    from bayesgeo.predict import area_average, basis_from_fit, check_scheduler, label_prediction, predict_targets
-    from bayesgeo.trend import design_at
+    from bayesgeo.data import targets as tg
+    from bayesgeo.fitting.fitted import read_site
+    from bayesgeo.common.outputs import add_to_folder, check_addable
+    from bayesgeo.predict.prediction import area_average, basis_from_fit, check_scheduler, label_prediction, predict_targets
+    from bayesgeo.explore.trend import design_at
 
     folder = Path(folder)
     draws = map_draws(draws)
@@ -150,7 +150,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
                              n_sim=200, seed=seed)
         block.update(area=label, area_size=tg.polygon_area(vertices), units=units)
     if simulate:
-        from bayesgeo.predict import simulate_targets
+        from bayesgeo.predict.prediction import simulate_targets
 
         pred["simulation"] = simulate_targets(basis, targets, n_sim=simulate, seed=seed,
                                               include_nugget=nugget == "include",
@@ -166,7 +166,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         pred.to_netcdf(tmp, engine="netcdf4")
     maps = []
     if figures:
-        from bayesgeo.map_figures import write_map_figures
+        from bayesgeo.predict.figures import write_map_figures
 
         with add_to_folder(folder, out_maps.name, overwrite=overwrite, kind="dir") as tmp:
             written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),

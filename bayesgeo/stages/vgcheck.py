@@ -2,7 +2,7 @@
 
 Writes ``variogram_check.png`` and ``variogram_check.csv`` into the fit folder (for one site of a
 several-site fit ``variogram_check_<site>.*``), each refused if present unless ``overwrite``; the
-computation is :func:`bayesgeo.ppcheck.variogram_check`.
+computation is :func:`bayesgeo.checks.ppcheck.variogram_check`.
 """
 
 from __future__ import annotations
@@ -12,8 +12,8 @@ from pathlib import Path
 
 import numpy as np
 
-from bayesgeo.layout import vgcheck_names
-from bayesgeo.validate import InputError
+from bayesgeo.common.layout import vgcheck_names
+from bayesgeo.common.validate import InputError
 
 __all__ = ["TABLE_COLUMNS", "check_variogram"]
 
@@ -47,7 +47,7 @@ def check_variogram(folder, *, site: str | None = None, replicates: int = 200, b
     site : str, optional
         The site of a several-site fit to check (required for one, refused for a single-site fit).
     replicates, bins, lag_limit, seed :
-        As in :func:`bayesgeo.ppcheck.variogram_check` (``lag_limit`` in distance units).
+        As in :func:`bayesgeo.checks.ppcheck.variogram_check` (``lag_limit`` in distance units).
     overwrite : bool
         Replace an earlier figure and table.
     progress : callable, optional
@@ -59,11 +59,11 @@ def check_variogram(folder, *, site: str | None = None, replicates: int = 200, b
         Per bin: lag, pairs, observed semivariance, replicate and model bands, p-value and whether the
         observation is outside the replicate band; the settings, units, files written and cautions.
     """
-    from bayesgeo.check_figures import variogram_check_figure
-    from bayesgeo.figures import save_figure
-    from bayesgeo.fitted import read_site
-    from bayesgeo.outputs import add_to_folder, check_addable
-    from bayesgeo.ppcheck import variogram_check
+    from bayesgeo.checks.figures import variogram_check_figure
+    from bayesgeo.explore.figures import save_figure
+    from bayesgeo.fitting.fitted import read_site
+    from bayesgeo.common.outputs import add_to_folder, check_addable
+    from bayesgeo.checks.ppcheck import variogram_check
 
     folder = Path(folder)
     bar = progress(total=3, desc="variogram-check") if progress else None

@@ -10,10 +10,10 @@ divergences, mean step size and leapfrog steps, ranks. Example::
 """
 import argparse, json, time, warnings
 import numpy as np
-from bayesgeo import validation as V
-from bayesgeo.parallel import make_units
-from bayesgeo.sampling import CompiledModel, sample, compile_model
-from bayesgeo.diagnostics import check_convergence
+from bayesgeo.calibration import validation as V
+from bayesgeo.calibration.parallel import make_units
+from bayesgeo.fitting.sampling import CompiledModel, sample, compile_model
+from bayesgeo.convergence.diagnostics import check_convergence
 import pymc as pm
 
 ap = argparse.ArgumentParser()

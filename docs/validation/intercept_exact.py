@@ -1,16 +1,16 @@
 """Intercept ranks under its exact conditional posterior (no MCMC): the check behind item 3 of
 "Intercept ranks" in docs/validation.md.
 
-Truths come from the SBC model's prior draws, data from bayesgeo.validation.simulate_data, and the
+Truths come from the SBC model's prior draws, data from bayesgeo.calibration.validation.simulate_data, and the
 intercept is drawn from N(V F^T K^-1 y, V), V = (F^T K^-1 F + I / b^2)^-1, given the true
 covariance parameters; a wrong prior sd (1.0) is the negative control.
 
 Usage: python docs/validation/intercept_exact.py POINTS REPLICATES SEED NUGGET(0/1)
 """
 import sys, warnings, numpy as np, pymc as pm
-from bayesgeo import validation as V
-from bayesgeo.covariance import get_covariance
-from bayesgeo.likelihood import covariance_matrix
+from bayesgeo.calibration import validation as V
+from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.gp.dense import covariance_matrix
 n_pts, reps, seed, nug = int(sys.argv[1]), int(sys.argv[2]), int(sys.argv[3]), bool(int(sys.argv[4]))
 tpl = V.generated_layout(n_pts, seed=7)
 model, blocks, spec = V.sbc_model(tpl, V.SBCConfig(nugget=nug))

@@ -4,9 +4,9 @@ SBC coverage of the trend intercept (the experiment behind "Intercept ranks" in 
 The full-mode SBC of the single-site model (Matérn 3/2 with nugget, 60 generated points, layout
 seed 7, 2 chains x (500 tune + 500 draws), L = 99) found the intercept's central 50% interval
 covering the truth about 59% of the time. This script refits SBC replicates *exactly* as
-:func:`bayesgeo.validation.simulation_based_calibration` does (it calls that very function, chunk by
-chunk, with a wrapper around :func:`bayesgeo.sampling.sample` and
-:func:`bayesgeo.validation.simulate_data` that keeps the posterior draws and the simulated data), and
+:func:`bayesgeo.calibration.validation.simulation_based_calibration` does (it calls that very function, chunk by
+chunk, with a wrapper around :func:`bayesgeo.fitting.sampling.sample` and
+:func:`bayesgeo.calibration.validation.simulate_data` that keeps the posterior draws and the simulated data), and
 then compares, per replicate:
 
 * raw coverage: the SBC's own rule (the truth inside the central a-interval of ``np.quantile`` of
@@ -17,7 +17,7 @@ then compares, per replicate:
   m = v F^T K^-1 y (Gaussian linear model with known covariance and conjugate prior N(0, b^2 I):
   Rasmussen and Williams 2006, *Gaussian Processes for Machine Learning*, sec. 2.7, explicit basis
   functions, cited from memory; the same formula as intercept_exact.py), K from
-  :func:`bayesgeo.likelihood.covariance_matrix` (jitter 1e-6 x partial sill on the diagonal, as the
+  :func:`bayesgeo.gp.dense.covariance_matrix` (jitter 1e-6 x partial sill on the diagonal, as the
   model's likelihood kernel adds it). ``u_rb`` = mean over draws of Phi((beta* - m) / sqrt(v)); the
   50% interval covers iff 0.25 < u_rb < 0.75, the 90% iff 0.05 < u_rb < 0.95. Under the exact
   posterior u_rb is Uniform(0, 1) across replicates (probability integral transform);
@@ -60,8 +60,7 @@ _LEVELS = (0.5, 0.9)
 
 
 def _setup(a):
-    from bayesgeo import validation as V
-
+    from bayesgeo.calibration import validation as V
     base = V.QUICK if a.mode == "quick" else V.FULL
     cfg = V.with_settings(base, kind="single", covariance="matern32", nugget=True)
     tpl = V.generated_layout(a.points or (28 if a.mode == "quick" else 60), seed=a.layout_seed)
@@ -71,7 +70,7 @@ def _setup(a):
 
 def _sbc_chunk(V, cfg, tpl, replicates, seed):
     """The SBC's own result for one chunk, plus every fit's tree and the simulated (truth, y)."""
-    import bayesgeo.sampling as S
+    import bayesgeo.fitting.sampling as S
 
     trees, sims = [], []
     orig_sample, orig_sim = S.sample, V.simulate_data
@@ -99,7 +98,7 @@ def _conditional(dist, F, y, cov, spec, prange, sd, nug, b):
     """m and v of the intercept given theta (Bayesian linear model with known K), and the factor."""
     from scipy.linalg import cho_factor, cho_solve
 
-    from bayesgeo.likelihood import covariance_matrix
+    from bayesgeo.gp.dense import covariance_matrix
 
     k = covariance_matrix(dist, cov, prange / spec.range_factor, sd**2, 0.0 if nug is None else nug**2)
     cf = cho_factor(k, lower=True, check_finite=False)
@@ -123,7 +122,7 @@ def _fixed_model(n, p, b):
     """beta_z ~ N(0, b); z ~ N(g beta, I) with z = L^-1 y, g = L^-1 F swapped per replicate."""
     import pymc as pm
 
-    from bayesgeo.sampling import compile_model
+    from bayesgeo.fitting.sampling import compile_model
 
     with pm.Model(coords={"term": list(range(p))}) as m:
         z = pm.Data("z", np.zeros(n))
@@ -146,9 +145,9 @@ def _analyse(V, cfg, block, spec, res, trees, sims, fixed):
     from scipy.linalg import solve_triangular
     from scipy.stats import norm
 
-    from bayesgeo.covariance import get_covariance
-    from bayesgeo.diagnostics import check_convergence
-    from bayesgeo.sampling import CompiledModel, sample
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.convergence.diagnostics import check_convergence
+    from bayesgeo.fitting.sampling import CompiledModel, sample
 
     cov = get_covariance(spec.covariance)
     F, dist, b = block["design"], block["dist"], float(spec.priors.beta_sd)
@@ -277,7 +276,7 @@ def _exact(a) -> None:
     import pymc as pm
     from scipy.stats import binomtest, chisquare, norm
 
-    from bayesgeo.covariance import get_covariance
+    from bayesgeo.gp.covariance import get_covariance
 
     V, cfg, tpl, block, spec = _setup(a)
     model, _, _ = V.sbc_model(tpl, cfg)
@@ -383,7 +382,7 @@ def _merge(a) -> None:
                                            [ref["verdicts"][i] for i in idx])))}
     cfg = json.loads(parts[0].attrs.get("config", "{}"))
     if not cfg:  # chunks saved before the attribute existed were all run with the default (full) settings
-        from bayesgeo.validation import FULL, with_settings
+        from bayesgeo.calibration.validation import FULL, with_settings
 
         cfg = with_settings(FULL, kind="single", covariance="matern32", nugget=True).to_dict()
     summary["setting"] = {"mode": parts[0].attrs.get("mode", "full"), "points": int(parts[0].attrs.get("points", 60)),

@@ -5,7 +5,7 @@
 run of several hours is easier to follow, and to cut short honestly, when it is split into
 chunks of replicates with their own seeds. Replicates of different chunks are independent draws
 of the same SBC experiment, so their ranks and coverage indicators pool into one result
-(``xarray.concat`` along ``replicate``), summarised by :func:`bayesgeo.validation.sbc_summary`.
+(``xarray.concat`` along ``replicate``), summarised by :func:`bayesgeo.calibration.validation.sbc_summary`.
 
 Usage (one process per model configuration; each compiles its model once)::
 
@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from bayesgeo.validation import FULL, generated_layout, sbc_summary, simulation_based_calibration, with_settings
+from bayesgeo.calibration.validation import FULL, generated_layout, sbc_summary, simulation_based_calibration, with_settings
 
 
 def _run(a) -> None:
@@ -62,7 +62,7 @@ def _run(a) -> None:
 
 
 def _merge(a) -> None:
-    from bayesgeo.validation_report import coverage_figure, rank_figure
+    from bayesgeo.calibration.report import coverage_figure, rank_figure
 
     out = Path(a.out)
     groups: dict[str, list[Path]] = {}
@@ -88,7 +88,7 @@ def _merge(a) -> None:
                         "ranks": res["rank"].values.tolist(), "truth": res["truth"].values.tolist(),
                         "quantity_order": [str(q) for q in res["quantity"].values],
                         "verdicts": [str(v) for v in res["verdict"].values]}
-    from bayesgeo.io import to_jsonable
+    from bayesgeo.common.io import to_jsonable
 
     (out / "full.json").write_text(json.dumps(to_jsonable(report), indent=1), encoding="utf-8")
     for stem, r in report.items():

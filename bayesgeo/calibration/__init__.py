@@ -1,0 +1,1 @@
+"""Simulation-based calibration of the fitting stage."""

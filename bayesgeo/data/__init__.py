@@ -1,0 +1,1 @@
+"""Data intake: sample points, prediction targets, covariate design and the invented demo data."""

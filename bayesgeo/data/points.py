@@ -1,0 +1,427 @@
+"""Point-data intake: a CSV (or one of our own NetCDF files) into one ``xarray.Dataset``.
+
+The result has one dimension, ``obs``, with coordinates ``x``, ``y`` (and ``site`` when a site
+column is given) and ``row`` (the 1-based spreadsheet row of each point in the input file, the
+header being row 1), the measured ``value`` and any covariates as data variables. Units, the
+coordinate system and the source file are kept in attributes. The input file is only read.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections import defaultdict
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from bayesgeo.common.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, numeric_column, read_table
+from bayesgeo.common.geometry import continuous_longitudes, cross_distance
+from bayesgeo.common.outputs import sha256_file
+from bayesgeo.common.validate import InputError, check_choice, format_rows
+
+__all__ = ["MIN_POINTS", "TRANSFORMS", "read_points", "points_dataset", "sites_of", "apply_transform"]
+
+#: Value transforms: ``None`` (values as they are) or ``"log"`` (natural logarithm).
+TRANSFORMS = (None, "log")
+
+#: Fewest points per site for a spatial analysis (fewer cannot pin down a variogram).
+MIN_POINTS = 10
+
+_X_NAMES = ("x", "easting", "east", "e", "lon", "longitude", "long")
+_Y_NAMES = ("y", "northing", "north", "n", "lat", "latitude")
+_LONLAT_NAMES = {"lon", "longitude", "long", "lat", "latitude"}
+COORDS = ("auto", "xy", "lonlat")
+DUPLICATES = ("error", "mean")
+SMALL_SITES = ("error", "keep")
+_POOLED_MIN = 3
+
+
+def _detect(header: Sequence[str], names: Sequence[str], what: str, option: str, src: str) -> str:
+    lower = {h.strip().lower(): h for h in header}
+    for n in names:
+        if n in lower:
+            return lower[n]
+    raise InputError(
+        f"{src}: no {what} column found (looked for {', '.join(names)}); "
+        f"name it with {option} (columns: {', '.join(header)})"
+    )
+
+
+def _require(header: Sequence[str], col: str, option: str, src: str) -> str:
+    if col not in header:
+        raise InputError(f"{src}: column {col!r} ({option}) not found; columns are: {', '.join(header)}")
+    return col
+
+
+def read_points(
+    path: str | Path,
+    *,
+    x: str | None = None,
+    y: str | None = None,
+    value: str | None = None,
+    site: str | None = None,
+    covariates: Sequence[str] = (),
+    coords: str = "auto",
+    duplicates: str = "error",
+    units: str | None = None,
+    distance_units: str | None = None,
+    crs: str | None = None,
+    only_site: str | None = None,
+    small_sites: str = "error",
+) -> xr.Dataset:
+    """Read point measurements into a ``Dataset`` along ``obs``.
+
+    Parameters
+    ----------
+    path : str or Path
+        A CSV file with a header row, or a NetCDF file written by bayesgeo (``.nc``).
+    x, y : str, optional
+        Location columns. Detected when omitted (x/easting/lon, y/northing/lat).
+    value : str, optional
+        Measured value column; detected when exactly one numeric column is left over.
+    site : str, optional
+        Column labelling the site of each point (for several-site analyses).
+    covariates : sequence of str
+        Extra numeric columns kept as covariates for the trend.
+    coords : {"auto", "xy", "lonlat"}
+        ``xy``: planar coordinates, Euclidean distances in coordinate units. ``lonlat``: degrees,
+        great-circle distances in km; longitudes written -180..180 or 0..360, re-expressed as one
+        continuous range when the data cross 180 degrees (``attrs["longitude_convention"]``).
+        ``auto`` (default) is ``xy`` but refuses coordinates that all lie in the degree box
+        (|lat| <= 90, lon in [-180, 180] or [0, 360]), so degrees are never silently treated as
+        planar units.
+    duplicates : {"error", "mean"}
+        Points sharing a location: an error listing the rows, or averaged into one point.
+    units : str, optional
+        Units of the measured value (e.g. ``"mg/kg"``), recorded in attributes.
+    distance_units : str, optional
+        Units of planar coordinates (e.g. ``"m"``); with ``coords="lonlat"`` distances are in km
+        and this must be omitted or ``"km"``.
+    crs : str, optional
+        Coordinate reference system label, recorded in attributes.
+    only_site : str, optional
+        Keep the rows of this one site (needs ``site``); checks then apply to that site alone.
+    small_sites : {"error", "keep"}
+        A site with fewer than :data:`MIN_POINTS` points is an error (default), or is kept
+        (``"keep"``, for a hierarchical model that lets it borrow strength from the others; it
+        still needs 3 points, and at least one site must have :data:`MIN_POINTS`).
+
+    Returns
+    -------
+    xarray.Dataset
+
+    Raises
+    ------
+    InputError
+        One-line message naming the file, row(s) and column of bad input (the CSV rules are in
+        :mod:`bayesgeo.common.csvtable` and docs/data_files.md).
+
+    Warns
+    -----
+    InputWarning
+        Site labels stripped of surrounding spaces (naming the rows).
+    """
+    check_choice(coords, COORDS, "coords")
+    check_choice(duplicates, DUPLICATES, "duplicates")
+    check_choice(small_sites, SMALL_SITES, "small_sites")
+    path = Path(path)
+    src = str(path)
+    if not path.is_file():
+        raise InputError(f"{src}: file not found")
+    if path.suffix.lower() in (".nc", ".nc4", ".netcdf"):
+        return _read_netcdf(path)
+    table = read_table(path)
+    header, body = table.header, table.rows
+    if not body:
+        raise InputError(f"{src}: no data rows below the header")
+
+    xcol = _require(header, x, "--x", src) if x else _detect(header, _X_NAMES, "x (easting/longitude)", "--x", src)
+    ycol = _require(header, y, "--y", src) if y else _detect(header, _Y_NAMES, "y (northing/latitude)", "--y", src)
+    sitecol = _require(header, site, "--site", src) if site else None
+    covs = [_require(header, c, "--covariate", src) for c in covariates]
+    vcol = _require(header, value, "--value", src) if value else guess_value(table, {xcol, ycol, sitecol, *covs})
+
+    numeric = {c: numeric_column(table, c) for c in dict.fromkeys((xcol, ycol, vcol, *covs))}
+    _check_spread(numeric, [r for r, _ in body], src)
+    file_rows = np.array([r for r, _ in body])
+    lonlat = coords == "lonlat"
+    if lonlat and distance_units not in (None, "km"):
+        raise InputError(f"distance_units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
+    if coords == "auto":  # on every row of the file: degrees or not is a property of the file, not of a site
+        _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
+    frame = ""
+    if lonlat:
+        _check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
+        numeric[xcol] = continuous_longitudes(numeric[xcol])
+        frame = "0..360" if numeric[xcol].max() > 180.0 else "-180..180"
+
+    sites = None
+    if sitecol is not None:
+        sites = np.array(_site_labels(table, sitecol), dtype=object)
+        empty = file_rows[sites == ""]
+        if empty.size:
+            raise InputError(f"{src}: empty cells in column {sitecol!r} at rows {format_rows(empty)}")
+        sites = sites.astype(str)
+        if only_site is not None:
+            keep = sites == only_site
+            if not keep.any():
+                labels = ", ".join(dict.fromkeys(sites.tolist()))
+                raise InputError(f"{src}: --only-site: no site {only_site!r} in column {sitecol!r} (sites: {labels})")
+            sites, file_rows = sites[keep], file_rows[keep]
+            numeric = {c: v[keep] for c, v in numeric.items()}
+    elif only_site is not None:
+        raise InputError(f"{src}: --only-site needs --site COL naming the site column")
+
+    attrs = {
+        "source": path.name,
+        "source_sha256": sha256_file(path),
+        "x_column": xcol,
+        "y_column": ycol,
+        "value_column": vcol,
+        "site_column": sitecol or "",
+        "covariates": list(covs),
+        "coords": "lonlat" if lonlat else "xy",
+        "distance_units": "km" if lonlat else (distance_units or "coordinate units"),
+        "value_units": units or "",
+        "crs": crs or ("EPSG:4326 (lon/lat)" if lonlat else ""),
+        "duplicates": duplicates,
+    }
+    if lonlat:
+        attrs["longitude_convention"] = frame
+    ds = points_dataset(
+        numeric[xcol], numeric[ycol], numeric[vcol],
+        site=sites, covariates={c: numeric[c] for c in covs}, rows=file_rows, attrs=attrs,
+    )
+    return _finish(ds, src, duplicates, small_sites)
+
+
+def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None) -> xr.Dataset:
+    """Assemble the intake ``Dataset`` from arrays (no checks; see :func:`read_points`)."""
+    n = len(value)
+    coords = {
+        "x": ("obs", np.asarray(x, dtype=float)),
+        "y": ("obs", np.asarray(y, dtype=float)),
+        "row": ("obs", np.arange(2, n + 2) if rows is None else np.asarray(rows, dtype=np.int64)),
+    }
+    if site is not None:
+        coords["site"] = ("obs", np.asarray(site, dtype=str))
+    data = {"value": ("obs", np.asarray(value, dtype=float))}
+    for name, col in (covariates or {}).items():
+        data[name] = ("obs", np.asarray(col, dtype=float))
+    ds = xr.Dataset(data, coords=coords, attrs=dict(attrs or {}))
+    ds["value"].attrs["units"] = ds.attrs.get("value_units", "")
+    ds["row"].attrs["long_name"] = "row in the input file (header = row 1)"
+    return ds
+
+
+def sites_of(ds: xr.Dataset) -> list[str]:
+    """Site labels in order of first appearance (``[""]`` for a single-site data set)."""
+    if "site" not in ds.coords:
+        return [""]
+    labels = ds["site"].values
+    _, first = np.unique(labels, return_index=True)
+    return [str(labels[i]) for i in sorted(first)]
+
+
+def apply_transform(ds: xr.Dataset, transform: str | None) -> xr.Dataset:
+    """Return a copy of ``ds`` whose ``value`` is transformed (``"log"``: natural logarithm).
+
+    Concentrations are positive and right-skewed, so modelling their logarithm is common practice.
+    The copy records ``attrs["transform"]`` and labels the units ``log(<units>)``.
+
+    Raises
+    ------
+    InputError
+        Unknown transform, or zero/negative values under ``"log"`` (naming the rows and column).
+    """
+    if transform in ("none", ""):
+        transform = None
+    if transform not in TRANSFORMS:
+        raise InputError(f"transform: {transform!r} is not one of: none, log")
+    out = ds.copy()
+    out.attrs["transform"] = transform or "none"
+    if transform is None:
+        return out
+    z = np.asarray(ds["value"].values, dtype=float)
+    bad = z <= 0
+    if np.any(bad):
+        col = ds.attrs.get("value_column", "value")
+        raise InputError(
+            f"{ds.attrs.get('source') or 'data'}: --transform log needs positive values; column {col!r} has "
+            f"zero or negative values at rows {format_rows(ds['row'].values[bad])}"
+        )
+    units = ds.attrs.get("value_units", "") or "value units"
+    out["value"] = ("obs", np.log(z), {**ds["value"].attrs, "units": f"log({units})"})
+    return out
+
+
+def _site_labels(table, col: str) -> list[str]:
+    """Site labels stripped of surrounding spaces (a warning names the rows); labels that differ only in
+    spaces or only in letter case are refused, naming the rows of each spelling."""
+    j = table.header.index(col)
+    rows = [r for r, _ in table.rows]
+    raw = [cells[j] for _, cells in table.rows]
+    _refuse_spellings(table.src, col, rows, raw, str.strip, "spaces",
+                      "Write each site's label the same way in every row")
+    changed = [(r, c) for r, c in zip(rows, raw) if c != c.strip() and c.strip()]
+    if changed:
+        shown = ", ".join(dict.fromkeys(repr(c) for _, c in changed[:3]))
+        warnings.warn(
+            f"{table.src}: column {col!r} has labels with leading or trailing spaces ({shown}) at rows "
+            f"{format_rows([r for r, _ in changed])}; the spaces were removed", InputWarning, stacklevel=3)
+    labels = [c.strip() for c in raw]
+    _refuse_spellings(table.src, col, rows, labels, str.casefold, "letter case",
+                      "Relabel so that they differ in more than case (per-site output files would collide on "
+                      "Windows and macOS file systems)")
+    return labels
+
+
+def _refuse_spellings(src: str, col: str, rows, labels, key, what: str, advice: str) -> None:
+    """Refuse labels that are one label under ``key`` but spelled differently, naming each spelling's rows."""
+    spellings: dict[str, dict[str, list[int]]] = defaultdict(dict)
+    for r, lb in zip(rows, labels):
+        spellings[key(lb)].setdefault(lb, []).append(r)
+    for group in spellings.values():
+        if len(group) > 1:
+            shown = " and ".join(f"{lb!r} (rows {format_rows(rs, limit=3)})" for lb, rs in list(group.items())[:3])
+            raise InputError(f"{src}: column {col!r} has labels differing only in {what}: {shown}; one site typed "
+                             f"two ways, or two sites? {advice}")
+
+
+def _check_spread(numeric: dict, rows: list[int], src: str) -> None:
+    """Refuse columns whose spread is so small that powers of differences (sill, its variance) underflow."""
+    for col, v in numeric.items():
+        spread = float(np.ptp(v)) if v.size else 0.0
+        if 0.0 < spread < 1.0 / MAX_MAGNITUDE:
+            raise InputError(
+                f"{src}: column {col!r} varies by only {spread:g} (rows {format_rows(rows)}); below "
+                f"{1.0 / MAX_MAGNITUDE:g} powers of the differences underflow in double precision; rescale the "
+                "column (other units)")
+
+
+def _refuse_lonlat_lookalike(xv, yv, xcol, ycol, src) -> None:
+    """Under ``--coords auto``, refuse coordinates that could be degrees.
+
+    Values alone cannot tell a 20 x 10 degree region from a 20 x 10 m plot, and treating degrees
+    as planar units silently gives wrong distances (a degree of longitude shrinks with latitude).
+    So coordinates that all lie in the degree box (|lat| <= 90 and lon in [-180, 180] or
+    [0, 360]) need ``--coords lonlat`` or ``--coords xy``, whatever their span or column names.
+    """
+    in_lat = np.all(np.abs(yv) <= 90.0)
+    in_lon = np.all(np.abs(xv) <= 180.0) or np.all((xv >= 0.0) & (xv <= 360.0))
+    if not (in_lat and in_lon):
+        return
+    lon = continuous_longitudes(xv)
+    ymid = 0.5 * (yv.min() + yv.max())
+    xmid = 0.5 * (lon.min() + lon.max())
+    width = float(cross_distance([[lon.min(), ymid]], [[lon.max(), ymid]], "greatcircle")[0, 0])
+    height = float(cross_distance([[xmid, yv.min()]], [[xmid, yv.max()]], "greatcircle")[0, 0])
+    raise InputError(
+        f"{src}: columns {xcol!r}, {ycol!r} look like longitude/latitude (x in [{xv.min():g}, {xv.max():g}], "
+        f"y in [{yv.min():g}, {yv.max():g}]: as degrees about {width:,.0f} x {height:,.0f} km, as planar units "
+        f"a {np.ptp(xv):g} x {np.ptp(yv):g} site); pass --coords lonlat for great-circle distances in km, "
+        "or --coords xy if they are planar"
+    )
+
+
+def _check_lonlat_ranges(xv, yv, rows, xcol, ycol, src) -> None:
+    bad = rows[(xv < -180.0) | (xv > 360.0)]
+    if bad.size:
+        raise InputError(
+            f"{src}: column {xcol!r} is outside [-180, 360] degrees at rows {format_rows(bad)} "
+            "(--coords lonlat expects longitude in degrees, written -180..180 or 0..360)"
+        )
+    bad = rows[np.abs(yv) > 90.0]
+    if bad.size:
+        raise InputError(
+            f"{src}: column {ycol!r} is outside [-90, 90] degrees at rows {format_rows(bad)} "
+            "(--coords lonlat expects latitude in degrees)"
+        )
+
+
+def _finish(ds: xr.Dataset, src: str, duplicates: str, small_sites: str = "error") -> xr.Dataset:
+    ds = _handle_duplicates(ds, src, duplicates)
+    vcol = ds.attrs.get("value_column", "value")
+    labels = sites_of(ds)
+    keep_small = small_sites == "keep" and len(labels) > 1
+    counts = {lb: int(np.sum(ds["site"].values == lb)) if lb else ds.sizes["obs"] for lb in labels}
+    if keep_small and max(counts.values()) < MIN_POINTS:
+        raise InputError(f"{src}: no site has {MIN_POINTS} points (largest: {max(counts.values())}); "
+                         "small sites can borrow strength only from larger ones")
+    for label in labels:
+        part = ds if label == "" else ds.isel(obs=np.flatnonzero(ds["site"].values == label))
+        where = "" if label == "" else f" at site {label!r}"
+        need = _POOLED_MIN if keep_small else MIN_POINTS
+        if part.sizes["obs"] < need:
+            hint = "" if keep_small or len(labels) == 1 else " (or --small-sites keep to keep it in a hierarchical fit)"
+            raise InputError(
+                f"{src}: only {part.sizes['obs']} points{where} (rows {format_rows(part['row'].values)}); "
+                f"a spatial analysis needs at least {need} per site{hint}"
+            )
+        if part.sizes["obs"] < MIN_POINTS:
+            continue  # a small pooled site may well have equal values
+        v = part["value"].values
+        if np.all(v == v[0]):
+            raise InputError(f"{src}: every value in column {vcol!r}{where} equals {v[0]:g}; nothing varies to model")
+    return ds
+
+
+def _handle_duplicates(ds: xr.Dataset, src: str, duplicates: str) -> xr.Dataset:
+    site = ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "")
+    groups: dict[tuple, list[int]] = defaultdict(list)
+    for i, key in enumerate(zip(ds["x"].values, ds["y"].values, site)):
+        groups[key].append(i)
+    dup = [g for g in groups.values() if len(g) > 1]
+    if not dup:
+        return ds
+    rows = ds["row"].values
+    if duplicates == "error":
+        listed = "; ".join(format_rows(rows[g], limit=4) for g in dup[:5])
+        more = f"; ... ({len(dup)} locations)" if len(dup) > 5 else ""
+        raise InputError(
+            f"{src}: duplicate locations in columns {ds.attrs['x_column']!r}, {ds.attrs['y_column']!r} "
+            f"at rows {listed}{more}; pass --duplicates mean to average them"
+        )
+    keep = [g[0] for g in groups.values()]
+    out = ds.isel(obs=np.array(sorted(keep)))
+    for name in out.data_vars:
+        vals = out[name].values.copy()
+        for g in dup:
+            vals[sorted(keep).index(g[0])] = ds[name].values[g].mean()
+        out[name] = ("obs", vals, ds[name].attrs)
+    out.attrs["duplicates_averaged"] = int(sum(len(g) - 1 for g in dup))
+    return out
+
+
+def _read_netcdf(path: Path) -> xr.Dataset:
+    src = str(path)
+    try:
+        ds = xr.load_dataset(path)
+    except Exception as err:  # noqa: BLE001 - any reader failure is bad input here
+        raise InputError(f"{src}: not a readable NetCDF file ({type(err).__name__}: {err})") from None
+    missing = [v for v in ("x", "y", "value") if v not in ds.variables]
+    if "obs" not in ds.dims or missing:
+        raise InputError(
+            f"{src}: not a bayesgeo point file (needs dimension 'obs' and variables x, y, value; "
+            f"missing: {', '.join(missing) or 'dimension obs'})"
+        )
+    if "row" not in ds.coords:
+        ds = ds.assign_coords(row=("obs", np.arange(2, ds.sizes["obs"] + 2)))
+    for name in ("x", "y", "value"):
+        bad = ds["row"].values[~np.isfinite(ds[name].values)]
+        if bad.size:
+            raise InputError(f"{src}: variable {name!r} has NaN or infinite values at rows {format_rows(bad)}")
+        bad = ds["row"].values[np.abs(ds[name].values) > MAX_MAGNITUDE]
+        if bad.size:
+            raise InputError(f"{src}: variable {name!r} exceeds {MAX_MAGNITUDE:g} in magnitude at rows "
+                             f"{format_rows(bad)} (powers and sums must stay finite); rescale it (other units)")
+    ds.attrs.setdefault("coords", "xy")
+    ds.attrs.setdefault("distance_units", "coordinate units")
+    ds.attrs.setdefault("value_column", "value")
+    ds.attrs.setdefault("x_column", "x")
+    ds.attrs.setdefault("y_column", "y")
+    ds.attrs["source"] = path.name
+    ds.attrs["source_sha256"] = sha256_file(path)
+    return _finish(ds, src, ds.attrs.get("duplicates", "error"))

@@ -1,0 +1,2 @@
+"""Exploratory stage: binned semivariograms and correlograms, trend surfaces, quick
+maximum-likelihood fits and their figures."""

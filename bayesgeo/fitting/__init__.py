@@ -1,0 +1,1 @@
+"""The Bayesian fit: priors, PyMC models (single- and several-site), sampling and the fit object."""

@@ -1,0 +1,118 @@
+"""Figures of prediction maps: predictive mean, sd and exceedance probability per threshold.
+
+Each figure shows the sample locations and carries the prediction caution in its footer. Colour
+maps are matplotlib's perceptually uniform ``viridis`` (mean, sd) and ``cividis`` (probabilities,
+fixed to 0-1). Grids are drawn cell by cell; point targets as coloured dots.
+"""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from bayesgeo.common.io import atomic_file
+
+__all__ = ["NOT_CONVERGED", "map_figure", "write_map_figures"]
+
+#: Marker put in titles and file attributes when an unconverged posterior is shown on request.
+NOT_CONVERGED = "NOT CONVERGED"
+
+
+def _edges(c: np.ndarray) -> np.ndarray:
+    if c.size == 1:
+        return np.array([c[0] - 0.5, c[0] + 0.5])
+    mid = 0.5 * (c[1:] + c[:-1])
+    return np.concatenate([[2 * c[0] - mid[0]], mid, [2 * c[-1] - mid[-1]]])
+
+
+def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None, samples_xy=None,
+               title: str = "", caution: str = "", not_converged: bool = False):
+    """One map of ``pred[variable]`` (``p_exceed`` needs the ``threshold`` index).
+
+    Parameters
+    ----------
+    pred : xarray.Dataset
+        Output of :func:`bayesgeo.predict.prediction.predict_targets`.
+    variable : str
+        ``mean``, ``sd``, ``q05``, ``q50``, ``q95`` or ``p_exceed``.
+    threshold : int, optional
+        Index along ``threshold`` for ``p_exceed``.
+    samples_xy : array (n, 2), optional
+        Sample locations drawn on the map.
+    title : str
+    caution : str
+        Footer text (wrapped).
+    not_converged : bool
+        Prefix the title with ``NOT CONVERGED``.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.figure import Figure
+
+    da = pred[variable]
+    if variable == "p_exceed":
+        da = da.isel(threshold=int(threshold))
+        cmap, vmin, vmax = "cividis", 0.0, 1.0
+    else:
+        cmap, vmin, vmax = "viridis", None, None
+    fig = Figure(figsize=(7.0, 6.6), layout="constrained")
+    ax = fig.add_subplot()
+    if pred.attrs.get("target_kind") == "grid":
+        x, y = pred["x"].values, pred["y"].values
+        im = ax.pcolormesh(_edges(x), _edges(y), np.ma.masked_invalid(da.values), cmap=cmap, vmin=vmin, vmax=vmax,
+                           shading="flat")
+    else:
+        im = ax.scatter(pred["x"].values, pred["y"].values, c=da.values, cmap=cmap, vmin=vmin, vmax=vmax, s=36,
+                        marker="s", linewidths=0)
+    label = da.attrs.get("long_name", variable)
+    units = da.attrs.get("units", "")
+    cb = fig.colorbar(im, ax=ax, shrink=0.85)
+    cb.set_label(f"{variable} [{units}]" if units and units != "1" else variable)
+    if samples_xy is not None:
+        s = np.asarray(samples_xy, dtype=float)
+        ax.scatter(s[:, 0], s[:, 1], s=7, c="white", edgecolors="black", linewidths=0.4, label="samples")
+        ax.legend(loc="upper right", fontsize=7, framealpha=0.8)
+    ax.set_aspect("equal", adjustable="datalim")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    dunits = pred.attrs.get("distance_units", "")
+    ax.set_xlabel(f"x [{dunits}]" if dunits else "x")
+    ax.set_ylabel(f"y [{dunits}]" if dunits else "y")
+    head = f"{NOT_CONVERGED}: " if not_converged else ""
+    ax.set_title(head + (title or label), fontsize=10, color="darkred" if not_converged else "black")
+    if caution:
+        fig.get_layout_engine().set(rect=(0, 0.1, 1, 0.9))
+        fig.text(0.01, 0.01, textwrap.fill(caution, 130), fontsize=6.2, va="bottom", ha="left", color="0.25")
+    return fig
+
+
+def _threshold_label(t: float) -> str:
+    return f"{t:g}".replace("-", "m").replace(".", "p")
+
+
+def write_map_figures(pred: xr.Dataset, folder: str | Path, *, samples_xy=None, caution: str = "",
+                      not_converged: bool = False, overwrite: bool = False) -> list[Path]:
+    """Write ``mean.png``, ``sd.png`` and ``p_exceed_<T>.png`` (one per threshold) into ``folder``.
+
+    Files are written atomically; an existing file is refused unless ``overwrite``.
+    """
+    folder = Path(folder)
+    units = pred["mean"].attrs.get("units", "")
+    what = "new measurement" if pred.attrs.get("nugget_in_prediction", 1) else "field"
+    jobs = [("mean", None, f"Predictive mean of the {what} [{units}]", "mean.png"),
+            ("sd", None, f"Predictive sd of the {what} [{units}]", "sd.png")]
+    for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
+        jobs.append(("p_exceed", j, f"P({what} > {t:g} {units})", f"p_exceed_{_threshold_label(float(t))}.png"))
+    written = []
+    site = f" - site {pred.attrs['site']}" if pred.attrs.get("site") else ""  # the label the folder name may abbreviate
+    for var, j, title, name in jobs:
+        fig = map_figure(pred, var, threshold=j, samples_xy=samples_xy, title=title + site, caution=caution,
+                         not_converged=not_converged)
+        with atomic_file(folder / name, overwrite=overwrite) as tmp:
+            fig.savefig(tmp, format="png", dpi=110)
+        written.append(folder / name)
+    return written

@@ -1,0 +1,1 @@
+"""The report of a study run (HTML and PDF)."""
