@@ -28,7 +28,7 @@ import math
 import numba
 import numpy as np
 
-from bayesgeo.gp.dense import _dlog, _rho
+from bayesgeo.gp.dense import dlog_code, rho_code
 
 from bayesgeo.common.defaults import JITTER
 from bayesgeo.common.defaults import EARTH_RADIUS_KM as _EARTH_RADIUS_KM, LOG_2PI as _LOG2PI
@@ -126,9 +126,9 @@ def nn_logp_grad(code, metric, inv_ds, resid, coords, nbr, phi, s2, t2, grad_r):
             xa = coords[ja, 0]
             ya = coords[ja, 1]
             u = _distance(xi, yi, xa, ya, metric) * inv_ds * inv_phi
-            r = _rho(code, u)
+            r = rho_code(code, u)
             rc[a] = r
-            gc[a] = _dlog(code, u, r)
+            gc[a] = dlog_code(code, u, r)
             b[a] = s2 * r
             yn[a] = resid[ja]
             g[a] = yn[a]
@@ -136,9 +136,9 @@ def nn_logp_grad(code, metric, inv_ds, resid, coords, nbr, phi, s2, t2, grad_r):
             for c in range(a):
                 jc = nbr[i, c]
                 u = _distance(xa, ya, coords[jc, 0], coords[jc, 1], metric) * inv_ds * inv_phi
-                r = _rho(code, u)
+                r = rho_code(code, u)
                 rr[a, c] = r
-                gg[a, c] = _dlog(code, u, r)
+                gg[a, c] = dlog_code(code, u, r)
                 chol[a, c] = s2 * r
         if not _cholesky(chol, k):
             for j in range(n):
@@ -236,11 +236,11 @@ def nn_moments(code, metric, xy_obs, values, design_obs, xy_new, design_new, nbr
             inv_phi = 1.0 / phi[d]
             sd2 = s2[d]
             for a in range(k):
-                c[a] = sd2 * _rho(code, dcn[a] * inv_phi)
+                c[a] = sd2 * rho_code(code, dcn[a] * inv_phi)
                 b[a] = c[a]
                 chol[a, a] = sd2 * (1.0 + jitter) + t2[d]
                 for q in range(a):
-                    chol[a, q] = sd2 * _rho(code, dnn[a, q] * inv_phi)
+                    chol[a, q] = sd2 * rho_code(code, dnn[a, q] * inv_phi)
             mu = 0.0
             for j in range(p):
                 mu += design_new[t, j] * beta[d, j]

@@ -28,13 +28,14 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass, field
-from typing import Callable
+from typing import Callable, NamedTuple
 
 import numpy as np
 from scipy import optimize, special
 
 __all__ = [
     "FAMILIES",
+    "CLOSED_FORMS",
     "KERNEL_FAMILIES",
     "kernel_code",
     "PRACTICAL_RANGE_CORRELATION",
@@ -48,72 +49,112 @@ PRACTICAL_RANGE_CORRELATION = 0.05
 Array = np.ndarray
 
 
-# --- closed-form kernels: correlation rho(u) and -u * rho'(u) = d rho / d log(scale) -------------
+# --- closed-form families: each formula written once -------------------------------------------
+# ``rho(u, xp)`` is the correlation and ``dlog(u, r, xp)`` is -u rho'(u) = d rho / d log(scale) given
+# r = rho(u) (so the derivative reuses the stored correlation: no second exponential). Both are
+# generic in the array namespace ``xp``: NumPy arrays (``xp = numpy``, the ``Covariance`` methods),
+# PyTensor tensors (``xp = pytensor.tensor``, :meth:`Covariance.pt_correlation`) and NumPy scalars
+# inside Numba (:func:`bayesgeo.gp.dense.rho_code`, which serves the dense, kriging and
+# nearest-neighbour kernels). The spherical form clips u at 1, where its polynomial is exactly 0.
 
 
-def _exp_rho(u: Array) -> Array:
-    return np.exp(-u)
+def _exp_rho(u, xp):
+    return xp.exp(-u)
 
 
-def _exp_dlog(u: Array) -> Array:
-    return u * np.exp(-u)
+def _exp_dlog(u, r, xp):
+    return u * r
 
 
-def _m32_rho(u: Array) -> Array:
-    return (1.0 + u) * np.exp(-u)
+def _m32_rho(u, xp):
+    return (1.0 + u) * xp.exp(-u)
 
 
-def _m32_dlog(u: Array) -> Array:
-    return u * u * np.exp(-u)
+def _m32_dlog(u, r, xp):
+    return r * u * u / (1.0 + u)
 
 
-def _m52_rho(u: Array) -> Array:
-    return (1.0 + u + u * u / 3.0) * np.exp(-u)
+def _m52_rho(u, xp):
+    return (1.0 + u + u * u / 3.0) * xp.exp(-u)
 
 
-def _m52_dlog(u: Array) -> Array:
-    return u * u * (1.0 + u) / 3.0 * np.exp(-u)
+def _m52_dlog(u, r, xp):
+    return r * u * u * (1.0 + u) / (3.0 + 3.0 * u + u * u)
 
 
-def _gauss_rho(u: Array) -> Array:
-    return np.exp(-u * u)
+def _gauss_rho(u, xp):
+    return xp.exp(-u * u)
 
 
-def _gauss_dlog(u: Array) -> Array:
-    return 2.0 * u * u * np.exp(-u * u)
+def _gauss_dlog(u, r, xp):
+    return 2.0 * u * u * r
 
 
-def _sph_rho(u: Array) -> Array:
-    v = np.minimum(u, 1.0)
-    return np.where(u < 1.0, 1.0 - 1.5 * v + 0.5 * v**3, 0.0)
+def _sph_rho(u, xp):
+    v = xp.minimum(u, 1.0)
+    return 1.0 - 1.5 * v + 0.5 * v * v * v
 
 
-def _sph_dlog(u: Array) -> Array:
-    v = np.minimum(u, 1.0)
-    return np.where(u < 1.0, 1.5 * v - 1.5 * v**3, 0.0)
+def _sph_dlog(u, r, xp):
+    v = xp.minimum(u, 1.0)
+    return 1.5 * v - 1.5 * v * v * v
 
 
-def _matern_rho(u: Array, nu: float) -> Array:
+class ClosedForm(NamedTuple):
+    """One closed-form family of the table: label, smoothness, formulas, microergodic power."""
+
+    label: str
+    nu: float | None
+    rho: Callable
+    dlog: Callable
+    microergodic_power: float | None
+
+
+#: The one table of closed-form families. Its order is the family code of the Numba kernels
+#: (:data:`KERNEL_FAMILIES`, :func:`kernel_code`).
+CLOSED_FORMS: dict[str, ClosedForm] = {
+    "exponential": ClosedForm("Exponential", 0.5, _exp_rho, _exp_dlog, 1.0),
+    "matern32": ClosedForm("Matérn 3/2", 1.5, _m32_rho, _m32_dlog, 3.0),
+    "matern52": ClosedForm("Matérn 5/2", 2.5, _m52_rho, _m52_dlog, 5.0),
+    "gaussian": ClosedForm("Gaussian", None, _gauss_rho, _gauss_dlog, None),
+    "spherical": ClosedForm("Spherical", None, _sph_rho, _sph_dlog, 1.0),
+}
+
+
+def _numpy_forms(form: ClosedForm) -> tuple[Callable[[Array], Array], Callable[[Array], Array]]:
+    """rho(u) and -u rho'(u) of a closed-form family on NumPy arrays."""
+    def rho(u):
+        return form.rho(np.asarray(u, dtype=float), np)
+
+    def dlog(u):
+        u = np.asarray(u, dtype=float)
+        return form.dlog(u, form.rho(u, np), np)
+
+    return rho, dlog
+
+
+# --- the general Matérn (Bessel form): NumPy/SciPy and PyTensor -----------------------------------
+
+
+def _matern_part(u: Array, nu: float, power: float, order: float, at_zero: float) -> Array:
+    """2^(1 - nu) / Gamma(nu) u^power K_order(u), ``at_zero`` at u = 0 and where it does not evaluate."""
     u = np.asarray(u, dtype=float)
-    out = np.ones_like(u)
+    out = np.full_like(u, at_zero)
     pos = u > 0
     up = u[pos]
     with np.errstate(under="ignore", over="ignore", invalid="ignore"):
-        val = 2.0 ** (1.0 - nu) / special.gamma(nu) * up**nu * special.kv(nu, up)
+        val = 2.0 ** (1.0 - nu) / special.gamma(nu) * up**power * special.kv(order, up)
     out[pos] = np.where(np.isfinite(val), val, 0.0)
     return out
+
+
+def _matern_rho(u: Array, nu: float) -> Array:
+    return _matern_part(u, nu, nu, nu, 1.0)
 
 
 def _matern_dlog(u: Array, nu: float) -> Array:
     # d/du [u^nu K_nu(u)] = -u^nu K_{nu-1}(u)  (Abramowitz and Stegun 9.6.28)
-    u = np.asarray(u, dtype=float)
-    out = np.zeros_like(u)
-    pos = u > 0
-    up = u[pos]
-    with np.errstate(under="ignore", over="ignore", invalid="ignore"):
-        val = 2.0 ** (1.0 - nu) / special.gamma(nu) * up ** (nu + 1.0) * special.kv(nu - 1.0, up)
-    out[pos] = np.where(np.isfinite(val), val, 0.0)
-    return out
+    return _matern_part(u, nu, nu + 1.0, nu - 1.0, 0.0)
 
 
 # --- PyTensor forms (imported lazily: the exploratory stage does not need PyTensor) -------------
@@ -122,23 +163,12 @@ def _matern_dlog(u: Array, nu: float) -> Array:
 def _pt_rho(name: str, u, nu: float | None):
     import pytensor.tensor as pt
 
-    if name == "exponential":
-        return pt.exp(-u)
-    if name == "matern32":
-        return (1.0 + u) * pt.exp(-u)
-    if name == "matern52":
-        return (1.0 + u + u**2 / 3.0) * pt.exp(-u)
-    if name == "gaussian":
-        return pt.exp(-(u**2))
-    if name == "spherical":
-        v = pt.minimum(u, 1.0)
-        return pt.switch(pt.lt(u, 1.0), 1.0 - 1.5 * v + 0.5 * v**3, 0.0)
-    if name == "matern":
-        # kv has a gradient in its second argument only, so nu stays a fixed number.
-        safe = pt.maximum(u, 1e-12)
-        val = 2.0 ** (1.0 - nu) / math.gamma(nu) * safe**nu * pt.kv(nu, safe)
-        return pt.switch(pt.gt(u, 1e-12), val, 1.0)
-    raise AssertionError(name)  # unreachable: names are checked in get_covariance
+    if name in CLOSED_FORMS:
+        return CLOSED_FORMS[name].rho(u, pt)
+    # the general Matérn: kv has a gradient in its second argument only, so nu stays a fixed number.
+    safe = pt.maximum(u, 1e-12)
+    val = 2.0 ** (1.0 - nu) / math.gamma(nu) * safe**nu * pt.kv(nu, safe)
+    return pt.switch(pt.gt(u, 1e-12), val, 1.0)
 
 
 @dataclass(frozen=True)
@@ -236,21 +266,12 @@ def _root_factor(rho: Callable[[Array], Array]) -> float:
     return optimize.brentq(f, 1e-9, hi, xtol=1e-13)
 
 
-_CLOSED = {
-    # name: (label, nu, rho, dlog, microergodic power)
-    "exponential": ("Exponential", 0.5, _exp_rho, _exp_dlog, 1.0),
-    "matern32": ("Matérn 3/2", 1.5, _m32_rho, _m32_dlog, 3.0),
-    "matern52": ("Matérn 5/2", 2.5, _m52_rho, _m52_dlog, 5.0),
-    "gaussian": ("Gaussian", None, _gauss_rho, _gauss_dlog, None),
-    "spherical": ("Spherical", None, _sph_rho, _sph_dlog, 1.0),
-}
-
 #: Names accepted by :func:`get_covariance`.
-FAMILIES: tuple[str, ...] = (*_CLOSED, "matern")
+FAMILIES: tuple[str, ...] = (*CLOSED_FORMS, "matern")
 
 #: The one family-code table of the Numba kernels (likelihood, kriging, nearest-neighbour): family
 #: ``KERNEL_FAMILIES[c]`` is code ``c``. The general ``matern`` (Bessel function) has no code.
-KERNEL_FAMILIES: tuple[str, ...] = ("exponential", "matern32", "matern52", "gaussian", "spherical")
+KERNEL_FAMILIES: tuple[str, ...] = tuple(CLOSED_FORMS)
 
 
 def kernel_code(name: str) -> int | None:
@@ -282,15 +303,13 @@ def get_covariance(name: str, nu: float | None = None) -> Covariance:
     if not isinstance(name, str):
         raise TypeError(f"covariance name must be a string, got {type(name).__name__}")
     key = name.strip().lower()
-    if key in _CLOSED:
+    if key in CLOSED_FORMS:
         if nu is not None:
             raise ValueError(f"covariance {key!r} has a fixed smoothness; nu applies to 'matern' only")
-        label, fam_nu, rho, dlog, power = _CLOSED[key]
-        if key == "spherical":
-            factor = 1.0
-        else:
-            factor = _root_factor(rho)
-        return Covariance(key, fam_nu, label, factor, power, rho, dlog)
+        form = CLOSED_FORMS[key]
+        rho, dlog = _numpy_forms(form)
+        factor = 1.0 if key == "spherical" else _root_factor(rho)
+        return Covariance(key, form.nu, form.label, factor, form.microergodic_power, rho, dlog)
     if key == "matern":
         if nu is None:
             raise ValueError("covariance 'matern' needs its smoothness nu (e.g. nu=1.0)")

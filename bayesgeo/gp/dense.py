@@ -47,7 +47,7 @@ from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache
 from scipy import linalg
 
 from bayesgeo.gp import _lapack
-from bayesgeo.gp.covariance import KERNEL_FAMILIES, Covariance
+from bayesgeo.gp.covariance import CLOSED_FORMS, KERNEL_FAMILIES, Covariance
 from bayesgeo.common.defaults import JITTER, LOG_2PI as _LOG2PI
 
 __all__ = ["FAST_FAMILIES", "JITTER", "covariance_matrix", "loglik_and_grad", "loglik_numpy", "marginal_loglik",
@@ -83,42 +83,42 @@ def loglik_numpy(resid: np.ndarray, dist: np.ndarray, covariance: Covariance, sc
 
 
 # --- Numba kernels ------------------------------------------------------------------------------
-# Each family supplies rho(u) and -u rho'(u) written as rho(u) times a rational function of u, so
-# that d rho / d log(phi) reuses the stored correlation with no second exponential (spherical is a
-# polynomial and computes it directly). The family is a run-time number so one compiled (and
+# The family formulas are those of the one table (:data:`bayesgeo.gp.covariance.CLOSED_FORMS`),
+# compiled here for NumPy scalars. The family is a run-time number so one compiled (and
 # disk-cached) kernel serves all five; the branch is loop-invariant and predictable.
 
-
-@numba.njit(cache=True, inline="always")
-def _rho(code, u):
-    """Correlation rho(u) of family number ``code`` (index in FAST_FAMILIES)."""
-    if code == 0:
-        return math.exp(-u)
-    if code == 1:
-        return (1.0 + u) * math.exp(-u)
-    if code == 2:
-        return (1.0 + u + u * u / 3.0) * math.exp(-u)
-    if code == 3:
-        return math.exp(-u * u)
-    if u < 1.0:
-        return 1.0 - 1.5 * u + 0.5 * u * u * u
-    return 0.0
+_RHO = tuple(numba.njit(inline="always")(CLOSED_FORMS[name].rho) for name in KERNEL_FAMILIES)
+_DLOG = tuple(numba.njit(inline="always")(CLOSED_FORMS[name].dlog) for name in KERNEL_FAMILIES)
+_RHO0, _RHO1, _RHO2, _RHO3, _RHO4 = _RHO
+_DLOG0, _DLOG1, _DLOG2, _DLOG3, _DLOG4 = _DLOG
 
 
 @numba.njit(cache=True, inline="always")
-def _dlog(code, u, r):
-    """-u rho'(u) = d rho / d log(phi), given rho(u) = r."""
+def rho_code(code, u):
+    """Correlation rho(u) of family number ``code`` (:func:`bayesgeo.gp.covariance.kernel_code`)."""
     if code == 0:
-        return u * r
+        return _RHO0(u, np)
     if code == 1:
-        return r * u * u / (1.0 + u)
+        return _RHO1(u, np)
     if code == 2:
-        return r * u * u * (1.0 + u) / (3.0 + 3.0 * u + u * u)
+        return _RHO2(u, np)
     if code == 3:
-        return 2.0 * u * u * r
-    if u < 1.0:
-        return 1.5 * u - 1.5 * u * u * u
-    return 0.0
+        return _RHO3(u, np)
+    return _RHO4(u, np)
+
+
+@numba.njit(cache=True, inline="always")
+def dlog_code(code, u, r):
+    """-u rho'(u) = d rho / d log(phi) of family number ``code``, given rho(u) = r."""
+    if code == 0:
+        return _DLOG0(u, r, np)
+    if code == 1:
+        return _DLOG1(u, r, np)
+    if code == 2:
+        return _DLOG2(u, r, np)
+    if code == 3:
+        return _DLOG3(u, r, np)
+    return _DLOG4(u, r, np)
 
 
 @numba.njit(cache=True, inline="always")
@@ -133,7 +133,7 @@ def _fill(code, dist, inv_phi, s2, diag, work, lower):
             for i in range(ib, ie):
                 j0 = i + 1 if jb == ib else jb
                 for j in range(j0, je):
-                    r = _rho(code, dist[i, j] * inv_phi)
+                    r = rho_code(code, dist[i, j] * inv_phi)
                     work[i, j] = s2 * r
                     if lower:
                         work[j, i] = r
@@ -198,7 +198,7 @@ def _kernel(code, resid, dist, phi, s2, t2, work, addrs, grad_r, extra):
                     w = ai * alpha[j] - work[i, j]
                     r = work[j, i]
                     s_r += w * r
-                    s_g += w * _dlog(code, dist[i, j] * inv_phi, r)
+                    s_g += w * dlog_code(code, dist[i, j] * inv_phi, r)
     s_d = 0.0
     for i in range(n):
         s_d += alpha[i] * alpha[i] - work[i, i]

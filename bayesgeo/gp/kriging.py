@@ -198,23 +198,14 @@ def _kernel():
     if _KERNEL is None:
         import numba
 
+        from bayesgeo.gp.dense import rho_code
+
         @numba.njit(cache=True, nogil=True)
         def fill(d, inv_scale, sill, family, out):
             n, m = d.shape
             for j in range(m):
                 for i in range(n):
-                    u = d[i, j] * inv_scale
-                    if family == 0:
-                        r = np.exp(-u)
-                    elif family == 1:
-                        r = (1.0 + u) * np.exp(-u)
-                    elif family == 2:
-                        r = (1.0 + u + u * u / 3.0) * np.exp(-u)
-                    elif family == 3:
-                        r = np.exp(-u * u)
-                    else:
-                        r = 1.0 - 1.5 * u + 0.5 * u * u * u if u < 1.0 else 0.0
-                    out[i, j] = sill * r
+                    out[i, j] = sill * rho_code(family, d[i, j] * inv_scale)
 
         _KERNEL = fill
     return _KERNEL

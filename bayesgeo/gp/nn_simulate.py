@@ -58,7 +58,7 @@ import numpy as np
 
 from bayesgeo.gp import _nn_kernels as _nb
 from bayesgeo.gp.covariance import Covariance, get_covariance
-from bayesgeo.gp.dense import _rho
+from bayesgeo.gp.dense import rho_code
 from bayesgeo.common.defaults import JITTER
 from bayesgeo.gp.nn import DEFAULT_NEIGHBOURS, _METRICS, _as_xy, _check_order, _family, _ordering, nearest_previous
 
@@ -103,12 +103,12 @@ def _factor_kernel(code, metric, inv_ds, xy, nbr, phi, s2, t2, b_out, f_out):
             ja = nbr[i, a]
             xa = xy[ja, 0]
             ya = xy[ja, 1]
-            c[a] = s2 * _rho(code, _nb._distance(xi, yi, xa, ya, metric) * inv_ds * inv_phi)
+            c[a] = s2 * rho_code(code, _nb._distance(xi, yi, xa, ya, metric) * inv_ds * inv_phi)
             b_out[i, a] = c[a]
             chol[a, a] = diag
             for q in range(a):
                 jq = nbr[i, q]
-                chol[a, q] = s2 * _rho(code, _nb._distance(xa, ya, xy[jq, 0], xy[jq, 1], metric) * inv_ds * inv_phi)
+                chol[a, q] = s2 * rho_code(code, _nb._distance(xa, ya, xy[jq, 0], xy[jq, 1], metric) * inv_ds * inv_phi)
         for a in range(k, m):
             b_out[i, a] = 0.0
         if not _nb._cholesky(chol, k):
