@@ -536,7 +536,7 @@ def test_nn_site_blocks_equal_dense_with_all_neighbours(monkeypatch):
     1988; Katzfuss and Guinness 2021, sec. 2), so the several-site model's log density equals the
     dense model's to rounding at the same point; with m = 3 it differs (the approximation is in
     use). Under approx="auto" only a site above DENSE_LIMIT points gets the nn block."""
-    import bayesgeo.fitting.model as model_module
+    import bayesgeo.gp.engines as engines
     from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
 
     ds, _ = _sites([25, 18, 14], seed=12)
@@ -551,11 +551,11 @@ def test_nn_site_blocks_equal_dense_with_all_neighbours(monkeypatch):
     lp_d = float(dense.compile_logp(mode="FAST_COMPILE")(point))
     assert float(nn.compile_logp(mode="FAST_COMPILE")(point)) == pytest.approx(lp_d, rel=1e-9, abs=1e-8)
     assert abs(float(few.compile_logp(mode="FAST_COMPILE")(point)) - lp_d) > 1e-6
-    monkeypatch.setattr(model_module, "DENSE_LIMIT", 20)
+    monkeypatch.setattr(engines, "DENSE_LIMIT", 20)
     spec, data = site_inputs(ds, approx="auto")
     assert spec.site_approx == ("nn", "dense", "dense") and spec.site_neighbours[0] == 20
     assert data[0].dist is None and data[1].dist.shape == (18, 18)
-    with pytest.raises(InputError, match="--approx nn: the general 'matern' family"):
+    with pytest.raises(InputError, match="approx: the general 'matern' family"):
         site_inputs(ds, covariance="matern", nu=1.0, approx="nn")
 
 

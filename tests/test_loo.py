@@ -19,7 +19,9 @@ from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import points_dataset
 from bayesgeo.data.demo import simulate_field
 from bayesgeo.gp.dense import covariance_matrix
-from bayesgeo.checks.loo import add_log_likelihood, fit_arrays, gp_loo, loo_predictive, pointwise_loo_loglik
+from bayesgeo.checks.loo import add_log_likelihood, loo_predictive, pointwise_loo_loglik
+from bayesgeo.fitting.arrays import fit_arrays
+from bayesgeo.gp.dense_loo import gp_loo
 from bayesgeo.fitting.model import model_inputs
 from bayesgeo.common.validate import InputError
 
@@ -348,7 +350,7 @@ def test_site_loo_equals_block_diagonal_conditioning():
     form reaches correlation 0.05 at 4.744 phi)."""
     from scipy.linalg import block_diag
 
-    from bayesgeo.checks.loo import site_fit_arrays
+    from bayesgeo.fitting.arrays import site_fit_arrays
 
     ds = simulated_sites((11, 13, 10), log=True, seed=21)
     tree = make_site_fit(ds, pooling="hierarchical", transform="log", ndraw=4, spread=0.3)
@@ -390,7 +392,7 @@ def test_site_psis_loo_equals_exact_refits():
     bayesgeo.checks.modelcheck.fit_loo; Vehtari, Gelman and Gabry 2017) must agree with the sum of the
     refits within Monte Carlo error, in total and per site (over seeds 3-7 of the level draws the
     total differed by -0.035 to +0.019 and each site by at most 0.018: tolerances 0.08 and 0.05)."""
-    from bayesgeo.checks.loo import site_fit_arrays
+    from bayesgeo.fitting.arrays import site_fit_arrays
     from bayesgeo.checks.modelcheck import fit_loo
 
     ds = simulated_sites((12, 10, 14), seed=5)
@@ -429,7 +431,7 @@ def test_site_psis_loo_equals_exact_refits():
 def test_site_fit_arrays_refuses_what_is_not_a_site_fit():
     """A single-site fit is not a several-site fit; a several-site fit whose observed data lost
     the site labels is refused with a one-line InputError."""
-    from bayesgeo.checks.loo import any_fit_arrays, is_site_fit, site_fit_arrays
+    from bayesgeo.fitting.arrays import any_fit_arrays, is_site_fit, site_fit_arrays
 
     single = make_fit(simulated(15, seed=7), ndraw=2)
     assert not is_site_fit(single)

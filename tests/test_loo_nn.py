@@ -1,9 +1,9 @@
-"""Tests of bayesgeo.checks.loo_nn: leave-one-out densities of nearest-neighbour (Vecchia) fits.
+"""Tests of bayesgeo.gp.nn_loo and the nearest-neighbour engine's leave-one-out (bayesgeo.gp.engines): leave-one-out densities of nearest-neighbour (Vecchia) fits.
 
 Fits are built from chosen draws in the layout of bayesgeo.fitting.posterior.fit (tests/test_loo.py:
 make_fit, make_site_fit) and then marked as nearest-neighbour fits in their settings, so each
 nearest-neighbour fit has a dense twin with identical draws. References: the exact Gaussian
-leave-one-out (Rasmussen and Williams 2006, eq. 5.12) computed by bayesgeo.checks.loo.gp_loo, explicit
+leave-one-out (Rasmussen and Williams 2006, eq. 5.12) computed by bayesgeo.gp.dense_loo.gp_loo, explicit
 Gaussian conditioning with numpy.linalg.solve, densities from scipy.stats.norm, covariances from
 scikit-learn's Matern kernel, neighbour sets from scipy.spatial.distance.cdist and
 sklearn.metrics.pairwise.haversine_distances.
@@ -21,8 +21,9 @@ import pytest
 from scipy import stats
 from scipy.spatial.distance import cdist
 
-from bayesgeo.checks.loo import fit_arrays, loo_predictive
-from bayesgeo.checks.loo_nn import loo_neighbours, nn_loo, nn_loo_predictive
+from bayesgeo.checks.loo import loo_predictive
+from bayesgeo.fitting.arrays import fit_arrays
+from bayesgeo.gp.nn_loo import loo_neighbours, nn_loo
 from test_loo import make_fit, make_site_fit, simulated, simulated_sites
 
 
@@ -62,7 +63,7 @@ def _conditional(k, r, i, others):
 def test_all_other_points_give_the_exact_loo():
     """With m = n - 1 every point is conditioned on all the others, which is the exact Gaussian
     leave-one-out: loo_predictive of the nearest-neighbour fit equals that of its dense twin
-    (bayesgeo.checks.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12) to rounding, under a log
+    (bayesgeo.gp.dense_loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12) to rounding, under a log
     transform with a linear trend; and for a few points and draws it equals explicit conditioning
     (numpy.linalg.solve on scikit-learn's Matern 3/2 covariance) with the density from
     scipy.stats.norm, moved to data units by the change of variables log p(v) = log p(y) - log s - log v.
@@ -101,7 +102,7 @@ def test_all_other_points_give_the_exact_loo():
 def test_thirty_neighbours_close_to_exact_on_exponential_field():
     """m = 30 on 300 points of a simulated exponential field (practical range 40 m in a 100 m
     square, nugget 0.2 of the sill), plug-in parameters at the truth, against the exact
-    leave-one-out (bayesgeo.checks.loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12). An approximation,
+    leave-one-out (bayesgeo.gp.dense_loo.gp_loo, Rasmussen and Williams 2006, eq. 5.12). An approximation,
     not an identity. Exact facts: conditioning on a subset never lowers the variance, so every
     nearest-neighbour sd is at least the exact one (Gaussian conditioning, Rasmussen and Williams
     2006, eq. A.6: Var[y_i | y_A] >= Var[y_i | y_B] for A within B). Tolerances: for the
@@ -127,7 +128,7 @@ def test_thirty_neighbours_close_to_exact_on_exponential_field():
     assert np.max(np.abs(a["loo_mean"].values - b["loo_mean"].values) / sd_b) < 0.15
     err = (a["log_lik"] - b["log_lik"]).sum("obs").values
     assert np.all(np.abs(err) < 1.0), err
-    ten = nn_loo_predictive(fit_arrays(nn), neighbours=10)
+    ten = loo_predictive(None, arrays=fit_arrays(nn), neighbours=10)
     assert np.max(np.abs(ten["loo_mean"].values - b["loo_mean"].values) / sd_b) > 0.15
     # thread count: identical numbers
     fa = fit_arrays(nn)
@@ -206,7 +207,7 @@ def test_compare_two_nn_fits_end_to_end(tmp_path, capsys):
         assert row["elpd_loo"] == pytest.approx(ref, rel=1e-10)
         assert "nearest-neighbour" in stored["log_likelihood"].attrs["method"]
     fa = fit_arrays(trees["exp"])
-    nn_loo_predictive(fa)
+    loo_predictive(None, arrays=fa)
     assert "dist" not in fa.__dict__
 
 
@@ -238,7 +239,7 @@ def test_several_site_fit_dispatches_per_site_block():
     scikit-learn's Matern 3/2 covariance, density from scipy.stats.norm (sites are independent
     given the parameters, so other sites' points never enter)."""
     from bayesgeo.fitting.hierarchical import site_fit
-    from bayesgeo.checks.loo import site_fit_arrays
+    from bayesgeo.fitting.arrays import site_fit_arrays
 
     ds = simulated_sites((40, 14, 36), seed=45)
     tree = make_site_fit(ds, pooling="independent", ndraw=3, spread=0.2)

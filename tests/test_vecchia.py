@@ -552,7 +552,7 @@ def test_nn_kriging_moments_great_circle_equals_dense_prediction():
     """lon/lat data (haversine km): with every datum as neighbour, nn_kriging_moments equals the dense per-draw
     prediction bayesgeo.predict.prediction.kriging_moments (itself tested against scikit-learn and scipy in
     tests/test_predict.py) for the same parameters."""
-    from bayesgeo.predict.prediction import kriging_moments
+    from bayesgeo.gp.kriging import kriging_moments
 
     rng = np.random.default_rng(8)
     lonlat = np.column_stack([-3.0 + 0.2 * rng.random(50), 54.0 + 0.1 * rng.random(50)])

@@ -18,7 +18,7 @@ from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern, WhiteK
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.common.geometry import distance_matrix
 from bayesgeo.gp.dense import JITTER, covariance_matrix
-from bayesgeo.checks.loo import fit_arrays
+from bayesgeo.fitting.arrays import fit_arrays
 from bayesgeo.checks.ppcheck import variogram_check
 from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik_and_grad
 from bayesgeo.gp.nn_simulate import nn_factors, nn_simulate

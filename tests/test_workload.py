@@ -27,7 +27,7 @@ def test_fit_estimates_bracket_measured_runs():
 
 def test_fit_messages():
     """Small fits say nothing; above the comfortable size the time is announced; above 2,000 points the
-    nn likelihood is named (bayesgeo.fitting.model.DENSE_LIMIT); a forced dense fit there is told nn is made for it."""
+    nn likelihood is named (bayesgeo.gp.engines.DENSE_LIMIT); a forced dense fit there is told nn is made for it."""
     assert wl.fit_plan({"": 300})["message"] is None
     assert wl.fit_plan({"": 300})["likelihood"] == {"": "dense"}
     big = wl.fit_plan({"": 50_000})

@@ -40,130 +40,27 @@ inform it. Each site is therefore computed as a single-site fit with that site's
 
 from __future__ import annotations
 
-
 import numpy as np
 import xarray as xr
-from scipy.linalg import lapack
 
-from bayesgeo.gp.covariance import get_covariance
-from bayesgeo.fitting.model import FitSpec
-from bayesgeo.common.defaults import LOG_2PI as _LOG2PI
-from bayesgeo.fitting.arrays import (FitArrays, SiteFitArrays, any_fit_arrays, fit_arrays, is_site_fit,  # noqa: F401
-                                 site_fit_arrays)
+from bayesgeo.fitting.arrays import FitArrays, SiteFitArrays, any_fit_arrays
 from bayesgeo.fitting.arrays import predictive_dataset as _predictive_dataset
+from bayesgeo.gp.engines import engine
 
-__all__ = [
-    "FitArrays",
-    "SiteFitArrays",
-    "fit_arrays",
-    "site_fit_arrays",
-    "any_fit_arrays",
-    "is_site_fit",
-    "gp_loo",
-    "loo_predictive",
-    "pointwise_loo_loglik",
-    "add_log_likelihood",
-]
-
-
-# --- the NumPy kernel ---------------------------------------------------------------------------
-
-
-def gp_loo(resid: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Exact leave-one-out normal predictives of a zero-mean Gaussian vector.
-
-    Parameters
-    ----------
-    resid : ndarray, shape (..., n)
-        ``y - mu`` for each draw (any leading dimensions).
-    cov : ndarray, shape (..., n, n)
-        The covariance ``C`` of each draw, symmetric positive definite.
-
-    Returns
-    -------
-    mean : ndarray (..., n)
-        ``E[resid_i | resid_-i] = resid_i - g_i / c_i`` (add ``mu_i`` for the value).
-    var : ndarray (..., n)
-        ``Var[resid_i | resid_-i] = 1 / c_i``.
-    logp : ndarray (..., n)
-        ``log p(resid_i | resid_-i)``; ``-inf`` for every point of a draw whose ``C`` is not
-        positive definite.
-
-    Notes
-    -----
-    Sundararajan and Keerthi (2001); Rasmussen and Williams (2006), eq. 5.12.
-    """
-    resid = np.asarray(resid, dtype=float)
-    cov = np.asarray(cov, dtype=float)
-    n = resid.shape[-1]
-    if cov.shape[-2:] != (n, n) or cov.shape[:-2] != resid.shape[:-1]:
-        raise ValueError(f"cov must have shape {resid.shape[:-1] + (n, n)}, got {cov.shape}")
-    lead = resid.shape[:-1]
-    r2 = resid.reshape(-1, n)
-    c2 = cov.reshape(-1, n, n)
-    mean = np.empty_like(r2)
-    var = np.empty_like(r2)
-    logp = np.empty_like(r2)
-    for k in range(r2.shape[0]):
-        mean[k], var[k], logp[k] = _loo_one(r2[k], c2[k])
-    return mean.reshape(lead + (n,)), var.reshape(lead + (n,)), logp.reshape(lead + (n,))
-
-
-def _loo_one(r: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """One draw: factor C, solve for g, invert for the diagonal of C^-1."""
-    factor, info = lapack.dpotrf(c, lower=1, clean=1, overwrite_a=0)
-    if info != 0:
-        nan = np.full(r.shape, np.nan)
-        return nan, nan, np.full(r.shape, -np.inf)
-    # C^-1 = L^-T L^-1: the diagonal is the column sums of squares of L^-1 (LAPACK dtrtri, n^3 / 3
-    # flops, half the cost of the full inverse), and g = L^-T (L^-1 r).
-    linv, info = lapack.dtrtri(factor, lower=1)
-    if info != 0:
-        nan = np.full(r.shape, np.nan)
-        return nan, nan, np.full(r.shape, -np.inf)
-    linv = np.tril(linv)
-    cii = np.einsum("ki,ki->i", linv, linv)
-    g = linv.T @ (linv @ r)
-    mean = r - g / cii
-    var = 1.0 / cii
-    logp = -0.5 * _LOG2PI + 0.5 * np.log(cii) - 0.5 * g * g / cii
-    return mean, var, logp
-
-
-# --- reading a fit ------------------------------------------------------------------------------
-
-
-def _covariance(spec: FitSpec):
-    return get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
-
-
-def draw_covariances(fa: FitArrays, index: np.ndarray | None = None):
-    """Yield ``(flat_index, mean, cov)`` on the standardised scale for posterior draws.
-
-    ``index`` selects flat (chain-major) draw indices; all draws by default.
-    """
-    from bayesgeo.gp.dense import covariance_matrix  # PyTensor/Numba load only when needed
-
-    cov = _covariance(fa.spec)
-    rng_ = fa.draws["practical_range_z"].reshape(-1)
-    sd = fa.draws["sd_z"].reshape(-1)
-    tau = fa.draws["nugget_sd_z"].reshape(-1)
-    beta = fa.draws["beta_z"].reshape(rng_.size, -1)
-    for k in (range(rng_.size) if index is None else index):
-        scale = rng_[k] / fa.spec.range_factor
-        c = covariance_matrix(fa.dist, cov, scale, sd[k] ** 2, tau[k] ** 2)
-        yield int(k), fa.design @ beta[k], c
+__all__ = ["loo_predictive", "pointwise_loo_loglik", "add_log_likelihood"]
 
 
 # --- public functions on fits -------------------------------------------------------------------
 
 
-def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None, progress=None) -> xr.Dataset:
+def loo_predictive(tree: xr.DataTree | None, *, arrays: FitArrays | SiteFitArrays | None = None,
+                   neighbours: int | None = None, progress=None) -> xr.Dataset:
     """Exact leave-one-out predictive of every point for every posterior draw.
 
-    A nearest-neighbour fit (``spec.approx == "nn"``; for a several-site fit, each site block
-    with ``site_approx`` "nn") gets the nearest-neighbour leave-one-out of
-    :func:`bayesgeo.checks.loo_nn.nn_loo_predictive` instead: no n x n matrix, O(S n m^3).
+    Computed by the fit's likelihood engine (:mod:`bayesgeo.gp.engines`): exact for a dense fit; for a
+    nearest-neighbour fit (for a several-site fit, each site block with ``site_approx`` "nn") each
+    point conditioned on its nearest other points (:mod:`bayesgeo.gp.nn_loo`): no n x n matrix,
+    O(S n m^3).
 
     Parameters
     ----------
@@ -171,7 +68,10 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None, progre
         A single-site fit (see :func:`fit_arrays`) or a several-site fit (each point's
         predictive then uses its own site's points only; module docstring).
     arrays : FitArrays or SiteFitArrays, optional
-        ``any_fit_arrays(tree)`` when already at hand.
+        ``any_fit_arrays(tree)`` when already at hand (``tree`` is then not read).
+    neighbours : int, optional
+        Conditioning points of the nearest-neighbour leave-one-out (default
+        :func:`bayesgeo.gp.nn_loo.loo_neighbour_count`); ignored by the exact one.
     progress : callable, optional
         ``progress(total=..., desc=...)`` returning a bar with ``update(int)`` used as a context
         manager (such as :func:`bayesgeo.cli._common.progress` with ``enabled`` bound); used for
@@ -188,23 +88,11 @@ def loo_predictive(tree: xr.DataTree, *, arrays: FitArrays | None = None, progre
     """
     fa = any_fit_arrays(tree) if arrays is None else arrays
     if isinstance(fa, SiteFitArrays):
-        return _site_loo_predictive(fa, progress=progress)
-    if fa.spec.approx == "nn":
-        from bayesgeo.checks.loo_nn import nn_loo_predictive
-
-        if progress is None:
-            return nn_loo_predictive(fa)
-        with progress(total=fa.n, desc="nearest-neighbour LOO") as bar:
-            return nn_loo_predictive(fa, progress=bar)
-    nc, nd = fa.draws["sd_z"].shape
-    mean = np.empty((nc * nd, fa.n))
-    var = np.empty((nc * nd, fa.n))
-    logp = np.empty((nc * nd, fa.n))
-    for k, mu, c in draw_covariances(fa):
-        m, v, lp = _loo_one(fa.y - mu, c)
-        mean[k], var[k], logp[k] = m + mu, v, lp
-    return _predictive_dataset(fa, mean, var, logp, method="exact Gaussian leave-one-out (Sundararajan and "
-                               "Keerthi 2001; Rasmussen and Williams 2006, eq. 5.12)")
+        return _site_loo_predictive(fa, neighbours=neighbours, progress=progress)
+    res = engine(fa.spec.approx).loo(fa, neighbours=neighbours, progress=progress)
+    out = _predictive_dataset(fa, res.mean, res.var, res.logp, method=res.method)
+    out.attrs.update(res.attrs)
+    return out
 
 
 def pointwise_loo_loglik(tree: xr.DataTree, *, predictive: xr.Dataset | None = None) -> xr.DataArray:
@@ -261,9 +149,10 @@ def add_log_likelihood(tree: xr.DataTree, *, predictive: xr.Dataset | None = Non
     return out
 
 
-def _site_loo_predictive(sfa: SiteFitArrays, *, progress=None) -> xr.Dataset:
+def _site_loo_predictive(sfa: SiteFitArrays, *, neighbours=None, progress=None) -> xr.Dataset:
     """:func:`loo_predictive` of every site block, put back along ``obs`` in data order."""
-    parts = {label: loo_predictive(None, arrays=fa, progress=progress) for label, fa in sfa.blocks.items()}
+    parts = {label: loo_predictive(None, arrays=fa, neighbours=neighbours, progress=progress)
+             for label, fa in sfa.blocks.items()}
     methods = list(dict.fromkeys(p.attrs["method"].split(":")[0] for p in parts.values()))
     nn_sites = [s for s in sfa.sites if "caution" in parts[s].attrs]  # nearest-neighbour blocks
     extra = {"caution": f"sites {', '.join(nn_sites)}: {parts[nn_sites[0]].attrs['caution']}"} if nn_sites else {}

@@ -30,7 +30,8 @@ import numpy as np
 import xarray as xr
 from scipy import special
 
-from bayesgeo.checks.loo import FitArrays, SiteFitArrays, add_log_likelihood, any_fit_arrays, is_site_fit, loo_predictive
+from bayesgeo.checks.loo import add_log_likelihood, loo_predictive
+from bayesgeo.fitting.arrays import FitArrays, SiteFitArrays, any_fit_arrays, is_site_fit
 from bayesgeo.common.validate import InputError
 
 __all__ = [

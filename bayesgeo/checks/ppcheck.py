@@ -29,8 +29,9 @@ import xarray as xr
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import points_dataset
 from bayesgeo.explore.variogram import MIN_PAIRS, lag_bins
-from bayesgeo.common.geometry import distance_matrix
-from bayesgeo.checks.loo import FitArrays, draw_covariances, fit_arrays
+from bayesgeo.common.pairs import column_semivariances
+from bayesgeo.fitting.arrays import FitArrays, fit_arrays
+from bayesgeo.gp.engines import engine
 from bayesgeo.checks.modelcheck import CAUTION, _family_label
 from bayesgeo.common.validate import InputError, check_int, check_positive_int
 
@@ -57,39 +58,6 @@ class _NoBar:
 
 
 # --- the posterior predictive semivariogram -----------------------------------------------------
-
-
-def _pair_bins(xy: np.ndarray, metric: str, edges: np.ndarray):
-    """Pairs (i < j) within the largest lag and their bin, binned as bayesgeo.explore.variogram does."""
-    d = distance_matrix(xy, metric)
-    i, j = np.triu_indices(xy.shape[0], 1)
-    dij = d[i, j]
-    keep = dij <= edges[-1] * (1.0 + 1e-12)
-    i, j, dij = i[keep], j[keep], dij[keep]
-    nb = edges.size - 1
-    k = np.minimum((dij / (edges[1] - edges[0])).astype(np.int64), nb - 1)
-    return i, j, dij, k
-
-
-def _classical(values: np.ndarray, i, j, k, nb: int, chunk: int = 32) -> np.ndarray:
-    """Matheron semivariance per bin for each column of ``values`` (n, m) -> (m, nb)."""
-    count = np.bincount(k, minlength=nb).astype(float)
-    m = values.shape[1]
-    out = np.empty((m, nb))
-    order = np.argsort(k, kind="stable")
-    ks, ii, jj = k[order], i[order], j[order]
-    starts = np.searchsorted(ks, np.arange(nb))
-    nonempty = count > 0
-    for c0 in range(0, m, chunk):
-        v = values[:, c0:c0 + chunk]
-        sq = (v[ii] - v[jj]) ** 2
-        sums = np.zeros((nb, v.shape[1]))
-        if sq.shape[0]:
-            red = np.add.reduceat(sq, starts[nonempty], axis=0)
-            sums[nonempty] = red
-        with np.errstate(invalid="ignore", divide="ignore"):
-            out[c0:c0 + chunk] = (sums / (2.0 * count[:, None])).T
-    return out
 
 
 def _ols_residuals(design: np.ndarray, values: np.ndarray) -> np.ndarray:
@@ -170,26 +138,16 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
     total = fa.draws["sd_z"].size
     picks = _pick_draws(total, replicates)
     rng = np.random.default_rng(seed)
+    eng = engine(spec.approx)
     with (progress or _NoBar)(total=picks.size + 1, desc="semivariogram check") as bar:
-        if spec.approx == "nn":  # Vecchia replicates, all pairs in one pass: no n x n matrix (bayesgeo.gp.nn_simulate)
-            from bayesgeo.gp.nn_simulate import nn_replicates, nn_semivariances
-
-            parts = []  # chunks draw consecutive noise rows: the same numbers as one call
-            for c0 in range(0, picks.size, REPLICATE_CHUNK):
-                parts.append(nn_replicates(fa, picks[c0:c0 + REPLICATE_CHUNK], rng))
-                bar.update(parts[-1].shape[1])
-            values = _ols_residuals(fa.design, np.column_stack([fa.z, *parts]))
-            count, dsum, semi = nn_semivariances(fa.xy, spec.metric, edges, values)
-            observed, rep = semi[0], semi[1:]
-        else:
-            i, j, dij, k = _pair_bins(fa.xy, spec.metric, edges)
-            count, dsum = np.bincount(k, minlength=nb), np.bincount(k, weights=dij, minlength=nb)
-            observed = _classical(_ols_residuals(fa.design, fa.z[:, None]), i, j, k, nb)[0]
-            ys = np.empty((fa.n, picks.size))
-            for col, (_, mu, c) in enumerate(draw_covariances(fa, picks)):
-                ys[:, col] = mu + np.linalg.cholesky(c) @ rng.standard_normal(fa.n)
-                bar.update(1)
-            rep = _classical(_ols_residuals(fa.design, spec.value_mean + spec.value_sd * ys), i, j, k, nb)
+        parts = []  # chunks draw consecutive noise rows: the same numbers as one call
+        for c0 in range(0, picks.size, REPLICATE_CHUNK):
+            parts.append(eng.replicates(fa, picks[c0:c0 + REPLICATE_CHUNK], rng))
+            bar.update(parts[-1].shape[1])
+        # observed and replicated values alike: trend removed by OLS, every pair within the largest lag
+        values = _ols_residuals(fa.design, np.column_stack([fa.z, *parts]))
+        count, dsum, semi = column_semivariances(fa.xy, spec.metric, edges, values)
+        observed, rep = semi[0], semi[1:]
         bar.update(1)
     if not np.any(count > 0):
         raise InputError(f"lag_limit: no pair of points lies within {edges[-1]:.4g} {spec.distance_units or 'distance units'}, "
@@ -249,8 +207,7 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         "method": "posterior predictive replicates at the data locations; trend removed by OLS from observed and "
                   "replicated values alike; classical (Matheron) estimator on shared lag bins",
         "model_band": "sigma^2 (1 - rho(h)) + tau^2 per posterior draw (all draws)",
-        "simulation": (f"nearest-neighbour (Vecchia) model of the fit, m = {spec.neighbours}; all pairs within lag_limit"
-                       if spec.approx == "nn" else "exact multivariate normal (Cholesky of K)"),
+        "simulation": eng.simulation(spec.neighbours),
         "replicates": int(picks.size),
         "draws_total": int(total),
         "seed": int(seed),

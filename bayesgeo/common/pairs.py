@@ -20,7 +20,7 @@ from scipy.spatial.distance import pdist
 
 from bayesgeo.common.geometry import EARTH_RADIUS_KM, cross_distance
 
-__all__ = ["pair_sums", "max_pair_distance", "permuted_columns"]
+__all__ = ["pair_sums", "max_pair_distance", "permuted_columns", "column_semivariances"]
 
 # which sums to accumulate (bit flags)
 WANT_SQ = 1  # sum (z_i - z_j)^2
@@ -219,3 +219,19 @@ def pair_sums(x, y, z, *, group, edges, greatcircle, directions, tolerance, want
             parts = list(pool.map(lambda first: _pair_kernel(*args, first, step, block), range(step)))
     names = ("count", "dsum", "sq", "root", "s1", "s2", "s12")
     return {name: sum(p[k] for p in parts) for k, name in enumerate(names)}
+
+
+def column_semivariances(xy: np.ndarray, metric: str, edges: np.ndarray, values: np.ndarray):
+    """Matheron semivariance of each column of ``values`` (n, c) over all pairs within ``edges[-1]``.
+
+    One pass over the pairs (:func:`pair_sums`), no pair list and no n x n matrix;
+    pairs binned as :mod:`bayesgeo.explore.variogram` bins them. Returns ``count`` (bins,), ``dsum`` (bins,:
+    sum of pair distances) and the semivariances (c, bins), NaN in empty bins.
+    """
+    sums = pair_sums(xy[:, 0], xy[:, 1], np.asarray(values, dtype=float), group=np.zeros(len(xy), np.int64),
+                            edges=edges, greatcircle=metric == "greatcircle", directions=None, tolerance=0.0,
+                            want=WANT_SQ)
+    count, dsum = sums["count"][0], sums["dsum"][0]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        semi = (sums["sq"][0] / (2.0 * count[:, None])).T
+    return count, dsum, semi

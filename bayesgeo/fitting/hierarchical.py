@@ -72,6 +72,7 @@ from bayesgeo.fitting.hier_outputs import site_cautions
 from bayesgeo.fitting.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, SMALL_SITE_POLICIES, PARAMETRISATIONS,
                                   POOLINGS, SiteData, SiteSpec, site_inputs, site_spec)
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
+from bayesgeo.gp.engines import engine
 
 __all__ = [
     "POOLINGS",
@@ -129,7 +130,7 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
     approx : {"auto", "dense", "nn"}
         Likelihood of each site block: exact dense, nearest-neighbour (Vecchia; maximin ordering
         and neighbour sets computed once per site), or ``auto`` (dense up to
-        :data:`bayesgeo.fitting.model.DENSE_LIMIT` points per site, nn beyond).
+        :data:`bayesgeo.gp.engines.DENSE_LIMIT` points per site, nn beyond).
     neighbours : int, optional
         m of the nearest-neighbour likelihood (default :data:`bayesgeo.gp.nn.DEFAULT_NEIGHBOURS`).
     _variance : {"sill", "total"}
@@ -159,8 +160,6 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
     """
     import pymc as pm
     import pytensor.tensor as pt
-
-    from bayesgeo.gp.dense import marginal_loglik
 
     spec, data = site_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
                              transform=transform, pooling=pooling, priors=priors, small_sites=small_sites,
@@ -219,14 +218,10 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
         for i, sd_i in enumerate(data):
             resid = sd_i.y - pt.dot(sd_i.design, beta[i])
             tau2 = tau[i] ** 2 if spec.nugget else 0.0
-            scale = prange[i] / spec.range_factor
-            if spec.site_approx[i] == "nn":
-                from bayesgeo.gp.nn import nn_loglik
-
-                loglik = nn_loglik(resid, sd_i.xy, cov, scale, sd[i] ** 2, tau2, neighbours=spec.site_neighbours[i],
-                                   metric=spec.metric, distance_scale=spec.distance_scale)
-            else:
-                loglik = marginal_loglik(resid, sd_i.dist, cov, scale, sd[i] ** 2, tau2)
+            loglik = engine(spec.site_approx[i]).loglik(
+                resid, xy=sd_i.xy, dist=sd_i.dist, covariance=cov, scale=prange[i] / spec.range_factor,
+                partial_sill=sd[i] ** 2, nugget=tau2, neighbours=spec.site_neighbours[i], metric=spec.metric,
+                distance_scale=spec.distance_scale)
             pm.Potential(f"loglik_{i}", loglik)
     return model, spec
 
@@ -359,17 +354,16 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
 
 
 def _site_approximation(spec: SiteSpec, post: xr.Dataset, constant: xr.Dataset) -> dict:
-    """{site: approximation check} for the sites fitted with the nearest-neighbour likelihood."""
-    from bayesgeo.gp.nn_accuracy import approximation_check
-
+    """{site: approximation check} for the sites fitted with an approximate (nearest-neighbour) likelihood."""
     out = {}
     for i, site in enumerate(spec.sites):
-        if not spec.site_approx or spec.site_approx[i] != "nn":
-            continue
         pick = np.flatnonzero(constant["site"].values == site)
         xy = np.column_stack([constant["x"].values[pick], constant["y"].values[pick]])
-        out[site] = approximation_check(post.sel(site=site), xy, covariance=spec.covariance,
-                                        neighbours=spec.site_neighbours[i], metric=spec.metric)
+        check = engine(spec.site_approx[i] if spec.site_approx else None).approximation_check(
+            post.sel(site=site), xy, covariance=spec.covariance,
+            neighbours=spec.site_neighbours[i] if spec.site_neighbours else 0, metric=spec.metric)
+        if check is not None:
+            out[site] = check
     return out
 
 

@@ -38,20 +38,16 @@ import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import TRANSFORMS, apply_transform, sites_of
-from bayesgeo.common.geometry import distance_matrix, metric_of
+from bayesgeo.common.geometry import metric_of
 from bayesgeo.fitting.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
 from bayesgeo.explore.trend import design_matrix
 from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
+from bayesgeo.gp.engines import choose, engine
 
-__all__ = ["APPROX", "DENSE_LIMIT", "TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "model_inputs",
+__all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "model_inputs",
            "build_model_and_inputs", "transform_values", "variance_split_logp"]
 
-#: Likelihood choices: exact dense, nearest-neighbour (Vecchia), or dense up to DENSE_LIMIT points.
-APPROX = ("auto", "dense", "nn")
-#: Largest n fitted with the dense likelihood under ``approx="auto"``: at n = 2,000 one dense
-#: log-density + gradient costs about 0.25 s here (bench/RESULTS.md), so a fit takes hours beyond it.
-DENSE_LIMIT = 2000
 #: Labels of the two sampled coordinates of the variances in a model with a nugget:
 #: log(sigma_z^2 + tau_z^2) and logit(sigma_z^2 / (sigma_z^2 + tau_z^2)) (docs/model.md, "Parametrisation").
 VARIANCE_COORDS = ("log_total_variance", "logit_spatial_share")
@@ -213,18 +209,10 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
     if np.linalg.matrix_rank(design.values) < p:
         raise InputError(f"trend: the trend terms ({', '.join(design.attrs['terms'])}) are not identifiable "
                          "from these locations and covariates; use a lower order or drop a covariate")
-    approx, neighbours = _resolve_approx(approx, neighbours, n, cov.name)
+    approx, neighbours = choose(approx, neighbours, n, cov.name)
     metric = metric_of(ds)
     xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
-    if approx == "dense":
-        d = distance_matrix(xy, metric)
-        extent = float(d.max())
-    else:
-        from bayesgeo.common.pairs import max_pair_distance
-
-        d = None
-        extent = max_pair_distance(xy[:, 0], xy[:, 1], group=np.zeros(n, dtype=np.int64),
-                                   greatcircle=metric == "greatcircle")
+    extent, d = engine(approx).distances(xy, metric)  # d: None for nn, which never builds an n x n matrix
     if not extent > 0:
         raise InputError(f"{_source(ds)}: all points share one location")
     vmean, vsd = float(np.mean(z)), float(np.std(z, ddof=1))
@@ -244,24 +232,6 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
         approx=approx, neighbours=int(neighbours),
     )
     return spec, (z - vmean) / vsd, design, None if d is None else d / extent
-
-
-def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) -> tuple[str, int]:
-    """Pick the likelihood: ``auto`` is dense up to :data:`DENSE_LIMIT` points, else nearest-neighbour."""
-    from bayesgeo.common.validate import check_choice, check_positive_int
-
-    check_choice(approx, APPROX, "approx")
-    if approx == "auto":
-        approx = "dense" if n <= DENSE_LIMIT else "nn"
-    if approx == "dense":
-        return "dense", 0
-    if family == "matern":
-        raise InputError("--approx nn: the general 'matern' family has no nearest-neighbour kernel; "
-                         "use exponential, matern32, matern52, gaussian or spherical")
-    from bayesgeo.gp.nn import DEFAULT_NEIGHBOURS
-
-    m = DEFAULT_NEIGHBOURS if neighbours is None else check_positive_int(neighbours, "neighbours")
-    return "nn", min(m, n - 1)
 
 
 def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
@@ -290,7 +260,7 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         Overrides of the default priors (data units; see :mod:`bayesgeo.fitting.priors`).
     approx : {"auto", "dense", "nn"}
         Exact dense likelihood, or the nearest-neighbour (Vecchia) approximation of
-        :mod:`bayesgeo.gp.nn`; ``auto`` (default) is dense up to :data:`DENSE_LIMIT` points.
+        :mod:`bayesgeo.gp.nn`; ``auto`` (default) is dense up to :data:`bayesgeo.gp.engines.DENSE_LIMIT` points.
     neighbours : int, optional
         Conditioning set size m of the nearest-neighbour likelihood (default
         :data:`bayesgeo.gp.nn.DEFAULT_NEIGHBOURS`).
@@ -332,8 +302,6 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
     """
     import pymc as pm
 
-    from bayesgeo.gp.dense import marginal_loglik
-
     spec, y, design, dist = model_inputs(ds, **settings)
     cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
     rates = spec.rates
@@ -355,23 +323,17 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
             sd2, tau2 = sd**2, pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
         else:
             sd2, tau2 = _variance_split(rates["sd"], rates["nugget"])
-        if spec.approx == "nn":
-            from bayesgeo.gp.nn import nn_loglik
-
-            beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
-            resid = y - pm.math.dot(design.values, beta)
-            xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
-            loglik = nn_loglik(resid, xy, cov, prange / spec.range_factor, sd2, tau2, neighbours=spec.neighbours,
-                               metric=spec.metric, distance_scale=spec.distance_scale)
-        elif integrated:
+        if integrated:
             from bayesgeo.gp.trend_posterior import trend_prior_covariance
 
-            loglik = marginal_loglik(y, dist, cov, prange / spec.range_factor, sd2, tau2,
-                                     extra=trend_prior_covariance(design.values, spec.priors.beta_sd))
+            resid, extra = y, trend_prior_covariance(design.values, spec.priors.beta_sd)
         else:
             beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
-            resid = y - pm.math.dot(design.values, beta)
-            loglik = marginal_loglik(resid, dist, cov, prange / spec.range_factor, sd2, tau2)
+            resid, extra = y - pm.math.dot(design.values, beta), None
+        xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
+        loglik = engine(spec.approx).loglik(
+            resid, xy=xy, dist=dist, covariance=cov, scale=prange / spec.range_factor, partial_sill=sd2, nugget=tau2,
+            neighbours=spec.neighbours, metric=spec.metric, distance_scale=spec.distance_scale, extra=extra)
         pm.Potential("loglik", loglik)
     return model, spec, y, design, dist
 
@@ -379,9 +341,9 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
 def _trend_integrated(spec: FitSpec, trend: str = "auto") -> bool:
     """Whether :func:`build_model` integrates the trend coefficients out of the likelihood:
     ``"auto"`` does so for the dense likelihood (the nearest-neighbour one samples them)."""
-    if trend == "integrated" and spec.approx == "nn":
+    if trend == "integrated" and not engine(spec.approx).integrates_trend:
         raise ValueError("the trend coefficients can be integrated out of the dense likelihood only")
-    return spec.approx == "dense" and trend != "sampled"
+    return engine(spec.approx).integrates_trend and trend != "sampled"
 
 
 def variance_split_logp(value, rates):

@@ -38,6 +38,7 @@ from bayesgeo.fitting.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_loo
 from bayesgeo.fitting.sampling import new_seed
 from bayesgeo.gp.trend_posterior import draw_trend
 from bayesgeo.common.validate import InputError
+from bayesgeo.gp.engines import engine
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 from bayesgeo.common.layout import FIT_FILE, FIT_REPORT, PRIOR_CHECK, SUMMARY_CSV, SUMMARY_TXT
 
@@ -287,13 +288,9 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
               "/observed_data": observed, "/constant_data": constant}
     tree = xr.DataTree.from_dict(groups)
-    approximation = None
-    if spec.approx == "nn":
-        from bayesgeo.gp.nn_accuracy import approximation_check
-
-        approximation = approximation_check(post, np.column_stack([ds["x"].values, ds["y"].values]),
-                                            covariance=spec.covariance, neighbours=spec.neighbours,
-                                            metric=spec.metric)
+    approximation = engine(spec.approx).approximation_check(
+        post, np.column_stack([ds["x"].values, ds["y"].values]), covariance=spec.covariance,
+        neighbours=spec.neighbours, metric=spec.metric)
     tree.attrs = {"title": "bayesgeo single-site Gaussian-process fit", "settings": json.dumps(settings),
                   "cautions": json.dumps(cautions(spec, post, approximation=approximation))}
     if approximation is not None:

@@ -23,7 +23,8 @@ import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import MIN_POINTS, SMALL_SITES, sites_of
-from bayesgeo.common.geometry import distance_matrix, metric_of
+from bayesgeo.common.geometry import metric_of
+from bayesgeo.gp.engines import choose, engine
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.fitting.model import FitSpec, transform_values
 from bayesgeo.fitting.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
@@ -257,7 +258,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         Recorded but without effect under the other poolings.
     approx : {"auto", "dense", "nn"}
         Likelihood per site, as in :func:`bayesgeo.fitting.model.build_model`: ``auto`` is dense for a
-        site of up to :data:`bayesgeo.fitting.model.DENSE_LIMIT` points, nearest-neighbour beyond.
+        site of up to :data:`bayesgeo.gp.engines.DENSE_LIMIT` points, nearest-neighbour beyond.
     neighbours : int, optional
         m of the nearest-neighbour likelihood (default :data:`bayesgeo.gp.nn.DEFAULT_NEIGHBOURS`),
         capped per site at n_s - 1.
@@ -313,16 +314,8 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
             raise InputError(f"trend: site {label!r} ({n} points, rows {format_rows(rows)}) cannot pin down the "
                              f"{p} trend terms ({', '.join(design.attrs['terms'])}); use a lower order")
         xy = np.column_stack([part["x"].values, part["y"].values]).astype(float)
-        how, m = _resolve_approx(approx, neighbours, n, cov.name)
-        if how == "dense":
-            d = distance_matrix(xy, metric)
-            extent = float(d.max())
-        else:  # never an n x n matrix for a large site
-            from bayesgeo.common.pairs import max_pair_distance
-
-            d = None
-            extent = max_pair_distance(xy[:, 0], xy[:, 1], group=np.zeros(n, dtype=np.int64),
-                                       greatcircle=metric == "greatcircle")
+        how, m = choose(approx, neighbours, n, cov.name)  # the single-site rule, per site
+        extent, d = engine(how).distances(xy, metric)  # d: None for nn, never an n x n matrix for a large site
         if not extent > 0:
             raise InputError(f"{_source(ds)}: all points of site {label!r} share one location (rows {format_rows(rows)})")
         z = np.asarray(part["_z"].values, dtype=float)
@@ -366,13 +359,6 @@ def _centred(parametrisation: str, n: int) -> bool:
     if parametrisation == "auto":
         return n >= CENTRED_MIN_POINTS
     return parametrisation == "centred"
-
-
-def _resolve_approx(approx: str, neighbours: int | None, n: int, family: str) -> tuple[str, int]:
-    """Likelihood of one site: the single-site rule of :mod:`bayesgeo.fitting.model` (dense up to DENSE_LIMIT)."""
-    from bayesgeo.fitting.model import _resolve_approx as single_site_rule
-
-    return single_site_rule(approx, neighbours, n, family)
 
 
 def site_spec(tree: xr.DataTree, source: str | None = None) -> SiteSpec:

@@ -107,7 +107,7 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
     sizes : mapping of str to int
         Points per site (one entry for single-site data).
     approx, neighbours, chains, draws, tune
-        The fit's options (``approx="auto"``: dense up to :data:`bayesgeo.fitting.model.DENSE_LIMIT` points
+        The fit's options (``approx="auto"``: dense up to :data:`bayesgeo.gp.engines.DENSE_LIMIT` points
         per site, nearest-neighbour beyond).
     fits : int
         Model fits the command runs (2 for a pooled several-site fit: the pooled one and the
@@ -126,11 +126,11 @@ def fit_plan(sizes: Mapping[str, int], *, approx: str = "auto", neighbours: int 
         ``max_draws``) and ``message`` (None when the run is within the comfortable size).
     """
     from bayesgeo.fitting.looks import longest_chain
-    from bayesgeo.fitting.model import DENSE_LIMIT
+    from bayesgeo.gp.engines import DENSE_LIMIT, resolve
     from bayesgeo.gp.nn import DEFAULT_NEIGHBOURS
 
     m = DEFAULT_NEIGHBOURS if neighbours is None else int(neighbours)
-    lik = {s: ("dense" if n <= DENSE_LIMIT else "nn") if approx == "auto" else approx for s, n in sizes.items()}
+    lik = {s: resolve(approx, n) for s, n in sizes.items()}
     grad = sum(gradient_seconds(n, lik[s], min(m, max(n - 1, 1))) for s, n in sizes.items())
     longest = longest_chain(draws, max_draws)
 

@@ -117,6 +117,11 @@ class KrigingBasis:
     site: str = ""  # the site label of a fit extracted from a several-site fit ("" otherwise)
 
     @property
+    def engine_name(self) -> str:
+        """The likelihood engine whose kriging this basis is for (:func:`bayesgeo.gp.engines.engine`)."""
+        return "nn" if self.neighbours else "dense"
+
+    @property
     def n_draws(self) -> int:
         """Number of posterior draws D."""
         return int(self.scale.shape[0])
@@ -227,7 +232,9 @@ def _dist_f(basis: KrigingBasis, xy_new: np.ndarray) -> np.ndarray:
 
 
 def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: bool = True):
-    """Conditional mean and variance per draw at new locations (model units).
+    """Conditional mean and variance per draw at new locations (model units), kriging with every datum
+    from the basis's Cholesky factors (the dense engine's kriging; a nearest-neighbour basis is kriged by
+    :func:`bayesgeo.gp.nn.nn_kriging_moments`, and :meth:`bayesgeo.gp.engines.Engine.draw_moments` picks).
 
     Parameters
     ----------
@@ -242,15 +249,10 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     -------
     mean, var : ndarray (D, m)
     """
+    _needs_factors(basis, "kriging with every datum")
     xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
     m = xy_new.shape[0]
     design_new = np.asarray(design_new, dtype=float).reshape(m, -1)
-    if basis.neighbours:
-        from bayesgeo.gp.nn import nn_kriging_moments
-
-        return nn_kriging_moments(basis.xy, basis.values, basis.design, xy_new, design_new, covariance=basis.covariance,
-                        scale=basis.scale, partial_sill=basis.partial_sill, nugget=basis.nugget, beta=basis.beta,
-                        metric=basis.metric, neighbours=basis.neighbours, include_nugget=include_nugget)
     # Pad to a multiple of _PAD targets (repeating the last one): BLAS kernels treat a ragged
     # tail of columns differently in the last bit, and padding makes each target's numbers
     # independent of how the targets were split into chunks.
@@ -309,7 +311,7 @@ def kriging_moments(xy_obs, y_obs, design_obs, xy_new, design_new, covariance: C
 
 def _needs_factors(basis: KrigingBasis, what: str) -> None:
     """Joint quantities need the exact factors, which a nearest-neighbour basis does not hold."""
-    if basis.neighbours:
+    if not basis.chol:
         raise InputError(f"{what} needs the exact dense kriging system; this fit uses the nearest-neighbour "
                          "approximation (large data): map points and grids only, or refit with --approx dense")
 

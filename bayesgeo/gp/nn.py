@@ -552,7 +552,7 @@ def nn_kriging_moments(xy_obs, values, design_obs, xy_new, design_new, *, covari
     Returns
     -------
     mean, var : ndarray (D, T)
-        The same per-draw moments as :func:`bayesgeo.predict.prediction.draw_moments`.
+        The same per-draw moments as :func:`bayesgeo.gp.kriging.draw_moments`.
     """
     _, code = _family(covariance)
     xy_obs, xy_new = _as_xy(xy_obs), np.ascontiguousarray(np.asarray(xy_new, float).reshape(-1, 2))

@@ -25,11 +25,11 @@ partial sill of 1) the largest error on the diagonal was 0.13 (m = 3), 0.004 (m 
 (m = 20). The semivariogram of simulated fields therefore matches the model's
 ``sigma^2 (1 - rho(h)) + tau^2`` up to that small approximation.
 
-Semivariogram check of a nearest-neighbour fit (:func:`nn_replicates` and
-:func:`nn_semivariances`, used by :func:`bayesgeo.checks.ppcheck.variogram_check` when the fit's
-``approx`` is ``"nn"``). Replicates are drawn with :func:`nn_simulate` (one posterior draw each,
+Semivariogram check of a nearest-neighbour fit (:func:`nn_replicates`, the replicates of the
+nearest-neighbour engine, :mod:`bayesgeo.gp.engines`, used by :func:`bayesgeo.checks.ppcheck.variogram_check`
+when the fit's ``approx`` is ``"nn"``). Replicates are drawn with :func:`nn_simulate` (one posterior draw each,
 the fit's ``m``, ordering, metric and distance scale), and the observed and replicated semivariograms come from one pass over all point pairs
-within the largest lag (:func:`bayesgeo.common.pairs.pair_sums`, as the exploratory semivariogram
+within the largest lag (:func:`bayesgeo.common.pairs.column_semivariances`, as the exploratory semivariogram
 computes them for large n): every pair is used, for observed and replicated values alike, so no
 pair subsample is drawn and the comparison stays like for like. Cost: n^2 / 2 pair distances and
 (1 + replicates) squared differences per pair within the lag; memory O(n x replicates).
@@ -51,7 +51,7 @@ from __future__ import annotations
 
 import math
 from concurrent.futures import ThreadPoolExecutor
-from typing import TYPE_CHECKING, NamedTuple
+from typing import NamedTuple
 
 import numba
 import numpy as np
@@ -62,10 +62,8 @@ from bayesgeo.gp.dense import rho_code
 from bayesgeo.common.defaults import JITTER
 from bayesgeo.gp.nn import DEFAULT_NEIGHBOURS, _METRICS, _as_xy, _check_order, _family, _ordering, nearest_previous
 
-if TYPE_CHECKING:
-    from bayesgeo.checks.loo import FitArrays
 
-__all__ = ["NNFactors", "nn_factors", "nn_simulate", "nn_replicates", "nn_semivariances"]
+__all__ = ["NNFactors", "nn_factors", "nn_simulate", "nn_replicates"]
 
 
 class NNFactors(NamedTuple):
@@ -341,8 +339,11 @@ def nn_simulate(xy, covariance: Covariance | str, scale, partial_sill, nugget, *
 # --- the semivariogram check of a nearest-neighbour fit ------------------------------------------
 
 
-def nn_replicates(fa: FitArrays, picks: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+def nn_replicates(fa, picks: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Replicate data ``z_rep = m + s (F beta + y)`` in model units, (n, len(picks)), y from :func:`nn_simulate`.
+
+    ``fa`` is the fit as arrays (:class:`bayesgeo.fitting.arrays.FitArrays`: ``spec``, ``draws``, ``xy``,
+    ``design``).
 
     Replicate ``r`` uses posterior draw ``picks[r]`` (flat, chain-major) with the fit's ``m``,
     maximin ordering, metric and distance scale; the noise is ``rng.standard_normal((R, n))``.
@@ -356,20 +357,3 @@ def nn_replicates(fa: FitArrays, picks: np.ndarray, rng: np.random.Generator) ->
                      metric=spec.metric, distance_scale=spec.distance_scale)
     ys += flat["beta_z"][picks] @ fa.design.T
     return spec.value_mean + spec.value_sd * ys.T
-
-
-def nn_semivariances(xy: np.ndarray, metric: str, edges: np.ndarray, values: np.ndarray):
-    """Matheron semivariance of each column of ``values`` (n, c) over all pairs within ``edges[-1]``.
-
-    One pass over the pairs (:func:`bayesgeo.common.pairs.pair_sums`), no pair list and no n x n matrix;
-    pairs binned as :mod:`bayesgeo.explore.variogram` bins them. Returns ``count`` (bins,), ``dsum`` (bins,:
-    sum of pair distances) and the semivariances (c, bins), NaN in empty bins.
-    """
-    from bayesgeo.common import pairs as _pairs
-    sums = _pairs.pair_sums(xy[:, 0], xy[:, 1], np.asarray(values, dtype=float), group=np.zeros(len(xy), np.int64),
-                            edges=edges, greatcircle=metric == "greatcircle", directions=None, tolerance=0.0,
-                            want=_pairs.WANT_SQ)
-    count, dsum = sums["count"][0], sums["dsum"][0]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        semi = (sums["sq"][0] / (2.0 * count[:, None])).T
-    return count, dsum, semi

@@ -27,36 +27,20 @@ from collections.abc import Sequence
 import numpy as np
 import xarray as xr
 
-from bayesgeo.gp.kriging import (
-    CAUTION,
-    KrigingBasis,
-    block_moments,
-    conditional_simulations,
-    draw_moments,
-    kriging_moments,
-    make_basis,
-    mixture_quantiles,
-    mixture_summary,
-    summarise_samples,
-)
+from bayesgeo.gp.kriging import (CAUTION, KrigingBasis, block_moments, conditional_simulations, make_basis, mixture_summary,
+                                 summarise_samples)
 from bayesgeo.common.csvtable import InputWarning
 from bayesgeo.data.targets import check_area_near_data, far_targets_warning
 from bayesgeo.explore.trend import design_at
+from bayesgeo.gp.engines import engine
 from bayesgeo.common.validate import InputError, check_positive_int
 
 __all__ = [
     "CAUTION",
     "PROBS",
-    "KrigingBasis",
     "area_average",
     "basis_from_fit",
-    "conditional_simulations",
-    "draw_moments",
     "fit_data",
-    "kriging_moments",
-    "make_basis",
-    "mixture_quantiles",
-    "mixture_summary",
     "posterior_parameters",
     "prediction_cautions",
     "label_prediction",
@@ -69,9 +53,6 @@ __all__ = [
 PROBS = (0.05, 0.5, 0.95)
 SCHEDULERS = ("threads", "synchronous")
 
-
-#: Data points per target for nearest-neighbour kriging of fits that used ``--approx nn``.
-NN_PREDICT_NEIGHBOURS = 30
 
 
 def _pick(total: int, draws: int | None) -> np.ndarray:
@@ -179,7 +160,7 @@ def basis_from_fit(fit, *, draws: int | None = None):
     params = posterior_parameters(fit.posterior, spec, draws=draws)
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
     # A fit with the nearest-neighbour likelihood (large n) predicts by nearest-neighbour kriging too.
-    neighbours = NN_PREDICT_NEIGHBOURS if getattr(spec, "approx", "dense") == "nn" else 0
+    neighbours = engine(spec.approx).predict_neighbours(spec.neighbours)
     basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,
@@ -245,7 +226,7 @@ def _chunk(basis, xy, design, thresholds, include_nugget, probs):
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1, user_api="blas"):
-        mean, var = draw_moments(basis, xy, design, include_nugget=include_nugget)
+        mean, var = engine(basis.engine_name).draw_moments(basis, xy, design, include_nugget=include_nugget)
         return mixture_summary(mean, var, thresholds=thresholds, transform=basis.transform, probs=probs)
 
 

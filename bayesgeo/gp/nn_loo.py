@@ -69,13 +69,10 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numba
 import numpy as np
-import xarray as xr
 from scipy.spatial import cKDTree
 
 from bayesgeo.gp import _nn_kernels as _nb
 from bayesgeo.common.defaults import JITTER
-from bayesgeo.fitting.arrays import FitArrays
-from bayesgeo.fitting.arrays import predictive_dataset as _predictive_dataset
 from bayesgeo.gp.nn import _METRICS, _as_xy, _check_m, _family, _search_points
 from bayesgeo.common.defaults import LOG_2PI as _LOG2PI
 
@@ -84,7 +81,6 @@ __all__ = [
     "loo_neighbour_count",
     "loo_neighbours",
     "nn_loo",
-    "nn_loo_predictive",
 ]
 
 #: Smallest number of neighbours of the nearest-neighbour leave-one-out (module docstring).
@@ -227,46 +223,3 @@ def nn_loo(values, xy, design, *, covariance, scale, partial_sill, nugget, beta,
             r = values[None, :] - mean[lo:lo + 64]
             logp[lo:lo + 64] = np.where(v > 0, -0.5 * (_LOG2PI + np.log(v) + r * r / v), -np.inf)
     return mean, var, logp
-
-
-def nn_loo_predictive(fa: FitArrays, *, neighbours: int | None = None, progress=None) -> xr.Dataset:
-    """Nearest-neighbour leave-one-out predictive of every point and draw of a nearest-neighbour fit.
-
-    Parameters
-    ----------
-    fa : FitArrays
-        A single-site fit (or one site block of a several-site fit) read by
-        :func:`bayesgeo.checks.loo.fit_arrays`; normally one with ``spec.approx == "nn"``, though any
-        fit of a family in :data:`bayesgeo.gp.dense.FAST_FAMILIES` is accepted.
-    neighbours : int, optional
-        Conditioning points per left-out point; default :func:`loo_neighbour_count`
-        (``max(spec.neighbours, 30)``, at most n - 1).
-    progress : object with ``update(int)``, optional
-        Told the number of points done (total ``fa.n``).
-
-    Returns
-    -------
-    xarray.Dataset
-        The layout of :func:`bayesgeo.checks.loo.loo_predictive`: ``loo_mean``, ``loo_sd`` (model units)
-        and ``log_lik`` (data units, Jacobian included) along (chain, draw, obs); attributes
-        ``method`` and ``loo_neighbours`` (the m used).
-    """
-    spec = fa.spec
-    m = loo_neighbour_count(spec.neighbours, fa.n, neighbours)
-    nc, nd = fa.draws["sd_z"].shape
-    # phi in the distance units of the coordinates (the kernel does not divide by the distance scale)
-    scale = fa.draws["practical_range_z"].reshape(-1) * spec.distance_scale / spec.range_factor
-    mean, var, logp = nn_loo(
-        fa.y, fa.xy, fa.design, covariance=spec.covariance, scale=scale,
-        partial_sill=fa.draws["sd_z"].reshape(-1) ** 2, nugget=fa.draws["nugget_sd_z"].reshape(-1) ** 2,
-        beta=fa.draws["beta_z"].reshape(nc * nd, -1), neighbours=m, metric=spec.metric, progress=progress)
-    method = (f"nearest-neighbour Gaussian leave-one-out: each point conditioned on its {m} nearest other points "
-              "(simple kriging on the neighbours; exact when m = n - 1)")
-    out = _predictive_dataset(fa, mean, var, logp, method=method)
-    out.attrs["loo_neighbours"] = int(m)
-    if m < fa.n - 1:
-        out.attrs["caution"] = (
-            f"nearest-neighbour leave-one-out (m = {m}) approximates the exact one; with smooth covariance families "
-            "(Matérn 3/2, 5/2, Gaussian) and a nugget, elpd differences were off by up to a third of themselves in "
-            "our checks (docs/model_checks.md): read small differences between such fits as no clear preference")
-    return out
