@@ -30,7 +30,8 @@ import numpy as np
 import bayesgeo
 from bayesgeo.data.demo import DEMO_ACTION_LEVEL
 from bayesgeo.convergence.diagnostics import check_convergence, site_convergence
-from bayesgeo.fitting.hier_outputs import save_site_fit, site_report, with_site_diagnostics
+from bayesgeo.fitting.fitfile import save_fit
+from bayesgeo.fitting.hier_outputs import site_report, with_site_diagnostics
 from bayesgeo.fitting.hierarchical import fit_sites, site_fit
 from bayesgeo.predict.prediction import basis_from_fit, predict_targets
 from bayesgeo.data.targets import grid_targets
@@ -61,7 +62,7 @@ def main(out: Path) -> dict:
         flag = " [NOT CONVERGED]"
         print("NOT CONVERGED: run longer (more tuning and draws) before using any number below"
               + (" (quick settings are deliberately short)" if QUICK else ""))
-    save_site_fit(tree, out, overwrite=True)
+    save_fit(tree, out, overwrite=True)
     report = site_report(tree)
 
     # 3. map each parcel from its own draws (they carry the strength borrowed from the others)

@@ -163,7 +163,8 @@ def test_real_fit_then_map_covers_held_out_samples(tmp_path, capsys):
     then map the 10 held-out sample locations. Their 90% predictive intervals (new measurement,
     nugget included) should cover most of them: with 10 points, 7 or more covered has probability
     0.99 under nominal coverage (scipy.stats.binom.sf(6, 10, 0.9) = 0.987)."""
-    from bayesgeo.fitting.posterior import fit, save_fit
+    from bayesgeo.fitting.posterior import fit
+    from bayesgeo.fitting.fitfile import save_fit
 
     ds = demo_data()
     ds = ds.isel(obs=np.flatnonzero(ds["site"].values == "mill-pond")).drop_vars("site")

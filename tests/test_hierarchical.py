@@ -77,7 +77,8 @@ def _simple_kriging_mean(data, new, params):
 def test_small_site_is_an_error_naming_site_and_rows():
     """A site with fewer than MIN_POINTS = 10 points: InputError naming the site and its rows (the
     input-check rule of this project); with small_sites="keep" it is kept with a warning."""
-    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
+    from bayesgeo.fitting.hierarchical import build_site_model
+    from bayesgeo.fitting.site_inputs import site_inputs
 
     ds, _ = _sites([20, 6], seed=3)
     with pytest.raises(InputError, match=r"site 'P2' has only 6 points \(rows 22, 23, 24, 25, 26, 27\).*--small-sites keep"):
@@ -100,7 +101,7 @@ def test_common_standardisation():
     bayesgeo.fitting.model.model_inputs."""
     from scipy.spatial.distance import pdist
 
-    from bayesgeo.fitting.hierarchical import site_inputs
+    from bayesgeo.fitting.site_inputs import site_inputs
     from bayesgeo.fitting.model import model_inputs
 
     ds, _ = _sites([30, 25, 15], seed=4)
@@ -130,7 +131,8 @@ def test_likelihood_is_sum_of_site_blocks(pooling):
     jitter policy). Under complete pooling the covariance parameters are equal across sites."""
     import pymc as pm
 
-    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
+    from bayesgeo.fitting.hierarchical import build_site_model
+    from bayesgeo.fitting.site_inputs import site_inputs
 
     ds, _ = _sites([15, 12, 11], seed=8)
     model, spec = build_site_model(ds, pooling=pooling, trend=1)
@@ -157,7 +159,7 @@ def test_likelihood_is_sum_of_site_blocks(pooling):
 
 def test_spec_round_trip():
     """SiteSpec.to_dict/from_dict invert each other through JSON (internal consistency)."""
-    from bayesgeo.fitting.hierarchical import SiteSpec, site_inputs
+    from bayesgeo.fitting.site_inputs import SiteSpec, site_inputs
 
     ds, _ = _sites([15, 12], seed=2)
     spec, _ = site_inputs(ds, trend=1)
@@ -226,7 +228,7 @@ def test_derived_and_population_algebra(fits):
     new-site draws are reproducible from the seed and their mean matches the population mean (law of
     total expectation, Monte Carlo tolerance 15%)."""
     from bayesgeo.fitting.hier_outputs import new_site_draws
-    from bayesgeo.fitting.hierarchical import site_spec
+    from bayesgeo.fitting.site_inputs import site_spec
 
     _, _, hier, _ = fits
     spec = site_spec(hier)
@@ -297,18 +299,19 @@ def test_save_report_and_load(fits, tmp_path):
     sites, population, new_site and cautions that defer to local regulation."""
     from bayesgeo.data.design import design_table
     from bayesgeo.fitting.fitted import Fit
-    from bayesgeo.fitting.hier_outputs import save_site_fit, shrinkage_table, site_report
+    from bayesgeo.fitting.fitfile import save_fit
+    from bayesgeo.fitting.hier_outputs import shrinkage_table, site_report
 
     _, _, hier, indep = fits
     shrink = shrinkage_table(hier, indep)
     design = design_table(hier["new_site"].to_dataset(), max_draws=60, distance_units="m")
     out = tmp_path / "fit"
-    save_site_fit(hier, out, shrinkage=shrink, design=design)
+    save_fit(hier, out, shrinkage=shrink, design=design)
     for f in ("posterior.nc", "summary.csv", "summary.txt", "fit.json", "shrinkage.csv", "shrinkage.png",
               "design.csv", "design.png"):
         assert (out / f).stat().st_size > 0, f
     with pytest.raises(InputError, match="already exists"):
-        save_site_fit(hier, out)
+        save_fit(hier, out)
     back = Fit.read(out).tree
     np.testing.assert_array_equal(back["posterior"]["practical_range"].values, hier["posterior"]["practical_range"].values)
     rep = json.loads((out / "fit.json").read_text())
@@ -401,7 +404,7 @@ def test_complete_pooling_outputs_from_synthetic_draws():
     (definition of complete pooling, Gelman et al. 2013, BDA3 sec. 5.5), in data units: practical range
     = D r, partial sill = s^2 sd_z^2, nugget ratio = tau2 / (sigma2 + tau2). Synthetic draws, no sampling."""
     from bayesgeo.fitting.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.fitting.hierarchical import site_inputs
+    from bayesgeo.fitting.site_inputs import site_inputs
 
     ds, _ = _sites([15, 12], seed=9)
     spec, _ = site_inputs(ds, pooling="complete")
@@ -427,14 +430,14 @@ def test_map_one_site_of_a_several_site_fit(fits, tmp_path, capsys):
     equal the prediction stage run on `site_fit(tree, NAME)` directly (the CLI is a thin shell);
     without --site the command says which sites there are (exit 2, one line)."""
     from bayesgeo.cli import main
-    from bayesgeo.fitting.hier_outputs import save_site_fit
+    from bayesgeo.fitting.fitfile import save_fit
     from bayesgeo.fitting.hierarchical import site_fit
     from bayesgeo.predict.prediction import basis_from_fit, predict_targets
     from bayesgeo.data.targets import read_target_points
 
     _, _, hier, _ = fits
     out = tmp_path / "fit"
-    save_site_fit(hier, out)
+    save_fit(hier, out)
     pts = tmp_path / "pts.csv"
     xy = hier["constant_data"]["x"].values[:3], hier["constant_data"]["y"].values[:3]
     pts.write_text("x,y\n" + "".join(f"{a + 1.5},{b - 2.5}\n" for a, b in zip(*xy)))
@@ -471,7 +474,8 @@ def test_centred_and_noncentred_are_one_model(monkeypatch):
     exact to rounding). "auto" centres exactly the sites with at least CENTRED_MIN_POINTS points
     (lowered to 13 here, so that the mixed model of centred and non-centred sites is checked too)."""
     import bayesgeo.fitting.site_inputs as site_inputs_module
-    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
+    from bayesgeo.fitting.hierarchical import build_site_model
+    from bayesgeo.fitting.site_inputs import site_inputs
 
     ds, _ = _sites([15, 12, 11], seed=8)
     nc, spec_nc = build_site_model(ds, trend=1)
@@ -537,7 +541,8 @@ def test_nn_site_blocks_equal_dense_with_all_neighbours(monkeypatch):
     dense model's to rounding at the same point; with m = 3 it differs (the approximation is in
     use). Under approx="auto" only a site above DENSE_LIMIT points gets the nn block."""
     import bayesgeo.gp.engines as engines
-    from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
+    from bayesgeo.fitting.hierarchical import build_site_model
+    from bayesgeo.fitting.site_inputs import site_inputs
 
     ds, _ = _sites([25, 18, 14], seed=12)
     dense, spec_d = build_site_model(ds, trend=1, approx="dense")
@@ -569,8 +574,9 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     stage run directly (thin shell)."""
     from bayesgeo.cli import main
     from bayesgeo.fitting.fitted import Fit
-    from bayesgeo.fitting.hier_outputs import save_site_fit
-    from bayesgeo.fitting.hierarchical import fit_sites, site_fit, site_spec
+    from bayesgeo.fitting.fitfile import save_fit
+    from bayesgeo.fitting.hierarchical import fit_sites, site_fit
+    from bayesgeo.fitting.site_inputs import site_spec
     from bayesgeo.fitting.posterior import fit_spec
     from bayesgeo.predict.prediction import basis_from_fit, predict_targets
     from bayesgeo.data.targets import read_target_points
@@ -578,7 +584,7 @@ def test_nn_several_site_fit_maps_a_site(tmp_path, capsys):
     ds, _ = _sites([25, 22], seed=14)
     tree = fit_sites(ds, approx="nn", neighbours=10, chains=2, draws=120, tune=150, seed=2)
     out = tmp_path / "fit"
-    save_site_fit(tree, out)
+    save_fit(tree, out)
     back = Fit.read(out).tree
     assert site_spec(back).site_approx == ("nn", "nn") and site_spec(back).site_neighbours == (10, 10)
     one = site_fit(back, "P1")
@@ -617,7 +623,7 @@ def test_site_spec_names_the_source():
 
     import xarray as _xr
 
-    from bayesgeo.fitting.hierarchical import site_spec
+    from bayesgeo.fitting.site_inputs import site_spec
     from bayesgeo.common.validate import InputError
 
     tree = _xr.DataTree()

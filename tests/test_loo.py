@@ -274,7 +274,7 @@ def make_site_fit(ds, *, pooling="hierarchical", covariance="matern32", transfor
     so that bayesgeo.fitting.hier_outputs.add_derived and new_site_draws run as after sampling.
     """
     from bayesgeo.fitting.hier_outputs import add_derived, new_site_draws
-    from bayesgeo.fitting.hierarchical import site_inputs
+    from bayesgeo.fitting.site_inputs import site_inputs
 
     spec, data = site_inputs(ds, covariance=covariance, nugget=nugget, transform=transform, pooling=pooling)
     rng = np.random.default_rng(seed)

@@ -12,7 +12,8 @@ import xarray as xr
 from bayesgeo.data.points import points_dataset
 from bayesgeo.data.demo import simulate_field
 from bayesgeo.fitting.fitted import Fit
-from bayesgeo.fitting.posterior import fit, fit_report, fit_spec, save_fit, summary_table, with_diagnostics
+from bayesgeo.fitting.posterior import fit, fit_report, fit_spec, summary_table, with_diagnostics
+from bayesgeo.fitting.fitfile import save_fit
 from bayesgeo.common.validate import InputError
 
 #: Exponential field whose practical range (900 m) is three times the side of the sampled square

@@ -227,7 +227,8 @@ def sbc_model(template: xr.Dataset, config: SBCConfig):
     """
     check_choice(config.kind, KINDS, "kind")
     if config.kind == "hierarchical":
-        from bayesgeo.fitting.hierarchical import build_site_model, site_inputs
+        from bayesgeo.fitting.hierarchical import build_site_model
+        from bayesgeo.fitting.site_inputs import site_inputs
 
         kw = dict(covariance=config.covariance, nu=config.nu, nugget=config.nugget, pooling="hierarchical")
         model, spec = build_site_model(template, **kw)

@@ -287,7 +287,8 @@ def compare_fits(fits: Mapping[str, xr.DataTree], *, site: str | None = None,
 
 def _restrict_to_site(fits: Mapping[str, xr.DataTree], site: str) -> dict[str, xr.DataTree]:
     """Each several-site fit reduced to one site (:func:`bayesgeo.fitting.hierarchical.site_fit`)."""
-    from bayesgeo.fitting.hierarchical import site_fit, site_spec
+    from bayesgeo.fitting.hierarchical import site_fit
+    from bayesgeo.fitting.site_inputs import site_spec
 
     out = {}
     for name, tree in fits.items():
@@ -303,7 +304,7 @@ def _restrict_to_site(fits: Mapping[str, xr.DataTree], site: str) -> dict[str, x
 def _pooling_label(tree: xr.DataTree) -> str:
     if not is_site_fit(tree):
         return "single-site"
-    from bayesgeo.fitting.hierarchical import site_spec
+    from bayesgeo.fitting.site_inputs import site_spec
 
     return site_spec(tree).pooling
 

@@ -14,7 +14,7 @@ __all__ = ["add_site_arguments"]
 
 def add_site_arguments(p) -> None:
     """``--pooling``, ``--small-sites``, ``--parametrisation`` and ``--design-neighbours`` for the several-site model."""
-    from bayesgeo.fitting.hierarchical import CENTRED_MIN_POINTS, PARAMETRISATIONS, POOLINGS, SMALL_SITE_POLICIES
+    from bayesgeo.fitting.site_inputs import CENTRED_MIN_POINTS, PARAMETRISATIONS, POOLINGS, SMALL_SITE_POLICIES
     from bayesgeo.cli._common import refuse_renamed
     from bayesgeo.common.validate import int_option
 

@@ -137,7 +137,7 @@ class SiteFitArrays:
     Attributes
     ----------
     spec : SiteSpec
-        Settings of the several-site fit (:class:`bayesgeo.fitting.hierarchical.SiteSpec`).
+        Settings of the several-site fit (:class:`bayesgeo.fitting.site_inputs.SiteSpec`).
     xy, value, z, obs_name, obs_index, rows, source_sha256 :
         As in :class:`FitArrays`, for all points in data order.
     site : ndarray (n,) of str
@@ -189,7 +189,8 @@ def site_fit_arrays(tree: xr.DataTree) -> SiteFitArrays:
     InputError
         When ``tree`` is not a readable several-site fit.
     """
-    from bayesgeo.fitting.hierarchical import site_fit, site_spec
+    from bayesgeo.fitting.hierarchical import site_fit
+    from bayesgeo.fitting.site_inputs import site_spec
 
     spec = site_spec(tree)
     obs, name = _observed(tree)

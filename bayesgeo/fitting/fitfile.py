@@ -24,9 +24,12 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from bayesgeo.common.io import read_datatree
+from bayesgeo.common.layout import FIT_FILE, FIT_REPORT, PRIOR_CHECK, SUMMARY_CSV, SUMMARY_TXT
+from bayesgeo.common.outputs import new_folder
 from bayesgeo.common.validate import InputError
 
-__all__ = ["read_fit", "check_fit", "check_finite_draws"]
+__all__ = ["read_fit", "save_fit", "check_fit", "check_finite_draws"]
 
 _SAMPLED = ("practical_range_z", "sd_z", "beta_z")
 _GROUPS = ("posterior", "observed_data", "constant_data")
@@ -45,11 +48,13 @@ def read_fit(directory: str | Path, *, written_by: str = "bayesgeo fit", require
         One line naming the file: missing, unreadable as NetCDF (truncated, not NetCDF), or failing
         :func:`check_fit`.
     """
-    from bayesgeo.fitting.posterior import read_fit_file
-
     path = Path(directory)
-    source = str(path / "posterior.nc") if path.is_dir() else str(path)
-    tree = read_fit_file(directory, written_by=written_by)
+    if path.is_dir():
+        path = path / FIT_FILE
+    if not path.is_file():
+        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by '{written_by}')")
+    source = str(path)
+    tree = read_datatree(path, what="NetCDF fit")
     if require_fit or "settings" in tree.attrs:
         return check_fit(tree, source)
     if "posterior" not in tree.children:
@@ -57,6 +62,52 @@ def read_fit(directory: str | Path, *, written_by: str = "bayesgeo fit", require
     _check_json_attrs(tree, source)
     check_finite_draws(tree, source)
     return tree
+
+
+def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = False,
+             shrinkage: xr.Dataset | None = None, design: xr.Dataset | None = None) -> Path:
+    """Write a fit folder atomically, for single-site and several-site fits alike.
+
+    Files: ``posterior.nc`` (the tree, netCDF4), ``summary.csv`` (one row per parameter, or per site,
+    population and new-site parameter, with the convergence verdict), ``summary.txt``, ``fit.json``
+    (:func:`bayesgeo.fitting.posterior.fit_report` or :func:`bayesgeo.fitting.hier_outputs.site_report`),
+    and ``prior_check.png`` for a single-site fit, or, when given, ``shrinkage.csv``/``.png`` and
+    ``design.csv``/``.png`` for a several-site fit (:func:`bayesgeo.fitting.hier_outputs.write_site_extras`).
+    The folder is assembled under a temporary name and renamed at the end
+    (:func:`bayesgeo.common.outputs.new_folder`, which also says what ``overwrite`` may replace).
+    """
+    import json
+
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    from bayesgeo.fitting import hier_outputs as several_site
+    from bayesgeo.fitting import posterior as single_site
+
+    several = tree.attrs.get("settings") and single_site.fit_settings(tree).get("format") == single_site.SEVERAL_SITE_FORMAT
+    if several:
+        report = several_site.site_report(tree, shrinkage=shrinkage, design=design)
+        rows, text = several_site.summary_table(tree), several_site.summary_text_sites(report)
+    elif shrinkage is not None or design is not None:
+        raise ValueError("shrinkage and design tables belong to several-site fits")
+    else:
+        report = single_site.fit_report(tree)
+        rows, text = single_site.summary_table(tree), single_site.summary_text(report)
+    verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
+    with new_folder(directory, overwrite=overwrite) as tmp:
+        tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
+        several_site.write_csv(tmp / SUMMARY_CSV, rows, {"diagnostics": "NOT CONVERGED" if verdict == "fail" else verdict})
+        (tmp / SUMMARY_TXT).write_text(text, encoding="utf-8")
+        (tmp / FIT_REPORT).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+        if several:
+            several_site.write_site_extras(tmp, tree, verdict, shrinkage=shrinkage, design=design)
+        else:
+            fig = single_site.prior_check_figure(tree)
+            fig.savefig(tmp / PRIOR_CHECK, dpi=120, bbox_inches="tight")
+            plt.close(fig)
+    return Path(directory)
 
 
 #: JSON attributes a fit may carry besides ``settings``, and the type each must decode to.
@@ -94,7 +145,7 @@ def check_fit(tree: xr.DataTree, source: str = "fit") -> xr.DataTree:
     _check_json_attrs(tree, source)
     several = settings.get("format") == SEVERAL_SITE_FORMAT
     if several:
-        from bayesgeo.fitting.hierarchical import site_spec
+        from bayesgeo.fitting.site_inputs import site_spec
 
         spec = site_spec(tree, source)
         n_expected = int(sum(spec.n))

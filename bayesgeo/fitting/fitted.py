@@ -104,9 +104,9 @@ class Fit:
 
     @cached_property
     def spec(self):
-        """:class:`bayesgeo.fitting.model.FitSpec` (one site) or :class:`bayesgeo.fitting.hierarchical.SiteSpec`."""
+        """:class:`bayesgeo.fitting.model.FitSpec` (one site) or :class:`bayesgeo.fitting.site_inputs.SiteSpec`."""
         if self.several:
-            from bayesgeo.fitting.hierarchical import site_spec
+            from bayesgeo.fitting.site_inputs import site_spec
 
             return site_spec(self.tree, None if self.source is None else str(self.source))
         from bayesgeo.fitting.posterior import fit_spec
@@ -218,13 +218,9 @@ class Fit:
         return pd.DataFrame(summary_table(self.tree, prob=prob))
 
     def save(self, directory: str | Path, *, overwrite: bool = False, **extras) -> Path:
-        """Write the fit folder atomically (:func:`bayesgeo.fitting.posterior.save_fit` or
-        :func:`bayesgeo.fitting.hier_outputs.save_site_fit`, whose keyword ``extras`` it passes on)."""
-        if self.several:
-            from bayesgeo.fitting.hier_outputs import save_site_fit
-
-            return save_site_fit(self.tree, directory, overwrite=overwrite, **extras)
-        from bayesgeo.fitting.posterior import save_fit
+        """Write the fit folder atomically (:func:`bayesgeo.fitting.fitfile.save_fit`, whose keyword ``extras``,
+        the several-site shrinkage and design tables, it passes on)."""
+        from bayesgeo.fitting.fitfile import save_fit
 
         return save_fit(self.tree, directory, overwrite=overwrite, **extras)
 

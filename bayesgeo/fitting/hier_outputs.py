@@ -17,12 +17,14 @@ the mean total sill is the sum of the means (linearity of expectation).
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.common.io import to_jsonable
-from bayesgeo.common.layout import DESIGN, FIT_FILE, FIT_REPORT, SHRINKAGE, SUMMARY_CSV, SUMMARY_TXT
+from bayesgeo.common.layout import DESIGN, SHRINKAGE
 from bayesgeo.fitting.looks import looks_line, report_fields
 
 __all__ = [
@@ -40,7 +42,8 @@ __all__ = [
     "plot_shrinkage",
     "site_report",
     "summary_text_sites",
-    "save_site_fit",
+    "write_site_extras",
+    "write_csv",
     "with_site_diagnostics",
     "site_cautions",
 ]
@@ -86,7 +89,7 @@ def _parameters_from(prange, psill, nugget, spec) -> dict[str, xr.DataArray]:
 def add_derived(post: xr.Dataset, spec) -> xr.Dataset:
     """Add per-site and population variables in data units to a posterior ``Dataset`` (returns a copy).
 
-    ``spec`` is the :class:`bayesgeo.fitting.hierarchical.SiteSpec` of the fit. Per-site variables are
+    ``spec`` is the :class:`bayesgeo.fitting.site_inputs.SiteSpec` of the fit. Per-site variables are
     those of the single-site fit (:func:`bayesgeo.fitting.posterior.derive`, same names, units and
     long names) with a ``site`` dim; without a nugget, ``nugget`` and ``nugget_ratio`` are zero.
     """
@@ -459,7 +462,9 @@ def summary_text_sites(report: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _write_csv(path, rows: list[dict], extra: dict | None = None) -> None:
+def write_csv(path: Path, rows: list[dict], extra: dict | None = None) -> None:
+    """``rows`` (dicts of one shape) as a CSV file, floats to 10 significant digits, ``extra`` columns added to
+    every row; an empty file for no rows."""
     import csv
 
     if not rows:
@@ -473,48 +478,30 @@ def _write_csv(path, rows: list[dict], extra: dict | None = None) -> None:
             w.writerow({**{k: (f"{v:.10g}" if isinstance(v, float) else v) for k, v in r.items()}, **(extra or {})})
 
 
-def save_site_fit(tree: xr.DataTree, directory, *, overwrite: bool = False, shrinkage: xr.Dataset | None = None,
-                  design: xr.Dataset | None = None):
-    """Write a several-site fit into ``directory`` atomically (:func:`bayesgeo.common.outputs.new_folder`).
-
-    Files: ``posterior.nc`` (the tree), ``summary.csv`` (one row per site/population/new-site
-    parameter), ``summary.txt``, ``fit.json`` (:func:`site_report`) and, when given,
-    ``shrinkage.csv`` / ``shrinkage.png`` and ``design.csv`` / ``design.png``. An existing
-    folder is refused unless ``overwrite``.
-    """
-    import json
-    from pathlib import Path
-
+def write_site_extras(folder: Path, tree: xr.DataTree, verdict: str, *, shrinkage: xr.Dataset | None = None,
+                      design: xr.Dataset | None = None) -> None:
+    """The several-site files of a fit folder besides the common ones (:func:`bayesgeo.fitting.fitfile.save_fit`):
+    ``shrinkage.csv`` / ``shrinkage.png`` and ``design.csv`` / ``design.png`` when given."""
     import matplotlib
 
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
 
     from bayesgeo.data.design import plot_design
-    from bayesgeo.common.outputs import new_folder
 
-    report = site_report(tree, shrinkage=shrinkage, design=design)
-    verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
-    flag = "NOT CONVERGED" if verdict == "fail" else verdict
-    with new_folder(directory, overwrite=overwrite) as tmp:
-        tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
-        _write_csv(tmp / SUMMARY_CSV, summary_table(tree), {"diagnostics": flag})
-        (tmp / SUMMARY_TXT).write_text(summary_text_sites(report), encoding="utf-8")
-        (tmp / FIT_REPORT).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
-        suffix = " (NOT CONVERGED)" if verdict == "fail" else ""
-        if shrinkage is not None:
-            _write_csv(tmp / SHRINKAGE[0], table_rows(shrinkage))
-            pop = tree["new_site"].to_dataset() if "new_site" in tree.children else None
-            fig = plot_shrinkage(shrinkage, population=pop,
-                                 title=f"Shrinkage: independent vs {shrinkage.attrs.get('pooling')}{suffix}")
-            fig.savefig(tmp / SHRINKAGE[1], dpi=120)
-            plt.close(fig)
-        if design is not None:
-            _write_csv(tmp / DESIGN[0], table_rows(design))
-            fig = plot_design(design, title=f"Sampling design for a new site{suffix}")
-            fig.savefig(tmp / DESIGN[1], dpi=120)
-            plt.close(fig)
-    return Path(directory)
+    suffix = " (NOT CONVERGED)" if verdict == "fail" else ""
+    if shrinkage is not None:
+        write_csv(folder / SHRINKAGE[0], table_rows(shrinkage))
+        pop = tree["new_site"].to_dataset() if "new_site" in tree.children else None
+        fig = plot_shrinkage(shrinkage, population=pop,
+                             title=f"Shrinkage: independent vs {shrinkage.attrs.get('pooling')}{suffix}")
+        fig.savefig(folder / SHRINKAGE[1], dpi=120)
+        plt.close(fig)
+    if design is not None:
+        write_csv(folder / DESIGN[0], table_rows(design))
+        fig = plot_design(design, title=f"Sampling design for a new site{suffix}")
+        fig.savefig(folder / DESIGN[1], dpi=120)
+        plt.close(fig)
 
 
 def site_cautions(spec, posterior: xr.Dataset | None = None, diagnostics: dict | None = None,

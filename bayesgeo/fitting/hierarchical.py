@@ -69,28 +69,11 @@ from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.common.io import plain_attr, to_jsonable
 from bayesgeo.fitting.priors import Priors
 from bayesgeo.fitting.hier_outputs import site_cautions
-from bayesgeo.fitting.site_inputs import (CENTRED_MIN_POINTS, HYPERPRIORS, SMALL_SITE_POLICIES, PARAMETRISATIONS,
-                                  POOLINGS, SiteData, SiteSpec, site_inputs, site_spec)
+from bayesgeo.fitting.site_inputs import SiteSpec, site_inputs, site_spec
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 from bayesgeo.gp.engines import engine
 
-__all__ = [
-    "POOLINGS",
-    "SMALL_SITE_POLICIES",
-    "PARAMETRISATIONS",
-    "CENTRED_MIN_POINTS",
-    "HYPERPRIORS",
-    "SiteSpec",
-    "SiteData",
-    "site_inputs",
-    "build_site_model",
-    "fit_sites",
-    "site_fit",
-    "site_spec",
-    "site_cautions",
-    "SITES_ACCEPT",
-    "SITES_RERUN_ACCEPT",
-]
+__all__ = ["SITES_ACCEPT", "SITES_RERUN_ACCEPT", "build_site_model", "fit_sites", "site_fit"]
 
 #: Target acceptance of a several-site fit when the user gives none (funnels need smaller steps).
 SITES_ACCEPT = 0.9

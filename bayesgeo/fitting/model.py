@@ -28,10 +28,9 @@ reasons for this parametrisation are in ``docs/model.md``.
 
 from __future__ import annotations
 
-import json
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 
 import numpy as np
 import xarray as xr
@@ -39,7 +38,8 @@ import xarray as xr
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import TRANSFORMS, apply_transform, sites_of
 from bayesgeo.common.geometry import metric_of
-from bayesgeo.fitting.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
+from bayesgeo.fitting.priors import Priors, pc_sd_rate, resolve_priors
+from bayesgeo.fitting.spec import SpecMethods
 from bayesgeo.explore.trend import design_matrix
 from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
@@ -56,7 +56,7 @@ _LOG4 = math.log(4.0)
 
 
 @dataclass(frozen=True)
-class FitSpec:
+class FitSpec(SpecMethods):
     """Every setting of a single-site fit and the constants of its standardisation.
 
     Attributes
@@ -113,45 +113,10 @@ class FitSpec:
     neighbours: int = 0
 
     @property
-    def model_units(self) -> str:
-        """Units of the modelled values: the value units, or ``log(units)`` under the log transform."""
-        u = self.value_units or "value units"
-        return f"log({u})" if self.transform == "log" else u
-
-    @property
     def rates(self) -> dict[str, float]:
         """Rates of the PC priors on the standardised scale (practical_range_z, sd_z, nugget_sd_z)."""
         p = self.priors
-        return {
-            "range": pc_range_rate(p.range[0] / self.distance_scale, p.range[1]),
-            "sd": pc_sd_rate(p.sd[0] / self.value_sd, p.sd[1]),
-            "nugget": pc_sd_rate(p.nugget[0] / self.value_sd, p.nugget[1]),
-        }
-
-    def to_dict(self) -> dict:
-        """JSON-able dictionary; :meth:`from_dict` inverts it."""
-        d = asdict(self)
-        d["covariates"] = list(self.covariates)
-        d["terms"] = list(self.terms)
-        d["priors"] = self.priors.to_dict()
-        d["design_attrs"] = to_jsonable(self.design_attrs)
-        return d
-
-    @classmethod
-    def from_dict(cls, d: Mapping) -> FitSpec:
-        """Rebuild a spec from :meth:`to_dict` output (for example read back from a fit file)."""
-        d = dict(d)
-        d["covariates"] = tuple(d.get("covariates") or ())
-        d["terms"] = tuple(d["terms"])
-        d["priors"] = Priors.from_dict(d["priors"])
-        d["nu"] = None if d.get("nu") is None else float(d["nu"])
-        return cls(**d)
-
-    def to_json(self) -> str:
-        """:meth:`to_dict` as a JSON string."""
-        return json.dumps(self.to_dict())
-
-
+        return {**self._pc_rates(), "nugget": pc_sd_rate(p.nugget[0] / self.value_sd, p.nugget[1])}
 
 
 def _source(ds: xr.Dataset) -> str:

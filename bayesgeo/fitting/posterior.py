@@ -1,4 +1,4 @@
-"""The fit result: derived quantities in data units, summary table, saving and loading.
+"""The single-site fit: sampling, derived quantities in data units, summary table and report.
 
 A fit is one ``xarray.DataTree`` that describes itself:
 
@@ -13,26 +13,22 @@ A fit is one ``xarray.DataTree`` that describes itself:
   sampler settings, seed, package versions), ``cautions`` (JSON list) and, once checked,
   ``diagnostics`` (JSON from the diagnostics stage).
 
-On disk (:func:`save_fit`): ``DIR/posterior.nc`` (the tree, netCDF4), ``DIR/summary.csv``,
+On disk (:func:`bayesgeo.fitting.fitfile.save_fit`, for both kinds of fit): ``DIR/posterior.nc`` (the tree, netCDF4), ``DIR/summary.csv``,
 ``DIR/summary.txt``, ``DIR/fit.json`` and ``DIR/prior_check.png``.
 """
 
 from __future__ import annotations
 
-import csv
-import io
 import json
 import platform
 from collections.abc import Mapping, Sequence
-from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import sites_of
-from bayesgeo.common.io import plain_attr, read_datatree, to_jsonable
-from bayesgeo.common.outputs import new_folder
+from bayesgeo.common.io import plain_attr, to_jsonable
 from bayesgeo.fitting.model import FitSpec, build_model_and_inputs
 from bayesgeo.fitting.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks_line, report_fields, sample_fit
 from bayesgeo.fitting.sampling import new_seed
@@ -40,7 +36,7 @@ from bayesgeo.gp.trend_posterior import draw_trend
 from bayesgeo.common.validate import InputError
 from bayesgeo.gp.engines import engine
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
-from bayesgeo.common.layout import FIT_FILE, FIT_REPORT, PRIOR_CHECK, SUMMARY_CSV, SUMMARY_TXT
+from bayesgeo.common.layout import FIT_FILE
 
 __all__ = [
     "FIT_FILE",
@@ -55,7 +51,6 @@ __all__ = [
     "cautions",
     "with_diagnostics",
     "prior_check_figure",
-    "save_fit",
 ]
 
 #: Name of the NetCDF file of a saved fit.
@@ -452,48 +447,3 @@ def prior_check_figure(tree: xr.DataTree, *, draws: int = 4000, seed: int = 0):
                                nu=spec.nu if spec.covariance == "matern" else None,
                                nugget=spec.nugget, draws=draws, seed=seed)
     return plot_prior_semivariogram(band, emp, distance_units=spec.distance_units, value_units=spec.model_units)
-
-
-def save_fit(tree: xr.DataTree, directory: str | Path, *, overwrite: bool = False) -> Path:
-    """Write a fit into ``directory`` atomically: posterior.nc, summary.csv, summary.txt, fit.json
-    and prior_check.png (:func:`prior_check_figure`).
-
-    The folder is assembled under a temporary name and renamed at the end
-    (:func:`bayesgeo.common.outputs.new_folder`, which also says what ``overwrite`` may replace).
-    """
-    report = fit_report(tree)
-    rows = summary_table(tree)
-    verdict = (report["diagnostics"] or {}).get("verdict", "not checked")
-    with new_folder(directory, overwrite=overwrite) as tmp:
-        tree.to_netcdf(tmp / FIT_FILE, engine="netcdf4")
-        buf = io.StringIO()
-        w = csv.DictWriter(buf, fieldnames=[*rows[0].keys(), "diagnostics"], lineterminator="\n")
-        w.writeheader()
-        for r in rows:
-            w.writerow({**{k: (f"{v:.10g}" if isinstance(v, float) else v) for k, v in r.items()},
-                        "diagnostics": "NOT CONVERGED" if verdict == "fail" else verdict})
-        (tmp / SUMMARY_CSV).write_text(buf.getvalue(), encoding="utf-8")
-        (tmp / SUMMARY_TXT).write_text(summary_text(report), encoding="utf-8")
-        (tmp / FIT_REPORT).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
-        import matplotlib.pyplot as plt
-
-        fig = prior_check_figure(tree)
-        fig.savefig(tmp / PRIOR_CHECK, dpi=120, bbox_inches="tight")
-        plt.close(fig)
-    return Path(directory)
-
-
-def read_fit_file(directory: str | Path, *, written_by: str = "bayesgeo fit") -> xr.DataTree:
-    """Read ``directory/posterior.nc`` (or the file ``directory`` itself) into memory, closed.
-
-    Raises
-    ------
-    InputError
-        No such file (naming the command that writes it), or a file NetCDF cannot read.
-    """
-    path = Path(directory)
-    if path.is_dir():
-        path = path / FIT_FILE
-    if not path.is_file():
-        raise InputError(f"{path}: no fit found (expected {FIT_FILE} written by '{written_by}')")
-    return read_datatree(path, what="NetCDF fit")

@@ -12,11 +12,10 @@ are in ``docs/hierarchical.md``.
 
 from __future__ import annotations
 
-import json
 import math
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 
 import numpy as np
 import xarray as xr
@@ -27,7 +26,8 @@ from bayesgeo.common.geometry import metric_of
 from bayesgeo.gp.engines import choose, engine
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.fitting.model import FitSpec, transform_values
-from bayesgeo.fitting.priors import Priors, pc_range_rate, pc_sd_rate, resolve_priors
+from bayesgeo.fitting.priors import Priors, resolve_priors
+from bayesgeo.fitting.spec import SpecMethods
 from bayesgeo.explore.trend import design_matrix
 from bayesgeo.common.validate import InputError, check_choice, format_rows
 
@@ -70,7 +70,7 @@ HYPERPRIORS: dict[str, float] = {
 
 
 @dataclass(frozen=True)
-class SiteSpec:
+class SiteSpec(SpecMethods):
     """Every setting of a several-site fit and the constants of its common standardisation.
 
     Attributes
@@ -148,46 +148,9 @@ class SiteSpec:
     site_neighbours: tuple[int, ...] = ()
 
     @property
-    def model_units(self) -> str:
-        """Units of the modelled values: the value units, or ``log(units)`` under the log transform."""
-        u = self.value_units or "value units"
-        return f"log({u})" if self.transform == "log" else u
-
-    @property
     def rates(self) -> dict[str, float]:
         """PC-prior rates on the standardised scale (population location, or per site when independent)."""
-        p = self.priors
-        return {"range": pc_range_rate(p.range[0] / self.distance_scale, p.range[1]),
-                "sd": pc_sd_rate(p.sd[0] / self.value_sd, p.sd[1])}
-
-    def to_dict(self) -> dict:
-        """JSON-able dictionary; :meth:`from_dict` inverts it."""
-        d = asdict(self)
-        for key in ("sites", "n", "small_sites", "covariates", "terms", "site_extents", "warnings", "site_centred",
-                    "site_approx", "site_neighbours"):
-            d[key] = list(d[key])
-        d["priors"] = self.priors.to_dict()
-        d["design_attrs"] = to_jsonable(self.design_attrs)
-        return d
-
-    @classmethod
-    def from_dict(cls, d: Mapping) -> SiteSpec:
-        """Rebuild a spec from :meth:`to_dict` output."""
-        d = dict(d)
-        for key in ("sites", "small_sites", "covariates", "terms", "warnings"):
-            d[key] = tuple(str(v) for v in d.get(key) or ())
-        d["n"] = tuple(int(v) for v in d["n"])
-        d["site_extents"] = tuple(float(v) for v in d["site_extents"])
-        d["site_centred"] = tuple(bool(v) for v in d.get("site_centred") or ())
-        d["site_approx"] = tuple(str(v) for v in d.get("site_approx") or ())
-        d["site_neighbours"] = tuple(int(v) for v in d.get("site_neighbours") or ())
-        d["priors"] = Priors.from_dict(d["priors"])
-        d["nu"] = None if d.get("nu") is None else float(d["nu"])
-        return cls(**d)
-
-    def to_json(self) -> str:
-        """:meth:`to_dict` as a JSON string."""
-        return json.dumps(self.to_dict())
+        return self._pc_rates()
 
     def fit_spec(self, site: str) -> FitSpec:
         """The single-site :class:`bayesgeo.fitting.model.FitSpec` of one site (common standardisation)."""

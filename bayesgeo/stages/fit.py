@@ -1,10 +1,10 @@
 """The fit stage: read point data, fit the Bayesian GP model, check it and write the fit folder.
 
 One site: :func:`bayesgeo.fitting.posterior.fit` (or, with ``keep_sampling``, :func:`bayesgeo.fitting.keep_sampling.fit_until_converged`),
-then the convergence check, written by :func:`bayesgeo.fitting.posterior.save_fit`. Data with a site column of
+then the convergence check, written by :func:`bayesgeo.fitting.fitfile.save_fit`. Data with a site column of
 several sites: :func:`bayesgeo.fitting.hierarchical.fit_sites`, plus (unless ``pooling="independent"``) the
 independent fit for the shrinkage table and the sampling-design table of a new site, written by
-:func:`bayesgeo.fitting.hier_outputs.save_site_fit`. Large fits are announced first (:mod:`bayesgeo.fitting.workload`).
+:func:`bayesgeo.fitting.fitfile.save_fit`. Large fits are announced first (:mod:`bayesgeo.fitting.workload`).
 """
 
 from __future__ import annotations
@@ -129,7 +129,8 @@ def _pair(value) -> tuple | None:
 
 def _fit_one(ds, out, *, priors, seed, keep_sampling, overwrite, stage, model_kw, sample_kw) -> tuple[int, dict]:
     from bayesgeo.convergence.diagnostics import check_convergence
-    from bayesgeo.fitting.posterior import fit, fit_report, save_fit, with_diagnostics
+    from bayesgeo.fitting.posterior import fit, fit_report, with_diagnostics
+    from bayesgeo.fitting.fitfile import save_fit
 
     stage("compiling the model, then sampling (the nutpie bar shows draws when stderr is a terminal) ...")
     kw = dict(model_kw, priors=priors, seed=seed, **sample_kw)
@@ -153,8 +154,10 @@ def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, 
                model_kw, sample_kw) -> tuple[int, dict]:
     from bayesgeo.data.design import design_table
     from bayesgeo.convergence.diagnostics import check_convergence
-    from bayesgeo.fitting.hier_outputs import save_site_fit, shrinkage_table, site_report, with_site_diagnostics
-    from bayesgeo.fitting.hierarchical import fit_sites, site_spec
+    from bayesgeo.fitting.fitfile import save_fit
+    from bayesgeo.fitting.hier_outputs import shrinkage_table, site_report, with_site_diagnostics
+    from bayesgeo.fitting.hierarchical import fit_sites
+    from bayesgeo.fitting.site_inputs import site_spec
     from bayesgeo.fitting.posterior import fit_settings
     from bayesgeo.common.validate import check_positive_int
 
@@ -178,7 +181,7 @@ def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, 
         design = design_table(tree["new_site"].to_dataset(), covariance=spec.covariance,
                               nu=spec.nu if spec.covariance == "matern" else None, neighbours=neighbours,
                               distance_units=spec.distance_units, value_units=spec.model_units)
-    save_site_fit(tree, out, overwrite=overwrite, shrinkage=shrink, design=design)
+    save_fit(tree, out, overwrite=overwrite, shrinkage=shrink, design=design)
     report = site_report(tree, shrinkage=shrink, design=design)
     report.update(extra)
     files = [FIT_FILE, SUMMARY_CSV, SUMMARY_TXT, FIT_REPORT]

@@ -1,0 +1,72 @@
+"""What the single-site and several-site settings have in common: units, PC-prior rates and the JSON form.
+
+:class:`bayesgeo.fitting.model.FitSpec` (one site) and :class:`bayesgeo.fitting.site_inputs.SiteSpec`
+(several sites) are frozen dataclasses that record every setting of a fit and the constants of its
+standardisation; both are stored as JSON in the fit's ``settings`` attribute. They share the
+methods here, so a fit of either kind is written and read by the same code.
+"""
+
+from __future__ import annotations
+
+import json
+import typing
+from collections.abc import Mapping
+from dataclasses import MISSING, asdict, fields
+
+from bayesgeo.common.io import to_jsonable
+from bayesgeo.fitting.priors import Priors, pc_range_rate, pc_sd_rate
+
+__all__ = ["SpecMethods"]
+
+
+class SpecMethods:
+    """Methods of a settings dataclass with ``priors``, ``design_attrs``, ``distance_scale``, ``value_sd``,
+    ``value_units`` and ``transform`` fields."""
+
+    @property
+    def model_units(self) -> str:
+        """Units of the modelled values: the value units, or ``log(units)`` under the log transform."""
+        u = self.value_units or "value units"
+        return f"log({u})" if self.transform == "log" else u
+
+    def _pc_rates(self) -> dict[str, float]:
+        """Rates of the PC priors of the practical range and the partial sd on the standardised scale."""
+        p = self.priors
+        return {"range": pc_range_rate(p.range[0] / self.distance_scale, p.range[1]),
+                "sd": pc_sd_rate(p.sd[0] / self.value_sd, p.sd[1])}
+
+    def to_dict(self) -> dict:
+        """JSON-able dictionary (tuples as lists); :meth:`from_dict` inverts it."""
+        d = asdict(self)
+        for key, value in d.items():
+            if isinstance(value, tuple):
+                d[key] = list(value)
+        d["priors"] = self.priors.to_dict()
+        d["design_attrs"] = to_jsonable(self.design_attrs)
+        return d
+
+    @classmethod
+    def from_dict(cls, d: Mapping):
+        """Rebuild a spec from :meth:`to_dict` output (for example read back from a fit file).
+
+        Raises
+        ------
+        KeyError
+            A setting without a default is missing (fields with a default, added later, take it).
+        """
+        d = dict(d)
+        hints = typing.get_type_hints(cls)
+        for f in fields(cls):
+            if f.name not in d:
+                if f.default is MISSING and f.default_factory is MISSING:
+                    raise KeyError(f.name)
+            elif typing.get_origin(hints[f.name]) is tuple:
+                elem = typing.get_args(hints[f.name])[0]
+                d[f.name] = tuple(elem(v) for v in d[f.name] or ())
+        d["priors"] = Priors.from_dict(d["priors"])
+        d["nu"] = None if d.get("nu") is None else float(d["nu"])
+        return cls(**d)
+
+    def to_json(self) -> str:
+        """:meth:`to_dict` as a JSON string."""
+        return json.dumps(self.to_dict())
