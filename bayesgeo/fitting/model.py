@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
@@ -39,7 +39,7 @@ from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import TRANSFORMS, apply_transform, sites_of
 from bayesgeo.common.geometry import metric_of
 from bayesgeo.fitting.priors import Priors, pc_sd_rate, resolve_priors
-from bayesgeo.fitting.spec import SpecMethods
+from bayesgeo.fitting.spec import SpecBase
 from bayesgeo.explore.trend import design_matrix
 from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
@@ -55,61 +55,20 @@ _LOG4 = math.log(4.0)
 
 
 
-@dataclass(frozen=True)
-class FitSpec(SpecMethods):
-    """Every setting of a single-site fit and the constants of its standardisation.
+@dataclass(frozen=True, kw_only=True)
+class FitSpec(SpecBase):
+    """Every setting of a single-site fit and the constants of its standardisation: those of
+    :class:`bayesgeo.fitting.spec.SpecBase` and
 
     Attributes
     ----------
-    covariance : str
-        Covariance family name; ``nu`` its smoothness (``None`` for fixed-smoothness families
-        other than the exponential, 0.5 for exponential, ...), as in the registry.
-    nugget : bool
-        Whether the model has a nugget.
-    trend : int
-        Polynomial order of the trend in the coordinates (0-3).
-    covariates : tuple of str
-        Covariate names in the trend.
-    transform : str or None
-        ``"log"`` when the model is for log(values).
-    terms : tuple of str
-        Labels of the design columns.
-    design_attrs : dict
-        Attributes of the design matrix (centre and scale of the coordinates and covariates),
-        enough for :func:`bayesgeo.explore.trend.design_at` at new locations.
-    value_mean, value_sd : float
-        Mean and sd (ddof = 1) of the (transformed) values: y = (z - value_mean) / value_sd.
-    distance_scale : float
-        Largest distance between two data points (distance units): distances are divided by it.
-    range_factor : float
-        Practical range / scale parameter of the covariance family.
-    metric, distance_units, value_units, value_column : str
-        Distance metric (``euclidean`` or ``greatcircle``) and labels from the data.
     n : int
         Number of observations.
-    priors : Priors
-        Resolved priors in data units (units of the transformed values).
+    neighbours : int
+        m of the nearest-neighbour likelihood (0 for dense).
     """
 
-    covariance: str
-    nu: float | None
-    nugget: bool
-    trend: int
-    covariates: tuple[str, ...]
-    transform: str | None
-    terms: tuple[str, ...]
-    design_attrs: dict = field(hash=False)
-    value_mean: float
-    value_sd: float
-    distance_scale: float
-    range_factor: float
-    metric: str
-    distance_units: str
-    value_units: str
-    value_column: str
     n: int
-    priors: Priors
-    approx: str = "dense"
     neighbours: int = 0
 
     @property

@@ -15,7 +15,7 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 import xarray as xr
@@ -27,7 +27,7 @@ from bayesgeo.gp.engines import choose, engine
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.fitting.model import FitSpec, transform_values
 from bayesgeo.fitting.priors import Priors, resolve_priors
-from bayesgeo.fitting.spec import SpecMethods
+from bayesgeo.fitting.spec import SpecBase
 from bayesgeo.explore.trend import design_matrix
 from bayesgeo.common.validate import InputError, check_choice, format_rows
 
@@ -69,9 +69,11 @@ HYPERPRIORS: dict[str, float] = {
 }
 
 
-@dataclass(frozen=True)
-class SiteSpec(SpecMethods):
-    """Every setting of a several-site fit and the constants of its common standardisation.
+@dataclass(frozen=True, kw_only=True)
+class SiteSpec(SpecBase):
+    """Every setting of a several-site fit and the constants of its common standardisation: those of
+    :class:`bayesgeo.fitting.spec.SpecBase` (shared by all sites; ``design_attrs`` maps each site label
+    to its own design's attributes, each site's coordinates being centred and scaled on their own) and
 
     Attributes
     ----------
@@ -83,23 +85,8 @@ class SiteSpec(SpecMethods):
         Points per site.
     small_sites : tuple of str
         Sites with fewer than :data:`bayesgeo.data.points.MIN_POINTS` points kept under ``small_sites="keep"``.
-    covariance, nu, nugget, trend, covariates, transform, terms :
-        As in :class:`bayesgeo.fitting.model.FitSpec` (shared by all sites).
-    design_attrs : dict
-        Site label -> attributes of that site's design matrix (each site's coordinates are
-        centred and scaled on their own, :func:`bayesgeo.explore.trend.design_matrix`).
-    value_mean, value_sd : float
-        ``m`` and ``s`` of the common standardisation (units of the modelled values).
-    distance_scale : float
-        ``D``, the median over sites of the largest within-site distance (distance units).
     site_extents : tuple of float
         Largest within-site distance per site.
-    range_factor : float
-        Practical range / scale parameter of the covariance family.
-    metric, distance_units, value_units, value_column : str
-        From the data.
-    priors : Priors
-        Resolved population-location priors (data units), as in :mod:`bayesgeo.fitting.priors`.
     hyperpriors : dict
         :data:`HYPERPRIORS` as used.
     warnings : tuple of str
@@ -109,8 +96,6 @@ class SiteSpec(SpecMethods):
     site_centred : tuple of bool
         Per site: its effects are centred (True) or non-centred (False); empty in fits made before
         the choice existed (all non-centred).
-    approx : str
-        The requested likelihood (``auto``, ``dense`` or ``nn``, as in :mod:`bayesgeo.fitting.model`).
     site_approx : tuple of str
         Per site: ``dense`` or ``nn`` (empty: all dense).
     site_neighbours : tuple of int
@@ -121,29 +106,11 @@ class SiteSpec(SpecMethods):
     sites: tuple[str, ...]
     n: tuple[int, ...]
     small_sites: tuple[str, ...]
-    covariance: str
-    nu: float | None
-    nugget: bool
-    trend: int
-    covariates: tuple[str, ...]
-    transform: str | None
-    terms: tuple[str, ...]
-    design_attrs: dict = field(hash=False)
-    value_mean: float = 0.0
-    value_sd: float = 1.0
-    distance_scale: float = 1.0
     site_extents: tuple[float, ...] = ()
-    range_factor: float = 1.0
-    metric: str = "euclidean"
-    distance_units: str = ""
-    value_units: str = ""
-    value_column: str = "value"
-    priors: Priors = field(default_factory=Priors)
     hyperpriors: dict = field(default_factory=lambda: dict(HYPERPRIORS), hash=False)
     warnings: tuple[str, ...] = ()
     parametrisation: str = "noncentred"
     site_centred: tuple[bool, ...] = ()
-    approx: str = "dense"
     site_approx: tuple[str, ...] = ()
     site_neighbours: tuple[int, ...] = ()
 
@@ -155,15 +122,10 @@ class SiteSpec(SpecMethods):
     def fit_spec(self, site: str) -> FitSpec:
         """The single-site :class:`bayesgeo.fitting.model.FitSpec` of one site (common standardisation)."""
         i = self.site_index(site)
-        return FitSpec(
-            covariance=self.covariance, nu=self.nu, nugget=self.nugget, trend=self.trend,
-            covariates=self.covariates, transform=self.transform, terms=self.terms,
-            design_attrs=self.design_attrs[site], value_mean=self.value_mean, value_sd=self.value_sd,
-            distance_scale=self.distance_scale, range_factor=self.range_factor, metric=self.metric,
-            distance_units=self.distance_units, value_units=self.value_units, value_column=self.value_column,
-            n=self.n[i], priors=self.priors, approx=self.site_approx[i] if self.site_approx else "dense",
-            neighbours=self.site_neighbours[i] if self.site_neighbours else 0,
-        )
+        common = {f.name: getattr(self, f.name) for f in fields(SpecBase)}
+        return FitSpec(**{**common, "design_attrs": self.design_attrs[site], "n": self.n[i],
+                          "approx": self.site_approx[i] if self.site_approx else "dense",
+                          "neighbours": self.site_neighbours[i] if self.site_neighbours else 0})
 
     def centred(self) -> np.ndarray:
         """Per site: 1.0 where the site effects are centred, 0.0 where non-centred."""

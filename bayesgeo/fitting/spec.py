@@ -11,17 +11,72 @@ from __future__ import annotations
 import json
 import typing
 from collections.abc import Mapping
-from dataclasses import MISSING, asdict, fields
+from dataclasses import MISSING, asdict, dataclass, field, fields
 
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.fitting.priors import Priors, pc_range_rate, pc_sd_rate
 
-__all__ = ["SpecMethods"]
+__all__ = ["SpecBase"]
 
 
-class SpecMethods:
-    """Methods of a settings dataclass with ``priors``, ``design_attrs``, ``distance_scale``, ``value_sd``,
-    ``value_units`` and ``transform`` fields."""
+@dataclass(frozen=True, kw_only=True)
+class SpecBase:
+    """The settings every fit records, single-site or several-site, and the methods on them.
+
+    Attributes
+    ----------
+    covariance : str
+        Covariance family name; ``nu`` its smoothness (``None`` for fixed-smoothness families
+        other than the exponential, 0.5 for exponential, ...), as in the registry.
+    nugget : bool
+        Whether the model has a nugget.
+    trend : int
+        Polynomial order of the trend in the coordinates (0-3).
+    covariates : tuple of str
+        Covariate names in the trend.
+    transform : str or None
+        ``"log"`` when the model is for log(values).
+    terms : tuple of str
+        Labels of the design columns.
+    design_attrs : dict
+        Attributes of the design matrix (centre and scale of the coordinates and covariates), enough
+        for :func:`bayesgeo.explore.trend.design_at` at new locations; per site for several sites.
+    value_mean, value_sd : float
+        Mean and sd of the (transformed) values, in the units of the modelled values:
+        y = (z - value_mean) / value_sd.
+    distance_scale : float
+        Distances are divided by it (distance units): the largest distance between two data points
+        (for several sites, the median over sites of the largest within-site distance).
+    range_factor : float
+        Practical range / scale parameter of the covariance family.
+    metric, distance_units, value_units, value_column : str
+        Distance metric (``euclidean`` or ``greatcircle``) and labels from the data.
+    priors : Priors
+        Resolved priors in data units (units of the transformed values); the population location
+        for several sites.
+    approx : str
+        The likelihood (:mod:`bayesgeo.gp.engines`): ``dense`` or ``nn`` for one site; as requested
+        (``auto``, ``dense`` or ``nn``) for several sites, each of which records its own.
+    """
+
+    covariance: str
+    nu: float | None
+    nugget: bool
+    trend: int
+    covariates: tuple[str, ...]
+    transform: str | None
+    terms: tuple[str, ...]
+    design_attrs: dict = field(hash=False)
+    value_mean: float
+    value_sd: float
+    distance_scale: float
+    range_factor: float
+    metric: str
+    distance_units: str
+    value_units: str
+    value_column: str
+    priors: Priors
+    approx: str = "dense"
 
     @property
     def model_units(self) -> str:
