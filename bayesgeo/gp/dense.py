@@ -32,21 +32,17 @@ Cholesky factorisation.
 
 from __future__ import annotations
 
-import hashlib
-import inspect
 import math
 import sys
 
 import numba
 import numpy as np
 import pytensor.tensor as pt
-from pytensor.gradient import DisconnectedType, disconnected_type, grad_not_implemented
-from pytensor.graph.basic import Apply
-from pytensor.graph.op import Op
 from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
 from scipy import linalg
 
 from bayesgeo.gp import _lapack
+from bayesgeo.gp._logp_op import LogpGradOp, source_version
 from bayesgeo.gp.covariance import CLOSED_FORMS, KERNEL_FAMILIES, Covariance
 from bayesgeo.common.defaults import JITTER, LOG_2PI as _LOG2PI
 
@@ -247,8 +243,7 @@ def solve_covariance(dist: np.ndarray, covariance: Covariance, scale: float, par
 
 # PyTensor caches compiled Numba code on disk under a key made of the Op's properties and this
 # number: derive it from the source of the kernel modules so that an edit invalidates the cache.
-_SOURCE_VERSION = int(hashlib.sha256(inspect.getsource(_lapack).encode()
-                                     + inspect.getsource(sys.modules[__name__]).encode()).hexdigest()[:12], 16)
+_SOURCE_VERSION = source_version(_lapack, sys.modules[__name__])
 
 
 def _check_family(covariance: Covariance) -> str:
@@ -318,7 +313,7 @@ def _loglik_and_grad(family, resid, dist, scale, partial_sill, nugget, extra=Non
 # --- PyTensor Op --------------------------------------------------------------------------------
 
 
-class GPLogpGrad(Op):
+class GPLogpGrad(LogpGradOp):
     """Outputs (logp, d logp/d resid, d logp/d scale, d logp/d partial_sill, d logp/d nugget).
 
     Inputs: resid (n,), dist (n, n), scale, partial_sill, nugget (scalars) and, when
@@ -351,30 +346,13 @@ class GPLogpGrad(Op):
             inputs.append(extra)
         elif extra is not None:
             raise TypeError("GPLogpGrad: extra given to an Op built without with_extra=True")
-        outs = [pt.dscalar(), pt.dvector(), pt.dscalar(), pt.dscalar(), pt.dscalar()]
-        return Apply(self, inputs, outs)
+        return self.apply(inputs)
 
-    def perform(self, node, inputs, outputs):
-        res = _loglik_and_grad(self.family, *inputs)
-        for out, val in zip(outputs, res):
-            out[0] = np.asarray(val, dtype="float64")
+    def constant_inputs(self, n_inputs):
+        return (1, 5) if self.with_extra else (1,)  # dist and extra: constants of the model
 
-    def infer_shape(self, node, shapes):
-        return [(), shapes[0], (), (), ()]
-
-    def connection_pattern(self, node):
-        out = [[True] * 5, [False] * 5, [True] * 5, [True] * 5, [True] * 5]
-        return out + [[False] * 5] if self.with_extra else out
-
-    def pullback(self, inputs, outputs, cotangents):
-        constant = [1] + ([5] if self.with_extra else [])  # dist and extra: constants of the model
-        if any(not isinstance(c.type, DisconnectedType) for c in cotangents[1:]):
-            # second derivatives (Hessians) are not implemented
-            return [disconnected_type() if i in constant else grad_not_implemented(self, i, x)
-                    for i, x in enumerate(inputs)]
-        g = cotangents[0]
-        grads = [g * outputs[1], disconnected_type(), g * outputs[2], g * outputs[3], g * outputs[4]]
-        return grads + [disconnected_type()] if self.with_extra else grads
+    def kernel(self, inputs):
+        return _loglik_and_grad(self.family, *inputs)
 
 
 @register_funcify_default_op_cache_key(GPLogpGrad)

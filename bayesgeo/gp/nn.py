@@ -53,19 +53,15 @@ processes. *Statistical Science* 36, 124-141.
 
 from __future__ import annotations
 
-import hashlib
-import inspect
 import sys
 
 import numpy as np
 import pytensor.tensor as pt
-from pytensor.gradient import DisconnectedType, disconnected_type, grad_not_implemented
-from pytensor.graph.basic import Apply
-from pytensor.graph.op import Op
 from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
 from scipy.spatial import cKDTree
 
 from bayesgeo.gp import _nn_kernels as _nb
+from bayesgeo.gp._logp_op import LogpGradOp, source_version
 from bayesgeo.gp.covariance import Covariance, get_covariance
 from bayesgeo.gp.dense import FAST_FAMILIES
 from bayesgeo.common.defaults import JITTER
@@ -298,7 +294,7 @@ def nn_loglik_and_grad(resid, xy, covariance: Covariance | str, scale: float, pa
     return logp, grad_r, g_phi, g_s2, g_t2
 
 
-class NNLogpGrad(Op):
+class NNLogpGrad(LogpGradOp):
     """Outputs (logp, d/d resid, d/d scale, d/d partial_sill, d/d nugget) of the Vecchia likelihood.
 
     Inputs: resid (n,), coords (n, 2), nbr (n, m) int64, scale, partial_sill, nugget. Properties:
@@ -323,36 +319,21 @@ class NNLogpGrad(Op):
         scalars = [pt.as_tensor_variable(v).astype("float64") for v in (scale, partial_sill, nugget)]
         if resid.type.ndim != 1 or coords.type.ndim != 2 or nbr.type.ndim != 2 or any(s.type.ndim for s in scalars):
             raise TypeError("NNLogpGrad needs resid (n,), coords (n, 2), nbr (n, m) and three scalars")
-        outs = [pt.dscalar(), pt.dvector(), pt.dscalar(), pt.dscalar(), pt.dscalar()]
-        return Apply(self, [resid, coords, nbr, *scalars], outs)
+        return self.apply([resid, coords, nbr, *scalars])
 
-    def perform(self, node, inputs, outputs):
+    def constant_inputs(self, n_inputs):
+        return (1, 2)  # coordinates and neighbour sets: constants of the model
+
+    def kernel(self, inputs):
         resid, coords, nbr, scale, psill, nugget = inputs
         grad_r = np.empty(resid.shape[0])
         res = _nb.nn_logp_grad(FAST_FAMILIES.index(self.family), self.metric, self.inv_ds,
                                np.ascontiguousarray(resid), np.ascontiguousarray(coords),
                                np.ascontiguousarray(nbr), float(scale), float(psill), float(nugget), grad_r)
-        vals = (res[0], grad_r, res[1], res[2], res[3])
-        for out, val in zip(outputs, vals):
-            out[0] = np.asarray(val, dtype="float64")
-
-    def infer_shape(self, node, shapes):
-        return [(), shapes[0], (), (), ()]
-
-    def connection_pattern(self, node):
-        return [[True] * 5, [False] * 5, [False] * 5, [True] * 5, [True] * 5, [True] * 5]
-
-    def pullback(self, inputs, outputs, cotangents):
-        if any(not isinstance(c.type, DisconnectedType) for c in cotangents[1:]):
-            return [disconnected_type() if i in (1, 2) else grad_not_implemented(self, i, x)
-                    for i, x in enumerate(inputs)]
-        g = cotangents[0]
-        return [g * outputs[1], disconnected_type(), disconnected_type(), g * outputs[2], g * outputs[3],
-                g * outputs[4]]
+        return res[0], grad_r, res[1], res[2], res[3]
 
 
-_SOURCE_VERSION = int(hashlib.sha256(inspect.getsource(_nb).encode()
-                                     + inspect.getsource(sys.modules[__name__]).encode()).hexdigest()[:12], 16)
+_SOURCE_VERSION = source_version(_nb, sys.modules[__name__])
 
 
 @register_funcify_default_op_cache_key(NNLogpGrad)
