@@ -4,7 +4,7 @@ Part 1 (accuracy): log-likelihood error nn - dense at n = 2,000 for m = 5, 10, 1
   ordering), exponential and Matérn 3/2 fields simulated exactly, 3 data sets each, at the true
   parameters; also the error of a log-likelihood *difference* (true range against 1.5 x the true
   range), which is what moves a posterior. Part 1b: the exact mean and sd of both errors over data
-  sets drawn from the model (bayesgeo.gp.nn.nn_error_moments, closed forms) at n = 1,000, with and
+  sets drawn from the model (bayesgeo.gp.nn_kriging.nn_error_moments, closed forms) at n = 1,000, with and
   without a nugget, maximin / random / coordinate orderings.
 Part 2 (speed): one log-density + gradient of the product's model (bayesgeo.fitting.model.build_model,
   Matérn 3/2, PyTensor function with the Numba linker, as nutpie uses) with the nn likelihood
@@ -60,7 +60,8 @@ from bayesgeo.gp.dense import loglik_numpy  # noqa: E402
 from bayesgeo.common.geometry import distance_matrix  # noqa: E402
 from bayesgeo.gp.dense import FAST_FAMILIES  # noqa: E402
 from bayesgeo.fitting.model import build_model  # noqa: E402
-from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_error_moments, nn_loglik_and_grad  # noqa: E402
+from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik_and_grad
+from bayesgeo.gp.nn_kriging import nn_error_moments
 
 SIDE = 1000.0  # m, square study area of an invented survey
 M_FIT = 20
@@ -433,7 +434,7 @@ def report(acc, mom, spd, fit, args, load0) -> str:
         lines.append("")
     if mom:
         lines += [f"Exact mean and sd of the errors over data sets drawn from the model (closed forms, "
-                  f"bayesgeo.gp.nn.nn_error_moments; no simulation noise) at n = {args.moments_n}, same setting as "
+                  f"bayesgeo.gp.nn_kriging.nn_error_moments; no simulation noise) at n = {args.moments_n}, same setting as "
                   "above, nugget 0 or 0.25. 'error' = nn - dense log-likelihood at the true parameters; 'difference' = "
                   "error of logL(1.5 x range) - logL(range); 'share' = difference mean / |exact difference mean|:", "",
                   "| family | nugget | ordering | m | error mean | error sd | difference mean | difference sd | "

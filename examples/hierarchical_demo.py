@@ -29,7 +29,8 @@ import numpy as np
 
 import bayesgeo
 from bayesgeo.data.demo import DEMO_ACTION_LEVEL
-from bayesgeo.convergence.diagnostics import check_convergence, site_convergence
+from bayesgeo.convergence.diagnostics import check_convergence
+from bayesgeo.convergence.sites import site_convergence
 from bayesgeo.fitting.fitfile import save_fit
 from bayesgeo.fitting.hier_outputs import site_report, with_site_diagnostics
 from bayesgeo.fitting.hierarchical import fit_sites, site_fit

@@ -14,7 +14,7 @@ from bayesgeo.cli import main
 from bayesgeo.data.points import read_points
 from bayesgeo.data.demo import simulate_field
 from bayesgeo.explore.variogram import correlogram, semivariogram
-from bayesgeo.explore.quickfit import fit_wls
+from bayesgeo.explore.wls import fit_wls
 
 FILES = ("semivariogram.png", "correlogram.png", "directional.png", "semivariogram.csv", "correlogram.csv",
          "directional.csv", "fits.csv")

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from bayesgeo.cli import main
-from bayesgeo.calibration.validation import binomial_bounds
+from bayesgeo.calibration.ranks import binomial_bounds
 
 
 def _run(capsys, argv):

@@ -191,7 +191,7 @@ def test_small_site_borrows_strength(fits):
     """Partial pooling narrows the interval of a data-poor group (Gelman et al. 2013, Bayesian Data
     Analysis, 3rd ed., ch. 5): the 12-point site's 90% interval of the practical range and of the
     partial sill is narrower in the hierarchical fit than in the independent one."""
-    from bayesgeo.fitting.hier_outputs import shrinkage_table
+    from bayesgeo.fitting.shrinkage import shrinkage_table
 
     _, _, hier, indep = fits
     tab = shrinkage_table(hier, indep)
@@ -300,7 +300,8 @@ def test_save_report_and_load(fits, tmp_path):
     from bayesgeo.data.design import design_table
     from bayesgeo.fitting.fitted import Fit
     from bayesgeo.fitting.fitfile import save_fit
-    from bayesgeo.fitting.hier_outputs import shrinkage_table, site_report
+    from bayesgeo.fitting.shrinkage import shrinkage_table
+    from bayesgeo.fitting.hier_outputs import site_report
 
     _, _, hier, indep = fits
     shrink = shrinkage_table(hier, indep)

@@ -16,7 +16,8 @@ from bayesgeo.data.demo import simulate_field
 from bayesgeo.explore.variogram import semivariogram
 from bayesgeo.common.geometry import distance_matrix
 from bayesgeo.gp.dense import covariance_matrix, loglik_numpy
-from bayesgeo.explore.quickfit import fit_ml, fit_wls, quick_fits
+from bayesgeo.explore.quickfit import fit_ml, quick_fits
+from bayesgeo.explore.wls import fit_wls
 from bayesgeo.explore.trend import design_matrix
 from bayesgeo.common.validate import InputError
 

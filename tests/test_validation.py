@@ -12,16 +12,8 @@ from scipy import stats
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.gp.dense import covariance_matrix
-from bayesgeo.calibration.validation import (
-    SBCConfig,
-    binomial_bounds,
-    generated_layout,
-    rank_of,
-    rank_uniformity,
-    sbc_model,
-    sbc_summary,
-    simulate_data,
-)
+from bayesgeo.calibration.validation import SBCConfig, generated_layout, sbc_model, simulate_data
+from bayesgeo.calibration.ranks import binomial_bounds, rank_of, rank_uniformity, sbc_summary
 
 
 def test_binomial_bounds_tail_probabilities():

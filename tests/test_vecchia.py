@@ -18,14 +18,8 @@ from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
 from bayesgeo.gp.dense import JITTER
-from bayesgeo.gp.nn import (
-    maximin_order,
-    nearest_previous,
-    nn_error_moments,
-    nn_kriging_moments,
-    nn_loglik,
-    nn_loglik_and_grad,
-)
+from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik, nn_loglik_and_grad
+from bayesgeo.gp.nn_kriging import nn_error_moments, nn_kriging_moments
 
 RHO = {
     "exponential": lambda u: np.exp(-u),

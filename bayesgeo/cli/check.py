@@ -8,7 +8,7 @@ A several-site fit (``bayesgeo fit --site``) keeps one verdict for the whole pos
 site's parameters and every hyperparameter) and adds ``sites`` (one block per site: worst R-hat,
 smallest bulk and tail ESS, the site's own verdict and problems) and ``population`` (the same for
 the parameters without a site index) to ``diagnostics.json`` and to the printed report
-(:func:`bayesgeo.convergence.diagnostics.site_convergence`).
+(:func:`bayesgeo.convergence.sites.site_convergence`).
 """
 
 from __future__ import annotations

@@ -91,7 +91,8 @@ def run(args) -> int:
     from bayesgeo.data.points import sites_of
     from bayesgeo.common.outputs import claim, new_folder
     from bayesgeo.common.validate import InputError, check_positive_int
-    from bayesgeo.calibration.validation import FULL, QUICK, generated_layout, sbc_summary, simulation_based_calibration, with_settings
+    from bayesgeo.calibration.validation import (FULL, QUICK, generated_layout, simulation_based_calibration, with_settings)
+    from bayesgeo.calibration.ranks import sbc_summary
     from bayesgeo.calibration.report import CAUTIONS, validation_html
 
     claim(args.out, overwrite=args.overwrite, inputs=[args.study, args.data])

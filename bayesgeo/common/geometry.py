@@ -10,7 +10,7 @@ import numpy as np
 
 from bayesgeo.common.defaults import EARTH_RADIUS_KM
 
-__all__ = ["EARTH_RADIUS_KM", "METRICS", "distance_matrix", "cross_distance", "metric_of", "continuous_longitudes",
+__all__ = ["EARTH_RADIUS_KM", "METRICS", "distance_matrix", "cross_distance", "haversine", "metric_of", "continuous_longitudes",
            "wrap_longitudes_near"]
 
 
@@ -46,7 +46,9 @@ def wrap_longitudes_near(lon, centre: float) -> np.ndarray:
     return centre + (lon - centre + 180.0) % 360.0 - 180.0
 
 
-def _haversine(lon1, lat1, lon2, lat2):
+def haversine(lon1, lat1, lon2, lat2):
+    """Great-circle distance (km) between points given in degrees of longitude and latitude (arrays
+    broadcast), on a sphere of radius :data:`EARTH_RADIUS_KM` (the haversine formula)."""
     lon1, lat1, lon2, lat2 = (np.radians(v) for v in (lon1, lat1, lon2, lat2))
     a = np.sin((lat2 - lat1) / 2.0) ** 2 + np.cos(lat1) * np.cos(lat2) * np.sin((lon2 - lon1) / 2.0) ** 2
     return 2.0 * EARTH_RADIUS_KM * np.arcsin(np.sqrt(np.clip(a, 0.0, 1.0)))
@@ -76,7 +78,7 @@ def cross_distance(a: np.ndarray, b: np.ndarray, metric: str = "euclidean") -> n
         dy = a[:, None, 1] - b[None, :, 1]
         return np.hypot(dx, dy)
     if metric == "greatcircle":
-        return _haversine(a[:, None, 0], a[:, None, 1], b[None, :, 0], b[None, :, 1])
+        return haversine(a[:, None, 0], a[:, None, 1], b[None, :, 0], b[None, :, 1])
     raise ValueError(f"unknown metric {metric!r}; choose one of: {', '.join(METRICS)}")
 
 

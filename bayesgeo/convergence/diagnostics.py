@@ -41,7 +41,6 @@ Betancourt (2017). A conceptual introduction to Hamiltonian Monte Carlo. arXiv:1
 
 from __future__ import annotations
 
-import json
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import asdict, dataclass, field, fields, replace
@@ -52,8 +51,10 @@ import xarray as xr
 from bayesgeo.convergence.autocorr import IAT_METHODS, iat_array, stack_parameters
 from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
+from bayesgeo.convergence.sampler_stats import (_DEPTH_NAMES, _SATURATION_NAMES, _divergence_location, _first,
+                                                _max_depth, _sample_stats)
 
-__all__ = ["CAUTION", "Convergence", "Thresholds", "check_convergence", "site_convergence"]
+__all__ = ["CAUTION", "Convergence", "Thresholds", "check_convergence"]
 
 VERDICTS = ("pass", "warn", "fail")
 
@@ -301,74 +302,6 @@ def parameter_table(draws: xr.DataArray) -> xr.Dataset:
     return ds
 
 
-# --- sampler statistics -------------------------------------------------------------------------
-
-_DEPTH_NAMES = ("depth", "tree_depth")
-_SATURATION_NAMES = ("maxdepth_reached", "reached_max_treedepth")
-
-
-def _first(ds: xr.Dataset | None, names: Sequence[str]) -> xr.DataArray | None:
-    if ds is None:
-        return None
-    for n in names:
-        if n in ds.data_vars:
-            return ds[n].transpose("chain", "draw", ...)
-    return None
-
-
-def _max_depth(ds: xr.Dataset) -> int | None:
-    """The sampler's maximum tree depth, if the attributes record it (nutpie writes its settings)."""
-    for key in ("inference_library_settings", "sampler_settings"):
-        raw = ds.attrs.get(key)
-        if isinstance(raw, str):
-            try:
-                settings = json.loads(raw)
-            except ValueError:
-                continue
-            found = _find_key(settings, ("maxdepth", "max_treedepth"))
-            if found is not None:
-                return int(found)
-    for key in ("max_treedepth", "maxdepth"):
-        if key in ds.attrs:
-            return int(ds.attrs[key])
-    return None
-
-
-def _find_key(obj, keys):
-    if isinstance(obj, dict):
-        for k, v in obj.items():
-            if k in keys and isinstance(v, (int, float)):
-                return v
-            found = _find_key(v, keys)
-            if found is not None:
-                return found
-    return None
-
-
-def _sample_stats(tree) -> xr.Dataset | None:
-    if isinstance(tree, xr.DataTree) and "sample_stats" in tree.children:
-        return tree["sample_stats"].to_dataset()
-    return None
-
-
-def _divergence_location(draws: xr.DataArray, div: np.ndarray) -> dict:
-    """Where divergent draws sit: per parameter, their mean/quantiles against the others'."""
-    x = np.asarray(draws.values, dtype=float)  # (parameter, chain, draw)
-    if div.sum() == 0 or div.all():
-        return {}
-    out = {}
-    for i, label in enumerate(draws["parameter"].values):
-        a, b = x[i][div], x[i][~div]
-        sd = np.nanstd(x[i], ddof=1)
-        out[str(label)] = {
-            "divergent_mean": float(np.mean(a)), "other_mean": float(np.mean(b)),
-            "divergent_q05": float(np.quantile(a, 0.05)), "divergent_q95": float(np.quantile(a, 0.95)),
-            "other_q05": float(np.quantile(b, 0.05)), "other_q95": float(np.quantile(b, 0.95)),
-            "shift_sd": float((np.mean(a) - np.mean(b)) / sd) if sd > 0 else float("nan"),
-        }
-    return out
-
-
 _PER_ITEM_CHECKS = ("rhat", "ess_bulk", "ess_tail", "bfmi")
 
 
@@ -532,93 +465,3 @@ def check_convergence(tree, *, var_names: Sequence[str] | None = None, threshold
     )
 
 
-# --- per site of a several-site fit -------------------------------------------------------------
-
-#: What the per-site blocks leave to the whole-posterior verdict.
-SITE_NOTE = ("per-site blocks judge R-hat, ESS, stuck and non-finite draws of the parameters indexed by that site "
-             "('population': parameters without a site index); divergences, E-BFMI and tree depth belong to the "
-             "whole posterior and only enter the overall verdict, which is never better than the worst block")
-
-
-def _site_of_rows(post: xr.Dataset, variables: Sequence[str], dim: str) -> dict[str, int]:
-    """Parameter label -> position along ``dim`` (-1 for rows without it), labelled as stack_parameters does."""
-    index = xr.DataArray(np.arange(post.sizes[dim], dtype=float), dims=dim, coords={dim: post[dim].values})
-    probe = {}
-    for v in variables:
-        da = post[v].isel(chain=[0], draw=[0, 0, 0, 0])  # stack_parameters wants >= 4 draws
-        probe[v] = (xr.broadcast(index, da)[0].transpose(*da.dims) if dim in da.dims
-                    else xr.full_like(da, -1.0, dtype=float))
-    rows = stack_parameters(xr.Dataset(probe), var_names=list(variables))
-    return {str(p): int(rows.values[i, 0, 0]) for i, p in enumerate(rows["parameter"].values)}
-
-
-def _problem_label(item: str) -> str:
-    for kind in ("rhat", "ess_bulk", "ess_tail"):
-        if item.startswith(kind + "[") and item.endswith("]"):
-            return item[len(kind) + 1:-1]
-    return item
-
-
-def _block(conv: Convergence, labels: list[str]) -> dict:
-    ps = conv.parameters
-    where = np.flatnonzero(np.isin(ps["parameter"].values.astype(str), labels))
-    wanted = set(labels)
-    problems = [p for p in conv.problems if _problem_label(p["item"]) in wanted]
-    levels = {p["level"] for p in problems}
-    out: dict = {"verdict": "fail" if "fail" in levels else "warn" if "warn" in levels else "pass",
-                 "parameters": len(labels)}
-    assessed = where[np.asarray(ps["sd"].values[where] > 0) & np.isfinite(ps["rhat"].values[where])]
-    for key, col, pick in (("worst_rhat", "rhat", np.argmax), ("min_ess_bulk", "ess_bulk", np.argmin),
-                           ("min_ess_tail", "ess_tail", np.argmin)):
-        if assessed.size:
-            j = assessed[int(pick(ps[col].values[assessed]))]
-            out[key], out[key + "_parameter"] = _num(ps[col].values[j]), str(ps["parameter"].values[j])
-        else:
-            out[key], out[key + "_parameter"] = None, None
-    out["problems"] = [p["message"] for p in problems]
-    return out
-
-
-def site_convergence(tree, conv: Convergence, *, dim: str = "site") -> dict | None:
-    """Per-site convergence blocks of a several-site fit, from an existing :func:`check_convergence`.
-
-    Parameters
-    ----------
-    tree : xarray.DataTree or xarray.Dataset
-        The fit (or its posterior) that ``conv`` was computed from.
-    conv : Convergence
-        Result of :func:`check_convergence` on ``tree``; nothing is recomputed.
-    dim : str
-        Name of the site dimension (``"site"`` in :mod:`bayesgeo.fitting.hierarchical` fits).
-
-    Returns
-    -------
-    dict or None
-        ``None`` when the posterior has no ``dim``. Otherwise ``{"sites": {label: block},
-        "population": block or None, "note": str}``. Every parameter row of ``conv`` indexed by a
-        site (``practical_range[north-yard]``, ``beta_z[north-yard, 1]``, ...) belongs to that
-        site's block; the rows without a site index (hyperparameters, population summaries, shared
-        values under complete pooling) form ``population`` (``None`` when there are none, as
-        under independent pooling). A block holds ``verdict`` (the worst level of ``conv``'s
-        problems on its rows, so the same thresholds: R-hat < 1.01 and bulk/tail ESS >= 400,
-        Vehtari et al. 2021), ``parameters`` (rows), ``worst_rhat``, ``min_ess_bulk``,
-        ``min_ess_tail`` (each with the ``..._parameter`` it comes from; constant rows are not
-        assessed) and ``problems`` (messages). Sampler-level checks (divergences, E-BFMI, tree
-        depth) stay with the whole posterior (:data:`SITE_NOTE`).
-    """
-    from bayesgeo.convergence.autocorr import _posterior_dataset
-
-    post = _posterior_dataset(tree)
-    if dim not in post.dims:
-        return None
-    variables = list(dict.fromkeys(str(v) for v in conv.parameters["variable"].values))
-    site_of = _site_of_rows(post, variables, dim)
-    sites = [str(s) for s in post[dim].values]
-    groups: dict[int, list[str]] = {}
-    for label, k in site_of.items():
-        groups.setdefault(k, []).append(label)
-    return to_jsonable({
-        "sites": {s: _block(conv, groups.get(k, [])) for k, s in enumerate(sites)},
-        "population": _block(conv, groups[-1]) if -1 in groups else None,
-        "note": SITE_NOTE,
-    })

@@ -177,7 +177,7 @@ class _NearestNeighbour(Engine):
         return NN_PREDICT_NEIGHBOURS
 
     def draw_moments(self, basis, xy_new, design_new, *, include_nugget=True):
-        from bayesgeo.gp.nn import nn_kriging_moments
+        from bayesgeo.gp.nn_kriging import nn_kriging_moments
 
         return nn_kriging_moments(basis.xy, basis.values, basis.design, xy_new, design_new,
                                   covariance=basis.covariance, scale=basis.scale, partial_sill=basis.partial_sill,

@@ -97,7 +97,7 @@ class KrigingBasis:
         ``"log"``: results are back-transformed to data units per draw.
     neighbours : int
         0 for exact kriging with the factors above; m > 0 for nearest-neighbour kriging
-        (:func:`bayesgeo.gp.nn.nn_kriging_moments`: each target conditioned on its m nearest data), where
+        (:func:`bayesgeo.gp.nn_kriging.nn_kriging_moments`: each target conditioned on its m nearest data), where
         ``chol`` is empty and ``alpha`` unused, so memory stays O(n) for large data.
     """
 
@@ -234,7 +234,7 @@ def _dist_f(basis: KrigingBasis, xy_new: np.ndarray) -> np.ndarray:
 def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: bool = True):
     """Conditional mean and variance per draw at new locations (model units), kriging with every datum
     from the basis's Cholesky factors (the dense engine's kriging; a nearest-neighbour basis is kriged by
-    :func:`bayesgeo.gp.nn.nn_kriging_moments`, and :meth:`bayesgeo.gp.engines.Engine.draw_moments` picks).
+    :func:`bayesgeo.gp.nn_kriging.nn_kriging_moments`, and :meth:`bayesgeo.gp.engines.Engine.draw_moments` picks).
 
     Parameters
     ----------

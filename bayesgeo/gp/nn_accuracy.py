@@ -56,7 +56,7 @@ import numpy as np
 from scipy import optimize
 
 from bayesgeo.gp.covariance import Covariance
-from bayesgeo.common.geometry import _haversine
+from bayesgeo.common.geometry import haversine
 from bayesgeo.common.defaults import JITTER
 from bayesgeo.gp.nn import _as_xy, _family, _ordering, maximin_order, nearest_previous
 from bayesgeo.common.defaults import LOG_2PI as _LOG2PI
@@ -79,7 +79,7 @@ class NNBlocks:
 
 def _dist(a: np.ndarray, b: np.ndarray, metric: str) -> np.ndarray:
     if metric == "greatcircle":
-        return _haversine(a[..., 0], a[..., 1], b[..., 0], b[..., 1])
+        return haversine(a[..., 0], a[..., 1], b[..., 0], b[..., 1])
     return np.hypot(a[..., 0] - b[..., 0], a[..., 1] - b[..., 1])
 
 
@@ -288,7 +288,7 @@ def nn_information(xy, covariance: Covariance | str, scale: float, partial_sill:
     """
     from bayesgeo.common.geometry import distance_matrix
     from bayesgeo.gp.dense import covariance_matrix
-    from bayesgeo.gp.nn import _factors
+    from bayesgeo.gp.nn_kriging import _factors
 
     from bayesgeo.common.geometry import cross_distance
 

@@ -14,7 +14,7 @@ direction, not only earlier ones in the fit's ordering):
 with ``K = sigma2 R(phi) + (tau2 + JITTER sigma2) I``, the matrix of the likelihood, so the nugget
 is on the observations (a left-out value is a new measurement) and ``K_ii`` carries the same
 diagonal as the dense formula. These are the simple-kriging equations (Cressie 1993, *Statistics
-for Spatial Data*, sec. 3.4.5) restricted to ``N(i)``, as in :func:`bayesgeo.gp.nn.nn_kriging_moments`,
+for Spatial Data*, sec. 3.4.5) restricted to ``N(i)``, as in :func:`bayesgeo.gp.nn_kriging.nn_kriging_moments`,
 and they are computed by the same Numba kernel (:func:`bayesgeo.gp._nn_kernels.nn_moments`).
 With ``m = n - 1`` they are the exact conditional of ``y_i`` on all other points, hence the exact
 leave-one-out predictive of :func:`bayesgeo.checks.loo.gp_loo` (Rasmussen and Williams 2006, eq. 5.12).

@@ -4,7 +4,7 @@ Reads ``posterior.nc`` (a bayesgeo fit, or a bare posterior from another program
 ``diagnostics/`` (atomically) with ``diagnostics.json`` and the figures. An earlier ``diagnostics/`` is
 left as it is (the verdict is still computed and returned) unless ``overwrite`` replaces it. A
 several-site fit keeps one verdict for the whole posterior and adds per-site blocks
-(:func:`bayesgeo.convergence.diagnostics.site_convergence`).
+(:func:`bayesgeo.convergence.sites.site_convergence`).
 """
 
 from __future__ import annotations
@@ -62,7 +62,8 @@ def check_fit(folder, *, var_names: Sequence[str] | None = None, lag_limit: int 
         approximation check, per-site blocks of a several-site fit, the files written (or ``kept``)
         and ``figure_error`` (a figure that failed does not hide the verdict).
     """
-    from bayesgeo.convergence.diagnostics import check_convergence, site_convergence
+    from bayesgeo.convergence.diagnostics import check_convergence
+    from bayesgeo.convergence.sites import site_convergence
     from bayesgeo.common.outputs import check_addable
     from bayesgeo.fitting.posterior import approximation_of
 

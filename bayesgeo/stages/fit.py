@@ -155,7 +155,8 @@ def _fit_sites(ds, out, *, priors, pooling, parametrisation, design_neighbours, 
     from bayesgeo.data.design import design_table
     from bayesgeo.convergence.diagnostics import check_convergence
     from bayesgeo.fitting.fitfile import save_fit
-    from bayesgeo.fitting.hier_outputs import shrinkage_table, site_report, with_site_diagnostics
+    from bayesgeo.fitting.shrinkage import shrinkage_table
+    from bayesgeo.fitting.hier_outputs import site_report, with_site_diagnostics
     from bayesgeo.fitting.hierarchical import fit_sites
     from bayesgeo.fitting.site_inputs import site_spec
     from bayesgeo.fitting.posterior import fit_settings

@@ -10,6 +10,7 @@ divergences, mean step size and leapfrog steps, ranks. Example::
 """
 import argparse, json, time, warnings
 import numpy as np
+from bayesgeo.calibration import ranks as RK
 from bayesgeo.calibration import validation as V
 from bayesgeo.calibration.parallel import make_units
 from bayesgeo.fitting.sampling import CompiledModel, sample, compile_model
@@ -58,7 +59,7 @@ for r in only:
         da = post[v["var"]]
         if v["term"] is not None: da = da.isel(term=v["term"])
         arr = np.asarray(da.transpose("chain", "draw").values, float)
-        ranks[label] = V.rank_of(v["value"], arr, cfg.ranks_of)
+        ranks[label] = RK.rank_of(v["value"], arr, cfg.ranks_of)
     rows.append({"r": r, "truth": {k: v["value"] for k, v in truths[r].items()}, "verdict": conv.verdict,
                  "fails": [p["item"] for p in conv.problems if p["level"] == "fail"],
                  "warns": [p["item"] for p in conv.problems if p["level"] == "warn"],

@@ -8,6 +8,7 @@ covariance parameters; a wrong prior sd (1.0) is the negative control.
 Usage: python docs/validation/intercept_exact.py POINTS REPLICATES SEED NUGGET(0/1)
 """
 import sys, warnings, numpy as np, pymc as pm
+from bayesgeo.calibration import ranks as RK
 from bayesgeo.calibration import validation as V
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.gp.dense import covariance_matrix
@@ -34,5 +35,5 @@ for r in range(reps):
         draws = m[0] + np.sqrt(Vb[0, 0]) * rng.standard_normal(L)
         out.append(int(np.sum(draws < t["beta_z"][0])))
 for name, rk in (("model prior sd", ranks), ("wrong sd 1.0", ranks_bad)):
-    u = V.rank_uniformity(rk, L, bins=10)
+    u = RK.rank_uniformity(rk, L, bins=10)
     print(name, "p", u["pvalue"], u["counts"], "mean rank", np.mean(rk))

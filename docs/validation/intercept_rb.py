@@ -56,6 +56,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from bayesgeo.calibration.ranks import _thin, rank_of
+
 _LEVELS = (0.5, 0.9)
 
 
@@ -157,7 +159,7 @@ def _analyse(V, cfg, block, spec, res, trees, sims, fixed):
     for r, (tree, (truth, y)) in enumerate(zip(trees, sims)):
         post = tree["posterior"].to_dataset()
         beta = np.asarray(post["beta_z"].isel(term=j).transpose("chain", "draw").values, dtype=float)
-        flat, thin = beta.ravel(), V._thin(beta, L)
+        flat, thin = beta.ravel(), _thin(beta, L)
         bstar = float(truth["beta_z"][j])
         assert np.isclose(bstar, float(res["truth"].sel(quantity="intercept").values[r]))
         th = {q: np.asarray(post[q].transpose("chain", "draw").values, dtype=float).ravel()
@@ -201,7 +203,7 @@ def _analyse(V, cfg, block, spec, res, trees, sims, fixed):
             conv2 = check_convergence(t2, var_names=["beta_z"], thresholds=dict(cfg.thresholds) or None)
             e2 = _ess(b2)
             rec.update({"cover_fixed": _cover(b2.ravel(), bstar), "u_fixed": float(np.mean(b2 < bstar)),
-                        "rank_fixed": int(V.rank_of(bstar, b2, L)), "verdict_fixed": conv2.verdict,
+                        "rank_fixed": int(rank_of(bstar, b2, L)), "verdict_fixed": conv2.verdict,
                         "ess_bulk_fixed": e2[0], "ess_tail_fixed": e2[1], "mean_fixed": float(b2.mean()),
                         "sd_fixed": float(b2.std(ddof=1))})
         rows.append(rec)

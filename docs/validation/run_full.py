@@ -5,7 +5,7 @@
 run of several hours is easier to follow, and to cut short honestly, when it is split into
 chunks of replicates with their own seeds. Replicates of different chunks are independent draws
 of the same SBC experiment, so their ranks and coverage indicators pool into one result
-(``xarray.concat`` along ``replicate``), summarised by :func:`bayesgeo.calibration.validation.sbc_summary`.
+(``xarray.concat`` along ``replicate``), summarised by :func:`bayesgeo.calibration.ranks.sbc_summary`.
 
 Usage (one process per model configuration; each compiles its model once)::
 
@@ -28,7 +28,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from bayesgeo.calibration.validation import FULL, generated_layout, sbc_summary, simulation_based_calibration, with_settings
+from bayesgeo.calibration.validation import FULL, generated_layout, simulation_based_calibration, with_settings
+from bayesgeo.calibration.ranks import sbc_summary
 
 
 def _run(a) -> None:
