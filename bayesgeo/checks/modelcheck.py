@@ -293,10 +293,10 @@ def _restrict_to_site(fits: Mapping[str, xr.DataTree], site: str) -> dict[str, x
     out = {}
     for name, tree in fits.items():
         if not is_site_fit(tree):
-            raise InputError(f"--site {site}: {name} is a single-site fit; --site compares several-site fits only")
+            raise InputError(f"site: {name} is a single-site fit; a site is compared between several-site fits only")
         spec = site_spec(tree)
         if site not in spec.sites:
-            raise InputError(f"--site: {name} has no site {site!r}; its sites: {', '.join(spec.sites)}")
+            raise InputError(f"site: {name} has no site {site!r}; its sites: {', '.join(spec.sites)}")
         out[name] = site_fit(tree, site)
     return out
 

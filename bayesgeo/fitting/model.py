@@ -122,7 +122,7 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
     try:
         cov = get_covariance(covariance, nu)
     except (ValueError, TypeError) as err:
-        raise InputError(f"--covariance/--nu: {err}") from None
+        raise InputError(f"covariance: {err}") from None
     if not isinstance(nugget, (bool, np.bool_)):
         raise InputError(f"nugget: expected True or False, got {nugget!r}")
     z = transform_values(ds, transform)

@@ -209,7 +209,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     try:
         cov = get_covariance(covariance, nu)
     except (ValueError, TypeError) as err:
-        raise InputError(f"--covariance/--nu: {err}") from None
+        raise InputError(f"covariance: {err}") from None
     if not isinstance(nugget, (bool, np.bool_)):
         raise InputError(f"nugget: expected True or False, got {nugget!r}")
     z_all = transform_values(ds, transform)

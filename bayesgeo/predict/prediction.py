@@ -329,7 +329,7 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     rows = targets["row"].values if "row" in targets.coords else np.arange(1, inside.size + 1)
     far = far_targets_warning(basis.xy, xy[idx], rows[idx], basis.metric) if kind == "points" and idx.size else ""
     if far:
-        warnings.warn(f"--points {targets.attrs.get('source', '')}: {far}", InputWarning, stacklevel=2)
+        warnings.warn(f"{targets.attrs.get('source') or 'target points'}: {far}", InputWarning, stacklevel=2)
     results = _run_chunks(basis, xy[idx], design[idx], thresholds=thr, include_nugget=include_nugget,
                           chunk_cells=chunk_cells, scheduler=scheduler, progress=progress) if idx.size else []
     dims = ("y", "x") if kind == "grid" else ("target",)
