@@ -8,9 +8,9 @@ parcels end to end"):
 
 1. fit three parcels of the invented Marrowby Works demo together (hierarchical pooling);
 2. check convergence: one verdict for the whole posterior and one block per parcel and for the
-   population (:func:`bayesgeo.convergence.diagnostics.site_convergence`);
+   population (:func:`bayesgeo.convergence.sites.site_convergence`);
 3. map each parcel: kriging predictions and the probability of exceeding the demo's invented
-   action level, from that parcel's draws (:func:`bayesgeo.fitting.hierarchical.site_fit`);
+   action level, from that parcel's draws (``fit.site(name)``, :func:`bayesgeo.predict_map`);
 4. the new-parcel predictive: what range and sill to expect at a parcel of the same kind not yet
    sampled.
 
@@ -28,14 +28,10 @@ from pathlib import Path
 import numpy as np
 
 import bayesgeo
-from bayesgeo.data.demo import DEMO_ACTION_LEVEL
-from bayesgeo.convergence.diagnostics import check_convergence
+from bayesgeo.common.outputs import add_to_folder
 from bayesgeo.convergence.sites import site_convergence
-from bayesgeo.fitting.fitfile import save_fit
-from bayesgeo.fitting.hier_outputs import site_report, with_site_diagnostics
-from bayesgeo.fitting.hierarchical import fit_sites, site_fit
-from bayesgeo.predict.prediction import basis_from_fit, predict_targets
-from bayesgeo.data.targets import grid_targets
+from bayesgeo.data.demo import DEMO_ACTION_LEVEL
+from bayesgeo.fitting.hier_outputs import site_report
 
 QUICK = os.environ.get("BAYESGEO_EXAMPLE_QUICK") == "1"
 PARCELS = ["rail-siding", "mill-pond", "east-lot"]
@@ -46,35 +42,33 @@ def main(out: Path) -> dict:
     part = ds.isel(obs=np.isin(ds["site"].values, PARCELS).nonzero()[0])
     chains, draws = (2, 300) if QUICK else (4, 1000)
 
-    # 1. fit
-    tree = fit_sites(part, covariance="matern32", transform="log", pooling="hierarchical", chains=chains,
-                     draws=draws, tune=draws, seed=3)
+    # 1. fit: data with several sites get the several-site model; the convergence check is attached
+    fit = bayesgeo.Fit.sample(part, covariance="matern32", transform="log", pooling="hierarchical", chains=chains,
+                              draws=draws, tune=draws, seed=3)
 
     # 2. check: the whole posterior, then each parcel and the population
-    conv = check_convergence(tree)
-    blocks = site_convergence(tree, conv)
-    tree = with_site_diagnostics(tree, conv.to_json())
+    conv = fit.convergence
+    blocks = site_convergence(fit.tree, conv)
     print(f"convergence, whole posterior: {conv.verdict.upper()}")
     for name, b in [*blocks["sites"].items(), ("population", blocks["population"])]:
         print(f"  {name:>12}: {b['verdict']:<4}  worst R-hat {b['worst_rhat']:.3f}, "
               f"min bulk ESS {b['min_ess_bulk']:.0f}, min tail ESS {b['min_ess_tail']:.0f}")
     flag = ""
-    if conv.verdict == "fail":  # as `bayesgeo map` would refuse without --allow-unconverged
+    if conv.verdict == "fail":  # predict_map refuses such a fit unless told; then it marks the maps
         flag = " [NOT CONVERGED]"
         print("NOT CONVERGED: run longer (more tuning and draws) before using any number below"
               + (" (quick settings are deliberately short)" if QUICK else ""))
-    save_fit(tree, out, overwrite=True)
-    report = site_report(tree)
+    fit.save(out, overwrite=True)
+    report = site_report(fit.tree)
 
     # 3. map each parcel from its own draws (they carry the strength borrowed from the others)
     print(f"\nper parcel{flag} (practical range in m; P(arsenic > {DEMO_ACTION_LEVEL:g} mg/kg) on a grid):")
     for parcel in PARCELS:
-        one = site_fit(tree, parcel)
-        basis, spec, _ = basis_from_fit(one, draws=50 if QUICK else 300)
-        targets = grid_targets(basis.xy, cell=40.0 if QUICK else 10.0)
-        pred = predict_targets(basis, targets, thresholds=[DEMO_ACTION_LEVEL], design_attrs=spec.design_attrs,
-                               units=spec.value_units, scheduler="synchronous" if QUICK else "threads")
-        pred.to_netcdf(out / f"predictions_{parcel}.nc", engine="netcdf4")
+        pred = bayesgeo.predict_map(fit.site(parcel), cell=40.0 if QUICK else 10.0, thresholds=[DEMO_ACTION_LEVEL],
+                                    draws=50 if QUICK else 300, allow_unconverged=True,
+                                    scheduler="synchronous" if QUICK else "threads")
+        with add_to_folder(out, f"predictions_{parcel}.nc", overwrite=True) as tmp:
+            pred.to_netcdf(tmp, engine="netcdf4")
         pr = report["sites"][parcel]["parameters"]["practical_range"]
         share = float(np.nanmean(pred["p_exceed"].values[0] > 0.5))
         print(f"  {parcel:>12}: n = {report['sites'][parcel]['n']:3d}, practical range {pr['q50']:.4g} "

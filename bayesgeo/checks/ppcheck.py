@@ -235,9 +235,9 @@ def _model_band(fa: FitArrays, h: np.ndarray, quantiles: Sequence[float]) -> np.
     """Quantiles over draws of gamma(h) = sigma^2 (1 - rho(h)) + tau^2 in squared model units."""
     spec = fa.spec
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
-    scale = fa.draws["practical_range_z"].reshape(-1) * spec.distance_scale / spec.range_factor
-    s2 = (fa.draws["sd_z"].reshape(-1) * spec.value_sd) ** 2
-    t2 = (fa.draws["nugget_sd_z"].reshape(-1) * spec.value_sd) ** 2
+    scale = spec.scale_of(fa.draws["practical_range_z"].reshape(-1))
+    s2 = spec.variance_of(fa.draws["sd_z"].reshape(-1))
+    t2 = spec.variance_of(fa.draws["nugget_sd_z"].reshape(-1))
     h = np.asarray(h, dtype=float)
     rho = cov.correlation(h[None, :], scale[:, None])
     gam = s2[:, None] * (1.0 - rho) + np.where(h[None, :] > 0, t2[:, None], 0.0)

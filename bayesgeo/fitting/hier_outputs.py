@@ -99,11 +99,10 @@ def add_derived(post: xr.Dataset, spec) -> xr.Dataset:
         sq = f"({spec.model_units})^2"
         post["nugget"] = xr.zeros_like(post["partial_sill"]).assign_attrs(units=sq, long_name="nugget (none fitted)")
         post["nugget_ratio"] = xr.zeros_like(post["partial_sill"]).assign_attrs(units="1", long_name="nugget / total sill")
-    s2, dsc = spec.value_sd**2, spec.distance_scale
     units = _units(spec)
     if spec.pooling == "hierarchical":
-        med_r = post["population_range_z"] * dsc
-        med_v = post["population_sd_z"] ** 2 * s2
+        med_r = spec.practical_range_of(post["population_range_z"])
+        med_v = spec.variance_of(post["population_sd_z"])
         sr, sv = post["range_site_sd"], post["sill_site_sd"]
         pop = {
             "population_practical_range_median": med_r,
@@ -158,12 +157,12 @@ def new_site_draws(post: xr.Dataset, spec, *, seed: int) -> xr.Dataset:
         sd = post["population_sd_z"].values * np.exp(0.5 * post["sill_site_sd"].values * eta[1])
         if spec.nugget:
             logit_f = post["nugget_logit_mu"].values + post["nugget_site_sd"].values * eta[2]
-            tau2 = sd**2 * np.exp(logit_f)
+            tau = sd * np.exp(0.5 * logit_f)  # tau^2 = sd^2 f / (1 - f)
         else:
-            tau2 = np.zeros(shape)
-        prange = xr.DataArray(r * spec.distance_scale, dims=dims, coords=coords)
-        psill = xr.DataArray(sd**2 * spec.value_sd**2, dims=dims, coords=coords)
-        nug = xr.DataArray(tau2 * spec.value_sd**2, dims=dims, coords=coords)
+            tau = np.zeros(shape)
+        prange = xr.DataArray(spec.practical_range_of(r), dims=dims, coords=coords)
+        psill = xr.DataArray(spec.variance_of(sd), dims=dims, coords=coords)
+        nug = xr.DataArray(spec.variance_of(tau), dims=dims, coords=coords)
     elif spec.pooling == "complete":
         prange, psill, nug = (post[k].isel(site=0, drop=True) for k in ("practical_range", "partial_sill", "nugget"))
     else:

@@ -138,7 +138,7 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
     m added to the intercept term ``"1"``.
     """
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
-    s, dscale = spec.value_sd, spec.distance_scale
+    s = spec.value_sd
     vu, du = spec.model_units, spec.distance_units or "distance units"
     out = posterior.copy()
     raw = {
@@ -152,15 +152,15 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
     for name, text in raw.items():
         if name in out:
             out[name].attrs.update(units="1", long_name=text, scale="standardised (sampled)")
-    prange = out["practical_range_z"] * dscale
+    prange = spec.practical_range_of(out["practical_range_z"])
     out["practical_range"] = prange.assign_attrs(
         units=du, long_name=f"practical range (distance where the correlation falls to 0.05{'; the range' if cov.name == 'spherical' else ''})")
     scale = prange / cov.range_factor
     out["scale"] = scale.assign_attrs(units=du, long_name=f"scale parameter phi of the {cov.label} correlation")
-    psill = (out["sd_z"] * s) ** 2
+    psill = spec.variance_of(out["sd_z"])
     out["partial_sill"] = psill.assign_attrs(units=f"({vu})^2", long_name="partial sill sigma^2 (variance of the spatial field)")
     if spec.nugget:
-        nug = (out["nugget_sd_z"] * s) ** 2
+        nug = spec.variance_of(out["nugget_sd_z"])
         out["nugget"] = nug.assign_attrs(units=f"({vu})^2", long_name="nugget tau^2 (variance not spatially correlated)")
         total = psill + nug
         out["total_sill"] = total.assign_attrs(units=f"({vu})^2", long_name="total sill sigma^2 + tau^2")

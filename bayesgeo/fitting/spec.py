@@ -84,6 +84,24 @@ class SpecBase:
         u = self.value_units or "value units"
         return f"log({u})" if self.transform == "log" else u
 
+    # --- from the model's standardised scale to data units (the one place) ---------------------------
+
+    def practical_range_of(self, range_z):
+        """Practical range (distance units) of standardised draws ``practical_range_z``."""
+        return range_z * self.distance_scale
+
+    def scale_of(self, range_z):
+        """Scale parameter phi (distance units) of standardised draws ``practical_range_z``."""
+        return range_z * self.distance_scale / self.range_factor
+
+    def variance_of(self, sd_z):
+        """Variance (squared units of the modelled values) of a standardised sd (``sd_z``, ``nugget_sd_z``)."""
+        return (sd_z * self.value_sd) ** 2
+
+    def values_of(self, y):
+        """Modelled values (log values under the log transform) of standardised values ``y``."""
+        return self.value_mean + self.value_sd * y
+
     def _pc_rates(self) -> dict[str, float]:
         """Rates of the PC priors of the practical range and the partial sd on the standardised scale."""
         p = self.priors

@@ -149,7 +149,7 @@ class _Dense(Engine):
         ys = np.empty((fa.n, picks.size))
         for col, (_, mu, c) in enumerate(draw_covariances(fa, picks)):
             ys[:, col] = mu + np.linalg.cholesky(c) @ rng.standard_normal(fa.n)
-        return fa.spec.value_mean + fa.spec.value_sd * ys
+        return fa.spec.values_of(ys)
 
     def simulation(self, neighbours):
         return "exact multivariate normal (Cholesky of K)"
@@ -191,7 +191,7 @@ class _NearestNeighbour(Engine):
         m = loo_neighbour_count(spec.neighbours, fa.n, neighbours)
         nc, nd = fa.draws["sd_z"].shape
         # phi in the distance units of the coordinates (the kernel does not divide by the distance scale)
-        scale = fa.draws["practical_range_z"].reshape(-1) * spec.distance_scale / spec.range_factor
+        scale = spec.scale_of(fa.draws["practical_range_z"].reshape(-1))
         with (progress or _no_bar)(total=fa.n, desc="nearest-neighbour LOO") as bar:
             mean, var, logp = nn_loo(
                 fa.y, fa.xy, fa.design, covariance=spec.covariance, scale=scale,

@@ -356,4 +356,4 @@ def nn_replicates(fa, picks: np.ndarray, rng: np.random.Generator) -> np.ndarray
                      neighbours=int(spec.neighbours or DEFAULT_NEIGHBOURS), rng=rng,
                      metric=spec.metric, distance_scale=spec.distance_scale)
     ys += flat["beta_z"][picks] @ fa.design.T
-    return spec.value_mean + spec.value_sd * ys.T
+    return spec.values_of(ys.T)
