@@ -35,7 +35,7 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from bayesgeo.gp.covariance import get_covariance
+from bayesgeo.gp.covariance import Covariance, get_covariance
 from bayesgeo.data.points import TRANSFORMS, apply_transform, sites_of
 from bayesgeo.common.geometry import metric_of
 from bayesgeo.fitting.priors import Priors, pc_sd_rate, resolve_priors
@@ -45,7 +45,7 @@ from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.gp.engines import choose, engine
 
-__all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "model_inputs",
+__all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "check_model_inputs", "model_inputs",
            "build_model_and_inputs", "transform_values", "variance_split_logp"]
 
 #: Labels of the two sampled coordinates of the variances in a model with a nugget:
@@ -98,6 +98,27 @@ def _check_single_site(ds: xr.Dataset) -> None:
         )
 
 
+def check_model_inputs(ds: xr.Dataset, covariance: str, nu: float | None, nugget) -> Covariance:
+    """The covariance family of a model of ``ds`` after the checks every model makes (single- and
+    several-site): point data, a known family and smoothness, a True/False nugget.
+
+    Raises
+    ------
+    InputError
+        One line naming the data source or the argument.
+    """
+    for key in ("x", "y", "value"):
+        if key not in ds.variables:
+            raise InputError(f"{_source(ds)}: not point data (variable {key!r} missing)")
+    try:
+        cov = get_covariance(covariance, nu)
+    except (ValueError, TypeError) as err:
+        raise InputError(f"covariance: {err}") from None
+    if not isinstance(nugget, (bool, np.bool_)):
+        raise InputError(f"nugget: expected True or False, got {nugget!r}")
+    return cov
+
+
 def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                  nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                  transform: str | None = None, priors: Priors | Mapping | None = None,
@@ -115,16 +136,8 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
         Distances divided by ``spec.distance_scale``; ``None`` for the nearest-neighbour
         likelihood, which never builds an n x n matrix.
     """
-    for key in ("x", "y", "value"):
-        if key not in ds.variables:
-            raise InputError(f"{_source(ds)}: not point data (variable {key!r} missing)")
+    cov = check_model_inputs(ds, covariance, nu, nugget)
     _check_single_site(ds)
-    try:
-        cov = get_covariance(covariance, nu)
-    except (ValueError, TypeError) as err:
-        raise InputError(f"covariance: {err}") from None
-    if not isinstance(nugget, (bool, np.bool_)):
-        raise InputError(f"nugget: expected True or False, got {nugget!r}")
     z = transform_values(ds, transform)
     design = design_matrix(ds, trend, tuple(covariates))
     n, p = design.shape

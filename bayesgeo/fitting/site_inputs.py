@@ -20,12 +20,11 @@ from dataclasses import dataclass, field, fields
 import numpy as np
 import xarray as xr
 
-from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import MIN_POINTS, SMALL_SITES, sites_of
 from bayesgeo.common.geometry import metric_of
 from bayesgeo.gp.engines import choose, engine
 from bayesgeo.common.io import to_jsonable
-from bayesgeo.fitting.model import FitSpec, transform_values
+from bayesgeo.fitting.model import FitSpec, _source, check_model_inputs, transform_values
 from bayesgeo.fitting.priors import Priors, resolve_priors
 from bayesgeo.fitting.spec import SpecBase
 from bayesgeo.explore.trend import design_matrix
@@ -154,10 +153,6 @@ class SiteData:
     xy: np.ndarray
 
 
-def _source(ds: xr.Dataset) -> str:
-    return str(ds.attrs.get("source") or "data")
-
-
 def _split_sites(ds: xr.Dataset) -> list[tuple[str, xr.Dataset]]:
     labels = sites_of(ds)
     if labels == [""]:
@@ -203,15 +198,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     check_choice(pooling, POOLINGS, "pooling")
     check_choice(small_sites, SMALL_SITE_POLICIES, "small_sites")
     check_choice(parametrisation, PARAMETRISATIONS, "parametrisation")
-    for key in ("x", "y", "value"):
-        if key not in ds.variables:
-            raise InputError(f"{_source(ds)}: not point data (variable {key!r} missing)")
-    try:
-        cov = get_covariance(covariance, nu)
-    except (ValueError, TypeError) as err:
-        raise InputError(f"covariance: {err}") from None
-    if not isinstance(nugget, (bool, np.bool_)):
-        raise InputError(f"nugget: expected True or False, got {nugget!r}")
+    cov = check_model_inputs(ds, covariance, nugget=nugget, nu=nu)
     z_all = transform_values(ds, transform)
     ds = ds.assign(_z=("obs", z_all))
     parts = _split_sites(ds)
