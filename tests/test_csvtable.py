@@ -64,7 +64,8 @@ def test_missing_field_refused(tmp_path, grid_rows):
     ("1_000", r"'1_000' has digit separators \('_'\)"),
     ('"1,000"', r"'1,000' has digit separators \(','\)"),
     ('"12,5"', r"'12,5' has a decimal comma"),
-    ("<0.5", r"'<0.5' is a censored value"),
+    ("<", r"'<' is a censored value \(a non-detect\); non-detects are accepted in the value column only"),
+    (">100", r"'>100' is a censored value \(above a limit\), which bayesgeo does not model"),
     ("١٢", r"'١٢' is not a plain decimal number \(it has non-ASCII characters\)"),
     ("0x1p3", r"'0x1p3' is not a number"),
 ])

@@ -180,9 +180,12 @@ def number_problem(cell: str) -> str:
         return f"{s!r} has digit separators (','); write the number without them, or it is a decimal comma"
     if re.fullmatch(r"[+-]?[0-9]*,[0-9]+", s):
         return f"{s!r} has a decimal comma; write a decimal point"
-    if s[:1] in ("<", ">"):
-        return (f"{s!r} is a censored value (below or above a limit), not a number; decide how to treat such values "
-                "and enter numbers or remove the rows")
+    if s[:1] == "<":
+        return (f"{s!r} is a censored value (a non-detect); non-detects are accepted in the value column only, "
+                "written <X with the reporting limit X (e.g. <0.5)")
+    if s[:1] == ">":
+        return (f"{s!r} is a censored value (above a limit), which bayesgeo does not model; enter the measured "
+                "number or remove the row")
     if not s.isascii():
         return f"{s!r} is not a plain decimal number (it has non-ASCII characters)"
     return f"{s!r} is not a number"

@@ -20,6 +20,7 @@ from bayesgeo.common.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, n
 from bayesgeo.common.geometry import continuous_longitudes, cross_distance
 from bayesgeo.common.outputs import sha256_file
 from bayesgeo.common.validate import InputError, check_choice, format_rows
+from bayesgeo.data.nondetects import censored_column, check_share
 
 __all__ = ["MIN_POINTS", "TRANSFORMS", "read_points", "points_dataset", "sites_of", "apply_transform"]
 
@@ -70,6 +71,8 @@ def read_points(
     crs: str | None = None,
     only_site: str | None = None,
     small_sites: str = "error",
+    limit: str | None = None,
+    detected: str | None = None,
 ) -> xr.Dataset:
     """Read point measurements into a ``Dataset`` along ``obs``.
 
@@ -80,7 +83,9 @@ def read_points(
     x, y : str, optional
         Location columns. Detected when omitted (x/easting/lon, y/northing/lat).
     value : str, optional
-        Measured value column; detected when exactly one numeric column is left over.
+        Measured value column; detected when exactly one numeric column is left over. A cell ``<X``
+        is a non-detect with reporting limit X (:mod:`bayesgeo.data.nondetects`): the Dataset then
+        holds a boolean ``censored`` variable and the limit in ``value``.
     site : str, optional
         Column labelling the site of each point (for several-site analyses).
     covariates : sequence of str
@@ -107,6 +112,9 @@ def read_points(
         A site with fewer than :data:`MIN_POINTS` points is an error (default), or is kept
         (``"keep"``, for a hierarchical model that lets it borrow strength from the others; it
         still needs 3 points, and at least one site must have :data:`MIN_POINTS`).
+    limit, detected : str, optional
+        Columns with the reporting limits and the detected / not-detected flags of non-detects
+        (given together; :func:`bayesgeo.data.nondetects.censored_column`).
 
     Returns
     -------
@@ -143,7 +151,10 @@ def read_points(
     covs = [_require(header, c, "--covariate", src) for c in covariates]
     vcol = _require(header, value, "--value", src) if value else guess_value(table, {xcol, ycol, sitecol, *covs})
 
-    numeric = {c: numeric_column(table, c) for c in dict.fromkeys((xcol, ycol, vcol, *covs))}
+    limit = _require(header, limit, "--limit", src) if limit else None
+    detected = _require(header, detected, "--detected", src) if detected else None
+    numeric = {c: numeric_column(table, c) for c in dict.fromkeys((xcol, ycol, *covs)) if c != vcol}
+    numeric[vcol], censored = censored_column(table, vcol, limit=limit, detected=detected)
     _check_spread(numeric, [r for r, _ in body], src)
     file_rows = np.array([r for r, _ in body])
     lonlat = coords == "lonlat"
@@ -169,7 +180,7 @@ def read_points(
             if not keep.any():
                 labels = ", ".join(dict.fromkeys(sites.tolist()))
                 raise InputError(f"{src}: --only-site: no site {only_site!r} in column {sitecol!r} (sites: {labels})")
-            sites, file_rows = sites[keep], file_rows[keep]
+            sites, file_rows, censored = sites[keep], file_rows[keep], censored[keep]
             numeric = {c: v[keep] for c, v in numeric.items()}
     elif only_site is not None:
         raise InputError(f"{src}: --only-site needs --site COL naming the site column")
@@ -190,15 +201,21 @@ def read_points(
     }
     if lonlat:
         attrs["longitude_convention"] = frame
+    if censored.any():
+        check_share(censored, sites, file_rows, src)
+        attrs["non_detects"] = int(censored.sum())
+        attrs["limit_column"], attrs["detected_column"] = limit or "", detected or ""
     ds = points_dataset(
         numeric[xcol], numeric[ycol], numeric[vcol],
         site=sites, covariates={c: numeric[c] for c in covs}, rows=file_rows, attrs=attrs,
+        censored=censored if censored.any() else None,
     )
     return _finish(ds, src, duplicates, small_sites)
 
 
-def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None) -> xr.Dataset:
-    """Assemble the intake ``Dataset`` from arrays (no checks; see :func:`read_points`)."""
+def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None, censored=None) -> xr.Dataset:
+    """Assemble the intake ``Dataset`` from arrays (no checks; see :func:`read_points`); ``censored`` marks
+    non-detects, whose ``value`` is their reporting limit."""
     n = len(value)
     coords = {
         "x": ("obs", np.asarray(x, dtype=float)),
@@ -210,6 +227,9 @@ def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=
     data = {"value": ("obs", np.asarray(value, dtype=float))}
     for name, col in (covariates or {}).items():
         data[name] = ("obs", np.asarray(col, dtype=float))
+    if censored is not None:
+        data["censored"] = ("obs", np.asarray(censored, dtype=bool),
+                            {"long_name": "non-detect: the value is the reporting limit; the true value lies below it"})
     ds = xr.Dataset(data, coords=coords, attrs=dict(attrs or {}))
     ds["value"].attrs["units"] = ds.attrs.get("value_units", "")
     ds["row"].attrs["long_name"] = "row in the input file (header = row 1)"
@@ -248,9 +268,10 @@ def apply_transform(ds: xr.Dataset, transform: str | None) -> xr.Dataset:
     bad = z <= 0
     if np.any(bad):
         col = ds.attrs.get("value_column", "value")
+        limits = " (reporting limits of non-detects included)" if "censored" in ds and ds["censored"].values[bad].any() else ""
         raise InputError(
             f"{ds.attrs.get('source') or 'data'}: --transform log needs positive values; column {col!r} has "
-            f"zero or negative values at rows {format_rows(ds['row'].values[bad])}"
+            f"zero or negative values{limits} at rows {format_rows(ds['row'].values[bad])}"
         )
     units = ds.attrs.get("value_units", "") or "value units"
     out["value"] = ("obs", np.log(z), {**ds["value"].attrs, "units": f"log({units})"})
@@ -377,6 +398,11 @@ def _handle_duplicates(ds: xr.Dataset, src: str, duplicates: str) -> xr.Dataset:
     if not dup:
         return ds
     rows = ds["row"].values
+    if "censored" in ds and duplicates == "mean":
+        mixed = [g for g in dup if ds["censored"].values[g].any()]
+        if mixed:
+            raise InputError(f"{src}: duplicate locations with non-detects at rows {format_rows(rows[mixed[0]], limit=4)}"
+                             "; a non-detect cannot be averaged with other values: keep one result per location")
     if duplicates == "error":
         listed = "; ".join(format_rows(rows[g], limit=4) for g in dup[:5])
         more = f"; ... ({len(dup)} locations)" if len(dup) > 5 else ""

@@ -45,7 +45,8 @@ from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.gp.engines import choose, engine
 
-__all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "check_model_inputs", "model_inputs",
+__all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "censored_index", "check_model_inputs",
+           "model_inputs",
            "build_model_and_inputs", "transform_values", "variance_split_logp"]
 
 #: Labels of the two sampled coordinates of the variances in a model with a nugget:
@@ -66,10 +67,13 @@ class FitSpec(SpecBase):
         Number of observations.
     neighbours : int
         m of the nearest-neighbour likelihood (0 for dense).
+    censored : int
+        Number of non-detects, modelled as left-censored at their reporting limits (:func:`censored_index`).
     """
 
     n: int
     neighbours: int = 0
+    censored: int = 0
 
     @property
     def rates(self) -> dict[str, float]:
@@ -166,7 +170,7 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
         metric=metric, distance_units=str(ds.attrs.get("distance_units", "")),
         value_units=str(ds.attrs.get("value_units", "") or ds["value"].attrs.get("units", "")),
         value_column=str(ds.attrs.get("value_column", "value")), n=int(n), priors=resolved,
-        approx=approx, neighbours=int(neighbours),
+        approx=approx, neighbours=int(neighbours), censored=int(censored_index(ds).size),
     )
     return spec, (z - vmean) / vsd, design, None if d is None else d / extent
 
@@ -250,6 +254,9 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
     coords = {"term": list(spec.terms)}
     if spec.nugget and _coordinates == "share":
         coords["variance_coord"] = list(VARIANCE_COORDS)
+    cens = censored_index(ds)
+    if cens.size:
+        coords["censored"] = ds["row"].values[cens].tolist() if "row" in ds.coords else cens.tolist()
     with pm.Model(coords=coords) as model:
         prange = pm.InverseGamma("practical_range_z", alpha=1.0, beta=rates["range"])
         if not spec.nugget:
@@ -260,19 +267,45 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
             sd2, tau2 = sd**2, pm.Exponential("nugget_sd_z", lam=rates["nugget"]) ** 2
         else:
             sd2, tau2 = _variance_split(rates["sd"], rates["nugget"])
+        y_model = _censored_values(y, cens) if cens.size else y
         if integrated:
             from bayesgeo.gp.trend_posterior import trend_prior_covariance
 
-            resid, extra = y, trend_prior_covariance(design.values, spec.priors.beta_sd)
+            resid, extra = y_model, trend_prior_covariance(design.values, spec.priors.beta_sd)
         else:
             beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
-            resid, extra = y - pm.math.dot(design.values, beta), None
+            resid, extra = y_model - pm.math.dot(design.values, beta), None
         xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
         loglik = engine(spec.approx).loglik(
             resid, xy=xy, dist=dist, covariance=cov, scale=prange / spec.range_factor, partial_sill=sd2, nugget=tau2,
             neighbours=spec.neighbours, metric=spec.metric, distance_scale=spec.distance_scale, extra=extra)
         pm.Potential("loglik", loglik)
     return model, spec, y, design, dist
+
+
+def censored_index(ds: xr.Dataset) -> np.ndarray:
+    """Positions (along ``obs``) of the non-detects of ``ds`` (:mod:`bayesgeo.data.nondetects`); empty without."""
+    if "censored" not in ds:
+        return np.zeros(0, dtype=np.int64)
+    return np.flatnonzero(np.asarray(ds["censored"].values, dtype=bool))
+
+
+def _censored_values(y: np.ndarray, cens: np.ndarray):
+    """The standardised values with each non-detect a latent variable below its limit (data augmentation).
+
+    A non-detect's value is ``y_c = L_c - g_c`` with ``L_c`` its (standardised, transformed) reporting
+    limit and ``g_c > 0`` sampled under a flat density (PyMC's log transform adds the Jacobian), so the
+    joint posterior is p(theta) N(y | mu, K) 1{y_c < L_c}; integrating the ``y_c`` out leaves the
+    left-censored likelihood exactly (Tanner and Wong 1987, JASA 82, data augmentation; the censored
+    Gaussian-process likelihood as in De Oliveira 2005, J. Computational and Graphical Statistics 14,
+    95-115, reference from memory). The values are recorded as the Deterministic ``censored_z``.
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    gap = pm.HalfFlat("censored_gap_z", dims="censored")
+    latent = pm.Deterministic("censored_z", y[cens] - gap, dims="censored")
+    return pt.set_subtensor(pt.as_tensor_variable(np.asarray(y, dtype=float))[cens], latent)
 
 
 def _trend_integrated(spec: FitSpec, trend: str = "auto") -> bool:

@@ -29,7 +29,7 @@ import xarray as xr
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import sites_of
 from bayesgeo.common.io import plain_attr, to_jsonable
-from bayesgeo.fitting.model import FitSpec, build_model_and_inputs
+from bayesgeo.fitting.model import FitSpec, build_model_and_inputs, censored_index
 from bayesgeo.fitting.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks_line, report_fields, sample_fit
 from bayesgeo.fitting.sampling import new_seed
 from bayesgeo.gp.trend_posterior import draw_trend
@@ -171,6 +171,9 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
         p = cov.microergodic_power
         out["microergodic"] = (psill / scale**p).assign_attrs(
             units=f"({vu})^2 / ({du})^{p:g}", long_name=f"microergodic parameter sigma^2 / phi^{p:g} (Zhang 2004)")
+    if "censored_z" in out:
+        out["censored_value"] = spec.values_of(out["censored_z"]).assign_attrs(
+            units=vu, long_name="non-detect imputed below its reporting limit (modelled units), per draw")
     if "beta_z" in out:  # absent while the chains run when the trend is integrated out (bayesgeo.gp.trend_posterior)
         beta = out["beta_z"] * s
         intercept = xr.where(beta["term"] == "1", spec.value_mean, 0.0)
@@ -203,6 +206,14 @@ def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Ma
             out.append(f"The posterior median practical range ({med:.4g} {spec.distance_units}) exceeds half the "
                        f"largest distance between samples ({spec.distance_scale:.4g}); the data say little about "
                        "the range beyond that, so its upper interval reflects the prior (common practice).")
+    if spec.censored:
+        share = spec.censored / spec.n
+        out.append(f"{spec.censored} of {spec.n} values are non-detects, modelled as left-censored at their reporting "
+                   "limits (each one a latent value below its limit, sampled with the parameters), not replaced by a "
+                   "number.")
+        if share > 0.5:
+            out.append(f"{100 * share:.0f}% of the values are non-detects: the range, sills and trend rest on few "
+                       "detected values and on the model's assumptions below the limits; read them with extra care.")
     if approximation is not None:
         out.append(approximation["message"])
     if diagnostics is not None and diagnostics.get("verdict") == "fail":
@@ -251,7 +262,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
                      tune=tune, progressbar=progressbar, adaptation=adaptation)
     post = raw["posterior"].to_dataset()
     if "beta_z" not in post:  # integrated out of the dense likelihood: exact conditional draws
-        beta = draw_trend(post, spec, y_z, design.values, dist, seed=seed)
+        beta = draw_trend(post, spec, values_per_draw(y_z, censored_index(ds), post), design.values, dist, seed=seed)
         post["beta_z"] = beta.assign_attrs(drawn="after sampling, one draw per posterior draw from the exact "
                                                  "conditional N(m, V) given the covariance parameters")
     post = derive(post, spec)
@@ -262,6 +273,8 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     if transform == "log":
         observed["model_value"] = ("obs", np.log(ds["value"].values), {"units": spec.model_units,
                                                                           "long_name": "log of the measured value"})
+    if "censored" in ds:
+        observed["censored"] = ds["censored"].copy()
     constant = xr.Dataset(
         {"x": ("obs", ds["x"].values, {"units": spec.distance_units}),
          "y": ("obs", ds["y"].values, {"units": spec.distance_units}),
@@ -291,6 +304,17 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     if approximation is not None:
         tree.attrs["approximation"] = json.dumps(to_jsonable(approximation))
     return tree
+
+
+def values_per_draw(y: np.ndarray, cens: np.ndarray, post: xr.Dataset) -> np.ndarray:
+    """The standardised values of every posterior draw, (chain * draw, n) chain-major, the non-detects at
+    their imputed ``censored_z``; ``y`` itself when there are none."""
+    if not cens.size:
+        return y
+    latent = np.asarray(post["censored_z"].transpose("chain", "draw", "censored").values, dtype=float)
+    out = np.repeat(np.asarray(y, dtype=float)[None, :], latent.shape[0] * latent.shape[1], axis=0)
+    out[:, cens] = latent.reshape(-1, cens.size)
+    return out
 
 
 def stored(tree: xr.DataTree, name: str, default=None):

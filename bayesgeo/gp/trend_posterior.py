@@ -65,8 +65,9 @@ def draw_trend(posterior: xr.Dataset, spec, y: np.ndarray, design: np.ndarray, d
         Draws (chain, draw) of ``practical_range_z``, ``sd_z`` and, with a nugget, ``nugget_sd_z``.
     spec : FitSpec
         The fit's settings (covariance family, range factor, prior sd of the coefficients).
-    y : ndarray, shape (n,)
-        Standardised values the model was fitted to.
+    y : ndarray, shape (n,) or (chain * draw, n)
+        Standardised values the model was fitted to; one row per posterior draw (chain-major) when they
+        differ between draws (non-detects imputed draw by draw).
     design : ndarray, shape (n, p)
         Trend design matrix.
     dist : ndarray, shape (n, n)
@@ -95,7 +96,7 @@ def draw_trend(posterior: xr.Dataset, spec, y: np.ndarray, design: np.ndarray, d
     inv_b2 = 1.0 / spec.priors.beta_sd**2
 
     def run(i):
-        return _one(y, f, dist, cov, *flat[i], inv_b2, normals[i])
+        return _one(y if y.ndim == 1 else y[i], f, dist, cov, *flat[i], inv_b2, normals[i])
 
     if workers > 1 and pr.size > 1:
         with ThreadPoolExecutor(max_workers=workers) as pool:
