@@ -148,23 +148,148 @@ def test_two_non_detects_integrate_to_the_bivariate_normal_cdf():
     assert np.log(value) == pytest.approx(ref, abs=1e-5)
 
 
-def test_censored_fit_keeps_every_latent_value_below_its_limit():
-    """A small fit with a third of the values censored converges with the defaults' kind of settings, and
-    every imputed value of every draw lies below its own reporting limit (the support of the left-censored
-    model, exact); the spec counts the non-detects and the cautions say how they were treated."""
-    from bayesgeo import Fit
+def _simulated(n=40, seed=4):
+    """Points of an exponential field (practical range 40 in a 100 x 100 square, nugget 0.2 of a unit sill,
+    mean 5) with two reporting limits, the 30% and 20% quantiles, alternating between samples."""
     from bayesgeo.data.demo import simulate_field
 
-    rng = np.random.default_rng(3)
-    xy = rng.uniform(0, 100, (40, 2))
+    xy = np.random.default_rng(3).uniform(0, 100, (n, 2))
     z = simulate_field(xy, covariance="exponential", practical_range=40.0, partial_sill=1.0, nugget=0.2, mean=5.0,
-                       rng=np.random.default_rng(4))
-    limit = np.where(np.arange(40) % 2 == 0, np.quantile(z, 0.3), np.quantile(z, 0.2))  # two reporting limits
+                       rng=np.random.default_rng(seed))
+    limit = np.where(np.arange(n) % 2 == 0, np.quantile(z, 0.3), np.quantile(z, 0.2))
     cens = z < limit
+    return xy, z, limit, cens
+
+
+@pytest.fixture(scope="module")
+def censored_fit():
+    from bayesgeo import Fit
+
+    xy, z, limit, cens = _simulated()
     ds = points_dataset(xy[:, 0], xy[:, 1], np.where(cens, limit, z), censored=cens, attrs={"coords": "xy"})
-    fit = Fit.sample(ds, covariance="exponential", chains=2, draws=200, tune=300, seed=2)
+    return Fit.sample(ds, covariance="exponential", chains=2, draws=200, tune=300, seed=2), ds, limit, cens
+
+
+def test_censored_fit_keeps_every_latent_value_below_its_limit(censored_fit):
+    """A small fit with a quarter of the values censored at two limits converges, and every imputed value of
+    every draw lies below its own reporting limit (the support of the left-censored model, exact); the spec
+    counts the non-detects and the cautions say how they were treated."""
+    fit, ds, limit, cens = censored_fit
     assert fit.spec.censored == int(cens.sum()) == censored_index(ds).size
     imputed = fit.posterior["censored_value"].values  # (chain, draw, censored)
     assert np.all(imputed < limit[cens][None, None, :])
     assert any("non-detects, modelled as left-censored" in c for c in fit.cautions)
     assert fit.convergence.verdict in ("pass", "warn")
+
+
+def test_prediction_conditions_on_each_draws_imputed_values(censored_fit):
+    """With one posterior draw, the kriging mean at new points is simple kriging (Cressie 1993, sec. 3.4.5)
+    from the data with the non-detects at that draw's imputed values: m + k_*^T K^-1 (z - m), computed with
+    numpy.linalg.solve on an exponential covariance built with scipy's cdist."""
+    from bayesgeo.predict.prediction import basis_from_fit, predict_targets
+    from bayesgeo.data.targets import grid_targets
+
+    fit, ds, limit, cens = censored_fit
+    basis, spec, params = basis_from_fit(fit, draws=1)
+    z = ds["value"].values.copy()
+    z[cens] = params["censored_value"].values[0]
+    np.testing.assert_allclose(basis.values[0], z)
+    targets = grid_targets(basis.xy, cell=25.0)
+    pred = predict_targets(basis, targets, design_attrs=spec.design_attrs, scheduler="synchronous")
+    xx, yy = np.meshgrid(targets["x"].values, targets["y"].values)  # the grid's (y, x) layout
+    flat = np.column_stack([xx.ravel(), yy.ravel()])
+    keep = np.asarray(targets["inside"].values, bool).ravel()
+    phi, s2, t2 = (float(params[k].values[0]) for k in ("scale", "partial_sill", "nugget"))
+    xy = basis.xy
+    k = s2 * np.exp(-cdist(xy, xy) / phi) + (t2 + JITTER * s2) * np.eye(len(xy))
+    mu = float(params["beta"].values[0][0])  # intercept only
+    ref = mu + (s2 * np.exp(-cdist(flat[keep], xy) / phi)) @ np.linalg.solve(k, z - mu)
+    np.testing.assert_allclose(pred["mean"].values.ravel()[keep], ref, rtol=1e-8)
+
+
+def test_leave_one_out_of_a_non_detect_is_the_probability_below_its_limit(censored_fit):
+    """For a non-detect the leave-one-out term is log P(y_i < L_i | rest) = log Phi((L_i - m_-i) / s_-i), the
+    rest at the draw's imputed values (Gaussian conditioning: scipy.stats.norm.logcdf, conditional moments by
+    numpy.linalg.solve); a detected point keeps its density, in data units (change of variables)."""
+    from bayesgeo.checks.loo import loo_predictive
+    from bayesgeo.fitting.arrays import fit_arrays
+
+    fit, ds, limit, cens = censored_fit
+    pred = loo_predictive(fit.tree)
+    fa = fit_arrays(fit.tree)
+    spec = fit.spec
+    post = fit.posterior.isel(chain=0, draw=0)
+    y = fa.y.copy()
+    y[cens] = post["censored_z"].values
+    phi = float(post["practical_range_z"]) * spec.distance_scale / spec.range_factor
+    s2, t2 = float(post["sd_z"]) ** 2, float(post["nugget_sd_z"]) ** 2
+    k = s2 * np.exp(-cdist(fa.xy, fa.xy) / phi) + (t2 + JITTER * s2) * np.eye(fa.n)
+    mu = fa.design @ post["beta_z"].values
+    for i in (int(np.flatnonzero(cens)[0]), int(np.flatnonzero(~cens)[0])):
+        o = np.arange(fa.n) != i
+        w = np.linalg.solve(k[np.ix_(o, o)], k[o, i])
+        m = mu[i] + w @ (y[o] - mu[o])
+        s = np.sqrt(k[i, i] - k[i, o] @ w)
+        got = float(pred["log_lik"].isel(chain=0, draw=0, obs=i))
+        if cens[i]:
+            assert got == pytest.approx(stats.norm.logcdf(fa.y[i], m, s), abs=1e-8)
+        else:
+            assert got == pytest.approx(stats.norm.logpdf(fa.y[i], m, s) - np.log(spec.value_sd), abs=1e-8)
+
+
+def test_variogram_check_records_replicates_as_the_data_were(censored_fit):
+    """The posterior predictive check compares like with like (Gelman, Meng and Stern 1996): replicate values
+    below a point's reporting limit are recorded at the limit, as the data's non-detects are, so no
+    replicate lies below the floor; the check says so."""
+    from bayesgeo.checks.ppcheck import _censor_like_data, variogram_check
+    from bayesgeo.fitting.arrays import fit_arrays
+
+    fit, ds, limit, cens = censored_fit
+    fa = fit_arrays(fit.tree)
+    reps = np.random.default_rng(0).normal(5.0, 2.0, (fa.n, 30))
+    out = _censor_like_data(fa, reps)
+    floor = np.where(cens, limit, np.minimum(ds["value"].values, limit[cens].min()))
+    np.testing.assert_array_equal(out, np.maximum(reps, floor[:, None]))
+    vc = variogram_check(fit.tree, replicates=20, bins=6, seed=1)
+    assert vc.attrs["non_detects"] == int(cens.sum())
+    assert any("non-detects" in c for c in vc.attrs["cautions"])
+
+
+def test_command_line_end_to_end_with_less_than_values(tmp_path):
+    """``<X`` values go through explore, fit, check, map, variogram-check and compare on the command line
+    (exit 0, one JSON object each; our documented CLI contract, docs/cli.md); explore leaves the non-detects
+    out of the empirical statistics and says so, and draws them apart in non_detects.png."""
+    import json
+
+    from bayesgeo.cli import main
+
+    xy, z, limit, cens = _simulated(n=36, seed=9)
+    value = np.exp(z - 4.0)
+    cells = [f"<{np.exp(lim - 4.0):.4f}" if c else f"{v:.5f}" for v, lim, c in zip(value, limit, cens)]
+    data = tmp_path / "nd.csv"
+    data.write_text("easting,northing,arsenic\n" + "".join(f"{a:.3f},{b:.3f},{c}\n" for (a, b), c in zip(xy, cells)))
+    common = ["--value", "arsenic", "--transform", "log", "--coords", "xy"]
+
+    def run(*argv):
+        import contextlib
+        import io
+
+        buf = io.StringIO()
+        with contextlib.redirect_stdout(buf):
+            code = main(list(argv))
+        assert code == 0, argv
+        return json.loads(buf.getvalue())
+
+    ex = run("explore", str(data), *common[:2], "--coords", "xy", "--permutations", "0", "--out", str(tmp_path / "ex"),
+             "--json")
+    assert ex["non_detects"] == int(cens.sum()) and any("left out of the semivariograms" in n for n in ex["notes"])
+    assert (tmp_path / "ex" / "non_detects.png").is_file()
+    for fam in ("exponential", "matern32"):
+        run("fit", str(data), *common, "--covariance", fam, "--chains", "2", "--draws", "150", "--tune", "250",
+            "--seed", "3", "--out", str(tmp_path / fam), "--json")
+    run("check", str(tmp_path / "exponential"), "--json")
+    mp = run("map", str(tmp_path / "exponential"), "--cell", "20", "--draws", "20", "--allow-unconverged", "--json")
+    assert mp["cells"] > 0
+    run("variogram-check", str(tmp_path / "exponential"), "--replicates", "20", "--json")
+    cmp = run("compare", str(tmp_path / "exponential"), str(tmp_path / "matern32"), "--json")
+    assert {r["fit"] for r in cmp["ranking"]} == {"exponential", "matern32"}

@@ -353,9 +353,15 @@ def loo_pit(tree: xr.DataTree, *, elpd=None) -> xr.DataArray:
 
 
 def _pit(fa: FitArrays, pred: xr.Dataset, elpd) -> np.ndarray:
-    """sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s) with normalised PSIS weights w_is."""
+    """sum_s w_is Phi((z_i - mu_-i,s) / sd_-i,s) with normalised PSIS weights w_is.
+
+    A non-detect's PIT is only known to lie between 0 and P(z_i < limit_i): it gets the middle of that
+    interval, half the probability (the mid-PIT of a censored value, the mean of its randomised PIT).
+    """
     u = (fa.z[None, None, :] - pred["loo_mean"].values) / pred["loo_sd"].values
     cdf = special.ndtr(u)  # (chain, draw, obs)
+    if fa.censored.any():
+        cdf[..., fa.censored] *= 0.5
     lw = elpd.log_weights.transpose("chain", "draw", ...).values
     w = np.exp(lw - special.logsumexp(lw, axis=(0, 1), keepdims=True))
     return np.clip(np.sum(w * cdf, axis=(0, 1)), 0.0, 1.0)

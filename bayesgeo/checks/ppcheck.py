@@ -60,6 +60,17 @@ class _NoBar:
 # --- the posterior predictive semivariogram -----------------------------------------------------
 
 
+def _censor_like_data(fa: FitArrays, reps: np.ndarray) -> np.ndarray:
+    """Replicates (n, R, model units) recorded as the data were: below a point's reporting limit a value is
+    reported at the limit (a non-detect, stored at its limit like those of the data). A non-detect's limit is
+    its own; a detected point's is the lowest limit of the data, or its value if lower (it was detected)."""
+    if not fa.censored.any():
+        return reps
+    lowest = float(np.min(fa.z[fa.censored]))
+    floor = np.where(fa.censored, fa.z, np.minimum(fa.z, lowest))
+    return np.maximum(reps, floor[:, None])
+
+
 def _ols_residuals(design: np.ndarray, values: np.ndarray) -> np.ndarray:
     """Residuals of ``values`` (n, m) after least squares on the columns of ``design``."""
     q, _ = np.linalg.qr(design)
@@ -144,8 +155,9 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         for c0 in range(0, picks.size, REPLICATE_CHUNK):
             parts.append(eng.replicates(fa, picks[c0:c0 + REPLICATE_CHUNK], rng))
             bar.update(parts[-1].shape[1])
-        # observed and replicated values alike: trend removed by OLS, every pair within the largest lag
-        values = _ols_residuals(fa.design, np.column_stack([fa.z, *parts]))
+        # observed and replicated values alike: recorded as the data were (non-detects at their limits), trend
+        # removed by OLS, every pair within the largest lag
+        values = _ols_residuals(fa.design, np.column_stack([fa.z, _censor_like_data(fa, np.column_stack(parts))]))
         count, dsum, semi = column_semivariances(fa.xy, spec.metric, edges, values)
         observed, rep = semi[0], semi[1:]
         bar.update(1)
@@ -202,12 +214,17 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
         cautions.append(f"lag bins {', '.join(map(str, few))} hold fewer than {MIN_PAIRS} pairs; their semivariances "
                         "scatter widely")
     cautions.append("the band is pointwise: with many bins, one or two bins outside it are expected by chance")
+    if fa.censored.any():
+        cautions.append(f"{int(fa.censored.sum())} non-detects: observed and replicated values are both recorded with "
+                        "values below a reporting limit at that limit, so compare the observed curve with the replicate "
+                        "band; the model band is of the uncensored field and lies below them at short lags")
     cautions.append(CAUTION)
     attrs = {
         "method": "posterior predictive replicates at the data locations; trend removed by OLS from observed and "
                   "replicated values alike; classical (Matheron) estimator on shared lag bins",
         "model_band": "sigma^2 (1 - rho(h)) + tau^2 per posterior draw (all draws)",
         "simulation": eng.simulation(spec.neighbours),
+        "non_detects": int(fa.censored.sum()),
         "replicates": int(picks.size),
         "draws_total": int(total),
         "seed": int(seed),

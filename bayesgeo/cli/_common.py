@@ -40,7 +40,10 @@ def add_data_options(p) -> None:
     p.add_argument("data", metavar="DATA", help="CSV of point measurements (or a bayesgeo .nc point file)")
     p.add_argument("--x", metavar="COL", help="x / easting / longitude column (detected if omitted)")
     p.add_argument("--y", metavar="COL", help="y / northing / latitude column (detected if omitted)")
-    p.add_argument("--value", metavar="COL", help="measured value column")
+    p.add_argument("--value", metavar="COL", help="measured value column; <X is a non-detect below reporting limit X")
+    p.add_argument("--limit", metavar="COL", help="reporting-limit column of non-detects (with --detected)")
+    p.add_argument("--detected", metavar="COL",
+                   help="detected / not-detected flag column (not detected: <, ND, U, yes, 1, ...; with --limit)")
     p.add_argument("--site", metavar="COL", help="site label column (several-site data)")
     p.add_argument("--only-site", metavar="NAME", help="analyse only this site's rows (with --site)")
     p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
@@ -56,7 +59,8 @@ def add_data_options(p) -> None:
 def data_kwargs(args) -> dict:
     """The data settings named by :func:`add_data_options` arguments, as keyword arguments of the stages
     (keyword arguments of :func:`bayesgeo.data.points.read_points`)."""
-    return dict(x=args.x, y=args.y, value=args.value, site=args.site, only_site=args.only_site,
+    return dict(x=args.x, y=args.y, value=args.value, limit=args.limit, detected=args.detected, site=args.site,
+                only_site=args.only_site,
                 covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
                 distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"))
 

@@ -14,7 +14,7 @@ import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
 
-__all__ = ["semivariogram_figure", "correlogram_figure", "directional_figure", "save_figure"]
+__all__ = ["semivariogram_figure", "correlogram_figure", "directional_figure", "non_detect_map", "save_figure"]
 
 #: Line colours of fitted families and directions (muted, readable in grey-scale print too).
 PALETTE = ("#1b3a5c", "#8c3b2e", "#3d6b35", "#6a4c7d", "#a07a1f", "#2f6f73", "#555555")
@@ -179,6 +179,26 @@ def directional_figure(dvg: xr.Dataset, *, title: str | None = None):
     ax.set_title(title or "Directional semivariograms (azimuth clockwise from north)", fontsize=11)
     ax.grid(True, color="#eeeeee", linewidth=0.6)
     ax.legend(fontsize=8, frameon=False, title="azimuth", title_fontsize=8)
+    return fig
+
+
+def non_detect_map(ds: xr.Dataset, *, title: str | None = None):
+    """Map of the sampled points: detected values as filled circles coloured by value, non-detects as open
+    triangles (their value is only known to lie below the reporting limit, so no colour is given to it)."""
+    fig, ax = _figure((6.0, 5.0))
+    cens = np.asarray(ds["censored"].values, bool) if "censored" in ds else np.zeros(ds.sizes["obs"], bool)
+    x, y, v = ds["x"].values, ds["y"].values, ds["value"].values
+    sc = ax.scatter(x[~cens], y[~cens], c=v[~cens], cmap="viridis", s=28, edgecolors="k", linewidths=0.3,
+                    label=f"detected ({int((~cens).sum())})")
+    units = ds["value"].attrs.get("units") or ds.attrs.get("value_units", "")
+    fig.colorbar(sc, ax=ax, label="detected value" + _units(units, "value units"))
+    ax.scatter(x[cens], y[cens], marker="^", s=36, facecolors="none", edgecolors=PALETTE[1],
+               label=f"non-detect ({int(cens.sum())}): below its reporting limit")
+    ax.set_xlabel(ds.attrs.get("x_column", "x"))
+    ax.set_ylabel(ds.attrs.get("y_column", "y"))
+    ax.set_aspect("equal", adjustable="datalim")
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.12), ncols=2, fontsize="small", frameon=False)
+    ax.set_title(title or "Sampled points and non-detects")
     return fig
 
 

@@ -1,12 +1,12 @@
 """What the leave-one-out stage reads from a fit: its data, design and draws as arrays
 (:class:`FitArrays`, one block per site for a several-site fit), and the xarray layout of a
 leave-one-out predictive. Shared by the exact (:mod:`bayesgeo.checks.loo`) and the nearest-neighbour
-(:mod:`bayesgeo.checks.loo_nn`) leave-one-out, so that neither imports the other's module."""
+(:mod:`bayesgeo.gp.nn_loo`) leave-one-out, so that neither imports the other's module."""
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
@@ -58,6 +58,9 @@ class FitArrays:
         Row of each point in the input file (header = row 1), as recorded by the fit.
     source_sha256 : str
         Checksum of the data file the fit was made from ("" when unknown).
+    censored : ndarray of bool (n,)
+        Non-detects (their ``value`` is the reporting limit); their imputed values are
+        ``draws["censored_z"]`` (chain, draw, k) on the standardised scale.
     """
 
     spec: FitSpec
@@ -73,6 +76,7 @@ class FitArrays:
     obs_index: np.ndarray
     rows: np.ndarray
     source_sha256: str
+    censored: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
 
     @property
     def n(self) -> int:
@@ -265,6 +269,9 @@ def fit_arrays(tree: xr.DataTree) -> FitArrays:
                         if spec.nugget else np.zeros(pr.shape)),
         "beta_z": np.asarray(post["beta_z"].transpose("chain", "draw", ...).values, dtype=float),
     }
+    censored = np.asarray(obs["censored"].values, dtype=bool) if "censored" in obs else np.zeros(value.size, bool)
+    if censored.any():
+        draws["censored_z"] = np.asarray(post["censored_z"].transpose("chain", "draw", ...).values, dtype=float)
     sha = _source_sha256(tree)
     rows = obs["row"].values if "row" in obs.coords else _find(tree, "row")
     return FitArrays(
@@ -273,7 +280,7 @@ def fit_arrays(tree: xr.DataTree) -> FitArrays:
         chain=np.asarray(pr["chain"].values), draw=np.asarray(pr["draw"].values), obs_name=name,
         obs_index=np.asarray(obs["obs"].values) if "obs" in obs.coords else np.arange(value.size),
         rows=np.arange(2, value.size + 2) if rows is None else np.asarray(rows, dtype=np.int64),
-        source_sha256=sha,
+        source_sha256=sha, censored=censored,
     )
 
 
@@ -291,6 +298,8 @@ def predictive_dataset(fa: FitArrays, mean: np.ndarray, var: np.ndarray, logp: n
     np.sqrt(var, out=var)
     var *= s
     logp += jac
+    if fa.censored.any():  # a non-detect's term is a probability P(v_i < limit_i | rest): no Jacobian
+        logp[:, fa.censored] -= jac if np.ndim(jac) == 0 else jac[fa.censored]
     units = fa.spec.model_units
     dims = ("chain", "draw", "obs")
     shape = (nc, nd, fa.n)

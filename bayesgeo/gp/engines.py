@@ -138,8 +138,9 @@ class _Dense(Engine):
         nc, nd = fa.draws["sd_z"].shape
         mean, var, logp = (np.empty((nc * nd, fa.n)) for _ in range(3))
         for k, mu, c in draw_covariances(fa):
-            m, v, lp = _loo_one(fa.y - mu, c)
+            m, v, lp = _loo_one(_values(fa, k) - mu, c)
             mean[k], var[k], logp[k] = m + mu, v, lp
+        _censored_terms(fa, mean, var, logp)
         return LooResult(mean, var, logp, "exact Gaussian leave-one-out (Sundararajan and Keerthi 2001; Rasmussen "
                          "and Williams 2006, eq. 5.12)", {})
 
@@ -179,10 +180,16 @@ class _NearestNeighbour(Engine):
     def draw_moments(self, basis, xy_new, design_new, *, include_nugget=True):
         from bayesgeo.gp.nn_kriging import nn_kriging_moments
 
-        return nn_kriging_moments(basis.xy, basis.values, basis.design, xy_new, design_new,
-                                  covariance=basis.covariance, scale=basis.scale, partial_sill=basis.partial_sill,
-                                  nugget=basis.nugget, beta=basis.beta, metric=basis.metric,
-                                  neighbours=basis.neighbours, include_nugget=include_nugget)
+        def moments(values, k):  # draws k (a slice) with data values
+            return nn_kriging_moments(basis.xy, values, basis.design, xy_new, design_new, covariance=basis.covariance,
+                                      scale=basis.scale[k], partial_sill=basis.partial_sill[k], nugget=basis.nugget[k],
+                                      beta=basis.beta[k], metric=basis.metric, neighbours=basis.neighbours,
+                                      include_nugget=include_nugget)
+
+        if basis.values.ndim == 1:
+            return moments(basis.values, slice(None))
+        parts = [moments(basis.values[k], slice(k, k + 1)) for k in range(basis.n_draws)]  # imputed non-detects
+        return np.vstack([m for m, _ in parts]), np.vstack([v for _, v in parts])
 
     def loo(self, fa, *, neighbours=None, progress=None):
         from bayesgeo.gp.nn_loo import loo_neighbour_count, nn_loo
@@ -192,11 +199,24 @@ class _NearestNeighbour(Engine):
         nc, nd = fa.draws["sd_z"].shape
         # phi in the distance units of the coordinates (the kernel does not divide by the distance scale)
         scale = spec.scale_of(fa.draws["practical_range_z"].reshape(-1))
+        psill, tau2 = fa.draws["sd_z"].reshape(-1) ** 2, fa.draws["nugget_sd_z"].reshape(-1) ** 2
+        beta = fa.draws["beta_z"].reshape(nc * nd, -1)
         with (progress or _no_bar)(total=fa.n, desc="nearest-neighbour LOO") as bar:
-            mean, var, logp = nn_loo(
-                fa.y, fa.xy, fa.design, covariance=spec.covariance, scale=scale,
-                partial_sill=fa.draws["sd_z"].reshape(-1) ** 2, nugget=fa.draws["nugget_sd_z"].reshape(-1) ** 2,
-                beta=fa.draws["beta_z"].reshape(nc * nd, -1), neighbours=m, metric=spec.metric, progress=bar)
+            if "censored_z" not in fa.draws:
+                mean, var, logp = nn_loo(fa.y, fa.xy, fa.design, covariance=spec.covariance, scale=scale,
+                                         partial_sill=psill, nugget=tau2, beta=beta, neighbours=m, metric=spec.metric,
+                                         progress=bar)
+            else:  # each draw conditions on its own imputed non-detects
+                from bayesgeo.gp.nn_loo import loo_neighbours
+
+                nbr = loo_neighbours(fa.xy, neighbours=m, metric=spec.metric)
+                parts = [nn_loo(_values(fa, k), fa.xy, fa.design, covariance=spec.covariance, scale=scale[k],
+                                partial_sill=psill[k], nugget=tau2[k], beta=beta[k], neighbours=m, metric=spec.metric,
+                                nbr=nbr) for k in range(scale.size)]
+                mean, var, logp = (np.vstack([p[i] for p in parts]) for i in range(3))
+                if bar is not None:
+                    bar.update(fa.n)
+            _censored_terms(fa, mean, var, logp)
         attrs = {"loo_neighbours": int(m)}
         if m < fa.n - 1:
             attrs["caution"] = (
@@ -219,6 +239,27 @@ class _NearestNeighbour(Engine):
         from bayesgeo.gp.nn_accuracy import approximation_check
 
         return approximation_check(posterior, xy, covariance=covariance, neighbours=neighbours, metric=metric)
+
+
+def _values(fa, k: int) -> np.ndarray:
+    """The standardised values of flat draw ``k``: the data, the non-detects at that draw's imputed values."""
+    if "censored_z" not in fa.draws:
+        return fa.y
+    y = fa.y.copy()
+    y[fa.censored] = fa.draws["censored_z"].reshape(-1, int(fa.censored.sum()))[k]
+    return y
+
+
+def _censored_terms(fa, mean: np.ndarray, var: np.ndarray, logp: np.ndarray) -> None:
+    """For each non-detect i, its leave-one-out term becomes log P(y_i < L_i | rest) = log Phi((L_i - mean_i) /
+    sd_i), the probability of a result below its reporting limit L_i (``fa.y`` holds the limits), in place."""
+    if not fa.censored.any():
+        return
+    from scipy.special import log_ndtr
+
+    c = fa.censored
+    with np.errstate(divide="ignore", invalid="ignore"):
+        logp[:, c] = np.where(var[:, c] > 0, log_ndtr((fa.y[c] - mean[:, c]) / np.sqrt(var[:, c])), -np.inf)
 
 
 @contextlib.contextmanager

@@ -136,8 +136,9 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
     ----------
     xy : array (n, 2)
         Data locations (distance units; lon/lat degrees for ``greatcircle``, distances in km).
-    values : array (n,)
-        Modelled values (already log-transformed under ``transform="log"``).
+    values : array (n,) or (D, n)
+        Modelled values (already log-transformed under ``transform="log"``); one row per draw when they
+        differ between draws (non-detects imputed draw by draw).
     design : array (n, p)
         Trend design at the data locations (p may be 0 for a known zero mean).
     covariance : Covariance or str
@@ -163,7 +164,7 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
     cov = get_covariance(covariance) if isinstance(covariance, str) else covariance
     xy = np.asarray(xy, dtype=float)
     values = np.asarray(values, dtype=float)
-    n = values.shape[0]
+    n = values.shape[-1]
     design = np.asarray(design, dtype=float).reshape(n, -1)
     scale = np.atleast_1d(np.asarray(scale, dtype=float))
     d_count = scale.shape[0]
@@ -190,7 +191,8 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
         kmat[np.diag_indices_from(kmat)] += tau2[k] + jitter * psill[k]
         lower = linalg.cholesky(kmat, lower=True, check_finite=False)
         chol.append(np.asfortranarray(lower))
-        alpha[k] = linalg.cho_solve((lower, True), values - design @ beta[k], check_finite=False)
+        alpha[k] = linalg.cho_solve((lower, True), (values if values.ndim == 1 else values[k]) - design @ beta[k],
+                                    check_finite=False)
     return KrigingBasis(xy, values, design, cov, metric, scale, psill, tau2, beta, chol, alpha, transform)
 
 

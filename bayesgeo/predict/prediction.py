@@ -89,11 +89,10 @@ def posterior_parameters(posterior: xr.Dataset, spec, *, draws: int | None = Non
     st = posterior.stack(sample=("chain", "draw"))
     keep = _pick(st.sizes["sample"], draws)
     st = st.isel(sample=keep)
-    s = float(spec.value_sd)
-    prange = st["practical_range_z"].values * float(spec.distance_scale)
-    psill = (st["sd_z"].values * s) ** 2
-    nug = (st["nugget_sd_z"].values * s) ** 2 if "nugget_sd_z" in st else np.zeros_like(psill)
-    beta = st["beta_z"].transpose("sample", ...).values * s
+    prange = spec.practical_range_of(st["practical_range_z"].values)
+    psill = spec.variance_of(st["sd_z"].values)
+    nug = spec.variance_of(st["nugget_sd_z"].values) if "nugget_sd_z" in st else np.zeros_like(psill)
+    beta = st["beta_z"].transpose("sample", ...).values * float(spec.value_sd)
     terms = list(spec.terms)
     if "1" not in terms:
         raise InputError("posterior: the trend has no intercept term '1'")
@@ -101,12 +100,18 @@ def posterior_parameters(posterior: xr.Dataset, spec, *, draws: int | None = Non
     units = spec.model_units
     coords = {"chain": ("sample", st["chain"].values), "draw": ("sample", st["draw"].values), "term": terms}
     dims = ("sample",)
+    data = {
+        "practical_range": (dims, prange, {"units": spec.distance_units}),
+        "scale": (dims, prange / float(spec.range_factor), {"units": spec.distance_units}),
+        "partial_sill": (dims, psill, {"units": f"({units})^2"}),
+        "nugget": (dims, nug, {"units": f"({units})^2"}),
+        "beta": (("sample", "term"), beta, {"units": units}),
+    }
+    if "censored_z" in st:  # non-detects imputed draw by draw (bayesgeo.fitting.model.censored_index)
+        data["censored_value"] = (("sample", "censored"),
+                                  spec.values_of(st["censored_z"].transpose("sample", ...).values), {"units": units})
     return xr.Dataset(
-        {"practical_range": (dims, prange, {"units": spec.distance_units}),
-         "scale": (dims, prange / float(spec.range_factor), {"units": spec.distance_units}),
-         "partial_sill": (dims, psill, {"units": f"({units})^2"}),
-         "nugget": (dims, nug, {"units": f"({units})^2"}),
-         "beta": (("sample", "term"), beta, {"units": units})},
+        data,
         coords=coords, attrs={"draws_total": int(posterior.sizes["chain"] * posterior.sizes["draw"])},
     )
 
@@ -161,6 +166,10 @@ def basis_from_fit(fit, *, draws: int | None = None):
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
     # A fit with the nearest-neighbour likelihood (large n) predicts by nearest-neighbour kriging too.
     neighbours = engine(spec.approx).predict_neighbours(spec.neighbours)
+    if "censored_value" in params:  # condition on each draw's imputed non-detects
+        cens = np.flatnonzero(np.asarray(fit.tree["observed_data"]["censored"].values, dtype=bool))
+        z = np.repeat(z[None, :], params.sizes["sample"], axis=0)
+        z[:, cens] = params["censored_value"].values
     basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,

@@ -13,6 +13,8 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+import numpy as np
+
 from bayesgeo.common.layout import EXPLORE_FILE, site_part
 
 __all__ = ["CAUTIONS", "AZIMUTHS", "TOLERANCE", "explore_folder"]
@@ -73,6 +75,16 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
     from bayesgeo.explore.trend import fit_trend
 
     notes: list[str] = []
+    full = part
+    cens = np.asarray(part["censored"].values, bool) if "censored" in part else np.zeros(part.sizes["obs"], bool)
+    if cens.any():  # never substituted: the empirical statistics describe the detected values
+        limits = part["value"].values[cens]
+        limits = np.exp(limits) if part.attrs.get("transform") == "log" else limits  # as reported by the laboratory
+        notes.append(f"{int(cens.sum())} of {cens.size} values are non-detects (reporting limits {limits.min():.4g} to "
+                     f"{limits.max():.4g}): left out of the semivariograms, the correlogram and the quick fits, which "
+                     "describe the detected values only; no value was substituted for them, and the Bayesian fit "
+                     "models them as left-censored")
+        part = part.isel(obs=np.flatnonzero(~cens)).drop_vars("censored")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", explore.FewPairsWarning)
         trend_info = {"order": trend, "covariates": list(covariates)}
@@ -101,8 +113,6 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
         bar.update(len(families))
     if "ml_skipped" in fits.attrs:
         notes.append(fits.attrs["ml_skipped"] + "; the ML columns are null")
-    import numpy as np
-
     lags = vg["lag"].values[(vg["pairs"].values > 0) & np.isfinite(vg["semivariance"].values)]
     first_lag = float(lags.min()) if lags.size else float("nan")
     for method in fits["method"].values:
@@ -116,7 +126,8 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
             elif str(row["at_bound"].values):
                 notes.append(f"{method.upper()} fit of {fam} stopped at a search bound: {row['at_bound'].values}")
     obj = {
-        "n": int(part.sizes["obs"]),
+        "n": int(full.sizes["obs"]),
+        "non_detects": int(cens.sum()),
         "variable": vg.attrs.get("variable", "value"),
         "trend": trend_info,
         "distance_units": vg.attrs.get("distance_units", ""),
@@ -130,7 +141,8 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
         "fits": _fits_json(fits),
         "notes": notes,
     }
-    return obj, {"semivariogram": vg, "correlogram": cg, "directional": dvg, "fits": fits}
+    return obj, {"semivariogram": vg, "correlogram": cg, "directional": dvg, "fits": fits,
+                 "points": full if cens.any() else None}
 
 
 def _write_site(folder, res: dict, label: str) -> list[str]:
@@ -145,6 +157,8 @@ def _write_site(folder, res: dict, label: str) -> list[str]:
         "directional.png": figures.directional_figure(res["directional"],
                                                       title=f"Directional semivariograms{suffix}"),
     }
+    if res.get("points") is not None:
+        figs["non_detects.png"] = figures.non_detect_map(res["points"], title=f"Sampled points and non-detects{suffix}")
     for name, fig in figs.items():
         figures.save_figure(fig, folder / name)
     for name in ("semivariogram", "correlogram", "directional", "fits"):

@@ -72,7 +72,8 @@ def _run_stage(call: tuple[Callable, dict]) -> tuple[int, dict]:
 def _data_call(study: Study) -> dict:
     """The data keyword arguments every reading stage takes (:func:`bayesgeo.stages.fit.read_kwargs`)."""
     d = study.settings["data"]
-    return {"data": d["path"], "x": d["x"], "y": d["y"], "value": d["value"], "site": d["site"], "units": d["units"],
+    return {"data": d["path"], "x": d["x"], "y": d["y"], "value": d["value"], "limit": d["limit"],
+            "detected": d["detected"], "site": d["site"], "units": d["units"],
             "distance_units": d["distance_units"], "coords": d["coords"], "duplicates": d["duplicates"],
             "covariates": list(study.settings["model"]["covariates"])}
 
@@ -80,8 +81,8 @@ def _data_call(study: Study) -> dict:
 def _data_argv(kw: dict) -> list[str]:
     """The data options of the call ``kw`` on a command line."""
     argv = [str(kw["data"])]
-    for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("site", "--site"), ("units", "--units"),
-                     ("distance_units", "--distance-units")):
+    for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("limit", "--limit"), ("detected", "--detected"),
+                     ("site", "--site"), ("units", "--units"), ("distance_units", "--distance-units")):
         if kw[key]:
             argv += [opt, kw[key]]
     argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
@@ -114,7 +115,8 @@ def study_sites(study: Study) -> dict[str, "object"]:
     from bayesgeo.data.points import read_points, sites_of
 
     d = study.settings["data"]
-    ds = read_points(d["path"], x=d["x"], y=d["y"], value=d["value"], site=d["site"], covariates=d["covariates"],
+    ds = read_points(d["path"], x=d["x"], y=d["y"], value=d["value"], limit=d["limit"], detected=d["detected"],
+                     site=d["site"], covariates=d["covariates"],
                      coords=d["coords"], duplicates=d["duplicates"], units=d["units"],
                      distance_units=d["distance_units"])
     xy = np.column_stack([ds["x"].values, ds["y"].values])
