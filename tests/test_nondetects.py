@@ -293,3 +293,50 @@ def test_command_line_end_to_end_with_less_than_values(tmp_path):
     run("variogram-check", str(tmp_path / "exponential"), "--replicates", "20", "--json")
     cmp = run("compare", str(tmp_path / "exponential"), str(tmp_path / "matern32"), "--json")
     assert {r["fit"] for r in cmp["ranking"]} == {"exponential", "matern32"}
+
+
+def test_several_site_block_with_a_non_detect_integrates_to_the_normal_cdf():
+    """Several sites: the Gaussian-process term of a site with one non-detect, integrated over its latent
+    value below the limit, is the site's censored likelihood, the density of its detected values times the
+    normal CDF of the non-detect given them (scipy.stats; integral by scipy.integrate.quad), with that site's
+    own parameters; a site without non-detects is untouched."""
+    from bayesgeo.fitting.hierarchical import build_site_model
+
+    rng = np.random.default_rng(11)
+    xy = rng.uniform(0, 100, (20, 2))
+    z = rng.normal(2.0, 1.0, 20)
+    site = np.repeat(["north", "south"], 10)
+    cens = np.zeros(20, bool)
+    cens[12] = True  # one non-detect at the second site
+    ds = points_dataset(xy[:, 0], xy[:, 1], z, site=site, censored=cens, attrs={"coords": "xy"})
+    model, spec = build_site_model(ds, covariance="exponential", small_sites="keep")
+    assert spec.site_censored == (0, 1)
+    point = model.initial_point()
+    outs = model.replace_rvs_by_values([model[v] for v in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z")])
+    values = model.compile_fn(outs, inputs=model.value_vars, on_unused_input="ignore")(point)
+    prange, sd, tau, beta = (np.asarray(v) for v in values)
+    term = model.replace_rvs_by_values([model.potentials[1]])[0]
+    loglik = model.compile_fn(term, inputs=model.value_vars, on_unused_input="ignore")
+
+    def at(g):
+        return float(loglik({**point, "censored_gap_z_log__": np.log(np.array([g]))}))
+
+    s = site == "south"
+    phi = prange[1] * spec.distance_scale / spec.range_factor
+    k = sd[1] ** 2 * np.exp(-cdist(xy[s], xy[s]) / phi) + (tau[1] ** 2 + JITTER * sd[1] ** 2) * np.eye(10)
+    from bayesgeo.explore.trend import design_matrix
+
+    mean = design_matrix(ds.isel(obs=np.flatnonzero(s)), 0, ()).values @ beta[1]
+    y = (z[s] - spec.value_mean) / spec.value_sd - mean
+    c = np.zeros(10, bool)
+    c[2] = True
+    o = ~c
+    a = np.linalg.solve(k[np.ix_(o, o)], k[np.ix_(o, c)])
+    ref = (stats.multivariate_normal(np.zeros(9), k[np.ix_(o, o)]).logpdf(y[o])
+           + stats.norm.logcdf(y[c][0], (a.T @ y[o]).item(), np.sqrt(k[np.ix_(c, c)] - k[np.ix_(c, o)] @ a).item()))
+    value, _ = integrate.quad(lambda g: np.exp(at(g)), 0.0, np.inf, epsabs=0, epsrel=1e-10, limit=200)
+    assert np.log(value) == pytest.approx(ref, abs=1e-7)
+    first = model.compile_fn(model.replace_rvs_by_values([model.potentials[0]])[0], inputs=model.value_vars,
+                             on_unused_input="ignore")
+    assert float(first({**point, "censored_gap_z_log__": np.log(np.array([0.3]))})) == pytest.approx(
+        float(first({**point, "censored_gap_z_log__": np.log(np.array([3.0]))})), abs=0)

@@ -194,8 +194,14 @@ def test_posterior_parameters_converts_units_and_thins_evenly():
     and last of the chains concatenated."""
     from types import SimpleNamespace
 
-    spec = SimpleNamespace(value_sd=2.0, value_mean=5.0, distance_scale=100.0, range_factor=4.0,
-                           terms=("1", "x"), model_units="mg/kg", distance_units="m")
+    from bayesgeo.fitting.spec import SpecBase
+
+    class Spec(SimpleNamespace):  # the settings' unit conversions on hand-set constants
+        practical_range_of, variance_of, values_of = (SpecBase.practical_range_of, SpecBase.variance_of,
+                                                      SpecBase.values_of)
+
+    spec = Spec(value_sd=2.0, value_mean=5.0, distance_scale=100.0, range_factor=4.0,
+                terms=("1", "x"), model_units="mg/kg", distance_units="m")
     post = xr.Dataset({
         "practical_range_z": (("chain", "draw"), np.full((2, 10), 0.5)),
         "sd_z": (("chain", "draw"), np.full((2, 10), 0.5)),

@@ -59,7 +59,8 @@ def add_data_options(p) -> None:
 def data_kwargs(args) -> dict:
     """The data settings named by :func:`add_data_options` arguments, as keyword arguments of the stages
     (keyword arguments of :func:`bayesgeo.data.points.read_points`)."""
-    return dict(x=args.x, y=args.y, value=args.value, limit=args.limit, detected=args.detected, site=args.site,
+    return dict(x=args.x, y=args.y, value=args.value, limit=getattr(args, "limit", None),
+                detected=getattr(args, "detected", None), site=args.site,
                 only_site=args.only_site,
                 covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
                 distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"))

@@ -61,7 +61,8 @@ def _template(args):
 
         st = read_study(args.study)
         d = st["data"]
-        ns = SimpleNamespace(data=str(d["path"]), x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
+        ns = SimpleNamespace(data=str(d["path"]), x=d.get("x"), y=d.get("y"), value=d.get("value"),
+                             limit=d.get("limit"), detected=d.get("detected"), site=d.get("site"),
                              covariate=[], coords=d.get("coords", "auto"), duplicates=d.get("duplicates", "error"),
                              units=d.get("units"), distance_units=d.get("distance_units"), only_site=d.get("only_site"))
         return read_data(ns), st

@@ -18,7 +18,7 @@ import re
 
 import numpy as np
 
-from bayesgeo.common.csvtable import MAX_MAGNITUDE, Table, number_problem, parse_number
+from bayesgeo.common.csvtable import MAX_MAGNITUDE, Table, numeric_column, parse_number
 from bayesgeo.common.validate import InputError, format_rows
 
 __all__ = ["MAX_SHARE", "NOT_DETECTED", "DETECTED", "censored_column", "check_share", "count_line"]
@@ -34,15 +34,6 @@ NOT_DETECTED = ("<", "nd", "u", "not detected", "non-detect", "nondetect", "belo
 DETECTED = ("", "=", "d", "detected", "detect", "false", "no", "n", "0")
 
 _LESS = re.compile(r"\s*<\s*(?P<limit>\S.*?)\s*")
-
-
-def _limit_of(cell: str) -> float | None | str:
-    """The limit of a ``<X`` cell (a float, or the text after ``<`` when it is not a number); None otherwise."""
-    m = _LESS.fullmatch(cell)
-    if not m:
-        return None
-    v = parse_number(m.group("limit"))
-    return m.group("limit") if v is None else v
 
 
 def censored_column(table: Table, value: str, *, limit: str | None = None, detected: str | None = None
@@ -80,8 +71,8 @@ def censored_column(table: Table, value: str, *, limit: str | None = None, detec
     cells = table.column(value)
     flags = table.column(detected) if detected else None
     limits = table.column(limit) if limit else None
-    values = np.empty(len(cells))
     censored = np.zeros(len(cells), dtype=bool)
+    shown = list(cells)  # the cells as numbers: a non-detect's limit in place of <X
     for k, cell in enumerate(cells):
         where = f"{src}: row {rows[k]}"
         if flags is not None:
@@ -92,25 +83,17 @@ def censored_column(table: Table, value: str, *, limit: str | None = None, detec
                                  f"{', '.join(w for w in DETECTED if w)})")
             if flag in NOT_DETECTED:
                 censored[k] = True
-                values[k] = _finite_limit(limits[k], where, limit)
+                shown[k] = repr(_finite_limit(limits[k], where, limit))
                 continue
-        lim = _limit_of(cell)
-        if lim is not None:
+        if _LESS.fullmatch(cell):
             if flags is not None:
                 raise InputError(f"{where}, column {value!r}: {cell.strip()!r} is written as a non-detect but column "
                                  f"{detected!r} says detected; correct one of them")
             censored[k] = True
-            values[k] = _finite_limit(cell.strip()[1:], where, value)
-            continue
-        v = parse_number(cell)
-        if v is None or not np.isfinite(v) or abs(v) > MAX_MAGNITUDE:
-            why = number_problem(cell) if v is None else f"{cell.strip()!r} is not a finite number of magnitude " \
-                                                          f"at most {MAX_MAGNITUDE:g}"
-            if not cell.strip():
-                why = "the cell is empty"
-            raise InputError(f"{where}, column {value!r}: {why}")
-        values[k] = v
-    return values, censored
+            shown[k] = repr(_finite_limit(cell.strip()[1:], where, value))
+    j = table.header.index(value)
+    numbers = Table(src, table.header, [(r, [*c[:j], s, *c[j + 1:]]) for (r, c), s in zip(table.rows, shown)])
+    return numeric_column(numbers, value), censored
 
 
 def _finite_limit(text: str, where: str, col: str) -> float:

@@ -174,6 +174,15 @@ class SiteFitArrays:
         """Site labels in the order of the fit."""
         return tuple(self.blocks)
 
+    @property
+    def censored(self) -> np.ndarray:
+        """Non-detects along ``obs`` (all sites, data order)."""
+        out = np.zeros(self.n, dtype=bool)
+        for label, fa in self.blocks.items():
+            if fa.censored.size:
+                out[self.index[label]] = fa.censored
+        return out
+
 
 def _source_sha256(tree) -> str:
     """SHA-256 of the fitted data file recorded in the fit's settings ('' when not recorded)."""

@@ -17,6 +17,7 @@ the mean total sill is the sum of the means (linearity of expectation).
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -418,7 +419,17 @@ def site_cautions(spec, posterior: xr.Dataset | None = None, diagnostics: dict |
     the nearest-neighbour approximation check of each nn site."""
     from bayesgeo.fitting.posterior import cautions
 
-    out = cautions(spec.fit_spec(spec.sites[0]), None, diagnostics)
+    out = cautions(replace(spec.fit_spec(spec.sites[0]), censored=0), None, diagnostics)
+    if spec.site_censored:
+        n_all, k_all = int(np.sum(spec.n)), int(np.sum(spec.site_censored))
+        per = ", ".join(f"{s} {k} of {n}" for s, k, n in zip(spec.sites, spec.site_censored, spec.n))
+        out.append(f"{k_all} of {n_all} values are non-detects ({per}), modelled as left-censored at their reporting "
+                   "limits (each one a latent value below its limit, sampled with the parameters), not replaced by a "
+                   "number.")
+        high = [s for s, k, n in zip(spec.sites, spec.site_censored, spec.n) if k > 0.5 * n]
+        if high:
+            out.append(f"At site(s) {', '.join(high)} more than half of the values are non-detects: their estimates "
+                       "rest on few detected values and on the model below the limits; read them with extra care.")
     if posterior is not None and "practical_range" in posterior:
         med = posterior["practical_range"].median(dim=("chain", "draw")).values
         far = [s for s, m, e in zip(spec.sites, med, spec.site_extents) if m > 0.5 * e]

@@ -153,6 +153,9 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
     rates, hp, beta_sd = spec.rates, spec.hyperpriors, spec.priors.beta_sd
     n_sites = len(spec.sites)
     coords = {"site": list(spec.sites), "term": list(spec.terms)}
+    cens = [np.flatnonzero(d.censored) if d.censored is not None else np.zeros(0, int) for d in data]
+    if any(c.size for c in cens):
+        coords["censored"] = [int(d.rows[c_i][k]) for d, c_i in zip(data, cens) for k in range(c_i.size)]
     with pm.Model(coords=coords) as model:
         if spec.pooling == "hierarchical":
             w = 1.0 - spec.centred()  # per site: 1 = non-centred, 0 = centred
@@ -198,8 +201,9 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
         if spec.nugget:
             # tau = sigma sqrt(f / (1 - f)) = sigma exp(logit(f) / 2)
             tau = pm.Deterministic("nugget_sd_z", sd * pt.exp(0.5 * logit_f), dims="site")
+        ys = _site_values(data, cens) if "censored" in coords else [d.y for d in data]
         for i, sd_i in enumerate(data):
-            resid = sd_i.y - pt.dot(sd_i.design, beta[i])
+            resid = ys[i] - pt.dot(sd_i.design, beta[i])
             tau2 = tau[i] ** 2 if spec.nugget else 0.0
             loglik = engine(spec.site_approx[i]).loglik(
                 resid, xy=sd_i.xy, dist=sd_i.dist, covariance=cov, scale=prange[i] / spec.range_factor,
@@ -207,6 +211,23 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
                 distance_scale=spec.distance_scale)
             pm.Potential(f"loglik_{i}", loglik)
     return model, spec
+
+
+def _site_values(data, cens: list[np.ndarray]) -> list:
+    """Each site's standardised values with its non-detects latent below their limits: one ``censored`` vector
+    of gaps for all sites, in site order (the data augmentation of :func:`bayesgeo.fitting.model.censored_index`)."""
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    limits = np.concatenate([d.y[c] for d, c in zip(data, cens)])
+    gap = pm.HalfFlat("censored_gap_z", dims="censored")
+    latent = pm.Deterministic("censored_z", limits - gap, dims="censored")
+    out, start = [], 0
+    for d, c in zip(data, cens):
+        y = pt.as_tensor_variable(np.asarray(d.y, dtype=float))
+        out.append(pt.set_subtensor(y[c], latent[start:start + c.size]) if c.size else y)
+        start += c.size
+    return out
 
 
 def _site_effect(name: str, mu, spread, w: np.ndarray, dims):
@@ -293,6 +314,9 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
                          rerun_accept=SITES_RERUN_ACCEPT, seed=seed, draws=draws, max_draws=max_draws, look=look,
                          sampler=sampler, chains=chains, tune=tune, progressbar=progressbar, adaptation=adaptation)
     post = add_derived(raw["posterior"].to_dataset(), spec)
+    if "censored_z" in post:  # which site each non-detect belongs to
+        post = post.assign_coords(censored_site=("censored", [s for s, k in zip(spec.sites, spec.site_censored)
+                                                              for _ in range(k)]))
     site_of = np.asarray(ds["site"].values if "site" in ds.coords else np.full(ds.sizes["obs"], "all"), dtype=str)
     obs_coords = {"row": ("obs", np.asarray(ds["row"].values)), "site": ("obs", site_of)}
     observed = xr.Dataset({"value": ("obs", np.asarray(ds["value"].values, dtype=float),
@@ -301,6 +325,8 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     if spec.transform == "log":
         observed["model_value"] = ("obs", np.log(observed["value"].values),
                                    {"units": spec.model_units, "long_name": "log of the measured value"})
+    if "censored" in ds:
+        observed["censored"] = ds["censored"].copy()
     design = np.zeros((ds.sizes["obs"], len(spec.terms)))
     for one in data:  # rows of each site, in data order
         design[np.isin(np.asarray(ds["row"].values), one.rows) & (site_of == one.label)] = one.design
@@ -371,7 +397,12 @@ def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
     spec.site_index(site)
     post = tree["posterior"].to_dataset()
     keep = [v for v in post.data_vars if "site" in post[v].dims]
-    groups = {"/posterior": post[keep].sel(site=site, drop=True)}
+    one_post = post[keep].sel(site=site, drop=True)
+    latent = [v for v in post.data_vars if "censored" in post[v].dims]
+    if latent and np.any(post["censored_site"].values == site):  # the site's own non-detects
+        mine = post[latent].isel(censored=np.flatnonzero(post["censored_site"].values == site))
+        one_post = xr.merge([one_post, mine.drop_vars("censored_site")])
+    groups = {"/posterior": one_post}
     if "sample_stats" in tree.children:
         groups["/sample_stats"] = tree["sample_stats"].to_dataset()
     for name in ("observed_data", "constant_data"):

@@ -99,6 +99,8 @@ class SiteSpec(SpecBase):
         Per site: ``dense`` or ``nn`` (empty: all dense).
     site_neighbours : tuple of int
         Per site: neighbours m of the nearest-neighbour likelihood (0 for dense sites).
+    site_censored : tuple of int
+        Per site: non-detects, modelled as left-censored (empty: none anywhere).
     """
 
     pooling: str
@@ -112,6 +114,7 @@ class SiteSpec(SpecBase):
     site_centred: tuple[bool, ...] = ()
     site_approx: tuple[str, ...] = ()
     site_neighbours: tuple[int, ...] = ()
+    site_censored: tuple[int, ...] = ()
 
     @property
     def rates(self) -> dict[str, float]:
@@ -124,7 +127,8 @@ class SiteSpec(SpecBase):
         common = {f.name: getattr(self, f.name) for f in fields(SpecBase)}
         return FitSpec(**{**common, "design_attrs": self.design_attrs[site], "n": self.n[i],
                           "approx": self.site_approx[i] if self.site_approx else "dense",
-                          "neighbours": self.site_neighbours[i] if self.site_neighbours else 0})
+                          "neighbours": self.site_neighbours[i] if self.site_neighbours else 0,
+                          "censored": self.site_censored[i] if self.site_censored else 0})
 
     def centred(self) -> np.ndarray:
         """Per site: 1.0 where the site effects are centred, 0.0 where non-centred."""
@@ -151,6 +155,7 @@ class SiteData:
     dist: np.ndarray | None  # None for a site fitted with the nearest-neighbour likelihood
     rows: np.ndarray
     xy: np.ndarray
+    censored: np.ndarray | None = None  # non-detects among the site's points (their y is the limit)
 
 
 def _split_sites(ds: xr.Dataset) -> list[tuple[str, xr.Dataset]]:
@@ -233,7 +238,8 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         z = np.asarray(part["_z"].values, dtype=float)
         coef, *_ = np.linalg.lstsq(design.values, z, rcond=None)
         rss = float(np.sum((z - design.values @ coef) ** 2))
-        raw.append((label, part, design, d, extent, z, rss, rows, xy, how, m))
+        cens = np.asarray(part["censored"].values, bool) if "censored" in part else np.zeros(n, dtype=bool)
+        raw.append((label, part, design, d, extent, z, rss, rows, xy, how, m, cens))
     for msg in notes:
         warnings.warn(msg, UserWarning, stacklevel=3)
     p = raw[0][2].shape[1]
@@ -260,9 +266,10 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         hyperpriors=dict(HYPERPRIORS), warnings=tuple(notes), parametrisation=parametrisation,
         site_centred=tuple(_centred(parametrisation, len(r[5])) for r in raw), approx=approx,
         site_approx=tuple(r[9] for r in raw), site_neighbours=tuple(int(r[10]) for r in raw),
+        site_censored=tuple(int(r[11].sum()) for r in raw) if any(r[11].any() for r in raw) else (),
     )
     data = [SiteData(label=r[0], y=(r[5] - vmean) / vsd, design=np.asarray(r[2].values, dtype=float),
-                     dist=None if r[3] is None else r[3] / dscale, rows=r[7], xy=r[8]) for r in raw]
+                     dist=None if r[3] is None else r[3] / dscale, rows=r[7], xy=r[8], censored=r[11]) for r in raw]
     return spec, data
 
 

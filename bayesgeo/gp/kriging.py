@@ -234,9 +234,8 @@ def _dist_f(basis: KrigingBasis, xy_new: np.ndarray) -> np.ndarray:
 
 
 def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: bool = True):
-    """Conditional mean and variance per draw at new locations (model units), kriging with every datum
-    from the basis's Cholesky factors (the dense engine's kriging; a nearest-neighbour basis is kriged by
-    :func:`bayesgeo.gp.nn_kriging.nn_kriging_moments`, and :meth:`bayesgeo.gp.engines.Engine.draw_moments` picks).
+    """Conditional mean and variance per draw at new locations (model units) from the basis's Cholesky
+    factors: the dense engine's kriging (:meth:`bayesgeo.gp.engines.Engine.draw_moments` picks the engine).
 
     Parameters
     ----------
