@@ -93,7 +93,7 @@ def write_demo_inputs(folder, *, quick: bool = False) -> Path:
 
     import numpy as np
 
-    from bayesgeo.data.demo import demo_data
+    from bayesgeo.data.demo import demo_data, value_cells
 
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
@@ -103,9 +103,10 @@ def write_demo_inputs(folder, *, quick: bool = False) -> Path:
     with data.open("w", newline="") as fh:
         w = csv.writer(fh)
         w.writerow(["sample_id", "parcel", "easting", "northing", "arsenic_mg_kg"])
+        cells = value_cells(ds)
         for i in keep:
             w.writerow([f"MW-{i + 1:04d}", str(ds["site"].values[i]), f"{ds['x'].values[i]:.1f}",
-                        f"{ds['y'].values[i]:.1f}", f"{ds['value'].values[i]:.2f}"])
+                        f"{ds['y'].values[i]:.1f}", cells[i]])
     study = folder / "demo_study.toml"
     study.write_text(demo_study_text(data.name, quick=quick), encoding="utf-8")
     return study

@@ -4,8 +4,10 @@
 was sampled on five fictional parcels of the plant. Values are log-normal: on the log scale each
 parcel is a constant mean plus a zero-mean Gaussian field with a Matérn 3/2 covariance plus
 independent noise (nugget). Parcel parameters are drawn from a population, so the set suits a
-hierarchical model. Every true parameter is recorded with the data, so tests and tutorials can
-check what a fit recovers. Names, places and numbers are invented; the action level is an
+hierarchical model. The laboratory reported results below a reporting limit as non-detects: the
+samples went to two batches with limits of 6 and 10 mg/kg, so about one value in six is written
+``<6`` or ``<10`` (from a few percent to nearly a third of a parcel). Every true parameter is recorded
+with the data, so tests and tutorials can check what a fit recovers. Names, places and numbers are invented; the action level is an
 illustration, not a regulatory value.
 """
 
@@ -23,11 +25,14 @@ from bayesgeo.data.points import points_dataset
 from bayesgeo.common.geometry import distance_matrix
 from bayesgeo.common.outputs import new_files
 
-__all__ = ["DEMO_SEED", "DEMO_ACTION_LEVEL", "demo_data", "write_demo_data", "simulate_field"]
+__all__ = ["DEMO_SEED", "DEMO_ACTION_LEVEL", "DEMO_REPORTING_LIMITS", "demo_data", "write_demo_data", "simulate_field",
+           "value_cells"]
 
 DEMO_SEED = 20261202
 #: Illustrative action level for the demo (mg/kg): invented, not taken from any regulation.
 DEMO_ACTION_LEVEL = 40.0
+#: Reporting limits (mg/kg) of the demo's two invented laboratory batches.
+DEMO_REPORTING_LIMITS = (6.0, 10.0)
 
 # parcel label, points, side of the sampled square (m), south-west corner (local grid, m)
 _PARCELS = (
@@ -103,22 +108,33 @@ def demo_data(seed: int = DEMO_SEED) -> xr.Dataset:
             "n": n, "log_mean": mu, "practical_range": prange, "partial_sill": psill,
             "nugget": nugget, "total_sill": psill + nugget,
         }
+    values = np.concatenate(vals)
+    # two laboratory batches (a stream of its own, so the simulated values do not depend on it)
+    limit = np.asarray(DEMO_REPORTING_LIMITS)[np.random.default_rng([seed, 7]).integers(0, 2, values.size)]
+    censored = values < limit
     attrs = {
         "title": "Marrowby Works (invented): arsenic in topsoil, 0-15 cm",
         "source": "bayesgeo demo (simulated)",
         "x_column": "easting", "y_column": "northing", "value_column": "arsenic_mg_kg",
         "site_column": "parcel", "covariates": [], "coords": "xy", "distance_units": "m",
         "value_units": "mg/kg", "crs": "invented local grid (m)", "duplicates": "error",
-        "seed": seed, "action_level": DEMO_ACTION_LEVEL,
+        "seed": seed, "action_level": DEMO_ACTION_LEVEL, "non_detects": int(censored.sum()),
         "truth": json.dumps({
             "scale": "log of mg/kg; practical range in m",
             "covariance": pop["covariance"],
             "population": {k: float(v) for k, v in pop.items() if k != "covariance"},
             "sites": truth,
+            "reporting_limits": list(DEMO_REPORTING_LIMITS),
         }),
     }
-    return points_dataset(np.concatenate(xs), np.concatenate(ys), np.concatenate(vals),
-                          site=np.array(sites), attrs=attrs)
+    return points_dataset(np.concatenate(xs), np.concatenate(ys), np.where(censored, limit, values),
+                          site=np.array(sites), attrs=attrs, censored=censored)
+
+
+def value_cells(ds: xr.Dataset) -> list[str]:
+    """The value column as a laboratory writes it: 2 decimals, a non-detect as ``<limit``."""
+    cens = ds["censored"].values if "censored" in ds else np.zeros(ds.sizes["obs"], bool)
+    return [f"<{v:g}" if c else f"{v:.2f}" for v, c in zip(ds["value"].values, cens)]
 
 
 def write_demo_data(path: str | Path, *, seed: int = DEMO_SEED, overwrite: bool = False) -> dict:
@@ -135,8 +151,9 @@ def write_demo_data(path: str | Path, *, seed: int = DEMO_SEED, overwrite: bool 
         with tmp.open("w", newline="") as fh:
             w = csv.writer(fh)
             w.writerow(["sample_id", "parcel", "easting", "northing", "arsenic_mg_kg"])
+            cells = value_cells(ds)
             for i in range(ds.sizes["obs"]):
                 w.writerow([f"MW-{i + 1:04d}", str(ds["site"].values[i]), f"{ds['x'].values[i]:.1f}",
-                            f"{ds['y'].values[i]:.1f}", f"{ds['value'].values[i]:.2f}"])
+                            f"{ds['y'].values[i]:.1f}", cells[i]])
         ttmp.write_text(json.dumps(truth, indent=2) + "\n")
     return truth

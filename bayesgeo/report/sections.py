@@ -7,7 +7,7 @@ failed) says so in a visible box instead of showing anything made up.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from pathlib import Path
 
 import numpy as np
@@ -17,6 +17,7 @@ from bayesgeo.report.html import fig_png as _fig_png
 from bayesgeo.report.html import read_json as _read_json
 from bayesgeo.report.html import run_data as _data
 from bayesgeo.report.html import section as _section
+from bayesgeo.report.samples import nondetect_block, samples_figure
 from bayesgeo.report.priors import prior_posterior_figure, prior_sensitivity
 from bayesgeo.common.layout import (COMPARISON_FILE, DIAGNOSTICS_DIR, DIAGNOSTICS_FILE, EXPLORE_FILE, FIT_FILE, FIT_REPORT,
                              RUN_COMPARE, RUN_EXPLORE, fit_folder_of, prediction_names, vgcheck_names)
@@ -29,8 +30,8 @@ LIMITATIONS = (
     "different parcels) break this assumption; check the exploratory figures and the variogram check.",
     "The covariance is isotropic: correlation depends on distance only, not on direction. The directional "
     "semivariograms show whether that is plausible; a marked direction effect needs a different model.",
-    "Results are only as good as the data: sampling design, sample support (depth, compositing), laboratory "
-    "quality, detection limits and censored values are not modelled here and must be checked first.",
+    "Results are only as good as the data: sampling design, sample support (depth, compositing) and laboratory "
+    "quality are not modelled; non-detects are modelled as censored only where marked (<X), so check the limits.",
     "Intervals are conditional on the chosen covariance family, priors and trend; the prior-sensitivity and "
     "comparison sections show how much they matter, not every way the model could be wrong.",
     "Predictions far from samples revert to the mean with wide intervals; maps outside the sampled area "
@@ -110,34 +111,6 @@ def contents(ctx: Ctx) -> str:
     return f"<nav><ol>{items}</ol></nav>"
 
 
-def samples_figure(ds, thresholds: Sequence[float] = ()):
-    """Map of the sample locations coloured by the measured value (log colour scale for positive data)."""
-    import matplotlib.pyplot as plt
-    from matplotlib.colors import LogNorm
-
-    v = ds["value"].values
-    fig, ax = plt.subplots(figsize=(6.4, 5.2), layout="constrained")
-    norm = LogNorm() if np.all(v > 0) else None
-    sc = ax.scatter(ds["x"].values, ds["y"].values, c=v, s=22, cmap="viridis", norm=norm, edgecolors="k",
-                    linewidths=0.3)
-    for t in thresholds:
-        hit = v > t
-        if hit.any():
-            ax.scatter(ds["x"].values[hit], ds["y"].values[hit], s=70, facecolors="none", edgecolors="red",
-                       linewidths=0.9, label=f"above {t:g}")
-    if len(thresholds):
-        ax.legend(loc="best", fontsize=8)
-    du = ds.attrs.get("distance_units", "")
-    ax.set_xlabel(f"x [{du}]" if du else "x")
-    ax.set_ylabel(f"y [{du}]" if du else "y")
-    ax.set_aspect("equal", adjustable="datalim")
-    ax.ticklabel_format(useOffset=False, style="plain")
-    ax.tick_params(labelsize=7)
-    fig.colorbar(sc, ax=ax, label=f"measured value [{ds.attrs.get('value_units', '')}]")
-    ax.set_title("Sample locations and measured values")
-    return fig
-
-
 def job(ctx: Ctx) -> str:
     m, s = ctx.manifest, ctx.settings
     fams = s.get("model", {}).get("covariance", [])
@@ -154,13 +127,14 @@ def job(ctx: Ctx) -> str:
         ds = _data(ctx)
     except Exception as err:  # noqa: BLE001 - the report must still be written
         return _section("job", "Job and data", "\n".join(out) + gap(f"data could not be read again: {err}"))
-    v = ds["value"].values
+    v = ds["value"].values[~ds["censored"].values] if "censored" in ds else ds["value"].values  # detected values
     units = ds.attrs.get("value_units", "")
     stats = [{"n": int(v.size), "min": float(v.min()), "q25": float(np.quantile(v, 0.25)),
               "median": float(np.median(v)), "mean": float(v.mean()), "q75": float(np.quantile(v, 0.75)),
               "max": float(v.max()), "sd": float(v.std(ddof=1)) if v.size > 1 else float("nan")}]
     out.append(f"<h3>Measured values [{esc(units or 'value units')}]</h3>")
     out.append(html_table(stats, list(stats[0])))
+    out.append(nondetect_block(ds))
     if "site" in ds.coords:
         labels, counts = np.unique(ds["site"].values, return_counts=True)
         out.append("<p>Sites: " + ", ".join(f"{esc(lb)} ({c})" for lb, c in zip(labels, counts)) + "</p>")
