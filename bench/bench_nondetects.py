@@ -6,6 +6,8 @@ Two parts, side by side in one run:
   square, nugget 0.2 of a unit partial sill, mean 5) fitted with 0%, 25% and 50% of its values censored
   at the matching quantile, at each n; reported: sampling seconds, smallest bulk ESS of the covariance
   parameters, ESS per second, and both as ratios to the uncensored fit of the same data.
+* ``adaptation``: censored fits (25% and 50%) of a few data sets with nutpie's low-rank mass-matrix
+  adaptation (the default) and the diagonal one, side by side: fit seconds, min bulk ESS, ESS/s.
 * ``coverage``: replicate data sets (fresh seeds) censored at the 40% quantile; each is fitted twice,
   with the non-detects modelled as censored and with half the limit substituted (the common shortcut
   Helsel 2012, ch. 1, warns against); reported: how often the central 90% interval covers the true
@@ -14,7 +16,7 @@ Two parts, side by side in one run:
 
 Every fit: nutpie, 2 chains x (500 + 500), default target acceptance, seed from the replicate.
 
-`OPENBLAS_NUM_THREADS=1 python bench/bench_nondetects.py [--part cost|coverage|both] [--sizes 200,1000]
+`OPENBLAS_NUM_THREADS=1 python bench/bench_nondetects.py [--part cost|coverage|adaptation|both] [--sizes 200,1000]
 [--replicates 20] [--no-write]`
 """
 
@@ -60,13 +62,14 @@ def dataset(xy, z, share: float, how: str):
     return points_dataset(xy[:, 0], xy[:, 1], np.where(cens, 0.5 * limit, z), attrs={"coords": "xy"})
 
 
-def fit(ds, seed: int) -> dict:
+def fit(ds, seed: int, adaptation: str = "low_rank") -> dict:
     import arviz as az
 
     from bayesgeo.fitting.posterior import fit as fit_one
 
     t0 = time.perf_counter()
-    tree = fit_one(ds, covariance="exponential", chains=2, draws=500, tune=500, seed=seed, max_draws=500)
+    tree = fit_one(ds, covariance="exponential", chains=2, draws=500, tune=500, seed=seed, max_draws=500,
+                   adaptation=adaptation)
     seconds = time.perf_counter() - t0
     post = tree["posterior"].to_dataset()
     names = [v for v in ("practical_range_z", "sd_z", "nugget_sd_z") if v in post]
@@ -92,6 +95,20 @@ def part_cost(sizes, write: bool) -> None:
              "| --- | --- | --- | --- | --- | --- | --- |"]
     lines += [f"| {n} | {100 * s:.0f}% | {t:.1f} | {e:.0f} | {r:.1f} | {tr:.2f} | {er:.2f} |"
               for n, s, t, e, r, tr, er in rows]
+    publish("\n".join(lines) + "\n", write=write)
+
+
+def part_adaptation(write: bool) -> None:
+    lines = ["| n | data seed | non-detects | adaptation | fit seconds | min bulk ESS | ESS/s |",
+             "| --- | --- | --- | --- | --- | --- | --- |"]
+    for n, seed in ((200, 300), (200, 301), (300, 302), (400, 500)):
+        xy, z = simulate(n, seed=seed)
+        for share in (0.25, 0.5):
+            for adaptation in ("low_rank", "diag"):
+                r = fit(dataset(xy, z, share, "censored"), seed=7, adaptation=adaptation)
+                lines.append(f"| {n} | {seed} | {100 * share:.0f}% | {adaptation} | {r['seconds']:.1f} | {r['ess']:.0f} | "
+                             f"{r['ess'] / r['seconds']:.2f} |")
+                print(lines[-1], flush=True)
     publish("\n".join(lines) + "\n", write=write)
 
 
@@ -122,7 +139,7 @@ def part_coverage(replicates: int, write: bool) -> None:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--part", choices=("cost", "coverage", "both"), default="both")
+    ap.add_argument("--part", choices=("cost", "coverage", "adaptation", "both"), default="both")
     ap.add_argument("--sizes", default="200,1000")
     ap.add_argument("--replicates", type=int, default=20)
     ap.add_argument("--no-write", action="store_true")
@@ -132,6 +149,8 @@ def main() -> None:
     publish("\n## Non-detects: cost and coverage (bench_nondetects.py)\n", write=write)
     if args.part in ("cost", "both"):
         part_cost([int(s) for s in args.sizes.split(",")], write)
+    if args.part == "adaptation":
+        part_adaptation(write)
     if args.part in ("coverage", "both"):
         part_coverage(args.replicates, write)
     publish(sampler_context(started, load0) + "\n", write=write)
