@@ -91,6 +91,8 @@ def censored_column(table: Table, value: str, *, limit: str | None = None, detec
                                  f"{detected!r} says detected; correct one of them")
             censored[k] = True
             shown[k] = repr(_finite_limit(cell.strip()[1:], where, value))
+    if not censored.any():
+        return numeric_column(table, value), censored
     j = table.header.index(value)
     numbers = Table(src, table.header, [(r, [*c[:j], s, *c[j + 1:]]) for (r, c), s in zip(table.rows, shown)])
     return numeric_column(numbers, value), censored
@@ -120,19 +122,20 @@ def check_share(censored: np.ndarray, site: np.ndarray | None, rows: np.ndarray,
 
 
 def count_line(ds) -> str | None:
-    """``"k of n values are non-detects (reporting limits a to b)"`` for data with non-detects, per site when
-    there are several; None without non-detects."""
+    """``"k of n values are non-detects (reporting limits a to b units)"`` for data with non-detects (limits as
+    the laboratory reported them, also after a log transform), per site when there are several; None without."""
     if "censored" not in ds:
         return None
     cens = np.asarray(ds["censored"].values, bool)
     if not cens.any():
         return None
     lim = np.asarray(ds["value"].values, float)[cens]
+    lim = np.exp(lim) if ds.attrs.get("transform") == "log" else lim
     span = f"{lim.min():g}" if lim.min() == lim.max() else f"{lim.min():g} to {lim.max():g}"
     line = f"{int(cens.sum())} of {cens.size} values are non-detects (reporting limits {span}"
     units = ds.attrs.get("value_units", "")
     line += f" {units})" if units else ")"
-    if "site" in ds.coords:
+    if "site" in ds.coords and len(set(ds["site"].values.tolist())) > 1:
         site = ds["site"].values
         per = [f"{s}: {int(cens[site == s].sum())} of {int((site == s).sum())}" for s in dict.fromkeys(site.tolist())]
         line += "; per site " + ", ".join(per)

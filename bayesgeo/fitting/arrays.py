@@ -306,9 +306,11 @@ def predictive_dataset(fa: FitArrays, mean: np.ndarray, var: np.ndarray, logp: n
     mean += m0
     np.sqrt(var, out=var)
     var *= s
-    logp += jac
     if fa.censored.any():  # a non-detect's term is a probability P(v_i < limit_i | rest): no Jacobian
-        logp[:, fa.censored] -= jac if np.ndim(jac) == 0 else jac[fa.censored]
+        det = ~fa.censored
+        logp[:, det] += jac if np.ndim(jac) == 0 else jac[det]
+    else:
+        logp += jac
     units = fa.spec.model_units
     dims = ("chain", "draw", "obs")
     shape = (nc, nd, fa.n)

@@ -216,12 +216,11 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
 def _site_values(data, cens: list[np.ndarray]) -> list:
     """Each site's standardised values with its non-detects latent below their limits: one ``censored`` vector
     of gaps for all sites, in site order (the data augmentation of :func:`bayesgeo.fitting.model.censored_index`)."""
-    import pymc as pm
     import pytensor.tensor as pt
 
-    limits = np.concatenate([d.y[c] for d, c in zip(data, cens)])
-    gap = pm.HalfFlat("censored_gap_z", dims="censored")
-    latent = pm.Deterministic("censored_z", limits - gap, dims="censored")
+    from bayesgeo.fitting.model import censored_latent
+
+    latent = censored_latent(np.concatenate([d.y[c] for d, c in zip(data, cens)]))
     out, start = [], 0
     for d, c in zip(data, cens):
         y = pt.as_tensor_variable(np.asarray(d.y, dtype=float))

@@ -290,22 +290,28 @@ def censored_index(ds: xr.Dataset) -> np.ndarray:
     return np.flatnonzero(np.asarray(ds["censored"].values, dtype=bool))
 
 
-def _censored_values(y: np.ndarray, cens: np.ndarray):
-    """The standardised values with each non-detect a latent variable below its limit (data augmentation).
+def censored_latent(limits: np.ndarray):
+    """The latent values of the non-detects (dim ``censored``), each below its standardised limit (data augmentation).
 
     A non-detect's value is ``y_c = L_c - g_c`` with ``L_c`` its (standardised, transformed) reporting
     limit and ``g_c > 0`` sampled under a flat density (PyMC's log transform adds the Jacobian), so the
     joint posterior is p(theta) N(y | mu, K) 1{y_c < L_c}; integrating the ``y_c`` out leaves the
     left-censored likelihood exactly (Tanner and Wong 1987, JASA 82, data augmentation; the censored
     Gaussian-process likelihood as in De Oliveira 2005, J. Computational and Graphical Statistics 14,
-    95-115, reference from memory). The values are recorded as the Deterministic ``censored_z``.
+    95-115, reference from memory). The values are recorded as the Deterministic ``censored_z``; the single-
+    and the several-site model both take them from here.
     """
     import pymc as pm
-    import pytensor.tensor as pt
 
     gap = pm.HalfFlat("censored_gap_z", dims="censored")
-    latent = pm.Deterministic("censored_z", y[cens] - gap, dims="censored")
-    return pt.set_subtensor(pt.as_tensor_variable(np.asarray(y, dtype=float))[cens], latent)
+    return pm.Deterministic("censored_z", np.asarray(limits, dtype=float) - gap, dims="censored")
+
+
+def _censored_values(y: np.ndarray, cens: np.ndarray):
+    """The standardised values with the non-detects at their latent values (:func:`censored_latent`)."""
+    import pytensor.tensor as pt
+
+    return pt.set_subtensor(pt.as_tensor_variable(np.asarray(y, dtype=float))[cens], censored_latent(y[cens]))
 
 
 def _trend_integrated(spec: FitSpec, trend: str = "auto") -> bool:

@@ -34,7 +34,7 @@ from bayesgeo.fitting.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_loo
 from bayesgeo.fitting.sampling import new_seed
 from bayesgeo.gp.trend_posterior import draw_trend
 from bayesgeo.common.validate import InputError
-from bayesgeo.gp.engines import engine
+from bayesgeo.gp.engines import engine, with_imputed
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 from bayesgeo.common.layout import FIT_FILE
 
@@ -312,9 +312,7 @@ def values_per_draw(y: np.ndarray, cens: np.ndarray, post: xr.Dataset) -> np.nda
     if not cens.size:
         return y
     latent = np.asarray(post["censored_z"].transpose("chain", "draw", "censored").values, dtype=float)
-    out = np.repeat(np.asarray(y, dtype=float)[None, :], latent.shape[0] * latent.shape[1], axis=0)
-    out[:, cens] = latent.reshape(-1, cens.size)
-    return out
+    return with_imputed(y, cens, latent.reshape(-1, cens.size))
 
 
 def stored(tree: xr.DataTree, name: str, default=None):

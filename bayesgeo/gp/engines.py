@@ -36,7 +36,8 @@ import numpy as np
 from bayesgeo.common.geometry import distance_matrix
 from bayesgeo.common.validate import InputError, check_choice, check_positive_int
 
-__all__ = ["APPROX", "DENSE_LIMIT", "NN_PREDICT_NEIGHBOURS", "LooResult", "Engine", "choose", "engine", "resolve"]
+__all__ = ["APPROX", "DENSE_LIMIT", "NN_PREDICT_NEIGHBOURS", "LooResult", "Engine", "choose", "engine", "resolve",
+           "with_imputed"]
 
 #: Likelihood choices: exact dense, nearest-neighbour (Vecchia), or dense up to DENSE_LIMIT points.
 APPROX = ("auto", "dense", "nn")
@@ -241,13 +242,20 @@ class _NearestNeighbour(Engine):
         return approximation_check(posterior, xy, covariance=covariance, neighbours=neighbours, metric=metric)
 
 
+def with_imputed(values: np.ndarray, censored: np.ndarray, imputed: np.ndarray) -> np.ndarray:
+    """``values`` (n,) with the non-detects (``censored``, boolean or positions) at ``imputed``: (k,) for one
+    draw gives (n,), (D, k) for D draws gives (D, n). The one place imputed non-detects enter data."""
+    imputed = np.asarray(imputed, dtype=float)
+    out = np.array(np.broadcast_to(np.asarray(values, dtype=float), imputed.shape[:-1] + np.shape(values)))
+    out[..., censored] = imputed
+    return out
+
+
 def _values(fa, k: int) -> np.ndarray:
     """The standardised values of flat draw ``k``: the data, the non-detects at that draw's imputed values."""
     if "censored_z" not in fa.draws:
         return fa.y
-    y = fa.y.copy()
-    y[fa.censored] = fa.draws["censored_z"].reshape(-1, int(fa.censored.sum()))[k]
-    return y
+    return with_imputed(fa.y, fa.censored, fa.draws["censored_z"].reshape(-1, int(fa.censored.sum()))[k])
 
 
 def _censored_terms(fa, mean: np.ndarray, var: np.ndarray, logp: np.ndarray) -> None:

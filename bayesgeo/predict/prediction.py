@@ -27,12 +27,12 @@ from collections.abc import Sequence
 import numpy as np
 import xarray as xr
 
-from bayesgeo.gp.kriging import (CAUTION, KrigingBasis, block_moments, conditional_simulations, make_basis, mixture_summary,
-                                 summarise_samples)
+from bayesgeo.gp.kriging import (CAUTION, KrigingBasis, block_moments, conditional_simulations, make_basis,
+                                 mixture_summary, summarise_samples)
 from bayesgeo.common.csvtable import InputWarning
 from bayesgeo.data.targets import check_area_near_data, far_targets_warning
 from bayesgeo.explore.trend import design_at
-from bayesgeo.gp.engines import engine
+from bayesgeo.gp.engines import engine, with_imputed
 from bayesgeo.common.validate import InputError, check_positive_int
 
 __all__ = [
@@ -167,9 +167,8 @@ def basis_from_fit(fit, *, draws: int | None = None):
     # A fit with the nearest-neighbour likelihood (large n) predicts by nearest-neighbour kriging too.
     neighbours = engine(spec.approx).predict_neighbours(spec.neighbours)
     if "censored_value" in params:  # condition on each draw's imputed non-detects
-        cens = np.flatnonzero(np.asarray(fit.tree["observed_data"]["censored"].values, dtype=bool))
-        z = np.repeat(z[None, :], params.sizes["sample"], axis=0)
-        z[:, cens] = params["censored_value"].values
+        z = with_imputed(z, np.asarray(fit.tree["observed_data"]["censored"].values, dtype=bool),
+                         params["censored_value"].values)
     basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,

@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from bayesgeo.common.layout import EXPLORE_FILE, site_part
+from bayesgeo.data.nondetects import count_line
 
 __all__ = ["CAUTIONS", "AZIMUTHS", "TOLERANCE", "explore_folder"]
 
@@ -78,12 +79,9 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
     full = part
     cens = np.asarray(part["censored"].values, bool) if "censored" in part else np.zeros(part.sizes["obs"], bool)
     if cens.any():  # never substituted: the empirical statistics describe the detected values
-        limits = part["value"].values[cens]
-        limits = np.exp(limits) if part.attrs.get("transform") == "log" else limits  # as reported by the laboratory
-        notes.append(f"{int(cens.sum())} of {cens.size} values are non-detects (reporting limits {limits.min():.4g} to "
-                     f"{limits.max():.4g}): left out of the semivariograms, the correlogram and the quick fits, which "
-                     "describe the detected values only; no value was substituted for them, and the Bayesian fit "
-                     "models them as left-censored")
+        notes.append(f"{count_line(part)}: left out of the semivariograms, the correlogram and the quick fits, "
+                     "which describe the detected values only; no value was substituted for them, and the Bayesian "
+                     "fit models them as left-censored")
         part = part.isel(obs=np.flatnonzero(~cens)).drop_vars("censored")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", explore.FewPairsWarning)
