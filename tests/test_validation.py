@@ -12,7 +12,8 @@ from scipy import stats
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.gp.dense import covariance_matrix
-from bayesgeo.calibration.validation import SBCConfig, generated_layout, sbc_model, simulate_data
+from bayesgeo.calibration.config import QUICK, SBCConfig, generated_layout, with_settings
+from bayesgeo.calibration.simulation import sbc_model, simulate_data
 from bayesgeo.calibration.ranks import binomial_bounds, rank_of, rank_uniformity, sbc_summary
 
 
@@ -254,7 +255,7 @@ def test_intercept_ranks_uniform_under_the_exact_conditional_posterior():
     package's model integrates beta out, so its prior draws come from prior_draws, tested here too."""
     from scipy.linalg import cho_factor, cho_solve
 
-    from bayesgeo.calibration.validation import _truth_items, prior_draws
+    from bayesgeo.calibration.simulation import _truth_items, prior_draws
 
     ds = generated_layout(12, seed=7)
     model, blocks, spec = sbc_model(ds, SBCConfig(covariance="matern32"))
@@ -285,7 +286,6 @@ def test_too_few_draws_for_the_ranks_refused():
     """Each SBC rank is taken among L thinned draws (Talts et al. 2018, Algorithm 1), so chains x draws
     below L is bad input named by option, not an error deep inside the run."""
     from bayesgeo.common.validate import InputError
-    from bayesgeo.calibration.validation import QUICK, with_settings
 
     with pytest.raises(InputError, match=r"^draws: 20 draws per chain x 2 chains is fewer than the 49 .* --draws 25"):
         with_settings(QUICK, draws=20)
@@ -293,3 +293,66 @@ def test_too_few_draws_for_the_ranks_refused():
     with pytest.raises(InputError, match=r"--max-draws: expected at least --draws \(200\), got 100"):
         with_settings(QUICK, max_draws=100)
     assert with_settings(QUICK, max_draws=200).max_draws == 200
+
+
+def test_censoring_limit_is_the_typical_sets_quantile():
+    """The reporting limit of a censored SBC configuration is the median over pilot data sets of each set's
+    quantile: for standard normal sets it is the normal quantile (scipy.stats.norm.ppf) within sampling error."""
+    from scipy.stats import norm
+
+    from bayesgeo.calibration.censoring import censor, censoring_limit
+
+    rng = np.random.default_rng(0)
+    assert censoring_limit(lambda i: rng.normal(size=2000), 0.3) == pytest.approx(norm.ppf(0.3), abs=0.01)
+    y, mask = censor(np.array([-1.0, 0.5, -0.2, 2.0]), 0.0)
+    np.testing.assert_array_equal(mask, [True, False, True, False])
+    np.testing.assert_array_equal(y, [0.0, 0.5, 0.0, 2.0])
+
+
+def test_censored_replicate_model_keeps_the_prior_and_the_data():
+    """Each replicate of a censored configuration builds its own model (its non-detects differ), with the
+    template's standardisation and priors held: the same prior rates and constants, its values exactly the
+    replicate's, its latent values at the non-detects (SBC needs one prior for all replicates; Talts et al.
+    2018)."""
+    from bayesgeo.calibration.censoring import censor, censored_template
+
+    cfg = with_settings(QUICK, covariance="exponential", censored=0.3)
+    tpl = generated_layout(20, seed=4)
+    _, blocks, spec = sbc_model(tpl, cfg)
+    y = simulate_data({"practical_range_z": 0.5, "sd_z": 1.3, "nugget_sd_z": 0.4, "beta_z": np.array([0.7])}, blocks[0],
+                      spec, np.random.default_rng(1))
+    ys, mask = censor(y, np.quantile(y, 0.3))
+    model, rep_blocks, rep_spec = sbc_model(censored_template(tpl, ys, mask, spec.value_mean, spec.value_sd), cfg,
+                                            fixed=spec)
+    assert rep_spec.rates == spec.rates and rep_spec.priors == spec.priors
+    assert (rep_spec.value_mean, rep_spec.value_sd) == (spec.value_mean, spec.value_sd)
+    np.testing.assert_allclose(rep_blocks[0]["y"], ys, atol=1e-12)
+    assert rep_spec.censored == mask.sum() == len(model.coords["censored"])
+    assert "censored_gap_z" in model.named_vars and not any(v.name.startswith("sbc_y") for v in model.data_vars)
+
+
+def test_censored_settings_are_checked():
+    """A censored share outside (0, 0.6], or a censored several-site configuration, is refused in one line."""
+    from bayesgeo.common.validate import InputError
+
+    with pytest.raises(InputError, match="between 0 and 0.6"):
+        with_settings(QUICK, censored=0.7)
+    with pytest.raises(InputError, match="single-site models only"):
+        with_settings(QUICK, kind="hierarchical", censored=0.3)
+
+
+@pytest.mark.slow
+def test_censored_configuration_runs_and_records_its_non_detects():
+    """A small censored SBC run: each replicate fitted with its own non-detects (counted per replicate), ranks
+    within 0..L, and the same seed gives the same ranks (reproducibility, the package's own contract)."""
+    from bayesgeo.calibration.validation import simulation_based_calibration
+
+    cfg = with_settings(QUICK, covariance="exponential", censored=0.3)
+    tpl = generated_layout(20, seed=4)
+    res = simulation_based_calibration(tpl, cfg, replicates=2, seed=5)
+    assert res.attrs["model"] == "single/exponential/nugget/censored-30%"
+    counts = res["non_detects"].values  # the share varies between replicates with the prior draw (0 is possible)
+    assert counts.sum() > 0 and (counts <= 20).all()
+    assert ((res["rank"].values >= 0) & (res["rank"].values <= cfg.ranks_of)).all()
+    again = simulation_based_calibration(tpl, cfg, replicates=2, seed=5)
+    np.testing.assert_array_equal(res["rank"].values, again["rank"].values)

@@ -12,7 +12,7 @@ EXIT_MISCALIBRATED = 1
 
 def add_arguments(p) -> None:
     from bayesgeo.gp.covariance import FAMILIES
-    from bayesgeo.calibration.validation import KINDS
+    from bayesgeo.calibration.config import KINDS
     from bayesgeo.common.validate import float_option, int_option
 
     p.add_argument("--study", metavar="STUDY.toml", help="study file: its data locations, covariance and nugget")
@@ -30,6 +30,10 @@ def add_arguments(p) -> None:
     p.add_argument("--kind", action="append", choices=KINDS,
                    help="models to check, repeatable (default: quick: single; full: single with and without "
                         "nugget, nn, hierarchical)")
+    p.add_argument("--censored", type=float_option("censored"), default=None, metavar="SHARE",
+                   help="also check the left-censored model of the single-site checks: values below a fixed reporting "
+                        "limit, about this share of each data set (0-0.6), modelled as non-detects (each replicate "
+                        "then compiles its own model, about 20 s)")
     p.add_argument("--replicates", type=int_option("sbc_replicates"), default=None, help="simulated data sets per model (quick 25, full 100)")
     p.add_argument("--points", type=int_option("layout_points"), default=None, help="points of a generated layout per site (quick 28, full 60)")
     p.add_argument("--quick", action="store_true", help="CI mode: small layout, 25 replicates, short chains")
@@ -92,7 +96,8 @@ def run(args) -> int:
     from bayesgeo.data.points import sites_of
     from bayesgeo.common.outputs import claim, new_folder
     from bayesgeo.common.validate import InputError, check_positive_int
-    from bayesgeo.calibration.validation import (FULL, QUICK, generated_layout, simulation_based_calibration, with_settings)
+    from bayesgeo.calibration.config import FULL, QUICK, generated_layout, with_settings
+    from bayesgeo.calibration.validation import simulation_based_calibration
     from bayesgeo.calibration.ranks import sbc_summary
     from bayesgeo.calibration.report import CAUTIONS, validation_html
 
@@ -131,8 +136,10 @@ def run(args) -> int:
                 notes.append("nn check skipped for 'matern' (no closed form in the nn likelihood)")
                 continue
             for ng in nuggets:
-                configs.append(with_settings(base, kind=kind, covariance=fam, nu=nu if fam == "matern" else None,
-                                             nugget=ng))
+                cfg = with_settings(base, kind=kind, covariance=fam, nu=nu if fam == "matern" else None, nugget=ng)
+                configs.append(cfg)
+                if args.censored and kind == "single" and ng == nugget:
+                    configs.append(with_settings(cfg, censored=args.censored))
     if not configs:
         raise InputError("--kind/--covariance: nothing to check")
     t0 = time.perf_counter()

@@ -54,6 +54,7 @@ FLOAT_LIMITS: dict[str, tuple[float, float, bool, bool]] = {
     "any": (-math.inf, math.inf, True, True),
     "probability": (0.0, 1.0, True, True),
     "nu": (0.0, 50.0, True, False),
+    "censored": (0.0, 0.6, True, False),
 }
 
 

@@ -126,8 +126,13 @@ def check_model_inputs(ds: xr.Dataset, covariance: str, nu: float | None, nugget
 def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                  nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                  transform: str | None = None, priors: Priors | Mapping | None = None,
-                 approx: str = "auto", neighbours: int | None = None):
+                 approx: str = "auto", neighbours: int | None = None,
+                 _standardise: tuple[float, float] | None = None):
     """Check the data and settings and compute everything the model needs.
+
+    The private ``_standardise=(mean, sd)`` fixes the standardisation constants instead of taking them
+    from the values (simulation-based calibration builds each replicate's model with its template's
+    constants and resolved priors, so that the prior stays the same; :mod:`bayesgeo.calibration.validation`).
 
     Returns
     -------
@@ -156,7 +161,7 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
     extent, d = engine(approx).distances(xy, metric)  # d: None for nn, which never builds an n x n matrix
     if not extent > 0:
         raise InputError(f"{_source(ds)}: all points share one location")
-    vmean, vsd = float(np.mean(z)), float(np.std(z, ddof=1))
+    vmean, vsd = (float(np.mean(z)), float(np.std(z, ddof=1))) if _standardise is None else map(float, _standardise)
     if not vsd > 0:
         raise InputError(f"{_source(ds)}: the values do not vary; nothing to model")
     coef, *_ = np.linalg.lstsq(design.values, z, rcond=None)

@@ -11,7 +11,7 @@ divergences, mean step size and leapfrog steps, ranks. Example::
 import argparse, json, time, warnings
 import numpy as np
 from bayesgeo.calibration import ranks as RK
-from bayesgeo.calibration import validation as V
+from bayesgeo.calibration import config as C, simulation as S
 from bayesgeo.calibration.parallel import make_units
 from bayesgeo.fitting.sampling import CompiledModel, sample, compile_model
 from bayesgeo.convergence.diagnostics import check_convergence
@@ -26,19 +26,19 @@ ap.add_argument("--nugget", type=int, default=1); ap.add_argument("--out", requi
 ap.add_argument("--L", type=int, default=99); ap.add_argument("--adapt", default="low_rank")
 ap.add_argument("--rhat", type=float, default=1.02); ap.add_argument("--essfail", type=float, default=100)
 a = ap.parse_args()
-cfg = V.with_settings(V.FULL, chains=a.chains, tune=a.tune, draws=a.draws, ranks_of=a.L, nugget=bool(a.nugget),
+cfg = C.with_settings(C.FULL, chains=a.chains, tune=a.tune, draws=a.draws, ranks_of=a.L, nugget=bool(a.nugget),
                       target_accept=a.ta)
-tpl = V.generated_layout(a.points, seed=a.seed)
-model, blocks, spec = V.sbc_model(tpl, cfg)
+tpl = C.generated_layout(a.points, seed=a.seed)
+model, blocks, spec = S.sbc_model(tpl, cfg)
 with warnings.catch_warnings():
     warnings.filterwarnings("ignore")
-    prior = pm.sample_prior_predictive(draws=a.reps, model=model, random_seed=a.seed, var_names=V._sampled_names(model))
+    prior = pm.sample_prior_predictive(draws=a.reps, model=model, random_seed=a.seed, var_names=S._sampled_names(model))
 prior = prior["prior"].to_dataset() if hasattr(prior, "children") else prior.prior
 noise = np.random.default_rng(np.random.SeedSequence([a.seed, 1]))
 payloads, truths, ys = [], [], []
 for r in range(a.reps):
-    items, tb = V._truth_items(prior, r, spec, "single")
-    y = [V.simulate_data(t, b, spec, noise) for t, b in zip(tb, blocks)]
+    items, tb = S._truth_items(prior, r, spec, "single")
+    y = [S.simulate_data(t, b, spec, noise) for t, b in zip(tb, blocks)]
     payloads.append(r); truths.append(items); ys.append(y)
 units = make_units(payloads, a.seed)
 base = compile_model(model)

@@ -6,7 +6,7 @@ seed 7, 2 chains x (500 tune + 500 draws), L = 99) found the intercept's central
 covering the truth about 59% of the time. This script refits SBC replicates *exactly* as
 :func:`bayesgeo.calibration.validation.simulation_based_calibration` does (it calls that very function, chunk by
 chunk, with a wrapper around :func:`bayesgeo.fitting.sampling.sample` and
-:func:`bayesgeo.calibration.validation.simulate_data` that keeps the posterior draws and the simulated data), and
+:func:`bayesgeo.calibration.simulation.simulate_data` that keeps the posterior draws and the simulated data), and
 then compares, per replicate:
 
 * raw coverage: the SBC's own rule (the truth inside the central a-interval of ``np.quantile`` of
@@ -62,11 +62,12 @@ _LEVELS = (0.5, 0.9)
 
 
 def _setup(a):
-    from bayesgeo.calibration import validation as V
-    base = V.QUICK if a.mode == "quick" else V.FULL
-    cfg = V.with_settings(base, kind="single", covariance="matern32", nugget=True)
-    tpl = V.generated_layout(a.points or (28 if a.mode == "quick" else 60), seed=a.layout_seed)
-    _, blocks, spec = V.sbc_model(tpl, cfg)
+    from bayesgeo.calibration import config as C, simulation as SIM, validation as V
+
+    base = C.QUICK if a.mode == "quick" else C.FULL
+    cfg = C.with_settings(base, kind="single", covariance="matern32", nugget=True)
+    tpl = C.generated_layout(a.points or (28 if a.mode == "quick" else 60), seed=a.layout_seed)
+    _, blocks, spec = SIM.sbc_model(tpl, cfg)
     return V, cfg, tpl, blocks[0], spec
 
 
@@ -281,18 +282,20 @@ def _exact(a) -> None:
     from bayesgeo.gp.covariance import get_covariance
 
     V, cfg, tpl, block, spec = _setup(a)
-    model, _, _ = V.sbc_model(tpl, cfg)
+    from bayesgeo.calibration import simulation as SIM
+
+    model, _, _ = SIM.sbc_model(tpl, cfg)
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="The effect of Potentials", category=UserWarning)
         prior = pm.sample_prior_predictive(draws=a.replicates, model=model, random_seed=a.seed,
-                                           var_names=V._sampled_names(model))["prior"].to_dataset()
+                                           var_names=SIM._sampled_names(model))["prior"].to_dataset()
     rng = np.random.default_rng(np.random.SeedSequence([a.seed, 1]))
     cov, j, b = get_covariance(spec.covariance), list(spec.terms).index("1"), float(spec.priors.beta_sd)
     u = np.empty(a.replicates)
     for r in range(a.replicates):
-        _, tb = V._truth_items(prior, r, spec, "single")
+        _, tb = SIM._truth_items(prior, r, spec, "single")
         t = tb[0]
-        y = V.simulate_data(t, block, spec, rng)
+        y = SIM.simulate_data(t, block, spec, rng)
         m, vb, _ = _conditional(block["dist"], block["design"], y, cov, spec, t["practical_range_z"], t["sd_z"],
                                 t["nugget_sd_z"], b)
         u[r] = norm.cdf((t["beta_z"][j] - m[j]) / np.sqrt(vb[j, j]))
@@ -384,7 +387,7 @@ def _merge(a) -> None:
                                            [ref["verdicts"][i] for i in idx])))}
     cfg = json.loads(parts[0].attrs.get("config", "{}"))
     if not cfg:  # chunks saved before the attribute existed were all run with the default (full) settings
-        from bayesgeo.calibration.validation import FULL, with_settings
+        from bayesgeo.calibration.config import FULL, with_settings
 
         cfg = with_settings(FULL, kind="single", covariance="matern32", nugget=True).to_dict()
     summary["setting"] = {"mode": parts[0].attrs.get("mode", "full"), "points": int(parts[0].attrs.get("points", 60)),
@@ -418,7 +421,7 @@ def main() -> None:
     e.add_argument("--seed", type=int, default=9000)
     for q in (c, r, e):
         q.add_argument("--mode", choices=("full", "quick"), default="full",
-                       help="SBC settings: validation.FULL (default) or validation.QUICK")
+                       help="SBC settings: config.FULL (default) or config.QUICK")
         q.add_argument("--points", type=int, default=0, help="generated layout size (default 60 full, 28 quick)")
         q.add_argument("--layout-seed", type=int, default=7)
     r.add_argument("--chunks", type=int, default=30)

@@ -28,7 +28,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from bayesgeo.calibration.validation import FULL, generated_layout, simulation_based_calibration, with_settings
+from bayesgeo.calibration.config import FULL, generated_layout, with_settings
+from bayesgeo.calibration.validation import simulation_based_calibration
 from bayesgeo.calibration.ranks import sbc_summary
 
 
