@@ -68,7 +68,7 @@ def test_cli_reference_names_every_option():
 
 def test_study_reference_names_every_key():
     """docs/study_file.md documents every table and key of the schema."""
-    from bayesgeo.study.settings import SCHEMA
+    from bayesgeo.study.schema import SCHEMA
 
     text = (ROOT / "docs" / "study_file.md").read_text(encoding="utf-8")
     for table, keys in SCHEMA.items():

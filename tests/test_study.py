@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import pytest
 
-from bayesgeo.study.settings import SCHEMA, parse_study, read_study, study_line
+from bayesgeo.study.schema import SCHEMA
+from bayesgeo.study.settings import parse_study, read_study, study_line
 from bayesgeo.common.validate import InputError
 
 MINIMAL = """\
