@@ -37,7 +37,13 @@ def refuse_renamed(p, *old: str) -> None:
 
 def add_data_options(p) -> None:
     """Options naming the columns of a point-data CSV (shared by every command that reads one)."""
-    p.add_argument("data", metavar="DATA", help="CSV of point measurements (or a bayesgeo .nc point file)")
+    p.add_argument("data", metavar="DATA", help="point measurements: CSV, Excel (.xlsx), GeoPackage, shapefile, "
+                                              "GeoJSON (or a bayesgeo .nc point file)")
+    p.add_argument("--layer", metavar="NAME", help="worksheet of a workbook or layer of a GIS file")
+    p.add_argument("--crs", metavar="CRS", help="coordinate reference system of the coordinates, e.g. EPSG:32633 "
+                                                "(a GIS file's own is used when it has one)")
+    p.add_argument("--to-crs", metavar="CRS", help="project the points first: 'utm' (the UTM zone of the data) or a "
+                                                   "projected CRS; distances then in its unit (metres)")
     p.add_argument("--x", metavar="COL", help="x / easting / longitude column (detected if omitted)")
     p.add_argument("--y", metavar="COL", help="y / northing / latitude column (detected if omitted)")
     p.add_argument("--value", metavar="COL", help="measured value column; <X is a non-detect below reporting limit X")
@@ -63,7 +69,8 @@ def data_kwargs(args) -> dict:
                 detected=getattr(args, "detected", None), site=args.site,
                 only_site=args.only_site,
                 covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
-                distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"))
+                distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"),
+                **{k: getattr(args, k, None) for k in ("crs", "to_crs", "layer")})
 
 
 def read_data(args):

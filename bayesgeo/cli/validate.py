@@ -68,7 +68,8 @@ def _template(args):
         ns = SimpleNamespace(data=str(d["path"]), x=d.get("x"), y=d.get("y"), value=d.get("value"),
                              limit=d.get("limit"), detected=d.get("detected"), site=d.get("site"),
                              covariate=[], coords=d.get("coords", "auto"), duplicates=d.get("duplicates", "error"),
-                             units=d.get("units"), distance_units=d.get("distance_units"), only_site=d.get("only_site"))
+                             units=d.get("units"), distance_units=d.get("distance_units"), only_site=d.get("only_site"),
+                             crs=d.get("crs"), to_crs=d.get("to_crs"), layer=d.get("layer"))
         return read_data(ns), st
     if args.data:
         args.covariate = []

@@ -117,7 +117,7 @@ def demo_data(seed: int = DEMO_SEED) -> xr.Dataset:
         "source": "bayesgeo demo (simulated)",
         "x_column": "easting", "y_column": "northing", "value_column": "arsenic_mg_kg",
         "site_column": "parcel", "covariates": [], "coords": "xy", "distance_units": "m",
-        "value_units": "mg/kg", "crs": "invented local grid (m)", "duplicates": "error",
+        "value_units": "mg/kg", "crs": "", "crs_name": "invented local grid (m)", "duplicates": "error",
         "seed": seed, "action_level": DEMO_ACTION_LEVEL, "non_detects": int(censored.sum()),
         "truth": json.dumps({
             "scale": "log of mg/kg; practical range in m",

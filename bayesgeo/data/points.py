@@ -1,9 +1,10 @@
-"""Point-data intake: a CSV (or one of our own NetCDF files) into one ``xarray.Dataset``.
+"""Point-data intake: a CSV, Excel or GIS file (or one of our own NetCDF files) into one ``xarray.Dataset``.
 
 The result has one dimension, ``obs``, with coordinates ``x``, ``y`` (and ``site`` when a site
 column is given) and ``row`` (the 1-based spreadsheet row of each point in the input file, the
 header being row 1), the measured ``value`` and any covariates as data variables. Units, the
-coordinate system and the source file are kept in attributes. The input file is only read.
+coordinate reference system (WKT, :mod:`bayesgeo.data.crs`) and the source file are kept in attributes.
+The file formats are those of :mod:`bayesgeo.data.formats`. The input file is only read.
 """
 
 from __future__ import annotations
@@ -16,13 +17,16 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from bayesgeo.common.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, numeric_column, read_table
-from bayesgeo.common.geometry import continuous_longitudes, cross_distance
+from bayesgeo.common.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, numeric_column
+from bayesgeo.common.geometry import continuous_longitudes
 from bayesgeo.common.outputs import sha256_file
 from bayesgeo.common.validate import InputError, check_choice, format_rows
+from bayesgeo.data.crs import check_lonlat_ranges, coords_for, georeference, refuse_lonlat_lookalike, resolve_crs
+from bayesgeo.data.formats import read_source
 from bayesgeo.data.nondetects import censored_column, check_share
 
-__all__ = ["MIN_POINTS", "TRANSFORMS", "read_points", "points_dataset", "sites_of", "apply_transform"]
+__all__ = ["MIN_POINTS", "TRANSFORMS", "READ_KEYS", "FIT_DATA_ATTRS", "read_points", "read_settings", "points_dataset",
+           "sites_of", "apply_transform"]
 
 #: Value transforms: ``None`` (values as they are) or ``"log"`` (natural logarithm).
 TRANSFORMS = (None, "log")
@@ -32,7 +36,6 @@ MIN_POINTS = 10
 
 _X_NAMES = ("x", "easting", "east", "e", "lon", "longitude", "long")
 _Y_NAMES = ("y", "northing", "north", "n", "lat", "latitude")
-_LONLAT_NAMES = {"lon", "longitude", "long", "lat", "latitude"}
 COORDS = ("auto", "xy", "lonlat")
 DUPLICATES = ("error", "mean")
 SMALL_SITES = ("error", "keep")
@@ -73,13 +76,16 @@ def read_points(
     small_sites: str = "error",
     limit: str | None = None,
     detected: str | None = None,
+    to_crs: str | None = None,
+    layer: str | None = None,
 ) -> xr.Dataset:
     """Read point measurements into a ``Dataset`` along ``obs``.
 
     Parameters
     ----------
     path : str or Path
-        A CSV file with a header row, or a NetCDF file written by bayesgeo (``.nc``).
+        A CSV file with a header row, an Excel workbook (``.xlsx``), a GIS file of points (GeoPackage,
+        shapefile, GeoJSON, FlatGeobuf), or a NetCDF file written by bayesgeo (``.nc``).
     x, y : str, optional
         Location columns. Detected when omitted (x/easting/lon, y/northing/lat).
     value : str, optional
@@ -105,7 +111,14 @@ def read_points(
         Units of planar coordinates (e.g. ``"m"``); with ``coords="lonlat"`` distances are in km
         and this must be omitted or ``"km"``.
     crs : str, optional
-        Coordinate reference system label, recorded in attributes.
+        Coordinate reference system of the coordinates: an EPSG code (``"EPSG:32633"``) or WKT. A GIS file's
+        own CRS is used when it declares one (a different ``crs`` is refused). A geographic CRS makes
+        the coordinates lon/lat, a projected one planar in its unit.
+    to_crs : str, optional
+        Project the points first: ``"utm"`` (the UTM zone of the data's centre) or a projected CRS
+        (pyproj); distances, ranges and cells are then in its unit (metres). Recorded in attributes.
+    layer : str, optional
+        Worksheet of a workbook or layer of a GIS file (default: the first sheet; the only layer).
     only_site : str, optional
         Keep the rows of this one site (needs ``site``); checks then apply to that site alone.
     small_sites : {"error", "keep"}
@@ -140,13 +153,18 @@ def read_points(
         raise InputError(f"{src}: file not found")
     if path.suffix.lower() in (".nc", ".nc4", ".netcdf"):
         return _read_netcdf(path)
-    table = read_table(path)
+    source = read_source(path, layer=layer)
+    table = source.table
     header, body = table.header, table.rows
     if not body:
         raise InputError(f"{src}: no data rows below the header")
 
+    if source.xy and not (x or y):
+        x, y = source.xy  # the point geometry of a GIS file
     xcol = _require(header, x, "--x", src) if x else _detect(header, _X_NAMES, "x (easting/longitude)", "--x", src)
     ycol = _require(header, y, "--y", src) if y else _detect(header, _Y_NAMES, "y (northing/latitude)", "--y", src)
+    crs_obj = resolve_crs(source.crs, crs, src)
+    coords = coords_for(crs_obj, coords, src)
     sitecol = _require(header, site, "--site", src) if site else None
     covs = [_require(header, c, "--covariate", src) for c in covariates]
     vcol = _require(header, value, "--value", src) if value else guess_value(table, {xcol, ycol, sitecol, *covs})
@@ -161,12 +179,15 @@ def read_points(
     if lonlat and distance_units not in (None, "km"):
         raise InputError(f"distance_units: great-circle distances (--coords lonlat) are in km, got {distance_units!r}")
     if coords == "auto":  # on every row of the file: degrees or not is a property of the file, not of a site
-        _refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
+        refuse_lonlat_lookalike(numeric[xcol], numeric[ycol], xcol, ycol, src)
     frame = ""
     if lonlat:
-        _check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
+        check_lonlat_ranges(numeric[xcol], numeric[ycol], file_rows, xcol, ycol, src)
         numeric[xcol] = continuous_longitudes(numeric[xcol])
         frame = "0..360" if numeric[xcol].max() > 180.0 else "-180..180"
+    numeric[xcol], numeric[ycol], lonlat, distance_units, crs_info = georeference(
+        numeric[xcol], numeric[ycol], crs=crs_obj, to_crs=to_crs, lonlat=lonlat, distance_units=distance_units,
+        src=src)
 
     sites = None
     if sitecol is not None:
@@ -194,11 +215,13 @@ def read_points(
         "site_column": sitecol or "",
         "covariates": list(covs),
         "coords": "lonlat" if lonlat else "xy",
-        "distance_units": "km" if lonlat else (distance_units or "coordinate units"),
+        "distance_units": distance_units,
         "value_units": units or "",
-        "crs": crs or ("EPSG:4326 (lon/lat)" if lonlat else ""),
+        **crs_info,
         "duplicates": duplicates,
     }
+    if layer is not None:
+        attrs["layer"] = layer
     if lonlat:
         attrs["longitude_convention"] = frame
     if censored.any():
@@ -211,6 +234,22 @@ def read_points(
         censored=censored if censored.any() else None,
     )
     return _finish(ds, src, duplicates, small_sites)
+
+
+#: The attributes of the data a fit records (``settings["data"]``): where the data came from and their CRS.
+FIT_DATA_ATTRS = ("source", "source_sha256", "coords", "crs", "crs_name", "x_column", "y_column", "value_column",
+                  "site_column")
+
+#: The keyword arguments of :func:`read_points` that say how to read a data file: the command line, study
+#: files and the settings stored in a run name them alike.
+READ_KEYS = ("x", "y", "value", "limit", "detected", "site", "covariates", "coords", "duplicates", "units",
+             "distance_units", "crs", "to_crs", "layer")
+
+
+def read_settings(settings) -> dict:
+    """The :data:`READ_KEYS` of a settings mapping that are given (not None), as keyword arguments of
+    :func:`read_points`."""
+    return {k: settings[k] for k in READ_KEYS if settings.get(k) is not None}
 
 
 def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None, censored=None) -> xr.Dataset:
@@ -320,46 +359,6 @@ def _check_spread(numeric: dict, rows: list[int], src: str) -> None:
                 f"{src}: column {col!r} varies by only {spread:g} (rows {format_rows(rows)}); below "
                 f"{1.0 / MAX_MAGNITUDE:g} powers of the differences underflow in double precision; rescale the "
                 "column (other units)")
-
-
-def _refuse_lonlat_lookalike(xv, yv, xcol, ycol, src) -> None:
-    """Under ``--coords auto``, refuse coordinates that could be degrees.
-
-    Values alone cannot tell a 20 x 10 degree region from a 20 x 10 m plot, and treating degrees
-    as planar units silently gives wrong distances (a degree of longitude shrinks with latitude).
-    So coordinates that all lie in the degree box (|lat| <= 90 and lon in [-180, 180] or
-    [0, 360]) need ``--coords lonlat`` or ``--coords xy``, whatever their span or column names.
-    """
-    in_lat = np.all(np.abs(yv) <= 90.0)
-    in_lon = np.all(np.abs(xv) <= 180.0) or np.all((xv >= 0.0) & (xv <= 360.0))
-    if not (in_lat and in_lon):
-        return
-    lon = continuous_longitudes(xv)
-    ymid = 0.5 * (yv.min() + yv.max())
-    xmid = 0.5 * (lon.min() + lon.max())
-    width = float(cross_distance([[lon.min(), ymid]], [[lon.max(), ymid]], "greatcircle")[0, 0])
-    height = float(cross_distance([[xmid, yv.min()]], [[xmid, yv.max()]], "greatcircle")[0, 0])
-    raise InputError(
-        f"{src}: columns {xcol!r}, {ycol!r} look like longitude/latitude (x in [{xv.min():g}, {xv.max():g}], "
-        f"y in [{yv.min():g}, {yv.max():g}]: as degrees about {width:,.0f} x {height:,.0f} km, as planar units "
-        f"a {np.ptp(xv):g} x {np.ptp(yv):g} site); pass --coords lonlat for great-circle distances in km, "
-        "or --coords xy if they are planar"
-    )
-
-
-def _check_lonlat_ranges(xv, yv, rows, xcol, ycol, src) -> None:
-    bad = rows[(xv < -180.0) | (xv > 360.0)]
-    if bad.size:
-        raise InputError(
-            f"{src}: column {xcol!r} is outside [-180, 360] degrees at rows {format_rows(bad)} "
-            "(--coords lonlat expects longitude in degrees, written -180..180 or 0..360)"
-        )
-    bad = rows[np.abs(yv) > 90.0]
-    if bad.size:
-        raise InputError(
-            f"{src}: column {ycol!r} is outside [-90, 90] degrees at rows {format_rows(bad)} "
-            "(--coords lonlat expects latitude in degrees)"
-        )
 
 
 def _finish(ds: xr.Dataset, src: str, duplicates: str, small_sites: str = "error") -> xr.Dataset:

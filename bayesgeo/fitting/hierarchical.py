@@ -70,6 +70,7 @@ from bayesgeo.common.io import plain_attr, to_jsonable
 from bayesgeo.fitting.priors import Priors
 from bayesgeo.fitting.hier_outputs import site_cautions
 from bayesgeo.fitting.site_inputs import SiteSpec, site_inputs, site_spec
+from bayesgeo.data.points import FIT_DATA_ATTRS
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 from bayesgeo.gp.engines import engine
 
@@ -349,8 +350,7 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
     settings = {
         "format": "bayesgeo several-site fit", "format_version": 1, "model": spec.to_dict(),
         "sampler": sampler_settings, "versions": _versions(),
-        "data": {k: plain_attr(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs", "x_column",
-                                                           "y_column", "value_column", "site_column")},
+        "data": {k: plain_attr(ds.attrs.get(k, "")) for k in FIT_DATA_ATTRS},
     }
     approximation = _site_approximation(spec, post, constant)
     tree.attrs = {"title": f"bayesgeo several-site Gaussian-process fit ({spec.pooling} pooling)",

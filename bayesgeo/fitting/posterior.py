@@ -27,7 +27,7 @@ import numpy as np
 import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
-from bayesgeo.data.points import sites_of
+from bayesgeo.data.points import FIT_DATA_ATTRS, sites_of
 from bayesgeo.common.io import plain_attr, to_jsonable
 from bayesgeo.fitting.model import FitSpec, build_model_and_inputs, censored_index
 from bayesgeo.fitting.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks_line, report_fields, sample_fit
@@ -288,10 +288,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
     settings = {
         "format": "bayesgeo single-site fit", "format_version": _FORMAT_VERSION,
         "model": spec.to_dict(), "sampler": sampler_settings, "versions": _versions(),
-        "data": {**{k: plain_attr(ds.attrs.get(k, "")) for k in ("source", "source_sha256", "coords", "crs",
-                                                              "x_column", "y_column", "value_column",
-                                                              "site_column")},
-                 "site": sites_of(ds)[0]},
+        "data": {**{k: plain_attr(ds.attrs.get(k, "")) for k in FIT_DATA_ATTRS}, "site": sites_of(ds)[0]},
     }
     groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
               "/observed_data": observed, "/constant_data": constant}

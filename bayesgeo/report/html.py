@@ -109,13 +109,10 @@ def section(anchor: str, title: str, body: str) -> str:
 
 
 def run_data(ctx: Ctx):
-    from bayesgeo.data.points import read_points
+    from bayesgeo.data.points import read_points, read_settings
 
     d = ctx.settings.get("data", {})
     path = Path(d["path"])
     if not path.is_file() and (ctx.root / RUN_INPUTS / path.name).is_file():
         path = ctx.root / RUN_INPUTS / path.name  # the run's copy (the original may have been a scratch file)
-    return read_points(path, x=d.get("x"), y=d.get("y"), value=d.get("value"), site=d.get("site"),
-                       covariates=d.get("covariates") or [], coords=d.get("coords", "auto"),
-                       duplicates=d.get("duplicates", "error"), units=d.get("units"),
-                       distance_units=d.get("distance_units"))
+    return read_points(path, **read_settings(d))

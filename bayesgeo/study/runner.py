@@ -75,6 +75,7 @@ def _data_call(study: Study) -> dict:
     return {"data": d["path"], "x": d["x"], "y": d["y"], "value": d["value"], "limit": d["limit"],
             "detected": d["detected"], "site": d["site"], "units": d["units"],
             "distance_units": d["distance_units"], "coords": d["coords"], "duplicates": d["duplicates"],
+            "crs": d["crs"], "to_crs": d["to_crs"], "layer": d["layer"],
             "covariates": list(study.settings["model"]["covariates"])}
 
 
@@ -82,7 +83,8 @@ def _data_argv(kw: dict) -> list[str]:
     """The data options of the call ``kw`` on a command line."""
     argv = [str(kw["data"])]
     for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("limit", "--limit"), ("detected", "--detected"),
-                     ("site", "--site"), ("units", "--units"), ("distance_units", "--distance-units")):
+                     ("site", "--site"), ("units", "--units"), ("distance_units", "--distance-units"),
+                     ("crs", "--crs"), ("to_crs", "--to-crs"), ("layer", "--layer")):
         if kw[key]:
             argv += [opt, kw[key]]
     argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
@@ -112,13 +114,10 @@ def study_sites(study: Study) -> dict[str, "object"]:
     """Site label -> (n, 2) coordinates of that site's points, in file order (reads the study's data)."""
     import numpy as np
 
-    from bayesgeo.data.points import read_points, sites_of
+    from bayesgeo.data.points import read_points, read_settings, sites_of
 
     d = study.settings["data"]
-    ds = read_points(d["path"], x=d["x"], y=d["y"], value=d["value"], limit=d["limit"], detected=d["detected"],
-                     site=d["site"], covariates=d["covariates"],
-                     coords=d["coords"], duplicates=d["duplicates"], units=d["units"],
-                     distance_units=d["distance_units"])
+    ds = read_points(d["path"], **read_settings(d))
     xy = np.column_stack([ds["x"].values, ds["y"].values])
     labels = ds["site"].values if "site" in ds.coords else np.array([""] * len(xy))
     return {lb: xy[labels == lb] for lb in sites_of(ds)}
