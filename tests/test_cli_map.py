@@ -23,7 +23,7 @@ from bayesgeo.fitting.model import model_inputs
 from bayesgeo.fitting.posterior import derive
 
 
-def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=250, seed=1):
+def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=250, seed=1, data=None):
     ds = demo_data()
     ds = ds.isel(obs=np.flatnonzero(ds["site"].values == "mill-pond"))
     ds = ds.drop_vars("site")
@@ -55,7 +55,7 @@ def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=2
                         "design": (("obs", "term"), design.values)}, coords={"term": list(spec.terms)})
     tree = xr.DataTree.from_dict({"posterior": derive(post, spec), "sample_stats": stats, "observed_data": obs,
                                   "constant_data": const})
-    tree.attrs["settings"] = json.dumps({"model": spec.to_dict()})
+    tree.attrs["settings"] = json.dumps({"model": spec.to_dict(), **({"data": data} if data else {})})
     write_fit_folder(tree, path)
     return path, ds
 

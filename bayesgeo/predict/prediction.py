@@ -369,7 +369,7 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
         "Conventions": "CF-1.8",
         "draws": basis.n_draws,
         "covariance": basis.covariance.name,
-        "transform": basis.transform or "none",
+        "value_transform": basis.transform or "none",  # not "transform": GDAL and rioxarray read that as affine
         "nugget_in_prediction": int(bool(include_nugget)),
         "target_kind": kind,
         "cells_predicted": int(idx.size),

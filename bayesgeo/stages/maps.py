@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from bayesgeo.common.layout import prediction_names
+from bayesgeo.predict.cf import georeferenced
 from bayesgeo.common.validate import INT_LIMITS, InputError, check_positive, check_positive_int
 
 __all__ = ["DEFAULT_DRAWS", "map_fit", "map_draws"]
@@ -162,8 +163,11 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     })
     if block is not None:
         pred.attrs["area_average"] = json.dumps(block)
+    data = fit.settings.get("data") or {}
+    pred.attrs["crs_name"] = str(data.get("crs_name", ""))
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
-        pred.to_netcdf(tmp, engine="netcdf4")
+        georeferenced(pred, crs_wkt=str(data.get("crs", "")), coords="lonlat" if spec.metric == "greatcircle" else "xy",
+                      distance_units=spec.distance_units).to_netcdf(tmp, engine="netcdf4")
     maps = []
     if figures:
         from bayesgeo.predict.figures import write_map_figures

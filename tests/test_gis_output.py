@@ -1,0 +1,102 @@
+"""Prediction files as georeferenced rasters: what GDAL and rioxarray read from them.
+
+Sources: GDAL's NetCDF driver (through rasterio) and rioxarray, the readers of QGIS and of Python GIS
+work, read the files bayesgeo writes; the CF conventions 1.8 (sections 4 and 5.6: coordinate
+``standard_name``/``axis``, grid-mapping variables with ``crs_wkt``); pyproj's EPSG database for the CRS;
+north-up rows (first row northernmost) are common practice for rasters.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import xarray as xr
+
+rasterio = pytest.importorskip("rasterio")
+pyproj = pytest.importorskip("pyproj")
+
+from bayesgeo.predict.cf import georeferenced  # noqa: E402
+
+
+def _grid_predictions(x0=500_000.0, y0=4_100_000.0, cell=25.0, nx=6, ny=4):
+    """A prediction-like grid in bayesgeo's in-memory layout (y ascending, as the map stage makes it)."""
+    x = x0 + cell * (np.arange(nx) + 0.5)
+    y = y0 + cell * (np.arange(ny) + 0.5)
+    mean = np.add.outer(np.arange(ny) * 10.0, np.arange(nx))  # row j (south to north) holds 10 j + i
+    ds = xr.Dataset({"mean": (("y", "x"), mean, {"units": "mg/kg"}),
+                     "p_exceed": (("threshold", "y", "x"), mean[None] / 100.0, {"units": "1"})},
+                    coords={"x": x, "y": y, "threshold": [50.0]})
+    ds.attrs.update(Conventions="CF-1.8", value_transform="log")
+    return ds, (x0, y0, cell, nx, ny)
+
+
+def test_gdal_reads_the_crs_corners_and_north_up_rows(tmp_path):
+    """GDAL (rasterio, NETCDF:file:variable) finds the CRS EPSG:32633, the grid's outer corners (cell centres
+    -+ half a cell) and a north-up geotransform, with the northernmost row first."""
+    ds, (x0, y0, cell, nx, ny) = _grid_predictions()
+    crs = pyproj.CRS.from_epsg(32633)
+    path = tmp_path / "predictions.nc"
+    georeferenced(ds, crs_wkt=crs.to_wkt(), coords="xy", distance_units="m").to_netcdf(path)
+    with rasterio.open(f"NETCDF:{path}:mean") as src:
+        assert pyproj.CRS.from_user_input(src.crs.to_wkt()).equals(crs)
+        left, bottom, right, top = src.bounds
+        assert (left, bottom, right, top) == pytest.approx((x0, y0, x0 + nx * cell, y0 + ny * cell))
+        assert src.transform.e < 0 and src.transform.a == pytest.approx(cell)
+        band = src.read(1)
+    np.testing.assert_array_equal(band[0], ds["mean"].values[-1])  # first row = northernmost
+
+
+def test_rioxarray_reads_crs_and_transform(tmp_path):
+    """xarray + rioxarray (``decode_coords="all"``, the ``.rio`` accessor) find the CRS and the affine transform (no
+    attribute named ``transform`` gets in their way)."""
+    rioxarray = pytest.importorskip("rioxarray")
+    ds, (x0, y0, cell, nx, ny) = _grid_predictions()
+    path = tmp_path / "predictions.nc"
+    georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m").to_netcdf(path)
+    assert rioxarray.__version__
+    with xr.open_dataset(path, decode_coords="all") as opened:  # rioxarray's own reading of the CF attributes
+        da = opened["mean"]
+        assert da.rio.crs.to_epsg() == 32633
+        t = da.rio.transform()
+        assert (t.c, t.f, t.a, t.e) == pytest.approx((x0, y0 + ny * cell, cell, -cell))
+
+
+def test_cf_attributes_of_coordinates_and_grid_mapping():
+    """CF 1.8: x/y carry standard_name, units and axis; the grid-mapping variable carries crs_wkt and the data
+    variables name it; lon/lat grids say longitude/latitude in degrees_east/north; without a CRS no grid
+    mapping is invented."""
+    ds, _ = _grid_predictions()
+    out = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m")
+    assert out["x"].attrs["standard_name"] == "projection_x_coordinate" and out["x"].attrs["axis"] == "X"
+    assert out["y"].attrs["units"] == "m" and out["y"].attrs["axis"] == "Y"
+    assert out["crs"].attrs["grid_mapping_name"] == "transverse_mercator" and "crs_wkt" in out["crs"].attrs
+    assert out["mean"].attrs["grid_mapping"] == "crs" and out["p_exceed"].attrs["grid_mapping"] == "crs"
+    assert "transform" not in out.attrs
+    ll = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(4326).to_wkt(), coords="lonlat")
+    assert ll["x"].attrs["units"] == "degrees_east" and ll["y"].attrs["standard_name"] == "latitude"
+    bare = georeferenced(ds, coords="xy", distance_units="coordinate units")
+    assert "crs" not in bare and "units" not in bare["x"].attrs and "grid_mapping" not in bare["mean"].attrs
+
+
+def test_map_command_writes_a_georeferenced_grid(tmp_path, capsys):
+    """``bayesgeo map`` on a fit whose data were in EPSG:32632 (the invented demo parcel's coordinates read as
+    UTM zone 32N) writes predictions.nc that GDAL opens with that CRS, 20 m cells, north-up, and corners on the
+    grid of cell centres the command reports."""
+    from test_cli_map import _fit_folder
+
+    from bayesgeo.cli import main
+
+    crs = pyproj.CRS.from_epsg(32632)
+    folder, _ = _fit_folder(tmp_path / "fit", data={"crs": crs.to_wkt(), "crs_name": "EPSG:32632 (WGS 84 / UTM zone "
+                                                                                      "32N)"})
+    assert main(["map", str(folder), "--cell", "20", "--draws", "10", "--no-figures", "--json"]) == 0
+    capsys.readouterr()
+    path = folder / "predictions.nc"
+    with xr.open_dataset(path) as pred:
+        x, y = pred["x"].values, pred["y"].values
+        assert pred.attrs["crs_name"].startswith("EPSG:32632") and "transform" not in pred.attrs
+    assert y[0] > y[-1]
+    with rasterio.open(f"NETCDF:{path}:mean") as src:
+        assert src.crs.to_epsg() == 32632
+        assert src.transform.a == pytest.approx(20.0) and src.transform.e == pytest.approx(-20.0)
+        assert (src.bounds.left, src.bounds.top) == pytest.approx((x.min() - 10.0, y.max() + 10.0))
