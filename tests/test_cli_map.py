@@ -90,8 +90,9 @@ def test_map_json_grid_and_area(tmp_path, capsys):
     pe = pred["p_exceed"].values
     assert np.all(pe[0] <= pe[1] + 1e-12)  # P(> 40) <= P(> 20)
     pred.close()
-    assert sorted(p.name for p in (folder / "maps").iterdir()) == ["mean.png", "p_exceed_20.png", "p_exceed_40.png",
-                                                                  "sd.png"]
+    assert sorted(p.name for p in (folder / "maps").iterdir()) == [
+        "map.gpkg", "mean.png", "mean.tif", "p_exceed_20.png", "p_exceed_20.tif", "p_exceed_40.png", "p_exceed_40.tif",
+        "q05.tif", "q50.tif", "q95.tif", "sd.png", "sd.tif"]
     # existing outputs are refused without --overwrite (exit 2, input error)
     assert main(["map", str(folder), "--draws", "5", "--json"]) == 2
     assert "--overwrite" in capsys.readouterr().err

@@ -24,7 +24,7 @@ def _grid_predictions(x0=500_000.0, y0=4_100_000.0, cell=25.0, nx=6, ny=4):
     y = y0 + cell * (np.arange(ny) + 0.5)
     mean = np.add.outer(np.arange(ny) * 10.0, np.arange(nx))  # row j (south to north) holds 10 j + i
     ds = xr.Dataset({"mean": (("y", "x"), mean, {"units": "mg/kg"}),
-                     "p_exceed": (("threshold", "y", "x"), mean[None] / 100.0, {"units": "1"})},
+                     "p_exceed": (("threshold", "y", "x"), mean[None] / mean.max(), {"units": "1"})},
                     coords={"x": x, "y": y, "threshold": [50.0]})
     ds.attrs.update(Conventions="CF-1.8", value_transform="log")
     return ds, (x0, y0, cell, nx, ny)
@@ -100,3 +100,61 @@ def test_map_command_writes_a_georeferenced_grid(tmp_path, capsys):
         assert src.crs.to_epsg() == 32632
         assert src.transform.a == pytest.approx(20.0) and src.transform.e == pytest.approx(-20.0)
         assert (src.bounds.left, src.bounds.top) == pytest.approx((x.min() - 10.0, y.max() + 10.0))
+
+
+def test_geotiffs_carry_the_grid_and_its_crs(tmp_path):
+    """Each GeoTIFF opened with rasterio has the CRS, the affine transform GDAL reads from the NetCDF file, and
+    the predicted values row for row (north-up); thresholds get one file each."""
+    from bayesgeo.predict.gis_export import write_geotiffs
+
+    ds, _ = _grid_predictions()
+    for name in ("sd", "q05", "q50", "q95"):
+        ds[name] = ds["mean"] + 1.0
+    geo = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m")
+    geo.to_netcdf(tmp_path / "p.nc")
+    written = write_geotiffs(geo, tmp_path)
+    assert [p.name for p in written] == ["mean.tif", "sd.tif", "q05.tif", "q50.tif", "q95.tif", "p_exceed_50.tif"]
+    with rasterio.open(f"NETCDF:{tmp_path / 'p.nc'}:mean") as nc, rasterio.open(tmp_path / "mean.tif") as tif:
+        assert tif.crs.to_epsg() == 32633 and tif.transform == nc.transform
+        np.testing.assert_array_equal(tif.read(1), nc.read(1).astype(np.float32))
+    with rasterio.open(tmp_path / "p_exceed_50.tif") as tif:
+        np.testing.assert_allclose(tif.read(1), ds["p_exceed"].values[0, ::-1], rtol=1e-6)
+
+
+def test_exceedance_polygons_cover_exactly_the_cells_above_each_level(tmp_path):
+    """The polygons of P(exceed) >= 0.5 and >= 0.9 are the union of those cells: their shapely area equals the
+    number of cells times the cell area, every cell centre above the level lies inside and every other one
+    outside; lon/lat areas are pyproj's geodesic areas (Geod.geometry_area_perimeter, Karney 2013). The
+    GeoPackage (read back with pyogrio) holds the polygons and the samples with their non-detect flags."""
+    import shapely
+    from pyogrio.raw import read
+
+    from bayesgeo.predict.gis_export import exceedance_polygons, write_geopackage
+
+    ds, (x0, y0, cell, nx, ny) = _grid_predictions()
+    geo = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m")
+    prob = geo["p_exceed"].values[0]
+    xx, yy = np.meshgrid(geo["x"].values, geo["y"].values)
+    polys = exceedance_polygons(geo)
+    assert [p["cells"] for p in polys] == [int((prob >= 0.5).sum()), int((prob >= 0.9).sum())] and polys[1]["cells"] > 0
+    for p in polys:
+        above = prob >= p["level"]
+        assert p["cells"] == above.sum() and p["area"] == pytest.approx(above.sum() * cell**2)
+        assert p["geometry"].area == pytest.approx(p["area"]) and p["area_units"] == "m2"
+        inside = shapely.contains_xy(p["geometry"], xx, yy)
+        np.testing.assert_array_equal(inside, above)
+    samples = xr.Dataset({"x": ("obs", [x0 + 10, x0 + 60]), "y": ("obs", [y0 + 5, y0 + 80]),
+                          "value": ("obs", [1.5, 0.5]), "censored": ("obs", [False, True])},
+                         coords={"row": ("obs", [2, 3])})
+    path = write_geopackage(tmp_path / "map.gpkg", geo, samples=samples)
+    meta, _, geom, fields = read(path, layer="samples")
+    np.testing.assert_allclose(shapely.get_x(shapely.from_wkb(geom)), samples["x"].values)
+    assert list(fields[list(meta["fields"]).index("non_detect")]) == [0, 1]
+    meta, _, geom, fields = read(path, layer="exceedance")
+    assert pyproj.CRS.from_user_input(meta["crs"]).to_epsg() == 32633 and len(geom) == 2
+    lon = np.array([10.0, 10.01, 10.02]); lat = np.array([45.0, 45.01])
+    ll = xr.Dataset({"p_exceed": (("threshold", "y", "x"), np.ones((1, 2, 3)))},
+                    coords={"x": lon, "y": lat, "threshold": [1.0]})
+    p = exceedance_polygons(georeferenced(ll, crs_wkt=pyproj.CRS.from_epsg(4326).to_wkt(), coords="lonlat"))[0]
+    box = shapely.box(9.995, 44.995, 10.025, 45.015)
+    assert p["area"] == pytest.approx(abs(pyproj.Geod(ellps="WGS84").geometry_area_perimeter(box)[0]), rel=1e-9)

@@ -50,7 +50,7 @@ def add_arguments(p) -> None:
     p.add_argument("--overwrite", action="store_true", help="replace existing predictions.nc and maps/")
     p.add_argument("--allow-unconverged", action="store_true",
                    help="map a posterior that failed the convergence check (outputs are marked NOT CONVERGED)")
-    p.add_argument("--no-figures", action="store_true", help="write predictions.nc only")
+    p.add_argument("--no-figures", action="store_true", help="write predictions.nc only (no figures, GeoTIFFs or GeoPackage)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
 
 

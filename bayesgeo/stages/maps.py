@@ -165,9 +165,10 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         pred.attrs["area_average"] = json.dumps(block)
     data = fit.settings.get("data") or {}
     pred.attrs["crs_name"] = str(data.get("crs_name", ""))
+    georef = georeferenced(pred, crs_wkt=str(data.get("crs", "")), distance_units=spec.distance_units,
+                           coords="lonlat" if spec.metric == "greatcircle" else "xy")
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
-        georeferenced(pred, crs_wkt=str(data.get("crs", "")), coords="lonlat" if spec.metric == "greatcircle" else "xy",
-                      distance_units=spec.distance_units).to_netcdf(tmp, engine="netcdf4")
+        georef.to_netcdf(tmp, engine="netcdf4")
     maps = []
     if figures:
         from bayesgeo.predict.figures import write_map_figures
@@ -175,6 +176,8 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         with add_to_folder(folder, out_maps.name, overwrite=overwrite, kind="dir") as tmp:
             written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),
                                         not_converged=not_converged)
+            if targets.attrs["kind"] == "grid":
+                written += _gis_files(georef, fit, tmp)
         maps = [str(out_maps / p.name) for p in written]
 
     result = {
@@ -192,6 +195,21 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     if block is not None:
         result["area"] = block
     return 0, result
+
+
+def _gis_files(georef, fit, folder: Path) -> list[Path]:
+    """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples (bayesgeo.predict.gis_export)."""
+    import xarray as xr
+
+    from bayesgeo.predict.gis_export import write_geopackage, write_geotiffs
+
+    obs, const = fit.tree["observed_data"].to_dataset(), fit.tree["constant_data"].to_dataset()
+    samples = xr.Dataset({"x": const["x"], "y": const["y"], "value": obs["value"],
+                          **({"censored": obs["censored"]} if "censored" in obs else {})}, coords=obs.coords)
+    written = write_geotiffs(georef, folder)
+    if georef.sizes.get("threshold", 0):
+        written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples))
+    return written
 
 
 def _refuse_non_finite(pred, inside, folder) -> None:

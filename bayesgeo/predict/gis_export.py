@@ -1,0 +1,158 @@
+"""Map results a GIS takes directly: GeoTIFF rasters and a GeoPackage of samples and exceedance areas.
+
+From the georeferenced predictions of a grid (:func:`bayesgeo.predict.cf.georeferenced`):
+
+* :func:`write_geotiffs`: one single-band GeoTIFF per map statistic (``mean``, ``sd``, ``q05``, ``q50``,
+  ``q95``, and ``p_exceed_<threshold>`` per threshold), float32, north-up, NaN as no-data, the fit's CRS
+  (rasterio / GDAL);
+* :func:`write_geopackage`: layer ``exceedance``, one (multi)polygon per threshold and probability
+  level: the union of the grid cells where the posterior predictive probability of exceeding the
+  threshold is at least the level (default 0.5 and 0.9), with its area; layer ``samples``, the sample
+  points with their values and, where present, non-detect flags (pyogrio / GDAL).
+
+The polygons follow cell edges (each cell is the square around its centre), so their area is a whole
+number of cells: in the CRS's units squared for planar data, geodesic m^2 on WGS 84 (pyproj) for lon/lat.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+__all__ = ["LEVELS", "STATISTICS", "write_geotiffs", "exceedance_polygons", "write_geopackage"]
+
+#: Probability levels of the exceedance polygons.
+LEVELS = (0.5, 0.9)
+#: Map statistics written as GeoTIFF (besides one exceedance probability per threshold).
+STATISTICS = ("mean", "sd", "q05", "q50", "q95")
+
+
+def _grid_transform(pred: xr.Dataset):
+    """The affine transform of a north-up grid of cell centres ``x`` (ascending), ``y`` (descending)."""
+    from rasterio.transform import from_origin
+
+    x, y = pred["x"].values, pred["y"].values
+    dx = float(x[1] - x[0]) if x.size > 1 else float(pred.attrs.get("cell", 1.0))
+    dy = float(y[0] - y[1]) if y.size > 1 else dx
+    if not (dx > 0 and dy > 0):
+        raise ValueError("the grid must be north-up with x ascending (bayesgeo.predict.cf.georeferenced)")
+    return from_origin(float(x[0]) - dx / 2, float(y[0]) + dy / 2, dx, dy), dx, dy
+
+
+def _crs(pred: xr.Dataset):
+    from rasterio.crs import CRS
+
+    wkt = pred["crs"].attrs.get("crs_wkt") if "crs" in pred else None
+    return CRS.from_wkt(wkt) if wkt else None
+
+
+def _layers(pred: xr.Dataset) -> dict[str, xr.DataArray]:
+    out = {k: pred[k] for k in STATISTICS if k in pred}
+    for j, t in enumerate(np.atleast_1d(pred["threshold"].values) if "threshold" in pred.coords else []):
+        out[f"p_exceed_{float(t):g}"] = pred["p_exceed"].isel(threshold=j)
+    return out
+
+
+def write_geotiffs(pred: xr.Dataset, folder: str | Path) -> list[Path]:
+    """Write one GeoTIFF per map statistic of the grid ``pred`` into ``folder`` (module docstring).
+
+    Returns
+    -------
+    list of Path
+        The files written, in statistic order.
+    """
+    import rasterio
+
+    transform, _, _ = _grid_transform(pred)
+    crs = _crs(pred)
+    written = []
+    for name, da in _layers(pred).items():
+        path = Path(folder) / f"{name}.tif"
+        values = np.asarray(da.transpose("y", "x").values, dtype=np.float32)
+        with rasterio.open(path, "w", driver="GTiff", height=values.shape[0], width=values.shape[1], count=1,
+                           dtype="float32", crs=crs, transform=transform, nodata=np.float32(np.nan),
+                           compress="deflate") as dst:
+            dst.write(values, 1)
+            dst.update_tags(units=str(da.attrs.get("units", "")), long_name=str(da.attrs.get("long_name", "")),
+                            caution=str(pred.attrs.get("caution", "")))
+            dst.set_band_description(1, name)
+        written.append(path)
+    return written
+
+
+def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
+    """Per threshold and level, the cells where P(exceed) >= level, as one shapely (multi)polygon with its area.
+
+    Returns
+    -------
+    list of dict
+        ``threshold``, ``level``, ``cells``, ``area``, ``area_units`` and ``geometry`` (empty when no cell
+        reaches the level).
+    """
+    import shapely
+    from rasterio.features import shapes
+
+    transform, dx, dy = _grid_transform(pred)
+    lonlat = pred["x"].attrs.get("units") == "degrees_east"
+    unit = pred["x"].attrs.get("units", "")
+    out = []
+    for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
+        prob = np.asarray(pred["p_exceed"].isel(threshold=j).transpose("y", "x").values, dtype=float)
+        for level in levels:
+            mask = np.nan_to_num(prob, nan=0.0) >= level
+            parts = [shapely.geometry.shape(g) for g, v in shapes(mask.astype(np.uint8), mask=mask,
+                                                                  transform=transform) if v == 1]
+            geom = shapely.union_all(parts) if parts else shapely.MultiPolygon()
+            if geom.geom_type == "Polygon":
+                geom = shapely.MultiPolygon([geom])
+            if lonlat:
+                from pyproj import Geod
+
+                area, units = abs(Geod(ellps="WGS84").geometry_area_perimeter(geom)[0]) if parts else 0.0, "m2"
+            else:
+                area, units = float(mask.sum()) * dx * dy, f"{unit}2" if unit else "coordinate units squared"
+            out.append({"threshold": float(t), "level": float(level), "cells": int(mask.sum()), "area": float(area),
+                        "area_units": units, "geometry": geom})
+    return out
+
+
+def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset | None = None,
+                     levels=LEVELS) -> Path:
+    """Write the GeoPackage ``path`` with layers ``exceedance`` (and ``samples`` when given; module docstring).
+
+    Parameters
+    ----------
+    path : str or Path
+        The new file (it must not exist).
+    pred : xarray.Dataset
+        Georeferenced grid predictions with ``p_exceed``.
+    samples : xarray.Dataset, optional
+        ``x``, ``y`` and ``value`` along ``obs`` (and ``censored``, ``row`` when present).
+    levels : sequence of float
+        Probability levels of the polygons.
+    """
+    import shapely
+    from pyogrio.raw import write
+
+    path = Path(path)
+    wkt = pred["crs"].attrs.get("crs_wkt") if "crs" in pred else None
+    polys = exceedance_polygons(pred, levels)
+    units = str(pred.attrs.get("value_units", ""))
+    write(path, shapely.to_wkb(np.array([p["geometry"] for p in polys], dtype=object)),
+          fields=["threshold", "threshold_units", "probability_level", "cells", "area", "area_units"],
+          field_data=[np.array([p["threshold"] for p in polys]), np.array([units] * len(polys), dtype=object),
+                      np.array([p["level"] for p in polys]), np.array([p["cells"] for p in polys], dtype=np.int64),
+                      np.array([p["area"] for p in polys]), np.array([p["area_units"] for p in polys], dtype=object)],
+          geometry_type="MultiPolygon", crs=wkt, driver="GPKG", layer="exceedance")
+    if samples is not None:
+        pts = shapely.points(np.column_stack([samples["x"].values, samples["y"].values]))
+        fields = {"value": np.asarray(samples["value"].values, dtype=float)}
+        if "row" in samples.coords:
+            fields["file_row"] = np.asarray(samples["row"].values, dtype=np.int64)
+        if "censored" in samples:
+            fields["non_detect"] = np.asarray(samples["censored"].values, dtype=np.int64)
+        write(path, shapely.to_wkb(pts), fields=list(fields), field_data=list(fields.values()),
+              geometry_type="Point", crs=wkt, driver="GPKG", layer="samples")
+    return path
