@@ -158,3 +158,33 @@ def test_exceedance_polygons_cover_exactly_the_cells_above_each_level(tmp_path):
     p = exceedance_polygons(georeferenced(ll, crs_wkt=pyproj.CRS.from_epsg(4326).to_wkt(), coords="lonlat"))[0]
     box = shapely.box(9.995, 44.995, 10.025, 45.015)
     assert p["area"] == pytest.approx(abs(pyproj.Geod(ellps="WGS84").geometry_area_perimeter(box)[0]), rel=1e-9)
+
+
+def test_maps_carry_crs_north_arrow_scale_bar_and_decision_contours():
+    """Map furniture a reader of a regulatory map expects (common practice in cartography): the CRS's name, a
+    north arrow, a scale bar in the distance unit, a colour bar saying what is shown in words and units, and on
+    an exceedance map the contours P = 0.5 and P = 0.9 (matplotlib's contour levels)."""
+    from matplotlib.contour import ContourSet
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    from bayesgeo.predict.figures import map_figure
+
+    x, y = 431_000 + 10.0 * np.arange(40), 5_622_000 + 10.0 * np.arange(30)
+    xx, yy = np.meshgrid(x, y)
+    prob = np.exp(-((xx - 431_200) ** 2 + (yy - 5_622_150) ** 2) / 8000.0)
+    pred = xr.Dataset({"mean": (("y", "x"), 40 * prob, {"units": "mg/kg"}),
+                       "p_exceed": (("threshold", "y", "x"), prob[None], {"units": "1"})},
+                      coords={"x": x, "y": y, "threshold": ("threshold", [40.0], {"units": "mg/kg"})})
+    pred.attrs.update(target_kind="grid", distance_units="m", coords="xy", crs_name="EPSG:32632 (WGS 84 / UTM zone 32N)")
+    fig = map_figure(pred, "p_exceed", threshold=0)
+    ax, cax = fig.axes
+    texts = [t.get_text() for t in ax.texts]
+    assert "EPSG:32632 (WGS 84 / UTM zone 32N)" in texts and "N" in texts
+    bars = [a for a in ax.artists if isinstance(a, AnchoredSizeBar)]
+    assert len(bars) == 1 and bars[0].txt_label.get_text() == "50 m"
+    assert cax.get_ylabel() == "probability of exceeding 40 mg/kg"
+    contours = [c for c in ax.get_children() if isinstance(c, ContourSet)]
+    assert len(contours) == 1 and list(contours[0].levels) == [0.5, 0.9]
+    assert ax.get_xlabel() == "easting [m]" and "p_exceed" not in cax.get_ylabel()
+    mean = map_figure(pred, "mean")
+    assert mean.axes[1].get_ylabel() == "predictive mean [mg/kg]"

@@ -2,7 +2,9 @@
 
 Each figure shows the sample locations and carries the prediction caution in its footer. Colour
 maps are matplotlib's perceptually uniform ``viridis`` (mean, sd) and ``cividis`` (probabilities,
-fixed to 0-1). Grids are drawn cell by cell; point targets as coloured dots.
+fixed to 0-1). Grids are drawn cell by cell; point targets as coloured dots. Maps carry the CRS's name,
+a north arrow (rows are north-up: y is northing or latitude), a scale bar for planar coordinates in a
+known unit, and exceedance maps the decision contours P = 0.5 and P = 0.9.
 """
 
 from __future__ import annotations
@@ -15,10 +17,14 @@ import xarray as xr
 
 from bayesgeo.common.io import atomic_file
 
-__all__ = ["NOT_CONVERGED", "map_figure", "write_map_figures"]
+__all__ = ["NOT_CONVERGED", "CONTOURS", "map_figure", "threshold_label", "write_map_figures"]
 
 #: Marker put in titles and file attributes when an unconverged posterior is shown on request.
 NOT_CONVERGED = "NOT CONVERGED"
+#: Probability levels drawn as contours on exceedance maps.
+CONTOURS = (0.5, 0.9)
+_NAMES = {"mean": "predictive mean", "sd": "predictive sd", "q05": "5% predictive quantile",
+          "q50": "predictive median", "q95": "95% predictive quantile"}
 
 
 def _edges(c: np.ndarray) -> np.ndarray:
@@ -72,16 +78,31 @@ def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None,
     label = da.attrs.get("long_name", variable)
     units = da.attrs.get("units", "")
     cb = fig.colorbar(im, ax=ax, shrink=0.85)
-    cb.set_label(f"{variable} [{units}]" if units and units != "1" else variable)
+    if variable == "p_exceed":
+        t = float(pred["threshold"].values[int(threshold)])
+        tunits = pred["threshold"].attrs.get("units") or pred["mean"].attrs.get("units", "")
+        cb.set_label(f"probability of exceeding {t:g} {tunits}".rstrip())
+        if pred.attrs.get("target_kind") == "grid" and min(da.shape) > 1:
+            cs = ax.contour(x, y, np.ma.masked_invalid(da.values), levels=list(CONTOURS), colors=["white", "black"],
+                            linewidths=[1.0, 1.4], linestyles=["dashed", "solid"])
+            ax.clabel(cs, fmt={lv: f"P = {lv:g}" for lv in CONTOURS}, fontsize=7)
+    else:
+        name = _NAMES.get(variable, variable)
+        cb.set_label(f"{name} [{units}]" if units and units != "1" else name)
     if samples_xy is not None:
         s = np.asarray(samples_xy, dtype=float)
         ax.scatter(s[:, 0], s[:, 1], s=7, c="white", edgecolors="black", linewidths=0.4, label="samples")
         ax.legend(loc="upper right", fontsize=7, framealpha=0.8)
     ax.set_aspect("equal", adjustable="datalim")
     ax.ticklabel_format(useOffset=False, style="plain")
+    from matplotlib.ticker import MaxNLocator
+
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=4))  # long eastings: few labels, none overlapping
     dunits = pred.attrs.get("distance_units", "")
-    ax.set_xlabel(f"x [{dunits}]" if dunits else "x")
-    ax.set_ylabel(f"y [{dunits}]" if dunits else "y")
+    lonlat = pred.attrs.get("coords") == "lonlat" or pred["x"].attrs.get("units") == "degrees_east"
+    ax.set_xlabel("longitude [degrees]" if lonlat else (f"easting [{dunits}]" if dunits else "x"))
+    ax.set_ylabel("latitude [degrees]" if lonlat else (f"northing [{dunits}]" if dunits else "y"))
+    _furniture(ax, pred, dunits, lonlat)
     head = f"{NOT_CONVERGED}: " if not_converged else ""
     ax.set_title(head + (title or label), fontsize=10, color="darkred" if not_converged else "black")
     if caution:
@@ -90,7 +111,28 @@ def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None,
     return fig
 
 
-def _threshold_label(t: float) -> str:
+def _furniture(ax, pred: xr.Dataset, dunits: str, lonlat: bool) -> None:
+    """CRS label, north arrow and (planar coordinates in a known unit) a scale bar."""
+    crs = pred.attrs.get("crs_name") or "CRS not stated"
+    ax.text(0.01, 0.01, crs, transform=ax.transAxes, fontsize=6.5, va="bottom", ha="left",
+            bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": "none", "alpha": 0.75})
+    ax.annotate("N", xy=(0.05, 0.97), xytext=(0.05, 0.86), xycoords="axes fraction", ha="center", va="center",
+                fontsize=9, fontweight="bold", arrowprops={"arrowstyle": "-|>", "color": "black", "lw": 1.2})
+    if lonlat or dunits in ("", "coordinate units"):
+        return
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    span = float(np.ptp(pred["x"].values)) or 1.0
+    raw = span / 5.0
+    base = 10.0 ** np.floor(np.log10(raw))
+    length = max((m * base for m in (1.0, 2.0, 5.0) if m * base <= raw), default=base)
+    bar = AnchoredSizeBar(ax.transData, length, f"{length:g} {dunits}", "lower right", pad=0.4, sep=3,
+                          frameon=True, size_vertical=0, fontproperties={"size": 7})
+    bar.patch.set_alpha(0.75)
+    ax.add_artist(bar)
+
+
+def threshold_label(t: float) -> str:
     return f"{t:g}".replace("-", "m").replace(".", "p")
 
 
@@ -106,7 +148,7 @@ def write_map_figures(pred: xr.Dataset, folder: str | Path, *, samples_xy=None, 
     jobs = [("mean", None, f"Predictive mean of the {what} [{units}]", "mean.png"),
             ("sd", None, f"Predictive sd of the {what} [{units}]", "sd.png")]
     for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
-        jobs.append(("p_exceed", j, f"P({what} > {t:g} {units})", f"p_exceed_{_threshold_label(float(t))}.png"))
+        jobs.append(("p_exceed", j, f"P({what} > {t:g} {units})", f"p_exceed_{threshold_label(float(t))}.png"))
     written = []
     site = f" - site {pred.attrs['site']}" if pred.attrs.get("site") else ""  # the label the folder name may abbreviate
     for var, j, title, name in jobs:

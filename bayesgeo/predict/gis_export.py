@@ -21,6 +21,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from bayesgeo.predict.figures import threshold_label
+
 __all__ = ["LEVELS", "STATISTICS", "write_geotiffs", "exceedance_polygons", "write_geopackage"]
 
 #: Probability levels of the exceedance polygons.
@@ -51,7 +53,7 @@ def _crs(pred: xr.Dataset):
 def _layers(pred: xr.Dataset) -> dict[str, xr.DataArray]:
     out = {k: pred[k] for k in STATISTICS if k in pred}
     for j, t in enumerate(np.atleast_1d(pred["threshold"].values) if "threshold" in pred.coords else []):
-        out[f"p_exceed_{float(t):g}"] = pred["p_exceed"].isel(threshold=j)
+        out[f"p_exceed_{threshold_label(float(t))}"] = pred["p_exceed"].isel(threshold=j)
     return out
 
 

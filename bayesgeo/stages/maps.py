@@ -165,8 +165,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         pred.attrs["area_average"] = json.dumps(block)
     data = fit.settings.get("data") or {}
     pred.attrs["crs_name"] = str(data.get("crs_name", ""))
+    pred.attrs["coords"] = "lonlat" if spec.metric == "greatcircle" else "xy"
     georef = georeferenced(pred, crs_wkt=str(data.get("crs", "")), distance_units=spec.distance_units,
-                           coords="lonlat" if spec.metric == "greatcircle" else "xy")
+                           coords=pred.attrs["coords"])
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
         georef.to_netcdf(tmp, engine="netcdf4")
     maps = []
