@@ -175,7 +175,8 @@ def test_maps_carry_crs_north_arrow_scale_bar_and_decision_contours():
     pred = xr.Dataset({"mean": (("y", "x"), 40 * prob, {"units": "mg/kg"}),
                        "p_exceed": (("threshold", "y", "x"), prob[None], {"units": "1"})},
                       coords={"x": x, "y": y, "threshold": ("threshold", [40.0], {"units": "mg/kg"})})
-    pred.attrs.update(target_kind="grid", distance_units="m", coords="xy", crs_name="EPSG:32632 (WGS 84 / UTM zone 32N)")
+    pred.attrs.update(target_kind="grid", distance_units="m", coords="xy",
+                      crs_name="EPSG:32632 (WGS 84 / UTM zone 32N)")
     fig = map_figure(pred, "p_exceed", threshold=0)
     ax, cax = fig.axes
     texts = [t.get_text() for t in ax.texts]

@@ -199,7 +199,8 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
 
 
 def _gis_files(georef, fit, folder: Path) -> list[Path]:
-    """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples (bayesgeo.predict.gis_export)."""
+    """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples
+    (:mod:`bayesgeo.predict.gis_export`)."""
     import xarray as xr
 
     from bayesgeo.predict.gis_export import write_geopackage, write_geotiffs
