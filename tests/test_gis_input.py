@@ -172,3 +172,21 @@ def test_command_line_explores_a_geopackage(tmp_path):
                      "--json"])
     assert code == 0
     assert json.loads(buf.getvalue())["n"] == 30
+
+
+def test_demo_study_reads_its_data_in_the_invented_site_grid(tmp_path):
+    """The demo's study file names the invented site grid (an engineering CRS in metres, WKT2, which pyproj
+    reads): its data come in planar metres with that CRS recorded, so the demo's maps are georeferenced
+    without naming any real place."""
+    from bayesgeo.cli.demo import demo_study_text
+    from bayesgeo.data.demo import DEMO_CRS_WKT, write_demo_data
+    from bayesgeo.data.points import read_settings
+    from bayesgeo.study.settings import parse_study
+
+    write_demo_data(tmp_path / "demo.csv")
+    study = parse_study(demo_study_text("demo.csv", quick=True), path=tmp_path / "study.toml")
+    d = study.settings["data"]
+    ds = read_points(d["path"], **read_settings(d))
+    crs = pyproj.CRS.from_wkt(ds.attrs["crs"])
+    assert crs.is_engineering and crs.equals(pyproj.CRS.from_wkt(DEMO_CRS_WKT))
+    assert ds.attrs["distance_units"] == "m" and ds.attrs["coords"] == "xy"

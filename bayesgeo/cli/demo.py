@@ -36,7 +36,7 @@ def add_arguments(p) -> None:
 
 def demo_study_text(data_file: str, *, quick: bool = False) -> str:
     """The TOML text of the demo study (data file relative to the study file)."""
-    from bayesgeo.data.demo import DEMO_ACTION_LEVEL
+    from bayesgeo.data.demo import DEMO_ACTION_LEVEL, DEMO_CRS_WKT
 
     chains, draws, tune, reps, perms, pdraws, cell = DEMO_SETTINGS["quick" if quick else "full"]
     a = DEMO_AREA
@@ -55,6 +55,7 @@ site = "parcel"
 units = "mg/kg"
 distance_units = "m"
 coords = "xy"
+crs = '{DEMO_CRS_WKT}'
 
 [explore]
 bins = 10

@@ -2,8 +2,8 @@
 
 A CRS comes from the file (GIS formats) or from the user (``--crs``: an EPSG code such as
 ``EPSG:32633`` or ``32633``, or WKT), through pyproj. A geographic CRS (degrees) makes the
-coordinates lon/lat (great-circle distances in km); a projected one makes them planar, in the CRS's
-axis unit. ``to="utm"`` (or another CRS) projects the points with pyproj before anything is computed, so
+coordinates lon/lat (great-circle distances in km); a projected one, or a local site grid (an engineering
+CRS in WKT), makes them planar, in the CRS's axis unit. ``to="utm"`` (or another CRS) projects the points with pyproj before anything is computed, so
 distances, ranges, cells and areas are in metres; the UTM zone is the one of the data's centre
 (longitudes across 180 degrees are taken as one continuous range first). The CRS of the analysis is
 kept as WKT in the data's attributes and goes into every output (docs/data_files.md).
@@ -58,8 +58,9 @@ def resolve_crs(file_crs: str | None, option: str | None, src: str):
         raise InputError(f"{src}: the file declares {_label(declared)} but --crs says {_label(given)}; reproject the "
                          "file in your GIS or drop --crs")
     crs = declared if declared is not None else given
-    if not (crs.is_geographic or crs.is_projected):
-        raise InputError(f"{src}: CRS {_label(crs)} is neither geographic nor projected; give a 2-D horizontal CRS")
+    if not (crs.is_geographic or crs.is_projected or crs.is_engineering):
+        raise InputError(f"{src}: CRS {_label(crs)} is neither geographic, projected nor a local grid; give a 2-D "
+                         "horizontal CRS")
     return crs
 
 

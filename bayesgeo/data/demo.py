@@ -25,14 +25,19 @@ from bayesgeo.data.points import points_dataset
 from bayesgeo.common.geometry import distance_matrix
 from bayesgeo.common.outputs import new_files
 
-__all__ = ["DEMO_SEED", "DEMO_ACTION_LEVEL", "DEMO_REPORTING_LIMITS", "demo_data", "write_demo_data", "simulate_field",
-           "value_cells"]
+__all__ = ["DEMO_SEED", "DEMO_ACTION_LEVEL", "DEMO_REPORTING_LIMITS", "DEMO_CRS_WKT", "demo_data", "write_demo_data",
+           "simulate_field", "value_cells"]
 
 DEMO_SEED = 20261202
 #: Illustrative action level for the demo (mg/kg): invented, not taken from any regulation.
 DEMO_ACTION_LEVEL = 40.0
 #: Reporting limits (mg/kg) of the demo's two invented laboratory batches.
 DEMO_REPORTING_LIMITS = (6.0, 10.0)
+#: The demo's coordinate reference system: a local site grid in metres (an engineering CRS, WKT2), invented
+#: like the site, so that no real place is named while every output is georeferenced.
+DEMO_CRS_WKT = ('ENGCRS["Marrowby Works site grid (invented)",EDATUM["Marrowby Works site datum (invented)"],'
+                'CS[Cartesian,2],AXIS["easting (E)",east,ORDER[1],LENGTHUNIT["metre",1]],'
+                'AXIS["northing (N)",north,ORDER[2],LENGTHUNIT["metre",1]]]')
 
 # parcel label, points, side of the sampled square (m), south-west corner (local grid, m)
 _PARCELS = (
@@ -117,7 +122,7 @@ def demo_data(seed: int = DEMO_SEED) -> xr.Dataset:
         "source": "bayesgeo demo (simulated)",
         "x_column": "easting", "y_column": "northing", "value_column": "arsenic_mg_kg",
         "site_column": "parcel", "covariates": [], "coords": "xy", "distance_units": "m",
-        "value_units": "mg/kg", "crs": "", "crs_name": "invented local grid (m)", "duplicates": "error",
+        "value_units": "mg/kg", "crs": DEMO_CRS_WKT, "crs_name": "Marrowby Works site grid (invented), metres", "duplicates": "error",
         "seed": seed, "action_level": DEMO_ACTION_LEVEL, "non_detects": int(censored.sum()),
         "truth": json.dumps({
             "scale": "log of mg/kg; practical range in m",
