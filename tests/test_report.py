@@ -174,6 +174,27 @@ def test_range_prior_tail_makes_a_wide_range_sensitive():
     assert out[0.05] < 0.05 < out[0.5]
 
 
+def test_report_pdf_is_a4_numbered_and_carries_the_cautions(run):
+    """report.pdf is rendered from the same HTML without a browser (WeasyPrint): A4 pages (210 x 297 mm, i.e.
+    595 x 842 pt; ISO 216, common practice), each numbered "page N of M", with the cautions and no browser
+    furniture such as a file:// path (text read back with pypdf)."""
+    pypdf = pytest.importorskip("pypdf")
+    import json
+
+    root, _ = run
+    manifest = json.loads((root / "manifest.json").read_text())
+    if not (root / "report.pdf").is_file():
+        pytest.skip(f"report.pdf {manifest.get('report_pdf')}")
+    assert manifest["report_pdf"] == "report.pdf"
+    reader = pypdf.PdfReader(root / "report.pdf")
+    n = len(reader.pages)
+    box = reader.pages[0].mediabox
+    assert (float(box.width), float(box.height)) == pytest.approx((595.28, 841.89), abs=0.5)
+    text = " ".join(" ".join((p.extract_text() or "") for p in reader.pages).split())
+    assert f"page 1 of {n}" in text and f"page {n} of {n}" in text
+    assert "licensed professional" in text and "file://" not in text
+
+
 def test_not_converged_banner(run):
     """A failed check marks the report NOT CONVERGED at the top (issue 8 requirement)."""
     root, _ = run

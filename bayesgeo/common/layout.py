@@ -23,7 +23,7 @@ from pathlib import Path
 __all__ = [
     "FIT_FILE", "SUMMARY_CSV", "SUMMARY_TXT", "FIT_REPORT", "PRIOR_CHECK", "SHRINKAGE", "DESIGN",
     "DIAGNOSTICS_DIR", "DIAGNOSTICS_FILE", "PREDICTIONS_FILE", "MAPS_DIR", "VGCHECK_FIGURE", "VGCHECK_TABLE",
-    "EXPLORE_FILE", "COMPARISON_FILE", "REPORT_FILE", "RUN_INPUTS", "RUN_EXPLORE", "RUN_FITS", "RUN_COMPARE",
+    "EXPLORE_FILE", "COMPARISON_FILE", "REPORT_FILE", "REPORT_PDF_FILE", "RUN_INPUTS", "RUN_EXPLORE", "RUN_FITS", "RUN_COMPARE",
     "RUN_FIGURES", "RUN_TABLES", "site_part", "prediction_names", "vgcheck_names", "fit_folder_of",
 ]
 
@@ -47,6 +47,8 @@ EXPLORE_FILE = "explore.json"
 COMPARISON_FILE = "comparison.json"
 # run folder of a study
 REPORT_FILE = "report.html"
+#: The same report rendered to PDF (bayesgeo.report.pdf), where WeasyPrint can run.
+REPORT_PDF_FILE = "report.pdf"
 RUN_INPUTS = "inputs"
 RUN_EXPLORE = "explore"
 RUN_FITS = "fits"

@@ -47,8 +47,8 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from bayesgeo.common.io import write_json
-from bayesgeo.common.layout import (REPORT_FILE, RUN_COMPARE, RUN_EXPLORE, RUN_FIGURES, RUN_INPUTS, RUN_TABLES,
-                             fit_folder_of)
+from bayesgeo.common.layout import (REPORT_FILE, REPORT_PDF_FILE, RUN_COMPARE, RUN_EXPLORE, RUN_FIGURES, RUN_INPUTS,
+                                    RUN_TABLES, fit_folder_of)
 from bayesgeo.common import outputs
 from bayesgeo.common.outputs import claim, new_folder
 from bayesgeo.study.manifest import MANIFEST_FILE, file_table, new_manifest, utc_now
@@ -437,6 +437,12 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
         manifest["finished"] = utc_now()
         try:
             write_report(tmp, manifest, out_name=str(out))
+            from bayesgeo.report.pdf import write_pdf
+
+            pdf, why = write_pdf((tmp / REPORT_FILE).read_text(encoding="utf-8"), tmp / REPORT_PDF_FILE)
+            manifest["report_pdf"] = REPORT_PDF_FILE if pdf else f"not written: {why}"
+            if pdf is None:
+                say(f"{REPORT_PDF_FILE} not written: {why}; {REPORT_FILE} is the report")
         except Exception as err:  # noqa: BLE001 - keep the run folder; say what went wrong where the report would be
             reason = " ".join(f"{type(err).__name__}: {err}".split())
             status, message = EXIT_STAGE_FAILED, f"the report could not be built ({reason})"
