@@ -193,6 +193,7 @@ def test_report_pdf_is_a4_numbered_and_carries_the_cautions(run):
     text = " ".join(" ".join((p.extract_text() or "") for p in reader.pages).split())
     assert f"page 1 of {n}" in text and f"page {n} of {n}" in text
     assert "licensed professional" in text and "file://" not in text
+    assert "Coordinate reference system:" in text  # the data's CRS is stated (here: none, said so)
 
 
 def test_not_converged_banner(run):

@@ -132,6 +132,10 @@ def job(ctx: Ctx) -> str:
     stats = [{"n": int(v.size), "min": float(v.min()), "q25": float(np.quantile(v, 0.25)),
               "median": float(np.median(v)), "mean": float(v.mean()), "q75": float(np.quantile(v, 0.75)),
               "max": float(v.max()), "sd": float(v.std(ddof=1)) if v.size > 1 else float("nan")}]
+    crs = ds.attrs.get("crs_name") or "not stated (coordinates taken as planar, in their own units)"
+    where = f" (projected from {ds.attrs['source_crs_name']})" if ds.attrs.get("source_crs_name") else ""
+    out.append(f"<p>Coordinate reference system: {esc(crs + where)}; distances in "
+               f"{esc(ds.attrs.get('distance_units', ''))}.</p>")
     out.append(f"<h3>Measured values [{esc(units or 'value units')}]</h3>")
     out.append(html_table(stats, list(stats[0])))
     out.append(nondetect_block(ds))
