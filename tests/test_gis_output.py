@@ -189,3 +189,26 @@ def test_maps_carry_crs_north_arrow_scale_bar_and_decision_contours():
     assert ax.get_xlabel() == "easting [m]" and "p_exceed" not in cax.get_ylabel()
     mean = map_figure(pred, "mean")
     assert mean.axes[1].get_ylabel() == "predictive mean [mg/kg]"
+
+
+def test_area_average_goes_into_the_geopackage_as_its_polygon(tmp_path, capsys):
+    """``map --area`` puts the area's polygon into map.gpkg (layer area_average, read back with pyogrio) with the
+    same mean, interval and exceedance probability as the command's JSON, and its shapely area is the
+    rectangle's."""
+    import json
+
+    import shapely
+    from pyogrio.raw import read
+    from test_cli_map import _fit_folder
+
+    from bayesgeo.cli import main
+
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert main(["map", str(folder), "--cell", "25", "--draws", "10", "--threshold", "40",
+                 "--area", "431350,5622350,431450,5622450", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)["area"]
+    meta, _, geom, fields = read(folder / "maps" / "map.gpkg", layer="area_average")
+    got = dict(zip(meta["fields"], (f[0] for f in fields)))
+    assert got["mean"] == pytest.approx(out["mean"]) and got["q95"] == pytest.approx(out["q95"])
+    assert got["p_exceed_40"] == pytest.approx(out["p_exceed"][0])
+    assert shapely.from_wkb(geom[0]).area == pytest.approx(100.0 * 100.0)

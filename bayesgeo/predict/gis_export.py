@@ -8,7 +8,9 @@ From the georeferenced predictions of a grid (:func:`bayesgeo.predict.cf.georefe
 * :func:`write_geopackage`: layer ``exceedance``, one (multi)polygon per threshold and probability
   level: the union of the grid cells where the posterior predictive probability of exceeding the
   threshold is at least the level (default 0.5 and 0.9), with its area; layer ``samples``, the sample
-  points with their values and, where present, non-detect flags (pyogrio / GDAL).
+  points with their values and, where present, non-detect flags; layer ``area_average``, the polygon of
+  an area average (``map --area``) with its mean, sd, 90% interval and exceedance probabilities
+  (pyogrio / GDAL).
 
 The polygons follow cell edges (each cell is the square around its centre), so their area is a whole
 number of cells: in the CRS's units squared for planar data, geodesic m^2 on WGS 84 (pyproj) for lon/lat.
@@ -121,7 +123,7 @@ def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
 
 
 def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset | None = None,
-                     levels=LEVELS) -> Path:
+                     levels=LEVELS, area: tuple | None = None) -> Path:
     """Write the GeoPackage ``path`` with layers ``exceedance`` (and ``samples`` when given; module docstring).
 
     Parameters
@@ -134,6 +136,9 @@ def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset 
         ``x``, ``y`` and ``value`` along ``obs`` (and ``censored``, ``row`` when present).
     levels : sequence of float
         Probability levels of the polygons.
+    area : (vertices, block), optional
+        The polygon of an area average, (k, 2) vertices, and its result (``mean``, ``sd``, ``q05``, ``q95``,
+        ``threshold``, ``p_exceed``, ``area``; :func:`bayesgeo.predict.prediction.area_average`).
     """
     import shapely
     from pyogrio.raw import write
@@ -157,4 +162,15 @@ def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset 
             fields["non_detect"] = np.asarray(samples["censored"].values, dtype=np.int64)
         write(path, shapely.to_wkb(pts), fields=list(fields), field_data=list(fields.values()),
               geometry_type="Point", crs=wkt, driver="GPKG", layer="samples")
+    if area is not None:
+        vertices, block = area
+        ring = np.vstack([np.asarray(vertices, dtype=float), np.asarray(vertices, dtype=float)[:1]])
+        fields = {"label": np.array([str(block.get("area", ""))], dtype=object)}
+        for k in ("mean", "sd", "q05", "q95", "area_size"):
+            fields[k] = np.array([float(block.get(k, np.nan))])
+        for t, p in zip(block.get("threshold", []), block.get("p_exceed", [])):
+            fields[f"p_exceed_{threshold_label(float(t))}"] = np.array([float(p)])
+        fields["units"] = np.array([str(block.get("units", ""))], dtype=object)
+        write(path, shapely.to_wkb(np.array([shapely.Polygon(ring)], dtype=object)), fields=list(fields),
+              field_data=list(fields.values()), geometry_type="Polygon", crs=wkt, driver="GPKG", layer="area_average")
     return path

@@ -178,7 +178,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
             written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),
                                         not_converged=not_converged)
             if targets.attrs["kind"] == "grid":
-                written += _gis_files(georef, fit, tmp)
+                written += _gis_files(georef, fit, tmp, None if block is None else (area_vertices[0], block))
         maps = [str(out_maps / p.name) for p in written]
 
     result = {
@@ -198,7 +198,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     return 0, result
 
 
-def _gis_files(georef, fit, folder: Path) -> list[Path]:
+def _gis_files(georef, fit, folder: Path, area=None) -> list[Path]:
     """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples
     (:mod:`bayesgeo.predict.gis_export`)."""
     import xarray as xr
@@ -210,7 +210,7 @@ def _gis_files(georef, fit, folder: Path) -> list[Path]:
                           **({"censored": obs["censored"]} if "censored" in obs else {})}, coords=obs.coords)
     written = write_geotiffs(georef, folder)
     if georef.sizes.get("threshold", 0):
-        written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples))
+        written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples, area=area))
     return written
 
 
