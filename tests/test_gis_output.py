@@ -212,3 +212,25 @@ def test_area_average_goes_into_the_geopackage_as_its_polygon(tmp_path, capsys):
     assert got["mean"] == pytest.approx(out["mean"]) and got["q95"] == pytest.approx(out["q95"])
     assert got["p_exceed_40"] == pytest.approx(out["p_exceed"][0])
     assert shapely.from_wkb(geom[0]).area == pytest.approx(100.0 * 100.0)
+
+
+def test_probability_that_the_true_area_is_larger_than_the_polygon():
+    """With joint simulations (map --simulate) each polygon records the posterior probability that the true area
+    above the threshold exceeds its own: the Monte Carlo share of simulated fields with more cells above the
+    threshold (the frequency estimate of a probability; here 30 of 100 fields by construction)."""
+    from bayesgeo.predict.gis_export import exceedance_polygons
+
+    ds, (x0, y0, cell, nx, ny) = _grid_predictions()
+    prob = np.zeros((ny, nx))
+    prob[0, :3] = 0.95  # three cells reach both levels
+    ds["p_exceed"] = (("threshold", "y", "x"), prob[None])
+    sims = np.zeros((2, 50, ny, nx))
+    flat = sims.reshape(100, ny * nx)
+    flat[:30, :4] = 99.0  # 30 fields with 4 cells above 50
+    flat[30:, :2] = 99.0  # 70 fields with 2
+    ds["simulation"] = (("sample", "sim", "y", "x"), flat.reshape(2, 50, ny, nx))
+    geo = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m")
+    polys = exceedance_polygons(geo)
+    assert [p["cells"] for p in polys] == [3, 3]
+    assert [p["p_true_area_larger"] for p in polys] == pytest.approx([0.3, 0.3])
+    assert np.isnan(exceedance_polygons(geo.drop_vars("simulation"))[0]["p_true_area_larger"])

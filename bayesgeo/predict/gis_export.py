@@ -92,8 +92,11 @@ def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
     Returns
     -------
     list of dict
-        ``threshold``, ``level``, ``cells``, ``area``, ``area_units`` and ``geometry`` (empty when no cell
-        reaches the level).
+        ``threshold``, ``level``, ``cells``, ``area``, ``area_units``, ``geometry`` (empty when no cell
+        reaches the level) and ``p_true_area_larger``: with joint simulations in ``pred`` (``map
+        --simulate``), the share of simulated fields (over draws and simulations) whose area above the
+        threshold exceeds the polygon's, i.e. the posterior probability that the true area above the level
+        is larger than the polygon; NaN without them.
     """
     import shapely
     from rasterio.features import shapes
@@ -101,8 +104,12 @@ def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
     transform, dx, dy = _grid_transform(pred)
     lonlat = pred["x"].attrs.get("units") == "degrees_east"
     unit = pred["x"].attrs.get("units", "")
+    sims = None
+    if "simulation" in pred:  # (sample, sim, y, x): cells above the threshold per simulated field
+        sims = np.asarray(pred["simulation"].transpose("sample", "sim", "y", "x").values, dtype=float)
     out = []
     for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
+        above_sim = None if sims is None else np.sum(np.nan_to_num(sims, nan=-np.inf) > t, axis=(2, 3))
         prob = np.asarray(pred["p_exceed"].isel(threshold=j).transpose("y", "x").values, dtype=float)
         for level in levels:
             mask = np.nan_to_num(prob, nan=0.0) >= level
@@ -117,8 +124,9 @@ def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
                 area, units = abs(Geod(ellps="WGS84").geometry_area_perimeter(geom)[0]) if parts else 0.0, "m2"
             else:
                 area, units = float(mask.sum()) * dx * dy, f"{unit}2" if unit else "coordinate units squared"
+            larger = np.nan if above_sim is None else float(np.mean(above_sim > mask.sum()))
             out.append({"threshold": float(t), "level": float(level), "cells": int(mask.sum()), "area": float(area),
-                        "area_units": units, "geometry": geom})
+                        "area_units": units, "geometry": geom, "p_true_area_larger": larger})
     return out
 
 
@@ -148,10 +156,12 @@ def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset 
     polys = exceedance_polygons(pred, levels)
     units = str(pred.attrs.get("value_units", ""))
     write(path, shapely.to_wkb(np.array([p["geometry"] for p in polys], dtype=object)),
-          fields=["threshold", "threshold_units", "probability_level", "cells", "area", "area_units"],
+          fields=["threshold", "threshold_units", "probability_level", "cells", "area", "area_units",
+                  "p_true_area_larger"],
           field_data=[np.array([p["threshold"] for p in polys]), np.array([units] * len(polys), dtype=object),
                       np.array([p["level"] for p in polys]), np.array([p["cells"] for p in polys], dtype=np.int64),
-                      np.array([p["area"] for p in polys]), np.array([p["area_units"] for p in polys], dtype=object)],
+                      np.array([p["area"] for p in polys]), np.array([p["area_units"] for p in polys], dtype=object),
+                      np.array([p["p_true_area_larger"] for p in polys])],
           geometry_type="MultiPolygon", crs=wkt, driver="GPKG", layer="exceedance")
     if samples is not None:
         pts = shapely.points(np.column_stack([samples["x"].values, samples["y"].values]))
