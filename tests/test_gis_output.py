@@ -234,3 +234,38 @@ def test_probability_that_the_true_area_is_larger_than_the_polygon():
     assert [p["cells"] for p in polys] == [3, 3]
     assert [p["p_true_area_larger"] for p in polys] == pytest.approx([0.3, 0.3])
     assert np.isnan(exceedance_polygons(geo.drop_vars("simulation"))[0]["p_true_area_larger"])
+
+
+def test_geopackage_to_fit_to_geotiff_round_trip(tmp_path, capsys):
+    """The whole round trip a GIS user makes: points in a GeoPackage (EPSG:32633, written with pyogrio) -> ``bayesgeo
+    fit`` -> ``bayesgeo map`` -> GeoTIFF and GeoPackage, opened with rasterio and pyogrio: the CRS of the input
+    file, the grid's transform (cell size and corner), the samples back at their coordinates."""
+    import shapely
+    from pyogrio.raw import read, write
+
+    from bayesgeo.cli import main
+    from bayesgeo.data.demo import simulate_field
+
+    rng = np.random.default_rng(8)
+    xy = rng.uniform(0, 300, (40, 2)) + [455_000.0, 5_100_000.0]
+    z = simulate_field(xy - xy.min(0), covariance="exponential", practical_range=150.0, partial_sill=0.5,
+                       nugget=0.1, mean=3.0, rng=rng)
+    gpkg = tmp_path / "samples.gpkg"
+    write(gpkg, shapely.to_wkb(shapely.points(xy)), fields=["zinc"], field_data=[np.exp(z)], geometry_type="Point",
+          crs="EPSG:32633", driver="GPKG", layer="samples")
+    fit = tmp_path / "fit"
+    assert main(["fit", str(gpkg), "--value", "zinc", "--transform", "log", "--covariance", "exponential",
+                 "--chains", "2", "--draws", "300", "--tune", "400", "--seed", "5", "--out", str(fit), "--json"]) == 0
+    capsys.readouterr()
+    assert main(["map", str(fit), "--cell", "20", "--draws", "20", "--threshold", "30", "--allow-unconverged",
+                 "--json"]) == 0
+    capsys.readouterr()
+    with xr.open_dataset(fit / "predictions.nc") as pred:
+        x, y = pred["x"].values, pred["y"].values
+    with rasterio.open(fit / "maps" / "mean.tif") as tif:
+        assert tif.crs.to_epsg() == 32633
+        assert (tif.transform.a, tif.transform.e) == pytest.approx((20.0, -20.0))
+        assert (tif.transform.c, tif.transform.f) == pytest.approx((x.min() - 10.0, y.max() + 10.0))
+    meta, _, geom, _ = read(fit / "maps" / "map.gpkg", layer="samples")
+    assert pyproj.CRS.from_user_input(meta["crs"]).to_epsg() == 32633
+    np.testing.assert_allclose(np.sort(shapely.get_x(shapely.from_wkb(geom))), np.sort(xy[:, 0]))

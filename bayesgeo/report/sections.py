@@ -111,12 +111,21 @@ def contents(ctx: Ctx) -> str:
     return f"<nav><ol>{items}</ol></nav>"
 
 
+def _shown_path(path) -> str:
+    """A path as the report shows it: the path itself, or only the name when the file is gone (a scratch file
+    of the run, such as the demo's; its copy is in the run's inputs/)."""
+    if not path:
+        return ""
+    p = Path(str(path))
+    return str(p) if p.exists() else f"{p.name} (a temporary file; its copy is in inputs/)"
+
+
 def job(ctx: Ctx) -> str:
     m, s = ctx.manifest, ctx.settings
     fams = s.get("model", {}).get("covariance", [])
     rows = [
-        {"k": "study file", "v": m.get("study", {}).get("path")},
-        {"k": "data file", "v": s.get("data", {}).get("path")},
+        {"k": "study file", "v": _shown_path(m.get("study", {}).get("path"))},
+        {"k": "data file", "v": _shown_path(s.get("data", {}).get("path"))},
         {"k": "copies of the inputs", "v": "inputs/ in the run folder (hashes in the appendix)"},
         {"k": "covariance families", "v": ", ".join(fams)},
         {"k": "selected fit (maps at the top of the run folder)", "v": m.get("selected")},
