@@ -23,7 +23,7 @@ from bayesgeo.fitting.model import model_inputs
 from bayesgeo.fitting.posterior import derive
 
 
-def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=250, seed=1, data=None):
+def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=250, seed=1, data=None, spread=0.1):
     ds = demo_data()
     ds = ds.isel(obs=np.flatnonzero(ds["site"].values == "mill-pond"))
     ds = ds.drop_vars("site")
@@ -39,11 +39,12 @@ def _fit_folder(path, *, transform="log", spread_chains=False, chains=4, draws=2
         r0, s0, t0, b0 = 150.0, float(np.std(ds["value"].values)), 0.3 * float(np.std(ds["value"].values)), \
             float(np.mean(ds["value"].values))
     post = xr.Dataset({
-        "practical_range_z": (("chain", "draw"), r0 / spec.distance_scale * np.exp(0.1 * rng.standard_normal(shape) + shift)),
-        "sd_z": (("chain", "draw"), s0 / spec.value_sd * np.exp(0.1 * rng.standard_normal(shape))),
-        "nugget_sd_z": (("chain", "draw"), t0 / spec.value_sd * np.exp(0.1 * rng.standard_normal(shape))),
+        "practical_range_z": (("chain", "draw"),
+                              r0 / spec.distance_scale * np.exp(spread * rng.standard_normal(shape) + shift)),
+        "sd_z": (("chain", "draw"), s0 / spec.value_sd * np.exp(spread * rng.standard_normal(shape))),
+        "nugget_sd_z": (("chain", "draw"), t0 / spec.value_sd * np.exp(spread * rng.standard_normal(shape))),
         "beta_z": (("chain", "draw", "term"),
-                   ((b0 - spec.value_mean) / spec.value_sd + 0.05 * rng.standard_normal(shape))[..., None]),
+                   ((b0 - spec.value_mean) / spec.value_sd + spread / 2 * rng.standard_normal(shape))[..., None]),
     }, coords={"chain": np.arange(chains), "draw": np.arange(draws), "term": list(spec.terms)})
     stats = xr.Dataset({"diverging": (("chain", "draw"), np.zeros(shape, bool)),
                         "energy": (("chain", "draw"), rng.standard_normal(shape)),

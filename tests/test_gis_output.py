@@ -269,3 +269,31 @@ def test_geopackage_to_fit_to_geotiff_round_trip(tmp_path, capsys):
     meta, _, geom, _ = read(fit / "maps" / "map.gpkg", layer="samples")
     assert pyproj.CRS.from_user_input(meta["crs"]).to_epsg() == 32633
     np.testing.assert_allclose(np.sort(shapely.get_x(shapely.from_wkb(geom))), np.sort(xy[:, 0]))
+
+
+def test_samples_layer_leave_one_out_residuals_match_the_gaussian_identity(tmp_path):
+    """The samples layer's leave-one-out residuals, with every posterior draw at the same parameters, are the
+    Gaussian-process ones of the closed form: mean z_i - [K^-1 (z - mu)]_i / [K^-1]_ii and variance
+    1 / [K^-1]_ii (Rasmussen and Williams 2006, eq. 5.12; numpy), standardised."""
+    from scipy.spatial.distance import cdist
+    from test_cli_map import _fit_folder
+
+    from bayesgeo.common.defaults import JITTER
+    from bayesgeo.fitting.fitted import read_site
+    from bayesgeo.gp.covariance import get_covariance
+    from bayesgeo.stages.maps import _loo_residuals
+
+    folder, ds = _fit_folder(tmp_path / "fit", spread=0.0, chains=2, draws=20)
+    fit = read_site(folder)
+    post, obs = fit.posterior, fit.tree["observed_data"].to_dataset()
+    got = _loo_residuals(fit, obs, 10)
+    xy = np.column_stack([ds["x"].values, ds["y"].values])
+    p = {k: float(post[k].values.ravel()[0]) for k in ("practical_range", "partial_sill", "nugget")}
+    cov = get_covariance("matern32")
+    k = (p["partial_sill"] * cov.correlation(cdist(xy, xy), p["practical_range"] / cov.range_factor)
+         + (p["nugget"] + JITTER * p["partial_sill"]) * np.eye(len(xy)))
+    z = np.log(ds["value"].values)
+    mu = float(post["beta"].values.ravel()[0])
+    kinv = np.linalg.inv(k)
+    ref = (kinv @ (z - mu)) / np.diag(kinv) * np.sqrt(np.diag(kinv))  # (z_i - m_i) / s_i
+    np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-9)

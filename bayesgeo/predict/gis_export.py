@@ -8,7 +8,7 @@ From the georeferenced predictions of a grid (:func:`bayesgeo.predict.cf.georefe
 * :func:`write_geopackage`: layer ``exceedance``, one (multi)polygon per threshold and probability
   level: the union of the grid cells where the posterior predictive probability of exceeding the
   threshold is at least the level (default 0.5 and 0.9), with its area; layer ``samples``, the sample
-  points with their values and, where present, non-detect flags; layer ``area_average``, the polygon of
+  points with their values and, where present, non-detect flags and standardised leave-one-out residuals; layer ``area_average``, the polygon of
   an area average (``map --area``) with its mean, sd, 90% interval and exceedance probabilities
   (pyogrio / GDAL).
 
@@ -170,6 +170,8 @@ def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset 
             fields["file_row"] = np.asarray(samples["row"].values, dtype=np.int64)
         if "censored" in samples:
             fields["non_detect"] = np.asarray(samples["censored"].values, dtype=np.int64)
+        if "loo_residual" in samples:
+            fields["loo_residual"] = np.asarray(samples["loo_residual"].values, dtype=float)
         write(path, shapely.to_wkb(pts), fields=list(fields), field_data=list(fields.values()),
               geometry_type="Point", crs=wkt, driver="GPKG", layer="samples")
     if area is not None:

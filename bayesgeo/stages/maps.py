@@ -23,6 +23,8 @@ DEFAULT_DRAWS = 500
 AREA_POINTS = 400
 MAX_SIM_TARGETS = 2000
 EXIT_NOT_CONVERGED = 3
+#: Posterior draws of the leave-one-out residuals of the samples layer when the map's own count is unknown.
+LOO_DRAWS = 200
 
 
 def map_draws(value) -> int | None:
@@ -198,6 +200,32 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     return 0, result
 
 
+def _loo_residuals(fit, obs, draws: int) -> np.ndarray:
+    """Standardised leave-one-out residual of every sample, ``(z_i - E[z_i | rest]) / sd(z_i | rest)`` in model
+    units over ``draws`` evenly thinned posterior draws (:func:`bayesgeo.checks.loo.loo_predictive`: exact for
+    a dense fit); NaN for a non-detect, whose value is not known."""
+    import xarray as xr
+
+    from bayesgeo.checks.loo import loo_predictive
+
+    nd = fit.tree["posterior"].sizes["draw"]
+    step = max(1, nd * fit.tree["posterior"].sizes["chain"] // max(int(draws), 1))
+    thin = xr.DataTree.from_dict({f"/{k}": (v.to_dataset().isel(draw=slice(None, None, step)) if "draw" in v.dims
+                                            else v.to_dataset()) for k, v in fit.tree.children.items()})
+    thin.attrs = dict(fit.tree.attrs)
+    pred = loo_predictive(thin)
+    n = pred.sizes["obs"]
+    mean, sd = pred["loo_mean"].values.reshape(-1, n), pred["loo_sd"].values.reshape(-1, n)
+    centre = mean.mean(axis=0)
+    total = np.sqrt((sd**2).mean(axis=0) + mean.var(axis=0))
+    z = np.asarray(obs["value"].values, dtype=float)
+    z = np.log(z) if fit.spec.transform == "log" else z  # the modelled value
+    out = (z - centre) / total
+    if "censored" in obs:
+        out[np.asarray(obs["censored"].values, dtype=bool)] = np.nan
+    return out
+
+
 def _gis_files(georef, fit, folder: Path, area=None) -> list[Path]:
     """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples
     (:mod:`bayesgeo.predict.gis_export`)."""
@@ -208,6 +236,7 @@ def _gis_files(georef, fit, folder: Path, area=None) -> list[Path]:
     obs, const = fit.tree["observed_data"].to_dataset(), fit.tree["constant_data"].to_dataset()
     samples = xr.Dataset({"x": const["x"], "y": const["y"], "value": obs["value"],
                           **({"censored": obs["censored"]} if "censored" in obs else {})}, coords=obs.coords)
+    samples["loo_residual"] = ("obs", _loo_residuals(fit, obs, georef.attrs.get("draws", LOO_DRAWS)))
     written = write_geotiffs(georef, folder)
     if georef.sizes.get("threshold", 0):
         written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples, area=area))
