@@ -297,3 +297,22 @@ def test_samples_layer_leave_one_out_residuals_match_the_gaussian_identity(tmp_p
     kinv = np.linalg.inv(k)
     ref = (kinv @ (z - mu)) / np.diag(kinv) * np.sqrt(np.diag(kinv))  # (z_i - m_i) / s_i
     np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-9)
+
+
+def test_lonlat_grid_cells_are_square_on_the_ground():
+    """For lon/lat data ``--cell`` is in km and cells are square on the ground at the middle latitude: adjacent
+    centres there are one cell apart east-west and north-south, measured on the sphere of radius 6371.0088 km
+    by pyproj's geodesics (Geod with a = b = R); the file gets non-square degree pixels instead (60 N: a
+    degree of longitude is half a degree of latitude on the ground)."""
+    from bayesgeo.data.targets import grid_targets
+
+    xy = np.column_stack([np.linspace(10.0, 10.1, 20), np.linspace(59.975, 60.025, 20)])
+    g = grid_targets(xy, cell=0.5, metric="greatcircle")
+    x, y = g["x"].values, g["y"].values
+    j = int(np.argmin(np.abs(y - 60.0)))
+    sphere = pyproj.Geod(a=6_371_008.8, b=6_371_008.8)
+    _, _, ew = sphere.inv(x[0], y[j], x[1], y[j])
+    _, _, ns = sphere.inv(x[0], y[j], x[0], y[j + 1])
+    assert ew / 1000 == pytest.approx(0.5, rel=1e-3) and ns / 1000 == pytest.approx(0.5, rel=1e-6)
+    assert g.attrs["cell_units"] == "km" and g.attrs["cell_degrees"][0] == pytest.approx(2 * g.attrs["cell_degrees"][1],
+                                                                                          rel=1e-2)

@@ -23,7 +23,7 @@ def add_arguments(p) -> None:
     from bayesgeo.common.validate import float_option, int_option
 
     p.add_argument("dir", metavar="DIR", help="fit folder holding posterior.nc; outputs are written into it")
-    p.add_argument("--cell", type=float_option("positive"), metavar="SIZE", help="grid cell side (distance units; default: ~100 cells "
+    p.add_argument("--cell", type=float_option("positive"), metavar="SIZE", help="grid cell side (distance units, km for lon/lat data; default: ~100 cells "
                    "along the longer side of the data's bounding box)")
     p.add_argument("--margin", type=float_option("nonnegative"), default=0.0, metavar="M", help="widen the bounding box by M on every side")
     p.add_argument("--site", metavar="NAME", default=None,

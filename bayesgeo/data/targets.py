@@ -45,8 +45,13 @@ _MAX_CELLS = 25_000_000
 
 
 def grid_targets(xy_obs, *, cell: float | None = None, margin: float = 0.0, cells: int = DEFAULT_CELLS,
-                 hull: bool = False) -> xr.Dataset:
+                 hull: bool = False, metric: str = "euclidean") -> xr.Dataset:
     """Regular grid over the bounding box of the data, widened by ``margin``.
+
+    For lon/lat data (``metric="greatcircle"``) ``cell`` and ``margin`` are in km and the cells are square
+    on the ground at the box's middle latitude: the grid is laid out in km on the local equirectangular
+    plane (x = R cos(lat_mid) lon, y = R lat, R = :data:`bayesgeo.common.geometry.EARTH_RADIUS_KM`) and
+    its centres are given back in degrees, so a cell is ``cell`` km wide in both directions there.
 
     Parameters
     ----------
@@ -68,6 +73,8 @@ def grid_targets(xy_obs, *, cell: float | None = None, margin: float = 0.0, cell
         ``cell``, ``margin``, ``hull_mask``.
     """
     xy = np.asarray(xy_obs, dtype=float)
+    if metric == "greatcircle":
+        return _lonlat_grid(xy, cell=cell, margin=margin, cells=cells, hull=hull)
     if not (np.isfinite(margin) and margin >= 0):
         raise InputError(f"margin: expected a number >= 0, got {margin!r}")
     x0, y0 = xy.min(axis=0) - margin
@@ -92,6 +99,27 @@ def grid_targets(xy_obs, *, cell: float | None = None, margin: float = 0.0, cell
                             "y": ("y", gy, {"long_name": "y of cell centre"})})
     ds.attrs.update({"kind": "grid", "cell": float(cell), "margin": float(margin), "hull_mask": int(bool(hull))})
     return ds
+
+
+def _lonlat_grid(xy: np.ndarray, *, cell, margin, cells, hull) -> xr.Dataset:
+    """:func:`grid_targets` for lon/lat data: laid out in km on the local plane, centres in degrees."""
+    from bayesgeo.common.geometry import EARTH_RADIUS_KM
+
+    lat_mid = 0.5 * (xy[:, 1].min() + xy[:, 1].max())
+    ky = math.pi * EARTH_RADIUS_KM / 180.0  # km per degree of latitude
+    kx = ky * math.cos(math.radians(lat_mid))  # km per degree of longitude at the middle latitude
+    km = grid_targets(xy * [kx, ky], cell=cell, margin=margin, cells=cells)
+    out = km.assign_coords(x=("x", km["x"].values / kx, {"long_name": "longitude of cell centre",
+                                                        "units": "degrees_east"}),
+                           y=("y", km["y"].values / ky, {"long_name": "latitude of cell centre",
+                                                        "units": "degrees_north"}))
+    if hull:
+        xx, yy = np.meshgrid(out["x"].values, out["y"].values)
+        out["inside"] = (("y", "x"), hull_mask(xy, np.column_stack([xx.ravel(), yy.ravel()])).reshape(xx.shape),
+                         dict(out["inside"].attrs))
+    out.attrs.update({"hull_mask": int(bool(hull)), "cell_units": "km", "cell_degrees": [km.attrs["cell"] / kx,
+                                                                                        km.attrs["cell"] / ky]})
+    return out
 
 
 def hull_mask(xy_obs, xy_new) -> np.ndarray:

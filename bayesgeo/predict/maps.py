@@ -67,7 +67,7 @@ def predict_map(fit: Fit | xr.DataTree, targets: xr.Dataset | None = None, *, ce
                                 "pass allow_unconverged=True to predict anyway, marked NOT CONVERGED")
     basis, spec, _ = basis_from_fit(fit, draws=draws)
     if targets is None:
-        targets = tg.grid_targets(basis.xy, cell=cell, margin=margin, hull=hull)
+        targets = tg.grid_targets(basis.xy, cell=cell, margin=margin, hull=hull, metric=basis.metric)
     pred = predict_targets(basis, targets, thresholds=thresholds, include_nugget=include_nugget,
                            design_attrs=spec.design_attrs, scheduler=scheduler, units=spec.value_units,
                            progress=progress)

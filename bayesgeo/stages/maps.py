@@ -124,7 +124,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         if hull_mask:
             targets["inside"] = ("target", tg.hull_mask(xy, np.column_stack([targets["x"], targets["y"]])))
     else:
-        targets = tg.grid_targets(xy, cell=cell, margin=margin, hull=hull_mask)
+        targets = tg.grid_targets(xy, cell=cell, margin=margin, hull=hull_mask, metric=basis.metric)
     units = spec.value_units
     n_cells = int(np.count_nonzero(targets["inside"].values))
     area_pts = None  # refuse a bad area or simulation before the long prediction, not after it
