@@ -186,6 +186,7 @@ def test_report_pdf_is_a4_numbered_and_carries_the_cautions(run):
     if not (root / "report.pdf").is_file():
         pytest.skip(f"report.pdf {manifest.get('report_pdf')}")
     assert manifest["report_pdf"] == "report.pdf"
+    assert set(manifest["coordinates"]) >= {"crs", "crs_name", "coords", "distance_units"}
     reader = pypdf.PdfReader(root / "report.pdf")
     n = len(reader.pages)
     box = reader.pages[0].mediabox

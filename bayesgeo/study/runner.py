@@ -55,7 +55,8 @@ from bayesgeo.study.manifest import MANIFEST_FILE, file_table, new_manifest, utc
 from bayesgeo.study.settings import Study, areas_of, read_study, study_line
 from bayesgeo.common.validate import InputError
 
-__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "site_areas", "EXIT_OK", "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
+__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "study_coordinates", "site_areas", "EXIT_OK",
+           "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
 
 EXIT_OK = 0
 EXIT_STAGE_FAILED = 1
@@ -108,6 +109,16 @@ def _explore_argv(kw: dict) -> list[str]:
     if kw["lag_limit"] is not None:
         argv += ["--lag-limit", repr(kw["lag_limit"])]
     return argv
+
+
+def study_coordinates(study: Study) -> dict:
+    """The coordinates the study's analysis uses: ``crs`` (WKT, "" when not stated), ``crs_name``,
+    ``source_crs_name`` (after a projection), ``coords`` and ``distance_units`` (reads the study's data)."""
+    from bayesgeo.data.points import read_points, read_settings
+
+    d = study.settings["data"]
+    attrs = read_points(d["path"], **read_settings(d)).attrs
+    return {k: str(attrs.get(k, "")) for k in ("crs", "crs_name", "source_crs_name", "coords", "distance_units")}
 
 
 def study_sites(study: Study) -> dict[str, "object"]:
@@ -372,6 +383,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
                             argv=argv)
     if sites:
         manifest["sites"] = {label: int(len(xy)) for label, xy in sites.items()}
+    manifest["coordinates"] = study_coordinates(study)
     say = log or (lambda _msg: None)
     fams = study.families
     status, message, selected = EXIT_OK, "done", fams[0]
