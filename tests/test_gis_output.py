@@ -316,3 +316,20 @@ def test_lonlat_grid_cells_are_square_on_the_ground():
     assert ew / 1000 == pytest.approx(0.5, rel=1e-3) and ns / 1000 == pytest.approx(0.5, rel=1e-6)
     assert g.attrs["cell_units"] == "km" and g.attrs["cell_degrees"][0] == pytest.approx(2 * g.attrs["cell_degrees"][1],
                                                                                           rel=1e-2)
+
+
+def test_decision_levels_are_configurable(tmp_path, capsys):
+    """``--decision-level`` (repeatable) sets the probability levels of the exceedance polygons (and contours);
+    a level outside (0, 1) is refused with exit status 2."""
+    from pyogrio.raw import read
+    from test_cli_map import _fit_folder
+
+    from bayesgeo.cli import main
+
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert main(["map", str(folder), "--cell", "25", "--draws", "10", "--threshold", "40", "--decision-level", "0.8",
+                 "--decision-level", "0.95", "--decision-level", "0.2", "--json"]) == 0
+    capsys.readouterr()
+    meta, _, _, fields = read(folder / "maps" / "map.gpkg", layer="exceedance")
+    assert sorted(fields[list(meta["fields"]).index("probability_level")]) == [0.2, 0.8, 0.95]
+    assert main(["map", str(folder), "--decision-level", "1.5", "--overwrite", "--json"]) == 2

@@ -16,7 +16,7 @@ HELP = "predictive maps (mean, sd, quantiles, exceedance probabilities) and area
 
 #: Library argument -> option, where the names differ (errors of the stage name the argument).
 ARGUMENT_OPTIONS = {"thresholds": "--threshold", "figures": "--no-figures", "chunk_cells": "--chunk-cells",
-                    "hull_mask": "--hull-mask"}
+                    "hull_mask": "--hull-mask", "levels": "--decision-level"}
 
 
 def add_arguments(p) -> None:
@@ -32,6 +32,8 @@ def add_arguments(p) -> None:
                    "instead of a grid")
     p.add_argument("--threshold", type=float_option("any"), action="append", default=[], metavar="T",
                    help="level for exceedance probabilities, data units (repeatable)")
+    p.add_argument("--decision-level", type=float_option("probability"), action="append", default=None, metavar="P",
+                   help="probability level of the exceedance contours and polygons (repeatable; default 0.5 and 0.9)")
     p.add_argument("--area", metavar="FILE|xmin,ymin,xmax,ymax",
                    help="area to average over: a CSV of polygon vertices (x,y) or a rectangle")
     p.add_argument("--draws", default=str(DEFAULT_DRAWS), metavar="N",
@@ -66,7 +68,7 @@ def run(args) -> int:
         area=args.area, draws=args.draws, nugget=args.nugget, hull_mask=args.hull_mask,
         scheduler=args.scheduler, chunk_cells=args.chunk_cells, simulate=args.simulate, seed=args.seed,
         overwrite=args.overwrite, allow_unconverged=args.allow_unconverged, figures=not args.no_figures,
-        progress=None if args.json else progress)
+        levels=tuple(args.decision_level or (0.5, 0.9)), progress=None if args.json else progress)
     if args.json:
         emit_json(result)
     elif status:

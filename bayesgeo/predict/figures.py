@@ -35,7 +35,7 @@ def _edges(c: np.ndarray) -> np.ndarray:
 
 
 def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None, samples_xy=None,
-               title: str = "", caution: str = "", not_converged: bool = False):
+               title: str = "", caution: str = "", not_converged: bool = False, levels=CONTOURS):
     """One map of ``pred[variable]`` (``p_exceed`` needs the ``threshold`` index).
 
     Parameters
@@ -53,6 +53,8 @@ def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None,
         Footer text (wrapped).
     not_converged : bool
         Prefix the title with ``NOT CONVERGED``.
+    levels : sequence of float
+        Decision levels drawn as contours on an exceedance map (default :data:`CONTOURS`).
 
     Returns
     -------
@@ -83,9 +85,12 @@ def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None,
         tunits = pred["threshold"].attrs.get("units") or pred["mean"].attrs.get("units", "")
         cb.set_label(f"probability of exceeding {t:g} {tunits}".rstrip())
         if pred.attrs.get("target_kind") == "grid" and min(da.shape) > 1:
-            cs = ax.contour(x, y, np.ma.masked_invalid(da.values), levels=list(CONTOURS), colors=["white", "black"],
-                            linewidths=[1.0, 1.4], linestyles=["dashed", "solid"])
-            ax.clabel(cs, fmt={lv: f"P = {lv:g}" for lv in CONTOURS}, fontsize=7)
+            lv = sorted(float(v) for v in levels)
+            top = [i == len(lv) - 1 for i in range(len(lv))]  # the highest level solid black, the others dashed
+            cs = ax.contour(x, y, np.ma.masked_invalid(da.values), levels=lv, linewidths=1.2,
+                            colors=["black" if t else "white" for t in top],
+                            linestyles=["solid" if t else "dashed" for t in top])
+            ax.clabel(cs, fmt={v: f"P = {v:g}" for v in lv}, fontsize=7)
     else:
         name = _NAMES.get(variable, variable)
         cb.set_label(f"{name} [{units}]" if units and units != "1" else name)
@@ -137,7 +142,7 @@ def threshold_label(t: float) -> str:
 
 
 def write_map_figures(pred: xr.Dataset, folder: str | Path, *, samples_xy=None, caution: str = "",
-                      not_converged: bool = False, overwrite: bool = False) -> list[Path]:
+                      not_converged: bool = False, overwrite: bool = False, levels=CONTOURS) -> list[Path]:
     """Write ``mean.png``, ``sd.png`` and ``p_exceed_<T>.png`` (one per threshold) into ``folder``.
 
     Files are written atomically; an existing file is refused unless ``overwrite``.
@@ -153,7 +158,7 @@ def write_map_figures(pred: xr.Dataset, folder: str | Path, *, samples_xy=None, 
     site = f" - site {pred.attrs['site']}" if pred.attrs.get("site") else ""  # the label the folder name may abbreviate
     for var, j, title, name in jobs:
         fig = map_figure(pred, var, threshold=j, samples_xy=samples_xy, title=title + site, caution=caution,
-                         not_converged=not_converged)
+                         levels=levels, not_converged=not_converged)
         with atomic_file(folder / name, overwrite=overwrite) as tmp:
             fig.savefig(tmp, format="png", dpi=110)
         written.append(folder / name)

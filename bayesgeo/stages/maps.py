@@ -45,7 +45,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
             points: str | Path | None = None, thresholds: Sequence[float] = (), area: str | None = None,
             draws=DEFAULT_DRAWS, nugget: str = "include", hull_mask: bool = False, scheduler: str = "threads",
             chunk_cells: int = 4096, simulate: int = 0, seed: int = 0, overwrite: bool = False,
-            allow_unconverged: bool = False, figures: bool = True,
+            allow_unconverged: bool = False, figures: bool = True, levels: Sequence[float] = (0.5, 0.9),
             progress: Callable | None = None) -> tuple[int, dict]:
     """Predict on a grid (or at ``points``) from the fit in ``folder`` and write predictions and maps.
 
@@ -74,6 +74,8 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         (also that of the area average).
     overwrite, allow_unconverged, figures :
         Replace earlier outputs; map a fit that failed its check (marked NOT CONVERGED); draw the maps.
+    levels : sequence of float
+        Probability levels in (0, 1) of the exceedance contours and of the polygons of map.gpkg.
     progress : callable, optional
         Bar factory ``progress(total=, desc=)`` (:func:`bayesgeo.cli._common.progress`); None for none.
 
@@ -94,6 +96,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     draws = map_draws(draws)
     check_scheduler(scheduler)
     chunk = check_positive_int(chunk_cells, "chunk_cells")
+    levels = tuple(float(v) for v in levels)
+    if not levels or not all(0.0 < v < 1.0 for v in levels):
+        raise InputError(f"levels: decision levels must be probabilities in (0, 1), got {list(levels)}")
     if cell is not None:
         check_positive(cell, "cell")
     if not (np.isfinite(margin) and margin >= 0):
@@ -178,9 +183,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
 
         with add_to_folder(folder, out_maps.name, overwrite=overwrite, kind="dir") as tmp:
             written = write_map_figures(pred, tmp, samples_xy=xy, caution=" ".join(cautions),
-                                        not_converged=not_converged)
+                                        not_converged=not_converged, levels=levels)
             if targets.attrs["kind"] == "grid":
-                written += _gis_files(georef, fit, tmp, None if block is None else (area_vertices[0], block))
+                written += _gis_files(georef, fit, tmp, None if block is None else (area_vertices[0], block), levels)
         maps = [str(out_maps / p.name) for p in written]
 
     result = {
@@ -226,7 +231,7 @@ def _loo_residuals(fit, obs, draws: int) -> np.ndarray:
     return out
 
 
-def _gis_files(georef, fit, folder: Path, area=None) -> list[Path]:
+def _gis_files(georef, fit, folder: Path, area=None, levels=(0.5, 0.9)) -> list[Path]:
     """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples
     (:mod:`bayesgeo.predict.gis_export`)."""
     import xarray as xr
@@ -239,7 +244,7 @@ def _gis_files(georef, fit, folder: Path, area=None) -> list[Path]:
     samples["loo_residual"] = ("obs", _loo_residuals(fit, obs, georef.attrs.get("draws", LOO_DRAWS)))
     written = write_geotiffs(georef, folder)
     if georef.sizes.get("threshold", 0):
-        written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples, area=area))
+        written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples, area=area, levels=levels))
     return written
 
 
