@@ -239,8 +239,15 @@ def _gis_files(georef, fit, folder: Path, area=None, levels=(0.5, 0.9)) -> list[
     from bayesgeo.predict.gis_export import write_geopackage, write_geotiffs
 
     obs, const = fit.tree["observed_data"].to_dataset(), fit.tree["constant_data"].to_dataset()
-    samples = xr.Dataset({"x": const["x"], "y": const["y"], "value": obs["value"],
-                          **({"censored": obs["censored"]} if "censored" in obs else {})}, coords=obs.coords)
+
+    def column(name):  # a variable or coordinate of the fit's data groups (a site view keeps x, y as coordinates)
+        return np.asarray(next(ds[name].values for ds in (const, obs) if name in ds.variables))
+
+    samples = xr.Dataset({k: ("obs", column(k)) for k in ("x", "y", "value")})
+    if "censored" in obs.variables:
+        samples["censored"] = ("obs", column("censored").astype(bool))
+    if "row" in obs.variables or "row" in const.variables:
+        samples = samples.assign_coords(row=("obs", column("row")))
     samples["loo_residual"] = ("obs", _loo_residuals(fit, obs, georef.attrs.get("draws", LOO_DRAWS)))
     written = write_geotiffs(georef, folder)
     if georef.sizes.get("threshold", 0):
