@@ -66,7 +66,7 @@ def resolve_crs(file_crs: str | None, option: str | None, src: str):
 
 def _label(crs) -> str:
     code = crs.to_epsg()
-    return f"EPSG:{code} ({crs.name})" if code else repr(crs.name)
+    return f"EPSG:{code} ({crs.name})" if code else str(crs.name)
 
 
 def crs_unit(crs) -> str:

@@ -2,8 +2,8 @@
 
 :func:`write_pdf` renders ``report.html``'s text with the print style sheet of
 :data:`bayesgeo.report.writer.REPORT_CSS` (A4, page numbers "page N of M" at the foot, headings kept
-with what follows, tables and figures not split, figures at most half a page high so that two share a
-page) into ``report.pdf``, atomically. WeasyPrint needs the Pango text libraries of the operating
+with what follows, figures not split, long tables split between rows with their header repeated, small
+table type, figures at most half a page high so that two share a page) into ``report.pdf``, atomically. WeasyPrint needs the Pango text libraries of the operating
 system; where it or they are missing the PDF is skipped with a one-line reason and the HTML stays the
 report (the HTML is always written first).
 """
@@ -23,8 +23,10 @@ PDF_CSS = """
 @bottom-left{content:string(title);font-size:8pt;color:#555}}
 h1{string-set:title content()}
 body{max-width:none;margin:0;font-size:10pt}nav{display:none}
-h2,h3,h4{break-after:avoid}table,figure,.banner,.ok,.warn{break-inside:avoid}
+h2,h3,h4{break-after:avoid}figure,.banner,.ok,.warn{break-inside:avoid}table{break-inside:auto}
+tr{break-inside:avoid}
 figure img{max-height:120mm;width:auto;max-width:100%}a{color:inherit;text-decoration:none}pre{font-size:7.5pt}
+table{font-size:7pt}th,td{padding:1pt 3pt}td{white-space:nowrap}
 """
 
 
@@ -44,9 +46,9 @@ def write_pdf(html_text: str, path: str | Path, *, overwrite: bool = False) -> t
     renderer, reason = pdf_renderer()
     if renderer is None:
         return None, reason
-    from weasyprint import CSS
-
+    # after the page's own style sheet, so that these rules win the cascade (a user style sheet would lose)
+    text = html_text.replace("</head>", f"<style>{PDF_CSS}</style>\n</head>", 1)
     path = Path(path)
     with atomic_file(path, overwrite=overwrite) as tmp:
-        renderer(string=html_text, base_url=str(path.parent)).write_pdf(tmp, stylesheets=[CSS(string=PDF_CSS)])
+        renderer(string=text, base_url=str(path.parent)).write_pdf(tmp)
     return path, ""

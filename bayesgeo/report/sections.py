@@ -112,12 +112,15 @@ def contents(ctx: Ctx) -> str:
 
 
 def _shown_path(path) -> str:
-    """A path as the report shows it: the path itself, or only the name when the file is gone (a scratch file
-    of the run, such as the demo's; its copy is in the run's inputs/)."""
+    """A path as the report shows it: the path itself, or only the name when the file is gone or lies in the
+    system's temporary folder (a scratch file, such as the demo's; its copy is in the run's inputs/)."""
+    import tempfile
+
     if not path:
         return ""
     p = Path(str(path))
-    return str(p) if p.exists() else f"{p.name} (a temporary file; its copy is in inputs/)"
+    scratch = p.resolve().is_relative_to(Path(tempfile.gettempdir()).resolve())
+    return f"{p.name} (a temporary file; its copy is in inputs/)" if scratch or not p.exists() else str(p)
 
 
 def job(ctx: Ctx) -> str:
