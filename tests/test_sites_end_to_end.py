@@ -112,8 +112,9 @@ def test_check_has_a_block_per_site(run):
 
 
 def test_map_writes_one_prediction_file_per_site(run):
-    """map --site NAME writes predictions_<NAME>.nc (and maps_<NAME>/ with figures) for every site;
-    exceedance probabilities of the threshold lie in [0, 1] and the cautions name local regulation."""
+    """map --site NAME writes predictions_<NAME>.nc (and maps_<NAME>/ with figures, GeoTIFFs and the GeoPackage)
+    for every site; exceedance probabilities of the threshold lie in [0, 1] and the cautions name local
+    regulation."""
     hier = run["root"] / "hier"
     for k, (site, (code, obj, _)) in enumerate(run["map"].items()):
         assert code == 0, obj
@@ -124,6 +125,11 @@ def test_map_writes_one_prediction_file_per_site(run):
         assert obj["threshold"] == [THRESHOLD] and obj["cells"] > 0
         assert any("regulat" in c for c in obj["cautions"])
         assert (hier / f"maps_{site}").is_dir() == (k == 0)
+    first = hier / f"maps_{next(iter(SITES))}"  # a site's GIS files hold that site's samples only
+    from pyogrio.raw import read
+
+    meta, _, geom, _ = read(first / "map.gpkg", layer="samples")
+    assert len(geom) == SITES[next(iter(SITES))] and (first / "mean.tif").is_file()
 
 
 def test_compare_hierarchical_against_independent(run):
