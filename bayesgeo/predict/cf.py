@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
-__all__ = ["georeferenced", "GRID_MAPPING"]
+__all__ = ["georeferenced", "georeferenced_fit_map", "GRID_MAPPING"]
 
 #: Name of the grid-mapping variable.
 GRID_MAPPING = "crs"
@@ -73,3 +73,15 @@ def georeferenced(pred: xr.Dataset, *, crs_wkt: str = "", coords: str = "xy", di
             if name != GRID_MAPPING and spatial <= set(var.dims):
                 var.attrs["grid_mapping"] = GRID_MAPPING
     return out
+
+
+def georeferenced_fit_map(pred: xr.Dataset, fit) -> tuple[xr.Dataset, xr.Dataset]:
+    """Record the CRS of ``fit``'s data on its predictions ``pred`` (attributes ``crs_name``, ``coords``, in
+    place) and return ``(pred, georeferenced copy)``: the one place both ``bayesgeo map`` and
+    :func:`bayesgeo.predict.maps.predict_map` take a fit's CRS from (``settings["data"]``)."""
+    data = fit.settings.get("data") or {}
+    spec = fit.spec
+    pred.attrs["crs_name"] = str(data.get("crs_name", ""))
+    pred.attrs["coords"] = "lonlat" if spec.metric == "greatcircle" else "xy"
+    return pred, georeferenced(pred, crs_wkt=str(data.get("crs", "")), coords=pred.attrs["coords"],
+                               distance_units=spec.distance_units)

@@ -48,7 +48,8 @@ def predict_map(fit: Fit | xr.DataTree, targets: xr.Dataset | None = None, *, ce
     -------
     xarray.Dataset
         :func:`bayesgeo.predict.prediction.predict_targets` output, with ``convergence_verdict`` and
-        ``cautions`` (JSON) attributes.
+        ``cautions`` (JSON) attributes, georeferenced as ``bayesgeo map`` writes it
+        (:func:`bayesgeo.predict.cf.georeferenced`: CF coordinates, the fit's CRS, grids north-up).
 
     Raises
     ------
@@ -72,5 +73,7 @@ def predict_map(fit: Fit | xr.DataTree, targets: xr.Dataset | None = None, *, ce
                            design_attrs=spec.design_attrs, scheduler=scheduler, units=spec.value_units,
                            progress=progress)
     label_prediction(pred, spec.transform, verdict)
-    return pred
+    from bayesgeo.predict.cf import georeferenced_fit_map
+
+    return georeferenced_fit_map(pred, fit)[1]  # as bayesgeo map writes it: CF coordinates, the CRS, north-up
 

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from bayesgeo.common.layout import prediction_names
-from bayesgeo.predict.cf import georeferenced
+from bayesgeo.predict.cf import georeferenced_fit_map
 from bayesgeo.common.validate import INT_LIMITS, InputError, check_positive, check_positive_int
 
 __all__ = ["DEFAULT_DRAWS", "map_fit", "map_draws"]
@@ -170,11 +170,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     })
     if block is not None:
         pred.attrs["area_average"] = json.dumps(block)
-    data = fit.settings.get("data") or {}
-    pred.attrs["crs_name"] = str(data.get("crs_name", ""))
-    pred.attrs["coords"] = "lonlat" if spec.metric == "greatcircle" else "xy"
-    georef = georeferenced(pred, crs_wkt=str(data.get("crs", "")), distance_units=spec.distance_units,
-                           coords=pred.attrs["coords"])
+    pred, georef = georeferenced_fit_map(pred, fit)
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
         georef.to_netcdf(tmp, engine="netcdf4")
     maps = []
