@@ -59,18 +59,13 @@ def _template(args):
     if args.study and args.data:
         raise InputError("--study and --data: give one of them, not both")
     if args.study:
-        from types import SimpleNamespace
-
+        from bayesgeo.data.points import read_points, read_settings
         from bayesgeo.study.settings import read_study
 
         st = read_study(args.study)
         d = st["data"]
-        ns = SimpleNamespace(data=str(d["path"]), x=d.get("x"), y=d.get("y"), value=d.get("value"),
-                             limit=d.get("limit"), detected=d.get("detected"), site=d.get("site"),
-                             covariate=[], coords=d.get("coords", "auto"), duplicates=d.get("duplicates", "error"),
-                             units=d.get("units"), distance_units=d.get("distance_units"), only_site=d.get("only_site"),
-                             crs=d.get("crs"), to_crs=d.get("to_crs"), layer=d.get("layer"))
-        return read_data(ns), st
+        layout = {k: v for k, v in read_settings(d).items() if k != "covariates"}  # locations only
+        return read_points(d["path"], **layout), st
     if args.data:
         args.covariate = []
         return read_data(args), None

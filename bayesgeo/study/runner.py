@@ -55,7 +55,7 @@ from bayesgeo.study.manifest import MANIFEST_FILE, file_table, new_manifest, utc
 from bayesgeo.study.settings import Study, areas_of, read_study, study_line
 from bayesgeo.common.validate import InputError
 
-__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "study_coordinates", "site_areas", "EXIT_OK",
+__all__ = ["run_study", "stage_commands", "stage_calls", "study_sites", "site_areas", "EXIT_OK",
            "EXIT_STAGE_FAILED", "EXIT_NOT_CONVERGED", "REPORT_FILE"]
 
 EXIT_OK = 0
@@ -72,22 +72,21 @@ def _run_stage(call: tuple[Callable, dict]) -> tuple[int, dict]:
 
 def _data_call(study: Study) -> dict:
     """The data keyword arguments every reading stage takes (:func:`bayesgeo.stages.fit.read_kwargs`)."""
+    from bayesgeo.data.points import READ_KEYS
+
     d = study.settings["data"]
-    return {"data": d["path"], "x": d["x"], "y": d["y"], "value": d["value"], "limit": d["limit"],
-            "detected": d["detected"], "site": d["site"], "units": d["units"],
-            "distance_units": d["distance_units"], "coords": d["coords"], "duplicates": d["duplicates"],
-            "crs": d["crs"], "to_crs": d["to_crs"], "layer": d["layer"],
+    return {"data": d["path"], **{k: d[k] for k in READ_KEYS},
             "covariates": list(study.settings["model"]["covariates"])}
 
 
 def _data_argv(kw: dict) -> list[str]:
     """The data options of the call ``kw`` on a command line."""
+    from bayesgeo.data.points import READ_KEYS
+
     argv = [str(kw["data"])]
-    for key, opt in (("x", "--x"), ("y", "--y"), ("value", "--value"), ("limit", "--limit"), ("detected", "--detected"),
-                     ("site", "--site"), ("units", "--units"), ("distance_units", "--distance-units"),
-                     ("crs", "--crs"), ("to_crs", "--to-crs"), ("layer", "--layer")):
-        if kw[key]:
-            argv += [opt, kw[key]]
+    for key in READ_KEYS:  # each read setting is the option of its name (--distance-units, --to-crs, ...)
+        if key not in ("covariates", "coords", "duplicates") and kw[key]:
+            argv += [f"--{key.replace('_', '-')}", kw[key]]
     argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
     for c in kw["covariates"]:
         argv += ["--covariate", c]
@@ -111,24 +110,28 @@ def _explore_argv(kw: dict) -> list[str]:
     return argv
 
 
-def study_coordinates(study: Study) -> dict:
-    """The coordinates the study's analysis uses: ``crs`` (WKT, "" when not stated), ``crs_name``,
-    ``source_crs_name`` (after a projection), ``coords`` and ``distance_units`` (reads the study's data)."""
+def _study_points(study: Study):
+    """The study's point data, read as every stage reads them."""
     from bayesgeo.data.points import read_points, read_settings
 
     d = study.settings["data"]
-    attrs = read_points(d["path"], **read_settings(d)).attrs
-    return {k: str(attrs.get(k, "")) for k in ("crs", "crs_name", "source_crs_name", "coords", "distance_units")}
+    return read_points(d["path"], **read_settings(d))
 
 
-def study_sites(study: Study) -> dict[str, "object"]:
-    """Site label -> (n, 2) coordinates of that site's points, in file order (reads the study's data)."""
+def _coordinates(ds) -> dict:
+    """The coordinates an analysis of ``ds`` uses: ``crs`` (WKT, "" when not stated), ``crs_name``,
+    ``source_crs_name`` (after a projection), ``coords`` and ``distance_units``."""
+    return {k: str(ds.attrs.get(k, "")) for k in ("crs", "crs_name", "source_crs_name", "coords", "distance_units")}
+
+
+def study_sites(study: Study, ds=None) -> dict[str, "object"]:
+    """Site label -> (n, 2) coordinates of that site's points, in file order (reads the study's data unless
+    ``ds``, the data already read, is given)."""
     import numpy as np
 
-    from bayesgeo.data.points import read_points, read_settings, sites_of
+    from bayesgeo.data.points import sites_of
 
-    d = study.settings["data"]
-    ds = read_points(d["path"], **read_settings(d))
+    ds = _study_points(study) if ds is None else ds
     xy = np.column_stack([ds["x"].values, ds["y"].values])
     labels = ds["site"].values if "site" in ds.coords else np.array([""] * len(xy))
     return {lb: xy[labels == lb] for lb in sites_of(ds)}
@@ -378,12 +381,13 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
         if isinstance(extra, Path):
             inputs.append(extra)
     claim(out, overwrite=overwrite, inputs=inputs, option=option)
-    sites = study_sites(study) if study.several_sites else {}
+    points = _study_points(study)  # read once: the sites and the coordinates the manifest records
+    sites = study_sites(study, points) if study.several_sites else {}
     manifest = new_manifest(study_path=study.path, study_text=study.text, settings=study.to_dict(), inputs=inputs,
                             argv=argv)
     if sites:
         manifest["sites"] = {label: int(len(xy)) for label, xy in sites.items()}
-    manifest["coordinates"] = study_coordinates(study)
+    manifest["coordinates"] = _coordinates(points)
     say = log or (lambda _msg: None)
     fams = study.families
     status, message, selected = EXIT_OK, "done", fams[0]
