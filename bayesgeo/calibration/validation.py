@@ -88,7 +88,7 @@ def _replicate(unit) -> dict:
         from bayesgeo.calibration.censoring import censored_template
         from bayesgeo.fitting.sampling import compile_model
 
-        spec = p["trend"]["spec"] if p["trend"] else p["spec"]
+        spec = p["spec"]
         tpl = censored_template(p["template"], p["ys"][0], p["censored"], spec.value_mean, spec.value_sd)
         compiled = base = compile_model(sbc_model(tpl, cfg, fixed=spec)[0])
     else:
@@ -103,12 +103,11 @@ def _replicate(unit) -> dict:
                   max_draws=longest_chain(cfg.draws, cfg.max_draws))
     post = tree["posterior"].to_dataset()
     if p["trend"] is not None:  # integrated out: exact conditional draws, as bayesgeo.fitting.posterior.fit makes them
+        from bayesgeo.fitting.posterior import values_per_draw
         from bayesgeo.gp.trend_posterior import draw_trend
 
-        from bayesgeo.fitting.posterior import values_per_draw
-
         t, cens = p["trend"], np.flatnonzero(p["censored"]) if p["censored"] is not None else np.zeros(0, int)
-        post["beta_z"] = draw_trend(post, t["spec"], values_per_draw(p["ys"][0], cens, post), t["design"], t["dist"],
+        post["beta_z"] = draw_trend(post, p["spec"], values_per_draw(p["ys"][0], cens, post), t["design"], t["dist"],
                                     seed=[int(unit.seed % (2**31 - 1)), 3])
         names = [*names, "beta_z"]
         attrs = dict(tree.attrs)
@@ -192,7 +191,7 @@ def simulation_based_calibration(template: xr.Dataset, config: SBCConfig = QUICK
             ys[0], mask = censor(ys[0], limit)
         payloads.append({"key": key, "template": template, "config": config, "ys": ys, "truth": items, "spec": spec,
                          "censored": mask,
-                         "trend": None if "beta_z" in model.named_vars else {"spec": spec, **blocks[0]}})
+                         "trend": None if "beta_z" in model.named_vars else blocks[0]})
         truths.append(items)
     units = make_units(payloads, seed)
     results = run_units(_replicate, units, scheduler=scheduler, workers=workers, progress=progress)

@@ -61,6 +61,7 @@ def run(args) -> int:
     import sys
 
     from bayesgeo.cli._common import emit_json, progress
+    from bayesgeo.predict.figures import DECISION_LEVELS
     from bayesgeo.stages.maps import map_fit
 
     status, result = map_fit(
@@ -68,7 +69,7 @@ def run(args) -> int:
         area=args.area, draws=args.draws, nugget=args.nugget, hull_mask=args.hull_mask,
         scheduler=args.scheduler, chunk_cells=args.chunk_cells, simulate=args.simulate, seed=args.seed,
         overwrite=args.overwrite, allow_unconverged=args.allow_unconverged, figures=not args.no_figures,
-        levels=tuple(args.decision_level or (0.5, 0.9)), progress=None if args.json else progress)
+        levels=tuple(args.decision_level or DECISION_LEVELS), progress=None if args.json else progress)
     if args.json:
         emit_json(result)
     elif status:

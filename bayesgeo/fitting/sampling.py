@@ -17,8 +17,8 @@ import xarray as xr
 from bayesgeo.common.validate import check_choice, check_float, check_int
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 
-__all__ = ["SAMPLERS", "ADAPTATIONS", "CompiledModel", "chain_lengths", "compile_model", "first_draws", "sample",
-           "new_seed"]
+__all__ = ["SAMPLERS", "ADAPTATIONS", "CompiledModel", "chain_lengths", "compile_model", "first_draws",
+           "select_draws", "sample", "new_seed"]
 
 #: NUTS implementations offered.
 SAMPLERS = ("nutpie", "pymc")
@@ -200,10 +200,16 @@ def chain_lengths(draws: int, max_draws: int) -> list[int]:
 
 def first_draws(tree: xr.DataTree, k: int) -> xr.DataTree:
     """The first ``k`` draws of every chain in every group of ``tree`` that has a ``draw`` dim."""
+    return select_draws(tree, slice(0, k))
+
+
+def select_draws(tree: xr.DataTree, draws: slice) -> xr.DataTree:
+    """The draws ``draws`` (a slice along ``draw``, e.g. every k-th) of every chain in every group of ``tree``
+    that has a ``draw`` dim; other groups and the attributes as they are."""
     groups = {}
     for name, node in tree.children.items():
         ds = node.to_dataset()
-        groups[f"/{name}"] = ds.isel(draw=slice(0, k)) if "draw" in ds.dims else ds
+        groups[f"/{name}"] = ds.isel(draw=draws) if "draw" in ds.dims else ds
     out = xr.DataTree.from_dict(groups)
     out.attrs = dict(tree.attrs)
     return out

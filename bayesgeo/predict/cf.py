@@ -75,13 +75,13 @@ def georeferenced(pred: xr.Dataset, *, crs_wkt: str = "", coords: str = "xy", di
     return out
 
 
-def georeferenced_fit_map(pred: xr.Dataset, fit) -> tuple[xr.Dataset, xr.Dataset]:
-    """Record the CRS of ``fit``'s data on its predictions ``pred`` (attributes ``crs_name``, ``coords``, in
-    place) and return ``(pred, georeferenced copy)``: the one place both ``bayesgeo map`` and
-    :func:`bayesgeo.predict.maps.predict_map` take a fit's CRS from (``settings["data"]``)."""
+def georeferenced_fit_map(pred: xr.Dataset, fit) -> xr.Dataset:
+    """Record the CRS of ``fit``'s data on its predictions ``pred`` (attributes ``crs_name`` and ``coords``, set
+    in place for the figures drawn from ``pred``) and return the georeferenced copy: the one place both
+    ``bayesgeo map`` and :func:`bayesgeo.predict.maps.predict_map` take a fit's CRS from (``settings["data"]``)."""
     data = fit.settings.get("data") or {}
     spec = fit.spec
     pred.attrs["crs_name"] = str(data.get("crs_name", ""))
     pred.attrs["coords"] = "lonlat" if spec.metric == "greatcircle" else "xy"
-    return pred, georeferenced(pred, crs_wkt=str(data.get("crs", "")), coords=pred.attrs["coords"],
-                               distance_units=spec.distance_units)
+    return georeferenced(pred, crs_wkt=str(data.get("crs", "")), coords=pred.attrs["coords"],
+                         distance_units=spec.distance_units)

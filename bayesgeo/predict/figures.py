@@ -17,12 +17,13 @@ import xarray as xr
 
 from bayesgeo.common.io import atomic_file
 
-__all__ = ["NOT_CONVERGED", "CONTOURS", "map_figure", "threshold_label", "write_map_figures"]
+__all__ = ["NOT_CONVERGED", "DECISION_LEVELS", "map_figure", "threshold_label", "write_map_figures"]
 
 #: Marker put in titles and file attributes when an unconverged posterior is shown on request.
 NOT_CONVERGED = "NOT CONVERGED"
-#: Probability levels drawn as contours on exceedance maps.
-CONTOURS = (0.5, 0.9)
+#: Default decision levels: the probabilities of exceedance drawn as contours on exceedance maps and made
+#: into the polygons of map.gpkg (bayesgeo.predict.gis_export); ``map --decision-level`` sets others.
+DECISION_LEVELS = (0.5, 0.9)
 _NAMES = {"mean": "predictive mean", "sd": "predictive sd", "q05": "5% predictive quantile",
           "q50": "predictive median", "q95": "95% predictive quantile"}
 
@@ -35,7 +36,7 @@ def _edges(c: np.ndarray) -> np.ndarray:
 
 
 def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None, samples_xy=None,
-               title: str = "", caution: str = "", not_converged: bool = False, levels=CONTOURS):
+               title: str = "", caution: str = "", not_converged: bool = False, levels=DECISION_LEVELS):
     """One map of ``pred[variable]`` (``p_exceed`` needs the ``threshold`` index).
 
     Parameters
@@ -54,7 +55,7 @@ def map_figure(pred: xr.Dataset, variable: str, *, threshold: int | None = None,
     not_converged : bool
         Prefix the title with ``NOT CONVERGED``.
     levels : sequence of float
-        Decision levels drawn as contours on an exceedance map (default :data:`CONTOURS`).
+        Decision levels drawn as contours on an exceedance map (default :data:`DECISION_LEVELS`).
 
     Returns
     -------
@@ -142,7 +143,7 @@ def threshold_label(t: float) -> str:
 
 
 def write_map_figures(pred: xr.Dataset, folder: str | Path, *, samples_xy=None, caution: str = "",
-                      not_converged: bool = False, overwrite: bool = False, levels=CONTOURS) -> list[Path]:
+                      not_converged: bool = False, overwrite: bool = False, levels=DECISION_LEVELS) -> list[Path]:
     """Write ``mean.png``, ``sd.png`` and ``p_exceed_<T>.png`` (one per threshold) into ``folder``.
 
     Files are written atomically; an existing file is refused unless ``overwrite``.

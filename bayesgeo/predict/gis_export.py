@@ -23,12 +23,10 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from bayesgeo.predict.figures import threshold_label
+from bayesgeo.predict.figures import DECISION_LEVELS, threshold_label
 
-__all__ = ["LEVELS", "STATISTICS", "write_geotiffs", "exceedance_polygons", "write_geopackage"]
+__all__ = ["STATISTICS", "write_geotiffs", "exceedance_polygons", "write_geopackage"]
 
-#: Probability levels of the exceedance polygons.
-LEVELS = (0.5, 0.9)
 #: Map statistics written as GeoTIFF (besides one exceedance probability per threshold).
 STATISTICS = ("mean", "sd", "q05", "q50", "q95")
 
@@ -86,7 +84,7 @@ def write_geotiffs(pred: xr.Dataset, folder: str | Path) -> list[Path]:
     return written
 
 
-def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
+def exceedance_polygons(pred: xr.Dataset, levels=DECISION_LEVELS) -> list[dict]:
     """Per threshold and level, the cells where P(exceed) >= level, as one shapely (multi)polygon with its area.
 
     Returns
@@ -131,7 +129,7 @@ def exceedance_polygons(pred: xr.Dataset, levels=LEVELS) -> list[dict]:
 
 
 def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset | None = None,
-                     levels=LEVELS, area: tuple | None = None) -> Path:
+                     levels=DECISION_LEVELS, area: tuple | None = None) -> Path:
     """Write the GeoPackage ``path`` with layers ``exceedance`` (and ``samples`` when given; module docstring).
 
     Parameters

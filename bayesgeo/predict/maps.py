@@ -75,5 +75,5 @@ def predict_map(fit: Fit | xr.DataTree, targets: xr.Dataset | None = None, *, ce
     label_prediction(pred, spec.transform, verdict)
     from bayesgeo.predict.cf import georeferenced_fit_map
 
-    return georeferenced_fit_map(pred, fit)[1]  # as bayesgeo map writes it: CF coordinates, the CRS, north-up
+    return georeferenced_fit_map(pred, fit)  # as bayesgeo map writes it: CF coordinates, the CRS, north-up
 

@@ -15,6 +15,7 @@ import numpy as np
 
 from bayesgeo.common.layout import prediction_names
 from bayesgeo.predict.cf import georeferenced_fit_map
+from bayesgeo.predict.figures import DECISION_LEVELS
 from bayesgeo.common.validate import INT_LIMITS, InputError, check_positive, check_positive_int
 
 __all__ = ["DEFAULT_DRAWS", "map_fit", "map_draws"]
@@ -23,8 +24,6 @@ DEFAULT_DRAWS = 500
 AREA_POINTS = 400
 MAX_SIM_TARGETS = 2000
 EXIT_NOT_CONVERGED = 3
-#: Posterior draws of the leave-one-out residuals of the samples layer when the map's own count is unknown.
-LOO_DRAWS = 200
 
 
 def map_draws(value) -> int | None:
@@ -45,7 +44,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
             points: str | Path | None = None, thresholds: Sequence[float] = (), area: str | None = None,
             draws=DEFAULT_DRAWS, nugget: str = "include", hull_mask: bool = False, scheduler: str = "threads",
             chunk_cells: int = 4096, simulate: int = 0, seed: int = 0, overwrite: bool = False,
-            allow_unconverged: bool = False, figures: bool = True, levels: Sequence[float] = (0.5, 0.9),
+            allow_unconverged: bool = False, figures: bool = True, levels: Sequence[float] = DECISION_LEVELS,
             progress: Callable | None = None) -> tuple[int, dict]:
     """Predict on a grid (or at ``points``) from the fit in ``folder`` and write predictions and maps.
 
@@ -170,7 +169,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     })
     if block is not None:
         pred.attrs["area_average"] = json.dumps(block)
-    pred, georef = georeferenced_fit_map(pred, fit)
+    georef = georeferenced_fit_map(pred, fit)
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
         georef.to_netcdf(tmp, engine="netcdf4")
     maps = []
@@ -205,16 +204,12 @@ def _loo_residuals(fit, obs, draws: int) -> np.ndarray:
     """Standardised leave-one-out residual of every sample, ``(z_i - E[z_i | rest]) / sd(z_i | rest)`` in model
     units over ``draws`` evenly thinned posterior draws (:func:`bayesgeo.checks.loo.loo_predictive`: exact for
     a dense fit); NaN for a non-detect, whose value is not known."""
-    import xarray as xr
-
     from bayesgeo.checks.loo import loo_predictive
+    from bayesgeo.fitting.sampling import select_draws
 
-    nd = fit.tree["posterior"].sizes["draw"]
-    step = max(1, nd * fit.tree["posterior"].sizes["chain"] // max(int(draws), 1))
-    thin = xr.DataTree.from_dict({f"/{k}": (v.to_dataset().isel(draw=slice(None, None, step)) if "draw" in v.dims
-                                            else v.to_dataset()) for k, v in fit.tree.children.items()})
-    thin.attrs = dict(fit.tree.attrs)
-    pred = loo_predictive(thin)
+    post = fit.tree["posterior"]
+    step = max(1, post.sizes["draw"] * post.sizes["chain"] // max(int(draws), 1))
+    pred = loo_predictive(select_draws(fit.tree, slice(None, None, step)))
     n = pred.sizes["obs"]
     mean, sd = pred["loo_mean"].values.reshape(-1, n), pred["loo_sd"].values.reshape(-1, n)
     centre = mean.mean(axis=0)
@@ -227,7 +222,7 @@ def _loo_residuals(fit, obs, draws: int) -> np.ndarray:
     return out
 
 
-def _gis_files(georef, fit, folder: Path, area=None, levels=(0.5, 0.9)) -> list[Path]:
+def _gis_files(georef, fit, folder: Path, area, levels) -> list[Path]:
     """GeoTIFFs of the map statistics and the GeoPackage of exceedance areas and samples
     (:mod:`bayesgeo.predict.gis_export`)."""
     import xarray as xr
@@ -244,7 +239,7 @@ def _gis_files(georef, fit, folder: Path, area=None, levels=(0.5, 0.9)) -> list[
         samples["censored"] = ("obs", column("censored").astype(bool))
     if "row" in obs.variables or "row" in const.variables:
         samples = samples.assign_coords(row=("obs", column("row")))
-    samples["loo_residual"] = ("obs", _loo_residuals(fit, obs, georef.attrs.get("draws", LOO_DRAWS)))
+    samples["loo_residual"] = ("obs", _loo_residuals(fit, obs, georef.attrs["draws"]))
     written = write_geotiffs(georef, folder)
     if georef.sizes.get("threshold", 0):
         written.append(write_geopackage(folder / "map.gpkg", georef, samples=samples, area=area, levels=levels))
