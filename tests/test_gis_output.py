@@ -8,6 +8,8 @@ north-up rows (first row northernmost) are common practice for rasters.
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 import xarray as xr
@@ -215,25 +217,24 @@ def test_area_average_goes_into_the_geopackage_as_its_polygon(tmp_path, capsys):
 
 
 def test_probability_that_the_true_area_is_larger_than_the_polygon():
-    """With joint simulations (map --simulate) each polygon records the posterior probability that the true area
-    above the threshold exceeds its own: the Monte Carlo share of simulated fields with more cells above the
-    threshold (the frequency estimate of a probability; here 30 of 100 fields by construction)."""
+    """With simulated counts of cells above the threshold (map's joint simulations) each polygon records the
+    posterior probability that the true area above the threshold exceeds its own: the Monte Carlo share of
+    simulated fields with more cells above the threshold (the frequency estimate of a probability; here 30 of
+    100 fields by construction)."""
     from bayesgeo.predict.gis_export import exceedance_polygons
 
     ds, (x0, y0, cell, nx, ny) = _grid_predictions()
     prob = np.zeros((ny, nx))
     prob[0, :3] = 0.95  # three cells reach both levels
     ds["p_exceed"] = (("threshold", "y", "x"), prob[None])
-    sims = np.zeros((2, 50, ny, nx))
-    flat = sims.reshape(100, ny * nx)
-    flat[:30, :4] = 99.0  # 30 fields with 4 cells above 50
-    flat[30:, :2] = 99.0  # 70 fields with 2
-    ds["simulation"] = (("sample", "sim", "y", "x"), flat.reshape(2, 50, ny, nx))
+    counts = np.full(100, 2)
+    counts[:30] = 4  # 30 fields with 4 cells above 50, 70 with 2
+    ds["cells_above"] = (("threshold", "sample", "sim"), counts.reshape(1, 2, 50))
     geo = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m")
     polys = exceedance_polygons(geo)
     assert [p["cells"] for p in polys] == [3, 3]
     assert [p["p_true_area_larger"] for p in polys] == pytest.approx([0.3, 0.3])
-    assert np.isnan(exceedance_polygons(geo.drop_vars("simulation"))[0]["p_true_area_larger"])
+    assert np.isnan(exceedance_polygons(geo.drop_vars("cells_above"))[0]["p_true_area_larger"])
 
 
 def test_geopackage_to_fit_to_geotiff_round_trip(tmp_path, capsys):
@@ -333,3 +334,65 @@ def test_decision_levels_are_configurable(tmp_path, capsys):
     meta, _, _, fields = read(folder / "maps" / "map.gpkg", layer="exceedance")
     assert sorted(fields[list(meta["fields"]).index("probability_level")]) == [0.2, 0.8, 0.95]
     assert main(["map", str(folder), "--decision-level", "1.5", "--overwrite", "--json"]) == 2
+
+
+def test_map_gives_every_polygon_its_probability_of_a_larger_true_area(tmp_path, capsys):
+    """By default ``map`` on a grid with a threshold simulates one joint field per draw (conditioning by kriging,
+    tests/test_joint_simulation.py) and every exceedance polygon gets the share of fields with more cells above
+    the threshold than it has, and the simulated area's 5/50/95% quantiles; the counts are in predictions.nc.
+    A grid over 2,000 cells needs no --simulate;
+    ``--simulate 0`` turns the simulation off (NaN)."""
+    from pyogrio.raw import read
+    from test_cli_map import _fit_folder
+
+    from bayesgeo.cli import main
+
+    folder, _ = _fit_folder(tmp_path / "fit")
+    assert main(["map", str(folder), "--draws", "40", "--threshold", "40", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["cells"] > 2000 and out["simulation"]["fields_stored"] is False
+    assert out["simulation"]["method"].startswith("conditioning by kriging")
+    meta, _, _, fields = read(folder / "maps" / "map.gpkg", layer="exceedance")
+    got = dict(zip(meta["fields"], fields))
+    with xr.open_dataset(folder / "predictions.nc") as pred:
+        counts = pred["cells_above"].isel(threshold=0).values.ravel()
+        expected = float(pred["p_exceed"].isel(threshold=0).sum())
+        cell_area = float(np.diff(pred["x"].values[:2])[0]) ** 2
+    for q, name in zip((0.05, 0.5, 0.95), ("simulated_area_q05", "simulated_area_q50", "simulated_area_q95")):
+        assert got[name] == pytest.approx(np.quantile(counts, q) * cell_area)  # numpy's quantile, area in m2
+        assert "simulation" not in pred and counts.size == 40
+    for cells, p in zip(got["cells"], got["p_true_area_larger"]):
+        assert p == pytest.approx(np.mean(counts > cells))
+    levels = list(got["probability_level"])
+    assert got["p_true_area_larger"][levels.index(0.9)] >= got["p_true_area_larger"][levels.index(0.5)]
+    # the fields have the map's marginals: E[cells above] = sum of the cells' P(exceed) (linearity of expectation)
+    assert abs(counts.mean() - expected) < 4.5 * counts.std() / np.sqrt(counts.size)
+    assert main(["map", str(folder), "--draws", "40", "--threshold", "40", "--simulate", "0", "--overwrite",
+                 "--json"]) == 0
+    capsys.readouterr()
+    meta, _, _, fields = read(folder / "maps" / "map.gpkg", layer="exceedance")
+    assert np.all(np.isnan(fields[list(meta["fields"]).index("p_true_area_larger")]))
+
+
+def test_simulated_area_of_a_lonlat_grid_is_in_square_metres():
+    """On a lon/lat grid of 0.5 km cells the simulated area above a threshold is the number of cells times a
+    cell's geodesic area on WGS 84 (pyproj), about 0.25 km2 (cells square on the ground; within 1% of
+    0.25e6 m2, the ellipsoid's radii differing from the grid's sphere by less than that)."""
+    from bayesgeo.data.targets import grid_targets
+    from bayesgeo.predict.gis_export import exceedance_polygons
+
+    xy = np.column_stack([np.linspace(10.0, 10.1, 20), np.linspace(59.975, 60.025, 20)])
+    g = grid_targets(xy, cell=0.5, metric="greatcircle")
+    ny, nx = g["inside"].shape
+    prob = np.zeros((1, ny, nx))
+    prob[0, :2, :3] = 0.95
+    counts = np.arange(100).reshape(1, 1, 100)
+    ds = xr.Dataset({"p_exceed": (("threshold", "y", "x"), prob), "cells_above": (("threshold", "sample", "sim"),
+                                                                                    counts)},
+                    coords={"x": g["x"].values, "y": g["y"].values, "threshold": [1.0]})
+    geo = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(4326).to_wkt(), coords="lonlat", distance_units="km")
+    poly = exceedance_polygons(geo)[0]
+    assert poly["cells"] == 6 and poly["area_units"] == "m2"
+    cell = poly["simulated_area"][1] / np.quantile(np.arange(100), 0.5)
+    assert cell == pytest.approx(0.25e6, rel=0.01)
+    assert poly["area"] == pytest.approx(6 * cell, rel=2e-3)  # the polygon's geodesic area, same cells

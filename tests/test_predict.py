@@ -11,10 +11,12 @@ from scipy import integrate, optimize, stats
 
 from bayesgeo.gp import kriging as K
 from bayesgeo.predict import prediction as P
-from bayesgeo.gp.kriging import block_moments, conditional_simulations, draw_moments, kriging_moments, make_basis
+from bayesgeo.gp.joint import block_moments, conditional_simulations
+from bayesgeo.gp.kriging import draw_moments, kriging_moments, make_basis
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.demo import simulate_field
 from bayesgeo.data.targets import grid_targets
+from bayesgeo.predict.simulation import simulate_targets
 
 RNG = np.random.default_rng(20261202)
 
@@ -243,7 +245,7 @@ def test_joint_covariance_matches_scikit_learn_and_simulations_follow_it():
     targets = xr.Dataset(coords={"x": ("target", xy_new[:, 0]), "y": ("target", xy_new[:, 1])})
     targets["inside"] = ("target", np.ones(6, bool))
     targets.attrs["kind"] = "points"  # the layout of bayesgeo.data.targets.read_target_points
-    sims = P.simulate_targets(basis, targets, n_sim=20000, seed=3, include_nugget=False).values[0]
+    sims = simulate_targets(basis, targets, n_sim=20000, seed=3, include_nugget=False)["simulation"].values[0]
     se = np.sqrt(np.diag(cov) / 20000)
     assert np.all(np.abs(sims.mean(axis=0) - mean) < 4.5 * se)
     np.testing.assert_allclose(np.cov(sims.T), cov, atol=0.05 * np.max(np.diag(cov)))
@@ -267,7 +269,8 @@ def test_nn_basis_equals_exact_kriging_with_all_neighbours():
     (Rasmussen and Williams 2006, eqs. 2.23-2.24): the nn basis of a large-data fit reproduces
     the exact basis; joint quantities are refused on it with a one-line InputError."""
     from bayesgeo.gp.engines import engine
-    from bayesgeo.gp.kriging import block_moments, draw_moments, make_basis
+    from bayesgeo.gp.joint import block_moments
+    from bayesgeo.gp.kriging import draw_moments, make_basis
     from bayesgeo.common.validate import InputError
 
     rng = np.random.default_rng(4)

@@ -44,11 +44,12 @@ def add_arguments(p) -> None:
     p.add_argument("--scheduler", default="threads", metavar="ADDRESS",
                    help="'threads' (default, local thread pool), 'synchronous', or a dask.distributed scheduler address")
     p.add_argument("--chunk-cells", type=int_option("chunk_cells"), default=4096, metavar="K", help="cells per parallel task (default 4096)")
-    p.add_argument("--simulate", type=int_option("simulate"), default=0, metavar="N",
-                   help=f"also store N joint conditional simulations per draw (at most {MAX_SIM_TARGETS} targets; "
-                   "use --points or a coarse --cell)")
+    p.add_argument("--simulate", type=int_option("simulate"), default=None, metavar="N",
+                   help=f"store N joint conditional simulations per draw (at most {MAX_SIM_TARGETS} targets; use "
+                   "--points or a coarse --cell); default on a grid with --threshold: one per draw, not stored, for "
+                   "the chance that the area above it is larger than each map.gpkg polygon; 0: none")
     p.add_argument("--seed", type=int_option("seed"), default=0, metavar="S",
-                   help="seed of the simulations (area averages under the log transform, --simulate)")
+                   help="seed of the simulations (joint simulations; area averages under the log transform)")
     p.add_argument("--overwrite", action="store_true", help="replace existing predictions.nc and maps/")
     p.add_argument("--allow-unconverged", action="store_true",
                    help="map a posterior that failed the convergence check (outputs are marked NOT CONVERGED)")

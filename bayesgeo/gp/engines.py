@@ -91,6 +91,11 @@ class Engine:
         :class:`bayesgeo.gp.kriging.KrigingBasis` (``engine(basis.engine_name)`` is the engine to ask)."""
         raise NotImplementedError
 
+    def residual_means(self, basis, xy_new, resid) -> np.ndarray:
+        """Kriging means (no trend) of residual vectors ``resid`` (D, S, n), S per draw, at new locations:
+        (D, S, m) in model units (conditioning by kriging, :mod:`bayesgeo.gp.joint`)."""
+        raise NotImplementedError
+
     def loo(self, fa, *, neighbours: int | None = None, progress=None) -> LooResult:
         """Leave-one-out predictives of every point and draw of the fit ``fa``; ``progress(total=, desc=)``
         makes a bar for long work (the nearest-neighbour engine's, counting points)."""
@@ -132,6 +137,11 @@ class _Dense(Engine):
         from bayesgeo.gp.kriging import draw_moments
 
         return draw_moments(basis, xy_new, design_new, include_nugget=include_nugget)
+
+    def residual_means(self, basis, xy_new, resid):
+        from bayesgeo.gp.kriging import residual_means
+
+        return residual_means(basis, xy_new, resid)
 
     def loo(self, fa, *, neighbours=None, progress=None):
         from bayesgeo.gp.dense_loo import _loo_one, draw_covariances
@@ -191,6 +201,11 @@ class _NearestNeighbour(Engine):
             return moments(basis.values, slice(None))
         parts = [moments(basis.values[k], slice(k, k + 1)) for k in range(basis.n_draws)]  # imputed non-detects
         return np.vstack([m for m, _ in parts]), np.vstack([v for _, v in parts])
+
+    def residual_means(self, basis, xy_new, resid):
+        from bayesgeo.gp.nn_kriging import nn_residual_means
+
+        return nn_residual_means(basis, xy_new, resid)
 
     def loo(self, fa, *, neighbours=None, progress=None):
         from bayesgeo.gp.nn_loo import loo_neighbour_count, nn_loo

@@ -54,9 +54,6 @@ __all__ = [
     "draw_moments",
     "mixture_summary",
     "mixture_quantiles",
-    "block_moments",
-    "conditional_simulations",
-    "summarise_samples",
 ]
 
 #: Caution attached to every prediction output (contamination and exposure decisions).
@@ -275,6 +272,29 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     return mean[:, :m], var[:, :m]
 
 
+def residual_means(basis: KrigingBasis, xy_new, resid, *, chunk: int = 4096) -> np.ndarray:
+    """Simple-kriging means ``k_*^T K^-1 r`` of residual vectors at new locations, several per draw.
+
+    The mean part of :func:`draw_moments` without the trend, for data residuals ``r`` other than the
+    basis's own (conditioning by kriging, :mod:`bayesgeo.gp.joint`): ``resid`` (D, S, n) gives S vectors
+    per draw; K^-1 r uses the basis's Cholesky factors, the cross-covariances are built ``chunk`` targets
+    at a time. Returns (D, S, m) in model units.
+    """
+    _needs_factors(basis, "kriging with every datum")
+    xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
+    resid = np.asarray(resid, dtype=float)
+    m = xy_new.shape[0]
+    alpha = np.stack([linalg.cho_solve((basis.chol[k], True), resid[k].T, check_finite=False).T
+                      for k in range(basis.n_draws)])
+    out = np.empty((basis.n_draws, resid.shape[1], m))
+    for lo in range(0, m, chunk):
+        dist = _dist_f(basis, xy_new[lo:lo + chunk])
+        buf = np.empty(dist.shape, order="F")
+        for k in range(basis.n_draws):
+            out[k, :, lo:lo + chunk] = alpha[k] @ _cross_cov(basis, dist, k, buf)
+    return out
+
+
 def kriging_moments(xy_obs, y_obs, design_obs, xy_new, design_new, covariance: Covariance | str, scale: float,
           partial_sill: float, nugget: float, beta, metric: str = "euclidean", *, include_nugget: bool = True,
           full_cov: bool = False, jitter: float = JITTER):
@@ -421,80 +441,3 @@ def mixture_summary(mean, var, *, thresholds: Sequence[float] = (), transform: s
         raise ValueError(f"transform must be None or 'log', got {transform!r}")
     pex = np.stack([_ndtr_ratio(mu - t, sd).mean(axis=0) for t in levels]) if levels.size else np.empty((0, mu.shape[1]))
     return {"mean": pm, "sd": np.sqrt(pvar), "quantiles": q, "p_exceed": pex}
-
-
-# --- areas and simulations --------------------------------------------------------------------
-
-
-def block_moments(basis: KrigingBasis, xy_area, design_area) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and variance per draw of the field averaged over discretisation points (block kriging).
-
-    With V = L^-1 K_* (n x M) the conditional covariance of the M points is C_** - V^T V, so
-    the variance of their average is (1^T C_** 1 - |L^-1 K_* 1|^2) / M^2 and needs only
-    K_* 1 (Journel and Huijbregts 1978, *Mining Geostatistics*, sec. V.A; Cressie 1993, sec. 3.2).
-    The nugget is excluded: it averages out over an area.
-
-    Returns
-    -------
-    mean, var : ndarray (D,)
-    """
-    _needs_factors(basis, "an area average (--area)")
-    xy_area = np.asarray(xy_area, dtype=float).reshape(-1, 2)
-    m = xy_area.shape[0]
-    design_area = np.asarray(design_area, dtype=float).reshape(m, -1)
-    dist = _dist_f(basis, xy_area)
-    dpp = distance_matrix(xy_area, basis.metric)
-    buf = np.empty(dist.shape, order="F")
-    mean, var = np.empty(basis.n_draws), np.empty(basis.n_draws)
-    for k in range(basis.n_draws):
-        _cross_cov(basis, dist, k, buf)
-        mean[k] = np.mean(design_area @ basis.beta[k] + basis.alpha[k] @ buf)
-        w = linalg.solve_triangular(basis.chol[k], buf.sum(axis=1), lower=True, check_finite=False)
-        total = basis.partial_sill[k] * basis.covariance.correlation(dpp, basis.scale[k]).sum()
-        var[k] = max(total - float(w @ w), 0.0) / (m * m)
-    return mean, var
-
-
-def conditional_simulations(basis: KrigingBasis, xy_new, design_new, *, n_sim: int, seed: int,
-                            include_nugget: bool = False, max_targets: int = 2000) -> np.ndarray:
-    """Joint conditional simulations per draw (Cholesky of the conditional covariance).
-
-    Draw d uses its own stream ``SeedSequence(seed).spawn(D)[d]``, so the result does not depend
-    on how work is split. Small target sets only (``max_targets``).
-
-    Returns
-    -------
-    ndarray (D, n_sim, m)
-        Simulated values on the model scale (log scale under ``transform="log"``).
-    """
-    xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
-    m = xy_new.shape[0]
-    if m > max_targets:
-        raise InputError(f"conditional simulation is for small target sets: {m} targets > {max_targets}")
-    design_new = np.asarray(design_new, dtype=float).reshape(m, -1)
-    out = np.empty((basis.n_draws, int(n_sim), m))
-    streams = np.random.SeedSequence(int(seed)).spawn(basis.n_draws)
-    for k in range(basis.n_draws):
-        mean, cov = _joint_moments(basis, k, xy_new, design_new, include_nugget)
-        cov[np.diag_indices_from(cov)] += 1e-10 * basis.partial_sill[k]
-        lower = _psd_factor(cov)
-        z = np.random.default_rng(streams[k]).standard_normal((int(n_sim), m))
-        out[k] = mean + z @ lower.T
-    return out
-
-
-def _psd_factor(cov: np.ndarray) -> np.ndarray:
-    """Cholesky factor, or a symmetric square root when round-off makes ``cov`` indefinite."""
-    try:
-        return linalg.cholesky(cov, lower=True, check_finite=False)
-    except linalg.LinAlgError:
-        w, vec = np.linalg.eigh(cov)
-        return vec * np.sqrt(np.clip(w, 0.0, None))
-
-
-def summarise_samples(samples: np.ndarray, thresholds: Sequence[float], probs=(0.05, 0.95)) -> dict:
-    """Mean, sd, quantiles and exceedance fractions of pooled Monte Carlo samples (data units)."""
-    s = np.asarray(samples, dtype=float).reshape(-1)
-    return {"mean": float(s.mean()), "sd": float(s.std(ddof=1)),
-            "quantiles": np.quantile(s, probs), "p_exceed": np.array([float(np.mean(s > t)) for t in thresholds])}
-

@@ -186,3 +186,21 @@ def nn_kriging_moments(xy_obs, values, design_obs, xy_new, design_new, *, covari
     _nb.nn_moments(code, _METRICS[metric], xy_obs, values, design_obs, xy_new, design_new, nbr,
                    np.ascontiguousarray(scale), psill, tau2, beta, bool(include_nugget), float(jitter), mean, var)
     return mean, var
+
+
+def nn_residual_means(basis, xy_new, resid) -> np.ndarray:
+    """Nearest-neighbour simple-kriging means of residual vectors, several per draw: (D, S, m) from ``resid``
+    (D, S, n), each target conditioned on its ``basis.neighbours`` nearest data, as :func:`nn_kriging_moments`
+    (the mean part, without the trend)."""
+    resid = np.asarray(resid, dtype=float)
+    n_d, n_s, n = resid.shape
+    xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
+    out = np.empty((n_d, n_s, xy_new.shape[0]))
+    ones, ones_new = np.ones((n, 1)), np.ones((xy_new.shape[0], 1))
+    for k in range(n_d):
+        for s in range(n_s):
+            out[k, s] = nn_kriging_moments(basis.xy, resid[k, s], ones, xy_new, ones_new, covariance=basis.covariance,
+                                           scale=basis.scale[k:k + 1], partial_sill=basis.partial_sill[k:k + 1],
+                                           nugget=basis.nugget[k:k + 1], beta=[0.0], metric=basis.metric,
+                                           neighbours=basis.neighbours, include_nugget=False)[0][0]
+    return out

@@ -7,7 +7,9 @@ From the georeferenced predictions of a grid (:func:`bayesgeo.predict.cf.georefe
   (rasterio / GDAL);
 * :func:`write_geopackage`: layer ``exceedance``, one (multi)polygon per threshold and probability
   level: the union of the grid cells where the posterior predictive probability of exceeding the
-  threshold is at least the level (default 0.5 and 0.9), with its area; layer ``samples``, the sample
+  threshold is at least the level (default 0.5 and 0.9), with its area, the probability that the area above
+  the threshold is larger and that area's simulated 5/50/95% quantiles (from the map's joint simulations,
+  :mod:`bayesgeo.predict.simulation`); layer ``samples``, the sample
   points with their values and, where present, non-detect flags and standardised leave-one-out residuals; layer ``area_average``, the polygon of
   an area average (``map --area``) with its mean, sd, 90% interval and exceedance probabilities
   (pyogrio / GDAL).
@@ -91,10 +93,15 @@ def exceedance_polygons(pred: xr.Dataset, levels=DECISION_LEVELS) -> list[dict]:
     -------
     list of dict
         ``threshold``, ``level``, ``cells``, ``area``, ``area_units``, ``geometry`` (empty when no cell
-        reaches the level) and ``p_true_area_larger``: with joint simulations in ``pred`` (``map
-        --simulate``), the share of simulated fields (over draws and simulations) whose area above the
-        threshold exceeds the polygon's, i.e. the posterior probability that the true area above the level
-        is larger than the polygon; NaN without them.
+        reaches the level) and ``p_true_area_larger``: with the simulated counts ``cells_above`` in ``pred``
+        (:func:`bayesgeo.predict.simulation.simulate_targets`, made by ``map`` by default), the share of
+        simulated fields (over draws and simulations) with more cells above the threshold than the polygon
+        has, i.e. the posterior probability that the true area above the threshold is larger than the
+        polygon; NaN without them. Areas are compared in cells, equal in area on a planar grid (on a
+        lon/lat grid they differ by the cosine of latitude across the rows, negligible over a site).
+        ``simulated_area`` (q05, q50, q95): the 5%, 50% and 95% quantiles over the simulated fields of the
+        area above the threshold (cells times the cell area; geodesic at the grid's middle row for lon/lat),
+        the same for every level of a threshold; NaN without simulations.
     """
     import shapely
     from rasterio.features import shapes
@@ -102,12 +109,20 @@ def exceedance_polygons(pred: xr.Dataset, levels=DECISION_LEVELS) -> list[dict]:
     transform, dx, dy = _grid_transform(pred)
     lonlat = pred["x"].attrs.get("units") == "degrees_east"
     unit = pred["x"].attrs.get("units", "")
-    sims = None
-    if "simulation" in pred:  # (sample, sim, y, x): cells above the threshold per simulated field
-        sims = np.asarray(pred["simulation"].transpose("sample", "sim", "y", "x").values, dtype=float)
+    counts = pred["cells_above"].transpose("threshold", ...).values if "cells_above" in pred else None
+    cell_area = dx * dy
+    if lonlat:
+        from pyproj import Geod
+
+        x0, y0 = float(pred["x"].values[0]), float(pred["y"].values[pred.sizes["y"] // 2])
+        lons, lats = [x0 - dx / 2, x0 + dx / 2, x0 + dx / 2, x0 - dx / 2], [y0 - dy / 2, y0 - dy / 2, y0 + dy / 2,
+                                                                         y0 + dy / 2]
+        cell_area = abs(Geod(ellps="WGS84").polygon_area_perimeter(lons, lats)[0])
     out = []
     for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
-        above_sim = None if sims is None else np.sum(np.nan_to_num(sims, nan=-np.inf) > t, axis=(2, 3))
+        above_sim = None if counts is None else counts[j]
+        spread = (np.full(3, np.nan) if above_sim is None or not above_sim.size
+                  else np.quantile(above_sim, [0.05, 0.5, 0.95]) * cell_area)
         prob = np.asarray(pred["p_exceed"].isel(threshold=j).transpose("y", "x").values, dtype=float)
         for level in levels:
             mask = np.nan_to_num(prob, nan=0.0) >= level
@@ -124,7 +139,8 @@ def exceedance_polygons(pred: xr.Dataset, levels=DECISION_LEVELS) -> list[dict]:
                 area, units = float(mask.sum()) * dx * dy, f"{unit}2" if unit else "coordinate units squared"
             larger = np.nan if above_sim is None else float(np.mean(above_sim > mask.sum()))
             out.append({"threshold": float(t), "level": float(level), "cells": int(mask.sum()), "area": float(area),
-                        "area_units": units, "geometry": geom, "p_true_area_larger": larger})
+                        "area_units": units, "geometry": geom, "p_true_area_larger": larger,
+                        "simulated_area": tuple(float(v) for v in spread)})
     return out
 
 
@@ -155,11 +171,12 @@ def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset 
     units = str(pred.attrs.get("value_units", ""))
     write(path, shapely.to_wkb(np.array([p["geometry"] for p in polys], dtype=object)),
           fields=["threshold", "threshold_units", "probability_level", "cells", "area", "area_units",
-                  "p_true_area_larger"],
+                  "p_true_area_larger", "simulated_area_q05", "simulated_area_q50", "simulated_area_q95"],
           field_data=[np.array([p["threshold"] for p in polys]), np.array([units] * len(polys), dtype=object),
                       np.array([p["level"] for p in polys]), np.array([p["cells"] for p in polys], dtype=np.int64),
                       np.array([p["area"] for p in polys]), np.array([p["area_units"] for p in polys], dtype=object),
-                      np.array([p["p_true_area_larger"] for p in polys])],
+                      np.array([p["p_true_area_larger"] for p in polys]),
+                      *(np.array([p["simulated_area"][i] for p in polys]) for i in range(3))],
           geometry_type="MultiPolygon", crs=wkt, driver="GPKG", layer="exceedance")
     if samples is not None:
         pts = shapely.points(np.column_stack([samples["x"].values, samples["y"].values]))

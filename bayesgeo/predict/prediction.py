@@ -27,8 +27,8 @@ from collections.abc import Sequence
 import numpy as np
 import xarray as xr
 
-from bayesgeo.gp.kriging import (CAUTION, KrigingBasis, block_moments, conditional_simulations, make_basis,
-                                 mixture_summary, summarise_samples)
+from bayesgeo.gp.joint import block_moments, conditional_simulations, summarise_samples
+from bayesgeo.gp.kriging import CAUTION, KrigingBasis, make_basis, mixture_summary
 from bayesgeo.common.csvtable import InputWarning
 from bayesgeo.data.targets import check_area_near_data, far_targets_warning
 from bayesgeo.explore.trend import design_at
@@ -45,7 +45,6 @@ __all__ = [
     "prediction_cautions",
     "label_prediction",
     "predict_targets",
-    "simulate_targets",
     "target_design",
 ]
 
@@ -386,45 +385,11 @@ def predict_targets(basis: KrigingBasis, targets: xr.Dataset, *, thresholds: Seq
     return ds
 
 
-def simulate_targets(basis: KrigingBasis, targets: xr.Dataset, *, n_sim: int, seed: int,
-                     include_nugget: bool = True, design_attrs: dict | None = None, units: str = "") -> xr.DataArray:
-    """Joint conditional simulations at a small set of targets, ``n_sim`` per posterior draw.
-
-    Per draw, the joint conditional Gaussian of all targets is factorised (Cholesky) and sampled
-    (:func:`bayesgeo.gp.kriging.conditional_simulations`); under ``transform="log"`` the draws are
-    exponentiated into data units. Together they are draws from the joint posterior predictive
-    distribution, for quantities that point summaries cannot give (a maximum over locations, a
-    share of locations above a level, ...). Draw d uses its own random stream from ``seed``.
-
-    Returns
-    -------
-    xarray.DataArray
-        Dims ``(sample, sim, <target dims>)``; masked targets are NaN.
-    """
-    xy = _flat_xy(targets)
-    design = target_design(targets, design_attrs, basis.design.shape[1])
-    inside = np.asarray(targets["inside"].values, bool).ravel()
-    idx = np.flatnonzero(inside)
-    sims = conditional_simulations(basis, xy[idx], design[idx], n_sim=check_positive_int(n_sim, "simulate"),
-                                   seed=seed, include_nugget=include_nugget)
-    if basis.transform == "log":
-        sims = np.exp(sims)
-    out = np.full((basis.n_draws, sims.shape[1], inside.size), np.nan)
-    out[:, :, idx] = sims
-    dims = ("y", "x") if targets.attrs.get("kind") == "grid" else ("target",)
-    what = "new measurement" if include_nugget else "field"
-    return xr.DataArray(out.reshape(basis.n_draws, sims.shape[1], *targets["inside"].shape),
-                        dims=("sample", "sim", *dims), coords={k: targets.coords[k] for k in targets.coords},
-                        name="simulation",
-                        attrs={"units": units, "long_name": f"joint conditional simulation of the {what}",
-                               "seed": int(seed)})
-
-
 def area_average(basis: KrigingBasis, xy_area, design_area, *, thresholds: Sequence[float] = (),
                  n_sim: int = 200, seed: int = 0) -> dict:
     """Predictive distribution of the field averaged over an area (discretised into points).
 
-    Without a transform, per draw the block mean and variance (:func:`bayesgeo.gp.kriging.block_moments`)
+    Without a transform, per draw the block mean and variance (:func:`bayesgeo.gp.joint.block_moments`)
     give a Gaussian; their mixture over draws gives mean, sd, q05, q95 and P(average > T).
     Under ``transform="log"`` the average of a log-normal field is not log-normal, so each draw
     contributes ``n_sim`` joint conditional simulations of the field at the points, averaged in

@@ -43,7 +43,7 @@ def map_draws(value) -> int | None:
 def map_fit(folder, *, site: str | None = None, cell: float | None = None, margin: float = 0.0,
             points: str | Path | None = None, thresholds: Sequence[float] = (), area: str | None = None,
             draws=DEFAULT_DRAWS, nugget: str = "include", hull_mask: bool = False, scheduler: str = "threads",
-            chunk_cells: int = 4096, simulate: int = 0, seed: int = 0, overwrite: bool = False,
+            chunk_cells: int = 4096, simulate: int | None = None, seed: int = 0, overwrite: bool = False,
             allow_unconverged: bool = False, figures: bool = True, levels: Sequence[float] = DECISION_LEVELS,
             progress: Callable | None = None) -> tuple[int, dict]:
     """Predict on a grid (or at ``points``) from the fit in ``folder`` and write predictions and maps.
@@ -69,8 +69,10 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     scheduler, chunk_cells :
         :func:`bayesgeo.predict.prediction.predict_targets` settings.
     simulate, seed :
-        Joint conditional simulations per draw at the targets (at most 2,000 targets), and their seed
-        (also that of the area average).
+        Joint conditional simulations per draw stored at the targets (at most 2,000 targets), and their seed
+        (also that of the area average). None (default): on a grid with thresholds, one simulation per
+        draw, not stored, for the distribution of the area above each threshold
+        (:mod:`bayesgeo.predict.simulation`); 0: none.
     overwrite, allow_unconverged, figures :
         Replace earlier outputs; map a fit that failed its check (marked NOT CONVERGED); draw the maps.
     levels : sequence of float
@@ -105,7 +107,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     if nugget not in ("include", "exclude"):
         raise InputError(f"nugget: expected 'include' or 'exclude', got {nugget!r}")
     area_vertices = tg.area_from_option(str(area)) if area else None
-    if simulate < 0:
+    if simulate is not None and simulate < 0:
         raise InputError(f"simulate: expected an integer >= 0, got {simulate}")
     nc_name, maps_name = prediction_names(site)
     out_nc, out_maps = folder / nc_name, folder / maps_name
@@ -138,7 +140,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
                              "inside the area; area averages need a trend in the coordinates only")
         area_pts = tg.discretise_area(area_vertices[0], points=AREA_POINTS)
         tg.check_area_near_data(xy, area_pts, basis.metric)
-    if simulate and n_cells > MAX_SIM_TARGETS:
+    keep_fields = bool(simulate)
+    n_sim = int(simulate) if simulate is not None else int(targets.attrs["kind"] == "grid" and len(thresholds) > 0)
+    if keep_fields and n_cells > MAX_SIM_TARGETS:
         raise InputError(f"simulate: {n_cells} targets; joint simulation is for at most {MAX_SIM_TARGETS} "
                          "(give target points or a coarser cell)")
     bar = progress(total=max(1, -(-n_cells // chunk)), desc="map") if progress else None
@@ -156,13 +160,18 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         block = area_average(basis, area_pts, design_at(area_pts, spec.design_attrs), thresholds=thresholds,
                              n_sim=200, seed=seed)
         block.update(area=label, area_size=tg.polygon_area(vertices), units=units)
-    if simulate:
-        from bayesgeo.predict.prediction import simulate_targets
+    simulation = None
+    if n_sim:
+        from bayesgeo.predict.simulation import simulate_targets
 
-        pred["simulation"] = simulate_targets(basis, targets, n_sim=simulate, seed=seed,
-                                              include_nugget=nugget == "include",
-                                              design_attrs=spec.design_attrs, units=units)
-        pred = pred.assign_coords(sample=np.arange(basis.n_draws))
+        bar = progress(total=basis.n_draws, desc="joint simulation") if progress else None
+        sims = simulate_targets(basis, targets, n_sim=n_sim, seed=seed, include_nugget=nugget == "include",
+                                design_attrs=spec.design_attrs, units=units, thresholds=thresholds,
+                                keep_fields=keep_fields, progress=None if bar is None else bar.update)
+        if bar is not None:
+            bar.close()
+        pred = pred.merge(sims, compat="no_conflicts", join="exact", combine_attrs="override")
+        simulation = {"per_draw": n_sim, "method": sims.attrs["simulation_method"], "fields_stored": keep_fields}
     pred.attrs.update({
         "fit_folder": str(folder), "draws_total": int(params.attrs["draws_total"]), "value_units": units,
         "distance_units": spec.distance_units, "scheduler": str(scheduler), "seed": int(seed),
@@ -187,7 +196,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         "predictions": str(out_nc), "maps": maps, "targets": targets.attrs["kind"], "cells": n_cells,
         "draws": basis.n_draws, "draws_total": int(params.attrs["draws_total"]),
         "threshold": [float(t) for t in thresholds], "nugget": nugget, "units": units,
-        "simulations_per_draw": int(simulate),
+        "simulations_per_draw": n_sim, "simulation": simulation,
         "transform": spec.transform or "none", "convergence": verdict,
         "summary": {k: {"min": float(np.nanmin(pred[k].values)), "max": float(np.nanmax(pred[k].values))}
                     for k in ("mean", "sd")} if n_cells else {},
