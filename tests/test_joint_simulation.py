@@ -166,3 +166,36 @@ def test_same_seed_same_fields_whatever_the_threads():
     np.testing.assert_array_equal(one, two)
     assert one.shape == (d, 3, 200)
     assert not np.array_equal(one, kriged_simulations(basis, xt, f, n_sim=3, seed=10, threads=2))
+
+
+def test_probability_of_a_larger_area_is_calibrated_over_replicates():
+    """Calibration (the definition of a calibrated forecast probability; common practice for checking one): with
+    the true parameters known, data and a true field are drawn jointly 500 times (scipy's multivariate normal,
+    30 data, 12 x 12 grid, Matérn 3/2 with nugget); each time the P >= 0.5 cells of the map give a polygon and
+    300 simulated fields its probability p that the true area above T is larger. The share of replicates
+    where the true area is larger must match the mean of p (binomial bound, 3.5 sd). Measured: 0.624 of the
+    replicates against a mean p of 0.621."""
+    from bayesgeo.gp.kriging import draw_moments
+
+    rng = np.random.default_rng(21)
+    g = np.linspace(0.5, 11.5, 12)
+    xt = np.array(np.meshgrid(g, g)).reshape(2, -1).T
+    family, phi, s2, t2, threshold = "matern32", 2.5, 1.0, 0.2, 0.8
+    rho = get_covariance(family).correlation
+    hits, probs = [], []
+    for _ in range(500):
+        xy = rng.uniform(0, 12, (30, 2))
+        every = np.vstack([xy, xt])
+        cov = s2 * rho(_planar(every, every), phi) + 1e-9 * np.eye(len(every))
+        w = stats.multivariate_normal(np.zeros(len(every)), cov).rvs(random_state=rng)
+        z = w[:30] + np.sqrt(t2) * rng.standard_normal(30)
+        basis = make_basis(xy, z, np.ones((30, 1)), covariance=family, scale=[phi], partial_sill=[s2], nugget=[t2],
+                           beta=[[0.0]])
+        mean, var = draw_moments(basis, xt, np.ones((len(xt), 1)), include_nugget=False)
+        cells = int((stats.norm.sf((threshold - mean[0]) / np.sqrt(var[0])) >= 0.5).sum())
+        counts = kriged_simulations(basis, xt, np.ones((len(xt), 1)), n_sim=300, seed=int(rng.integers(1 << 30)),
+                                    include_nugget=False, reduce=lambda f: (f > threshold).sum(axis=1))[0]
+        probs.append(np.mean(counts > cells))
+        hits.append(int((w[30:] > threshold).sum()) > cells)
+    p = float(np.mean(probs))
+    assert abs(np.mean(hits) - p) < 3.5 * np.sqrt(p * (1 - p) / len(hits))

@@ -201,11 +201,10 @@ def kriged_simulations(basis: KrigingBasis, xy_new, design_new, *, n_sim: int, s
         rngs = [np.random.default_rng(streams[k]) for k in ks]
         eps = (np.stack([r.standard_normal((n_sim, 2 * n + n_t)) for r in rngs]) if noise is None
                else np.asarray(noise[ks], dtype=float))
-        reps = np.repeat(ks, n_sim)
         with threadpool_limits(limits=1, user_api="blas"):
-            w = nn_simulate(every, basis.covariance, basis.scale[reps], basis.partial_sill[reps], 0.0,
-                            noise=eps[:, :, :n + n_t].reshape(-1, n + n_t), order=order, nbr=nbr,
-                            metric=basis.metric, threads=1).reshape(len(ks), n_sim, n + n_t)
+            w = np.stack([nn_simulate(every, basis.covariance, basis.scale[k], basis.partial_sill[k], 0.0,
+                                      noise=eps[j, :, :n + n_t], order=order, nbr=nbr, metric=basis.metric, threads=1)
+                          for j, k in enumerate(ks)])  # one factorisation per draw, shared by its n_sim fields
             tau = np.sqrt(basis.nugget[ks])[:, None, None]
             data_w = w[:, :, :n] + tau * eps[:, :, n + n_t:]  # the unconditional draw as data: field + nugget
             resid = (values[ks] - basis.beta[ks] @ basis.design.T)[:, None, :] - data_w
