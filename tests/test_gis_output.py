@@ -396,3 +396,25 @@ def test_simulated_area_of_a_lonlat_grid_is_in_square_metres():
     cell = poly["simulated_area"][1] / np.quantile(np.arange(100), 0.5)
     assert cell == pytest.approx(0.25e6, rel=0.01)
     assert poly["area"] == pytest.approx(6 * cell, rel=2e-3)  # the polygon's geodesic area, same cells
+
+
+def test_report_lists_the_exceedance_areas_with_their_chances(tmp_path):
+    """The report's map block tabulates map.gpkg's polygons: area, the chance of a larger area above the threshold
+    and the simulated area's 5-95% interval, with the caution (as written by write_geopackage)."""
+    from bayesgeo.predict.gis_export import write_geopackage
+    from bayesgeo.report.sites import exceedance_table
+
+    ds, (x0, y0, cell, nx, ny) = _grid_predictions()
+    prob = np.zeros((1, ny, nx))
+    prob[0, 0, :3] = 0.95
+    ds["p_exceed"] = (("threshold", "y", "x"), prob)
+    counts = np.full(100, 2)
+    counts[:30] = 4
+    ds["cells_above"] = (("threshold", "sample", "sim"), counts.reshape(1, 2, 50))
+    geo = georeferenced(ds, crs_wkt=pyproj.CRS.from_epsg(32633).to_wkt(), distance_units="m")
+    gpkg = write_geopackage(tmp_path / "map.gpkg", geo)
+    html = "\n".join(exceedance_table(gpkg))
+    assert html.count("<tr>") == 3 and html.count('<td class="">0.3</td>') == 2  # P = 30 of 100 fields, 2 levels
+    lo, hi = np.quantile(counts, [0.05, 0.95]) * cell * cell  # numpy's quantiles of the counts, in m2
+    assert f"{lo:g} - {hi:g} m2" in html and "licensed professional" in html
+    assert exceedance_table(tmp_path / "absent.gpkg") == []

@@ -16,10 +16,17 @@ import json
 from collections.abc import Mapping
 from pathlib import Path
 
+import numpy as np
+
+from bayesgeo.common.layout import (
+    EXPLORE_FILE,
+    RUN_EXPLORE,
+    prediction_names,
+    vgcheck_names,
+)
 from bayesgeo.report.html import Ctx, Fam, esc, fmt, gap, html_table, img_tag
 from bayesgeo.report.html import read_json as _read_json
 from bayesgeo.report.html import section as _section
-from bayesgeo.common.layout import EXPLORE_FILE, RUN_EXPLORE, prediction_names, vgcheck_names
 
 __all__ = ["site_posterior", "sites_section", "site_vgcheck", "site_maps", "site_priors", "map_block",
            "SITE_CAUTION"]
@@ -159,6 +166,7 @@ def map_block(label: str, nc: Path, maps_dir: Path) -> list[str]:
         kind = pred.attrs.get("kind", "")
     if not pngs:
         out.append(f"<p>Predictions at the target points are in <code>{esc(nc.name)}</code>.</p>")
+    out += exceedance_table(maps_dir / "map.gpkg")
     if area:
         a = json.loads(area)
         out.append(f"<h4>Area average: {esc(a.get('area'))} (area {fmt(a.get('area_size'))})</h4>")
@@ -171,6 +179,28 @@ def map_block(label: str, nc: Path, maps_dir: Path) -> list[str]:
     elif kind:
         out.append("<p class=\"small\">No area average here ([prediction] area).</p>")
     return out
+
+
+def exceedance_table(gpkg: Path) -> list[str]:
+    """The exceedance polygons of ``map.gpkg`` as a table: area, the chance that the area above the threshold is
+    larger, and the simulated area's 90% interval (:mod:`bayesgeo.predict.gis_export`); nothing without the file."""
+    if not gpkg.is_file():
+        return []
+    from pyogrio.raw import read
+
+    meta, _, _, fields = read(gpkg, layer="exceedance", read_geometry=False)
+    col = dict(zip(meta["fields"], fields))
+    rows = [{"threshold": f"{fmt(t)} {u}", "P(exceed) at least": fmt(lv), "area": f"{fmt(a)} {au}",
+             "P(area above threshold larger)": fmt(p, 2),
+             "area above threshold, 5-95%": f"{fmt(lo)} - {fmt(hi)} {au}" if np.isfinite(lo) else "not simulated"}
+            for t, u, lv, a, au, p, lo, hi in zip(col["threshold"], col["threshold_units"], col["probability_level"],
+                                                  col["area"], col["area_units"], col["p_true_area_larger"],
+                                                  col["simulated_area_q05"], col["simulated_area_q95"])]
+    return ["<h4>Exceedance areas (map.gpkg)</h4>", html_table(rows, list(rows[0]), left=["threshold"]) if rows else "",
+            "<p class=\"small\">Each polygon joins the cells whose probability of exceeding the threshold reaches the "
+            "level. The chance that the area above the threshold is larger, and that area's interval, come from joint "
+            "simulations of the whole map (one per posterior draw). These are model results with uncertainty, not "
+            "measured boundaries; decisions follow local regulation and the judgement of a licensed professional.</p>"]
 
 
 def site_maps(ctx: Ctx, f: Fam) -> str:
