@@ -416,5 +416,5 @@ def test_report_lists_the_exceedance_areas_with_their_chances(tmp_path):
     html = "\n".join(exceedance_table(gpkg))
     assert html.count("<tr>") == 3 and html.count('<td class="">0.3</td>') == 2  # P = 30 of 100 fields, 2 levels
     lo, hi = np.quantile(counts, [0.05, 0.95]) * cell * cell  # numpy's quantiles of the counts, in m2
-    assert f"{lo:g} - {hi:g} m2" in html and "licensed professional" in html
+    assert f"{lo:,.0f} - {hi:,.0f} m2" in html and "licensed professional" in html
     assert exceedance_table(tmp_path / "absent.gpkg") == []

@@ -190,9 +190,12 @@ def exceedance_table(gpkg: Path) -> list[str]:
 
     meta, _, _, fields = read(gpkg, layer="exceedance", read_geometry=False)
     col = dict(zip(meta["fields"], fields))
-    rows = [{"threshold": f"{fmt(t)} {u}", "P(exceed) at least": fmt(lv), "area": f"{fmt(a)} {au}",
+    def size(v):  # areas as whole units with thousands separators (m2 of a site), small ones as numbers
+        return f"{v:,.0f}" if abs(v) >= 100 else fmt(v)
+
+    rows = [{"threshold": f"{fmt(t)} {u}", "P(exceed) at least": fmt(lv), "area": f"{size(a)} {au}",
              "P(area above threshold larger)": fmt(p, 2),
-             "area above threshold, 5-95%": f"{fmt(lo)} - {fmt(hi)} {au}" if np.isfinite(lo) else "not simulated"}
+             "area above threshold, 5-95%": f"{size(lo)} - {size(hi)} {au}" if np.isfinite(lo) else "not simulated"}
             for t, u, lv, a, au, p, lo, hi in zip(col["threshold"], col["threshold_units"], col["probability_level"],
                                                   col["area"], col["area_units"], col["p_true_area_larger"],
                                                   col["simulated_area_q05"], col["simulated_area_q95"])]
