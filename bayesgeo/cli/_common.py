@@ -53,6 +53,11 @@ def add_data_options(p) -> None:
     p.add_argument("--site", metavar="COL", help="site label column (several-site data)")
     p.add_argument("--only-site", metavar="NAME", help="analyse only this site's rows (with --site)")
     p.add_argument("--covariate", metavar="COL", action="append", default=[], help="covariate column (repeatable)")
+    p.add_argument("--category", metavar="COL", action="append", default=[],
+                   help="categorical covariate: a column of labels (soil type, land use, ...), treatment coded in the "
+                        "trend, each level with at least 5 points (repeatable)")
+    p.add_argument("--baseline", metavar="COL=LEVEL", action="append", default=[],
+                   help="baseline level of a --category column (default: its most frequent level; repeatable)")
     p.add_argument("--coords", choices=("auto", "xy", "lonlat"), default="auto",
                    help="planar coordinates (xy) or degrees (lonlat: great-circle km, longitudes -180..180 or 0..360); "
                         "auto refuses coordinates that could be degrees, see docs/data_files.md")
@@ -68,7 +73,9 @@ def data_kwargs(args) -> dict:
     return dict(x=args.x, y=args.y, value=args.value, limit=getattr(args, "limit", None),
                 detected=getattr(args, "detected", None), site=args.site,
                 only_site=args.only_site,
-                covariates=list(args.covariate), coords=args.coords, duplicates=args.duplicates, units=args.units,
+                covariates=list(args.covariate), categories=list(getattr(args, "category", [])),
+                baselines=list(getattr(args, "baseline", [])), coords=args.coords, duplicates=args.duplicates,
+                units=args.units,
                 distance_units=args.distance_units, small_sites=getattr(args, "small_sites", "error"),
                 **{k: getattr(args, k, None) for k in ("crs", "to_crs", "layer")})
 

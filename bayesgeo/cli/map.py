@@ -30,6 +30,10 @@ def add_arguments(p) -> None:
                    help="with a several-site fit: map this site (outputs predictions_<NAME>.nc and maps_<NAME>/)")
     p.add_argument("--points", metavar="FILE", help="CSV of target points (columns x,y; plus any trend covariates) "
                    "instead of a grid")
+    p.add_argument("--zones", metavar="FILE", help="polygon layer (GeoPackage, shapefile, GeoJSON) giving a trend's "
+                   "categories on a grid: each cell takes the level of the polygon holding its centre (attribute "
+                   "named as the category column); cells in no polygon are left out of the map")
+    p.add_argument("--zones-layer", metavar="NAME", help="layer of a --zones file holding several")
     p.add_argument("--threshold", type=float_option("any"), action="append", default=[], metavar="T",
                    help="level for exceedance probabilities, data units (repeatable)")
     p.add_argument("--decision-level", type=float_option("probability"), action="append", default=None, metavar="P",
@@ -70,7 +74,8 @@ def run(args) -> int:
         area=args.area, draws=args.draws, nugget=args.nugget, hull_mask=args.hull_mask,
         scheduler=args.scheduler, chunk_cells=args.chunk_cells, simulate=args.simulate, seed=args.seed,
         overwrite=args.overwrite, allow_unconverged=args.allow_unconverged, figures=not args.no_figures,
-        levels=tuple(args.decision_level or DECISION_LEVELS), progress=None if args.json else progress)
+        levels=tuple(args.decision_level or DECISION_LEVELS), zones=args.zones, zones_layer=args.zones_layer,
+        progress=None if args.json else progress)
     if args.json:
         emit_json(result)
     elif status:
@@ -96,6 +101,8 @@ def _print_human(r: dict) -> None:
         for t, p in zip(a["threshold"], a["p_exceed"]):
             print(f"  P(area average > {t:g} {u}) = {p:.3f}")
         print(f"  method: {a['method']}")
+    if r.get("zones"):
+        print(f"  zones: {r['zones']['note']}")
     print(f"wrote {r['predictions']}" + (f" and {len(r['maps'])} maps" if r["maps"] else ""))
     for c in r["cautions"]:
         print(f"caution: {c}")

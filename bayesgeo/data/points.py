@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import warnings
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -21,12 +21,13 @@ from bayesgeo.common.csvtable import MAX_MAGNITUDE, InputWarning, guess_value, n
 from bayesgeo.common.geometry import continuous_longitudes
 from bayesgeo.common.outputs import sha256_file
 from bayesgeo.common.validate import InputError, check_choice, format_rows
+from bayesgeo.data.categories import category_attrs, category_labels, choose_baseline, is_category, parse_baselines
 from bayesgeo.data.crs import check_lonlat_ranges, coords_for, georeference, refuse_lonlat_lookalike, resolve_crs
 from bayesgeo.data.formats import read_source
 from bayesgeo.data.nondetects import censored_column, check_share
 
 __all__ = ["MIN_POINTS", "TRANSFORMS", "READ_KEYS", "FIT_DATA_ATTRS", "read_points", "read_settings", "points_dataset",
-           "sites_of", "apply_transform"]
+           "trend_covariates", "sites_of", "apply_transform"]
 
 #: Value transforms: ``None`` (values as they are) or ``"log"`` (natural logarithm).
 TRANSFORMS = (None, "log")
@@ -67,6 +68,8 @@ def read_points(
     value: str | None = None,
     site: str | None = None,
     covariates: Sequence[str] = (),
+    categories: Sequence[str] = (),
+    baselines: Sequence[str] | Mapping[str, str] | None = None,
     coords: str = "auto",
     duplicates: str = "error",
     units: str | None = None,
@@ -96,6 +99,13 @@ def read_points(
         Column labelling the site of each point (for several-site analyses).
     covariates : sequence of str
         Extra numeric columns kept as covariates for the trend.
+    categories : sequence of str
+        Columns of labels kept as categorical covariates (soil type, geological unit, land use, ...):
+        text variables whose attributes give their sorted levels and baseline
+        (:mod:`bayesgeo.data.categories`; treatment coded in the trend).
+    baselines : sequence of str or mapping, optional
+        ``"COL=LEVEL"`` items (or ``{COL: LEVEL}``) naming the baseline level of a category; default the
+        most frequent level (ties: the first in sorted order).
     coords : {"auto", "xy", "lonlat"}
         ``xy``: planar coordinates, Euclidean distances in coordinate units. ``lonlat``: degrees,
         great-circle distances in km; longitudes written -180..180 or 0..360, re-expressed as one
@@ -167,7 +177,16 @@ def read_points(
     coords = coords_for(crs_obj, coords, src)
     sitecol = _require(header, site, "--site", src) if site else None
     covs = [_require(header, c, "--covariate", src) for c in covariates]
-    vcol = _require(header, value, "--value", src) if value else guess_value(table, {xcol, ycol, sitecol, *covs})
+    cats = [_require(header, c, "--category", src) for c in categories]
+    both = [c for c in cats if c in covs]
+    if both:
+        raise InputError(f"{src}: column {both[0]!r} is given both as --covariate (numbers) and as --category "
+                         "(labels); give it once")
+    chosen = parse_baselines(baselines, cats)
+    vcol = _require(header, value, "--value", src) if value else guess_value(table, {xcol, ycol, sitecol, *covs, *cats})
+    if vcol in cats:
+        raise InputError(f"{src}: column {vcol!r} is the measured value; it cannot also be a --category")
+    labels = {c: category_labels(table, c) for c in cats}
 
     limit = _require(header, limit, "--limit", src) if limit else None
     detected = _require(header, detected, "--detected", src) if detected else None
@@ -203,6 +222,7 @@ def read_points(
                 raise InputError(f"{src}: --only-site: no site {only_site!r} in column {sitecol!r} (sites: {labels})")
             sites, file_rows, censored = sites[keep], file_rows[keep], censored[keep]
             numeric = {c: v[keep] for c, v in numeric.items()}
+            labels = {c: v[keep] for c, v in labels.items()}
     elif only_site is not None:
         raise InputError(f"{src}: --only-site needs --site COL naming the site column")
 
@@ -214,6 +234,7 @@ def read_points(
         "value_column": vcol,
         "site_column": sitecol or "",
         "covariates": list(covs),
+        "categories": list(cats),
         "coords": "lonlat" if lonlat else "xy",
         "distance_units": distance_units,
         "value_units": units or "",
@@ -232,6 +253,7 @@ def read_points(
         numeric[xcol], numeric[ycol], numeric[vcol],
         site=sites, covariates={c: numeric[c] for c in covs}, rows=file_rows, attrs=attrs,
         censored=censored if censored.any() else None,
+        categories={c: (v, category_attrs(v, choose_baseline(v, chosen.get(c), c, src))) for c, v in labels.items()},
     )
     return _finish(ds, src, duplicates, small_sites)
 
@@ -242,8 +264,8 @@ FIT_DATA_ATTRS = ("source", "source_sha256", "coords", "crs", "crs_name", "x_col
 
 #: The keyword arguments of :func:`read_points` that say how to read a data file: the command line, study
 #: files and the settings stored in a run name them alike.
-READ_KEYS = ("x", "y", "value", "limit", "detected", "site", "covariates", "coords", "duplicates", "units",
-             "distance_units", "crs", "to_crs", "layer")
+READ_KEYS = ("x", "y", "value", "limit", "detected", "site", "covariates", "categories", "baselines", "coords",
+             "duplicates", "units", "distance_units", "crs", "to_crs", "layer")
 
 
 def read_settings(settings) -> dict:
@@ -252,9 +274,17 @@ def read_settings(settings) -> dict:
     return {k: settings[k] for k in READ_KEYS if settings.get(k) is not None}
 
 
-def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None, censored=None) -> xr.Dataset:
+def trend_covariates(settings) -> tuple[str, ...]:
+    """The covariates of the trend in read settings (:data:`READ_KEYS`): numeric ``covariates``, then ``categories``."""
+    return (*(settings.get("covariates") or ()), *(settings.get("categories") or ()))
+
+
+def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=None, censored=None,
+                   categories=None) -> xr.Dataset:
     """Assemble the intake ``Dataset`` from arrays (no checks; see :func:`read_points`); ``censored`` marks
-    non-detects, whose ``value`` is their reporting limit."""
+    non-detects, whose ``value`` is their reporting limit; ``categories`` maps a name to its labels, or to
+    ``(labels, attrs)`` (:func:`bayesgeo.data.categories.category_attrs`; default: baseline the most
+    frequent level)."""
     n = len(value)
     coords = {
         "x": ("obs", np.asarray(x, dtype=float)),
@@ -266,6 +296,10 @@ def points_dataset(x, y, value, *, site=None, covariates=None, rows=None, attrs=
     data = {"value": ("obs", np.asarray(value, dtype=float))}
     for name, col in (covariates or {}).items():
         data[name] = ("obs", np.asarray(col, dtype=float))
+    for name, col in (categories or {}).items():
+        labels, cat_attrs = col if isinstance(col, tuple) else (col, None)
+        labels = np.asarray(labels).astype(str)
+        data[name] = ("obs", labels, cat_attrs or category_attrs(labels, choose_baseline(labels, None, name, "data")))
     if censored is not None:
         data["censored"] = ("obs", np.asarray(censored, dtype=bool),
                             {"long_name": "non-detect: the value is the reporting limit; the true value lies below it"})
@@ -409,9 +443,15 @@ def _handle_duplicates(ds: xr.Dataset, src: str, duplicates: str) -> xr.Dataset:
             f"{src}: duplicate locations in columns {ds.attrs['x_column']!r}, {ds.attrs['y_column']!r} "
             f"at rows {listed}{more}; pass --duplicates mean to average them"
         )
+    for name in [v for v in ds.data_vars if is_category(ds[v])]:
+        mixed = [g for g in dup if len(set(ds[name].values[g].tolist())) > 1]
+        if mixed:
+            raise InputError(f"{src}: duplicate locations at rows {format_rows(rows[mixed[0]], limit=4)} have "
+                             f"different levels of category column {name!r}; one location has one level: correct "
+                             "the labels")
     keep = [g[0] for g in groups.values()]
     out = ds.isel(obs=np.array(sorted(keep)))
-    for name in out.data_vars:
+    for name in [v for v in out.data_vars if not is_category(out[v])]:
         vals = out[name].values.copy()
         for g in dup:
             vals[sorted(keep).index(g[0])] = ds[name].values[g].mean()

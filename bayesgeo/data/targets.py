@@ -6,7 +6,10 @@ Targets are ``xarray.Dataset`` objects that :func:`bayesgeo.predict.prediction.p
   boolean ``inside`` on dims ``(y, x)`` (false for masked cells, which are not computed);
 * points (``attrs["kind"] == "points"``): dim ``target`` in input order with coordinates ``x``,
   ``y``, ``row`` (spreadsheet row in the input file) and any further numeric columns as data
-  variables (covariates of the trend).
+  variables (covariates of the trend), and the labels of the trend's categories.
+
+A grid takes the categories of the trend from a polygon layer (:func:`zone_grid`): each cell the
+level of the polygon holding its centre; cells in no polygon are masked out.
 
 Areas (polygons or rectangles) are discretised into points on a fine regular grid inside the
 area (point-in-polygon by :class:`matplotlib.path.Path`) for block averages.
@@ -15,18 +18,21 @@ area (point-in-polygon by :class:`matplotlib.path.Path`) for block averages.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
 from bayesgeo.common.csvtable import MAX_MAGNITUDE, number_problem, parse_number, read_table
-from bayesgeo.common.validate import InputError, check_positive
+from bayesgeo.common.validate import InputError, check_positive, format_rows
+from bayesgeo.data.categories import refuse_unknown, zone_categories
 
 __all__ = [
     "DEFAULT_CELLS",
     "grid_targets",
     "read_target_points",
+    "zone_grid",
     "hull_mask",
     "read_area",
     "parse_rectangle",
@@ -162,7 +168,8 @@ def _numbers(body, col: int, name: str, src: str, rows: list[int]) -> np.ndarray
     return out
 
 
-def read_target_points(path: str | Path, *, columns: tuple[str, ...] = ()) -> xr.Dataset:
+def read_target_points(path: str | Path, *, columns: tuple[str, ...] = (),
+                       categories: Mapping[str, Sequence[str]] | None = None) -> xr.Dataset:
     """Read prediction points from a CSV with columns ``x``, ``y`` (or ``easting``, ``northing``).
 
     Parameters
@@ -170,6 +177,9 @@ def read_target_points(path: str | Path, *, columns: tuple[str, ...] = ()) -> xr
     path : str or Path
     columns : tuple of str
         Further columns required (covariates of the trend), read as numbers.
+    categories : mapping, optional
+        Category columns of the trend -> the levels the fit has seen: read as labels (surrounding
+        spaces removed); an empty cell or another level is refused, naming the rows.
 
     Returns
     -------
@@ -196,9 +206,53 @@ def read_target_points(path: str | Path, *, columns: tuple[str, ...] = ()) -> xr
             raise InputError(f"{src}: the trend needs covariate column {c!r} at the target points; columns are: "
                              f"{', '.join(header)}")
         ds[c] = ("target", _numbers(body, header.index(c), c, src, rows))
+    for c, levels in (categories or {}).items():
+        if c not in header:
+            raise InputError(f"{src}: the trend needs category column {c!r} at the target points; columns are: "
+                             f"{', '.join(header)}")
+        labels = np.array([r[header.index(c)].strip() for r in body], dtype=str)
+        empty = np.flatnonzero(labels == "")
+        if empty.size:
+            raise InputError(f"{src}: empty cells in category column {c!r} at rows "
+                             f"{format_rows(np.asarray(rows)[empty])}; give every target point a level")
+        refuse_unknown(labels, list(levels), c, src, rows=rows)
+        ds[c] = ("target", labels)
     ds["inside"] = ("target", np.ones(len(body), dtype=bool))
     ds.attrs.update({"kind": "points", "source": src})
     return ds
+
+
+def zone_grid(targets: xr.Dataset, path: str | Path, categories: Mapping[str, Sequence[str]], *,
+              layer: str | None = None, crs: str | None = None) -> xr.Dataset:
+    """A copy of the grid ``targets`` whose cells take the trend's categories from a polygon layer.
+
+    Each cell takes the level of the polygon holding its centre
+    (:func:`bayesgeo.data.categories.zone_categories`); a cell whose centre lies in no polygon is
+    masked out (``inside`` false), counted in ``attrs["cells_outside_zones"]``.
+
+    Parameters
+    ----------
+    targets : xarray.Dataset
+        A grid from :func:`grid_targets`.
+    path : str or Path
+        The polygon layer (GeoPackage, shapefile, GeoJSON, FlatGeobuf), in the fit's coordinates.
+    categories : mapping
+        Category column -> the levels the fit has seen; each column an attribute of the polygons.
+    layer, crs : str, optional
+        Layer of a file holding several; the fit's CRS (a layer declaring another is refused).
+    """
+    xx, yy = np.meshgrid(targets["x"].values, targets["y"].values)
+    labels, covered = zone_categories(path, np.column_stack([xx.ravel(), yy.ravel()]), categories, layer=layer,
+                                      crs=crs)
+    shape = targets["inside"].shape
+    out = targets.copy()
+    was = np.asarray(targets["inside"].values, dtype=bool)
+    out["inside"] = (("y", "x"), was & covered.reshape(shape), dict(targets["inside"].attrs))
+    for c, v in labels.items():
+        out[c] = (("y", "x"), v.reshape(shape), {"long_name": f"level of {c!r} at the cell centre ('' outside "
+                                                             "every zone polygon)"})
+    out.attrs.update(zones=str(path), cells_outside_zones=int(np.count_nonzero(was & ~covered.reshape(shape))))
+    return out
 
 
 def polygon_area(vertices) -> float:

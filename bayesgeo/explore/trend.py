@@ -16,20 +16,30 @@ Terms are labelled ``"1"``, ``"x"``, ``"y"``, ``"x^2"``, ``"x*y"``, ``"y^2"``, `
 ``"x^2*y"``, ``"x*y^2"``, ``"y^3"`` (in that order), then the covariate names. Coefficients refer
 to the scaled columns.
 
+A covariate of text labels (a category, :mod:`bayesgeo.data.categories`) is treatment coded instead:
+one 0/1 column ``"<name>=<level>"`` per level other than its baseline, not centred or scaled, so its
+coefficient is the difference of that level's mean from the baseline's in value units. Its levels and
+baseline travel in ``attrs["categories"]`` (a JSON string ``{name: {"levels": [...], "baseline": ...}}``),
+and :func:`design_matrix` refuses a level with too few points and a category collinear with the rest
+of the design (one line naming the file and column).
+
 Reference: the trend-surface model z(x) = f(x)^T beta + e(x) and its least-squares fit, e.g.
 Cressie (1993), *Statistics for Spatial Data*, sec. 3.4.3.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import json
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 import xarray as xr
 
 from bayesgeo.common.validate import InputError
+from bayesgeo.data.categories import (check_levels, is_category, level_terms, levels_of, refuse_unknown,
+                                      treatment_columns)
 
-__all__ = ["MAX_ORDER", "trend_terms", "design_matrix", "design_at", "fit_trend"]
+__all__ = ["MAX_ORDER", "trend_terms", "design_matrix", "design_at", "design_categories", "fit_trend"]
 
 #: Highest polynomial order offered for a trend surface.
 MAX_ORDER = 3
@@ -51,9 +61,25 @@ def _label(px: int, py: int) -> str:
     return "*".join(parts) if parts else "1"
 
 
-def trend_terms(order: int, covariates: Sequence[str] = ()) -> list[str]:
-    """Labels of the design columns for a trend of ``order`` plus ``covariates``."""
-    return [_label(px, py) for px, py in _powers(_check_order(order))] + list(covariates)
+def trend_terms(order: int, covariates: Sequence[str] = (), categories: Mapping | None = None) -> list[str]:
+    """Labels of the design columns for a trend of ``order`` plus ``covariates``; a covariate named in
+    ``categories`` (name -> ``{"levels": [...], "baseline": ...}``) gives one label per level but the baseline."""
+    cats = categories or {}
+    terms = [_label(px, py) for px, py in _powers(_check_order(order))]
+    for c in covariates:
+        terms += level_terms(c, cats[c]["levels"], cats[c]["baseline"]) if c in cats else [c]
+    return terms
+
+
+def design_categories(attrs: Mapping) -> dict[str, dict]:
+    """The categories of design attributes: name -> ``{"levels": [...], "baseline": ...}`` ({} for none)."""
+    cats = attrs.get("categories") or {}
+    return json.loads(cats) if isinstance(cats, str) else {str(k): dict(v) for k, v in cats.items()}
+
+
+def _names(attrs: Mapping) -> list[str]:
+    names = attrs.get("covariates") or []
+    return [names] if isinstance(names, str) else [str(c) for c in names]  # a one-element list read back as str
 
 
 def _half_span(v: np.ndarray) -> float:
@@ -77,19 +103,23 @@ def design_matrix(ds: xr.Dataset, order: int = 0, covariates: Sequence[str] = ()
     order : int
         Total polynomial degree in the coordinates, 0 (constant mean) to 3.
     covariates : sequence of str
-        Data variables of ``ds`` added as linear terms.
+        Data variables of ``ds`` added as linear terms; a category variable (text labels,
+        :mod:`bayesgeo.data.categories`) as its treatment-coded indicator columns.
 
     Returns
     -------
     xarray.DataArray
         Dims ``(obs, term)``. Attributes: ``order``, ``covariates``, ``terms``, ``centre_x``,
         ``centre_y``, ``scale`` (coordinate units), ``covariate_centre`` and ``covariate_scale``
-        (one per covariate): everything :func:`design_at` needs.
+        (one per covariate; 0 and 1 for a category), and with categories ``categories`` (JSON:
+        levels and baseline of each): everything :func:`design_at` needs.
 
     Raises
     ------
     InputError
-        Order outside 0-3 (``--trend``) or a covariate that is not a variable of ``ds``.
+        Order outside 0-3 (``--trend``), a covariate that is not a variable of ``ds``, a category with
+        one level or a level with fewer than :data:`bayesgeo.data.categories.MIN_LEVEL_POINTS` points,
+        or a category collinear with the rest of the design (naming the file and column).
     """
     order = _check_order(order)
     covariates = [str(c) for c in covariates]
@@ -99,18 +129,30 @@ def design_matrix(ds: xr.Dataset, order: int = 0, covariates: Sequence[str] = ()
             raise InputError(f"covariates: {c!r} is not a column of the data (covariates read: {', '.join(have) or 'none'})")
     x = np.asarray(ds["x"].values, dtype=float)
     y = np.asarray(ds["y"].values, dtype=float)
-    cov = np.column_stack([np.asarray(ds[c].values, dtype=float) for c in covariates]) if covariates else np.empty((x.size, 0))
+    src, where = _where(ds)
+    rows = ds["row"].values if "row" in ds.coords else None
+    cats = {}
+    for c in covariates:
+        if is_category(ds[c]):
+            levels, baseline = levels_of(ds[c])
+            check_levels(ds[c].values, levels, c, src, rows=rows, where=where)
+            cats[c] = {"levels": levels, "baseline": baseline}
+    values = {c: ds[c].values if c in cats else np.asarray(ds[c].values, dtype=float) for c in covariates}
     attrs = {
         "order": order,
         "covariates": covariates,
-        "terms": trend_terms(order, covariates),
+        "terms": trend_terms(order, covariates, cats),
         "centre_x": float(np.mean(x)),
         "centre_y": float(np.mean(y)),
         "scale": max(_half_span(x), _half_span(y)) if (np.ptp(x) > 0 or np.ptp(y) > 0) else 1.0,
-        "covariate_centre": [float(np.mean(cov[:, j])) for j in range(cov.shape[1])],
-        "covariate_scale": [_half_span(cov[:, j]) for j in range(cov.shape[1])],
+        "covariate_centre": [0.0 if c in cats else float(np.mean(values[c])) for c in covariates],
+        "covariate_scale": [1.0 if c in cats else _half_span(values[c]) for c in covariates],
     }
-    mat = design_at(np.column_stack([x, y]), attrs, cov)
+    if cats:
+        attrs["categories"] = json.dumps(cats)
+    mat = design_at(np.column_stack([x, y]), attrs, values)
+    if cats:
+        _refuse_collinear(mat, attrs, cats, src, where)
     return xr.DataArray(
         mat, dims=("obs", "term"),
         coords={"term": attrs["terms"], **{k: ds.coords[k] for k in ("x", "y", "row", "site") if k in ds.coords}},
@@ -118,7 +160,32 @@ def design_matrix(ds: xr.Dataset, order: int = 0, covariates: Sequence[str] = ()
     )
 
 
-def design_at(xy: np.ndarray, attrs: dict, covariates: np.ndarray | None = None) -> np.ndarray:
+def _where(ds: xr.Dataset) -> tuple[str, str]:
+    """The data's file and, for one site of several, `` at site '<label>'`` (for messages)."""
+    sites = np.unique(ds["site"].values) if "site" in ds.coords else []
+    return str(ds.attrs.get("source") or "data"), (f" at site {str(sites[0])!r}" if len(sites) == 1 else "")
+
+
+def _refuse_collinear(mat: np.ndarray, attrs: dict, cats: dict, src: str, where: str) -> None:
+    """Name the first category whose indicator columns make the design rank-deficient (one line)."""
+    terms = attrs["terms"]
+    own = {c: [j for j, t in enumerate(terms) if t.startswith(f"{c}=") and t[len(c) + 1:] in cats[c]["levels"]]
+           for c in cats}
+    keep = [j for j in range(len(terms)) if not any(j in cols for cols in own.values())]
+    if np.linalg.matrix_rank(mat[:, keep]) < len(keep):
+        return  # the polynomial or a numeric covariate is at fault: the fitting stages say so
+    for c, cols in own.items():
+        keep += cols
+        rank = int(np.linalg.matrix_rank(mat[:, keep]))
+        if rank < len(keep):
+            cols = ", ".join(terms[j] for j in keep)
+            raise InputError(
+                f"{src}: category column {c!r}{where} is collinear with the intercept, the polynomial trend terms "
+                f"or another covariate (design rank {rank} of {len(keep)} columns: {cols}); the trend cannot tell "
+                "their effects apart: drop the category or the covariate it repeats")
+
+
+def design_at(xy: np.ndarray, attrs: Mapping, covariates: np.ndarray | Mapping | None = None) -> np.ndarray:
     """Rebuild the design columns of :func:`design_matrix` at locations ``xy``.
 
     Parameters
@@ -127,9 +194,9 @@ def design_at(xy: np.ndarray, attrs: dict, covariates: np.ndarray | None = None)
         Locations in the coordinates of the data the design was made from.
     attrs : dict
         The attributes of a design matrix (or of ``coefficient`` from :func:`fit_trend`).
-    covariates : ndarray, shape (m, n_covariates), optional
-        Covariate values at ``xy``, in the order of ``attrs["covariates"]``; required when the
-        trend has covariates.
+    covariates : ndarray, shape (m, n_covariates), or mapping, optional
+        Covariate values at ``xy``, in the order of ``attrs["covariates"]`` (or name -> values);
+        required when the trend has covariates. A category's values are its labels.
 
     Returns
     -------
@@ -138,20 +205,32 @@ def design_at(xy: np.ndarray, attrs: dict, covariates: np.ndarray | None = None)
     xy = np.asarray(xy, dtype=float)
     if xy.ndim != 2 or xy.shape[1] != 2:
         raise ValueError(f"xy must have shape (m, 2), got {xy.shape}")
-    names = list(attrs.get("covariates", []))
-    if isinstance(attrs.get("covariates"), str):  # a one-element list read back from NetCDF
-        names = [attrs["covariates"]]
+    names = _names(attrs)
+    cats = design_categories(attrs)
+    cols = []
     if names:
         if covariates is None:
             raise InputError(f"the trend uses covariates {', '.join(names)}: give their values at the new locations")
-        cov = np.asarray(covariates, dtype=float).reshape(xy.shape[0], -1)
-        if cov.shape[1] != len(names):
-            raise InputError(f"the trend uses {len(names)} covariates ({', '.join(names)}), got {cov.shape[1]} columns")
+        if isinstance(covariates, Mapping):
+            missing = [c for c in names if c not in covariates]
+            if missing:
+                raise InputError(f"the trend uses covariates {', '.join(names)}: no values of {', '.join(missing)}")
+            given = [np.asarray(covariates[c]).ravel() for c in names]
+        else:
+            arr = np.asarray(covariates).reshape(xy.shape[0], -1)
+            if arr.shape[1] != len(names):
+                raise InputError(f"the trend uses {len(names)} covariates ({', '.join(names)}), "
+                                 f"got {arr.shape[1]} columns")
+            given = [arr[:, j] for j in range(arr.shape[1])]
         centre = np.atleast_1d(np.asarray(attrs["covariate_centre"], dtype=float))
         scale = np.atleast_1d(np.asarray(attrs["covariate_scale"], dtype=float))
-        cov = (cov - centre) / scale
-    else:
-        cov = np.empty((xy.shape[0], 0))
+        for j, (c, v) in enumerate(zip(names, given)):
+            if c in cats:
+                refuse_unknown(v, cats[c]["levels"], c, "new locations")
+                cols.append(treatment_columns(v, cats[c]["levels"], cats[c]["baseline"]))
+            else:
+                cols.append(((np.asarray(v, dtype=float) - centre[j]) / scale[j])[:, None])
+    cov = np.column_stack(cols) if cols else np.empty((xy.shape[0], 0))
     s = float(attrs["scale"])
     u = (xy[:, 0] - float(attrs["centre_x"])) / s
     v = (xy[:, 1] - float(attrs["centre_y"])) / s

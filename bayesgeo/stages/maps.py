@@ -45,6 +45,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
             draws=DEFAULT_DRAWS, nugget: str = "include", hull_mask: bool = False, scheduler: str = "threads",
             chunk_cells: int = 4096, simulate: int | None = None, seed: int = 0, overwrite: bool = False,
             allow_unconverged: bool = False, figures: bool = True, levels: Sequence[float] = DECISION_LEVELS,
+            zones: str | Path | None = None, zones_layer: str | None = None,
             progress: Callable | None = None) -> tuple[int, dict]:
     """Predict on a grid (or at ``points``) from the fit in ``folder`` and write predictions and maps.
 
@@ -77,6 +78,10 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
         Replace earlier outputs; map a fit that failed its check (marked NOT CONVERGED); draw the maps.
     levels : sequence of float
         Probability levels in (0, 1) of the exceedance contours and of the polygons of map.gpkg.
+    zones, zones_layer : path, str, optional
+        For a grid and a trend with categorical covariates: a polygon layer (GeoPackage, shapefile,
+        GeoJSON) whose attribute of each category's name gives the level of every cell whose centre it
+        holds (:func:`bayesgeo.data.targets.zone_grid`); cells in no polygon are left out of the map.
     progress : callable, optional
         Bar factory ``progress(total=, desc=)`` (:func:`bayesgeo.cli._common.progress`); None for none.
 
@@ -91,7 +96,7 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     from bayesgeo.fitting.fitted import read_site
     from bayesgeo.common.outputs import add_to_folder, check_addable
     from bayesgeo.predict.prediction import area_average, basis_from_fit, check_scheduler, label_prediction, predict_targets
-    from bayesgeo.explore.trend import design_at
+    from bayesgeo.explore.trend import design_at, design_categories
 
     folder = Path(folder)
     draws = map_draws(draws)
@@ -125,12 +130,20 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
 
     basis, spec, params = basis_from_fit(fit, draws=draws)
     xy = basis.xy
+    cats = {c: v["levels"] for c, v in design_categories(spec.design_attrs).items()}
+    if zones is not None and (points or not cats):
+        raise InputError("zones: " + ("for grid maps; target --points carry their categories as columns" if points
+                                      else "the fit's trend has no categorical covariate; drop the zones"))
     if points:
-        targets = tg.read_target_points(points, columns=tuple(spec.covariates))
+        targets = tg.read_target_points(points, columns=tuple(c for c in spec.covariates if c not in cats),
+                                        categories=cats)
         if hull_mask:
             targets["inside"] = ("target", tg.hull_mask(xy, np.column_stack([targets["x"], targets["y"]])))
     else:
         targets = tg.grid_targets(xy, cell=cell, margin=margin, hull=hull_mask, metric=basis.metric)
+        if zones is not None:
+            targets = tg.zone_grid(targets, zones, cats, layer=zones_layer,
+                                   crs=str((fit.settings.get("data") or {}).get("crs", "")) or None)
     units = spec.value_units
     n_cells = int(np.count_nonzero(targets["inside"].values))
     area_pts = None  # refuse a bad area or simulation before the long prediction, not after it
@@ -178,6 +191,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
     })
     if block is not None:
         pred.attrs["area_average"] = json.dumps(block)
+    if zones is not None:
+        pred.attrs["zones_note"] = (f"{targets.attrs['cells_outside_zones']} cells whose centre lies in no polygon of "
+                                    f"{zones} were left out of the map (no category there)")
     georef = georeferenced_fit_map(pred, fit)
     with add_to_folder(folder, out_nc.name, overwrite=overwrite) as tmp:
         georef.to_netcdf(tmp, engine="netcdf4")
@@ -204,6 +220,9 @@ def map_fit(folder, *, site: str | None = None, cell: float | None = None, margi
                                      for j in range(len(thresholds))] if n_cells else [],
         "cautions": cautions,
     }
+    if zones is not None:
+        result["zones"] = {"source": str(zones), "cells_outside": int(targets.attrs["cells_outside_zones"]),
+                           "note": pred.attrs["zones_note"]}
     if block is not None:
         result["area"] = block
     return 0, result

@@ -269,10 +269,19 @@ def _check_ranges(s: dict, src: str, text: str) -> None:
         fail("model", "nu", "nu applies to the 'matern' family only; add \"matern\" to covariance or drop nu")
     if "matern" in fams and s["model"]["nu"] is None:
         fail("model", "covariance", "family 'matern' needs nu (e.g. nu = 2.5) in [model]")
-    missing = [c for c in s["model"]["covariates"] if c not in s["data"]["covariates"]]
+    readable = [*s["data"]["covariates"], *s["data"]["categories"]]
+    missing = [c for c in s["model"]["covariates"] if c not in readable]
     if missing:
-        fail("model", "covariates", f"{', '.join(missing)} not listed in [data] covariates "
-                                    f"({', '.join(s['data']['covariates']) or 'none'})")
+        fail("model", "covariates", f"{', '.join(missing)} not listed in [data] covariates or categories "
+                                    f"({', '.join(readable) or 'none'})")
+    both = [c for c in s["data"]["categories"] if c in s["data"]["covariates"]]
+    if both:
+        fail("data", "categories", f"{both[0]!r} is also in covariates: a column is numbers or labels, not both")
+    for item in s["data"]["baselines"]:
+        col = str(item).partition("=")[0].strip()
+        if "=" not in str(item) or col not in s["data"]["categories"]:
+            fail("data", "baselines", f"{item!r}: expected \"COL=LEVEL\" with COL in categories "
+                                      f"({', '.join(s['data']['categories']) or 'none'})")
     for key, pair in s["model.priors"].items():
         if pair is not None:
             check_prior_pair(pair, _where(src, text, "model.priors", key))
