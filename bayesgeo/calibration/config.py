@@ -61,6 +61,10 @@ class SBCConfig:
         0 (default): no non-detects. A share in (0, 0.6]: values below a fixed reporting limit, the
         share's quantile of the prior predictive, are reported as non-detects and modelled as censored
         (:mod:`bayesgeo.calibration.censoring`; single-site models only).
+    anisotropy : bool
+        Geometric anisotropy (:mod:`bayesgeo.gp.anisotropy`; single-site dense model): truths of the
+        anisotropy vector come from its prior, data from the anisotropic covariance, and the two sampled
+        coordinates ``anisotropy_z`` are ranked besides the other quantities.
     trend : {"auto", "sampled"}
         ``"auto"``: as ``build_model`` (the dense likelihood integrates the trend coefficients out
         and SBC draws them after sampling from their exact conditional, as ``bayesgeo fit`` does);
@@ -82,11 +86,13 @@ class SBCConfig:
     coordinates: str = "share"
     trend: str = "auto"
     censored: float = 0.0
+    anisotropy: bool = False
 
     @property
     def label(self) -> str:
         """Short name, e.g. ``single/matern32/nugget`` (``.../censored-30%`` with non-detects)."""
         tail = f"/censored-{100 * self.censored:.0f}%" if self.censored else ""
+        tail += "/anisotropic" if self.anisotropy else ""
         return f"{self.kind}/{self.covariance}/{'nugget' if self.nugget else 'no-nugget'}{tail}"
 
     def to_dict(self) -> dict:
@@ -139,6 +145,8 @@ def with_settings(config: SBCConfig, **changes) -> SBCConfig:
     out = replace(config, **changes)
     if out.censored and out.kind == "hierarchical":
         raise InputError("censored: SBC checks non-detects with the single-site models only")
+    if out.anisotropy and out.kind != "single":
+        raise InputError("anisotropy: SBC checks anisotropy with the single-site dense model only")
     from bayesgeo.fitting.looks import longest_chain
 
     longest_chain(out.draws, out.max_draws)  # refuses max_draws below draws

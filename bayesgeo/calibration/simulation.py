@@ -83,10 +83,13 @@ def sbc_model(template: xr.Dataset, config: SBCConfig, *, fixed=None):
     from bayesgeo.fitting.model import build_model_and_inputs
 
     held = {} if fixed is None else {"priors": fixed.priors, "_standardise": (fixed.value_mean, fixed.value_sd)}
+    if config.anisotropy:
+        held["anisotropy"] = True
     model, spec, y, design, dist = build_model_and_inputs(
         template, covariance=config.covariance, nu=config.nu, nugget=config.nugget,
         _coordinates=config.coordinates, _trend="sampled" if config.kind == "nn" else config.trend, **held)
-    blocks = [{"y": y, "design": np.asarray(design.values, dtype=float), "dist": dist}]
+    xy = np.column_stack([template["x"].values, template["y"].values]).astype(float) / spec.distance_scale
+    blocks = [{"y": y, "design": np.asarray(design.values, dtype=float), "dist": dist, "xy": xy}]
     nn = None
     if config.kind == "nn":
         nn = {"xy": np.column_stack([template["x"].values, template["y"].values]).astype(float),
@@ -122,21 +125,28 @@ def _truth_block(prior: xr.Dataset, i: int, hier: bool) -> dict:
 
     return {"practical_range_z": float(get("practical_range_z")), "sd_z": float(get("sd_z")),
             "nugget_sd_z": None if get("nugget_sd_z") is None else float(get("nugget_sd_z")),
-            "beta_z": np.atleast_1d(get("beta_z"))}
+            "beta_z": np.atleast_1d(get("beta_z")), "anisotropy_z": get("anisotropy_z")}
 
 
 def simulate_data(truth: dict, block: dict, spec, rng: np.random.Generator) -> np.ndarray:
     """y = F beta + chol(K) e, e ~ N(0, I), with K of :func:`bayesgeo.gp.dense.covariance_matrix`.
 
     ``truth`` holds ``practical_range_z``, ``sd_z``, ``nugget_sd_z`` (or None) and ``beta_z`` on
-    the standardised scale; ``block`` the design and scaled distances.
+    the standardised scale; ``block`` the design and scaled distances; with ``anisotropy_z`` in ``truth`` the
+    distances are the anisotropic ones of the block's scaled coordinates ``xy``.
     """
     from bayesgeo.gp.covariance import get_covariance
     from bayesgeo.gp.dense import covariance_matrix
 
     cov = get_covariance(spec.covariance, spec.nu if spec.covariance == "matern" else None)
     tau2 = 0.0 if truth["nugget_sd_z"] is None else truth["nugget_sd_z"] ** 2
-    k = covariance_matrix(block["dist"], cov, truth["practical_range_z"] / spec.range_factor, truth["sd_z"] ** 2, tau2)
+    dist = block["dist"]
+    if truth.get("anisotropy_z") is not None:
+        from bayesgeo.gp.anisotropy import angle_ratio, anisotropic_distance
+
+        angle, ratio = angle_ratio(truth["anisotropy_z"])
+        dist = anisotropic_distance(block["xy"], block["xy"], float(angle), float(ratio))
+    k = covariance_matrix(dist, cov, truth["practical_range_z"] / spec.range_factor, truth["sd_z"] ** 2, tau2)
     chol = np.linalg.cholesky(k)
     return block["design"] @ truth["beta_z"] + chol @ rng.standard_normal(len(k))
 
@@ -159,6 +169,10 @@ def _truth_items(prior: xr.Dataset, r: int, spec, kind: str) -> tuple[dict, list
             key = label if site is None else f"{label}[{site}]"
             items[key] = {"var": var, "site": None if site is None else i,
                           "term": None if term is None else list(spec.terms).index("1"), "value": float(value)}
+    if not hier and blocks[0].get("anisotropy_z") is not None:  # the two sampled anisotropy coordinates
+        for j, label in enumerate(("anisotropy_cos", "anisotropy_sin")):
+            items[label] = {"var": "anisotropy_z", "site": None, "term": j, "dim": "anisotropy_coord",
+                            "value": float(blocks[0]["anisotropy_z"][j])}
     if hier:  # population medians of the practical range and of the field sd (build_site_model)
         for label, var in (("population_range", "population_range_z"), ("population_sd", "population_sd_z")):
             if var in one:

@@ -95,7 +95,7 @@ def _replicate(unit) -> dict:
         base = _compiled(p)
         compiled = CompiledModel(model=base.model, compiled=base.compiled.with_data(
             **{f"sbc_y_{i}": y for i, y in enumerate(p["ys"])}))
-    names = [q for q in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z")
+    names = [q for q in ("practical_range_z", "sd_z", "nugget_sd_z", "beta_z", "anisotropy_z")
              if q in base.model.named_vars]
     look = convergence_look(lambda t: t, thresholds=dict(cfg.thresholds) or None, var_names=names, levels=("fail",))
     tree = sample(compiled, chains=cfg.chains, draws=cfg.draws, tune=cfg.tune, target_accept=cfg.target_accept,
@@ -108,7 +108,7 @@ def _replicate(unit) -> dict:
 
         t, cens = p["trend"], np.flatnonzero(p["censored"]) if p["censored"] is not None else np.zeros(0, int)
         post["beta_z"] = draw_trend(post, p["spec"], values_per_draw(p["ys"][0], cens, post), t["design"], t["dist"],
-                                    seed=[int(unit.seed % (2**31 - 1)), 3])
+                                    seed=[int(unit.seed % (2**31 - 1)), 3], xy=t.get("xy"))
         names = [*names, "beta_z"]
         attrs = dict(tree.attrs)
         tree = xr.DataTree.from_dict({"/posterior": post, "/sample_stats": tree["sample_stats"].to_dataset()})
@@ -122,7 +122,7 @@ def _replicate(unit) -> dict:
         if site is not None:
             da = da.isel(site=site)
         if term is not None:
-            da = da.isel(term=term)
+            da = da.isel({value.get("dim", "term"): term})
         arr = np.asarray(da.transpose("chain", "draw").values, dtype=float)
         ranks[label] = rank_of(value["value"], arr, cfg.ranks_of)
         flat = arr.ravel()

@@ -57,9 +57,17 @@ def variogram_check_figure(vc: xr.Dataset, *, title: str | None = None):
         Grey band: where the semivariograms of replicate data fall (pointwise quantiles over
         replicates, like-for-like with the observed points); blue band and line: the model
         semivariogram's posterior interval and median; dark points: observed semivariances,
-        area growing with the pair count; red rings: bins outside the replicate band.
+        area growing with the pair count; red rings: bins outside the replicate band. For an anisotropic
+        fit two more panels show the same along the major and the minor axis (``axis_*`` variables).
     """
-    fig, ax = _figure()
+    axes = "axis_observed" in vc
+    if axes:
+        from matplotlib.figure import Figure
+
+        fig = Figure(figsize=(12.0, 4.6), layout="constrained")
+        ax, *side = fig.subplots(1, 3, gridspec_kw={"width_ratios": [1.4, 1.0, 1.0]})
+    else:
+        fig, ax = _figure()
     prob = float(vc.attrs.get("prob", 0.9))
     lo_name, hi_name = _band_names(vc, "replicate")
     lag = vc["lag"].values
@@ -91,8 +99,44 @@ def variogram_check_figure(vc: xr.Dataset, *, title: str | None = None):
     ax.set_title(title or f"Posterior predictive semivariogram check: {vc.attrs.get('covariance', '')}", fontsize=10.5)
     ax.grid(True, color="#eeeeee", linewidth=0.6)
     ax.legend(fontsize=7.5, loc="upper left", frameon=True, framealpha=0.85, edgecolor="none")
-    _footer(fig, f"Classical estimator, {detr}; {vc.attrs.get('outside_band', 0)} bin(s) outside the replicate band.")
+    extra = ""
+    if axes:
+        _axis_panels(vc, side, prob, du, mu)
+        extra = f"; along the axes: {vc.attrs.get('outside_band_axes', 0)}"
+    _footer(fig, f"Classical estimator, {detr}; {vc.attrs.get('outside_band', 0)} bin(s) outside the replicate "
+                 f"band{extra}.")
     return fig
+
+
+def _axis_panels(vc: xr.Dataset, side, prob: float, du: str, mu: str) -> None:
+    """The directional check of an anisotropic fit: one panel per axis (major, minor)."""
+    lo, hi = _band_names(vc, "axis_replicate")
+    mlo, mhi = _band_names(vc, "axis_model")
+    top = float(np.nanmax([np.nanmax(vc[hi].values), np.nanmax(vc["axis_observed"].values),
+                           np.nanmax(vc[mhi].values)])) * 1.05
+    for j, ax in enumerate(side):
+        sel = vc.isel(axis=j)
+        has = sel["axis_pairs"].values > 0
+        lag = sel["axis_lag"].values
+        ax.fill_between(lag[has], sel[lo].values[has], sel[hi].values[has], color=_REPLICATE, linewidth=0, zorder=0,
+                        label=f"replicate data, {prob:.0%} band")
+        ax.fill_between(lag[has], sel[mlo].values[has], sel[mhi].values[has], color=_MODEL, alpha=0.18,
+                        linewidth=0, zorder=1, label="model along the axis")
+        obs = sel["axis_observed"].values
+        ax.scatter(lag[has], obs[has], s=_sizes(sel["axis_pairs"].values)[has], color=_POINT, zorder=3,
+                   label="observed")
+        out = has & sel["axis_outside"].values
+        if out.any():
+            ax.scatter(lag[out], obs[out], s=_sizes(sel["axis_pairs"].values)[out] * 3.0, facecolors="none",
+                       edgecolors=_FLAG, linewidths=1.2, zorder=4)
+        name = str(sel["axis"].values)
+        ax.set_title(f"{name} axis, {float(sel['axis_azimuth']):.0f}° from north", fontsize=9.5)
+        ax.set_xlabel(f"lag distance ({du})")
+        ax.set_ylim(0.0, top if np.isfinite(top) and top > 0 else None)
+        ax.grid(True, color="#eeeeee", linewidth=0.6)
+        if j == 0:
+            ax.set_ylabel(f"semivariance [({mu})²]")
+            ax.legend(fontsize=7, loc="lower right", frameon=True, framealpha=0.85, edgecolor="none")
 
 
 def _band_names(vc: xr.Dataset, prefix: str) -> tuple[str, str]:

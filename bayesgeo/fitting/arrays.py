@@ -281,6 +281,8 @@ def fit_arrays(tree: xr.DataTree) -> FitArrays:
     censored = np.asarray(obs["censored"].values, dtype=bool) if "censored" in obs else np.zeros(value.size, bool)
     if censored.any():
         draws["censored_z"] = np.asarray(post["censored_z"].transpose("chain", "draw", ...).values, dtype=float)
+    if "anisotropy_z" in post:
+        draws["anisotropy_z"] = np.asarray(post["anisotropy_z"].transpose("chain", "draw", ...).values, dtype=float)
     sha = _source_sha256(tree)
     rows = obs["row"].values if "row" in obs.coords else _find(tree, "row")
     return FitArrays(

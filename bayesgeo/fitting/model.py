@@ -45,7 +45,8 @@ from bayesgeo.common.validate import InputError
 from bayesgeo.common.io import to_jsonable
 from bayesgeo.gp.engines import choose, engine
 
-__all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "censored_index", "check_model_inputs",
+__all__ = ["ANISOTROPY_COORDS", "TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "censored_index",
+           "check_model_inputs",
            "model_inputs",
            "build_model_and_inputs", "transform_values", "variance_split_logp"]
 
@@ -54,6 +55,11 @@ __all__ = ["TRANSFORMS", "VARIANCE_COORDS", "FitSpec", "build_model", "censored_
 VARIANCE_COORDS = ("log_total_variance", "logit_spatial_share")
 _LOG4 = math.log(4.0)
 
+
+
+#: Coordinates of the sampled anisotropy vector alpha = log(ratio) (cos 2 theta, sin 2 theta)
+#: (:mod:`bayesgeo.gp.anisotropy`).
+ANISOTROPY_COORDS = ("log_ratio_cos2angle", "log_ratio_sin2angle")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -126,7 +132,7 @@ def check_model_inputs(ds: xr.Dataset, covariance: str, nu: float | None, nugget
 def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                  nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                  transform: str | None = None, priors: Priors | Mapping | None = None,
-                 approx: str = "auto", neighbours: int | None = None,
+                 approx: str = "auto", neighbours: int | None = None, anisotropy: bool = False,
                  _standardise: tuple[float, float] | None = None):
     """Check the data and settings and compute everything the model needs.
 
@@ -157,6 +163,8 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
                          "from these locations and covariates; use a lower order or drop a covariate")
     approx, neighbours = choose(approx, neighbours, n, cov.name)
     metric = metric_of(ds)
+    if anisotropy:
+        check_anisotropy(metric, approx, _source(ds))
     xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
     extent, d = engine(approx).distances(xy, metric)  # d: None for nn, which never builds an n x n matrix
     if not extent > 0:
@@ -175,7 +183,7 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
         metric=metric, distance_units=str(ds.attrs.get("distance_units", "")),
         value_units=str(ds.attrs.get("value_units", "") or ds["value"].attrs.get("units", "")),
         value_column=str(ds.attrs.get("value_column", "value")), n=int(n), priors=resolved,
-        approx=approx, neighbours=int(neighbours), censored=int(censored_index(ds).size),
+        approx=approx, neighbours=int(neighbours), censored=int(censored_index(ds).size), anisotropy=bool(anisotropy),
     )
     return spec, (z - vmean) / vsd, design, None if d is None else d / extent
 
@@ -183,8 +191,8 @@ def model_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | No
 def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None,
                 nugget: bool = True, trend: int = 0, covariates: Sequence[str] = (),
                 transform: str | None = None, priors: Priors | Mapping | None = None,
-                approx: str = "auto", neighbours: int | None = None, _coordinates: str = "share",
-                _trend: str = "auto"):
+                approx: str = "auto", neighbours: int | None = None, anisotropy: bool = False,
+                _coordinates: str = "share", _trend: str = "auto"):
     """Build the PyMC model of one site's point data.
 
     Parameters
@@ -210,6 +218,10 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     neighbours : int, optional
         Conditioning set size m of the nearest-neighbour likelihood (default
         :data:`bayesgeo.gp.nn.DEFAULT_NEIGHBOURS`).
+    anisotropy : bool
+        Geometric anisotropy (:mod:`bayesgeo.gp.anisotropy`): the anisotropy vector ``anisotropy_z`` (dim
+        ``anisotropy_coord``) is sampled with prior Normal(0, s^2 I) (s from
+        :func:`bayesgeo.gp.anisotropy.prior_scale`); dense likelihood and planar coordinates only.
 
     Returns
     -------
@@ -234,8 +246,8 @@ def build_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     """
     model, spec, *_ = build_model_and_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend,
                                              covariates=covariates, transform=transform, priors=priors,
-                                             approx=approx, neighbours=neighbours, _coordinates=_coordinates,
-                                             _trend=_trend)
+                                             approx=approx, neighbours=neighbours, anisotropy=anisotropy,
+                                             _coordinates=_coordinates, _trend=_trend)
     return model, spec
 
 
@@ -257,6 +269,8 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
         raise ValueError(f"_trend must be 'auto', 'integrated' or 'sampled', got {_trend!r}")
     integrated = _trend_integrated(spec, _trend)
     coords = {"term": list(spec.terms)}
+    if spec.anisotropy:
+        coords["anisotropy_coord"] = list(ANISOTROPY_COORDS)
     if spec.nugget and _coordinates == "share":
         coords["variance_coord"] = list(VARIANCE_COORDS)
     cens = censored_index(ds)
@@ -281,11 +295,26 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
             beta = pm.Normal("beta_z", mu=0.0, sigma=spec.priors.beta_sd, dims="term")
             resid, extra = y_model - pm.math.dot(design.values, beta), None
         xy = np.column_stack([ds["x"].values, ds["y"].values]).astype(float)
+        aniso = None
+        if spec.anisotropy:
+            from bayesgeo.gp.anisotropy import prior_scale
+
+            aniso = pm.Normal("anisotropy_z", mu=0.0, sigma=prior_scale(), dims="anisotropy_coord")
         loglik = engine(spec.approx).loglik(
             resid, xy=xy, dist=dist, covariance=cov, scale=prange / spec.range_factor, partial_sill=sd2, nugget=tau2,
-            neighbours=spec.neighbours, metric=spec.metric, distance_scale=spec.distance_scale, extra=extra)
+            neighbours=spec.neighbours, metric=spec.metric, distance_scale=spec.distance_scale, extra=extra,
+            anisotropy=aniso)
         pm.Potential("loglik", loglik)
     return model, spec, y, design, dist
+
+
+def check_anisotropy(metric: str, approx: str, source: str) -> None:
+    """Anisotropy needs planar coordinates and (in this version) the dense likelihood."""
+    if metric == "greatcircle":
+        raise InputError(f"{source}: anisotropy needs planar coordinates; project lon/lat data first (--to-crs utm)")
+    if approx != "dense":
+        raise InputError(f"{source}: anisotropy is available with the dense likelihood only in this version "
+                         "(--approx dense, up to 2,000 points per site)")
 
 
 def censored_index(ds: xr.Dataset) -> np.ndarray:

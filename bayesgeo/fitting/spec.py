@@ -54,6 +54,8 @@ class SpecBase:
     priors : Priors
         Resolved priors in data units (units of the transformed values); the population location
         for several sites.
+    anisotropy : bool
+        Geometric anisotropy (:mod:`bayesgeo.gp.anisotropy`): the range differs by direction.
     approx : str
         The likelihood (:mod:`bayesgeo.gp.engines`): ``dense`` or ``nn`` for one site; as requested
         (``auto``, ``dense`` or ``nn``) for several sites, each of which records its own.
@@ -77,6 +79,7 @@ class SpecBase:
     value_column: str
     priors: Priors
     approx: str = "dense"
+    anisotropy: bool = False
 
     @property
     def model_units(self) -> str:

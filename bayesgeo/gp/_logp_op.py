@@ -31,7 +31,13 @@ def source_version(*modules) -> int:
 
 
 class LogpGradOp(Op):
-    """Base of an Op whose outputs are a log-likelihood and its gradient (module docstring)."""
+    """Base of an Op whose outputs are a log-likelihood and its gradient (module docstring).
+
+    ``n_params`` scalar parameters follow the constants (three: scale, partial sill, nugget; five with
+    the two anisotropy coordinates of :mod:`bayesgeo.gp.anisotropy`), each with its gradient output.
+    """
+
+    n_params: int = 3
 
     def constant_inputs(self, n_inputs: int) -> tuple[int, ...]:
         """Positions of the inputs that are constants of the model (no gradient flows to them)."""
@@ -43,7 +49,7 @@ class LogpGradOp(Op):
 
     def apply(self, inputs: list) -> Apply:
         """The Apply node of ``inputs`` (tensors) with the five outputs."""
-        outs = [pt.dscalar(), pt.dvector(), pt.dscalar(), pt.dscalar(), pt.dscalar()]
+        outs = [pt.dscalar(), pt.dvector(), *(pt.dscalar() for _ in range(self.n_params))]
         return Apply(self, inputs, outs)
 
     def perform(self, node, inputs, outputs):
@@ -51,11 +57,11 @@ class LogpGradOp(Op):
             out[0] = np.asarray(val, dtype="float64")
 
     def infer_shape(self, node, shapes):
-        return [(), shapes[0], (), (), ()]
+        return [(), shapes[0], *(() for _ in range(self.n_params))]
 
     def connection_pattern(self, node):
         constant = self.constant_inputs(len(node.inputs))
-        return [[i not in constant] * 5 for i in range(len(node.inputs))]
+        return [[i not in constant] * (2 + self.n_params) for i in range(len(node.inputs))]
 
     def pullback(self, inputs, outputs, cotangents):
         constant = self.constant_inputs(len(inputs))
@@ -64,6 +70,6 @@ class LogpGradOp(Op):
             return [disconnected_type() if i in constant else grad_not_implemented(self, i, x)
                     for i, x in enumerate(inputs)]
         g = cotangents[0]
-        params = iter(outputs[2:])  # d scale, d partial_sill, d nugget, in input order
+        params = iter(outputs[2:])  # d scale, d partial_sill, d nugget (and anisotropy), in input order
         return [disconnected_type() if i in constant else g * (outputs[1] if i == 0 else next(params))
                 for i in range(len(inputs))]

@@ -93,9 +93,16 @@ def draw_covariances(fa, index: np.ndarray | None = None):
     sd = fa.draws["sd_z"].reshape(-1)
     tau = fa.draws["nugget_sd_z"].reshape(-1)
     beta = fa.draws["beta_z"].reshape(rng_.size, -1)
+    aniso = None
+    if "anisotropy_z" in fa.draws:  # each draw's own anisotropic distances (bayesgeo.gp.anisotropy)
+        from bayesgeo.gp.anisotropy import angle_ratio, anisotropic_distance
+
+        aniso = angle_ratio(fa.draws["anisotropy_z"].reshape(rng_.size, 2))
     for k in (range(rng_.size) if index is None else index):
         scale = rng_[k] / fa.spec.range_factor
-        c = covariance_matrix(fa.dist, cov, scale, sd[k] ** 2, tau[k] ** 2)
+        dist = (fa.dist if aniso is None
+                else anisotropic_distance(fa.xy, fa.xy, aniso[0][k], aniso[1][k]) / spec.distance_scale)
+        c = covariance_matrix(dist, cov, scale, sd[k] ** 2, tau[k] ** 2)
         yield int(k), fa.design @ beta[k], c
 
 

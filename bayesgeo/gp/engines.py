@@ -77,9 +77,10 @@ class Engine:
         raise NotImplementedError
 
     def loglik(self, resid, *, xy, dist, covariance, scale, partial_sill, nugget, neighbours: int, metric: str,
-               distance_scale: float, extra=None):
+               distance_scale: float, extra=None, anisotropy=None):
         """PyTensor scalar log N(resid | 0, K) (or its approximation); ``dist`` is the distance matrix divided by
-        ``distance_scale`` (dense), ``xy`` the locations (nn); ``extra`` a constant added to K (dense only)."""
+        ``distance_scale`` (dense), ``xy`` the locations (nn); ``extra`` a constant added to K (dense only);
+        ``anisotropy`` the anisotropy vector (a length-2 tensor; dense only, :mod:`bayesgeo.gp.anisotropy`)."""
         raise NotImplementedError
 
     def predict_neighbours(self, neighbours: int) -> int:
@@ -125,7 +126,12 @@ class _Dense(Engine):
         return float(d.max()), d
 
     def loglik(self, resid, *, xy, dist, covariance, scale, partial_sill, nugget, neighbours, metric,
-               distance_scale, extra=None):
+               distance_scale, extra=None, anisotropy=None):
+        if anisotropy is not None:
+            from bayesgeo.gp.dense_aniso import marginal_loglik_aniso
+
+            return marginal_loglik_aniso(resid, np.asarray(xy, float) / distance_scale, covariance, scale,
+                                         partial_sill, nugget, anisotropy, extra=extra)
         from bayesgeo.gp.dense import marginal_loglik
 
         return marginal_loglik(resid, dist, covariance, scale, partial_sill, nugget, extra=extra)
@@ -177,9 +183,11 @@ class _NearestNeighbour(Engine):
                                  greatcircle=metric == "greatcircle"), None
 
     def loglik(self, resid, *, xy, dist, covariance, scale, partial_sill, nugget, neighbours, metric,
-               distance_scale, extra=None):
+               distance_scale, extra=None, anisotropy=None):
         from bayesgeo.gp.nn import nn_loglik
 
+        if anisotropy is not None:
+            raise ValueError("anisotropy is available with the dense likelihood only in this version")
         if extra is not None:
             raise ValueError("the trend coefficients can be integrated out of the dense likelihood only")
         return nn_loglik(resid, xy, covariance, scale, partial_sill, nugget, neighbours=neighbours, metric=metric,

@@ -59,6 +59,7 @@ from bayesgeo.gp.kriging import (
     KrigingBasis,
     _cross_cov,
     _dist_f,
+    draw_xy,
     _joint_moments,
     _needs_factors,
 )
@@ -94,6 +95,8 @@ def block_moments(basis: KrigingBasis, xy_area, design_area) -> tuple[np.ndarray
     buf = np.empty(dist.shape, order="F")
     mean, var = np.empty(basis.n_draws), np.empty(basis.n_draws)
     for k in range(basis.n_draws):
+        if basis.anisotropy is not None:  # the draw's own rotated and scaled distances
+            dist, dpp = _dist_f(basis, xy_area, k), distance_matrix(draw_xy(basis, xy_area, k), basis.metric)
         _cross_cov(basis, dist, k, buf)
         mean[k] = np.mean(design_area @ basis.beta[k] + basis.alpha[k] @ buf)
         w = linalg.solve_triangular(basis.chol[k], buf.sum(axis=1), lower=True, check_finite=False)
@@ -202,8 +205,9 @@ def kriged_simulations(basis: KrigingBasis, xy_new, design_new, *, n_sim: int, s
         eps = (np.stack([r.standard_normal((n_sim, 2 * n + n_t)) for r in rngs]) if noise is None
                else np.asarray(noise[ks], dtype=float))
         with threadpool_limits(limits=1, user_api="blas"):
-            w = np.stack([nn_simulate(every, basis.covariance, basis.scale[k], basis.partial_sill[k], 0.0,
-                                      noise=eps[j, :, :n + n_t], order=order, nbr=nbr, metric=basis.metric, threads=1)
+            w = np.stack([nn_simulate(draw_xy(basis, every, k), basis.covariance, basis.scale[k],
+                                      basis.partial_sill[k], 0.0, noise=eps[j, :, :n + n_t], order=order, nbr=nbr,
+                                      metric=basis.metric, threads=1)
                           for j, k in enumerate(ks)])  # one factorisation per draw, shared by its n_sim fields
             tau = np.sqrt(basis.nugget[ks])[:, None, None]
             data_w = w[:, :, :n] + tau * eps[:, :, n + n_t:]  # the unconditional draw as data: field + nugget

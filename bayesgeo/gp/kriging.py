@@ -96,6 +96,10 @@ class KrigingBasis:
         0 for exact kriging with the factors above; m > 0 for nearest-neighbour kriging
         (:func:`bayesgeo.gp.nn_kriging.nn_kriging_moments`: each target conditioned on its m nearest data), where
         ``chol`` is empty and ``alpha`` unused, so memory stays O(n) for large data.
+    anisotropy : ndarray (D, 2) or None
+        Per draw the azimuth of the major axis (degrees) and the ratio of ranges of a geometrically
+        anisotropic fit (:mod:`bayesgeo.gp.anisotropy`): each draw's distances are then taken in its own
+        rotated and scaled coordinates (:func:`draw_xy`).
     """
 
     xy: np.ndarray
@@ -112,6 +116,7 @@ class KrigingBasis:
     transform: str | None = None
     neighbours: int = 0
     site: str = ""  # the site label of a fit extracted from a several-site fit ("" otherwise)
+    anisotropy: np.ndarray | None = None
 
     @property
     def engine_name(self) -> str:
@@ -126,7 +131,7 @@ class KrigingBasis:
 
 def make_basis(xy, values, design, *, covariance: Covariance | str, scale, partial_sill, nugget, beta,
                metric: str = "euclidean", transform: str | None = None, jitter: float = JITTER,
-               max_bytes: float = 4 * 2**30, neighbours: int = 0) -> KrigingBasis:
+               max_bytes: float = 4 * 2**30, neighbours: int = 0, anisotropy=None) -> KrigingBasis:
     """Factorise the data covariance of every draw once.
 
     Parameters
@@ -153,6 +158,8 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
     neighbours : int
         0 (default): exact kriging; m > 0: nearest-neighbour kriging with m data per target,
         nothing factorised here.
+    anisotropy : array (D, 2), optional
+        Azimuth (degrees) and ratio per draw of an anisotropic fit (dense kriging only).
 
     Returns
     -------
@@ -174,6 +181,10 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
         raise ValueError(f"transform must be None or 'log', got {transform!r}")
     if np.any(~(scale > 0)) or np.any(~(psill > 0)) or np.any(~(tau2 >= 0)):
         raise ValueError("every draw needs scale > 0, partial_sill > 0 and nugget >= 0")
+    if anisotropy is not None:
+        anisotropy = np.asarray(anisotropy, dtype=float).reshape(d_count, 2)
+        if neighbours or metric != "euclidean":
+            raise ValueError("anisotropic kriging needs the dense engine and planar coordinates")
     if neighbours:
         return KrigingBasis(xy, values, design, cov, metric, scale, psill, tau2, beta, [], np.empty((d_count, 0)),
                             transform, int(neighbours))
@@ -184,13 +195,30 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
     dist = distance_matrix(xy, metric)
     chol, alpha = [], np.empty((d_count, n))
     for k in range(d_count):
+        if anisotropy is not None:
+            dist = distance_matrix(_rotated(xy, anisotropy, k), metric)
         kmat = psill[k] * cov.correlation(dist, scale[k])
         kmat[np.diag_indices_from(kmat)] += tau2[k] + jitter * psill[k]
         lower = linalg.cholesky(kmat, lower=True, check_finite=False)
         chol.append(np.asfortranarray(lower))
         alpha[k] = linalg.cho_solve((lower, True), (values if values.ndim == 1 else values[k]) - design @ beta[k],
                                     check_finite=False)
-    return KrigingBasis(xy, values, design, cov, metric, scale, psill, tau2, beta, chol, alpha, transform)
+    return KrigingBasis(xy, values, design, cov, metric, scale, psill, tau2, beta, chol, alpha, transform,
+                        anisotropy=anisotropy)
+
+
+def _rotated(xy: np.ndarray, anisotropy: np.ndarray | None, k: int) -> np.ndarray:
+    if anisotropy is None:
+        return xy
+    from bayesgeo.gp.anisotropy import to_isotropic
+
+    return to_isotropic(xy, anisotropy[k, 0], anisotropy[k, 1])
+
+
+def draw_xy(basis: KrigingBasis, xy: np.ndarray, k: int) -> np.ndarray:
+    """Coordinates in which draw ``k``'s distances are Euclidean: ``xy`` itself, or for an anisotropic fit
+    rotated and scaled by the draw's angle and ratio (:func:`bayesgeo.gp.anisotropy.to_isotropic`)."""
+    return _rotated(np.asarray(xy, dtype=float), basis.anisotropy, k)
 
 
 # --- cross-covariances ------------------------------------------------------------------------
@@ -225,9 +253,14 @@ def _cross_cov(basis: KrigingBasis, dist_f: np.ndarray, k: int, out: np.ndarray)
     return out
 
 
-def _dist_f(basis: KrigingBasis, xy_new: np.ndarray) -> np.ndarray:
-    """Distances data x targets as an (n, m) Fortran-ordered array."""
-    return cross_distance(xy_new, basis.xy, basis.metric).T
+def _dist_f(basis: KrigingBasis, xy_new: np.ndarray, k: int = 0) -> np.ndarray:
+    """Distances data x targets as an (n, m) Fortran-ordered array (of draw ``k`` for an anisotropic fit)."""
+    return cross_distance(draw_xy(basis, xy_new, k), draw_xy(basis, basis.xy, k), basis.metric).T
+
+
+def _at(basis: KrigingBasis, dist_f: np.ndarray, xy_new: np.ndarray, k: int) -> np.ndarray:
+    """``dist_f`` (shared by all draws), or draw ``k``'s own distances for an anisotropic fit."""
+    return dist_f if basis.anisotropy is None else _dist_f(basis, xy_new, k)
 
 
 def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: bool = True):
@@ -264,7 +297,7 @@ def draw_moments(basis: KrigingBasis, xy_new, design_new, *, include_nugget: boo
     mean = np.ascontiguousarray(mean.T)
     var = np.empty((basis.n_draws, m + pad))
     for k in range(basis.n_draws):
-        _cross_cov(basis, dist, k, buf)
+        _cross_cov(basis, _at(basis, dist, xy_new, k), k, buf)
         mean[k] += basis.alpha[k] @ buf
         v = blas.dtrsm(1.0, basis.chol[k], buf, side=0, lower=1, trans_a=0, diag=0, overwrite_b=1)
         total = basis.partial_sill[k] + (basis.nugget[k] if include_nugget else 0.0)
@@ -291,7 +324,7 @@ def residual_means(basis: KrigingBasis, xy_new, resid, *, chunk: int = 4096) -> 
         dist = _dist_f(basis, xy_new[lo:lo + chunk])
         buf = np.empty(dist.shape, order="F")
         for k in range(basis.n_draws):
-            out[k, :, lo:lo + chunk] = alpha[k] @ _cross_cov(basis, dist, k, buf)
+            out[k, :, lo:lo + chunk] = alpha[k] @ _cross_cov(basis, _at(basis, dist, xy_new[lo:lo + chunk], k), k, buf)
     return out
 
 
@@ -340,11 +373,12 @@ def _needs_factors(basis: KrigingBasis, what: str) -> None:
 def _joint_moments(basis: KrigingBasis, k: int, xy_new, design_new, include_nugget: bool):
     """Conditional mean (m,) and covariance (m, m) for draw ``k``."""
     _needs_factors(basis, "joint conditional simulation (--simulate)")
-    dist = _dist_f(basis, xy_new)
+    dist = _dist_f(basis, xy_new, k)
     cross = _cross_cov(basis, dist, k, np.empty(dist.shape, order="F"))
     mean = design_new.reshape(len(xy_new), -1) @ basis.beta[k] + basis.alpha[k] @ cross
     v = linalg.solve_triangular(basis.chol[k], cross, lower=True, check_finite=False)
-    prior = basis.partial_sill[k] * basis.covariance.correlation(distance_matrix(xy_new, basis.metric), basis.scale[k])
+    dpp = distance_matrix(draw_xy(basis, xy_new, k), basis.metric)
+    prior = basis.partial_sill[k] * basis.covariance.correlation(dpp, basis.scale[k])
     cov = prior - v.T @ v
     if include_nugget:
         cov[np.diag_indices_from(cov)] += basis.nugget[k]

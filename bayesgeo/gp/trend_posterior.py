@@ -56,7 +56,7 @@ def _one(y, f, dist, cov, scale, s2, t2, inv_b2, e):
 
 
 def draw_trend(posterior: xr.Dataset, spec, y: np.ndarray, design: np.ndarray, dist: np.ndarray, *,
-               seed, workers: int = 2) -> xr.DataArray:
+               seed, workers: int = 2, xy: np.ndarray | None = None) -> xr.DataArray:
     """One draw of ``beta_z`` from its exact conditional posterior (eq. 2) per posterior draw.
 
     Parameters
@@ -72,6 +72,9 @@ def draw_trend(posterior: xr.Dataset, spec, y: np.ndarray, design: np.ndarray, d
         Trend design matrix.
     dist : ndarray, shape (n, n)
         Distances divided by ``spec.distance_scale``.
+    xy : ndarray, shape (n, 2), optional
+        Coordinates divided by ``spec.distance_scale``; with ``anisotropy_z`` in the posterior (an anisotropic
+        fit) each draw's distances are the anisotropic ones of its own angle and ratio, and ``dist`` is unused.
     seed : int, sequence of int or None
         Seed (``numpy.random.default_rng``) of the standard normal draws: the same posterior and seed give the same coefficients
         whatever ``workers`` is (the normals are drawn up front, in draw order).
@@ -95,8 +98,15 @@ def draw_trend(posterior: xr.Dataset, spec, y: np.ndarray, design: np.ndarray, d
     flat = [(pr.flat[i] / spec.range_factor, s2.flat[i], t2.flat[i]) for i in range(pr.size)]
     inv_b2 = 1.0 / spec.priors.beta_sd**2
 
+    angle = ratio = None
+    if "anisotropy_z" in posterior:
+        from bayesgeo.gp.anisotropy import angle_ratio, anisotropic_distance
+
+        angle, ratio = angle_ratio(posterior["anisotropy_z"].transpose("chain", "draw", ...).values.reshape(-1, 2))
+
     def run(i):
-        return _one(y if y.ndim == 1 else y[i], f, dist, cov, *flat[i], inv_b2, normals[i])
+        d = dist if angle is None else anisotropic_distance(xy, xy, angle[i], ratio[i])
+        return _one(y if y.ndim == 1 else y[i], f, d, cov, *flat[i], inv_b2, normals[i])
 
     if workers > 1 and pr.size > 1:
         with ThreadPoolExecutor(max_workers=workers) as pool:

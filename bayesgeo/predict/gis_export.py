@@ -162,10 +162,17 @@ def write_geopackage(path: str | Path, pred: xr.Dataset, *, samples: xr.Dataset 
         The polygon of an area average, (k, 2) vertices, and its result (``mean``, ``sd``, ``q05``, ``q95``,
         ``threshold``, ``p_exceed``, ``area``; :func:`bayesgeo.predict.prediction.area_average`).
     """
+    import warnings
+
+    with warnings.catch_warnings():  # data without a CRS (docs/data_files.md): no pyogrio warning on stderr
+        warnings.filterwarnings("ignore", message="'crs' was not provided", category=UserWarning)
+        return _write_layers(Path(path), pred, samples=samples, levels=levels, area=area)
+
+
+def _write_layers(path: Path, pred: xr.Dataset, *, samples, levels, area) -> Path:
     import shapely
     from pyogrio.raw import write
 
-    path = Path(path)
     wkt = pred["crs"].attrs.get("crs_wkt") if "crs" in pred else None
     polys = exceedance_polygons(pred, levels)
     units = str(pred.attrs.get("value_units", ""))

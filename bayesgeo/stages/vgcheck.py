@@ -97,7 +97,17 @@ def check_variogram(folder, *, site: str | None = None, replicates: int = 200, b
     if bar is not None:
         bar.update(1)
         bar.close()
+    axes = {}
+    if "axis_observed" in vc:  # an anisotropic fit: the check along its two axes
+        for j, name in enumerate(vc["axis"].values):
+            sel = vc.isel(axis=j)
+            axes[str(name)] = {"azimuth": float(sel["axis_azimuth"]), "lag": _list(sel["axis_lag"]),
+                               "observed": _list(sel["axis_observed"]),
+                               **{k: _list(sel[f"axis_{k}"]) for k in ("replicate_q05", "replicate_q95", "model_q50",
+                                                                      "p_value")},
+                               "outside_band": int(sel["axis_outside"].sum())}
     return 0, {
+        **({"axes": axes} if axes else {}),
         "lag": _list(vc["lag"]),
         "observed": _list(vc["observed"]),
         "pairs": [int(v) for v in vc["pairs"].values],
