@@ -28,7 +28,7 @@ DESCRIPTION = HELP + (
 )
 
 #: Library argument -> option, where the names differ.
-ARGUMENT_OPTIONS = {"covariates": "--covariate"}
+ARGUMENT_OPTIONS = {"covariates": "--covariate", "categories": "--category", "baselines": "--baseline"}
 
 
 def add_arguments(p) -> None:
@@ -91,6 +91,10 @@ def run(args) -> int:
         print_table(rows, ["method", "family", "nugget", "partial_sill", "practical_range", "converged"])
         print(f"(nugget and partial sill in {f'({vu})^2' if vu else 'squared value units'}; "
               f"practical range in {du or 'distance units'})")
+        an = o.get("anisotropy")
+        if an and an.get("ratio"):
+            print(f"directions: the ranges suggest a longest range near {an['angle']:.0f} degrees (clockwise from "
+                  f"north) and a ratio of about {an['ratio']:.1f} (a rough guess; fit --anisotropy estimates both)")
         for note in o["notes"]:
             print(f"note: {note}")
         print()

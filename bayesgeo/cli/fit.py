@@ -5,7 +5,8 @@ from __future__ import annotations
 from bayesgeo.common.defaults import CHAINS, DRAWS, TUNE
 
 #: Library argument -> option, where the names differ.
-ARGUMENT_OPTIONS = {"covariates": "--covariate", "nugget": "--no-nugget"}
+ARGUMENT_OPTIONS = {"covariates": "--covariate", "categories": "--category", "baselines": "--baseline",
+                    "nugget": "--no-nugget"}
 
 HELP = ("fit the Bayesian GP model (range, partial sill, nugget, trend) to one site's data, or to several "
         "sites at once with --site (hierarchical by default)")
@@ -40,6 +41,10 @@ def add_arguments(p) -> None:
                         "docs/large_data.md)")
     p.add_argument("--neighbours", type=int_option("neighbours"), default=None, metavar="M",
                    help="neighbours per point of the nn likelihood (default 20)")
+    p.add_argument("--anisotropy", action="store_true",
+                   help="geometric anisotropy: estimate the direction of the longest range (degrees clockwise from "
+                        "north) and the ratio of the longest to the shortest range (single-site dense fits, planar "
+                        "coordinates; docs/model.md)")
     p.add_argument("--draws", type=int_option("draws"), default=DRAWS, help=f"kept draws per chain (default {DRAWS})")
     p.add_argument("--max-draws", type=int_option("draws"), default=None, metavar="N",
                    help="while the convergence check finds R-hat or ESS too poor, the same chains continue, looking "
@@ -76,6 +81,7 @@ def run(args) -> int:
         args.data, out=args.out, covariance=args.covariance, nu=args.nu, nugget=not args.no_nugget, trend=args.trend,
         transform=None if args.transform == "none" else args.transform, range_below=args.range_below,
         sd_above=args.sd_above, nugget_above=args.nugget_above, approx=args.approx, neighbours=args.neighbours,
+        anisotropy=args.anisotropy,
         sampler=args.sampler, chains=args.chains, draws=args.draws, tune=args.tune, target_accept=args.target_accept,
         seed=args.seed, max_draws=args.max_draws, keep_sampling=args.keep_sampling, pooling=args.pooling,
         parametrisation=args.parametrisation, design_neighbours=args.design_neighbours, overwrite=args.overwrite,

@@ -34,6 +34,9 @@ def add_arguments(p) -> None:
                    help="also check the left-censored model of the single-site checks: values below a fixed reporting "
                         "limit, about this share of each data set (0-0.6), modelled as non-detects (each replicate "
                         "then compiles its own model, about 20 s)")
+    p.add_argument("--anisotropy", action="store_true",
+                   help="also check the geometrically anisotropic model of the single-site checks (direction and ratio "
+                        "of ranges drawn from their prior)")
     p.add_argument("--replicates", type=int_option("sbc_replicates"), default=None, help="simulated data sets per model (quick 25, full 100)")
     p.add_argument("--points", type=int_option("layout_points"), default=None, help="points of a generated layout per site (quick 28, full 60)")
     p.add_argument("--quick", action="store_true", help="CI mode: small layout, 25 replicates, short chains")
@@ -64,10 +67,11 @@ def _template(args):
 
         st = read_study(args.study)
         d = st["data"]
-        layout = {k: v for k, v in read_settings(d).items() if k != "covariates"}  # locations only
+        layout = {k: v for k, v in read_settings(d).items()
+                  if k not in ("covariates", "categories", "baselines")}  # locations only
         return read_points(d["path"], **layout), st
     if args.data:
-        args.covariate = []
+        args.covariate, args.category, args.baseline = [], [], []
         return read_data(args), None
     return None, None
 
@@ -136,6 +140,8 @@ def run(args) -> int:
                 configs.append(cfg)
                 if args.censored and kind == "single" and ng == nugget:
                     configs.append(with_settings(cfg, censored=args.censored))
+                if args.anisotropy and kind == "single" and ng == nugget:
+                    configs.append(with_settings(cfg, anisotropy=True))
     if not configs:
         raise InputError("--kind/--covariance: nothing to check")
     t0 = time.perf_counter()

@@ -28,6 +28,7 @@ import xarray as xr
 
 from bayesgeo.gp.covariance import get_covariance
 from bayesgeo.data.points import FIT_DATA_ATTRS, sites_of
+from bayesgeo.explore.trend import design_categories
 from bayesgeo.common.io import plain_attr, to_jsonable
 from bayesgeo.fitting.model import FitSpec, build_model_and_inputs, censored_index
 from bayesgeo.fitting.looks import DEFAULT_ACCEPT, RERUN_ACCEPT, convergence_look, looks_line, report_fields, sample_fit
@@ -55,7 +56,8 @@ __all__ = [
 
 #: Name of the NetCDF file of a saved fit.
 #: Scalar derived parameters reported for every fit (those that apply).
-PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
+PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic",
+              "anisotropy_angle", "anisotropy_ratio", "practical_range_major", "practical_range_minor")
 _FORMAT_VERSION = 1
 
 
@@ -146,6 +148,7 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
         "sd_z": "sd of the spatial field / sd of the modelled values",
         "nugget_sd_z": "nugget sd / sd of the modelled values",
         "beta_z": "trend coefficients for standardised values",
+        "anisotropy_z": "sampled anisotropy vector log(ratio) (cos 2 angle, sin 2 angle)",
         "variance_coords_z": "sampled coordinates of the variances: log(sd_z^2 + nugget_sd_z^2) and "
                              "logit(sd_z^2 / (sd_z^2 + nugget_sd_z^2))",
     }
@@ -171,6 +174,10 @@ def derive(posterior: xr.Dataset, spec: FitSpec) -> xr.Dataset:
         p = cov.microergodic_power
         out["microergodic"] = (psill / scale**p).assign_attrs(
             units=f"({vu})^2 / ({du})^{p:g}", long_name=f"microergodic parameter sigma^2 / phi^{p:g} (Zhang 2004)")
+    if "anisotropy_z" in out:
+        from bayesgeo.gp.anisotropy import anisotropy_parameters
+
+        out.update(anisotropy_parameters(out["anisotropy_z"], prange, du))
     if "censored_z" in out:
         out["censored_value"] = spec.values_of(out["censored_z"]).assign_attrs(
             units=vu, long_name="non-detect imputed below its reporting limit (modelled units), per draw")
@@ -191,7 +198,8 @@ def cautions(spec: FitSpec, posterior: xr.Dataset | None = None, diagnostics: Ma
     """The cautions that go with a fit's numbers (model assumptions, regulation, convergence, range,
     and for nearest-neighbour fits the approximation check of :mod:`bayesgeo.gp.nn_accuracy`)."""
     out = [
-        "These are statistical summaries under stated assumptions (a stationary, isotropic Gaussian process "
+        f"These are statistical summaries under stated assumptions (a stationary, "
+        f"{'geometrically anisotropic' if spec.anisotropy else 'isotropic'} Gaussian process "
         f"with a {spec.covariance} covariance{', on the log scale' if spec.transform == 'log' else ''}). "
         "They support, but never replace, the judgement of a licensed professional.",
         "Decisions about contamination or exposure must follow the sampling, analysis and decision rules of "
@@ -226,14 +234,14 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         sampler: str = "nutpie", chains: int = CHAINS, draws: int = DRAWS, tune: int = TUNE,
         target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
         adaptation: str = "low_rank", approx: str = "auto", neighbours: int | None = None,
-        max_draws: int | None = None) -> xr.DataTree:
+        max_draws: int | None = None, anisotropy: bool = False) -> xr.DataTree:
     """Fit the single-site Bayesian GP model and return the self-describing result.
 
     Parameters
     ----------
     ds : xarray.Dataset
         Point data of one site (:func:`bayesgeo.read_points`).
-    covariance, nu, nugget, trend, covariates, transform, priors, approx, neighbours
+    covariance, nu, nugget, trend, covariates, transform, priors, approx, neighbours, anisotropy
         Model settings, see :func:`bayesgeo.fitting.model.build_model`.
     sampler, chains, draws, tune, seed, progressbar, adaptation
         Sampler settings, see :func:`bayesgeo.fitting.sampling.sample`.
@@ -252,7 +260,7 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
         See the module docstring for its groups and attributes.
     """
     model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(covariates),
-                    transform=transform, priors=priors, approx=approx, neighbours=neighbours)
+                    transform=transform, priors=priors, approx=approx, neighbours=neighbours, anisotropy=anisotropy)
     model, spec, y_z, design, dist = build_model_and_inputs(ds, **model_kw)
     look = convergence_look(lambda raw: xr.DataTree.from_dict({
         "/posterior": derive(raw["posterior"].to_dataset(), spec), "/sample_stats": raw["sample_stats"].to_dataset()}))
@@ -262,7 +270,9 @@ def fit(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None = None
                      tune=tune, progressbar=progressbar, adaptation=adaptation)
     post = raw["posterior"].to_dataset()
     if "beta_z" not in post:  # integrated out of the dense likelihood: exact conditional draws
-        beta = draw_trend(post, spec, values_per_draw(y_z, censored_index(ds), post), design.values, dist, seed=seed)
+        xy_z = np.column_stack([ds["x"].values, ds["y"].values]).astype(float) / spec.distance_scale
+        beta = draw_trend(post, spec, values_per_draw(y_z, censored_index(ds), post), design.values, dist, seed=seed,
+                          xy=xy_z)
         post["beta_z"] = beta.assign_attrs(drawn="after sampling, one draw per posterior draw from the exact "
                                                  "conditional N(m, V) given the covariance parameters")
     post = derive(post, spec)
@@ -396,7 +406,8 @@ def fit_report(fit) -> dict:
         "converged": None if diag is None else diag.get("verdict") != "fail",
         "approximation": approximation_of(tree),
         "model": {"covariance": spec.covariance, "nu": spec.nu, "nugget": spec.nugget, "trend": spec.trend,
-                  "covariates": list(spec.covariates), "transform": spec.transform, "n": spec.n,
+                  "covariates": list(spec.covariates), "categories": design_categories(spec.design_attrs),
+                  "transform": spec.transform, "n": spec.n, "anisotropy": spec.anisotropy,
                   "value_units": spec.model_units, "distance_units": spec.distance_units,
                   "priors": spec.priors.to_dict()},
         "cautions": stored(tree, "cautions", []),
@@ -412,6 +423,9 @@ def summary_text(report: dict) -> str:
     m = report["model"]
     lines.append(f"bayesgeo fit: {m['covariance']} covariance, nugget {'yes' if m['nugget'] else 'no'}, "
                  f"trend order {m['trend']}, transform {m['transform'] or 'none'}, n = {m['n']}")
+    for name, c in (m.get("categories") or {}).items():
+        lines.append(f"category {name}: baseline {c['baseline']!r} (levels {', '.join(c['levels'])}); each "
+                     f"coefficient {name}=<level> is that level's mean minus the baseline's")
     s = report["sampler"]
     lines.append(f"sampler {s['name']}: {s['chains']} chains x {s['draws']} draws (tune {s['tune']}), "
                  f"seed {s['seed']}, {s['seconds']:.1f} s in all ({s['sampling_seconds']:.1f} s sampling the kept draws; the "

@@ -31,7 +31,7 @@ from bayesgeo.gp.joint import block_moments, conditional_simulations, summarise_
 from bayesgeo.gp.kriging import CAUTION, KrigingBasis, make_basis, mixture_summary
 from bayesgeo.common.csvtable import InputWarning
 from bayesgeo.data.targets import check_area_near_data, far_targets_warning
-from bayesgeo.explore.trend import design_at
+from bayesgeo.explore.trend import design_at, design_categories
 from bayesgeo.gp.engines import engine, with_imputed
 from bayesgeo.common.validate import InputError, check_positive_int
 
@@ -106,6 +106,9 @@ def posterior_parameters(posterior: xr.Dataset, spec, *, draws: int | None = Non
         "nugget": (dims, nug, {"units": f"({units})^2"}),
         "beta": (("sample", "term"), beta, {"units": units}),
     }
+    if "anisotropy_angle" in st:  # a geometrically anisotropic fit (bayesgeo.gp.anisotropy)
+        data["anisotropy_angle"] = (dims, st["anisotropy_angle"].values % 180.0, {"units": "degrees"})
+        data["anisotropy_ratio"] = (dims, st["anisotropy_ratio"].values, {"units": "1"})
     if "censored_z" in st:  # non-detects imputed draw by draw (bayesgeo.fitting.model.censored_index)
         data["censored_value"] = (("sample", "censored"),
                                   spec.values_of(st["censored_z"].transpose("sample", ...).values), {"units": units})
@@ -171,7 +174,9 @@ def basis_from_fit(fit, *, draws: int | None = None):
     basis = make_basis(xy, z, design, covariance=cov, scale=params["scale"].values,
                        partial_sill=params["partial_sill"].values, nugget=params["nugget"].values,
                        beta=params["beta"].values, metric=spec.metric, transform=spec.transform,
-                       neighbours=neighbours)
+                       neighbours=neighbours, anisotropy=np.column_stack([params["anisotropy_angle"].values,
+                                                                          params["anisotropy_ratio"].values])
+                       if "anisotropy_angle" in params else None)
     if fit.extracted_site is not None:
         basis = dataclasses.replace(basis, site=str(fit.extracted_site))
     return basis, spec, params
@@ -213,13 +218,23 @@ def target_design(targets: xr.Dataset, design_attrs: dict | None, p: int) -> np.
         return np.ones((len(xy), p))
     names = design_attrs.get("covariates") or []
     names = [names] if isinstance(names, str) else list(names)
-    covs = None
-    if names:
-        if targets.attrs.get("kind") == "grid":
-            raise InputError(f"the trend uses covariates ({', '.join(names)}) that are not known on a grid; "
+    if not names:
+        return design_at(xy, design_attrs)
+    cats = design_categories(design_attrs)
+    missing = [c for c in names if c not in targets.data_vars]
+    if missing and targets.attrs.get("kind") == "grid":
+        numeric = [c for c in names if c not in cats]
+        if numeric:
+            raise InputError(f"the trend uses covariates ({', '.join(numeric)}) that are not known on a grid; "
                              "give target --points with those columns")
-        covs = np.column_stack([np.asarray(targets[c].values, float) for c in names])
-    return design_at(xy, design_attrs, covs)
+        raise InputError(f"the trend uses categories ({', '.join(names)}) that are not known on a grid; give --zones, "
+                         "a polygon layer with those attributes, or target --points with those columns")
+    if missing:
+        raise InputError(f"the targets lack the trend's covariates {', '.join(missing)}")
+    idx = np.flatnonzero(np.asarray(targets["inside"].values, bool).ravel())  # masked cells: no level needed
+    design = np.zeros((len(xy), p))
+    design[idx] = design_at(xy[idx], design_attrs, {c: np.asarray(targets[c].values).ravel()[idx] for c in names})
+    return design
 
 
 def _flat_xy(targets: xr.Dataset) -> np.ndarray:

@@ -50,6 +50,18 @@ def _stat_json(ds, name: str) -> dict:
     return out
 
 
+def _anisotropy_json(dvg, vg) -> dict | None:
+    """A first guess at the direction and ratio of ranges from the directional semivariograms
+    (:func:`bayesgeo.explore.anisotropy.suggest_anisotropy`), rounded; None when it cannot be made."""
+    from bayesgeo.explore.anisotropy import suggest_anisotropy
+
+    s = suggest_anisotropy(dvg, vg)
+    if s is None:
+        return None
+    return {"angle": round(s["angle"], 1), "ratio": round(s["ratio"], 2) if np.isfinite(s["ratio"]) else None,
+            "azimuths": s["azimuths"], "ranges": s["ranges"], "method": s["method"]}
+
+
 def _fits_json(fits) -> dict:
     out = {}
     for method in fits["method"].values:
@@ -73,7 +85,7 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
     log = log or (lambda text: None)
     from bayesgeo.explore import variogram as explore
     from bayesgeo.explore.quickfit import quick_fits
-    from bayesgeo.explore.trend import fit_trend
+    from bayesgeo.explore.trend import design_categories, fit_trend
 
     notes: list[str] = []
     full = part
@@ -88,6 +100,8 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
         trend_info = {"order": trend, "covariates": list(covariates)}
         if trend > 0 or covariates:
             part = fit_trend(part, trend, covariates)
+            if design_categories(part["coefficient"].attrs):  # levels and baseline of each category
+                trend_info["categories"] = design_categories(part["coefficient"].attrs)
             trend_info["r_squared"] = float(part.attrs["trend_r_squared"])
         common = {"bins": bins, "lag_limit": lag_limit}
         log(f"semivariogram ({permutations} permutations)")
@@ -137,6 +151,7 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
                         "lag": _vals(dvg["lag"]), "semivariance": _vals(dvg["semivariance"]),
                         "pairs": dvg["pairs"].values.tolist()},
         "fits": _fits_json(fits),
+        "anisotropy": _anisotropy_json(dvg, vg),
         "notes": notes,
     }
     return obj, {"semivariogram": vg, "correlogram": cg, "directional": dvg, "fits": fits,
@@ -203,7 +218,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
         The statistics of the only (or first) site, ``sites`` (several sites), the settings, the
         workload plan, the files written and the cautions: the object written to ``explore.json``.
     """
-    from bayesgeo.data.points import apply_transform, read_points, sites_of
+    from bayesgeo.data.points import apply_transform, read_points, sites_of, trend_covariates
     from bayesgeo.common.io import to_jsonable, write_json
     from bayesgeo.common.outputs import claim, new_folder
     from bayesgeo.explore.quickfit import QUICK_FAMILIES
@@ -216,7 +231,7 @@ def explore_folder(data, *, out=None, trend: int = 0, transform: str = "none", b
     out = Path(out) if out else Path(data).with_name(Path(data).stem + "-explore")
     ds = apply_transform(read_points(data, **data_settings), transform)
     claim(out, overwrite=overwrite, inputs=[data])
-    covariates = list(data_settings.get("covariates", ()))
+    covariates = list(trend_covariates(data_settings))
     families = list(dict.fromkeys(covariance or QUICK_FAMILIES))
     labels = sites_of(ds)
     multi = labels != [""]

@@ -47,7 +47,8 @@ def workload_plan(ds, *, approx: str, neighbours, chains: int, draws: int, tune:
 
 def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: bool = True, trend: int = 0,
                transform: str | None = None, range_below=None, sd_above=None, nugget_above=None,
-               approx: str = "auto", neighbours: int | None = None, sampler: str = "nutpie", chains: int = CHAINS,
+               approx: str = "auto", neighbours: int | None = None, anisotropy: bool = False,
+               sampler: str = "nutpie", chains: int = CHAINS,
                draws: int = DRAWS, tune: int = TUNE, target_accept: float | None = None, seed: int | None = None,
                max_draws: int | None = None, keep_sampling: float | None = None, pooling: str = "hierarchical",
                parametrisation: str = "noncentred", design_neighbours: int = 6, overwrite: bool = False,
@@ -61,8 +62,9 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
         :func:`bayesgeo.data.points.read_points` (columns, site column, coordinates, duplicates, units, small sites).
     out : path
         Output folder, written atomically; refused if present unless ``overwrite``.
-    covariance, nu, nugget, trend, transform, approx, neighbours :
-        The model (:func:`bayesgeo.fitting.posterior.fit`); ``transform`` None or "log".
+    covariance, nu, nugget, trend, transform, approx, neighbours, anisotropy :
+        The model (:func:`bayesgeo.fitting.posterior.fit`); ``transform`` None or "log"; ``anisotropy``
+        geometric anisotropy (single-site dense fits in this version).
     range_below, sd_above, nugget_above : (float, float), optional
         PC-prior statements P(practical range < R0) = A1, P(sd > S0) = A2, P(nugget sd > T0) = A3 (data
         units); the several-site model puts its nugget prior on the fraction of the sill and refuses
@@ -84,7 +86,7 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
         3 when the convergence check fails, else 0; the fit report (:func:`bayesgeo.fitting.posterior.fit_report`
         or :func:`bayesgeo.fitting.hier_outputs.site_report`) with ``out``, ``workload`` and ``files``.
     """
-    from bayesgeo.data.points import read_points, sites_of
+    from bayesgeo.data.points import read_points, sites_of, trend_covariates
     from bayesgeo.fitting.looks import longest_chain
     from bayesgeo.common.outputs import claim
     from bayesgeo.fitting.priors import Priors
@@ -99,14 +101,23 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
                          pooling=pooling, max_draws=max_draws, log=log)
     quiet = (lambda _text: None)
     stage = log if (log is not None and plan["message"]) else quiet  # long steps, of announced fits
-    model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=tuple(data_settings.get(
-        "covariates", ())), transform=transform, approx=approx, neighbours=neighbours)
+    model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend,
+                    covariates=trend_covariates(data_settings), transform=transform, approx=approx,
+                    neighbours=neighbours)
+    if anisotropy:
+        model_kw["anisotropy"] = True
     sample_kw = dict(sampler=sampler, chains=chains, draws=draws, tune=tune, target_accept=target_accept,
                      progressbar=progressbar, max_draws=max_draws)
     priors = Priors(range=_pair(range_below), sd=_pair(sd_above), nugget=_pair(nugget_above))
     if len(sites_of(ds)) > 1:
+        if data_settings.get("categories"):
+            raise InputError("categories: several-site fits do not take categorical covariates yet; fit each site "
+                             "alone (--only-site NAME) or leave the category out")
         if keep_sampling is not None:
             raise InputError("keep_sampling: single-site fits only for now; run without it and check each site")
+        if anisotropy:
+            raise InputError("anisotropy: single-site fits only in this version; fit each site on its own "
+                             "(--only-site NAME) to estimate its direction and ratio")
         if nugget_above is not None:
             raise InputError("nugget_above: the several-site model puts its prior on the nugget fraction of the sill "
                              "(see docs/hierarchical.md); drop the nugget prior")

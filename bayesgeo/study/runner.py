@@ -75,8 +75,11 @@ def _data_call(study: Study) -> dict:
     from bayesgeo.data.points import READ_KEYS
 
     d = study.settings["data"]
+    used = list(study.settings["model"]["covariates"])  # the trend's: numeric ones, then categories
+    cats = [c for c in used if c in d["categories"]]
     return {"data": d["path"], **{k: d[k] for k in READ_KEYS},
-            "covariates": list(study.settings["model"]["covariates"])}
+            "covariates": [c for c in used if c not in cats], "categories": cats,
+            "baselines": [b for b in d["baselines"] if str(b).partition("=")[0].strip() in cats]}
 
 
 def _data_argv(kw: dict) -> list[str]:
@@ -85,11 +88,12 @@ def _data_argv(kw: dict) -> list[str]:
 
     argv = [str(kw["data"])]
     for key in READ_KEYS:  # each read setting is the option of its name (--distance-units, --to-crs, ...)
-        if key not in ("covariates", "coords", "duplicates") and kw[key]:
+        if key not in ("covariates", "categories", "baselines", "coords", "duplicates") and kw[key]:
             argv += [f"--{key.replace('_', '-')}", kw[key]]
     argv += ["--coords", kw["coords"], "--duplicates", kw["duplicates"]]
-    for c in kw["covariates"]:
-        argv += ["--covariate", c]
+    for key, option in (("covariates", "--covariate"), ("categories", "--category"), ("baselines", "--baseline")):
+        for c in kw[key]:
+            argv += [option, c]
     return argv
 
 
@@ -186,7 +190,7 @@ def _map_call(study: Study, fdir: Path, site: str | None = None, area=None) -> d
     return {"folder": fdir, "site": site, "cell": pr["cell"], "margin": pr["margin"], "points": pr["points"],
             "thresholds": list(pr["thresholds"]), "area": None if area is None else _area_arg(area),
             "draws": pr["draws"], "nugget": pr["nugget"], "hull_mask": pr["hull_mask"], "scheduler": "synchronous",
-            "seed": pr["seed"]}
+            "seed": pr["seed"], "zones": pr["zones"], "zones_layer": pr["zones_layer"]}
 
 
 def _map_argv(kw: dict) -> list[str]:
@@ -206,6 +210,10 @@ def _map_argv(kw: dict) -> list[str]:
         argv += ["--hull-mask"]
     if kw["area"] is not None:
         argv += ["--area", kw["area"]]
+    if kw["zones"] is not None:
+        argv += ["--zones", str(kw["zones"])]
+    if kw["zones_layer"] is not None:
+        argv += ["--zones-layer", kw["zones_layer"]]
     return argv
 
 
@@ -220,6 +228,8 @@ def _fit_call(study: Study, fam: str, fdir: Path) -> dict:
           "nu": m["nu"] if fam == "matern" else None, "nugget": m["nugget"], "range_below": pri["range_below"],
           "sd_above": pri["sd_above"], "nugget_above": pri["nugget_above"], "approx": m["approx"],
           "neighbours": m["neighbours"]}
+    if m.get("anisotropy"):
+        kw["anisotropy"] = True
     if study.several_sites:
         kw["pooling"] = m["pooling"]
     return kw
@@ -247,6 +257,8 @@ def _fit_argv(kw: dict) -> list[str]:
     argv += ["--out", str(kw["out"]), "--approx", kw["approx"]]
     if kw["neighbours"] is not None:
         argv += ["--neighbours", str(kw["neighbours"])]
+    if kw.get("anisotropy"):
+        argv += ["--anisotropy"]
     return argv
 
 
@@ -377,7 +389,7 @@ def run_study(study: Study | str | Path, *, out: str | Path | None = None, overw
     out = Path(out) if out is not None else study.out_dir
     overwrite = s["output"]["overwrite"] if overwrite is None else overwrite
     inputs = [study.path, s["data"]["path"]]
-    for extra in (s["prediction"]["points"], *areas_of(s["prediction"]["area"])):
+    for extra in (s["prediction"]["points"], s["prediction"]["zones"], *areas_of(s["prediction"]["area"])):
         if isinstance(extra, Path):
             inputs.append(extra)
     claim(out, overwrite=overwrite, inputs=inputs, option=option)

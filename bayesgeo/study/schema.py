@@ -35,6 +35,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "detected": ("str", None, None, "detected / not-detected flag column (with limit)"),
         "site": ("str", None, None, "site label column (several-site data)"),
         "covariates": ("str_list", [], None, "covariate columns to read"),
+        "categories": ("str_list", [], None, "categorical covariate columns (labels, treatment coded in the trend)"),
+        "baselines": ("str_list", [], None, "baseline level of a category, as \"COL=LEVEL\" (default: most frequent)"),
         "units": ("str", None, None, "units of the measured value, e.g. mg/kg"),
         "distance_units": ("str", None, None, "units of planar coordinates, e.g. m"),
         "coords": ("str", "auto", ("auto", "xy", "lonlat"), "planar (xy) or degrees (lonlat)"),
@@ -54,7 +56,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "nu": ("float", None, None, "Matérn smoothness (family 'matern' only)"),
         "nugget": ("bool", True, None, "fit a nugget"),
         "trend": ("int", 0, None, "polynomial trend order in the coordinates, 0-3"),
-        "covariates": ("str_list", [], None, "covariates in the trend (a subset of data.covariates)"),
+        "covariates": ("str_list", [], None,
+                       "covariates in the trend (a subset of data.covariates and data.categories)"),
         "transform": ("str", "none", ("none", "log"), "model the values or their natural logarithm"),
         "pooling": ("str", None, POOLINGS,
                     "single (one site) or, with [data] site, hierarchical, independent or complete "
@@ -62,6 +65,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "approx": ("str", "auto", ("auto", "dense", "nn"),
                    "likelihood: dense (exact), nn (nearest-neighbour approximation) or auto (dense up to 2,000 points)"),
         "neighbours": ("int", None, None, "neighbours of a nearest-neighbour likelihood (with approx = 'nn')"),
+        "anisotropy": ("bool", False, None, "geometric anisotropy: a direction and a ratio of ranges (single-site "
+                       "dense fits)"),
     },
     "model.priors": {
         "range_below": ("float_pair", None, None, "[R0, A1]: P(practical range < R0) = A1"),
@@ -88,6 +93,9 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "cell": ("float", None, None, "grid cell side (distance units; default ~100 cells on the longer side)"),
         "margin": ("float", 0.0, None, "widen the grid's bounding box on every side"),
         "points": ("path", None, None, "CSV of target points instead of a grid"),
+        "zones": ("path", None, None, "polygon layer giving the trend's categories on a grid (cells in no polygon "
+                                      "are left out)"),
+        "zones_layer": ("str", None, None, "layer of a zones file holding several"),
         "thresholds": ("float_list", [], None, "levels for exceedance probabilities (data units)"),
         "area": ("area", None, None, "area(s) to average over: a polygon CSV path or [xmin, ymin, xmax, ymax], a list "
                                      "of these (one per site), or a table {site = area}"),
