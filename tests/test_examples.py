@@ -102,6 +102,18 @@ def test_fit_check_map_example(tmp_path):
     assert (tmp_path / "mean.png").is_file() and (tmp_path / "diagnostics").is_dir()
 
 
+def test_plume_anisotropy_example(tmp_path):
+    """The directional example runs with quick settings, writes its maps and recovers the invented plume's
+    direction (60 degrees) within 30 degrees with a ratio interval above 1 (one seed; a smoke check)."""
+    res = _run("plume_anisotropy.py", str(tmp_path))
+    assert res.returncode == 0, res.stderr[-3000:]
+    assert (tmp_path / "mean.png").is_file()
+    lines = {ln.split(":")[0]: ln for ln in res.stdout.splitlines() if ln.startswith("anisotropy_")}
+    angle = float(lines["anisotropy_angle"].split()[1])
+    ratio_low = float(lines["anisotropy_ratio"].split("interval")[1].split()[0])
+    assert abs((angle - 60.0 + 90.0) % 180.0 - 90.0) < 30.0 and ratio_low > 1.0
+
+
 @pytest.mark.slow
 def test_hierarchical_example(tmp_path):
     """The several-site example runs with quick settings and prints a population block."""
