@@ -309,12 +309,9 @@ def build_model_and_inputs(ds: xr.Dataset, *, _coordinates: str = "share", _tren
 
 
 def check_anisotropy(metric: str, approx: str, source: str) -> None:
-    """Anisotropy needs planar coordinates and (in this version) the dense likelihood."""
+    """Anisotropy needs planar coordinates (``approx`` is either likelihood)."""
     if metric == "greatcircle":
         raise InputError(f"{source}: anisotropy needs planar coordinates; project lon/lat data first (--to-crs utm)")
-    if approx != "dense":
-        raise InputError(f"{source}: anisotropy is available with the dense likelihood only in this version "
-                         "(--approx dense, up to 2,000 points per site)")
 
 
 def censored_index(ds: xr.Dataset) -> np.ndarray:

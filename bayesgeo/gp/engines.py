@@ -186,8 +186,15 @@ class _NearestNeighbour(Engine):
                distance_scale, extra=None, anisotropy=None):
         from bayesgeo.gp.nn import nn_loglik
 
+        if extra is not None and anisotropy is None:
+            raise ValueError("the trend coefficients can be integrated out of the dense likelihood only")
         if anisotropy is not None:
-            raise ValueError("anisotropy is available with the dense likelihood only in this version")
+            from bayesgeo.gp.nn import _structure
+            from bayesgeo.gp.nn_aniso import nn_loglik_aniso
+
+            xy, nbr = _structure(xy, len(xy), neighbours, "maximin", metric)
+            return nn_loglik_aniso(resid, xy, covariance, scale, partial_sill, nugget, anisotropy, nbr=nbr,
+                                   distance_scale=distance_scale)
         if extra is not None:
             raise ValueError("the trend coefficients can be integrated out of the dense likelihood only")
         return nn_loglik(resid, xy, covariance, scale, partial_sill, nugget, neighbours=neighbours, metric=metric,
@@ -197,17 +204,20 @@ class _NearestNeighbour(Engine):
         return NN_PREDICT_NEIGHBOURS
 
     def draw_moments(self, basis, xy_new, design_new, *, include_nugget=True):
+        from bayesgeo.gp.kriging import draw_xy
         from bayesgeo.gp.nn_kriging import nn_kriging_moments
 
-        def moments(values, k):  # draws k (a slice) with data values
-            return nn_kriging_moments(basis.xy, values, basis.design, xy_new, design_new, covariance=basis.covariance,
-                                      scale=basis.scale[k], partial_sill=basis.partial_sill[k], nugget=basis.nugget[k],
-                                      beta=basis.beta[k], metric=basis.metric, neighbours=basis.neighbours,
-                                      include_nugget=include_nugget)
+        def moments(values, k, j=0):  # draws k (a slice) with data values; coordinates of draw j
+            return nn_kriging_moments(draw_xy(basis, basis.xy, j), values, basis.design, draw_xy(basis, xy_new, j),
+                                      design_new, covariance=basis.covariance, scale=basis.scale[k],
+                                      partial_sill=basis.partial_sill[k], nugget=basis.nugget[k], beta=basis.beta[k],
+                                      metric=basis.metric, neighbours=basis.neighbours, include_nugget=include_nugget)
 
-        if basis.values.ndim == 1:
+        if basis.values.ndim == 1 and basis.anisotropy is None:
             return moments(basis.values, slice(None))
-        parts = [moments(basis.values[k], slice(k, k + 1)) for k in range(basis.n_draws)]  # imputed non-detects
+        # imputed non-detects, or an anisotropic fit: each draw its own values and coordinates
+        parts = [moments(basis.values if basis.values.ndim == 1 else basis.values[k], slice(k, k + 1), k)
+                 for k in range(basis.n_draws)]
         return np.vstack([m for m, _ in parts]), np.vstack([v for _, v in parts])
 
     def residual_means(self, basis, xy_new, resid):
@@ -225,8 +235,14 @@ class _NearestNeighbour(Engine):
         scale = spec.scale_of(fa.draws["practical_range_z"].reshape(-1))
         psill, tau2 = fa.draws["sd_z"].reshape(-1) ** 2, fa.draws["nugget_sd_z"].reshape(-1) ** 2
         beta = fa.draws["beta_z"].reshape(nc * nd, -1)
+        aniso = None
+        if "anisotropy_z" in fa.draws:  # each draw in its own rotated and scaled coordinates
+            from bayesgeo.gp.anisotropy import angle_ratio, to_isotropic
+
+            angle, ratio = angle_ratio(fa.draws["anisotropy_z"].reshape(-1, 2))
+            aniso = [to_isotropic(fa.xy, angle[k], ratio[k]) for k in range(angle.size)]
         with (progress or _no_bar)(total=fa.n, desc="nearest-neighbour LOO") as bar:
-            if "censored_z" not in fa.draws:
+            if "censored_z" not in fa.draws and aniso is None:
                 mean, var, logp = nn_loo(fa.y, fa.xy, fa.design, covariance=spec.covariance, scale=scale,
                                          partial_sill=psill, nugget=tau2, beta=beta, neighbours=m, metric=spec.metric,
                                          progress=bar)
@@ -234,9 +250,10 @@ class _NearestNeighbour(Engine):
                 from bayesgeo.gp.nn_loo import loo_neighbours
 
                 nbr = loo_neighbours(fa.xy, neighbours=m, metric=spec.metric)
-                parts = [nn_loo(_values(fa, k), fa.xy, fa.design, covariance=spec.covariance, scale=scale[k],
-                                partial_sill=psill[k], nugget=tau2[k], beta=beta[k], neighbours=m, metric=spec.metric,
-                                nbr=nbr) for k in range(scale.size)]
+                parts = [nn_loo(_values(fa, k), fa.xy if aniso is None else aniso[k], fa.design,
+                                covariance=spec.covariance, scale=scale[k], partial_sill=psill[k], nugget=tau2[k],
+                                beta=beta[k], neighbours=m, metric=spec.metric,
+                                nbr=nbr if aniso is None else None) for k in range(scale.size)]
                 mean, var, logp = (np.vstack([p[i] for p in parts]) for i in range(3))
                 if bar is not None:
                     bar.update(fa.n)
@@ -262,6 +279,11 @@ class _NearestNeighbour(Engine):
     def approximation_check(self, posterior, xy, *, covariance, neighbours, metric):
         from bayesgeo.gp.nn_accuracy import approximation_check
 
+        if "anisotropy_angle" in posterior:  # at the posterior direction and median ratio (bayesgeo.gp.anisotropy)
+            from bayesgeo.gp.anisotropy import to_isotropic
+
+            xy = to_isotropic(xy, posterior["anisotropy_angle"].attrs["circular_mean"],
+                              float(posterior["anisotropy_ratio"].median()))
         return approximation_check(posterior, xy, covariance=covariance, neighbours=neighbours, metric=metric)
 
 

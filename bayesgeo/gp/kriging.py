@@ -183,11 +183,11 @@ def make_basis(xy, values, design, *, covariance: Covariance | str, scale, parti
         raise ValueError("every draw needs scale > 0, partial_sill > 0 and nugget >= 0")
     if anisotropy is not None:
         anisotropy = np.asarray(anisotropy, dtype=float).reshape(d_count, 2)
-        if neighbours or metric != "euclidean":
-            raise ValueError("anisotropic kriging needs the dense engine and planar coordinates")
+        if metric != "euclidean":
+            raise ValueError("anisotropic kriging needs planar coordinates")
     if neighbours:
         return KrigingBasis(xy, values, design, cov, metric, scale, psill, tau2, beta, [], np.empty((d_count, 0)),
-                            transform, int(neighbours))
+                            transform, int(neighbours), anisotropy=anisotropy)
     need = 8.0 * d_count * n * n
     if need > max_bytes:
         raise InputError(f"draws: {d_count} draws x {n} points need {need / 2**30:.1f} GiB of Cholesky factors "

@@ -196,10 +196,13 @@ def nn_residual_means(basis, xy_new, resid) -> np.ndarray:
     n_d, n_s, n = resid.shape
     xy_new = np.asarray(xy_new, dtype=float).reshape(-1, 2)
     out = np.empty((n_d, n_s, xy_new.shape[0]))
+    from bayesgeo.gp.kriging import draw_xy
+
     ones, ones_new = np.ones((n, 1)), np.ones((xy_new.shape[0], 1))
     for k in range(n_d):
+        xy_k, new_k = draw_xy(basis, basis.xy, k), draw_xy(basis, xy_new, k)  # anisotropic fits: the draw's own
         for s in range(n_s):
-            out[k, s] = nn_kriging_moments(basis.xy, resid[k, s], ones, xy_new, ones_new, covariance=basis.covariance,
+            out[k, s] = nn_kriging_moments(xy_k, resid[k, s], ones, new_k, ones_new, covariance=basis.covariance,
                                            scale=basis.scale[k:k + 1], partial_sill=basis.partial_sill[k:k + 1],
                                            nugget=basis.nugget[k:k + 1], beta=[0.0], metric=basis.metric,
                                            neighbours=basis.neighbours, include_nugget=False)[0][0]

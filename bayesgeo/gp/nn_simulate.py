@@ -352,8 +352,18 @@ def nn_replicates(fa, picks: np.ndarray, rng: np.random.Generator) -> np.ndarray
     cov = get_covariance(spec.covariance)
     flat = {k: v.reshape(v.shape[0] * v.shape[1], *v.shape[2:]) for k, v in fa.draws.items()}
     scale = flat["practical_range_z"][picks] / spec.range_factor
-    ys = nn_simulate(fa.xy, cov, scale, flat["sd_z"][picks] ** 2, flat["nugget_sd_z"][picks] ** 2,
-                     neighbours=int(spec.neighbours or DEFAULT_NEIGHBOURS), rng=rng,
-                     metric=spec.metric, distance_scale=spec.distance_scale)
+    m = int(spec.neighbours or DEFAULT_NEIGHBOURS)
+    if "anisotropy_z" in flat:  # each replicate in its draw's rotated and scaled coordinates
+        from bayesgeo.gp.anisotropy import angle_ratio, to_isotropic
+
+        angle, ratio = angle_ratio(flat["anisotropy_z"][picks])
+        noise = rng.standard_normal((picks.size, fa.xy.shape[0]))
+        ys = np.vstack([nn_simulate(to_isotropic(fa.xy, angle[r], ratio[r]), cov, scale[r],
+                                    flat["sd_z"][picks[r]] ** 2, flat["nugget_sd_z"][picks[r]] ** 2, neighbours=m,
+                                    noise=noise[r:r + 1], metric=spec.metric, distance_scale=spec.distance_scale)
+                        for r in range(picks.size)])
+    else:
+        ys = nn_simulate(fa.xy, cov, scale, flat["sd_z"][picks] ** 2, flat["nugget_sd_z"][picks] ** 2, neighbours=m,
+                         rng=rng, metric=spec.metric, distance_scale=spec.distance_scale)
     ys += flat["beta_z"][picks] @ fa.design.T
     return spec.values_of(ys.T)

@@ -64,7 +64,7 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
         Output folder, written atomically; refused if present unless ``overwrite``.
     covariance, nu, nugget, trend, transform, approx, neighbours, anisotropy :
         The model (:func:`bayesgeo.fitting.posterior.fit`); ``transform`` None or "log"; ``anisotropy``
-        geometric anisotropy (single-site dense fits in this version).
+        geometric anisotropy (single-site fits in this version).
     range_below, sd_above, nugget_above : (float, float), optional
         PC-prior statements P(practical range < R0) = A1, P(sd > S0) = A2, P(nugget sd > T0) = A3 (data
         units); the several-site model puts its nugget prior on the fraction of the sill and refuses

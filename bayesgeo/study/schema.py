@@ -66,7 +66,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
                    "likelihood: dense (exact), nn (nearest-neighbour approximation) or auto (dense up to 2,000 points)"),
         "neighbours": ("int", None, None, "neighbours of a nearest-neighbour likelihood (with approx = 'nn')"),
         "anisotropy": ("bool", False, None, "geometric anisotropy: a direction and a ratio of ranges (single-site "
-                       "dense fits)"),
+                       "fits, planar coordinates)"),
     },
     "model.priors": {
         "range_below": ("float_pair", None, None, "[R0, A1]: P(practical range < R0) = A1"),
