@@ -43,8 +43,8 @@ def add_arguments(p) -> None:
                    help="neighbours per point of the nn likelihood (default 20)")
     p.add_argument("--anisotropy", action="store_true",
                    help="geometric anisotropy: estimate the direction of the longest range (degrees clockwise from "
-                        "north) and the ratio of the longest to the shortest range (single-site fits, planar "
-                        "coordinates; docs/model.md)")
+                        "north) and the ratio of the longest to the shortest range (planar coordinates; with "
+                        "--site each site its own; docs/model.md)")
     p.add_argument("--draws", type=int_option("draws"), default=DRAWS, help=f"kept draws per chain (default {DRAWS})")
     p.add_argument("--max-draws", type=int_option("draws"), default=None, metavar="N",
                    help="while the convergence check finds R-hat or ESS too poor, the same chains continue, looking "

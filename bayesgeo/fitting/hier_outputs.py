@@ -61,7 +61,8 @@ CAUTIONS = (
 )
 
 #: Per-site derived parameters reported in blocks (data units), as for a single-site fit.
-PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
+PARAMETERS = ("practical_range", "scale", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic",
+              "anisotropy_angle", "anisotropy_ratio", "practical_range_major", "practical_range_minor")
 
 
 def _units(spec) -> dict[str, str]:

@@ -87,7 +87,7 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
                      transform: str | None = None, pooling: str = "hierarchical",
                      priors: Priors | Mapping | None = None, small_sites: str = "error",
                      parametrisation: str = "noncentred", approx: str = "auto", neighbours: int | None = None,
-                     _variance: str = "sill"):
+                     anisotropy: bool = False, _variance: str = "sill"):
     """Build one PyMC model for the points of several sites.
 
     Parameters
@@ -147,13 +147,18 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
 
     spec, data = site_inputs(ds, covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
                              transform=transform, pooling=pooling, priors=priors, small_sites=small_sites,
-                             parametrisation=parametrisation, approx=approx, neighbours=neighbours)
+                             parametrisation=parametrisation, approx=approx, neighbours=neighbours,
+                             anisotropy=anisotropy)
     if _variance not in ("sill", "total"):
         raise ValueError(f"_variance must be 'sill' or 'total', got {_variance!r}")
     cov = get_covariance(spec.covariance, None if spec.covariance != "matern" else spec.nu)
     rates, hp, beta_sd = spec.rates, spec.hyperpriors, spec.priors.beta_sd
     n_sites = len(spec.sites)
     coords = {"site": list(spec.sites), "term": list(spec.terms)}
+    if spec.anisotropy:
+        from bayesgeo.fitting.model import ANISOTROPY_COORDS
+
+        coords["anisotropy_coord"] = list(ANISOTROPY_COORDS)
     cens = [np.flatnonzero(d.censored) if d.censored is not None else np.zeros(0, int) for d in data]
     if any(c.size for c in cens):
         coords["censored"] = [int(d.rows[c_i][k]) for d, c_i in zip(data, cens) for k in range(c_i.size)]
@@ -202,6 +207,16 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
         if spec.nugget:
             # tau = sigma sqrt(f / (1 - f)) = sigma exp(logit(f) / 2)
             tau = pm.Deterministic("nugget_sd_z", sd * pt.exp(0.5 * logit_f), dims="site")
+        aniso = None
+        if spec.anisotropy:  # each site its own direction and ratio (complete pooling: one for all)
+            from bayesgeo.gp.anisotropy import prior_scale
+
+            if spec.pooling == "complete":
+                shared = pm.Normal("shared_anisotropy_z", 0.0, prior_scale(), dims="anisotropy_coord")
+                aniso = pm.Deterministic("anisotropy_z", pt.ones((n_sites, 1)) * shared[None, :],
+                                         dims=("site", "anisotropy_coord"))
+            else:
+                aniso = pm.Normal("anisotropy_z", 0.0, prior_scale(), dims=("site", "anisotropy_coord"))
         ys = _site_values(data, cens) if "censored" in coords else [d.y for d in data]
         for i, sd_i in enumerate(data):
             resid = ys[i] - pt.dot(sd_i.design, beta[i])
@@ -209,7 +224,7 @@ def build_site_model(ds: xr.Dataset, *, covariance: str = "matern32", nu: float 
             loglik = engine(spec.site_approx[i]).loglik(
                 resid, xy=sd_i.xy, dist=sd_i.dist, covariance=cov, scale=prange[i] / spec.range_factor,
                 partial_sill=sd[i] ** 2, nugget=tau2, neighbours=spec.site_neighbours[i], metric=spec.metric,
-                distance_scale=spec.distance_scale)
+                distance_scale=spec.distance_scale, anisotropy=None if aniso is None else aniso[i])
             pm.Potential(f"loglik_{i}", loglik)
     return model, spec
 
@@ -252,14 +267,14 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
               sampler: str = "nutpie", chains: int = CHAINS, draws: int = DRAWS, tune: int = TUNE,
               target_accept: float | None = None, seed: int | None = None, progressbar: bool = False,
               adaptation: str = "low_rank", parametrisation: str = "noncentred", approx: str = "auto",
-              neighbours: int | None = None, max_draws: int | None = None) -> xr.DataTree:
+              neighbours: int | None = None, max_draws: int | None = None, anisotropy: bool = False) -> xr.DataTree:
     """Fit the several-site model and return the explicit fit result.
 
     Parameters
     ----------
     ds, covariance, nu, nugget, trend, covariates, transform, pooling, priors, small_sites :
         As in :func:`build_site_model`.
-    parametrisation, approx, neighbours :
+    parametrisation, approx, neighbours, anisotropy :
         As in :func:`build_site_model`.
     sampler, chains, draws, tune, seed, progressbar, adaptation :
         As in :func:`bayesgeo.fitting.sampling.sample`.
@@ -295,7 +310,8 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
         warnings.simplefilter("always", UserWarning)
         model_kw = dict(covariance=covariance, nu=nu, nugget=nugget, trend=trend, covariates=covariates,
                         transform=transform, pooling=pooling, priors=priors, small_sites=small_sites,
-                        parametrisation=parametrisation, approx=approx, neighbours=neighbours)
+                        parametrisation=parametrisation, approx=approx, neighbours=neighbours,
+                        anisotropy=anisotropy)
         model, spec = build_site_model(ds, **model_kw)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UserWarning)
@@ -401,6 +417,11 @@ def site_fit(tree: xr.DataTree, site: str) -> xr.DataTree:
     if latent and np.any(post["censored_site"].values == site):  # the site's own non-detects
         mine = post[latent].isel(censored=np.flatnonzero(post["censored_site"].values == site))
         one_post = xr.merge([one_post, mine.drop_vars("censored_site")])
+    if "anisotropy_z" in one_post:  # the site's own circular mean of the direction
+        from bayesgeo.gp.anisotropy import anisotropy_parameters
+
+        one_post.update(anisotropy_parameters(one_post["anisotropy_z"], one_post["practical_range"],
+                                              spec.distance_units))
     groups = {"/posterior": one_post}
     if "sample_stats" in tree.children:
         groups["/sample_stats"] = tree["sample_stats"].to_dataset()

@@ -170,7 +170,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
                 trend: int = 0, covariates: Sequence[str] = (), transform: str | None = None,
                 pooling: str = "hierarchical", priors: Priors | Mapping | None = None,
                 small_sites: str = "error", parametrisation: str = "noncentred", approx: str = "auto",
-                neighbours: int | None = None) -> tuple[SiteSpec, list[SiteData]]:
+                neighbours: int | None = None, anisotropy: bool = False) -> tuple[SiteSpec, list[SiteData]]:
     """Check the data and settings and compute the common standardisation and per-site inputs.
 
     Parameters
@@ -187,6 +187,8 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     neighbours : int, optional
         m of the nearest-neighbour likelihood (default :data:`bayesgeo.gp.nn.DEFAULT_NEIGHBOURS`),
         capped per site at n_s - 1.
+    anisotropy : bool
+        Geometric anisotropy, each site its own direction and ratio (planar coordinates only).
 
     Returns
     -------
@@ -254,6 +256,10 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
     dscale = float(np.median(extents))
     resolved = resolve_priors(priors, extent=dscale, value_sd=vsd)
     design0 = raw[0][2]
+    if anisotropy:
+        from bayesgeo.fitting.model import check_anisotropy
+
+        check_anisotropy(metric, approx, _source(ds))
     spec = SiteSpec(
         pooling=pooling, sites=tuple(r[0] for r in raw), n=tuple(len(r[5]) for r in raw), small_sites=tuple(small),
         covariance=cov.name, nu=cov.nu, nugget=bool(nugget), trend=int(design0.attrs["order"]),
@@ -267,6 +273,7 @@ def site_inputs(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | Non
         site_centred=tuple(_centred(parametrisation, len(r[5])) for r in raw), approx=approx,
         site_approx=tuple(r[9] for r in raw), site_neighbours=tuple(int(r[10]) for r in raw),
         site_censored=tuple(int(r[11].sum()) for r in raw) if any(r[11].any() for r in raw) else (),
+        anisotropy=bool(anisotropy),
     )
     data = [SiteData(label=r[0], y=(r[5] - vmean) / vsd, design=np.asarray(r[2].values, dtype=float),
                      dist=None if r[3] is None else r[3] / dscale, rows=r[7], xy=r[8], censored=r[11]) for r in raw]

@@ -101,28 +101,31 @@ def anisotropy_parameters(alpha, prange, du: str) -> dict:
     Parameters
     ----------
     alpha : xarray.DataArray
-        ``anisotropy_z`` draws (chain, draw, 2).
+        ``anisotropy_z`` draws (chain, draw, [site,] anisotropy_coord).
     prange : xarray.DataArray
-        The (geometric-mean) practical range draws (chain, draw), distance units ``du``.
+        The (geometric-mean) practical range draws (chain, draw[, site]), distance units ``du``.
 
     Returns
     -------
     dict of xarray.DataArray
-        ``anisotropy_angle`` (degrees), ``anisotropy_ratio``, ``practical_range_major``, ``practical_range_minor``.
+        ``anisotropy_angle`` (degrees), ``anisotropy_ratio``, ``practical_range_major``, ``practical_range_minor``;
+        with a ``site`` dim one circular mean per site (attribute ``circular_mean``, a list then).
     """
     import xarray as xr
 
-    a = alpha.transpose("chain", "draw", ...)
+    last = alpha.dims[-1]
+    a = alpha.transpose("chain", "draw", ..., last)
+    dims = a.dims[:-1]
     angle, ratio = angle_ratio(a.values)
-    centre = np.degrees(0.5 * np.angle(np.mean(np.exp(2j * np.radians(angle))))) % 180.0
+    centre = np.degrees(0.5 * np.angle(np.mean(np.exp(2j * np.radians(angle)), axis=(0, 1)))) % 180.0
     unwrapped = centre + (angle - centre + 90.0) % 180.0 - 90.0
-    dims = ("chain", "draw")
     major, minor = axis_ranges(prange.transpose(*dims).values, ratio)
-    coords = {d: a[d] for d in dims}
+    coords = {d: a[d] for d in dims if d in a.coords}
+    mean = float(centre) if np.ndim(centre) == 0 else [float(c) for c in centre]
     return {
         "anisotropy_angle": xr.DataArray(unwrapped, dims=dims, coords=coords, attrs={
             "units": "degrees", "long_name": "azimuth of the major axis, clockwise from north (modulo 180)",
-            "circular_mean": float(centre)}),
+            "circular_mean": mean}),
         "anisotropy_ratio": xr.DataArray(ratio, dims=dims, coords=coords, attrs={
             "units": "1", "long_name": "ratio of the major to the minor practical range"}),
         "practical_range_major": xr.DataArray(major, dims=dims, coords=coords, attrs={

@@ -64,7 +64,7 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
         Output folder, written atomically; refused if present unless ``overwrite``.
     covariance, nu, nugget, trend, transform, approx, neighbours, anisotropy :
         The model (:func:`bayesgeo.fitting.posterior.fit`); ``transform`` None or "log"; ``anisotropy``
-        geometric anisotropy (single-site fits in this version).
+        geometric anisotropy (planar coordinates; each site its own direction and ratio).
     range_below, sd_above, nugget_above : (float, float), optional
         PC-prior statements P(practical range < R0) = A1, P(sd > S0) = A2, P(nugget sd > T0) = A3 (data
         units); the several-site model puts its nugget prior on the fraction of the sill and refuses
@@ -115,9 +115,6 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
                              "alone (--only-site NAME) or leave the category out")
         if keep_sampling is not None:
             raise InputError("keep_sampling: single-site fits only for now; run without it and check each site")
-        if anisotropy:
-            raise InputError("anisotropy: single-site fits only in this version; fit each site on its own "
-                             "(--only-site NAME) to estimate its direction and ratio")
         if nugget_above is not None:
             raise InputError("nugget_above: the several-site model puts its prior on the nugget fraction of the sill "
                              "(see docs/hierarchical.md); drop the nugget prior")

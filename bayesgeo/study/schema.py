@@ -65,8 +65,8 @@ SCHEMA: dict[str, dict[str, tuple]] = {
         "approx": ("str", "auto", ("auto", "dense", "nn"),
                    "likelihood: dense (exact), nn (nearest-neighbour approximation) or auto (dense up to 2,000 points)"),
         "neighbours": ("int", None, None, "neighbours of a nearest-neighbour likelihood (with approx = 'nn')"),
-        "anisotropy": ("bool", False, None, "geometric anisotropy: a direction and a ratio of ranges (single-site "
-                       "fits, planar coordinates)"),
+        "anisotropy": ("bool", False, None, "geometric anisotropy: a direction and a ratio of ranges (planar "
+                       "coordinates; each site its own)"),
     },
     "model.priors": {
         "range_below": ("float_pair", None, None, "[R0, A1]: P(practical range < R0) = A1"),
