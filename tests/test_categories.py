@@ -425,3 +425,36 @@ def test_study_file_categories_become_the_recorded_options(tmp_path):
     path.write_text(STUDY.replace('baselines = ["ground=native"]', 'baselines = ["soil=native"]'))
     with pytest.raises(InputError, match=r"baselines.*'soil=native': expected \"COL=LEVEL\" with COL in categories"):
         read_study(path)
+
+
+def test_several_site_fit_with_a_category(tmp_path):
+    """Two sites of one file share the category's levels and baseline (read once from the whole file); each
+    site's trend gets its own level effects; the saved fit keeps the labels, and a site's view predicts at
+    target points that carry the level (a short nutpie fit, a smoke check of the machinery)."""
+    from bayesgeo.fitting.fitted import Fit
+    from bayesgeo.fitting.hierarchical import fit_sites, site_fit
+    from bayesgeo.predict.prediction import basis_from_fit, predict_targets
+
+    xy1, g1, z1 = _data(seed=3)
+    xy2, g2, z2 = _data(seed=4)
+    xy = np.vstack([xy1, xy2 + [2000.0, 0.0]])
+    path = _csv(tmp_path / "two.csv", xy, np.concatenate([z1, z2]),
+                {"ground": np.concatenate([g1, g2]), "plot": ["a"] * 60 + ["b"] * 60})
+    ds = read_points(path, categories=["ground"], site="plot", distance_units="m", coords="xy")
+    tree = fit_sites(ds, covariance="exponential", covariates=["ground"], chains=2, draws=100, tune=100, seed=1,
+                     max_draws=100)
+    assert tree["posterior"]["beta_z"].sizes["site"] == 2
+    assert "ground=fill" in list(tree["posterior"]["term"].values)
+    assert tree["constant_data"]["ground"].dtype.kind in "USO"
+    folder = tmp_path / "fit"
+    from conftest import write_fit_folder
+
+    write_fit_folder(tree, folder)
+    view = site_fit(Fit.read(folder).tree, "b")
+    basis, spec, _ = basis_from_fit(view, draws=10)
+    targets = xr.Dataset(coords={"x": ("target", [2100.0, 2300.0]), "y": ("target", [100.0, 300.0])})
+    targets["ground"] = ("target", np.array(["fill", "peat"], dtype=object))
+    targets["inside"] = ("target", np.ones(2, bool))
+    targets.attrs["kind"] = "points"
+    pred = predict_targets(basis, targets, design_attrs=spec.design_attrs)
+    assert np.all(np.isfinite(pred["mean"].values))

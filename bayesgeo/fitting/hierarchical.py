@@ -352,8 +352,11 @@ def fit_sites(ds: xr.Dataset, *, covariance: str = "matern32", nu: float | None 
          "design": (("obs", "term"), design, {"long_name": "trend design matrix (each site centred and scaled)"})},
         coords={**obs_coords, "term": list(spec.terms)},
     )
-    for c in spec.covariates:
-        constant[c] = ("obs", np.asarray(ds[c].values, dtype=float))
+    from bayesgeo.data.categories import is_category
+
+    for c in spec.covariates:  # a category keeps its labels (and its levels and baseline)
+        constant[c] = (("obs", np.asarray(ds[c].values).astype(str), dict(ds[c].attrs)) if is_category(ds[c])
+                       else ("obs", np.asarray(ds[c].values, dtype=float)))
     groups = {"/posterior": post, "/sample_stats": raw["sample_stats"].to_dataset(),
               "/observed_data": observed, "/constant_data": constant}
     if spec.pooling != "independent":

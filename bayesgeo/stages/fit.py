@@ -110,9 +110,6 @@ def fit_folder(data, *, out, covariance: str, nu: float | None = None, nugget: b
                      progressbar=progressbar, max_draws=max_draws)
     priors = Priors(range=_pair(range_below), sd=_pair(sd_above), nugget=_pair(nugget_above))
     if len(sites_of(ds)) > 1:
-        if data_settings.get("categories"):
-            raise InputError("categories: several-site fits do not take categorical covariates yet; fit each site "
-                             "alone (--only-site NAME) or leave the category out")
         if keep_sampling is not None:
             raise InputError("keep_sampling: single-site fits only for now; run without it and check each site")
         if nugget_above is not None:
