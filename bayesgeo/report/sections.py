@@ -303,7 +303,8 @@ def diagnostics(ctx: Ctx) -> str:
     return _section("diagnostics", "Convergence diagnostics", "\n".join(out))
 
 
-_POSTERIOR_ROWS = ("practical_range", "partial_sill", "nugget", "total_sill", "microergodic", "nugget_ratio", "scale")
+_POSTERIOR_ROWS = ("practical_range", "partial_sill", "nugget", "total_sill", "microergodic", "nugget_ratio", "scale",
+                   "anisotropy_angle", "anisotropy_ratio", "practical_range_major", "practical_range_minor")
 
 
 def posterior(ctx: Ctx) -> str:
@@ -328,6 +329,11 @@ def posterior(ctx: Ctx) -> str:
                                        "90% HDI high", "units"], left=["parameter", "units"]))
         out.append("<p class=\"small\">5% and 95%: equal-tailed quantiles; HDI: highest-density interval. "
                    "The microergodic parameter is σ²/φ<sup>2ν</sup> (Zhang 2004).</p>")
+        if "anisotropy_angle" in ps:
+            out.append("<p class=\"small\">Anisotropy: the angle is the azimuth of the longest range in degrees "
+                       "clockwise from north, modulo 180 (a value below 0 or above 180 names the same direction "
+                       "180 degrees away); the ratio is the longest over the shortest practical range, whose "
+                       "geometric mean is the practical range above (docs/model.md).</p>")
     return _section("posterior", "Posterior: range, sills, nugget", "\n".join(out))
 
 

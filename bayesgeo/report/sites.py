@@ -37,7 +37,8 @@ SITE_CAUTION = (
     "statistics and action levels are set by the local regulator."
 )
 
-_PARAMS = ("practical_range", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic")
+_PARAMS = ("practical_range", "partial_sill", "nugget", "total_sill", "nugget_ratio", "microergodic",
+           "anisotropy_angle", "anisotropy_ratio", "practical_range_major", "practical_range_minor")
 _COLS = ["q50", "mean", "sd", "q05", "q95", "hdi90_low", "hdi90_high", "units"]
 _HEADS = ["median", "mean", "sd", "5%", "95%", "90% HDI low", "90% HDI high", "units"]
 
