@@ -232,20 +232,26 @@ def test_option_values_bounded(tmp_path, capsys, option, value, pattern):
                    inputs=[data], absent=[tmp_path / "o"])
 
 
-def test_large_input_note_on_stderr_and_in_json(tmp_path, capsys):
-    """Above 3,000 points per site the maximum-likelihood quick fits are skipped: explore says so before
-    starting, on stderr (one note, then one line per long step); with --json the same plan is the
-    ``workload`` field of the one JSON object and stderr stays empty."""
+def test_large_input_note_on_stderr_and_in_json(tmp_path, capsys, monkeypatch):
+    """Above the comfortable size explore announces its plan before starting, on stderr (one note naming the
+    expected time and that the maximum-likelihood quick fits use the nearest-neighbour likelihood, then one line
+    per long step); with --json the same plan is the ``workload`` field of the one JSON object and stderr stays
+    empty. The ML columns are filled (no longer skipped above 3,000 points). The comfortable size is lowered
+    to 3,000 here so that the test stays small."""
+    from bayesgeo.fitting import workload
+
+    monkeypatch.setattr(workload, "EXPLORE_COMFORTABLE_POINTS", 3000)
     data = tmp_path / "survey.csv"
     data.write_text("\n".join(",".join(r) for r in _rows(3200, 7)) + "\n")
     base = ["explore", str(data), "--permutations", "0", "--covariance", "exponential", "--bins", "6"]
     assert main([*base, "--out", str(tmp_path / "a")]) == 0
     err = capsys.readouterr().err.strip().splitlines()
-    assert err[0].startswith("bayesgeo explore: note: ") and "skipped above 3,000 points" in err[0]
+    assert err[0].startswith("bayesgeo explore: note: ") and "nearest-neighbour likelihood" in err[0]
     assert err[1] == "bayesgeo explore: semivariogram (0 permutations) ..."
     assert main([*base, "--out", str(tmp_path / "b"), "--json"]) == 0
     out, err = capsys.readouterr()
     assert err == ""
     obj = json.loads(out)
-    assert obj["workload"]["points"] == 3200 and "skipped above 3,000 points" in obj["workload"]["message"]
+    assert obj["workload"]["points"] == 3200 and "nearest-neighbour likelihood" in obj["workload"]["message"]
+    assert np.isfinite(obj["fits"]["ml"]["exponential"]["practical_range"])
     assert obj["workload"]["estimated_seconds"][0] <= obj["workload"]["estimated_seconds"][1]

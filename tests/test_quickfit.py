@@ -270,17 +270,27 @@ def test_no_nugget_fits_are_nested_in_the_nugget_fits():
     assert with_nugget["loglik"] >= without["loglik"] - 1e-6
 
 
-def test_quick_fits_skips_ml_above_the_dense_limit(monkeypatch):
-    """Above MAX_DENSE_POINTS the ML rows are NaN, not converged, and the reason is recorded;
-    the WLS rows are still fitted."""
+def test_quick_fits_use_the_nearest_neighbour_likelihood_above_its_limit(monkeypatch):
+    """Above NN_ML_POINTS the ML rows come from the nearest-neighbour likelihood (recorded in attrs["ml"]) and,
+    with every earlier point a neighbour, equal the dense profile-likelihood fit (the Vecchia likelihood is then
+    exact, Vecchia 1988; the GLS trend is refitted, so the optima agree to 1e-3); ml=False leaves them NaN with
+    the reason recorded, the WLS rows fitted."""
+    from bayesgeo.explore import quickfit_nn
+
     ds = _field(n=60, seed=8)
     vg = semivariogram(ds, bins=6)
-    monkeypatch.setattr(quickfit, "MAX_DENSE_POINTS", 50)
-    out = quick_fits(ds, vg, ["exponential"])
-    assert np.isnan(float(out["nugget"].sel({"method": "ml", "family": "exponential"})))
-    assert not bool(out["converged"].sel({"method": "ml", "family": "exponential"}))
-    assert "60 points" in out.attrs["ml_skipped"]
-    assert np.isfinite(float(out["practical_range"].sel({"method": "wls", "family": "exponential"})))
+    dense = quick_fits(ds, vg, ["exponential"])
+    monkeypatch.setattr(quickfit_nn, "NN_ML_POINTS", 50)
+    monkeypatch.setattr(quickfit_nn, "QUICK_NEIGHBOURS", 59)
+    nn = quick_fits(ds, vg, ["exponential"])
+    assert "nearest-neighbour" in nn.attrs["ml"] and "nearest-neighbour" not in dense.attrs["ml"]
+    for var in ("nugget", "partial_sill", "practical_range", "loglik"):
+        a, b = (float(x[var].sel({"method": "ml", "family": "exponential"})) for x in (dense, nn))
+        assert b == pytest.approx(a, rel=1e-3, abs=1e-4)
+    off = quick_fits(ds, vg, ["exponential"], ml=False)
+    assert np.isnan(float(off["nugget"].sel({"method": "ml", "family": "exponential"})))
+    assert "not requested" in off.attrs["ml_skipped"]
+    assert np.isfinite(float(off["practical_range"].sel({"method": "wls", "family": "exponential"})))
 
 
 def test_ml_on_lonlat_matches_a_local_planar_projection():

@@ -63,9 +63,10 @@ def test_explore_pair_count_matches_the_benchmark():
     plan = wl.explore_plan(ds, permutations=199)
     assert plan["pairs"] == pytest.approx(149_666_921, rel=0.03)
     assert plan["points"] == plan["comfortable_points"] == 20_000
-    assert "expect roughly" not in plan["message"]  # at the limit: only the skipped ML fits are mentioned
+    assert plan["message"] is None  # at the limit: nothing to announce (the ML fits use the nn likelihood)
     over = wl.explore_plan(points_dataset(*(rng.random((25_000, 2)) * 1000.0).T, np.zeros(25_000)), permutations=199)
     assert "--permutations 0 (no envelopes or p-values; saves about" in over["message"]
+    assert "nearest-neighbour likelihood (m = 15) above 1,000 points" in over["message"]
 
 
 def test_explore_lag_limit_and_small_data():

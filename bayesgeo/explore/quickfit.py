@@ -313,8 +313,10 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
     trend, covariates, nugget
         As in :func:`fit_ml` (``nugget`` also applies to the WLS fits).
     ml : bool, optional
-        Run the maximum-likelihood fits. Default: only when the site has at most
-        :data:`MAX_DENSE_POINTS` points; skipped fits are NaN with ``converged`` false and
+        Run the maximum-likelihood fits (default: yes). Up to
+        :data:`bayesgeo.explore.quickfit_nn.NN_ML_POINTS` points they use the dense likelihood
+        (:func:`fit_ml`), above it the nearest-neighbour one (:func:`bayesgeo.explore.quickfit_nn.fit_ml_nn`),
+        as ``attrs["ml"]`` says; with ``ml=False`` they are NaN with ``converged`` false and
         ``attrs["ml_skipped"]`` saying why.
 
     Returns
@@ -331,13 +333,17 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
     for fam in families:
         if fam not in QUICK_FAMILIES:
             raise InputError(f"covariance: {fam!r} is not one of {', '.join(QUICK_FAMILIES)}")
+    from bayesgeo.explore.quickfit_nn import NN_ML_POINTS, QUICK_NEIGHBOURS, fit_ml_nn
+
     n = int(ds.sizes["obs"])
-    run_ml = n <= MAX_DENSE_POINTS if ml is None else bool(ml)
+    run_ml = True if ml is None else bool(ml)
+    large = n > NN_ML_POINTS
     skipped = {"converged": False, "at_bound": []}
     rows = {m: [] for m in ("wls", "ml")}
     for fam in families:
         w = fit_wls(vg, fam, nugget=nugget)
-        m = fit_ml(ds, fam, trend=trend, covariates=covariates, nugget=nugget, start=w) if run_ml else skipped
+        ml_fit = fit_ml_nn if large else fit_ml
+        m = ml_fit(ds, fam, trend=trend, covariates=covariates, nugget=nugget, start=w) if run_ml else skipped
         rows["wls"].append(w)
         rows["ml"].append(m)
     data = {}
@@ -358,10 +364,11 @@ def quick_fits(ds: xr.Dataset, vg: xr.Dataset, families: Sequence[str] = QUICK_F
         "trend_order": int(trend), "covariates": list(covariates), "nugget_fitted": int(bool(nugget)),
         "n": int(ds.sizes["obs"]), "distance_units": du, "value_units": vu,
         "wls": "Cressie (1985) weights N(h) / gamma_model(h)^2",
-        "ml": "maximum likelihood, trend profiled out by GLS (not REML)",
+        "ml": ("maximum likelihood, trend profiled out by GLS (not REML)" if not large else
+               f"maximum likelihood with the nearest-neighbour likelihood (m = {QUICK_NEIGHBOURS}; {n} points, "
+               f"above {NN_ML_POINTS}), trend by GLS in the Vecchia model (not REML)"),
         "note": "screening estimates assuming a stationary, isotropic field",
     })
     if not run_ml:
-        out.attrs["ml_skipped"] = (f"maximum likelihood not run ({n} points; dense fits take at most "
-                                   f"{MAX_DENSE_POINTS})" if ml is None else "maximum likelihood not requested")
+        out.attrs["ml_skipped"] = "maximum likelihood not requested"
     return out

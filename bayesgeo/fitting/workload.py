@@ -197,7 +197,7 @@ def explore_plan(ds, *, permutations: int = 99, lag_limit: float | None = None, 
     """
     from bayesgeo.data.points import sites_of
     from bayesgeo.common.geometry import metric_of
-    from bayesgeo.explore.quickfit import MAX_DENSE_POINTS
+    from bayesgeo.explore.quickfit_nn import NN_ML_POINTS, QUICK_NEIGHBOURS
 
     rng = np.random.default_rng(0)
     metric = metric_of(ds)
@@ -228,9 +228,9 @@ def explore_plan(ds, *, permutations: int = 99, lag_limit: float | None = None, 
         tips.append("--only-site, or a subset of the rows (every pair is visited: half the points, a quarter "
                     "of the time)")
         notes.append("to shorten it: " + ", ".join(tips))
-    if largest > MAX_DENSE_POINTS and families:
-        notes.append(f"the maximum-likelihood quick fits are skipped above {MAX_DENSE_POINTS:,} points per site "
-                     "(weighted least squares still runs)")
+    if largest > NN_ML_POINTS and families and notes:
+        notes.append(f"the maximum-likelihood quick fits use the nearest-neighbour likelihood (m = {QUICK_NEIGHBOURS}) "
+                     f"above {NN_ML_POINTS:,} points per site")
     if notes:
         plan["message"] = "; ".join(notes)
     return plan
