@@ -255,3 +255,20 @@ def test_large_input_note_on_stderr_and_in_json(tmp_path, capsys, monkeypatch):
     assert obj["workload"]["points"] == 3200 and "nearest-neighbour likelihood" in obj["workload"]["message"]
     assert np.isfinite(obj["fits"]["ml"]["exponential"]["practical_range"])
     assert obj["workload"]["estimated_seconds"][0] <= obj["workload"]["estimated_seconds"][1]
+
+
+def test_explore_json_names_the_quick_fit_likelihood(tmp_path, capsys, monkeypatch):
+    """explore.json says which likelihood the ML quick fits used: dense up to NN_ML_POINTS points, the
+    nearest-neighbour one above (here the limit lowered to 50 so that a 120-point survey crosses it)."""
+    from bayesgeo.explore import quickfit_nn
+
+    data = tmp_path / "survey.csv"
+    data.write_text("\n".join(",".join(r) for r in _rows(120, 5)) + "\n")
+    base = ["explore", str(data), "--permutations", "0", "--covariance", "exponential", "--bins", "6", "--json"]
+    assert main([*base, "--out", str(tmp_path / "a")]) == 0
+    assert "nearest-neighbour" not in json.loads(capsys.readouterr().out)["fit_methods"]["ml"]
+    monkeypatch.setattr(quickfit_nn, "NN_ML_POINTS", 50)
+    assert main([*base, "--out", str(tmp_path / "b")]) == 0
+    obj = json.loads(capsys.readouterr().out)
+    assert "nearest-neighbour likelihood (m = 15; 120 points" in obj["fit_methods"]["ml"]
+    assert np.isfinite(obj["fits"]["ml"]["exponential"]["loglik"])

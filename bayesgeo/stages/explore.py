@@ -151,6 +151,7 @@ def _analyse_site(part, *, trend: int, covariates: list, bins: int, lag_limit, p
                         "lag": _vals(dvg["lag"]), "semivariance": _vals(dvg["semivariance"]),
                         "pairs": dvg["pairs"].values.tolist()},
         "fits": _fits_json(fits),
+        "fit_methods": {"wls": str(fits.attrs.get("wls", "")), "ml": str(fits.attrs.get("ml", ""))},
         "anisotropy": _anisotropy_json(dvg, vg),
         "notes": notes,
     }
