@@ -11,7 +11,8 @@ values centred and divided by their sd s):
 
 1. ordering and neighbour sets once (maximin order, :data:`QUICK_NEIGHBOURS` nearest earlier points);
 2. the trend by ordinary least squares, then (log tau2, log sigma2, log phi) by L-BFGS-B on the Vecchia
-   log-likelihood of the residuals, from the WLS fit when given, else from the dense fit's default start;
+   log-likelihood of the residuals, from the best of the dense fit's starting points (and the WLS fit when
+   given), as :func:`bayesgeo.explore.quickfit.fit_ml` chooses them;
 3. the trend again by generalised least squares in the Vecchia model (each row whitened,
    e_i = (r_i - b_i^T r_N(i)) / sqrt(f_i), :func:`bayesgeo.gp.nn_simulate.nn_factors`), and step 2 again from
    the last optimum, until the coefficients settle (at most :data:`ROUNDS` rounds): the optimum of the
@@ -108,13 +109,17 @@ def fit_ml_nn(ds: xr.Dataset, covariance: str, *, trend: int = 0, covariates: Se
     hi = np.log([1e2, 1e2, 10.0 / cov.range_factor])
     if not nugget:
         lo, hi = lo[1:], hi[1:]
-    tau0, sig0, pr0 = 0.1, 0.9, 1.0 / 3.0
+    starts = [(0.1, 0.9, 1.0 / 3.0), (0.1, 0.9, 0.1), (0.1, 0.9, 1.0)]
     if start is not None and all(np.isfinite([start.get(k, np.nan) for k in ("nugget", "partial_sill",
                                                                              "practical_range")])):
-        tau0, sig0, pr0 = start["nugget"] / s**2, start["partial_sill"] / s**2, start["practical_range"] / length
-    x0 = np.log([max(tau0, 1e-6), max(sig0, 1e-3), max(pr0, 1e-3) / cov.range_factor])
-    x0 = np.clip(x0 if nugget else x0[1:], lo + 1e-3, hi - 1e-3)
+        starts.insert(0, (start["nugget"] / s**2, start["partial_sill"] / s**2, start["practical_range"] / length))
     coef, *_ = np.linalg.lstsq(xmat, z, rcond=None)
+    candidates = []
+    for tau0, sig0, pr0 in starts:
+        x = np.log([max(tau0, 1e-6), max(sig0, 1e-3), max(pr0, 1e-3) / cov.range_factor])
+        x = np.clip(x if nugget else x[1:], lo + 1e-3, hi - 1e-3)
+        candidates.append((objective(x, z - xmat @ coef)[0], len(candidates), x))
+    x0 = min(candidates, key=lambda c: (c[0], c[1]))[2]
     best = None
     for _ in range(ROUNDS):  # OLS trend, then the GLS trend of the Vecchia model at each optimum
         resid = z - xmat @ coef
