@@ -141,6 +141,29 @@ class _ProfileLik:
         return -ll, -np.asarray(g)
 
 
+def search_space(cov: Covariance, nugget: bool, start: dict | None, s: float, length: float):
+    """Parameter names, log-scale bounds and starting points of the ML quick fits (standardised scale: values
+    divided by ``s``, distances by ``length``): the default (nugget 0.1, partial sill 0.9, practical range 1/3),
+    0.3 and 3 times that range, and first ``start`` (data units) when given."""
+    names = list(_PARAMS if nugget else _PARAMS[1:])
+    lo = np.log([1e-8, 1e-4, 1e-3 / cov.range_factor])
+    hi = np.log([1e2, 1e2, 10.0 / cov.range_factor])
+    if not nugget:
+        lo, hi = lo[1:], hi[1:]
+    raw = [(0.1, 0.9, 1.0 / 3.0), (0.1, 0.9, 0.1), (0.1, 0.9, 1.0)]
+    if start is not None:
+        try:
+            raw.insert(0, (start["nugget"] / s**2, start["partial_sill"] / s**2, start["practical_range"] / length))
+        except (KeyError, TypeError):
+            raise InputError("start must give nugget, partial_sill and practical_range") from None
+    starts = []
+    for tau0, sig0, pr0 in raw:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x0 = np.log([max(tau0, 1e-6), max(sig0, 1e-3), max(pr0, 1e-3) / cov.range_factor])
+        starts.append(np.clip(x0 if nugget else x0[1:], lo + 1e-3, hi - 1e-3))
+    return names, lo, hi, starts
+
+
 def fit_ml(ds: xr.Dataset, covariance: str | Covariance, *, trend: int = 0, covariates: Sequence[str] = (),
            nugget: bool = True, nu: float | None = None, start: dict | None = None) -> dict:
     """Maximum-likelihood fit of a Gaussian field with a polynomial trend.
@@ -224,22 +247,11 @@ def fit_ml(ds: xr.Dataset, covariance: str | Covariance, *, trend: int = 0, cova
     dstd = dist / length
     lik = _ProfileLik(z, dstd, q, cov, nugget)
 
-    names = list(_PARAMS if nugget else _PARAMS[1:])
-    lo = np.log([1e-8, 1e-4, 1e-3 / cov.range_factor])
-    hi = np.log([1e2, 1e2, 10.0 / cov.range_factor])
-    if not nugget:
-        lo, hi = lo[1:], hi[1:]
-    starts = [(0.1, 0.9, 1.0 / 3.0), (0.1, 0.9, 0.1), (0.1, 0.9, 1.0)]
+    names, lo, hi, starts = search_space(cov, nugget, start, s, length)
     if start is not None:
-        del starts[1:]
-        try:
-            starts.insert(0, (start["nugget"] / s**2, start["partial_sill"] / s**2, start["practical_range"] / length))
-        except (KeyError, TypeError):
-            raise InputError("start must give nugget, partial_sill and practical_range") from None
+        del starts[2:]  # the given start and the default one
     points = []
-    for tau0, sig0, pr0 in starts:
-        x0 = np.log([max(tau0, 1e-6), max(sig0, 1e-3), max(pr0, 1e-3) / cov.range_factor])
-        x0 = np.clip(x0 if nugget else x0[1:], lo + 1e-3, hi - 1e-3)
+    for x0 in starts:
         if np.all(np.isfinite(x0)):
             points.append((-lik(x0, grad=False), len(points), x0))
     best = None

@@ -33,7 +33,7 @@ from scipy import optimize
 
 from bayesgeo.common.geometry import metric_of
 from bayesgeo.common.validate import InputError
-from bayesgeo.explore.wls import _PARAMS, _at_bound, _resolve
+from bayesgeo.explore.wls import _at_bound, _resolve
 
 __all__ = ["NN_ML_POINTS", "QUICK_NEIGHBOURS", "fit_ml_nn"]
 
@@ -63,7 +63,7 @@ def fit_ml_nn(ds: xr.Dataset, covariance: str, *, trend: int = 0, covariates: Se
     says ``nearest-neighbour, m = ...``); ``neighbours`` is m (default :data:`QUICK_NEIGHBOURS`).
     """
     from bayesgeo.common.pairs import max_pair_distance
-    from bayesgeo.explore.quickfit import _design, _single_site
+    from bayesgeo.explore.quickfit import _design, _single_site, search_space
     from bayesgeo.gp.covariance import kernel_code
     from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik_and_grad
     from bayesgeo.gp.nn_simulate import nn_factors
@@ -104,21 +104,9 @@ def fit_ml_nn(ds: xr.Dataset, covariance: str, *, trend: int = 0, covariates: Se
             g.insert(0, tau * g_t2)
         return -ll, -np.asarray(g)
 
-    names = list(_PARAMS if nugget else _PARAMS[1:])
-    lo = np.log([1e-8, 1e-4, 1e-3 / cov.range_factor])
-    hi = np.log([1e2, 1e2, 10.0 / cov.range_factor])
-    if not nugget:
-        lo, hi = lo[1:], hi[1:]
-    starts = [(0.1, 0.9, 1.0 / 3.0), (0.1, 0.9, 0.1), (0.1, 0.9, 1.0)]
-    if start is not None and all(np.isfinite([start.get(k, np.nan) for k in ("nugget", "partial_sill",
-                                                                             "practical_range")])):
-        starts.insert(0, (start["nugget"] / s**2, start["partial_sill"] / s**2, start["practical_range"] / length))
+    names, lo, hi, starts = search_space(cov, nugget, start, s, length)
     coef, *_ = np.linalg.lstsq(xmat, z, rcond=None)
-    candidates = []
-    for tau0, sig0, pr0 in starts:
-        x = np.log([max(tau0, 1e-6), max(sig0, 1e-3), max(pr0, 1e-3) / cov.range_factor])
-        x = np.clip(x if nugget else x[1:], lo + 1e-3, hi - 1e-3)
-        candidates.append((objective(x, z - xmat @ coef)[0], len(candidates), x))
+    candidates = [(objective(x, z - xmat @ coef)[0], k, x) for k, x in enumerate(starts) if np.all(np.isfinite(x))]
     x0 = min(candidates, key=lambda c: (c[0], c[1]))[2]
     best = None
     for _ in range(ROUNDS):  # OLS trend, then the GLS trend of the Vecchia model at each optimum
