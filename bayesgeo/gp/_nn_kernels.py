@@ -86,6 +86,29 @@ def _cho_solve(a, k, x):
         x[i] = t / a[i, i]
 
 
+@numba.njit(cache=True, inline="always")
+def _point_step(chol, k, b, g, rc, yn, s2, diag, resid_i, grad_r, nbr_row, i):
+    """One point's conditional: factor ``chol``, b = C^-1 c and g = C^-1 y_N in place, f and e; the
+    log-density term; d logp / d resid scattered into ``grad_r``. Returns (ok, logp_i, f, w = e / f);
+    ok False when the neighbour matrix is not positive definite or f <= 0 (the caller returns -inf)."""
+    if not _cholesky(chol, k):
+        return False, 0.0, 0.0, 0.0
+    _cho_solve(chol, k, b)
+    _cho_solve(chol, k, g)
+    f = diag
+    e = resid_i
+    for a in range(k):
+        f -= s2 * rc[a] * b[a]
+        e -= b[a] * yn[a]
+    if not f > 0.0:
+        return False, 0.0, 0.0, 0.0
+    w = e * (1.0 / f)
+    grad_r[i] -= w
+    for a in range(k):
+        grad_r[nbr_row[a]] += w * b[a]
+    return True, -0.5 * (_LOG2PI + math.log(f) + e * w), f, w
+
+
 @numba.njit(nogil=True, cache=True)
 def nn_logp_grad(code, metric, inv_ds, resid, coords, nbr, phi, s2, t2, grad_r):
     """Vecchia log-likelihood and gradient; returns (logp, d phi, d s2, d t2), writes d resid to grad_r.
@@ -140,27 +163,13 @@ def nn_logp_grad(code, metric, inv_ds, resid, coords, nbr, phi, s2, t2, grad_r):
                 rr[a, c] = r
                 gg[a, c] = dlog_code(code, u, r)
                 chol[a, c] = s2 * r
-        if not _cholesky(chol, k):
-            for j in range(n):
-                grad_r[j] = 0.0
-            return ninf, 0.0, 0.0, 0.0
-        _cho_solve(chol, k, b)
-        _cho_solve(chol, k, g)
-        f = diag
-        e = resid[i]
-        for a in range(k):
-            f -= s2 * rc[a] * b[a]
-            e -= b[a] * yn[a]
-        if not f > 0.0:
+        ok, lp_i, f, w = _point_step(chol, k, b, g, rc, yn, s2, diag, resid[i], grad_r, nbr[i], i)
+        if not ok:
             for j in range(n):
                 grad_r[j] = 0.0
             return ninf, 0.0, 0.0, 0.0
         inv_f = 1.0 / f
-        w = e * inv_f
-        logp += -0.5 * (_LOG2PI + math.log(f) + e * w)
-        grad_r[i] -= w
-        for a in range(k):
-            grad_r[nbr[i, a]] += w * b[a]
+        logp += lp_i
         # quadratic forms b^T dC b and b^T dC g, diagonal and off-diagonal parts separately
         bb = 0.0
         bg = 0.0

@@ -27,7 +27,6 @@ import pytensor.tensor as pt
 from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
 
 from bayesgeo.common.defaults import JITTER
-from bayesgeo.common.defaults import LOG_2PI as _LOG2PI
 from bayesgeo.gp import _nn_kernels as _nb
 from bayesgeo.gp import anisotropy as _an
 from bayesgeo.gp._logp_op import LogpGradOp, source_version
@@ -99,27 +98,13 @@ def nn_aniso_kernel(code, inv_ds, resid, coords, nbr, phi, s2, t2, a1, a2, grad_
                                       sc, tt, inv_phi)
                 rr[a, c], gg[a, c], w1[a, c], w2[a, c] = r, dl, f1, f2
                 chol[a, c] = s2 * r
-        if not _nb._cholesky(chol, k):
-            for j in range(n):
-                grad_r[j] = 0.0
-            return ninf, 0.0, 0.0, 0.0, 0.0, 0.0
-        _nb._cho_solve(chol, k, b)
-        _nb._cho_solve(chol, k, g)
-        f = diag
-        e = resid[i]
-        for a in range(k):
-            f -= s2 * rc[a] * b[a]
-            e -= b[a] * yn[a]
-        if not f > 0.0:
+        ok, lp_i, f, w = _nb._point_step(chol, k, b, g, rc, yn, s2, diag, resid[i], grad_r, nbr[i], i)
+        if not ok:
             for j in range(n):
                 grad_r[j] = 0.0
             return ninf, 0.0, 0.0, 0.0, 0.0, 0.0
         inv_f = 1.0 / f
-        w = e * inv_f
-        logp += -0.5 * (_LOG2PI + math.log(f) + e * w)
-        grad_r[i] -= w
-        for a in range(k):
-            grad_r[nbr[i, a]] += w * b[a]
+        logp += lp_i
         # linear (v . b, v . g) and pair (sum_{a>c} V_ac (b_a b_c), (b_a g_c + b_c g_a)) forms
         bb = bg = 0.0
         lin = np.zeros((4, 2))  # rows: rho, dlog, alpha_1, alpha_2; columns: . b, . g
