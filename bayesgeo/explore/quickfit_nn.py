@@ -33,7 +33,7 @@ from scipy import optimize
 
 from bayesgeo.common.geometry import metric_of
 from bayesgeo.common.validate import InputError
-from bayesgeo.explore.wls import _at_bound, _resolve
+from bayesgeo.explore.wls import _at_bound, _design, _resolve, _single_site, search_space
 
 __all__ = ["NN_ML_POINTS", "QUICK_NEIGHBOURS", "fit_ml_nn"]
 
@@ -63,7 +63,6 @@ def fit_ml_nn(ds: xr.Dataset, covariance: str, *, trend: int = 0, covariates: Se
     says ``nearest-neighbour, m = ...``); ``neighbours`` is m (default :data:`QUICK_NEIGHBOURS`).
     """
     from bayesgeo.common.pairs import max_pair_distance
-    from bayesgeo.explore.quickfit import _design, _single_site, search_space
     from bayesgeo.gp.covariance import kernel_code
     from bayesgeo.gp.nn import maximin_order, nearest_previous, nn_loglik_and_grad
     from bayesgeo.gp.nn_simulate import nn_factors

@@ -169,3 +169,43 @@ def fit_wls(vg: xr.Dataset, covariance: str | Covariance, *, nugget: bool = True
         "converged": bool(best.success),
         "at_bound": _at_bound(best.x, lo, hi, names),
     }
+
+
+# --- shared by the maximum-likelihood quick fits (bayesgeo.explore.quickfit, quickfit_nn) ------------------
+
+
+def _single_site(ds: xr.Dataset) -> None:
+    if "site" in ds.coords and np.unique(ds["site"].values).size > 1:
+        labels = ", ".join(map(str, np.unique(ds["site"].values)[:5]))
+        raise InputError(f"the data hold several sites ({labels}, ...); fit each site on its own "
+                         "(select it with ds.where(ds.site == label, drop=True))")
+
+
+def _design(ds: xr.Dataset, trend: int, covariates: Sequence[str]) -> tuple[np.ndarray, list[str]]:
+    from bayesgeo.explore.trend import design_matrix
+
+    xmat = design_matrix(ds, trend, tuple(covariates))
+    return np.asarray(xmat.values, dtype=float), [str(t) for t in xmat["term"].values]
+
+
+def search_space(cov: Covariance, nugget: bool, start: dict | None, s: float, length: float):
+    """Parameter names, log-scale bounds and starting points of the ML quick fits (standardised scale: values
+    divided by ``s``, distances by ``length``): the default (nugget 0.1, partial sill 0.9, practical range 1/3),
+    0.3 and 3 times that range, and first ``start`` (data units) when given."""
+    names = list(_PARAMS if nugget else _PARAMS[1:])
+    lo = np.log([1e-8, 1e-4, 1e-3 / cov.range_factor])
+    hi = np.log([1e2, 1e2, 10.0 / cov.range_factor])
+    if not nugget:
+        lo, hi = lo[1:], hi[1:]
+    raw = [(0.1, 0.9, 1.0 / 3.0), (0.1, 0.9, 0.1), (0.1, 0.9, 1.0)]
+    if start is not None:
+        try:
+            raw.insert(0, (start["nugget"] / s**2, start["partial_sill"] / s**2, start["practical_range"] / length))
+        except (KeyError, TypeError):
+            raise InputError("start must give nugget, partial_sill and practical_range") from None
+    starts = []
+    for tau0, sig0, pr0 in raw:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x0 = np.log([max(tau0, 1e-6), max(sig0, 1e-3), max(pr0, 1e-3) / cov.range_factor])
+        starts.append(np.clip(x0 if nugget else x0[1:], lo + 1e-3, hi - 1e-3))
+    return names, lo, hi, starts
