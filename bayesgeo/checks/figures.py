@@ -81,13 +81,8 @@ def variogram_check_figure(vc: xr.Dataset, *, title: str | None = None):
                     zorder=1, label=f"model semivariogram, {prob:.0%} posterior band")
     ax.plot(dist[pos], vc["curve_q50"].values[pos], color=_MODEL, linewidth=1.5, zorder=2,
             label="model semivariogram, posterior median")
-    obs = vc["observed"].values
-    ax.scatter(lag[has], obs[has], s=_sizes(vc["pairs"].values)[has], color=_POINT, zorder=3,
-               label="observed (area ~ √pairs)")
-    out = has & vc["outside"].values
-    if out.any():
-        ax.scatter(lag[out], obs[out], s=_sizes(vc["pairs"].values)[out] * 3.0, facecolors="none",
-                   edgecolors=_FLAG, linewidths=1.2, zorder=4, label="outside the replicate band")
+    _observed(ax, lag, vc["observed"].values, vc["pairs"].values, vc["outside"].values, "observed (area ~ √pairs)",
+              "outside the replicate band")
     ax.set_xlim(0.0, float(vc.attrs.get("lag_limit", np.nanmax(dist))) * 1.03)
     ax.set_ylim(bottom=0.0)
     du = vc.attrs.get("distance_units", "") or "distance units"
@@ -122,13 +117,8 @@ def _axis_panels(vc: xr.Dataset, side, prob: float, du: str, mu: str) -> None:
                         label=f"replicate data, {prob:.0%} band")
         ax.fill_between(lag[has], sel[mlo].values[has], sel[mhi].values[has], color=_MODEL, alpha=0.18,
                         linewidth=0, zorder=1, label="model along the axis")
-        obs = sel["axis_observed"].values
-        ax.scatter(lag[has], obs[has], s=_sizes(sel["axis_pairs"].values)[has], color=_POINT, zorder=3,
-                   label="observed")
-        out = has & sel["axis_outside"].values
-        if out.any():
-            ax.scatter(lag[out], obs[out], s=_sizes(sel["axis_pairs"].values)[out] * 3.0, facecolors="none",
-                       edgecolors=_FLAG, linewidths=1.2, zorder=4)
+        _observed(ax, lag, sel["axis_observed"].values, sel["axis_pairs"].values, sel["axis_outside"].values,
+                  "observed", None)
         name = str(sel["axis"].values)
         ax.set_title(f"{name} axis, {float(sel['axis_azimuth']):.0f}° from north", fontsize=9.5)
         ax.set_xlabel(f"lag distance ({du})")
@@ -137,6 +127,18 @@ def _axis_panels(vc: xr.Dataset, side, prob: float, du: str, mu: str) -> None:
         if j == 0:
             ax.set_ylabel(f"semivariance [({mu})²]")
             ax.legend(fontsize=7, loc="lower right", frameon=True, framealpha=0.85, edgecolor="none")
+
+
+def _observed(ax, lag, obs, pairs, outside, label: str, ring_label: str | None) -> None:
+    """Observed semivariances of the bins holding pairs (area growing with the pair count) and red rings
+    around those outside the replicate band."""
+    has = pairs > 0
+    sizes = _sizes(pairs)
+    ax.scatter(lag[has], obs[has], s=sizes[has], color=_POINT, zorder=3, label=label)
+    out = has & outside
+    if out.any():
+        ax.scatter(lag[out], obs[out], s=sizes[out] * 3.0, facecolors="none", edgecolors=_FLAG, linewidths=1.2,
+                   zorder=4, label=ring_label)
 
 
 def _band_names(vc: xr.Dataset, prefix: str) -> tuple[str, str]:

@@ -264,11 +264,11 @@ def variogram_check(tree: xr.DataTree, *, replicates: int = 200, bins: int = 15,
 def _axis_check(fa: FitArrays, edges: np.ndarray, values: np.ndarray, quantiles, tolerance: float = 22.5):
     """Observed and replicated semivariograms along the major and minor axis of an anisotropic fit (module
     docstring): ``values`` (n, 1 + replicates) detrended, observed first."""
-    from bayesgeo.gp.anisotropy import angle_ratio
+    from bayesgeo.gp.anisotropy import angle_ratio, circular_mean
 
     spec = fa.spec
     angle, ratio = angle_ratio(fa.draws["anisotropy_z"].reshape(-1, 2))
-    centre = float(np.degrees(0.5 * np.angle(np.mean(np.exp(2j * np.radians(angle))))) % 180.0)
+    centre = float(circular_mean(angle))
     azimuths = [centre, (centre + 90.0) % 180.0]
     sums = pair_sums(fa.xy[:, 0], fa.xy[:, 1], values, group=np.zeros(len(fa.xy), np.int64), edges=edges,
                      greatcircle=False, directions=azimuths, tolerance=tolerance, want=WANT_SQ)

@@ -38,7 +38,7 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["RATIO_TAIL", "prior_scale", "anisotropy_vector", "angle_ratio", "to_isotropic",
+__all__ = ["RATIO_TAIL", "prior_scale", "anisotropy_vector", "angle_ratio", "circular_mean", "to_isotropic",
            "anisotropic_distance", "axis_ranges", "anisotropy_parameters"]
 
 #: Default prior tail of the ratio: P(ratio > 3) = 0.05.
@@ -66,6 +66,12 @@ def angle_ratio(alpha) -> tuple[np.ndarray, np.ndarray]:
     alpha = np.asarray(alpha, dtype=float)
     angle = np.degrees(0.5 * np.arctan2(alpha[..., 1], alpha[..., 0])) % 180.0
     return angle, np.exp(np.hypot(alpha[..., 0], alpha[..., 1]))
+
+
+def circular_mean(angle, axis=None):
+    """Mean direction of axial angles in degrees, [0, 180): half the angle of the mean of exp(2 i theta)
+    (an axial angle and the same plus 180 count as one direction)."""
+    return np.degrees(0.5 * np.angle(np.mean(np.exp(2j * np.radians(angle)), axis=axis))) % 180.0
 
 
 def axis_ranges(practical_range, ratio) -> tuple[np.ndarray, np.ndarray]:
@@ -117,7 +123,7 @@ def anisotropy_parameters(alpha, prange, du: str) -> dict:
     a = alpha.transpose("chain", "draw", ..., last)
     dims = a.dims[:-1]
     angle, ratio = angle_ratio(a.values)
-    centre = np.degrees(0.5 * np.angle(np.mean(np.exp(2j * np.radians(angle)), axis=(0, 1)))) % 180.0
+    centre = circular_mean(angle, axis=(0, 1))
     unwrapped = centre + (angle - centre + 90.0) % 180.0 - 90.0
     major, minor = axis_ranges(prange.transpose(*dims).values, ratio)
     coords = {d: a[d] for d in dims if d in a.coords}

@@ -240,7 +240,7 @@ class _NearestNeighbour(Engine):
             from bayesgeo.gp.anisotropy import angle_ratio, to_isotropic
 
             angle, ratio = angle_ratio(fa.draws["anisotropy_z"].reshape(-1, 2))
-            aniso = [to_isotropic(fa.xy, angle[k], ratio[k]) for k in range(angle.size)]
+            aniso = lambda k: to_isotropic(fa.xy, angle[k], ratio[k])  # noqa: E731 (one draw at a time)
         with (progress or _no_bar)(total=fa.n, desc="nearest-neighbour LOO") as bar:
             if "censored_z" not in fa.draws and aniso is None:
                 mean, var, logp = nn_loo(fa.y, fa.xy, fa.design, covariance=spec.covariance, scale=scale,
@@ -250,7 +250,7 @@ class _NearestNeighbour(Engine):
                 from bayesgeo.gp.nn_loo import loo_neighbours
 
                 nbr = loo_neighbours(fa.xy, neighbours=m, metric=spec.metric)
-                parts = [nn_loo(_values(fa, k), fa.xy if aniso is None else aniso[k], fa.design,
+                parts = [nn_loo(_values(fa, k), fa.xy if aniso is None else aniso(k), fa.design,
                                 covariance=spec.covariance, scale=scale[k], partial_sill=psill[k], nugget=tau2[k],
                                 beta=beta[k], neighbours=m, metric=spec.metric,
                                 nbr=nbr if aniso is None else None) for k in range(scale.size)]

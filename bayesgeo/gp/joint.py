@@ -152,7 +152,7 @@ def summarise_samples(samples: np.ndarray, thresholds: Sequence[float], probs=(0
 def kriged_simulations(basis: KrigingBasis, xy_new, design_new, *, n_sim: int, seed: int,
                        include_nugget: bool = True, neighbours: int = SIMULATION_NEIGHBOURS,
                        reduce: Callable | None = None, progress: Callable | None = None, threads: int | None = None,
-                       noise=None, stack: bool = True):
+                       noise=None):
     """Joint conditional simulations of any number of targets by conditioning by kriging (module docstring).
 
     Parameters
@@ -177,12 +177,10 @@ def kriged_simulations(basis: KrigingBasis, xy_new, design_new, *, n_sim: int, s
     noise : array (D, n_sim, 2 n + M), optional
         The standard normal innovations themselves (tests): the unconditional draw at the data and targets
         (n + M, in that order), then the data's nugget (n); the targets then get no nugget noise.
-    stack : bool
-        Stack the summaries into one array (default) or return them as a list.
 
     Returns
     -------
-    ndarray (D, ...) or list
+    ndarray (D, ...)
         ``reduce`` of every draw's fields, or the fields (D, n_sim, M).
     """
     xy_obs = np.ascontiguousarray(basis.xy, dtype=float)
@@ -231,8 +229,7 @@ def kriged_simulations(basis: KrigingBasis, xy_new, design_new, *, n_sim: int, s
     else:
         with ThreadPoolExecutor(max_workers=workers) as pool:
             parts = list(pool.map(block, starts))
-    summaries = [s for part in parts for s in part]
-    return np.stack(summaries) if stack else summaries
+    return np.stack([s for part in parts for s in part])
 
 
 def _draws(basis: KrigingBasis, ks: np.ndarray) -> KrigingBasis:

@@ -74,6 +74,8 @@ def nn_aniso_kernel(code, inv_ds, resid, coords, nbr, phi, s2, t2, a1, a2, grad_
     b = np.empty(m)
     g = np.empty(m)
     yn = np.empty(m)
+    lin = np.empty((4, 2))  # rows: rho, dlog, alpha_1, alpha_2; columns: . b, . g
+    quad = np.empty((4, 2))
     logp = 0.0
     d = np.zeros(5)  # phi, s2, t2, alpha_1, alpha_2
     for i in range(n):
@@ -107,8 +109,8 @@ def nn_aniso_kernel(code, inv_ds, resid, coords, nbr, phi, s2, t2, a1, a2, grad_
         logp += lp_i
         # linear (v . b, v . g) and pair (sum_{a>c} V_ac (b_a b_c), (b_a g_c + b_c g_a)) forms
         bb = bg = 0.0
-        lin = np.zeros((4, 2))  # rows: rho, dlog, alpha_1, alpha_2; columns: . b, . g
-        quad = np.zeros((4, 2))
+        lin[:] = 0.0
+        quad[:] = 0.0
         for a in range(k):
             ba = b[a]
             ga = g[a]

@@ -110,14 +110,15 @@ def exceedance_polygons(pred: xr.Dataset, levels=DECISION_LEVELS) -> list[dict]:
     lonlat = pred["x"].attrs.get("units") == "degrees_east"
     unit = pred["x"].attrs.get("units", "")
     counts = pred["cells_above"].transpose("threshold", ...).values if "cells_above" in pred else None
-    cell_area = dx * dy
+    cell_area, geod = dx * dy, None
     if lonlat:
         from pyproj import Geod
 
+        geod = Geod(ellps="WGS84")
         x0, y0 = float(pred["x"].values[0]), float(pred["y"].values[pred.sizes["y"] // 2])
         lons, lats = [x0 - dx / 2, x0 + dx / 2, x0 + dx / 2, x0 - dx / 2], [y0 - dy / 2, y0 - dy / 2, y0 + dy / 2,
                                                                          y0 + dy / 2]
-        cell_area = abs(Geod(ellps="WGS84").polygon_area_perimeter(lons, lats)[0])
+        cell_area = abs(geod.polygon_area_perimeter(lons, lats)[0])
     out = []
     for j, t in enumerate(np.atleast_1d(pred["threshold"].values)):
         above_sim = None if counts is None else counts[j]
@@ -131,10 +132,8 @@ def exceedance_polygons(pred: xr.Dataset, levels=DECISION_LEVELS) -> list[dict]:
             geom = shapely.union_all(parts) if parts else shapely.MultiPolygon()
             if geom.geom_type == "Polygon":
                 geom = shapely.MultiPolygon([geom])
-            if lonlat:
-                from pyproj import Geod
-
-                area, units = abs(Geod(ellps="WGS84").geometry_area_perimeter(geom)[0]) if parts else 0.0, "m2"
+            if geod is not None:
+                area, units = abs(geod.geometry_area_perimeter(geom)[0]) if parts else 0.0, "m2"
             else:
                 area, units = float(mask.sum()) * dx * dy, f"{unit}2" if unit else "coordinate units squared"
             larger = np.nan if above_sim is None else float(np.mean(above_sim > mask.sum()))

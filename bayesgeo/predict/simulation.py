@@ -94,23 +94,19 @@ def simulate_targets(basis: KrigingBasis, targets: xr.Dataset, *, n_sim: int, se
     else:
         levels = thr
     method = simulation_method(basis, keep_fields)
+    kw = dict(n_sim=n_sim, seed=seed, include_nugget=include_nugget)
+    fields = None
     if method == "exact":
-        fields = conditional_simulations(basis, xy[idx], design[idx], n_sim=n_sim, seed=seed,
-                                         include_nugget=include_nugget)
-        counts = np.stack([_above(f, levels) for f in fields]) if len(fields) else np.empty((0, thr.size, n_sim))
+        fields = conditional_simulations(basis, xy[idx], design[idx], **kw)
         if progress is not None:
             progress(basis.n_draws)
+    elif keep_fields:
+        fields = kriged_simulations(basis, xy[idx], design[idx], progress=progress, **kw)
+    if fields is None:  # only the counts: no field of a large grid is kept
+        counts = kriged_simulations(basis, xy[idx], design[idx], reduce=lambda f: _above(f, levels),
+                                    progress=progress, **kw)
     else:
-        def reduce(f):
-            return (f, _above(f, levels)) if keep_fields else _above(f, levels)
-
-        parts = kriged_simulations(basis, xy[idx], design[idx], n_sim=n_sim, seed=seed,
-                                           include_nugget=include_nugget, reduce=reduce, progress=progress,
-                                           stack=not keep_fields)
-        if keep_fields:
-            fields, counts = np.stack([p[0] for p in parts]), np.stack([p[1] for p in parts])
-        else:
-            fields, counts = None, parts
+        counts = np.stack([_above(f, levels) for f in fields]) if len(fields) else np.empty((0, thr.size, n_sim))
     what = "new measurement" if include_nugget else "field"
     how = ("exact joint conditional Gaussian per draw" if method == "exact" else
            f"conditioning by kriging of nearest-neighbour unconditional draws (m = {SIMULATION_NEIGHBOURS})")
